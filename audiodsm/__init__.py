@@ -1,0 +1,60 @@
+"""audiodsm: design, simulate, measure and grade digital delta-sigma noise shapers.
+
+The public names below are loaded on first use, so ``import audiodsm`` stays cheap.
+They follow the signal chain:
+
+Noise-transfer design (``audiodsm.design.ntf``)
+    design_ntf, ntf_from_zeros_poles, NoiseTransfer
+Loop realization (``audiodsm.design.realize``)
+    realize_ntf, LoopRealization, STRUCTURES
+Modulation (``audiodsm.stages.modulator``)
+    Modulator, ModulatorState, max_stable_amplitude
+Rate conversion (``audiodsm.stages.upsample``)
+    design_upsampler, Upsampler, design_downsampler, Downsampler
+Output stages (``audiodsm.stages.output_stage``)
+    PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform
+Reconstruction (``audiodsm.stages.reconstruct``)
+    AnalogFilter, analog_prototype, lc_filter, filter_waveform
+Chain (``audiodsm.stages.chain``)
+    Chain, run_chain
+Measurement (``audiodsm.measure``)
+    a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
+    fit_sine, thd_plus_noise, dynamic_range, idle_channel_noise, averaged_spectrum,
+    find_idle_tones
+Files and profiles
+    read_audio, write_audio_atomic, load_profile, load_spec
+"""
+
+from __future__ import annotations
+
+import importlib
+
+__version__ = "0.1.0"
+
+# public name -> module that defines it
+_PUBLIC = {
+    "design_ntf": "audiodsm.design.ntf",
+    "ntf_from_zeros_poles": "audiodsm.design.ntf",
+    "NoiseTransfer": "audiodsm.design.ntf",
+    "realize_ntf": "audiodsm.design.realize",
+    "LoopRealization": "audiodsm.design.realize",
+    "STRUCTURES": "audiodsm.design.realize",
+    "Modulator": "audiodsm.stages.modulator",
+    "ModulatorState": "audiodsm.stages.modulator",
+    "max_stable_amplitude": "audiodsm.stages.modulator",
+}
+
+__all__ = ["__version__", *sorted(_PUBLIC)]
+
+
+def __getattr__(name: str):
+    module = _PUBLIC.get(name)
+    if module is None:
+        raise AttributeError(f"module 'audiodsm' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return __all__

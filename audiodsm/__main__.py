@@ -1,0 +1,3 @@
+from audiodsm.cli import main
+
+main()

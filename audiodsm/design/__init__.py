@@ -1,0 +1,1 @@
+"""Noise-transfer design and its realization as a loop."""

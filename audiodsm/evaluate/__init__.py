@@ -1,0 +1,1 @@
+"""The test battery, grading against spec sheets, and reports."""

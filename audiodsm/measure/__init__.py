@@ -1,0 +1,1 @@
+"""Measurement along AES17 practice: weightings, band limits, spectra, metrics, idle tones."""

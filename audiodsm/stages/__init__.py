@@ -1,0 +1,1 @@
+"""The signal chain's stages: upsample, modulate, output stage, reconstruct, chain driver."""

@@ -1,0 +1,10 @@
+"""Shared pytest fixtures."""
+
+import numpy as np
+import pytest
+
+
+@pytest.fixture
+def rng():
+    """A seeded generator so every test is reproducible."""
+    return np.random.default_rng(20261201)
