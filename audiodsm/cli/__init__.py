@@ -19,7 +19,7 @@ from audiodsm.errors import AudiodsmError
 COMMANDS = {
     "analyze": "audiodsm.cli.analyze:analyze",
     "render": "audiodsm.cli.render:render",
-    "measure": "audiodsm.cli.grade:measure",
+    "measure": "audiodsm.cli.measure:measure",
     "grade": "audiodsm.cli.grade:grade",
     "design": "audiodsm.cli.design:design",
 }
