@@ -23,6 +23,8 @@ Measurement (``audiodsm.measure``)
     find_idle_tones
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
+Chain profiles (``audiodsm.profile``)
+    ChainProfile, load_profile, parse_profile, profile_to_toml, profile_digest
 """
 
 from __future__ import annotations
@@ -42,6 +44,11 @@ _PUBLIC = {
     "Modulator": "audiodsm.stages.modulator",
     "ModulatorState": "audiodsm.stages.modulator",
     "max_stable_amplitude": "audiodsm.stages.modulator",
+    "ChainProfile": "audiodsm.profile",
+    "load_profile": "audiodsm.profile",
+    "parse_profile": "audiodsm.profile",
+    "profile_to_toml": "audiodsm.profile",
+    "profile_digest": "audiodsm.profile",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

@@ -1,0 +1,904 @@
+"""Chain profiles: one TOML file describes one candidate signal chain.
+
+A profile names every setting of the chain a render or a test battery runs: how the input is
+treated above full scale, the upsampler, the modulator (an NTF design or explicit zeros and
+poles, the loop structure, quantizer levels, dither, stability guard), the output stage (PDM,
+multi-level NRZ or PWM), the reconstruction filter and the listening output. The file is read
+with the standard library's :mod:`tomllib` and parsed into frozen, validated dataclasses.
+
+Every key has one default, defined once: the ``default`` of its dataclass field below. The
+documentation (``docs/profiles.md``) lists the same keys, types, ranges and defaults, and a test
+checks that it stays in step with this module.
+
+A bad file raises :class:`~audiodsm.errors.ProfileError` with one line naming the file, the
+dotted key, the value received and what is allowed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from audiodsm.errors import ProfileError
+
+__all__ = [
+    "AUDIO_RATES_HZ",
+    "ChainProfile",
+    "InputSettings",
+    "UpsamplerSettings",
+    "ModulatorSettings",
+    "OutputStageSettings",
+    "ReconstructionSettings",
+    "ListeningSettings",
+    "load_profile",
+    "parse_profile",
+    "profile_from_dict",
+    "profile_to_dict",
+    "profile_to_toml",
+    "profile_digest",
+]
+
+#: Audio sample rates the chain accepts at its input and writes for listening (Hz).
+AUDIO_RATES_HZ = (44100, 48000, 88200, 96000, 176400, 192000)
+
+#: Version of the digest recipe; bump it when the meaning of a key changes.
+_DIGEST_VERSION = 1
+
+
+# ---------------------------------------------------------------------------------------------
+# Field helpers: each key carries its type and its allowed values in the field metadata.
+# ---------------------------------------------------------------------------------------------
+
+
+def _key(default, kind, expect, check=None, **extra):
+    """A profile key: its one default, its TOML type, plain words for what is allowed."""
+    meta = {"kind": kind, "expect": expect, "check": check, **extra}
+    if isinstance(default, (list, tuple)):
+        value = tuple(default)
+        return field(default_factory=lambda: value, metadata=meta)
+    return field(default=default, metadata=meta)
+
+
+def _choice(*options):
+    return lambda v: v in options
+
+
+def _int_range(lo, hi):
+    return lambda v: lo <= v <= hi
+
+
+def _float_range(lo, hi, *, lo_open=False, hi_open=False):
+    def check(v):
+        above = v > lo if lo_open else v >= lo
+        below = v < hi if hi_open else v <= hi
+        return math.isfinite(v) and above and below
+
+    return check
+
+
+def _power_of_two(lo, hi):
+    return lambda v: lo <= v <= hi and v & (v - 1) == 0
+
+
+def _fmt_choices(*options):
+    return "one of " + ", ".join(repr(o) for o in options)
+
+
+# ---------------------------------------------------------------------------------------------
+# The sections
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class InputSettings:
+    """How the chain treats its input (TOML table ``[input]``)."""
+
+    over_full_scale: str = _key(
+        "clip",
+        "str",
+        _fmt_choices("clip", "refuse"),
+        _choice("clip", "refuse"),
+        doc="Samples beyond ±1.0: 'clip' clips them to ±1.0 and counts them; 'refuse' "
+        "stops with an error naming the file.",
+    )
+
+
+@dataclass(frozen=True)
+class UpsamplerSettings:
+    """The interpolation chain from the audio rate to the modulator rate (``[upsampler]``)."""
+
+    osr: int = _key(
+        64,
+        "int",
+        "a power of two from 16 to 512",
+        _power_of_two(16, 512),
+        doc="Oversampling ratio: modulator rate = osr x audio rate.",
+    )
+    final_stage: str = _key(
+        "sinc",
+        "str",
+        _fmt_choices("sinc", "linear", "hold"),
+        _choice("sinc", "linear", "hold"),
+        doc="The cheap last interpolation stage after the half-band FIR stages.",
+    )
+    passband_edge: float = _key(
+        0.4535,
+        "float",
+        "a number from 0.3 to 0.49 (fraction of the audio rate)",
+        _float_range(0.3, 0.49),
+        doc="Edge of the flat passband as a fraction of the audio rate.",
+    )
+    passband_ripple_db: float = _key(
+        0.005,
+        "float",
+        "a number from 0.0001 to 1.0",
+        _float_range(0.0001, 1.0),
+        doc="Allowed passband ripple, ± dB.",
+    )
+    stopband_edge: float = _key(
+        0.5465,
+        "float",
+        "a number from 0.5 to 0.7 (fraction of the audio rate)",
+        _float_range(0.5, 0.7),
+        doc="Start of the stopband as a fraction of the audio rate.",
+    )
+    stopband_atten_db: float = _key(
+        100.0,
+        "float",
+        "a number from 40 to 160",
+        _float_range(40.0, 160.0),
+        doc="Attenuation of every image of the audio band, dB.",
+    )
+
+
+@dataclass(frozen=True)
+class ModulatorSettings:
+    """The noise-shaping loop (``[modulator]``).
+
+    Either the NTF is designed from ``order``, ``max_gain`` and ``optimize_zeros``, or it is
+    given explicitly by ``zeros`` and ``poles`` (both, same count). Complex roots are written as
+    ``[re, im]`` pairs and each one needs its conjugate listed too; real roots may be plain
+    numbers.
+    """
+
+    order: int = _key(
+        5, "int", "an integer from 1 to 8", _int_range(1, 8), doc="Loop order of the designed NTF."
+    )
+    max_gain: float = _key(
+        1.5,
+        "float",
+        "a number above 1.0 and at most 8.0",
+        _float_range(1.0, 8.0, lo_open=True),
+        doc="Peak out-of-band NTF gain (Lee's rule: about 1.5 for single-bit loops).",
+    )
+    optimize_zeros: bool = _key(
+        True,
+        "bool",
+        "true or false",
+        doc="Spread the NTF zeros over the band (optimal placement) instead of all at DC.",
+    )
+    zeros: tuple = _key(
+        (),
+        "roots",
+        "a list of numbers or [re, im] pairs",
+        doc="Explicit NTF zeros (z-plane). Empty: design the NTF from order/max_gain.",
+    )
+    poles: tuple = _key(
+        (),
+        "roots",
+        "a list of numbers or [re, im] pairs",
+        doc="Explicit NTF poles (z-plane), inside the unit circle. Empty: design the NTF.",
+    )
+    structure: str = _key(
+        "feedback",
+        "str",
+        _fmt_choices("feedback", "feedforward", "error-feedback"),
+        _choice("feedback", "feedforward", "error-feedback"),
+        doc="Loop structure realizing the NTF.",
+    )
+    levels: int = _key(
+        2,
+        "int",
+        "an integer from 2 to 1024",
+        _int_range(2, 1024),
+        doc="Quantizer levels, evenly spaced in [-1, 1]; 2 is a single-bit loop.",
+    )
+    dither_lsb: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 4",
+        _float_range(0.0, 4.0),
+        doc="TPDF dither amplitude at the quantizer, in LSB (0 = none).",
+    )
+    seed: int = _key(
+        0,
+        "int",
+        "an integer from 0 to 2**63 - 1",
+        _int_range(0, 2**63 - 1),
+        doc="Seed of the dither generator (results are reproducible from it).",
+    )
+    guard: str = _key(
+        "clamp",
+        "str",
+        _fmt_choices("clamp", "reset"),
+        _choice("clamp", "reset"),
+        doc="What the stability guard does on overload: clamp the states or reset the loop.",
+    )
+    state_bound: float = _key(
+        0.0,
+        "float",
+        "0 (the modulator's own bound) or a number from 1 to 1e6",
+        lambda v: v == 0.0 or (math.isfinite(v) and 1.0 <= v <= 1e6),
+        doc="State magnitude that counts as overload; 0 keeps the modulator's default.",
+    )
+
+    @property
+    def explicit_ntf(self) -> bool:
+        """True when the profile gives the NTF's zeros and poles itself."""
+        return bool(self.zeros)
+
+
+@dataclass(frozen=True)
+class OutputStageSettings:
+    """The output stage after the modulator (``[output]``).
+
+    ``kind = "pdm"`` needs a two-level modulator. The PWM keys apply only to ``kind = "pwm"``;
+    giving one for another kind is an error, so a profile never carries a setting that does
+    nothing.
+    """
+
+    kind: str = _key(
+        "pdm",
+        "str",
+        _fmt_choices("pdm", "nrz", "pwm"),
+        _choice("pdm", "nrz", "pwm"),
+        doc="Single-bit PDM stream, multi-level NRZ DAC, or class-D PWM.",
+    )
+    full_scale_volts: float = _key(
+        1.0,
+        "float",
+        "a number above 0 and at most 1000",
+        _float_range(0.0, 1000.0, lo_open=True),
+        doc="Output voltage of the top level (PDM, NRZ) or the supply voltage (PWM).",
+    )
+    pwm_mode: str = _key(
+        "two-level",
+        "str",
+        _fmt_choices("two-level", "three-level"),
+        _choice("two-level", "three-level"),
+        only="pwm",
+        doc="Two-level (single-ended or full-bridge 'AD') or three-level bridge ('BD').",
+    )
+    pwm_carrier: str = _key(
+        "double-edge",
+        "str",
+        _fmt_choices("trailing", "double-edge"),
+        _choice("trailing", "double-edge"),
+        only="pwm",
+        doc="Trailing-edge or double-edge (symmetric) carrier.",
+    )
+    counter_steps: int = _key(
+        0,
+        "int",
+        "0 (levels - 1) or an integer from 1 to 65536",
+        _int_range(0, 65536),
+        only="pwm",
+        doc="PWM counter steps per frame; 0 uses levels - 1.",
+    )
+    dead_time_ticks: int = _key(
+        0,
+        "int",
+        "an integer from 0 to 4096",
+        _int_range(0, 4096),
+        only="pwm",
+        doc="Delay of every rising edge, in counter ticks.",
+    )
+    min_pulse_ticks: int = _key(
+        0,
+        "int",
+        "an integer from 0 to 4096",
+        _int_range(0, 4096),
+        only="pwm",
+        doc="Shortest pulse the power stage can make, in counter ticks (0 = no limit).",
+    )
+    short_pulse_action: str = _key(
+        "drop",
+        "str",
+        _fmt_choices("drop", "stretch"),
+        _choice("drop", "stretch"),
+        only="pwm",
+        doc="What happens to a pulse shorter than min_pulse_ticks.",
+    )
+
+
+@dataclass(frozen=True)
+class ReconstructionSettings:
+    """The analog reconstruction filter model (``[reconstruction]``).
+
+    ``kind = "prototype"`` uses ``family``, ``filter_order``, ``cutoff_hz`` and ``ripple_db``;
+    ``kind = "lc"`` uses the component values; ``kind = "none"`` passes the waveform through.
+    ``fir_taps`` (a semi-digital FIR on the bitstream) may go with any kind.
+    """
+
+    kind: str = _key(
+        "prototype",
+        "str",
+        _fmt_choices("prototype", "lc", "none"),
+        _choice("prototype", "lc", "none"),
+        doc="Analog prototype low-pass, class-D LC filter from components, or no filter.",
+    )
+    family: str = _key(
+        "butterworth",
+        "str",
+        _fmt_choices("butterworth", "bessel", "chebyshev1"),
+        _choice("butterworth", "bessel", "chebyshev1"),
+        only="prototype",
+        doc="Prototype family.",
+    )
+    filter_order: int = _key(
+        3,
+        "int",
+        "an integer from 1 to 6",
+        _int_range(1, 6),
+        only="prototype",
+        doc="Prototype order.",
+    )
+    cutoff_hz: float = _key(
+        60000.0,
+        "float",
+        "a number from 20000 to 1e7",
+        _float_range(20000.0, 1e7),
+        only="prototype",
+        doc="Prototype corner frequency (Hz).",
+    )
+    ripple_db: float = _key(
+        0.5,
+        "float",
+        "a number from 0.01 to 3",
+        _float_range(0.01, 3.0),
+        only="prototype",
+        doc="Passband ripple of a chebyshev1 prototype (dB).",
+    )
+    inductance_h: float = _key(
+        22e-6,
+        "float",
+        "a number from 1e-7 to 1e-2",
+        _float_range(1e-7, 1e-2),
+        only="lc",
+        doc="Filter inductance (H).",
+    )
+    capacitance_f: float = _key(
+        680e-9,
+        "float",
+        "a number from 1e-9 to 1e-4",
+        _float_range(1e-9, 1e-4),
+        only="lc",
+        doc="Filter capacitance (F).",
+    )
+    load_ohm: float = _key(
+        8.0,
+        "float",
+        "a number from 0.5 to 1000",
+        _float_range(0.5, 1000.0),
+        only="lc",
+        doc="Resistive load (ohm).",
+    )
+    series_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 10",
+        _float_range(0.0, 10.0),
+        only="lc",
+        doc="Series resistance of the inductor (ohm).",
+    )
+    bridged: bool = _key(
+        False,
+        "bool",
+        "true or false",
+        only="lc",
+        doc="Bridged (BTL) load with one LC section per half instead of single-ended.",
+    )
+    fir_taps: tuple = _key(
+        (),
+        "floats",
+        "a list of at most 256 finite numbers with a non-zero sum",
+        doc="Semi-digital FIR taps applied to the bitstream (empty = none).",
+    )
+
+
+@dataclass(frozen=True)
+class ListeningSettings:
+    """The listening file written by ``audiodsm render`` (``[listening]``)."""
+
+    rate_hz: int = _key(
+        0,
+        "int",
+        "0 (the input rate) or one of " + ", ".join(str(r) for r in AUDIO_RATES_HZ),
+        lambda v: v == 0 or v in AUDIO_RATES_HZ,
+        doc="Sample rate of the listening file; 0 keeps the input rate.",
+    )
+    sample_format: str = _key(
+        "int24",
+        "str",
+        _fmt_choices("int24", "float32"),
+        _choice("int24", "float32"),
+        doc="24-bit integer or 32-bit float WAV.",
+    )
+    error_file: bool = _key(
+        False,
+        "bool",
+        "true or false",
+        doc="Also write the error-only file (output minus the time-aligned ideal).",
+    )
+    error_gain_db: float = _key(
+        40.0,
+        "float",
+        "a number from 0 to 80",
+        _float_range(0.0, 80.0),
+        doc="Gain applied to the error-only file (dB); it appears in the file name.",
+    )
+    passband_hz: float = _key(
+        20000.0,
+        "float",
+        "a number from 15000 to 40000",
+        _float_range(15000.0, 40000.0),
+        doc="Flat band kept by the listening decimator (Hz).",
+    )
+
+
+_SECTIONS = {
+    "input": InputSettings,
+    "upsampler": UpsamplerSettings,
+    "modulator": ModulatorSettings,
+    "output": OutputStageSettings,
+    "reconstruction": ReconstructionSettings,
+    "listening": ListeningSettings,
+}
+
+
+@dataclass(frozen=True)
+class ChainProfile:
+    """One candidate chain: a name, a free-text description and one settings group per stage.
+
+    Build it with :func:`load_profile` (from a file) or :func:`profile_from_dict`; change it
+    with :func:`dataclasses.replace`. Frozen and hashable.
+    """
+
+    name: str = "unnamed"
+    description: str = ""
+    input: InputSettings = field(default_factory=InputSettings)
+    upsampler: UpsamplerSettings = field(default_factory=UpsamplerSettings)
+    modulator: ModulatorSettings = field(default_factory=ModulatorSettings)
+    output: OutputStageSettings = field(default_factory=OutputStageSettings)
+    reconstruction: ReconstructionSettings = field(default_factory=ReconstructionSettings)
+    listening: ListeningSettings = field(default_factory=ListeningSettings)
+
+
+# ---------------------------------------------------------------------------------------------
+# Parsing
+# ---------------------------------------------------------------------------------------------
+
+
+def _describe(value) -> str:
+    """A short readable rendering of a received value for error messages."""
+    if isinstance(value, dict):
+        return "a table"
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _type_name(value) -> str:
+    return {bool: "boolean", int: "integer", float: "number", str: "string"}.get(
+        type(value), type(value).__name__
+    )
+
+
+def _convert(value, kind, path, key, expect):
+    """Convert one TOML value to the field's Python type, or raise ProfileError."""
+
+    def bad(got=None):
+        raise ProfileError(path, key, f"got {got or _describe(value)}; expected {expect}")
+
+    if kind == "bool":
+        if not isinstance(value, bool):
+            bad(f"{_describe(value)} ({_type_name(value)})")
+        return value
+    if kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            bad(f"{_describe(value)} ({_type_name(value)})")
+        return value
+    if kind == "float":
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            bad(f"{_describe(value)} ({_type_name(value)})")
+        value = float(value)
+        if not math.isfinite(value):
+            bad()
+        return value
+    if kind == "str":
+        if not isinstance(value, str):
+            bad(f"{_describe(value)} ({_type_name(value)})")
+        return value
+    if kind == "floats":
+        if not isinstance(value, list) or len(value) > 256:
+            bad()
+        out = []
+        for v in value:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+                bad()
+            out.append(float(v))
+        return tuple(out)
+    if kind == "roots":
+        if not isinstance(value, list) or len(value) > 8:
+            bad()
+        out = []
+        for v in value:
+            if isinstance(v, bool):
+                bad()
+            if isinstance(v, (int, float)):
+                re, im = float(v), 0.0
+            elif (
+                isinstance(v, list)
+                and len(v) == 2
+                and all(isinstance(p, (int, float)) and not isinstance(p, bool) for p in v)
+            ):
+                re, im = float(v[0]), float(v[1])
+            else:
+                bad()
+            if not (math.isfinite(re) and math.isfinite(im)):
+                bad()
+            out.append(complex(re, im))
+        return tuple(out)
+    raise AssertionError(kind)  # pragma: no cover - schema error
+
+
+def _parse_section(cls, table, path, section):
+    if not isinstance(table, dict):
+        raise ProfileError(path, section, f"got {_describe(table)}; expected a table [{section}]")
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    for key in table:
+        if key not in fields:
+            allowed = ", ".join(fields)
+            raise ProfileError(path, f"{section}.{key}", f"unknown key; expected one of: {allowed}")
+    values = {}
+    for name, f in fields.items():
+        if name not in table:
+            continue
+        meta = f.metadata
+        dotted = f"{section}.{name}"
+        value = _convert(table[name], meta["kind"], path, dotted, meta["expect"])
+        check = meta["check"]
+        if check is not None and not check(value):
+            raise ProfileError(
+                path, dotted, f"got {_describe(table[name])}; expected {meta['expect']}"
+            )
+        values[name] = value
+    settings = cls(**values)
+    # keys that belong to another kind of this stage would do nothing: refuse them
+    kind = getattr(settings, "kind", None)
+    for name, f in fields.items():
+        only = f.metadata.get("only")
+        if only is not None and name in table and kind != only:
+            raise ProfileError(
+                path,
+                f"{section}.{name}",
+                f"applies only when {section}.kind = {only!r}; this profile has kind = {kind!r}",
+            )
+    return settings
+
+
+def _check_whole(profile: ChainProfile, path: str) -> None:
+    """Rules that involve more than one key."""
+    mod, out, rec = profile.modulator, profile.output, profile.reconstruction
+    if bool(mod.zeros) != bool(mod.poles):
+        key = "modulator.poles" if mod.zeros else "modulator.zeros"
+        raise ProfileError(
+            path, key, "got an empty list; expected zeros and poles to be given together"
+        )
+    if mod.zeros:
+        if len(mod.zeros) != len(mod.poles):
+            raise ProfileError(
+                path,
+                "modulator.poles",
+                f"got {len(mod.poles)} poles for {len(mod.zeros)} zeros; expected the same count",
+            )
+        for key, roots in (("modulator.zeros", mod.zeros), ("modulator.poles", mod.poles)):
+            for r in roots:
+                if r.imag != 0.0 and not any(
+                    abs(s - r.conjugate()) <= 1e-12 * max(1.0, abs(r)) for s in roots
+                ):
+                    raise ProfileError(
+                        path,
+                        key,
+                        f"got [{r.real!r}, {r.imag!r}] without its conjugate; "
+                        "expected complex roots in conjugate pairs",
+                    )
+        if any(abs(p) >= 1.0 for p in mod.poles):
+            raise ProfileError(
+                path,
+                "modulator.poles",
+                "got a pole on or outside the unit circle; expected |pole| < 1",
+            )
+    if out.kind == "pdm" and mod.levels != 2:
+        raise ProfileError(
+            path,
+            "modulator.levels",
+            f"got {mod.levels} with output.kind = 'pdm'; expected 2 (PDM is a single-bit stream)",
+        )
+    if rec.fir_taps and sum(rec.fir_taps) == 0.0:
+        raise ProfileError(
+            path, "reconstruction.fir_taps", "got taps summing to 0; expected a non-zero sum"
+        )
+
+
+def profile_from_dict(data: dict, *, source: str = "<profile>") -> ChainProfile:
+    """Build a validated :class:`ChainProfile` from a nested dict (the parsed TOML).
+
+    Parameters
+    ----------
+    data : dict
+        Top-level keys ``name``, ``description`` and one table per section.
+    source : str, keyword-only
+        Name used in error messages (usually the file path).
+
+    Returns
+    -------
+    ChainProfile
+
+    Raises
+    ------
+    ProfileError
+        Unknown key, wrong type, value out of range, or an inconsistent combination.
+    """
+    if not isinstance(data, dict):
+        raise ProfileError(source, "", f"got {_describe(data)}; expected a table of settings")
+    allowed = ["name", "description", *_SECTIONS]
+    for key in data:
+        if key not in allowed:
+            raise ProfileError(source, key, f"unknown key; expected one of: {', '.join(allowed)}")
+    values = {}
+    for key in ("name", "description"):
+        if key in data:
+            if not isinstance(data[key], str):
+                raise ProfileError(
+                    source,
+                    key,
+                    f"got {_describe(data[key])} ({_type_name(data[key])}); expected a string",
+                )
+            values[key] = data[key]
+    if "name" in values and not values["name"].strip():
+        raise ProfileError(source, "name", "got an empty string; expected a non-empty name")
+    for section, cls in _SECTIONS.items():
+        if section in data:
+            values[section] = _parse_section(cls, data[section], source, section)
+    profile = ChainProfile(**values)
+    _check_whole(profile, source)
+    modulator_table = data.get("modulator", {})
+    if profile.modulator.explicit_ntf:
+        for key in _DESIGN_KEYS:
+            if key in modulator_table:
+                raise ProfileError(
+                    source,
+                    f"modulator.{key}",
+                    "applies only when the NTF is designed; this profile gives zeros and poles",
+                )
+    return profile
+
+
+def parse_profile(text: str, *, source: str = "<profile>", default_name: str = "") -> ChainProfile:
+    """Parse profile TOML text.
+
+    Parameters
+    ----------
+    text : str
+        TOML text.
+    source : str, keyword-only
+        Name used in error messages.
+    default_name : str, keyword-only
+        Name used when the text has no ``name`` key (a file's stem); empty keeps
+        ``ChainProfile.name``'s default.
+
+    Returns
+    -------
+    ChainProfile
+    """
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ProfileError(source, "", f"not valid TOML ({exc})") from None
+    if default_name and "name" not in data:
+        data["name"] = default_name
+    return profile_from_dict(data, source=source)
+
+
+def load_profile(path) -> ChainProfile:
+    """Read and validate a chain profile file.
+
+    Parameters
+    ----------
+    path : str or path-like
+        A TOML file. A profile without a ``name`` key is named after the file's stem.
+
+    Returns
+    -------
+    ChainProfile
+
+    Raises
+    ------
+    ProfileError
+        Missing or unreadable file, invalid TOML, unknown key, wrong type, value out of range.
+    """
+    p = Path(path)
+    try:
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise ProfileError(str(p), "", f"cannot read the file ({exc.strerror or exc})") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise ProfileError(
+            str(p), "", "got bytes that are not UTF-8; expected a TOML text file"
+        ) from None
+    return parse_profile(text, source=str(p), default_name=p.stem)
+
+
+# ---------------------------------------------------------------------------------------------
+# Writing and hashing
+# ---------------------------------------------------------------------------------------------
+
+
+_DESIGN_KEYS = ("order", "max_gain", "optimize_zeros")
+
+
+def _applies(settings, f) -> bool:
+    """Whether field ``f`` does something for these settings (kind-specific keys)."""
+    only = f.metadata.get("only")
+    if only is not None and only != getattr(settings, "kind", None):
+        return False
+    if isinstance(settings, ModulatorSettings) and settings.explicit_ntf:
+        return f.name not in _DESIGN_KEYS
+    return True
+
+
+def _plain(value):
+    """A JSON/TOML-friendly form of one field value."""
+    if isinstance(value, tuple):
+        return [[v.real, v.imag] if isinstance(v, complex) else v for v in value]
+    return value
+
+
+def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
+    """The profile as a nested dict of plain values (the inverse of :func:`profile_from_dict`).
+
+    Parameters
+    ----------
+    profile : ChainProfile
+    full : bool, keyword-only
+        True lists every key; False leaves out keys at their default and keys that do not
+        apply to the stage's kind (the compact form :func:`profile_to_toml` writes).
+    """
+    out = {"name": profile.name, "description": profile.description}
+    for section, cls in _SECTIONS.items():
+        settings = getattr(profile, section)
+        table = {}
+        for f in dataclasses.fields(cls):
+            value = getattr(settings, f.name)
+            default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+            if not full and (value == default or not _applies(settings, f)):
+                continue
+            table[f.name] = _plain(value)
+        out[section] = table
+    return out
+
+
+def _toml_string(text: str) -> str:
+    """A TOML basic string (TOML v1.0.0: escape quote, backslash and control characters)."""
+    out = []
+    for ch in text:
+        code = ord(ch)
+        if ch in '"\\':
+            out.append("\\" + ch)
+        elif code < 0x20 or code == 0x7F:
+            out.append(f"\\u{code:04X}")
+        else:
+            out.append(ch)
+    return '"' + "".join(out) + '"'
+
+
+def _toml_value(value) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        return repr(value)  # shortest text that round-trips exactly
+    if isinstance(value, str):
+        return _toml_string(value)
+    if isinstance(value, list):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    raise TypeError(f"cannot write {value!r} as TOML")  # pragma: no cover
+
+
+def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
+    """Write a profile as TOML text that :func:`parse_profile` reads back to an equal profile.
+
+    Parameters
+    ----------
+    profile : ChainProfile
+    full : bool, keyword-only
+        False (default) writes only the keys that differ from their defaults; True writes
+        every key that applies to the chosen kinds.
+
+    Returns
+    -------
+    str
+        TOML text ending in a newline.
+    """
+    data = profile_to_dict(profile, full=False)
+    if full:
+        complete = profile_to_dict(profile, full=True)
+        for section, cls in _SECTIONS.items():
+            data[section] = {
+                f.name: complete[section][f.name]
+                for f in dataclasses.fields(cls)
+                if _applies(getattr(profile, section), f)
+            }
+    lines = [f"name = {_toml_value(data['name'])}"]
+    if data["description"]:
+        lines.append(f"description = {_toml_value(data['description'])}")
+    for section in _SECTIONS:
+        table = data[section]
+        if not table:
+            continue
+        lines.append("")
+        lines.append(f"[{section}]")
+        lines.extend(f"{k} = {_toml_value(v)}" for k, v in table.items())
+    return "\n".join(lines) + "\n"
+
+
+def profile_digest(profile: ChainProfile) -> str:
+    """A stable hash of everything in the profile that changes a result.
+
+    The name and description are left out: two profiles that differ only in their labels
+    describe the same chain and hash equal. Every other key is included at its effective value
+    (defaults written out), so a profile file and the same chain written more compactly hash
+    equal too. Floats enter by their exact ``repr``.
+
+    Parameters
+    ----------
+    profile : ChainProfile
+
+    Returns
+    -------
+    str
+        64 lowercase hex digits (SHA-256).
+    """
+    data = profile_to_dict(profile, full=True)
+    del data["name"], data["description"]
+    data["digest_version"] = _DIGEST_VERSION
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"), default=repr)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def schema_rows():
+    """Every profile key with its type, allowed values and default (for the documentation).
+
+    Yields
+    ------
+    tuple of str
+        ``(dotted_key, kind, expect, default_text, doc)``.
+    """
+    for section, cls in _SECTIONS.items():
+        for f in dataclasses.fields(cls):
+            default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
+            yield (
+                f"{section}.{f.name}",
+                f.metadata["kind"],
+                f.metadata["expect"],
+                _toml_value(_plain(default)),
+                f.metadata.get("doc", ""),
+            )
