@@ -4,7 +4,7 @@ The public names below are loaded on first use, so ``import audiodsm`` stays che
 They follow the signal chain:
 
 Noise-transfer design (``audiodsm.design.ntf``)
-    design_ntf, ntf_from_zeros_poles, NoiseTransfer
+    design_ntf, ntf_from_zeros_poles, optimal_zero_positions, NoiseTransfer
 Loop realization (``audiodsm.design.realize``)
     realize_ntf, LoopRealization, STRUCTURES
 Modulation (``audiodsm.stages.modulator``)
@@ -38,6 +38,7 @@ _PUBLIC = {
     "design_ntf": "audiodsm.design.ntf",
     "ntf_from_zeros_poles": "audiodsm.design.ntf",
     "NoiseTransfer": "audiodsm.design.ntf",
+    "optimal_zero_positions": "audiodsm.design.ntf",
     "realize_ntf": "audiodsm.design.realize",
     "LoopRealization": "audiodsm.design.realize",
     "STRUCTURES": "audiodsm.design.realize",
