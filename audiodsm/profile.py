@@ -282,6 +282,15 @@ class OutputStageSettings:
         only="pwm",
         doc="Trailing-edge or double-edge (symmetric) carrier.",
     )
+    pwm_bridge: str = _key(
+        "full",
+        "str",
+        _fmt_choices("full", "half"),
+        _choice("full", "half"),
+        only="pwm",
+        doc="Two-level only: full bridge with complementary legs, or one half bridge on split "
+        "rails. Three-level needs 'full'.",
+    )
     counter_steps: int = _key(
         0,
         "int",
@@ -290,13 +299,21 @@ class OutputStageSettings:
         only="pwm",
         doc="PWM counter steps per frame; 0 uses levels - 1.",
     )
+    tick_subdivision: int = _key(
+        1,
+        "int",
+        "an integer from 1 to 64",
+        _int_range(1, 64),
+        only="pwm",
+        doc="Ticks per counter step: a finer grid for dead time and minimum pulse width.",
+    )
     dead_time_ticks: int = _key(
         0,
         "int",
         "an integer from 0 to 4096",
         _int_range(0, 4096),
         only="pwm",
-        doc="Delay of every rising edge, in counter ticks.",
+        doc="Delay of every rising edge, in ticks (counter steps / tick_subdivision).",
     )
     min_pulse_ticks: int = _key(
         0,
@@ -304,7 +321,7 @@ class OutputStageSettings:
         "an integer from 0 to 4096",
         _int_range(0, 4096),
         only="pwm",
-        doc="Shortest pulse the power stage can make, in counter ticks (0 = no limit).",
+        doc="Shortest pulse the power stage can make, in ticks (0 = no limit).",
     )
     short_pulse_action: str = _key(
         "drop",
@@ -628,6 +645,18 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
             path,
             "modulator.levels",
             f"got {mod.levels} with output.kind = 'pdm'; expected 2 (PDM is a single-bit stream)",
+        )
+    if out.kind == "pwm" and out.pwm_mode == "three-level" and out.pwm_bridge != "full":
+        raise ProfileError(
+            path,
+            "output.pwm_bridge",
+            f"got {out.pwm_bridge!r} with three-level PWM; expected 'full' (both legs switch)",
+        )
+    if rec.fir_taps and out.kind == "pwm":
+        raise ProfileError(
+            path,
+            "reconstruction.fir_taps",
+            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
         )
     if rec.fir_taps and sum(rec.fir_taps) == 0.0:
         raise ProfileError(

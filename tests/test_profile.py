@@ -166,6 +166,16 @@ ERRORS = [
     ("[listening]\nrate_hz = 22050", "listening.rate_hz", "got 22050"),
     ("[listening]\nerror_gain_db = nan", "listening.error_gain_db", "nan"),
     ("[listening]\nsample_format = 'int16'", "listening.sample_format", "'int16'"),
+    (
+        "[output]\nkind = 'pwm'\npwm_mode = 'three-level'\npwm_bridge = 'half'",
+        "output.pwm_bridge",
+        "'full'",
+    ),
+    (
+        "[output]\nkind = 'pwm'\n[reconstruction]\nfir_taps = [1.0]",
+        "reconstruction.fir_taps",
+        "bitstream",
+    ),
     ("[modulator]\nzeros = [1.0]", "modulator.poles", "together"),
     ("[modulator]\nzeros = [1.0]\npoles = [0.5, 0.2]", "modulator.poles", "same count"),
     ("[modulator]\nzeros = [[1.0, 0.1]]\npoles = [0.5]", "modulator.zeros", "conjugate"),
