@@ -205,6 +205,52 @@ def test_predicted_sqnr_matches_peak_sqnr_formula(order, levels):
     assert got - formula == pytest.approx(-10 * math.log10(1 - d), abs=0.2 * d * 4.343 + 1e-9)
 
 
+@pytest.mark.parametrize("order", [1, 3, 5, 8])
+def test_full_band_noise_gain_is_impulse_energy(order):
+    # Parseval's theorem: (1/pi) integral_0^pi |H|^2 dw = sum_n h[n]^2, with h the impulse
+    # response from scipy.signal.lfilter. Poles have radius < 0.95, so 20000 samples leave a
+    # tail below 1e-300; the direct-form recursion of an order-8 polynomial rounds to ~2e-11
+    # relative here, hence 1e-9.
+    ntf = design_ntf(order, 32, max_gain=2.0)
+    b, a = ntf.polynomials()
+    impulse = np.zeros(20000)
+    impulse[0] = 1.0
+    h = signal.lfilter(b, a, impulse)
+    assert ntf.in_band_noise_gain(1) == pytest.approx(np.sum(h**2), rel=1e-9)
+
+
+@pytest.mark.parametrize(
+    "make,expected",
+    [
+        (lambda: design_ntf(5, 32, max_gain=2.0), lambda n: 0.0),
+        (lambda: design_ntf(8, 64), lambda n: 0.0),
+        # zeros outside the unit circle count: 2 ln 1.2 for the pair at radius 1.2
+        (
+            lambda: ntf_from_zeros_poles([1.2j, -1.2j, 1.0], [0.5, 0.2 + 0.3j, 0.2 - 0.3j]),
+            lambda n: 2 * math.log(1.2),
+        ),
+    ],
+)
+def test_log_response_integral_follows_jensens_formula(make, expected):
+    # Jensen's formula (W. Rudin, "Real and Complex Analysis", 3rd ed., 1987, thm 15.18, from
+    # memory) for H = prod(z - z_i)/prod(z - p_i) with H(inf) = 1 and poles inside the circle:
+    # (1/pi) integral_0^pi ln|H(e^jw)| dw = sum over zeros outside the circle of ln|z_i|.
+    # (The noise-shaping "no free lunch": shaping only moves noise around in log terms.)
+    ntf = make()
+    breaks = sorted({abs(np.angle(z)) for z in ntf.zeros if 0 < abs(np.angle(z)) < np.pi})
+    value, _ = integrate.quad(
+        lambda w: math.log(abs(ntf.response(w / (2 * math.pi)))),
+        0.0,
+        math.pi,
+        points=breaks or None,
+        limit=400,
+        epsabs=1e-12,
+    )
+    # quad's own error estimate is ~1e-14 for these integrable log singularities; 1e-9 leaves
+    # room for it.
+    assert value / math.pi == pytest.approx(expected(ntf), abs=1e-9)
+
+
 def test_predicted_sqnr_scales_with_level_and_levels():
     ntf = design_ntf(4, 64)
     base = ntf.predicted_sqnr_db(2, 64)

@@ -314,7 +314,7 @@ class NoiseTransfer:
             extra["osr"] = _check_real("osr", data["osr"], low=1.0, expected="a number >= 1")
         if data.get("max_gain") is not None:
             extra["max_gain"] = _check_real(
-                "max_gain", data["max_gain"], low=1.0, expected="a number > 1"
+                "max_gain", data["max_gain"], low=1.0, low_open=True, expected="a number > 1"
             )
         if data.get("optimized") is not None:
             if not isinstance(data["optimized"], bool):
