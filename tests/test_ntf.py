@@ -185,6 +185,24 @@ def test_in_band_noise_gain_matches_scipy_quad(order, osr, gain):
     assert ntf.in_band_noise_gain(osr) == pytest.approx(ref / math.pi, rel=1e-9)
 
 
+def test_in_band_noise_gain_with_in_band_resonance_matches_scipy_quad():
+    # A user NTF with a pole pair at radius 0.999 inside the band of OSR 8 (a sharp peak at
+    # 0.02 cycles/sample): scipy.integrate.quad with the resonance as a break point.
+    p = 0.999 * np.exp(2j * np.pi * 0.02)
+    ntf = ntf_from_zeros_poles([1, 1, 1], [p, np.conj(p), 0.3])
+    w_p = 2 * np.pi * 0.02
+    ref, _ = integrate.quad(
+        lambda w: abs(ntf.response(w / (2 * math.pi))) ** 2,
+        0.0,
+        math.pi / 8,
+        points=[w_p],
+        epsabs=0.0,
+        epsrel=1e-12,
+        limit=400,
+    )
+    assert ntf.in_band_noise_gain(8) == pytest.approx(ref / math.pi, rel=1e-9)
+
+
 @pytest.mark.parametrize("order", [1, 2, 3, 4])
 @pytest.mark.parametrize("levels", [2, 17])
 def test_predicted_sqnr_matches_peak_sqnr_formula(order, levels):

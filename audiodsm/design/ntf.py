@@ -37,6 +37,7 @@ MIN_OSR, MAX_OSR = 4, 1024
 # Gauss-Legendre nodes used by the in-band quadrature: exact for polynomials of degree
 # 2 * 48 - 1 = 95 on each piece, far above the degree 4 * 8 = 32 of |numerator|^2 in the band.
 _GL_NODES, _GL_WEIGHTS = legendre.leggauss(48)
+_MAX_PIECES = 1024
 # Dense grid for the peak search, refined locally afterwards.
 _PEAK_GRID = np.linspace(0.0, 0.5, 4097)
 # Range of the pre-warped cutoff t = tan(w_c / 2) scanned by the pole search.
@@ -173,9 +174,10 @@ class NoiseTransfer:
 
         Notes
         -----
-        Composite Gauss-Legendre quadrature (48 nodes per piece) over 16 equal pieces of
-        each stretch between the in-band zero frequencies, so every piece integrates a
-        smooth function with no interior zero.
+        Composite Gauss-Legendre quadrature (48 nodes per piece) over equal pieces of each
+        stretch between the in-band zero and pole frequencies, so no piece has a zero or a
+        resonance inside. The number of pieces starts at 16 per stretch and doubles until
+        two successive values agree to 1e-13 relative (at most 1024 pieces).
 
         References
         ----------
@@ -184,17 +186,30 @@ class NoiseTransfer:
         """
         osr = _check_real("osr", osr, low=1.0, expected="a finite number >= 1")
         edge = 0.5 / osr
-        zf = np.abs(np.angle(self.zeros)) / (2 * np.pi)
-        cuts = np.unique(np.concatenate([[0.0, edge], zf[(zf > 0) & (zf < edge)]]))
+        marks = np.abs(np.angle(np.concatenate([self.zeros, self.poles]))) / (2 * np.pi)
+        cuts = np.unique(np.concatenate([[0.0, edge], marks[(marks > 0) & (marks < edge)]]))
+        pieces = 16
+        value = self._gauss_legendre_power(cuts, pieces)
+        while pieces < _MAX_PIECES:
+            pieces *= 2
+            finer = self._gauss_legendre_power(cuts, pieces)
+            done = abs(finer - value) <= 1e-13 * abs(finer)
+            value = finer
+            if done:
+                break
+        # (1/pi) * integral over w = 2 pi f  ->  2 * integral over f.
+        return 2.0 * value
+
+    def _gauss_legendre_power(self, cuts, pieces):
+        """Integral of |H|^2 df over [cuts[0], cuts[-1]], `pieces` equal parts per stretch."""
         total = 0.0
         for lo, hi in zip(cuts[:-1], cuts[1:], strict=True):
-            edges = np.linspace(lo, hi, 17)
+            edges = np.linspace(lo, hi, pieces + 1)
             mid = 0.5 * (edges[1:] + edges[:-1])[:, None]
             half = 0.5 * (edges[1:] - edges[:-1])[:, None]
             f = mid + half * _GL_NODES[None, :]
             total += float(np.sum(half * _GL_WEIGHTS[None, :] * np.abs(self.response(f)) ** 2))
-        # (1/pi) * integral over w = 2 pi f  ->  2 * integral over f.
-        return 2.0 * total
+        return total
 
     def predicted_sqnr_db(self, levels: int, osr: float, amplitude_dbfs: float = 0.0) -> float:
         """Signal-to-quantization-noise ratio in the band, from the linear white-noise model.
