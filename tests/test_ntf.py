@@ -16,6 +16,8 @@ from dataclasses import FrozenInstanceError
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from numpy.polynomial import Polynomial, legendre
 from scipy import integrate, optimize, signal
 
@@ -386,6 +388,37 @@ def test_peak_gain_finds_sharp_resonance():
 
 # --------------------------------------------------------------------------------------------
 # user NTFs, serialization, immutability
+
+
+_radius = st.floats(0.0, 0.9)
+_angle = st.floats(0.0, math.pi)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    pole_pairs=st.lists(st.tuples(_radius, _angle), min_size=0, max_size=3),
+    zero_pairs=st.lists(st.tuples(st.floats(0.5, 1.5), _angle), min_size=3, max_size=3),
+    real_pole=st.floats(-0.9, 0.9),
+)
+def test_random_user_ntfs_peak_and_parseval(pole_pairs, zero_pairs, real_pole):
+    poles = [real_pole]
+    for r, a in pole_pairs:
+        poles += [r * np.exp(1j * a), r * np.exp(-1j * a)]
+    zeros = [1.0]
+    for r, a in zero_pairs[: len(pole_pairs)]:
+        zeros += [r * np.exp(1j * a), r * np.exp(-1j * a)]
+    ntf = ntf_from_zeros_poles(zeros, poles)
+    b, a_ = ntf.polynomials()
+    # The refined peak is at least the maximum on a dense scipy.signal.freqz grid, and close.
+    _, h = signal.freqz(b, a_, worN=np.linspace(0, np.pi, 2**14 + 1))
+    gain = ntf.peak_gain()
+    assert gain >= np.max(np.abs(h)) * (1 - 1e-12)
+    assert gain == pytest.approx(np.max(np.abs(h)), rel=1e-4)
+    # Parseval with scipy.signal.lfilter: pole radius <= 0.9, so 2000 samples leave < 1e-80.
+    impulse = np.zeros(2000)
+    impulse[0] = 1.0
+    energy = np.sum(signal.lfilter(b, a_, impulse) ** 2)
+    assert ntf.in_band_noise_gain(1) == pytest.approx(energy, rel=1e-9)
 
 
 def test_user_ntf_is_made_exactly_conjugate():
