@@ -21,8 +21,8 @@ RATE = 48000
 
 def test_spectrum_scaling_matches_scipy_welch(rng):
     # Reference: scipy.signal.welch with the same window, segment length, 50 % overlap and
-    # mean removal, density scaling. Our power per bin is 2 * PSD * df (a one-sided density
-    # integrated over one bin, relative to a full-scale sine's mean square of 0.5).
+    # mean removal, density scaling. Our power per bin is PSD * df (a one-sided density
+    # integrated over one bin: mean square per bin).
     # Same arithmetic up to summation order, hence 1e-10 relative.
     x = rng.normal(0.0, 0.01, 50000)
     spec = line_spectrum(x, rate_hz=RATE, segment_frames=4096)
@@ -31,7 +31,7 @@ def test_spectrum_scaling_matches_scipy_welch(rng):
     )
     np.testing.assert_allclose(spec.freq_hz, f)
     df = f[1] - f[0]
-    np.testing.assert_allclose(spec.power, 2.0 * psd * df, rtol=1e-10)
+    np.testing.assert_allclose(spec.power, psd * df, rtol=1e-10)
     # ENBW of the window: L * sum(w^2) / sum(w)^2 bins (Harris 1978, eq. 11);
     # 4-term Blackman-Harris -92 dB: 2.00 bins (Harris 1978, table 1, from memory).
     assert spec.enbw_hz / df == pytest.approx(2.00, abs=0.005)
@@ -46,7 +46,7 @@ def test_tone_level_sums_to_dbfs():
     x = 0.5 * np.sin(2 * np.pi * f0 * np.arange(n) / RATE)
     spec = line_spectrum(x, rate_hz=RATE, segment_frames=seg)
     k = int(round(f0 * seg / RATE))
-    assert 10 * np.log10(spec.power[k - 4 : k + 5].sum()) == pytest.approx(
+    assert 10 * np.log10(spec.power[k - 4 : k + 5].sum() / 0.5) == pytest.approx(
         20 * np.log10(0.5), abs=1e-3
     )
 
@@ -90,7 +90,7 @@ def test_degrees_of_freedom_match_simulated_noise():
     for _ in range(40):
         spec = line_spectrum(gen.normal(size=n), rate_hz=RATE, segment_frames=seg)
         assert spec.n_averages == k
-        ratios.append(spec.power[10:-10] / (4.0 / seg))
+        ratios.append(spec.power[10:-10] / (2.0 / seg))
     r = np.concatenate(ratios)
     nu = spec.degrees_of_freedom
     assert nu < 2 * k  # overlap costs degrees of freedom

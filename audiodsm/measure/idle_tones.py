@@ -66,6 +66,7 @@ __all__ = [
 DETECTOR_WINDOW = "blackmanharris"
 #: Half-width of the 4-term Blackman-Harris main lobe, in bins (Harris 1978, table 1).
 _LOBE_HALF_BINS = {"blackmanharris": 4, "hann": 2, "hamming": 2, "flattop": 5}
+_FULL_SCALE_SINE_POWER = 0.5  # mean square of a full-scale sine: 0 dBFS (AES17)
 #: Default false-alarm probability per spectrum.
 DEFAULT_FALSE_ALARM = 0.01
 #: Default running-median length in bins.
@@ -86,9 +87,10 @@ class LineSpectrum:
     freq_hz : numpy.ndarray
         Bin frequencies, 0 .. rate/2.
     power : numpy.ndarray
-        Power per bin relative to a full-scale sine: a tone's bins summed over its main lobe
-        give its mean square divided by 0.5, so ``10*log10(sum)`` is its level in dBFS; the
-        bins of a band summed give the band's noise power in the same units. Shape
+        Mean-square power per bin (power spectral density times the bin spacing, full scale
+        ±1.0): a tone's bins summed over its main lobe give its mean square, so
+        ``10*log10(sum / 0.5)`` is its level in dBFS (AES17); the bins of a band summed give
+        the band's noise power. Shape
         ``(n_bins,)`` or ``(n_bins, channels)``.
     rate_hz : float
         Sample rate of the analysed signal.
@@ -267,8 +269,8 @@ class SpectrumAccumulator:
                 "signal length", "shorter than one segment", f">= {self.segment_frames} frames"
             )
         w = self._w
-        # 4|X|^2 / (L * sum w^2): a tone's main lobe sums to its mean square / 0.5 (Parseval)
-        scale = 4.0 / (self.segment_frames * float(np.sum(w * w)))
+        # 2|X|^2 / (L * sum w^2): a tone's main lobe sums to its mean square (Parseval)
+        scale = 2.0 / (self.segment_frames * float(np.sum(w * w)))
         power = self._sum * (scale / self.n_averages)
         power[0] *= 0.5  # DC and Nyquist bins are not doubled in a one-sided spectrum
         if self.segment_frames % 2 == 0:
@@ -524,7 +526,9 @@ def find_idle_tones(
     floor_bins = int(floor_bins) | 1
     bin_hz = float(freq[1] - freq[0])
     enbw_bins = float(getattr(spec, "enbw_hz", bin_hz)) / bin_hz
-    half = _LOBE_HALF_BINS.get(str(getattr(spec, "window", "")), int(np.ceil(enbw_bins)) + 1)
+    half = getattr(spec, "main_lobe_bins", None) or _LOBE_HALF_BINS.get(
+        str(getattr(spec, "window", "")), int(np.ceil(enbw_bins)) + 1
+    )
 
     nu = _spectrum_dof(spec)
     dist_median = float(stats.chi2.median(nu)) / nu
@@ -559,7 +563,7 @@ def find_idle_tones(
             lines.append(
                 SpectralLine(
                     frequency_hz=centre,
-                    level_dbfs=10.0 * np.log10(total),
+                    level_dbfs=10.0 * np.log10(total / _FULL_SCALE_SINE_POWER),
                     above_floor_db=10.0 * np.log10(ratio[peak]),
                 )
             )
@@ -570,6 +574,6 @@ def find_idle_tones(
         false_alarm=fa,
         degrees_of_freedom=nu,
         band_hz=(lo, hi),
-        floor_dbfs=10.0 * np.log10(floor),
+        floor_dbfs=10.0 * np.log10(floor / _FULL_SCALE_SINE_POWER),
         freq_hz=freq,
     )
