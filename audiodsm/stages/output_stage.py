@@ -1,0 +1,970 @@
+"""Output stages: the modulator's levels as a piecewise-constant waveform.
+
+The output stage turns the modulator output ``y`` (full-scale units, levels evenly spaced in
+[-1, 1], one channel at a time) into what a power stage or DAC would drive: a
+:class:`PulseWaveform`. Every modulator sample becomes one *frame*; every frame is a fixed
+number of constant *segments* whose durations are whole *ticks* of a clock that runs
+``ticks_per_frame`` times faster than the frame rate. The reconstruction filter
+(:func:`audiodsm.stages.reconstruct.filter_waveform`) is exact for such waveforms.
+
+Three stages are offered:
+
+- :func:`pdm_waveform`: the single-bit stream (one segment per frame);
+- :func:`nrz_waveform`: a multi-level DAC holding each level for one frame;
+- :func:`pwm_waveform`: class-D pulse-width modulation on a counter clock, with dead time,
+  minimum pulse width and supply scaling.
+
+The PDM stream can be written to disk as packed bits with a JSON sidecar, or as text with one
+word per line for HDL test benches (:class:`PackedBitsWriter`, :class:`CodeTextWriter`); both
+writers append block by block and only show a file under its final name once it is complete.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from audiodsm.errors import AudioFileError, OutputError, ParameterError
+
+__all__ = [
+    "PulseWaveform",
+    "pdm_waveform",
+    "nrz_waveform",
+    "pwm_waveform",
+    "PwmStats",
+    "PwmState",
+    "level_codes",
+    "PackedBitsWriter",
+    "write_packed_bits",
+    "read_packed_bits",
+    "CodeTextWriter",
+    "write_code_text",
+    "read_code_text",
+    "PACKED_BITS_LAYOUT",
+]
+
+# Tolerance when checking that a value sits on a level grid: the modulator computes levels
+# as  -1 + 2 k / (levels - 1), which is exact to a few ulp.
+_GRID_TOL = 1e-9
+
+
+# ---------------------------------------------------------------------------------------------
+# The waveform handed to the reconstruction filter
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, eq=False)
+class PulseWaveform:
+    """A piecewise-constant waveform on a tick grid, one frame per modulator sample.
+
+    Parameters
+    ----------
+    levels : ndarray, shape (n_frames, n_segments), float64
+        The value held during each segment (volts, or full-scale units).
+    ticks : ndarray, shape (n_frames, n_segments), int64
+        The duration of each segment in ticks; zero-length segments are allowed. Every row
+        sums to ``ticks_per_frame``.
+    ticks_per_frame : int
+        Ticks in one frame; 1 for PDM and NRZ.
+    frame_rate_hz : float
+        Frames per second (the modulator rate). One tick lasts
+        ``1 / (frame_rate_hz * ticks_per_frame)`` seconds.
+    """
+
+    levels: np.ndarray
+    ticks: np.ndarray
+    ticks_per_frame: int
+    frame_rate_hz: float
+
+    def __post_init__(self):
+        levels = np.ascontiguousarray(self.levels, dtype=np.float64)
+        ticks = np.ascontiguousarray(self.ticks, dtype=np.int64)
+        if levels.ndim != 2 or levels.shape != ticks.shape:
+            raise ParameterError(
+                "levels/ticks",
+                (levels.shape, ticks.shape),
+                "two arrays of the same shape (n_frames, n_segments)",
+            )
+        tpf = int(self.ticks_per_frame)
+        if tpf < 1 or tpf != self.ticks_per_frame:
+            raise ParameterError("ticks_per_frame", self.ticks_per_frame, "an integer >= 1")
+        rate = float(self.frame_rate_hz)
+        if not (math.isfinite(rate) and rate > 0):
+            raise ParameterError("frame_rate_hz", self.frame_rate_hz, "a finite number > 0")
+        if ticks.size and (ticks.min() < 0 or np.any(ticks.sum(axis=1) != tpf)):
+            expected = f"non-negative durations summing to {tpf} in every row"
+            raise ParameterError("ticks", "a row with another sum or a negative", expected)
+        if not np.all(np.isfinite(levels)):
+            raise ParameterError("levels", "NaN or Inf", "finite values")
+        levels.setflags(write=False)
+        ticks.setflags(write=False)
+        object.__setattr__(self, "levels", levels)
+        object.__setattr__(self, "ticks", ticks)
+        object.__setattr__(self, "ticks_per_frame", tpf)
+        object.__setattr__(self, "frame_rate_hz", rate)
+
+    @classmethod
+    def _trusted(cls, levels, ticks, ticks_per_frame, frame_rate_hz) -> PulseWaveform:
+        """Build without the checks, for stage code that constructs valid arrays itself."""
+        self = object.__new__(cls)
+        levels.setflags(write=False)
+        object.__setattr__(self, "levels", levels)
+        object.__setattr__(self, "ticks", ticks)
+        object.__setattr__(self, "ticks_per_frame", int(ticks_per_frame))
+        object.__setattr__(self, "frame_rate_hz", float(frame_rate_hz))
+        return self
+
+    @property
+    def n_frames(self) -> int:
+        """Number of frames (modulator samples)."""
+        return self.levels.shape[0]
+
+    @property
+    def n_segments(self) -> int:
+        """Segments per frame."""
+        return self.levels.shape[1]
+
+    @property
+    def tick_rate_hz(self) -> float:
+        """Ticks per second: ``frame_rate_hz * ticks_per_frame``."""
+        return self.frame_rate_hz * self.ticks_per_frame
+
+    def tick_samples(self) -> np.ndarray:
+        """The waveform's value during every tick, shape ``(n_frames * ticks_per_frame,)``.
+
+        Meant for plots and checks of short stretches; memory grows with ``ticks_per_frame``.
+        """
+        return np.repeat(self.levels.ravel(), self.ticks.ravel())
+
+    def frame_means(self) -> np.ndarray:
+        """The mean value of every frame (the waveform's area per frame over its length)."""
+        return (self.levels * self.ticks).sum(axis=1) / self.ticks_per_frame
+
+
+def _as_channel(y, name="y") -> np.ndarray:
+    arr = np.asarray(y, dtype=np.float64)
+    if arr.ndim != 1:
+        raise ParameterError(f"{name}.shape", arr.shape, "a one-channel array of shape (n,)")
+    if not np.all(np.isfinite(arr)):
+        raise ParameterError(name, "NaN or Inf", "finite values")
+    return arr
+
+
+def _check_rate(frame_rate_hz) -> float:
+    try:
+        rate = float(frame_rate_hz)
+    except (TypeError, ValueError):
+        rate = float("nan")
+    if not (math.isfinite(rate) and rate > 0):
+        raise ParameterError("frame_rate_hz", frame_rate_hz, "a finite number > 0")
+    return rate
+
+
+def _check_levels(levels) -> int:
+    if isinstance(levels, bool) or not isinstance(levels, int | np.integer) or levels < 2:
+        raise ParameterError("levels", levels, "an integer >= 2")
+    return int(levels)
+
+
+def level_codes(y, *, levels: int) -> np.ndarray:
+    """Integer codes 0 .. levels-1 of values on the evenly spaced grid in [-1, 1].
+
+    Code 0 is -1.0 (bottom), code ``levels - 1`` is +1.0 (top); code k is
+    ``-1 + 2 k / (levels - 1)``.
+
+    Parameters
+    ----------
+    y : array_like
+        Values on the grid, any shape.
+    levels : int
+        Number of levels (>= 2).
+
+    Returns
+    -------
+    ndarray of int64
+        The codes, same shape as ``y``.
+
+    Raises
+    ------
+    ParameterError
+        If a value is off the grid or outside [-1, 1].
+    """
+    n = _check_levels(levels)
+    arr = np.asarray(y, dtype=np.float64)
+    pos = (arr + 1.0) * 0.5 * (n - 1)
+    codes = np.rint(pos)
+    if arr.size:
+        bad = ~np.isfinite(pos) | (np.abs(pos - codes) > _GRID_TOL * (n - 1)) | (codes < 0)
+        bad |= codes > n - 1
+        if np.any(bad):
+            first = arr.ravel()[np.flatnonzero(bad.ravel())[0]]
+            raise ParameterError(
+                "y", float(first), f"values on the {n}-level grid -1 + 2k/{n - 1} in [-1, 1]"
+            )
+    return codes.astype(np.int64)
+
+
+# ---------------------------------------------------------------------------------------------
+# PDM and multi-level NRZ
+# ---------------------------------------------------------------------------------------------
+
+
+def pdm_waveform(y, *, frame_rate_hz: float, full_scale_volts: float = 1.0) -> PulseWaveform:
+    """The single-bit stream as a waveform: +/- ``full_scale_volts`` held for one frame.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n,)
+        Modulator output, every value -1.0 or +1.0.
+    frame_rate_hz : float
+        The modulator rate.
+    full_scale_volts : float, optional
+        The voltage of a 1 bit; a 0 bit is its negative.
+
+    Returns
+    -------
+    PulseWaveform
+        One segment per frame, ``ticks_per_frame = 1``.
+    """
+    arr = np.ascontiguousarray(y, dtype=np.float64)
+    if arr.ndim != 1:
+        raise ParameterError("y.shape", arr.shape, "a one-channel array of shape (n,)")
+    rate = _check_rate(frame_rate_hz)
+    volts = _check_volts(full_scale_volts, "full_scale_volts")
+    if not np.all(np.abs(arr) == 1.0):  # also rejects NaN
+        bad = arr[np.flatnonzero(np.abs(arr) != 1.0)[0]]
+        raise ParameterError("y", float(bad), "-1.0 or +1.0 (a single-bit stream)")
+    levels = (arr * volts if volts != 1.0 else arr.copy()).reshape(-1, 1)
+    return PulseWaveform._trusted(levels, _ONE_TICK[: arr.size], 1, rate)
+
+
+# a shared read-only column of ones: the ticks of every one-segment frame
+_ONE_TICK = np.broadcast_to(np.ones((1, 1), dtype=np.int64), (1 << 40, 1))
+
+
+def _check_volts(value, name) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        v = float("nan")
+    if not (math.isfinite(v) and v > 0):
+        raise ParameterError(name, value, "a finite number > 0")
+    return v
+
+
+def nrz_waveform(
+    y, *, levels: int, frame_rate_hz: float, lsb_volts: float | None = None
+) -> PulseWaveform:
+    """A multi-level DAC: each level held for one frame (non-return-to-zero).
+
+    Parameters
+    ----------
+    y : ndarray, shape (n,)
+        Modulator output on the ``levels``-level grid in [-1, 1].
+    levels : int
+        Number of quantizer levels (from the modulator).
+    frame_rate_hz : float
+        The modulator rate.
+    lsb_volts : float or None, optional
+        Voltage of one step between adjacent levels. The DAC's output is the centred code times
+        the LSB, ``(k - (levels - 1) / 2) * lsb_volts``, i.e. ``y * (levels - 1) / 2 *
+        lsb_volts``. None keeps full-scale units (an LSB of ``2 / (levels - 1)``).
+
+    Returns
+    -------
+    PulseWaveform
+        One segment per frame, ``ticks_per_frame = 1``.
+    """
+    arr = _as_channel(y)
+    rate = _check_rate(frame_rate_hz)
+    n = _check_levels(levels)
+    codes = level_codes(arr, levels=n)
+    lsb = 2.0 / (n - 1) if lsb_volts is None else _check_volts(lsb_volts, "lsb_volts")
+    out = (codes - (n - 1) / 2.0) * lsb
+    return PulseWaveform._trusted(out.reshape(-1, 1), _ONE_TICK[: arr.size], 1, rate)
+
+
+# ---------------------------------------------------------------------------------------------
+# PWM
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class PwmStats:
+    """Counts from one call of :func:`pwm_waveform` (or, in ``PwmState.totals``, a stream).
+
+    Attributes
+    ----------
+    frames : int
+        Frames produced.
+    dropped_pulses : int
+        Pulses (high or low) shorter than the minimum width that were removed.
+    stretched_pulses : int
+        Pulses shorter than the minimum width that were widened to it.
+    pulses_lost_to_dead_time : int
+        Nonzero high pulses that the rising-edge delay swallowed completely.
+    transitions : tuple of int
+        Level changes of each bridge leg (leg A first; leg B only for a full bridge).
+    switching_events_per_s : tuple of float
+        ``transitions`` per second of output, per leg.
+    """
+
+    frames: int
+    dropped_pulses: int
+    stretched_pulses: int
+    pulses_lost_to_dead_time: int
+    transitions: tuple
+    switching_events_per_s: tuple
+
+
+@dataclass(frozen=True)
+class PwmState:
+    """Streaming state of :func:`pwm_waveform` (a value; pass it back with the next block).
+
+    Attributes
+    ----------
+    high_run : tuple of int
+        Per leg, how long (in ticks, capped at the dead time) the leg's commanded signal had
+        been high at the end of the last frame; 0 when it ended low.
+    last_level : tuple of bool
+        Per leg, the leg's actual level at the end of the last frame.
+    totals : PwmStats
+        Counts over everything processed so far.
+    """
+
+    high_run: tuple
+    last_level: tuple
+    totals: PwmStats
+
+
+_MODES = ("two-level", "three-level")
+_CARRIERS = ("trailing", "double-edge")
+_BRIDGES = ("full", "half")
+_ACTIONS = ("drop", "stretch")
+
+
+def _check_int(value, name, lo, hi=None) -> int:
+    ok = isinstance(value, int | np.integer) and not isinstance(value, bool)
+    if not ok or value < lo or (hi is not None and value > hi):
+        allowed = f"an integer >= {lo}" if hi is None else f"an integer from {lo} to {hi}"
+        raise ParameterError(name, value, allowed)
+    return int(value)
+
+
+def _check_choice(value, name, choices) -> str:
+    if value not in choices:
+        raise ParameterError(name, value, "one of " + ", ".join(repr(c) for c in choices))
+    return value
+
+
+def _pwm_codes(arr, levels, counter_steps):
+    """Counter codes 0..N for the duty (1 + y) / 2, and N."""
+    if levels is None and counter_steps is None:
+        raise ParameterError("levels/counter_steps", None, "levels or counter_steps (or both)")
+    if levels is not None:
+        n_levels = _check_levels(levels)
+        codes = level_codes(arr, levels=n_levels)
+        if counter_steps is None:
+            return codes, n_levels - 1
+        steps = _check_int(counter_steps, "counter_steps", 1)
+        if steps % (n_levels - 1):
+            raise ParameterError(
+                "counter_steps",
+                counter_steps,
+                f"a multiple of levels - 1 = {n_levels - 1} so every level is an exact width",
+            )
+        return codes * (steps // (n_levels - 1)), steps
+    steps = _check_int(counter_steps, "counter_steps", 1)
+    if arr.size and (arr.min() < -1.0 - _GRID_TOL or arr.max() > 1.0 + _GRID_TOL):
+        bad = arr[np.argmax(np.abs(arr))]
+        raise ParameterError("y", float(bad), "values within [-1, 1]")
+    codes = np.rint((np.clip(arr, -1.0, 1.0) + 1.0) * 0.5 * steps).astype(np.int64)
+    return codes, steps
+
+
+def _apply_min_pulse(codes, steps, unit, min_ticks, action):
+    """Per frame: a high time or a low time shorter than ``min_ticks`` is dropped or stretched.
+
+    ``unit`` is the ticks per counter code (1 or 2 for the carrier, times the subdivision).
+    Returns the new codes and the counts (dropped, stretched).
+    """
+    if min_ticks <= 0:
+        return codes, 0, 0
+    k_min = -(-min_ticks // unit)  # smallest code whose width reaches min_ticks
+    high_short = (codes > 0) & (codes * unit < min_ticks)
+    low_short = (codes < steps) & ((steps - codes) * unit < min_ticks)
+    out = codes.copy()
+    if action == "drop":
+        out[high_short] = 0
+        out[low_short] = steps
+        return out, int(high_short.sum() + low_short.sum()), 0
+    out[high_short] = k_min
+    out[low_short] = steps - k_min
+    return out, 0, int(high_short.sum() + low_short.sum())
+
+
+def _leg_intervals(codes, steps, carrier, sub, invert):
+    """Commanded high intervals of one leg per frame: starts, ends, shape (n, 2), in ticks.
+
+    A leg is high for ``codes * unit`` ticks per frame; trailing-edge: from the frame start;
+    double-edge: centred in the frame. ``invert`` gives the complementary leg (high where the
+    un-inverted leg is low). Unused intervals are empty (start == end == frame length).
+    """
+    n = codes.shape[0]
+    if carrier == "trailing":
+        frame = steps * sub
+        width = codes * sub
+        first_lo, first_hi = np.zeros(n, np.int64), width
+        second_lo = second_hi = np.full(n, frame, np.int64)
+        if invert:
+            first_lo, first_hi = width, np.full(n, frame, np.int64)
+    else:
+        frame = 2 * steps * sub
+        centre = steps * sub
+        half = codes * sub
+        first_lo, first_hi = centre - half, centre + half
+        second_lo = second_hi = np.full(n, frame, np.int64)
+        if invert:
+            # high before and after the centred gap; a zero-width gap is one whole-frame pulse
+            gap = half > 0
+            first_lo, first_hi = np.zeros(n, np.int64), np.where(gap, centre - half, frame)
+            second_lo = np.where(gap, centre + half, frame)
+            second_hi = np.full(n, frame, np.int64)
+    starts = np.stack([first_lo, second_lo], axis=1).astype(np.int64)
+    ends = np.stack([first_hi, second_hi], axis=1).astype(np.int64)
+    return starts, ends, frame
+
+
+def _apply_dead_time(starts, ends, frame, dead, run_in):
+    """Delay every commanded rising edge by ``dead`` ticks.
+
+    The leg rises only after its command has been high for ``dead`` ticks; shorter pulses
+    vanish. Returns effective starts, the commanded high-run at each frame end (capped at ``dead``),
+    and the number of nonzero pulses swallowed.
+    """
+    nonempty = ends > starts
+    ends_high = np.any(nonempty & (ends == frame), axis=1)
+    # commanded high run at the end of each frame: from the start of the interval reaching
+    # the frame end; an interval covering the whole frame has run >= frame >= dead.
+    last_start = np.where(nonempty & (ends == frame), starts, frame).min(axis=1)
+    run_end = np.where(ends_high, np.minimum(frame - last_start, dead), 0)
+    run_end = np.where(ends_high & (last_start == 0), dead, run_end)
+    if dead == 0:
+        return starts, run_end, 0
+    run_prev = np.empty_like(run_end)
+    run_prev[0] = run_in
+    run_prev[1:] = run_end[:-1]
+    elapsed = np.where(starts == 0, run_prev[:, None], 0)
+    eff = np.minimum(ends, starts + np.maximum(dead - elapsed, 0))
+    eff = np.where(nonempty, eff, starts)
+    lost = int(np.sum(nonempty & (eff == ends)))
+    return eff, run_end, lost
+
+
+def _leg_level_at(mid, starts, ends):
+    """True where the leg is high at tick position ``mid`` (n, n_segments)."""
+    high = np.zeros(mid.shape, dtype=bool)
+    for j in range(starts.shape[1]):
+        high |= (starts[:, j : j + 1] <= mid) & (mid < ends[:, j : j + 1])
+    return high
+
+
+def pwm_waveform(
+    y,
+    *,
+    frame_rate_hz: float,
+    levels: int | None = None,
+    counter_steps: int | None = None,
+    mode: str = "two-level",
+    carrier: str = "trailing",
+    bridge: str = "full",
+    tick_subdivision: int = 1,
+    dead_time_ticks: int = 0,
+    min_pulse_ticks: int = 0,
+    min_pulse_action: str = "drop",
+    supply_volts: float = 1.0,
+    state: PwmState | None = None,
+) -> tuple[PulseWaveform, PwmStats, PwmState]:
+    """Class-D pulse-width modulation on a counter clock, exact at tick resolution.
+
+    Each modulator sample becomes one PWM frame whose leg duty is ``(1 + y) / 2``, quantized
+    to ``N`` counter steps, ``N = levels - 1`` (every level an exact width) or
+    ``counter_steps``.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n,)
+        Modulator output in full-scale units, one channel.
+    frame_rate_hz : float
+        The PWM frame rate, equal to the modulator rate.
+    levels : int, optional
+        Modulator levels: ``y`` must lie on this grid. Without ``counter_steps`` the counter
+        has ``levels - 1`` steps; with it, ``counter_steps`` must be a multiple of
+        ``levels - 1``.
+    counter_steps : int, optional
+        Counter steps per frame. Alone (without ``levels``), ``y`` in [-1, 1] is rounded to
+        the nearest of the ``counter_steps + 1`` widths (plain rounding, not noise-shaped).
+    mode : {"two-level", "three-level"}
+        Two-level: the output swings between -V and +V. Three-level ("BD"): leg A takes duty
+        ``(1 + y) / 2`` and leg B ``(1 - y) / 2``; the differential output takes -V, 0, +V and
+        the odd carrier groups cancel (double-edge carrier). Needs ``bridge="full"``.
+    carrier : {"trailing", "double-edge"}
+        Trailing edge: a sawtooth counter, the pulse starts at the frame start, ``N`` ticks a
+        frame. Double-edge: a symmetric up-down counter, the pulse is centred, ``2 N`` ticks a
+        frame (the counter clock runs at ``2 N`` times the frame rate).
+    bridge : {"full", "half"}
+        Two-level only. "full": a full bridge with complementary legs ("AD"), output
+        ``V (A - B)``. "half": one half bridge on split rails +-V, output ``V (2 A - 1)``.
+        Without dead time both give the same waveform.
+    tick_subdivision : int
+        Ticks per counter step; > 1 gives a finer grid for dead time and minimum pulse width.
+    dead_time_ticks : int
+        Every rising edge of every leg is delayed by this many ticks (the switch turns on only
+        after its command has been high that long; a shorter pulse vanishes). During the delay
+        the leg is low. At most the frame length.
+    min_pulse_ticks : int
+        Shortest pulse the power stage makes, in ticks. Applied per frame and leg command to
+        the high time and to the low time within the frame, before dead time. At most half
+        the frame.
+    min_pulse_action : {"drop", "stretch"}
+        A short pulse is removed (the leg stays low or high all frame) or widened to the
+        smallest counter width that reaches ``min_pulse_ticks``.
+    supply_volts : float
+        V: the supply voltage the bridge switches.
+    state : PwmState or None
+        Streaming state from the previous block; None starts with every leg low.
+
+    Returns
+    -------
+    waveform : PulseWaveform
+        The differential output voltage, ``ticks_per_frame = N * tick_subdivision`` (trailing)
+        or ``2 * N * tick_subdivision`` (double-edge). Segments come from the legs' edges and
+        may have zero length.
+    stats : PwmStats
+        Counts for this block.
+    state : PwmState
+        State to pass with the next block (carries running totals).
+
+    Notes
+    -----
+    The frame mean is ``y * supply_volts`` exactly when there is no dead time and no pulse
+    was dropped or stretched. Dead time is modelled as a plain turn-on delay of each leg (the
+    output during the dead interval really depends on the load current's direction); see
+    docs/outputs.md.
+
+    References
+    ----------
+    .. [1] H. S. Black, "Modulation Theory", Van Nostrand, 1953 (uniformly sampled PWM and its
+       baseband harmonics).
+    .. [2] Z. Song and D. V. Sarwate, "The frequency spectrum of pulse width modulated signals",
+       IEEE Trans. Signal Processing, 2003.
+    """
+    arr = _as_channel(y)
+    rate = _check_rate(frame_rate_hz)
+    mode = _check_choice(mode, "mode", _MODES)
+    carrier = _check_choice(carrier, "carrier", _CARRIERS)
+    bridge = _check_choice(bridge, "bridge", _BRIDGES)
+    action = _check_choice(min_pulse_action, "min_pulse_action", _ACTIONS)
+    if mode == "three-level" and bridge != "full":
+        raise ParameterError("bridge", bridge, "'full' for three-level modulation")
+    sub = _check_int(tick_subdivision, "tick_subdivision", 1)
+    volts = _check_volts(supply_volts, "supply_volts")
+    codes, steps = _pwm_codes(arr, levels, counter_steps)
+    unit = sub * (1 if carrier == "trailing" else 2)
+    frame = steps * unit
+    dead = _check_int(dead_time_ticks, "dead_time_ticks", 0, frame)
+    min_ticks = _check_int(min_pulse_ticks, "min_pulse_ticks", 0, frame // 2)
+
+    n_legs = 2 if bridge == "full" else 1
+    if state is None:
+        state = PwmState((0,) * n_legs, (False,) * n_legs, _zero_stats(n_legs))
+    elif not isinstance(state, PwmState) or len(state.high_run) != n_legs:
+        raise ParameterError("state", type(state).__name__, f"a PwmState for {n_legs} leg(s)")
+
+    codes, dropped, stretched = _apply_min_pulse(codes, steps, unit, min_ticks, action)
+    # leg commands: A always follows the codes; B is A's complement (two-level full bridge)
+    # or runs on the mirrored code N - k (three-level)
+    legs = [(codes, False)]
+    if n_legs == 2:
+        legs.append((codes, True) if mode == "two-level" else (steps - codes, False))
+
+    starts, ends, runs, lost = [], [], [], 0
+    for i, (leg_codes, invert) in enumerate(legs):
+        s, e, frame_len = _leg_intervals(leg_codes, steps, carrier, sub, invert)
+        assert frame_len == frame
+        if arr.size:
+            s, run_end, lost_i = _apply_dead_time(s, e, frame, dead, state.high_run[i])
+            runs.append(int(run_end[-1]))
+            lost += lost_i
+        else:
+            runs.append(state.high_run[i])
+        starts.append(s)
+        ends.append(e)
+
+    n = arr.size
+    cuts = np.concatenate(
+        [np.zeros((n, 1), np.int64), *starts, *ends, np.full((n, 1), frame, np.int64)], axis=1
+    )
+    cuts.sort(axis=1)
+    ticks = np.diff(cuts, axis=1)
+    mid2 = cuts[:, :-1] + cuts[:, 1:]  # twice the segment midpoints, integer
+    highs = [_leg_level_at(mid2, 2 * s, 2 * e) for s, e in zip(starts, ends, strict=True)]
+    if n_legs == 1:
+        out = volts * (2.0 * highs[0] - 1.0)
+    else:
+        out = volts * (highs[0].astype(np.float64) - highs[1])
+    waveform = PulseWaveform(out, ticks, frame, rate)
+
+    transitions, last = [], []
+    for i, high in enumerate(highs):
+        seq = high[ticks > 0]  # row-major: time order
+        if seq.size:
+            changes = int(np.count_nonzero(seq[1:] != seq[:-1]))
+            changes += int(seq[0] != state.last_level[i])
+            last.append(bool(seq[-1]))
+        else:
+            changes = 0
+            last.append(state.last_level[i])
+        transitions.append(changes)
+    seconds = n / rate
+    per_s = tuple((t / seconds) if n else 0.0 for t in transitions)
+    stats = PwmStats(n, dropped, stretched, lost, tuple(transitions), per_s)
+    tot = state.totals
+    total_frames = tot.frames + n
+    total_trans = tuple(a + b for a, b in zip(tot.transitions, transitions, strict=True))
+    total_s = total_frames / rate
+    totals = PwmStats(
+        total_frames,
+        tot.dropped_pulses + dropped,
+        tot.stretched_pulses + stretched,
+        tot.pulses_lost_to_dead_time + lost,
+        total_trans,
+        tuple((t / total_s) if total_frames else 0.0 for t in total_trans),
+    )
+    return waveform, stats, PwmState(tuple(runs), tuple(last), totals)
+
+
+def _zero_stats(n_legs: int) -> PwmStats:
+    return PwmStats(0, 0, 0, 0, (0,) * n_legs, (0.0,) * n_legs)
+
+
+# ---------------------------------------------------------------------------------------------
+# Exports: packed bits + JSON sidecar, and one word per line for HDL test benches
+# ---------------------------------------------------------------------------------------------
+
+#: Name written into every sidecar, so a reader can tell the layout (see docs/outputs.md).
+PACKED_BITS_LAYOUT = "audiodsm packed single-bit stream"
+_LAYOUT_VERSION = 1
+
+
+class _AtomicFile:
+    """A file written under a temporary name in the target folder, renamed on commit."""
+
+    def __init__(self, path, *, overwrite: bool, mode: str):
+        self.path = Path(path)
+        folder = self.path.parent if str(self.path.parent) else Path(".")
+        if self.path.exists() and not overwrite:
+            raise OutputError(f"{self.path}: already exists; pass overwrite=True to replace it")
+        if not folder.is_dir():
+            raise OutputError(f"{self.path}: folder {str(folder)!r} does not exist")
+        try:
+            fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".part", dir=folder)
+        except OSError as exc:
+            msg = f"{self.path}: cannot write in {str(folder)!r} ({exc.strerror})"
+            raise OutputError(msg) from None
+        self.tmp = Path(tmp)
+        self.handle = os.fdopen(fd, mode)
+
+    def commit(self):
+        self.handle.flush()
+        os.fsync(self.handle.fileno())
+        self.handle.close()
+        os.replace(self.tmp, self.path)
+
+    def discard(self):
+        if not self.handle.closed:
+            self.handle.close()
+        self.tmp.unlink(missing_ok=True)
+
+
+def _as_block(y, channels: int) -> np.ndarray:
+    arr = np.asarray(y, dtype=np.float64)
+    if arr.ndim == 1:
+        arr = arr[:, None]
+    if arr.ndim != 2 or arr.shape[1] != channels:
+        raise ParameterError(
+            "y.shape", arr.shape, f"(n,) or (n, {channels}) for {channels} channels"
+        )
+    return arr
+
+
+@dataclass
+class PackedBitsWriter:
+    """Write a single-bit stream as packed bytes plus a JSON sidecar, block by block.
+
+    Layout (our own, see docs/outputs.md): samples are interleaved by channel (sample 0 of
+    channel 0, sample 0 of channel 1, ..., sample 1 of channel 0, ...); each value is one bit,
+    1 for +1.0 and 0 for -1.0; bits fill each byte from the most significant bit down
+    (``np.packbits(..., bitorder="big")``); the last byte is padded with 0 bits. The sidecar
+    ``<path>.json`` holds the rate, channel count, bit order, level mapping and sample count.
+
+    Use as a context manager, or call :meth:`close`; nothing appears under the final names
+    until ``close`` succeeds, and an exception inside the ``with`` block leaves nothing.
+
+    Parameters
+    ----------
+    path : str or Path
+        The bit file; the sidecar is ``path`` plus ``".json"``.
+    rate_hz : float
+        The bit rate per channel (the modulator rate).
+    channels : int
+        Channel count.
+    overwrite : bool
+        Replace existing files instead of refusing.
+    """
+
+    path: str | Path
+    rate_hz: float
+    channels: int = 1
+    overwrite: bool = False
+    _file: _AtomicFile | None = field(default=None, init=False, repr=False)
+    _carry: np.ndarray = field(default=None, init=False, repr=False)
+    _samples: int = field(default=0, init=False, repr=False)
+
+    def __post_init__(self):
+        self.rate_hz = _check_rate_named(self.rate_hz, "rate_hz")
+        self.channels = _check_int(self.channels, "channels", 1, 64)
+        sidecar = Path(str(self.path) + ".json")
+        if sidecar.exists() and not self.overwrite:
+            raise OutputError(f"{sidecar}: already exists; pass overwrite=True to replace it")
+        self._file = _AtomicFile(self.path, overwrite=self.overwrite, mode="wb")
+        self._carry = np.zeros(0, dtype=np.uint8)
+
+    def append(self, y) -> None:
+        """Add a block of samples, shape ``(n,)`` or ``(n, channels)``, values -1.0 / +1.0."""
+        block = _as_block(y, self.channels)
+        try:
+            bits = level_codes(block, levels=2).astype(np.uint8).ravel()
+        except ParameterError:
+            self._file.discard()
+            raise
+        bits = np.concatenate([self._carry, bits])
+        whole = bits.size - bits.size % 8
+        self._file.handle.write(np.packbits(bits[:whole], bitorder="big").tobytes())
+        self._carry = bits[whole:]
+        self._samples += block.shape[0]
+
+    def close(self) -> None:
+        """Flush the last byte, write the sidecar and move both to their final names."""
+        pad = (-self._carry.size) % 8
+        if self._carry.size:
+            self._file.handle.write(np.packbits(self._carry, bitorder="big").tobytes())
+        info = {
+            "layout": PACKED_BITS_LAYOUT,
+            "layout_version": _LAYOUT_VERSION,
+            "bit_file": Path(self.path).name,
+            "rate_hz": self.rate_hz,
+            "channels": self.channels,
+            "samples_per_channel": self._samples,
+            "channel_order": "interleaved, channel 0 first within each sample",
+            "bit_order": "most significant bit first within each byte",
+            "level_of_bit_1": 1.0,
+            "level_of_bit_0": -1.0,
+            "padding_bits_at_end": pad,
+        }
+        side = _AtomicFile(str(self.path) + ".json", overwrite=self.overwrite, mode="w")
+        try:
+            json.dump(info, side.handle, indent=2)
+            side.handle.write("\n")
+        except BaseException:
+            side.discard()
+            self._file.discard()
+            raise
+        self._file.commit()
+        side.commit()
+
+    def abort(self) -> None:
+        """Give up: remove the temporary file; nothing is left under the final names."""
+        self._file.discard()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.close()
+        else:
+            self.abort()
+        return False
+
+
+def _check_rate_named(value, name) -> float:
+    try:
+        rate = float(value)
+    except (TypeError, ValueError):
+        rate = float("nan")
+    if not (math.isfinite(rate) and rate > 0):
+        raise ParameterError(name, value, "a finite number > 0")
+    return rate
+
+
+def write_packed_bits(path, y, *, rate_hz: float, overwrite: bool = False) -> None:
+    """Write a whole single-bit stream (``(n,)`` or ``(n, channels)``) with its sidecar.
+
+    See :class:`PackedBitsWriter` for the layout.
+    """
+    arr = np.asarray(y, dtype=np.float64)
+    channels = 1 if arr.ndim == 1 else arr.shape[-1]
+    with PackedBitsWriter(path, rate_hz, channels, overwrite) as writer:
+        writer.append(arr)
+
+
+def read_packed_bits(path) -> tuple[np.ndarray, dict]:
+    """Read a packed bit file written by :class:`PackedBitsWriter`.
+
+    Returns
+    -------
+    y : ndarray, shape (n, channels)
+        The stream as -1.0 / +1.0.
+    info : dict
+        The sidecar's contents.
+    """
+    path = Path(path)
+    side = Path(str(path) + ".json")
+    try:
+        info = json.loads(side.read_text())
+        raw = np.fromfile(path, dtype=np.uint8)
+    except OSError as exc:
+        raise AudioFileError(str(exc.filename or path), f"cannot read ({exc.strerror})") from None
+    except json.JSONDecodeError as exc:
+        raise AudioFileError(str(side), f"not valid JSON ({exc.msg})") from None
+    if info.get("layout") != PACKED_BITS_LAYOUT:
+        raise AudioFileError(
+            str(side), f"layout {info.get('layout')!r}; expected {PACKED_BITS_LAYOUT!r}"
+        )
+    channels = int(info["channels"])
+    samples = int(info["samples_per_channel"])
+    need = samples * channels
+    bits = np.unpackbits(raw, bitorder="big")
+    if bits.size < need or bits.size - need >= 8:
+        raise AudioFileError(
+            str(path), f"{raw.size} bytes; expected {-(-need // 8)} for {samples} x {channels} bits"
+        )
+    y = np.where(bits[:need] == 1, 1.0, -1.0).reshape(samples, channels)
+    return y, info
+
+
+@dataclass
+class CodeTextWriter:
+    """Write level codes as text, one word per line, for HDL test benches.
+
+    Each line is one sample clock: for every channel (channel 0 leftmost) the level code
+    ``k`` (0 for -1.0 ... ``levels - 1`` for +1.0) in binary with ``ceil(log2(levels))``
+    digits, most significant digit first, channels concatenated without separators. For a
+    single-bit stereo stream a line is two characters, e.g. ``10``. No header: a line holds
+    nothing but the word. Appends block by block; the file appears under its final name when
+    :meth:`close` succeeds.
+
+    Parameters
+    ----------
+    path : str or Path
+        The text file.
+    levels : int
+        Quantizer levels (2 for PDM).
+    channels : int
+        Channel count.
+    overwrite : bool
+        Replace an existing file instead of refusing.
+    """
+
+    path: str | Path
+    levels: int = 2
+    channels: int = 1
+    overwrite: bool = False
+    _file: _AtomicFile | None = field(default=None, init=False, repr=False)
+
+    def __post_init__(self):
+        self.levels = _check_levels(self.levels)
+        self.channels = _check_int(self.channels, "channels", 1, 64)
+        self._file = _AtomicFile(self.path, overwrite=self.overwrite, mode="w")
+
+    @property
+    def digits(self) -> int:
+        """Binary digits per channel code."""
+        return max(1, math.ceil(math.log2(self.levels)))
+
+    def append(self, y) -> None:
+        """Add a block, shape ``(n,)`` or ``(n, channels)``, values on the level grid."""
+        block = _as_block(y, self.channels)
+        try:
+            codes = level_codes(block, levels=self.levels)
+        except ParameterError:
+            self._file.discard()
+            raise
+        d = self.digits
+        shifts = np.arange(d - 1, -1, -1)
+        digits = (codes[:, :, None] >> shifts) & 1  # (n, channels, d)
+        chars = (digits.reshape(codes.shape[0], -1) + ord("0")).astype(np.uint8)
+        lines = np.concatenate([chars, np.full((chars.shape[0], 1), ord("\n"), np.uint8)], 1)
+        self._file.handle.write(lines.tobytes().decode("ascii"))
+
+    def close(self) -> None:
+        """Move the file to its final name."""
+        self._file.commit()
+
+    def abort(self) -> None:
+        """Remove the temporary file."""
+        self._file.discard()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.close()
+        else:
+            self.abort()
+        return False
+
+
+def write_code_text(path, y, *, levels: int = 2, overwrite: bool = False) -> None:
+    """Write a whole stream as text, one word per line (see :class:`CodeTextWriter`)."""
+    arr = np.asarray(y, dtype=np.float64)
+    channels = 1 if arr.ndim == 1 else arr.shape[-1]
+    with CodeTextWriter(path, levels, channels, overwrite) as writer:
+        writer.append(arr)
+
+
+def read_code_text(path, *, levels: int = 2, channels: int = 1) -> np.ndarray:
+    """Read a file written by :class:`CodeTextWriter` back to values in [-1, 1].
+
+    Returns
+    -------
+    ndarray, shape (n, channels)
+        The levels ``-1 + 2 k / (levels - 1)``.
+    """
+    n_levels = _check_levels(levels)
+    channels = _check_int(channels, "channels", 1, 64)
+    d = max(1, math.ceil(math.log2(n_levels)))
+    try:
+        text = Path(path).read_bytes()
+    except OSError as exc:
+        raise AudioFileError(str(path), f"cannot read ({exc.strerror})") from None
+    width = d * channels
+    raw = np.frombuffer(text, dtype=np.uint8)
+    if raw.size % (width + 1) or (raw.size and np.any(raw[width :: width + 1] != ord("\n"))):
+        raise AudioFileError(str(path), f"lines are not {width} binary digits each")
+    rows = raw.reshape(-1, width + 1)[:, :width].astype(np.int64) - ord("0")
+    if rows.size and (rows.min() < 0 or rows.max() > 1):
+        raise AudioFileError(str(path), "found a character other than 0 or 1")
+    weights = 1 << np.arange(d - 1, -1, -1)
+    codes = (rows.reshape(-1, channels, d) * weights).sum(axis=2)
+    if codes.size and codes.max() > n_levels - 1:
+        raise AudioFileError(str(path), f"code {codes.max()} above levels - 1 = {n_levels - 1}")
+    return -1.0 + 2.0 * codes / (n_levels - 1)

@@ -1,0 +1,113 @@
+"""Baseband distortion of uniformly sampled PWM against the published Bessel-function analysis.
+
+Source: H. S. Black, "Modulation Theory" (Van Nostrand, 1953), ch. on pulse-duration
+modulation; Z. Song and D. V. Sarwate, "The frequency spectrum of pulse width modulated
+signals", IEEE Trans. Signal Processing, 2003. The closed form used below is derived in this
+file (``_uniform_trailing_harmonic``) from the pulse train's Fourier transform with the
+Jacobi-Anger expansion, the same route those analyses take.
+"""
+
+import math
+
+import numpy as np
+import pytest
+from scipy.special import jv
+
+from audiodsm.stages.output_stage import pwm_waveform
+
+FRAMES_PER_PERIOD = 64  # carrier (frame) frequency / modulating frequency
+COUNTER_STEPS = 16384  # fine counter: duty rounding stays far below the harmonic measured
+MOD_INDEX = 0.8
+
+
+def _uniform_trailing_harmonic(h: int, mod_index: float, ratio: float) -> float:
+    """Amplitude of the h-th baseband harmonic of uniformly sampled trailing-edge PWM.
+
+    Derivation. The two-level output is s(t) = -1 + 2 sum_n 1[nT <= t < nT + d_n T] with the
+    duty sampled at the frame start, d_n = (1 + M cos(w_m n T)) / 2. Its Fourier transform is
+    -2 pi delta(w) + 2 sum_n exp(-j w n T) (1 - exp(-j w d_n T)) / (j w). Expanding
+    exp(-j (w T M / 2) cos(phi)) = sum_k (-j)^k J_k(w T M / 2) exp(j k phi) (Jacobi-Anger)
+    and summing over n (Poisson: sum_n exp(-j (w - k w_m) n T) = (2 pi / T) sum_m
+    delta(w - k w_m - 2 pi m / T)), the m = 0 lines sit at w = k w_m with complex amplitude
+    a_k = -2 exp(-j w T / 2) (-j)^k J_k(w T M / 2) / (j w T). The real amplitude of harmonic
+    h is 2 |a_h| = 2 |J_h(h q M)| / (h q), with q = w_m T / 2 = pi f_m / f_c.
+    (Terms from other carrier groups land on k w_m only for |k| >= f_c / f_m - h; their Bessel
+    factors are below 1e-60 here.)
+    """
+    q = math.pi * ratio
+    return 2.0 * abs(jv(h, h * q * mod_index)) / (h * q)
+
+
+def _harmonic_amplitude(waveform, h: int) -> float:
+    """Real amplitude of harmonic h of one modulating period (record = exactly one period).
+
+    The tick samples are the waveform on its tick grid; the continuous Fourier-series
+    coefficient of the piecewise-constant waveform is the DFT coefficient times the hold's
+    factor (1 - exp(-j 2 pi h / L)) / (j 2 pi h / L), whose magnitude is sinc(h / L).
+    """
+    x = waveform.tick_samples()
+    length = x.size
+    coeff = np.fft.rfft(x)[h] / length
+    return 2.0 * abs(coeff) * abs(np.sinc(h / length))
+
+
+def _sine_pwm(carrier, mode="two-level"):
+    n = np.arange(FRAMES_PER_PERIOD)
+    y = MOD_INDEX * np.cos(2 * np.pi * n / FRAMES_PER_PERIOD)
+    wave, _, _ = pwm_waveform(
+        y,
+        frame_rate_hz=384000.0,
+        counter_steps=COUNTER_STEPS,
+        mode=mode,
+        carrier=carrier,
+    )
+    return wave
+
+
+def test_trailing_edge_second_harmonic_matches_bessel_analysis():
+    wave = _sine_pwm("trailing")
+    ratio = 1.0 / FRAMES_PER_PERIOD
+    # Rounding each duty to the counter moves each pulse edge by at most T / (2 N); each
+    # frame's share of the Fourier coefficient (edges between -1 and +1) then moves by at
+    # most 2 * (T / (2 N)) / P, so the real amplitude by at most 2 / N over the period.
+    rounding_bound = 2.0 / COUNTER_STEPS
+    for h in (1, 2, 3):
+        predicted = _uniform_trailing_harmonic(h, MOD_INDEX, ratio)
+        measured = _harmonic_amplitude(wave, h)
+        assert abs(measured - predicted) <= rounding_bound, (h, measured, predicted)
+    # Black 1953 / Song & Sarwate 2003 closed form, derived above: the issue's check is the
+    # 2nd harmonic within 1 dB of the analysis (the rounding bound above is ~0.07 dB here).
+    predicted = _uniform_trailing_harmonic(2, MOD_INDEX, ratio)
+    measured = _harmonic_amplitude(wave, 2)
+    assert abs(20 * math.log10(measured / predicted)) < 1.0
+    # and the 2nd harmonic is really there: about q M / 2 of the fundamental (small-argument
+    # Bessel series, J_2(x) ~ x^2 / 8, J_1(x) ~ x / 2)
+    h2 = _harmonic_amplitude(wave, 2) / _harmonic_amplitude(wave, 1)
+    assert h2 == pytest.approx(math.pi * ratio * MOD_INDEX / 2, rel=0.02)
+
+
+def test_double_edge_second_harmonic_is_much_lower():
+    trailing = _harmonic_amplitude(_sine_pwm("trailing"), 2)
+    double = _harmonic_amplitude(_sine_pwm("double-edge"), 2)
+    # Black 1953: symmetric (double-edge) uniform sampling has far lower baseband distortion;
+    # its even harmonics cancel by symmetry, so only the duty rounding is left. 30 dB is a
+    # conservative margin (the measured gap is far larger).
+    assert 20 * math.log10(double / trailing) < -30.0
+
+
+def test_three_level_cancels_odd_carrier_groups_of_a_sine():
+    """REFERENCES.md (PWM and class-D): three-level ("BD") modulation cancels the odd carrier
+    groups that two-level ("AD") modulation has. With uniform sampling the cancellation is
+    exact at the carrier lines themselves and leaves sidebands scaled by about
+    cos(pi f T / 2), i.e. ~ pi h f_m / (2 f_c) for the h-th sideband; we compare the power in
+    the first carrier group (f_c +- 8 f_m)."""
+    two = _sine_pwm("double-edge", "two-level").tick_samples()
+    three = _sine_pwm("double-edge", "three-level").tick_samples()
+    c = FRAMES_PER_PERIOD  # bin of the carrier in a one-period record
+    group = slice(c - 8, c + 9)
+    p2 = np.sum(np.abs(np.fft.rfft(two)[group]) ** 2)
+    p3 = np.sum(np.abs(np.fft.rfft(three)[group]) ** 2)
+    assert 10 * math.log10(p3 / p2) < -20.0
+    # the even group (2 f_c) keeps energy in both
+    group2 = slice(2 * c - 8, 2 * c + 9)
+    assert np.sum(np.abs(np.fft.rfft(three)[group2]) ** 2) > 1e-3 * p2

@@ -1,0 +1,364 @@
+"""Reconstruction filters: exact simulation checked against scipy.signal, circuits, formulas."""
+
+import math
+
+import numpy as np
+import pytest
+import scipy.signal as ss
+
+from audiodsm.errors import ParameterError
+from audiodsm.stages import _kernels
+from audiodsm.stages import reconstruct as rec
+from audiodsm.stages.output_stage import PulseWaveform, nrz_waveform, pdm_waveform, pwm_waveform
+from audiodsm.stages.reconstruct import (
+    AnalogFilter,
+    analog_prototype,
+    filter_report,
+    filter_waveform,
+    filter_waveform_ticks,
+    lc_filter,
+    out_of_band_ripple,
+    semi_digital_fir,
+)
+
+RATE = 3.072e6  # 48 kHz x 64
+
+
+def _discrete_reference(filt, u, dt):
+    """scipy.signal.cont2discrete(method="zoh") + dlsim: y[n] is C x[n] + D u[n] *before* the
+    update, so the value at the end of sample n is the reference's y[n + 1]."""
+    a, b, c, d, _ = ss.cont2discrete((filt.a, filt.b, filt.c, filt.d), dt, method="zoh")
+    _, y, _ = ss.dlsim((a, b, c, d, dt), np.append(u, 0.0))
+    return y[1:, 0]
+
+
+# a critically damped LC (Q = 0.5, a repeated real pole) has no usable modal form: it takes
+# the dense path; the prototypes take the modal one.
+FILTERS = {
+    "butter3": analog_prototype("butterworth", order=3, cutoff_hz=60e3),
+    "bessel5": analog_prototype("bessel", order=5, cutoff_hz=80e3),
+    "cheby4": analog_prototype("chebyshev1", order=4, cutoff_hz=50e3, ripple_db=0.5),
+    "lc_critical": lc_filter(22e-6, 22e-6 / (4 * 4.0**2), 4.0),  # R = 0.5 sqrt(L/C)
+}
+
+
+@pytest.mark.parametrize("name", sorted(FILTERS))
+def test_one_segment_matches_scipy_cont2discrete(name, rng):
+    filt = FILTERS[name]
+    step = np.ones(400)
+    bits = np.where(rng.random(400) < 0.5, -1.0, 1.0)
+    for u in (step, bits):
+        y, _ = filter_waveform(filt, pdm_waveform(u, frame_rate_hz=RATE))
+        ref = _discrete_reference(filt, u, 1.0 / RATE)
+        # scipy.signal.cont2discrete('zoh') + dlsim: the issue's tolerance 1e-9 (outputs are
+        # O(1) here; both sides are exact ZOH up to rounding in expm).
+        np.testing.assert_allclose(y, ref, rtol=0, atol=1e-9)
+
+
+def test_modal_and_dense_paths_are_used():
+    assert rec._model(FILTERS["butter3"]).modal
+    assert not rec._model(FILTERS["lc_critical"]).modal
+
+
+def _pulse_train(rng, n_frames, tpf):
+    """A random piecewise-constant waveform with 3 segments per frame on a tpf-tick grid."""
+    cuts = np.sort(rng.integers(0, tpf + 1, size=(n_frames, 2)), axis=1)
+    ticks = np.diff(
+        np.concatenate([np.zeros((n_frames, 1), int), cuts, np.full((n_frames, 1), tpf)], 1), axis=1
+    )
+    levels = rng.choice([-1.0, 0.0, 1.0], size=ticks.shape)
+    return PulseWaveform(levels, ticks, tpf, 384e3)
+
+
+@pytest.mark.parametrize("name", ["butter3", "lc_critical"])
+def test_multi_segment_matches_scipy_lsim(name, rng):
+    filt = FILTERS[name]
+    tpf = 16
+    wave = _pulse_train(rng, 60, tpf)
+    y, _ = filter_waveform(filt, wave)
+    u = wave.tick_samples()
+    dt = 1.0 / wave.tick_rate_hz
+    t = np.arange(u.size + 1) * dt
+    # scipy.signal.lsim with interp=False holds each input sample (zero-order hold), exactly
+    # the piecewise-constant waveform; its output at t = (n + 1) T is the frame-end value.
+    _, y_ref, _ = ss.lsim((filt.a, filt.b, filt.c, filt.d), np.append(u, 0.0), t, interp=False)
+    np.testing.assert_allclose(y, y_ref[tpf::tpf], rtol=0, atol=1e-9)
+    # per-tick variant: every tick end
+    y_ticks, _ = filter_waveform_ticks(filt, wave)
+    np.testing.assert_allclose(y_ticks, y_ref[1:], rtol=0, atol=1e-9)
+
+
+def test_pwm_step_response_matches_lsim():
+    """A PWM waveform of a constant code, through the LC filter (issue: pulse trains)."""
+    filt = lc_filter(10e-6, 1e-6, 8.0)
+    wave, _, _ = pwm_waveform(
+        np.full(50, 0.5), frame_rate_hz=384e3, levels=5, carrier="double-edge"
+    )
+    y, _ = filter_waveform(filt, wave)
+    u = wave.tick_samples()
+    t = np.arange(u.size + 1) / wave.tick_rate_hz
+    _, y_ref, _ = ss.lsim((filt.a, filt.b, filt.c, filt.d), np.append(u, 0.0), t, interp=False)
+    np.testing.assert_allclose(y, y_ref[wave.ticks_per_frame :: wave.ticks_per_frame], atol=1e-9)
+
+
+@pytest.mark.parametrize("name", ["butter3", "lc_critical"])
+def test_blockwise_equals_one_shot(name, rng):
+    filt = FILTERS[name]
+    bits = np.where(rng.random(3000) < 0.5, -1.0, 1.0)
+    whole, end = filter_waveform(filt, pdm_waveform(bits, frame_rate_hz=RATE))
+    parts, state = [], None
+    for lo, hi in ((0, 1), (1, 777), (777, 777), (777, 3000)):
+        y, state = filter_waveform(filt, pdm_waveform(bits[lo:hi], frame_rate_hz=RATE), state)
+        parts.append(y)
+    assert np.array_equal(np.concatenate(parts), whole)
+    assert np.array_equal(state.coords, end.coords)
+    # multi-segment path
+    wave = _pulse_train(rng, 200, 8)
+    whole, _ = filter_waveform(filt, wave)
+    a = PulseWaveform(wave.levels[:73], wave.ticks[:73], 8, wave.frame_rate_hz)
+    b = PulseWaveform(wave.levels[73:], wave.ticks[73:], 8, wave.frame_rate_hz)
+    ya, st = filter_waveform(filt, a)
+    yb, _ = filter_waveform(filt, b, st)
+    assert np.array_equal(np.concatenate([ya, yb]), whole)
+
+
+def test_state_from_another_filter_is_refused(rng):
+    wave = pdm_waveform(np.ones(10), frame_rate_hz=RATE)
+    _, state = filter_waveform(FILTERS["butter3"], wave)
+    with pytest.raises(ParameterError, match="state"):
+        filter_waveform(FILTERS["bessel5"], wave, state)
+
+
+def test_physical_state_of_lc_at_rest_after_dc():
+    """First principles: after a long DC input u the LC settles to v = u R / (R + Rs) and the
+    inductor current v / R."""
+    filt = lc_filter(22e-6, 680e-9, 8.0, series_ohm=0.1)
+    _, state = filter_waveform(
+        filt, nrz_waveform(np.full(20000, 1.0), levels=3, frame_rate_hz=RATE)
+    )
+    i_l, v_c = state.physical(filt)
+    assert v_c == pytest.approx(8.0 / 8.1, abs=1e-9)
+    assert i_l == pytest.approx(v_c / 8.0, abs=1e-9)
+
+
+# --- slow twins of the kernels ---------------------------------------------------------------
+
+
+def _slow_segments(levels, ticks, phis, gammas, c, d, x):
+    x = list(x)
+    m = len(x)
+    y = []
+    u = 0.0
+    for i in range(levels.shape[0]):
+        for j in range(levels.shape[1]):
+            k = int(ticks[i, j])
+            if k == 0:
+                continue
+            u = float(levels[i, j])
+            new = []
+            for r in range(m):
+                acc = gammas[k, r] * u
+                for q in range(m):
+                    acc += phis[k, r, q] * x[q]
+                new.append(acc)
+            x = new
+        out = d * u
+        for r in range(m):
+            out += c[r] * x[r]
+        y.append(out)
+    return np.array(y), np.array(x)
+
+
+def test_zoh_segments_kernel_equals_slow_twin(rng):
+    model = rec._model(FILTERS["lc_critical"])
+    phis, gammas = rec._tables(model, 1 / (384e3 * 8), 8)
+    wave = _pulse_train(rng, 40, 8)
+    x = np.array([0.1, -0.2])
+    y = np.empty(40)
+    ref_y, ref_x = _slow_segments(wave.levels, wave.ticks, phis, gammas, model.c, model.d, x.copy())
+    _kernels.zoh_segments(wave.levels, wave.ticks, phis, gammas, model.c, model.d, x, y)
+    np.testing.assert_array_equal(y, ref_y)
+    np.testing.assert_array_equal(x, ref_x)
+
+
+def test_modal_kernel_equals_dense_twin(rng):
+    """The fast modal loop reproduces the dense segment loop (and so its slow twin) exactly."""
+    filt = analog_prototype("butterworth", order=5, cutoff_hz=50e3)
+    model = rec._model(filt)
+    assert model.modal and model.n_real == 1
+    phis, gammas = rec._tables(model, 1 / RATE, 1)
+    u = np.where(rng.random(500) < 0.5, -1.0, 1.0)
+    levels = u[:, None].copy()
+    ticks = np.ones((500, 1), np.int64)
+    ref_y, ref_x = _slow_segments(levels, ticks, phis, gammas, model.c, model.d, np.zeros(5))
+    x = np.zeros(5)
+    y = np.empty(500)
+    rec._run_modal(u, model, phis, gammas, x, y)
+    np.testing.assert_array_equal(y, ref_y)
+    np.testing.assert_array_equal(x, ref_x)
+
+
+# --- prototypes and the LC filter ------------------------------------------------------------
+
+
+@pytest.mark.parametrize("order", [1, 2, 3, 4, 5, 6])
+@pytest.mark.parametrize("kind", ["butterworth", "bessel", "chebyshev1"])
+def test_prototypes_match_scipy_designs(kind, order):
+    fc = 45e3
+    filt = analog_prototype(kind, order=order, cutoff_hz=fc, ripple_db=1.0)
+    wc = 2 * np.pi * fc
+    if kind == "butterworth":
+        b, a = ss.butter(order, wc, analog=True)
+    elif kind == "bessel":
+        b, a = ss.bessel(order, wc, analog=True, norm="mag")
+    else:
+        b, a = ss.cheby1(order, 1.0, wc, analog=True)
+    f = np.array([0.0, 1e3, 20e3, 45e3, 100e3, 1e6])
+    _, h_ref = ss.freqs(b, a, worN=2 * np.pi * f)
+    # scipy.signal.freqs of the same design: agreement to rounding in the conversions
+    np.testing.assert_allclose(filt.response(f), h_ref, rtol=1e-9, atol=1e-15)
+
+
+def test_butterworth_corner_and_q():
+    # Textbook Butterworth: |H(j wc)|^2 = 1/2 (-3.0103 dB); the 2nd-order Q is 1/sqrt(2).
+    filt = analog_prototype("butterworth", order=2, cutoff_hz=30e3)
+    assert abs(filt.response(30e3)) ** 2 == pytest.approx(0.5, rel=1e-12)
+    assert filt.q == pytest.approx(1 / math.sqrt(2), rel=1e-12)
+    assert filt.f0_hz == pytest.approx(30e3, rel=1e-12)
+
+
+def test_chebyshev_gain_at_corner_is_minus_ripple():
+    # Chebyshev I definition: the gain at the ripple-band edge is -ripple_db.
+    filt = analog_prototype("chebyshev1", order=3, cutoff_hz=40e3, ripple_db=0.5)
+    assert 20 * np.log10(abs(filt.response(40e3))) == pytest.approx(-0.5, abs=1e-9)
+
+
+@pytest.mark.parametrize(("ind", "cap", "r"), [(22e-6, 680e-9, 8.0), (10e-6, 1e-6, 4.0)])
+def test_lc_f0_and_q_match_textbook(ind, cap, r):
+    filt = lc_filter(ind, cap, r)
+    # textbook series-L, shunt-C with load R: f0 = 1 / (2 pi sqrt(LC)), Q = R sqrt(C / L)
+    assert filt.f0_hz == pytest.approx(1 / (2 * math.pi * math.sqrt(ind * cap)), rel=1e-12)
+    assert filt.q == pytest.approx(r * math.sqrt(cap / ind), rel=1e-12)
+    bridged = lc_filter(ind, cap, r, bridged=True)
+    assert bridged.f0_hz == pytest.approx(1 / (2 * math.pi * math.sqrt(ind * cap)), rel=1e-12)
+    assert bridged.q == pytest.approx((r / 2) * math.sqrt(cap / ind), rel=1e-12)
+
+
+@pytest.mark.parametrize("rs", [0.0, 0.15])
+def test_lc_response_matches_impedance_analysis(rs):
+    """Circuit theory with complex impedances, done independently of the state-space model."""
+    ind, cap, r = 15e-6, 1.5e-6, 6.0
+    f = np.array([10.0, 1e3, 20e3, 33e3, 100e3, 500e3])
+    s = 2j * np.pi * f
+    zl = s * ind + rs
+    zc = 1 / (s * cap)
+    # single-ended: voltage divider Z_L against (R || Z_C)
+    zp = r * zc / (r + zc)
+    np.testing.assert_allclose(
+        lc_filter(ind, cap, r, series_ohm=rs).response(f), zp / (zl + zp), rtol=1e-10
+    )
+    # bridged: nodal analysis of the whole network, +u/2 and -u/2 through Z_L into nodes a, b,
+    # each with Z_C to ground, R between a and b; H = (va - vb) / u.
+    h = []
+    for zl_k, zc_k in zip(zl, zc, strict=True):
+        g = np.array([[1 / zl_k + 1 / zc_k + 1 / r, -1 / r], [-1 / r, 1 / zl_k + 1 / zc_k + 1 / r]])
+        va, vb = np.linalg.solve(g, np.array([0.5 / zl_k, -0.5 / zl_k]))
+        h.append(va - vb)
+    bridged = lc_filter(ind, cap, r, series_ohm=rs, bridged=True)
+    np.testing.assert_allclose(bridged.response(f), h, rtol=1e-10)
+    # DC: resistive dividers R / (R + Rs) and R / (R + 2 Rs)
+    assert lc_filter(ind, cap, r, series_ohm=rs).dc_gain == pytest.approx(r / (r + rs))
+    assert bridged.dc_gain == pytest.approx(r / (r + 2 * rs))
+
+
+def test_pdm_of_a_constant_settles_to_the_constant():
+    """First principles: a first-order delta-sigma loop's bits average to its constant input,
+    and a unity-DC-gain low-pass passes the average. The bits come from the textbook loop
+    (integrate the error, take the sign), written out here."""
+    value = 0.3
+    n = 60000
+    bits = np.empty(n)
+    acc = 0.0
+    for i in range(n):
+        bits[i] = 1.0 if acc >= 0 else -1.0
+        acc += value - bits[i]
+    filt = analog_prototype("butterworth", order=3, cutoff_hz=30e3)
+    y, _ = filter_waveform(filt, pdm_waveform(bits, frame_rate_hz=RATE))
+    tail = y[-20000:]
+    # the mean over the tail: the loop's running-sum error is bounded by 2 (one LSB swing), so
+    # the bit mean over 20000 samples is within 2 / 20000 of the input; the filter's ripple
+    # averages out in the mean to the same order.
+    assert tail.mean() == pytest.approx(value, abs=5e-4)
+    # and the output stays near the constant (residual ripple of a 3rd-order 30 kHz filter
+    # driven at 3 MHz by +-1 bits: well below 0.05)
+    assert np.max(np.abs(tail - value)) < 0.05
+
+
+# --- semi-digital FIR -------------------------------------------------------------------------
+
+
+def test_semi_digital_fir_matches_lfilter_and_freqz(rng):
+    taps = np.array([0.1, 0.2, 0.4, 0.2, 0.1])
+    fir = semi_digital_fir(taps)
+    bits = np.where(rng.random(1000) < 0.5, -1.0, 1.0)
+    wave = pdm_waveform(bits, frame_rate_hz=RATE)
+    out, _ = fir.process(wave)
+    # scipy.signal.lfilter with the same taps (zero initial history)
+    np.testing.assert_allclose(out.levels[:, 0], ss.lfilter(taps, [1.0], bits), atol=1e-15)
+    f = np.array([0.0, 20e3, 400e3, 1e6])
+    _, h = ss.freqz(taps, worN=2 * np.pi * f / RATE)
+    np.testing.assert_allclose(fir.response(f, frame_rate_hz=RATE), h, rtol=1e-12)
+    # blocks
+    a, st = fir.process(pdm_waveform(bits[:333], frame_rate_hz=RATE))
+    b, _ = fir.process(pdm_waveform(bits[333:], frame_rate_hz=RATE), st)
+    assert np.array_equal(np.concatenate([a.levels, b.levels]), out.levels)
+
+
+def test_semi_digital_fir_rejects_pwm():
+    wave, _, _ = pwm_waveform(np.zeros(4), frame_rate_hz=384e3, levels=3)
+    with pytest.raises(ParameterError, match="ticks_per_frame"):
+        semi_digital_fir([1.0, 1.0]).process(wave)
+
+
+# --- reports ----------------------------------------------------------------------------------
+
+
+def test_out_of_band_ripple_of_known_tones():
+    rate = 384e3
+    t = np.arange(38400) / rate
+    amp = 0.01
+    y = 0.9 * np.sin(2 * np.pi * 1e3 * t) + amp * np.sin(2 * np.pi * 50e3 * t)
+    rep = out_of_band_ripple(y, rate_hz=rate, full_scale_volts=2.0)
+    # sine rms = peak / sqrt(2); the 1 kHz tone's leakage beyond 20 kHz through the Hann
+    # window is negligible (sidelobes fall 18 dB/octave)
+    assert rep.rms_volts == pytest.approx(amp / math.sqrt(2), rel=1e-3)
+    # AES17: 0 dBFS = rms of a full-scale sine (peak 2 V here)
+    assert rep.rms_dbfs == pytest.approx(20 * math.log10(amp / 2.0), abs=0.01)
+
+
+def test_filter_report_fields():
+    filt = lc_filter(22e-6, 680e-9, 8.0)
+    rep = filter_report(filt, freq_hz=[1e3, filt.f0_hz])
+    assert rep.f0_hz == filt.f0_hz and rep.q == filt.q
+    # at f0 a 2nd-order low-pass has |H| = Q (textbook)
+    assert 10 ** (rep.gain_db[1] / 20) == pytest.approx(filt.q, rel=1e-9)
+
+
+@pytest.mark.parametrize(
+    ("call", "name"),
+    [
+        (lambda: analog_prototype("elliptic", order=3, cutoff_hz=1e3), "kind"),
+        (lambda: analog_prototype("bessel", order=7, cutoff_hz=1e3), "order"),
+        (lambda: analog_prototype("bessel", order=2, cutoff_hz=-1.0), "cutoff_hz"),
+        (lambda: analog_prototype("chebyshev1", order=2, cutoff_hz=1e3, ripple_db=9), "ripple_db"),
+        (lambda: lc_filter(0.0, 1e-6, 8.0), "inductance_h"),
+        (lambda: lc_filter(1e-6, 1e-6, 8.0, series_ohm=-1), "series_ohm"),
+        (lambda: AnalogFilter(np.eye(2), [1.0], [1.0, 0.0], 0.0), "b.shape"),
+        (lambda: semi_digital_fir([1.0, -1.0]), "taps"),
+    ],
+)
+def test_bad_parameters_raise_one_line_errors(call, name):
+    with pytest.raises(ParameterError) as info:
+        call()
+    assert info.value.name == name
+    assert "\n" not in str(info.value)
