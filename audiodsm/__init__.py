@@ -12,9 +12,13 @@ Modulation (``audiodsm.stages.modulator``)
 Rate conversion (``audiodsm.stages.upsample``)
     design_upsampler, Upsampler, design_downsampler, Downsampler
 Output stages (``audiodsm.stages.output_stage``)
-    PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform
+    PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
+    level_codes, PackedBitsWriter, write_packed_bits, read_packed_bits,
+    CodeTextWriter, write_code_text, read_code_text
 Reconstruction (``audiodsm.stages.reconstruct``)
-    AnalogFilter, analog_prototype, lc_filter, filter_waveform
+    AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
+    filter_waveform, filter_waveform_ticks, FilterState, out_of_band_ripple, RippleReport,
+    filter_report, FilterReport
 Chain (``audiodsm.stages.chain``)
     Chain, run_chain
 Measurement (``audiodsm.measure``)
@@ -45,6 +49,31 @@ _PUBLIC = {
     "Modulator": "audiodsm.stages.modulator",
     "ModulatorState": "audiodsm.stages.modulator",
     "max_stable_amplitude": "audiodsm.stages.modulator",
+    "PulseWaveform": "audiodsm.stages.output_stage",
+    "pdm_waveform": "audiodsm.stages.output_stage",
+    "nrz_waveform": "audiodsm.stages.output_stage",
+    "pwm_waveform": "audiodsm.stages.output_stage",
+    "PwmStats": "audiodsm.stages.output_stage",
+    "PwmState": "audiodsm.stages.output_stage",
+    "level_codes": "audiodsm.stages.output_stage",
+    "PackedBitsWriter": "audiodsm.stages.output_stage",
+    "write_packed_bits": "audiodsm.stages.output_stage",
+    "read_packed_bits": "audiodsm.stages.output_stage",
+    "CodeTextWriter": "audiodsm.stages.output_stage",
+    "write_code_text": "audiodsm.stages.output_stage",
+    "read_code_text": "audiodsm.stages.output_stage",
+    "AnalogFilter": "audiodsm.stages.reconstruct",
+    "analog_prototype": "audiodsm.stages.reconstruct",
+    "lc_filter": "audiodsm.stages.reconstruct",
+    "SemiDigitalFir": "audiodsm.stages.reconstruct",
+    "semi_digital_fir": "audiodsm.stages.reconstruct",
+    "filter_waveform": "audiodsm.stages.reconstruct",
+    "filter_waveform_ticks": "audiodsm.stages.reconstruct",
+    "FilterState": "audiodsm.stages.reconstruct",
+    "out_of_band_ripple": "audiodsm.stages.reconstruct",
+    "RippleReport": "audiodsm.stages.reconstruct",
+    "filter_report": "audiodsm.stages.reconstruct",
+    "FilterReport": "audiodsm.stages.reconstruct",
     "ChainProfile": "audiodsm.profile",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
