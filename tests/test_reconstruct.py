@@ -181,17 +181,19 @@ def test_zoh_segments_kernel_equals_slow_twin(rng):
     np.testing.assert_array_equal(x, ref_x)
 
 
-def test_modal_kernel_equals_dense_twin(rng):
-    """The fast modal loop reproduces the dense segment loop (and so its slow twin) exactly."""
-    filt = analog_prototype("butterworth", order=5, cutoff_hz=50e3)
+@pytest.mark.parametrize("order", [2, 3, 5, 6])
+def test_modal_kernel_equals_dense_twin(order, rng):
+    """The fast modal loops (a generic one, and scalar ones for orders 2 and 3) reproduce the
+    dense segment loop's slow twin exactly."""
+    filt = analog_prototype("butterworth", order=order, cutoff_hz=50e3)
     model = rec._model(filt)
-    assert model.modal and model.n_real == 1
+    assert model.modal and model.n_real == order % 2
     phis, gammas = rec._tables(model, 1 / RATE, 1)
     u = np.where(rng.random(500) < 0.5, -1.0, 1.0)
     levels = u[:, None].copy()
     ticks = np.ones((500, 1), np.int64)
-    ref_y, ref_x = _slow_segments(levels, ticks, phis, gammas, model.c, model.d, np.zeros(5))
-    x = np.zeros(5)
+    ref_y, ref_x = _slow_segments(levels, ticks, phis, gammas, model.c, model.d, np.zeros(order))
+    x = np.zeros(order)
     y = np.empty(500)
     rec._run_modal(u, model, phis, gammas, x, y)
     np.testing.assert_array_equal(y, ref_y)

@@ -112,6 +112,64 @@ def zoh_modal_steps(u, real_phi, real_gamma, real_c, pair_phi, pair_gamma, pair_
         y[i] = out
 
 
+@njit(cache=True, nogil=True)
+def zoh_modal_steps_pair(u, pair_phi, pair_gamma, pair_c, d, xp, y):
+    """:func:`zoh_modal_steps` for exactly one complex pair and no real mode (2nd order).
+
+    The state lives in local scalars for the whole loop; same operation order, same numbers.
+    """
+    a = pair_phi[0, 0]
+    b = pair_phi[0, 1]
+    gre = pair_gamma[0, 0]
+    gim = pair_gamma[0, 1]
+    cre = pair_c[0, 0]
+    cim = pair_c[0, 1]
+    re = xp[0, 0]
+    im = xp[0, 1]
+    for i in range(u.shape[0]):
+        un = u[i]
+        nre = gre * un + a * re + -b * im
+        nim = gim * un + b * re + a * im
+        re = nre
+        im = nim
+        y[i] = d * un + cre * re + cim * im
+    xp[0, 0] = re
+    xp[0, 1] = im
+
+
+@njit(cache=True, nogil=True)
+def zoh_modal_steps_real_pair(
+    u, real_phi, real_gamma, real_c, pair_phi, pair_gamma, pair_c, d, xr, xp, y
+):
+    """:func:`zoh_modal_steps` for exactly one real mode and one pair (3rd order).
+
+    The state lives in local scalars for the whole loop; same operation order, same numbers.
+    """
+    p0 = real_phi[0]
+    g0 = real_gamma[0]
+    c0 = real_c[0]
+    a = pair_phi[0, 0]
+    b = pair_phi[0, 1]
+    gre = pair_gamma[0, 0]
+    gim = pair_gamma[0, 1]
+    cre = pair_c[0, 0]
+    cim = pair_c[0, 1]
+    x0 = xr[0]
+    re = xp[0, 0]
+    im = xp[0, 1]
+    for i in range(u.shape[0]):
+        un = u[i]
+        x0 = g0 * un + p0 * x0
+        nre = gre * un + a * re + -b * im
+        nim = gim * un + b * re + a * im
+        re = nre
+        im = nim
+        y[i] = d * un + c0 * x0 + cre * re + cim * im
+    xr[0] = x0
+    xp[0, 0] = re
+    xp[0, 1] = im
+
+
 
 # ---------------------------------------------------------------------------------------------
 # Measurement helpers (measure/*)

@@ -565,21 +565,22 @@ def _run_modal(u, model, phis, gammas, x, y):
     pair_phi = np.ascontiguousarray(np.stack([phi1[idx, idx], phi1[idx + 1, idx]], axis=1))
     pair_gamma = np.ascontiguousarray(gam1[nr:].reshape(-1, 2))
     pair_c = np.ascontiguousarray(model.c[nr:].reshape(-1, 2))
+    real_gamma = np.ascontiguousarray(gam1[:nr])
+    real_c = np.ascontiguousarray(model.c[:nr])
     xr = np.ascontiguousarray(x[:nr])
     xp = np.ascontiguousarray(x[nr:].reshape(-1, 2))
-    _kernels.zoh_modal_steps(
-        np.ascontiguousarray(u),
-        real_phi,
-        np.ascontiguousarray(gam1[:nr]),
-        np.ascontiguousarray(model.c[:nr]),
-        pair_phi,
-        pair_gamma,
-        pair_c,
-        model.d,
-        xr,
-        xp,
-        y,
-    )
+    u = np.ascontiguousarray(u)
+    n_pairs = xp.shape[0]
+    if nr == 0 and n_pairs == 1:
+        _kernels.zoh_modal_steps_pair(u, pair_phi, pair_gamma, pair_c, model.d, xp, y)
+    elif nr == 1 and n_pairs == 1:
+        _kernels.zoh_modal_steps_real_pair(
+            u, real_phi, real_gamma, real_c, pair_phi, pair_gamma, pair_c, model.d, xr, xp, y
+        )
+    else:
+        _kernels.zoh_modal_steps(
+            u, real_phi, real_gamma, real_c, pair_phi, pair_gamma, pair_c, model.d, xr, xp, y
+        )
     x[:nr] = xr
     x[nr:] = xp.ravel()
 
