@@ -25,6 +25,13 @@ Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
     fit_sine, thd_plus_noise, dynamic_range, idle_channel_noise, averaged_spectrum,
     find_idle_tones
+Weightings and band limits (``audiodsm.measure.weighting``, ``audiodsm.measure.bands``)
+    a_weighting_db, bs468_weighting_db, ccir_weighting_db, weighting_db, weighting_filter,
+    apply_weighting, band_limit_filter, band_limit, band_mask
+Test stimuli (``audiodsm.signals``)
+    sine, twin_tone_smpte, twin_tone_difference, twin_tone_amplitudes, dc_offset, silence,
+    multitone, schroeder_phases, stepped_sine, SteppedSine, tpdf_dither, quantize,
+    dbfs_to_amplitude, amplitude_to_dbfs, rms_to_dbfs, dbfs_to_rms
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
 Chain profiles (``audiodsm.profile``)
@@ -79,6 +86,31 @@ _PUBLIC = {
     "parse_profile": "audiodsm.profile",
     "profile_to_toml": "audiodsm.profile",
     "profile_digest": "audiodsm.profile",
+    "a_weighting_db": "audiodsm.measure.weighting",
+    "bs468_weighting_db": "audiodsm.measure.weighting",
+    "ccir_weighting_db": "audiodsm.measure.weighting",
+    "weighting_db": "audiodsm.measure.weighting",
+    "weighting_filter": "audiodsm.measure.weighting",
+    "apply_weighting": "audiodsm.measure.weighting",
+    "band_limit_filter": "audiodsm.measure.bands",
+    "band_limit": "audiodsm.measure.bands",
+    "band_mask": "audiodsm.measure.bands",
+    "sine": "audiodsm.signals",
+    "twin_tone_smpte": "audiodsm.signals",
+    "twin_tone_difference": "audiodsm.signals",
+    "twin_tone_amplitudes": "audiodsm.signals",
+    "dc_offset": "audiodsm.signals",
+    "silence": "audiodsm.signals",
+    "multitone": "audiodsm.signals",
+    "schroeder_phases": "audiodsm.signals",
+    "stepped_sine": "audiodsm.signals",
+    "SteppedSine": "audiodsm.signals",
+    "tpdf_dither": "audiodsm.signals",
+    "quantize": "audiodsm.signals",
+    "dbfs_to_amplitude": "audiodsm.signals",
+    "amplitude_to_dbfs": "audiodsm.signals",
+    "rms_to_dbfs": "audiodsm.signals",
+    "dbfs_to_rms": "audiodsm.signals",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]
