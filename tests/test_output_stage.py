@@ -69,7 +69,9 @@ def test_waveform_checks_its_shape():
 
 
 def _slow_pwm(codes, steps, *, mode, carrier, bridge, sub, dead, min_ticks, action, volts):
-    """Counter comparison tick by tick, written from the definitions in the docstring.
+    """Counter comparison tick by tick, written from the definitions in the docstring: the
+    slow twin of the compiled kernel ``_kernels.pwm_segments`` (and of the code-level
+    minimum-pulse rule around it).
 
     Trailing edge: a leg is high while the sawtooth counter (counter step = tick // sub) is
     below its code. Double-edge: an up-down counter; high while the tick is within code * sub

@@ -32,6 +32,130 @@ from numba import njit  # noqa: F401
 
 
 
+@njit(cache=True, nogil=True)
+def pwm_segments(
+    codes_a,
+    codes_b,
+    n_legs,
+    invert_b,
+    double_edge,
+    steps,
+    sub,
+    dead,
+    volts,
+    half_bridge,
+    run,
+    last,
+    levels,
+    ticks,
+    counts,
+):
+    """Build PWM frames: leg intervals from counter codes, dead time, merged segments.
+
+    Per frame and leg, the commanded high intervals (at most two) come from the code:
+    trailing edge ``[0, k sub)`` (or its complement ``[k sub, F)`` for an inverted leg);
+    double edge ``[c - k sub, c + k sub)`` about the centre ``c = steps sub`` (or the two
+    pieces outside it). Dead time: an interval's start moves to ``start + dead - elapsed``
+    (capped at its end), where ``elapsed`` is how long the command has already been high
+    (``run``, carried from the previous frame, for an interval starting at 0). The sorted
+    interval ends cut the frame into ``1 + 4 n_legs`` segments (zero-length ones included);
+    each segment's level is ``volts (2 A - 1)`` (half bridge) or ``volts (A - B)``.
+
+    ``codes_a``, ``codes_b``: (n,) int64; ``run``, ``last``: (n_legs,) int64 state, updated;
+    ``levels``: (n, S) float64 and ``ticks``: (n, S) int64 written; ``counts``: (3,) int64
+    incremented with [pulses lost to dead time, transitions of leg A, transitions of leg B].
+    """
+    n = codes_a.shape[0]
+    frame = steps * sub * (2 if double_edge else 1)
+    centre = steps * sub
+    n_cut = 2 + 4 * n_legs
+    st = np.empty((2, 2), np.int64)
+    en = np.empty((2, 2), np.int64)
+    cuts = np.empty(n_cut, np.int64)
+    for i in range(n):
+        for leg in range(n_legs):
+            k = codes_a[i] if leg == 0 else codes_b[i]
+            inv = leg == 1 and invert_b
+            s0 = frame
+            e0 = frame
+            s1 = frame
+            e1 = frame
+            if not double_edge:
+                if inv:
+                    s0 = k * sub
+                else:
+                    s0 = 0
+                    e0 = k * sub
+            else:
+                h = k * sub
+                if not inv:
+                    s0 = centre - h
+                    e0 = centre + h
+                elif h > 0:
+                    s0 = 0
+                    e0 = centre - h
+                    s1 = centre + h
+                else:
+                    s0 = 0
+            st[leg, 0] = s0
+            en[leg, 0] = e0
+            st[leg, 1] = s1
+            en[leg, 1] = e1
+            new_run = 0
+            for j in range(2):
+                s = st[leg, j]
+                e = en[leg, j]
+                if e > s:
+                    if e == frame:
+                        new_run = dead if s == 0 else min(frame - s, dead)
+                    elapsed = run[leg] if s == 0 else 0
+                    delay = dead - elapsed
+                    if delay > 0:
+                        s = min(e, s + delay)
+                        if s == e:
+                            counts[0] += 1
+                        st[leg, j] = s
+            run[leg] = new_run
+        # cut points, sorted (insertion sort of a handful of values)
+        cuts[0] = 0
+        c = 1
+        for leg in range(n_legs):
+            for j in range(2):
+                cuts[c] = st[leg, j]
+                cuts[c + 1] = en[leg, j]
+                c += 2
+        cuts[c] = frame
+        for a in range(1, n_cut):
+            v = cuts[a]
+            b = a - 1
+            while b >= 0 and cuts[b] > v:
+                cuts[b + 1] = cuts[b]
+                b -= 1
+            cuts[b + 1] = v
+        for j in range(n_cut - 1):
+            t = cuts[j + 1] - cuts[j]
+            mid2 = cuts[j] + cuts[j + 1]
+            high_a = 0
+            high_b = 0
+            for leg in range(n_legs):
+                hi = 0
+                for q in range(2):
+                    if 2 * st[leg, q] <= mid2 and mid2 < 2 * en[leg, q]:
+                        hi = 1
+                if leg == 0:
+                    high_a = hi
+                else:
+                    high_b = hi
+                if t > 0 and hi != last[leg]:
+                    counts[1 + leg] += 1
+                    last[leg] = hi
+            ticks[i, j] = t
+            if half_bridge:
+                levels[i, j] = volts * (2.0 * high_a - 1.0)
+            else:
+                levels[i, j] = volts * (float(high_a) - float(high_b))
+
+
 
 # ---------------------------------------------------------------------------------------------
 # Reconstruction filters (stages/reconstruct.py)

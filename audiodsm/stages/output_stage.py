@@ -31,6 +31,7 @@ from pathlib import Path
 import numpy as np
 
 from audiodsm.errors import AudioFileError, OutputError, ParameterError
+from audiodsm.stages import _kernels
 
 __all__ = [
     "PulseWaveform",
@@ -409,72 +410,6 @@ def _apply_min_pulse(codes, steps, unit, min_ticks, action):
     return out, 0, int(high_short.sum() + low_short.sum())
 
 
-def _leg_intervals(codes, steps, carrier, sub, invert):
-    """Commanded high intervals of one leg per frame: starts, ends, shape (n, 2), in ticks.
-
-    A leg is high for ``codes * unit`` ticks per frame; trailing-edge: from the frame start;
-    double-edge: centred in the frame. ``invert`` gives the complementary leg (high where the
-    un-inverted leg is low). Unused intervals are empty (start == end == frame length).
-    """
-    n = codes.shape[0]
-    if carrier == "trailing":
-        frame = steps * sub
-        width = codes * sub
-        first_lo, first_hi = np.zeros(n, np.int64), width
-        second_lo = second_hi = np.full(n, frame, np.int64)
-        if invert:
-            first_lo, first_hi = width, np.full(n, frame, np.int64)
-    else:
-        frame = 2 * steps * sub
-        centre = steps * sub
-        half = codes * sub
-        first_lo, first_hi = centre - half, centre + half
-        second_lo = second_hi = np.full(n, frame, np.int64)
-        if invert:
-            # high before and after the centred gap; a zero-width gap is one whole-frame pulse
-            gap = half > 0
-            first_lo, first_hi = np.zeros(n, np.int64), np.where(gap, centre - half, frame)
-            second_lo = np.where(gap, centre + half, frame)
-            second_hi = np.full(n, frame, np.int64)
-    starts = np.stack([first_lo, second_lo], axis=1).astype(np.int64)
-    ends = np.stack([first_hi, second_hi], axis=1).astype(np.int64)
-    return starts, ends, frame
-
-
-def _apply_dead_time(starts, ends, frame, dead, run_in):
-    """Delay every commanded rising edge by ``dead`` ticks.
-
-    The leg rises only after its command has been high for ``dead`` ticks; shorter pulses
-    vanish. Returns effective starts, the commanded high-run at each frame end (capped at ``dead``),
-    and the number of nonzero pulses swallowed.
-    """
-    nonempty = ends > starts
-    ends_high = np.any(nonempty & (ends == frame), axis=1)
-    # commanded high run at the end of each frame: from the start of the interval reaching
-    # the frame end; an interval covering the whole frame has run >= frame >= dead.
-    last_start = np.where(nonempty & (ends == frame), starts, frame).min(axis=1)
-    run_end = np.where(ends_high, np.minimum(frame - last_start, dead), 0)
-    run_end = np.where(ends_high & (last_start == 0), dead, run_end)
-    if dead == 0:
-        return starts, run_end, 0
-    run_prev = np.empty_like(run_end)
-    run_prev[0] = run_in
-    run_prev[1:] = run_end[:-1]
-    elapsed = np.where(starts == 0, run_prev[:, None], 0)
-    eff = np.minimum(ends, starts + np.maximum(dead - elapsed, 0))
-    eff = np.where(nonempty, eff, starts)
-    lost = int(np.sum(nonempty & (eff == ends)))
-    return eff, run_end, lost
-
-
-def _leg_level_at(mid, starts, ends):
-    """True where the leg is high at tick position ``mid`` (n, n_segments)."""
-    high = np.zeros(mid.shape, dtype=bool)
-    for j in range(starts.shape[1]):
-        high |= (starts[:, j : j + 1] <= mid) & (mid < ends[:, j : j + 1])
-    return high
-
-
 def pwm_waveform(
     y,
     *,
@@ -588,50 +523,38 @@ def pwm_waveform(
         raise ParameterError("state", type(state).__name__, f"a PwmState for {n_legs} leg(s)")
 
     codes, dropped, stretched = _apply_min_pulse(codes, steps, unit, min_ticks, action)
-    # leg commands: A always follows the codes; B is A's complement (two-level full bridge)
-    # or runs on the mirrored code N - k (three-level)
-    legs = [(codes, False)]
-    if n_legs == 2:
-        legs.append((codes, True) if mode == "two-level" else (steps - codes, False))
-
-    starts, ends, runs, lost = [], [], [], 0
-    for i, (leg_codes, invert) in enumerate(legs):
-        s, e, frame_len = _leg_intervals(leg_codes, steps, carrier, sub, invert)
-        assert frame_len == frame
-        if arr.size:
-            s, run_end, lost_i = _apply_dead_time(s, e, frame, dead, state.high_run[i])
-            runs.append(int(run_end[-1]))
-            lost += lost_i
-        else:
-            runs.append(state.high_run[i])
-        starts.append(s)
-        ends.append(e)
-
+    # leg commands: A follows the codes; B is A's complement (two-level full bridge) or runs
+    # on the mirrored code N - k (three-level)
     n = arr.size
-    cuts = np.concatenate(
-        [np.zeros((n, 1), np.int64), *starts, *ends, np.full((n, 1), frame, np.int64)], axis=1
+    seg = 1 + 4 * n_legs
+    out = np.empty((n, seg))
+    ticks = np.empty((n, seg), dtype=np.int64)
+    run = np.array(state.high_run, dtype=np.int64)
+    last = np.array(state.last_level, dtype=np.int64)
+    counts = np.zeros(3, dtype=np.int64)
+    codes_b = codes if n_legs == 1 or mode == "two-level" else steps - codes
+    _kernels.pwm_segments(
+        np.ascontiguousarray(codes, dtype=np.int64),
+        np.ascontiguousarray(codes_b),
+        n_legs,
+        mode == "two-level",  # leg B is leg A's complement in a two-level full bridge
+        carrier == "double-edge",
+        steps,
+        sub,
+        dead,
+        volts,
+        n_legs == 1,
+        run,
+        last,
+        out,
+        ticks,
+        counts,
     )
-    cuts.sort(axis=1)
-    ticks = np.diff(cuts, axis=1)
-    mid2 = cuts[:, :-1] + cuts[:, 1:]  # twice the segment midpoints, integer
-    highs = [_leg_level_at(mid2, 2 * s, 2 * e) for s, e in zip(starts, ends, strict=True)]
-    if n_legs == 1:
-        out = volts * (2.0 * highs[0] - 1.0)
-    else:
-        out = volts * (highs[0].astype(np.float64) - highs[1])
-    waveform = PulseWaveform(out, ticks, frame, rate)
-
-    transitions, last = [], []
-    for i, high in enumerate(highs):
-        seq = high[ticks > 0]  # row-major: time order
-        if seq.size:
-            changes = int(np.count_nonzero(seq[1:] != seq[:-1]))
-            changes += int(seq[0] != state.last_level[i])
-            last.append(bool(seq[-1]))
-        else:
-            changes = 0
-            last.append(state.last_level[i])
-        transitions.append(changes)
+    waveform = PulseWaveform._trusted(out, ticks, frame, rate)
+    lost = int(counts[0])
+    transitions = [int(c) for c in counts[1 : 1 + n_legs]]
+    runs = [int(r) for r in run]
+    last = [bool(v) for v in last]
     seconds = n / rate
     per_s = tuple((t / seconds) if n else 0.0 for t in transitions)
     stats = PwmStats(n, dropped, stretched, lost, tuple(transitions), per_s)
