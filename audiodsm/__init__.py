@@ -10,7 +10,8 @@ Loop realization (``audiodsm.design.realize``)
 Modulation (``audiodsm.stages.modulator``)
     Modulator, ModulatorState, max_stable_amplitude
 Rate conversion (``audiodsm.stages.upsample``)
-    design_upsampler, Upsampler, design_downsampler, Downsampler
+    design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
+    design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
 Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
     level_codes, PackedBitsWriter, write_packed_bits, read_packed_bits,
@@ -111,6 +112,14 @@ _PUBLIC = {
     "amplitude_to_dbfs": "audiodsm.signals",
     "rms_to_dbfs": "audiodsm.signals",
     "dbfs_to_rms": "audiodsm.signals",
+    "design_upsampler": "audiodsm.stages.upsample",
+    "UpsamplerDesign": "audiodsm.stages.upsample",
+    "Upsampler": "audiodsm.stages.upsample",
+    "UpsamplerState": "audiodsm.stages.upsample",
+    "design_downsampler": "audiodsm.stages.upsample",
+    "DownsamplerDesign": "audiodsm.stages.upsample",
+    "Downsampler": "audiodsm.stages.upsample",
+    "DownsamplerState": "audiodsm.stages.upsample",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

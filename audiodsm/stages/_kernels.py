@@ -17,13 +17,156 @@ from numba import njit  # noqa: F401
 # ---------------------------------------------------------------------------------------------
 
 
-
-
 # ---------------------------------------------------------------------------------------------
 # Rate conversion (stages/upsample.py)
 # ---------------------------------------------------------------------------------------------
+#
+# Layout: every signal here is (channels, samples), C-contiguous float64, with the stage's
+# history already prepended by the wrapper. Every output is summed tap by tap in a fixed order
+# that does not depend on where a block starts, so block-wise and one-shot runs agree bit for
+# bit. The loops over output samples are innermost, over slices (which spares the
+# negative-index checks), so that they vectorise without reordering any sum.
+
+_RATE_CHUNK = 512
 
 
+@njit(cache=True, nogil=True)
+def interpolate_halfband(buf, dense, out):
+    """Interpolate by 2 with a half-band FIR (polyphase; zeros are never multiplied).
+
+    ``dense`` holds the 2K taps of the dense phase (symmetric, ``dense[m] == dense[2K-1-m]``),
+    scaled for an interpolation gain of 2; the other phase is the centre tap, a pure delay of
+    K - 1 input samples. ``buf`` is (channels, 2K - 1 + n): the last 2K - 1 input samples of
+    the previous block, then the new block. ``out`` is (channels, 2n):
+    ``out[c, 2i] = sum_m dense[m] * (buf[c, i+2K-1-m] + buf[c, i+m])`` for m < K, summed in
+    increasing m, and ``out[c, 2i+1] = buf[c, i+K]``.
+    """
+    n_ch = buf.shape[0]
+    two_k = dense.shape[0]
+    k = two_k // 2
+    n = out.shape[1] // 2
+    acc = np.empty(_RATE_CHUNK)
+    for c in range(n_ch):
+        row = buf[c]
+        for start in range(0, n, _RATE_CHUNK):
+            length = min(start + _RATE_CHUNK, n) - start
+            acc[:length] = 0.0
+            for m in range(k):
+                coef = dense[m]
+                a = row[start + two_k - 1 - m : start + two_k - 1 - m + length]
+                b = row[start + m : start + m + length]
+                for i in range(length):
+                    acc[i] += coef * (a[i] + b[i])
+            even = out[c, 2 * start : 2 * (start + length) : 2]
+            odd = out[c, 2 * start + 1 : 2 * (start + length) : 2]
+            centre = row[start + k : start + k + length]
+            for i in range(length):
+                even[i] = acc[i]
+                odd[i] = centre[i]
+
+
+@njit(cache=True, nogil=True)
+def interpolate_polyphase(buf, phases, lengths, out):
+    """Interpolate by R with a general FIR split into R phases (zeros never multiplied).
+
+    ``phases`` is (R, M): ``phases[p, m]`` is tap ``p + m R`` of the interpolation filter
+    (gain R); only the first ``lengths[p]`` taps of phase p are used. ``buf`` is
+    (channels, M - 1 + n) with the previous block's last M - 1 samples first; ``out`` is
+    (channels, R n) with ``out[c, R i + p] = sum_m phases[p, m] * buf[c, i + M - 1 - m]``,
+    summed in increasing m.
+    """
+    n_ch = buf.shape[0]
+    ratio = phases.shape[0]
+    taps = phases.shape[1]
+    n = out.shape[1] // ratio
+    acc = np.empty(_RATE_CHUNK)
+    for c in range(n_ch):
+        row = buf[c]
+        for start in range(0, n, _RATE_CHUNK):
+            length = min(start + _RATE_CHUNK, n) - start
+            for p in range(ratio):
+                acc[:length] = 0.0
+                for m in range(lengths[p]):
+                    coef = phases[p, m]
+                    seg = row[start + taps - 1 - m : start + taps - 1 - m + length]
+                    for i in range(length):
+                        acc[i] += coef * seg[i]
+                dst = out[c, ratio * start + p : ratio * (start + length) : ratio]
+                for i in range(length):
+                    dst[i] = acc[i]
+
+
+@njit(cache=True, nogil=True)
+def decimate_halfband(buf, half, out):
+    """Decimate by 2 with a half-band FIR of length N = 4K - 1 (zeros never multiplied).
+
+    ``half`` holds the K distinct outer taps (``h[2m]`` for m < K, the filter having unit DC
+    gain); the centre tap is 1/2. ``buf`` is (channels, L), any strides, whose first sample is
+    the oldest one the first output needs; output i uses the newest sample ``t = N - 1 + 2 i``:
+    ``out[c, i] = sum_m half[m] * (buf[c, t-2m] + buf[c, t-2(2K-1-m)]) + 0.5 * buf[c, t-2K+1]``,
+    summed in increasing m, the centre term last. Each channel is first split into its even
+    and odd samples (the paired taps all fall on the parity of t, the centre on the other),
+    so the inner loops run over contiguous memory.
+    """
+    n_ch = buf.shape[0]
+    k = half.shape[0]
+    n = out.shape[1]
+    n_even = (buf.shape[1] + 1) // 2
+    even = np.empty(n_even)
+    odd = np.empty(n_even)
+    acc = np.empty(_RATE_CHUNK)
+    for c in range(n_ch):
+        row = buf[c]
+        src_even = row[0::2]
+        src_odd = row[1::2]
+        for j in range(src_even.shape[0]):
+            even[j] = src_even[j]
+        for j in range(src_odd.shape[0]):
+            odd[j] = src_odd[j]
+        # t = 4K - 2 + 2i is even: t - 2m -> even[2K-1+i-m], t - 2(2K-1-m) -> even[i+m],
+        # t - (2K-1) -> odd[K-1+i]
+        for start in range(0, n, _RATE_CHUNK):
+            length = min(start + _RATE_CHUNK, n) - start
+            acc[:length] = 0.0
+            for m in range(k):
+                coef = half[m]
+                a = even[start + 2 * k - 1 - m : start + 2 * k - 1 - m + length]
+                b = even[start + m : start + m + length]
+                for i in range(length):
+                    acc[i] += coef * (a[i] + b[i])
+            centre = odd[start + k - 1 : start + k - 1 + length]
+            dst = out[c, start : start + length]
+            for i in range(length):
+                dst[i] = acc[i] + 0.5 * centre[i]
+
+
+@njit(cache=True, nogil=True)
+def resample_rational(buf, phases, lengths, first_time, step, out):
+    """Resample by L/M with a polyphase FIR (zeros never multiplied).
+
+    ``phases`` is (L, P): ``phases[p, i]`` is tap ``p + i L`` of the filter designed at L times
+    the input rate (gain L); only the first ``lengths[p]`` taps of phase p are used. ``buf``
+    is (channels, P - 1 + n): the previous block's last P - 1 input samples, then the block.
+    Output j sits at time ``first_time + j * step`` in units of 1/L input sample from the
+    block's first sample; with ``q, p = divmod(time, L)``:
+    ``out[c, j] = sum_i phases[p, i] * buf[c, q + P - 1 - i]``, summed in increasing i.
+    """
+    n_ch = buf.shape[0]
+    up = phases.shape[0]
+    taps = phases.shape[1]
+    n_out = out.shape[1]
+    for c in range(n_ch):
+        row = buf[c]
+        t = first_time
+        for j in range(n_out):
+            q = t // up
+            p = t - q * up
+            base = q + taps - 1
+            acc = 0.0
+            for i in range(lengths[p]):
+                acc += phases[p, i] * row[base - i]
+            out[c, j] = acc
+            t += step
 
 
 # ---------------------------------------------------------------------------------------------
