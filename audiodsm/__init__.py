@@ -18,8 +18,8 @@ Output stages (``audiodsm.stages.output_stage``)
     CodeTextWriter, write_code_text, read_code_text
 Reconstruction (``audiodsm.stages.reconstruct``)
     AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
-    filter_waveform, filter_waveform_ticks, FilterState, out_of_band_ripple, RippleReport,
-    filter_report, FilterReport
+    filter_waveform, filter_waveform_ticks, FilterState, out_of_band_ripple, waveform_ripple,
+    RippleReport, filter_report, FilterReport
 Chain (``audiodsm.stages.chain``)
     Chain, run_chain
 Measurement (``audiodsm.measure``)
@@ -79,6 +79,7 @@ _PUBLIC = {
     "filter_waveform_ticks": "audiodsm.stages.reconstruct",
     "FilterState": "audiodsm.stages.reconstruct",
     "out_of_band_ripple": "audiodsm.stages.reconstruct",
+    "waveform_ripple": "audiodsm.stages.reconstruct",
     "RippleReport": "audiodsm.stages.reconstruct",
     "filter_report": "audiodsm.stages.reconstruct",
     "FilterReport": "audiodsm.stages.reconstruct",

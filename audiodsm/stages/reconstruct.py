@@ -37,6 +37,7 @@ __all__ = [
     "filter_waveform_ticks",
     "RippleReport",
     "out_of_band_ripple",
+    "waveform_ripple",
     "FilterReport",
     "filter_report",
     "PROTOTYPE_KINDS",
@@ -671,6 +672,57 @@ def out_of_band_ripple(
     ref = float(full_scale_volts) / math.sqrt(2.0)
     dbfs = 20 * math.log10(rms / ref) if rms > 0 else -math.inf
     return RippleReport(float(above_hz), rms, dbfs)
+
+
+def waveform_ripple(
+    filt: AnalogFilter,
+    waveform: PulseWaveform,
+    *,
+    above_hz: float = 20000.0,
+    full_scale_volts: float = 1.0,
+    skip_frames: int | None = None,
+    state: FilterState | None = None,
+) -> RippleReport:
+    """Out-of-band ripple left at the filter output by a waveform, seen at every tick.
+
+    Sampling the output only at frame ends hides the PWM carrier (it aliases to DC). This
+    runs :func:`filter_waveform_ticks` (output at every tick) and measures with
+    :func:`out_of_band_ripple`. Meant for short stretches: memory grows with
+    ``n_frames * ticks_per_frame``.
+
+    Parameters
+    ----------
+    filt : AnalogFilter
+    waveform : PulseWaveform
+    above_hz, full_scale_volts : float
+        As in :func:`out_of_band_ripple`.
+    skip_frames : int or None
+        Frames left out at the start while the filter settles from ``state``. None: 20 time
+        constants of the slowest pole, at most half the waveform.
+    state : FilterState or None
+        Starting state (None: at rest).
+
+    Returns
+    -------
+    RippleReport
+    """
+    if not isinstance(waveform, PulseWaveform):
+        raise ParameterError("waveform", type(waveform).__name__, "a PulseWaveform")
+    if skip_frames is None:
+        slowest = float(np.min(np.abs(filt.poles.real)))
+        skip = math.ceil(20.0 / max(slowest, 1e-300) * waveform.frame_rate_hz)
+        skip_frames = min(skip, waveform.n_frames // 2)
+    if isinstance(skip_frames, bool) or not isinstance(skip_frames, int | np.integer):
+        raise ParameterError("skip_frames", skip_frames, "None or an integer >= 0")
+    if not 0 <= skip_frames <= waveform.n_frames - 16:
+        raise ParameterError(
+            "skip_frames", skip_frames, f"an integer from 0 to {waveform.n_frames - 16}"
+        )
+    y, _ = filter_waveform_ticks(filt, waveform, state)
+    y = y[skip_frames * waveform.ticks_per_frame :]
+    return out_of_band_ripple(
+        y, rate_hz=waveform.tick_rate_hz, above_hz=above_hz, full_scale_volts=full_scale_volts
+    )
 
 
 @dataclass(frozen=True)
