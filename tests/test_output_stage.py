@@ -349,6 +349,15 @@ def test_reader_rejects_truncated_files(tmp_path):
     path.write_bytes(path.read_bytes()[:-3])
     with pytest.raises(AudioFileError, match="bytes"):
         read_packed_bits(path)
+    side = tmp_path / "t.bits.json"
+    info = json.loads(side.read_text())
+    del info["channels"]
+    side.write_text(json.dumps(info))
+    with pytest.raises(AudioFileError, match="channels"):
+        read_packed_bits(path)
+    side.write_text("{not json")
+    with pytest.raises(AudioFileError, match="JSON"):
+        read_packed_bits(path)
 
 
 def test_code_text_round_trip_and_word_format(tmp_path, rng):

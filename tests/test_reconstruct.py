@@ -123,6 +123,22 @@ def test_blockwise_equals_one_shot(name, rng):
     assert np.array_equal(np.concatenate([ya, yb]), whole)
 
 
+def test_fine_tick_grids_tabulate_only_the_lengths_present(monkeypatch, rng):
+    """Above the full-table limit the matrices come per block for the lengths present; the
+    numbers are the same (each expm is computed on its own matrix either way)."""
+    filt = FILTERS["butter3"]
+    wave = _pulse_train(rng, 300, 64)
+    full, _ = filter_waveform(filt, wave)
+    monkeypatch.setattr(rec, "_FULL_TABLE_MAX", 8)
+    sparse, _ = filter_waveform(filt, wave)
+    assert np.array_equal(full, sparse)
+    half = PulseWaveform(wave.levels[:150], wave.ticks[:150], 64, wave.frame_rate_hz)
+    rest = PulseWaveform(wave.levels[150:], wave.ticks[150:], 64, wave.frame_rate_hz)
+    ya, st = filter_waveform(filt, half)
+    yb, _ = filter_waveform(filt, rest, st)
+    assert np.array_equal(np.concatenate([ya, yb]), full)
+
+
 def test_state_from_another_filter_is_refused(rng):
     wave = pdm_waveform(np.ones(10), frame_rate_hz=RATE)
     _, state = filter_waveform(FILTERS["butter3"], wave)

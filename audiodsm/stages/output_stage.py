@@ -771,8 +771,13 @@ def read_packed_bits(path) -> tuple[np.ndarray, dict]:
         raise AudioFileError(
             str(side), f"layout {info.get('layout')!r}; expected {PACKED_BITS_LAYOUT!r}"
         )
-    channels = int(info["channels"])
-    samples = int(info["samples_per_channel"])
+    try:
+        channels = int(info["channels"])
+        samples = int(info["samples_per_channel"])
+    except (KeyError, TypeError, ValueError):
+        raise AudioFileError(
+            str(side), "needs integer 'channels' and 'samples_per_channel' entries"
+        ) from None
     need = samples * channels
     bits = np.unpackbits(raw, bitorder="big")
     if bits.size < need or bits.size - need >= 8:

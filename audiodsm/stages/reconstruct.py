@@ -433,32 +433,40 @@ def _build_model(filt: AnalogFilter, key: bytes) -> _Model:
     return _Model(am, bm, cm, d, True, len(reals), key, t)
 
 
-def _tables(model: _Model, dt: float, frame_ticks: int) -> tuple[np.ndarray, np.ndarray]:
-    """``Phi(k)``, ``Gamma(k)`` for k = 0..frame_ticks (ZOH-exact, via the augmented expm)."""
-    tkey = (model.key, dt, frame_ticks)
-    hit = _TABLES.get(tkey)
-    if hit is not None:
-        return hit
+#: Largest ``ticks_per_frame`` for which all segment lengths 0..F are tabulated and cached;
+#: finer grids get the matrices of the lengths present in each block only.
+_FULL_TABLE_MAX = 4096
+
+
+def _expm_tables(model: _Model, dt: float, lengths: np.ndarray):
+    """``Phi(k)``, ``Gamma(k)`` for the given segment lengths (ZOH-exact, augmented expm)."""
     m = model.a.shape[0]
     aug = np.zeros((m + 1, m + 1))
     aug[:m, :m] = model.a
     aug[:m, m] = model.b
-    ks = np.arange(frame_ticks + 1, dtype=np.float64)
-    big = scipy.linalg.expm(aug[None, :, :] * (ks * dt)[:, None, None])
+    big = scipy.linalg.expm(aug[None, :, :] * (lengths.astype(np.float64) * dt)[:, None, None])
     phis = np.ascontiguousarray(big[:, :m, :m])
     gammas = np.ascontiguousarray(big[:, :m, m])
     if model.modal:  # enforce the exact block structure (kernels rely on it)
-        nr = model.n_real
-        mask = np.abs(model.a) > 0
-        mask |= np.eye(m, dtype=bool)
+        mask = (np.abs(model.a) > 0) | np.eye(m, dtype=bool)
         phis[:, ~mask] = 0.0
-        for r in range(nr, m, 2):
+        for r in range(model.n_real, m, 2):
             phis[:, r + 1, r + 1] = phis[:, r, r]
             phis[:, r, r + 1] = -phis[:, r + 1, r]
+    return phis, gammas
+
+
+def _tables(model: _Model, dt: float, frame_ticks: int) -> tuple[np.ndarray, np.ndarray]:
+    """``Phi(k)``, ``Gamma(k)`` for every k = 0..frame_ticks, cached."""
+    tkey = (model.key, dt, frame_ticks)
+    hit = _TABLES.get(tkey)
+    if hit is not None:
+        return hit
+    tables = _expm_tables(model, dt, np.arange(frame_ticks + 1))
     if len(_TABLES) > 64:
         _TABLES.clear()
-    _TABLES[tkey] = (phis, gammas)
-    return phis, gammas
+    _TABLES[tkey] = tables
+    return tables
 
 
 @dataclass(frozen=True, eq=False)
@@ -528,7 +536,8 @@ def filter_waveform(
     For a segment of ``k`` ticks (``dt = 1 / (frame_rate_hz * ticks_per_frame)``) holding
     ``u``: ``x <- Phi(k) x + Gamma(k) u`` with ``Phi(k) = expm(A k dt)`` and
     ``Gamma(k) = int_0^{k dt} expm(A s) ds B``, both read from one matrix exponential of the
-    augmented matrix ``[[A, B], [0, 0]] k dt`` and precomputed for k = 0..ticks_per_frame.
+    augmented matrix ``[[A, B], [0, 0]] k dt`` and precomputed for k = 0..ticks_per_frame
+    (above 4096 ticks a frame: for the lengths present in each block).
     One-segment waveforms (PDM, NRZ) take a faster loop over the modal form.
 
     References
@@ -547,13 +556,19 @@ def filter_waveform(
     x = _check_state(state, model, m)
     tpf = waveform.ticks_per_frame
     dt = 1.0 / (waveform.frame_rate_hz * tpf)
-    phis, gammas = _tables(model, dt, tpf)
     n = waveform.n_frames
     y = np.empty(n)
+    if tpf <= _FULL_TABLE_MAX:
+        phis, gammas = _tables(model, dt, tpf)
+        index = waveform.ticks
+    else:  # tabulate only the lengths present; index 0 stays the empty segment
+        lengths = np.unique(np.concatenate([[0], waveform.ticks.ravel()]))
+        phis, gammas = _expm_tables(model, dt, lengths)
+        index = np.searchsorted(lengths, waveform.ticks)
     if waveform.n_segments == 1 and tpf == 1 and model.modal:
         _run_modal(waveform.levels[:, 0], model, phis, gammas, x, y)
     else:
-        _kernels.zoh_segments(waveform.levels, waveform.ticks, phis, gammas, model.c, model.d, x, y)
+        _kernels.zoh_segments(waveform.levels, index, phis, gammas, model.c, model.d, x, y)
     return y, _new_state(x, model)
 
 
