@@ -367,9 +367,11 @@ def test_level_linearity_of_a_power_law():
     r = level_linearity(caps, rate_hz=RATE, levels_dbfs=levels)
     for lv, dev in zip(levels, r.deviation_db, strict=True):
         assert dev == pytest.approx(eps * lv, abs=0.01)
-    # a plain gain is perfectly linear
-    r = level_linearity([0.5 * c for c in caps[:1]] * 1, rate_hz=RATE, levels_dbfs=levels[:1])
-    assert r.deviation_db == (0.0,)
+    # a plain gain is linear: no deviation at any level (to rounding), reference -20 dBFS
+    lin = [0.5 * _cos(997.0, int(RATE), 10 ** (lv / 20), 0.1) for lv in levels]
+    r = level_linearity(lin, rate_hz=RATE, levels_dbfs=levels, reference_dbfs=-20.0)
+    assert r.max_deviation_db < 1e-6
+    assert r.measured_dbfs[1] == pytest.approx(-20.0 + 20 * math.log10(0.5), abs=0.01)
 
 
 def test_frequency_response_of_a_known_filter():

@@ -920,10 +920,11 @@ class DynamicRange:
     Attributes
     ----------
     dynamic_range_db : float
-        ``-noise_dbfs``: full scale over the band-limited, weighted noise-and-distortion
-        measured in the presence of the -60 dBFS tone. It equals ``-(THD+N ratio) - 60 dB``
-        shifted by the tone's departure from -60.0 dBFS, i.e. exactly the AES17 value
-        ``-(THD+N) + 60`` when the tone is at -60.00 dBFS.
+        ``-noise_dbfs``: full scale over the band-limited, weighted noise and distortion
+        measured in the presence of the -60 dBFS tone. The AES17 formula
+        ``-(THD+N ratio) + 60 dB`` gives the same value when the band-limited total reads
+        exactly -60.00 dBFS; in general the two differ by ``total + 60 dB`` (at most about
+        1 dB, since the tone must be within ±1 dB of -60 dBFS).
     weighting : str
     tone_dbfs : float
         Fitted level of the tone.
