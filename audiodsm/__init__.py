@@ -24,7 +24,6 @@ Chain (``audiodsm.stages.chain``)
     Chain, run_chain
 Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
-    fit_sine, thd_plus_noise, dynamic_range, idle_channel_noise, averaged_spectrum,
     find_idle_tones
 Weightings and band limits (``audiodsm.measure.weighting``, ``audiodsm.measure.bands``)
     a_weighting_db, bs468_weighting_db, ccir_weighting_db, weighting_db, weighting_filter,
@@ -33,6 +32,13 @@ Test stimuli (``audiodsm.signals``)
     sine, twin_tone_smpte, twin_tone_difference, twin_tone_amplitudes, dc_offset, silence,
     multitone, schroeder_phases, stepped_sine, SteppedSine, tpdf_dither, quantize,
     dbfs_to_amplitude, amplitude_to_dbfs, rms_to_dbfs, dbfs_to_rms
+Levels and spectra (``audiodsm.measure.spectrum``)
+    level_dbfs, power_to_dbfs, averaged_spectrum, accumulate_spectrum, Spectrum
+AES17-practice metrics (``audiodsm.measure.aes17``)
+    fit_sine, thd_plus_noise, thd, sinad_db, enob_bits, dynamic_range, idle_channel_noise,
+    start_residual_meter, update_residual_meter, read_residual_meter,
+    level_linearity, frequency_response, stepped_frequency_response,
+    imd_smpte, imd_difference_frequency, out_of_band_power_dbfs, noise_modulation
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
 Chain profiles (``audiodsm.profile``)
@@ -121,6 +127,29 @@ _PUBLIC = {
     "DownsamplerDesign": "audiodsm.stages.upsample",
     "Downsampler": "audiodsm.stages.upsample",
     "DownsamplerState": "audiodsm.stages.upsample",
+    "level_dbfs": "audiodsm.measure.spectrum",
+    "power_to_dbfs": "audiodsm.measure.spectrum",
+    "averaged_spectrum": "audiodsm.measure.spectrum",
+    "accumulate_spectrum": "audiodsm.measure.spectrum",
+    "Spectrum": "audiodsm.measure.spectrum",
+    "fit_sine": "audiodsm.measure.aes17",
+    "SineFit": "audiodsm.measure.aes17",
+    "thd_plus_noise": "audiodsm.measure.aes17",
+    "thd": "audiodsm.measure.aes17",
+    "sinad_db": "audiodsm.measure.aes17",
+    "enob_bits": "audiodsm.measure.aes17",
+    "dynamic_range": "audiodsm.measure.aes17",
+    "idle_channel_noise": "audiodsm.measure.aes17",
+    "start_residual_meter": "audiodsm.measure.aes17",
+    "update_residual_meter": "audiodsm.measure.aes17",
+    "read_residual_meter": "audiodsm.measure.aes17",
+    "level_linearity": "audiodsm.measure.aes17",
+    "frequency_response": "audiodsm.measure.aes17",
+    "stepped_frequency_response": "audiodsm.measure.aes17",
+    "imd_smpte": "audiodsm.measure.aes17",
+    "imd_difference_frequency": "audiodsm.measure.aes17",
+    "out_of_band_power_dbfs": "audiodsm.measure.aes17",
+    "noise_modulation": "audiodsm.measure.aes17",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]
