@@ -452,6 +452,8 @@ def test_bad_inputs_raise_parameter_errors():
         fit_sine(x[:5], rate_hz=RATE)
     with pytest.raises(ParameterError, match="x="):
         thd_plus_noise(x[:1000], rate_hz=RATE, frequency_hz=997.0)  # all within settling
+    with pytest.raises(ParameterError, match="silent"):
+        thd_plus_noise(np.zeros(48000), rate_hz=RATE)
     with pytest.raises(ParameterError, match="harmonics="):
         thd(x, rate_hz=RATE, harmonics=[1, 2])
     with pytest.raises(ParameterError, match="reference_dbfs="):

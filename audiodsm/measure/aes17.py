@@ -731,6 +731,8 @@ def thd_plus_noise(
         settle_s=settle_s,
     )
     r = read_residual_meter(update_residual_meter(arr, st))
+    if r.total_dbfs == -math.inf or r.fundamental_dbfs == -math.inf:
+        raise ParameterError("x", "a silent signal", "a signal holding a tone")
     ratio = r.thd_n_db[kind]
     return ThdN(
         ratio_db=ratio,
