@@ -179,3 +179,22 @@ def test_spectrum_errors():
         accumulate_spectrum(np.zeros(10), rate_hz=RATE)  # no resolution for streaming
     with pytest.raises(ParameterError, match="x="):
         accumulate_spectrum(np.zeros(10), rate_hz=RATE, segment_frames=1024).spectrum()
+
+
+def test_any_block_split_gives_the_same_spectrum():
+    # property: for random cut points the streamed average is bit-identical to one call
+    hypothesis = pytest.importorskip("hypothesis")
+    st = hypothesis.strategies
+    x = np.random.default_rng(11).standard_normal(9000)
+    whole = averaged_spectrum(x, rate_hz=RATE, resolution_hz=RATE / 1024)
+
+    @hypothesis.settings(max_examples=30, deadline=None)
+    @hypothesis.given(st.lists(st.integers(0, 9000), max_size=6))
+    def check(cuts):
+        edges = [0, *sorted(cuts), 9000]
+        state = None
+        for a, b in zip(edges[:-1], edges[1:], strict=True):
+            state = accumulate_spectrum(x[a:b], rate_hz=RATE, state=state, segment_frames=1024)
+        assert np.array_equal(state.spectrum().power, whole.power)
+
+    check()
