@@ -38,6 +38,24 @@ def _uniform_trailing_harmonic(h: int, mod_index: float, ratio: float) -> float:
     return 2.0 * abs(jv(h, h * q * mod_index)) / (h * q)
 
 
+def _uniform_double_edge_harmonic(h: int, mod_index: float, ratio: float) -> float:
+    """Amplitude of the h-th baseband harmonic of uniformly sampled double-edge PWM.
+
+    Same route as above, for a pulse centred in the frame, s(t) = -1 + 2 sum_n
+    1[|t - nT - T/2| < d_n T / 2], duty sampled at the frame start. A centred pulse has the
+    transform exp(-j w (n T + T/2)) 2 sin(w d_n T / 2) / w, and sin(a + b cos(phi)) with
+    a = w T / 4, b = w T M / 4 expands (Jacobi-Anger, both exponentials) to
+    sum_k J_k(b) j^k (exp(j a) - (-1)^k exp(-j a)) / (2 j) exp(j k phi). At w = h w_m the
+    bracket is 2 j sin(a) for even h and 2 cos(a) for odd h, so the real amplitude is
+    4 |J_h(h q M / 2)| |sin(h q / 2)| / (h q) for even h and with cos for odd h,
+    q = pi f_m / f_c. The even harmonics are not zero, only much smaller: the sample is
+    taken half a frame before the pulse centre.
+    """
+    q = math.pi * ratio
+    phase = abs(math.cos(h * q / 2)) if h % 2 else abs(math.sin(h * q / 2))
+    return 4.0 * abs(jv(h, h * q * mod_index / 2)) * phase / (h * q)
+
+
 def _harmonic_amplitude(waveform, h: int) -> float:
     """Real amplitude of harmonic h of one modulating period (record = exactly one period).
 
@@ -86,13 +104,24 @@ def test_trailing_edge_second_harmonic_matches_bessel_analysis():
     assert h2 == pytest.approx(math.pi * ratio * MOD_INDEX / 2, rel=0.02)
 
 
-def test_double_edge_second_harmonic_is_much_lower():
+def test_double_edge_harmonics_match_analysis_and_are_much_lower():
+    wave = _sine_pwm("double-edge")
+    ratio = 1.0 / FRAMES_PER_PERIOD
+    # the same rounding bound as for the trailing edge: the two edges of a centred pulse move
+    # by at most T / (2 N) together
+    for h in (1, 2, 3):
+        predicted = _uniform_double_edge_harmonic(h, MOD_INDEX, ratio)
+        measured = _harmonic_amplitude(wave, h)
+        assert abs(measured - predicted) <= 2.0 / COUNTER_STEPS, (h, measured, predicted)
+    predicted = _uniform_double_edge_harmonic(2, MOD_INDEX, ratio)
+    measured = _harmonic_amplitude(wave, 2)
+    # issue's 1 dB on the 2nd harmonic (deterministic; the difference found is ~1e-8 absolute)
+    assert abs(20 * math.log10(measured / predicted)) < 1.0
+    # Black 1953: symmetric (double-edge) sampling has much lower baseband distortion than
+    # single-edge. Small-argument analysis: 2nd harmonic over fundamental is about q^2 M / 4
+    # (double edge) vs q M / 2 (trailing), a ratio of q / 2 = -32.2 dB here; 30 dB is checked.
     trailing = _harmonic_amplitude(_sine_pwm("trailing"), 2)
-    double = _harmonic_amplitude(_sine_pwm("double-edge"), 2)
-    # Black 1953: symmetric (double-edge) uniform sampling has far lower baseband distortion;
-    # its even harmonics cancel by symmetry, so only the duty rounding is left. 30 dB is a
-    # conservative margin (the measured gap is far larger).
-    assert 20 * math.log10(double / trailing) < -30.0
+    assert 20 * math.log10(measured / trailing) < -30.0
 
 
 def test_three_level_cancels_odd_carrier_groups_of_a_sine():
