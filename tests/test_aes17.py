@@ -464,3 +464,41 @@ def test_bad_inputs_raise_parameter_errors():
         update_residual_meter(x, None)
     with pytest.raises(ParameterError, match="f1_hz"):
         imd_smpte(x, rate_hz=RATE, f1_hz=8000.0)
+
+
+# --- with the project's stimuli ---------------------------------------------------------------
+
+
+def test_twin_tone_stimuli_read_back_their_stated_peak_level():
+    # audiodsm.signals states a twin tone's level as the combined peak U1 + U2 (4:1 for
+    # SMPTE, 1:1 for difference frequency); the IMD results report the same convention, and
+    # a clean stimulus has no products (rounding only: below -200 dB).
+    from audiodsm.signals import twin_tone_difference, twin_tone_smpte
+
+    x = twin_tone_smpte(-3.0, rate_hz=RATE, duration_s=1.0)
+    r = imd_smpte(x, rate_hz=RATE)
+    assert r.peak_dbfs == pytest.approx(-3.0, abs=1e-9)
+    assert r.f1_dbfs - r.f2_dbfs == pytest.approx(20 * math.log10(4.0), abs=1e-9)
+    assert r.ratio_db < -200
+    x = twin_tone_difference(-1.0, rate_hz=96000.0, duration_s=1.0)
+    r = imd_difference_frequency(x, rate_hz=96000.0)
+    assert r.peak_dbfs == pytest.approx(-1.0, abs=1e-9)
+    assert r.f1_dbfs == pytest.approx(r.f2_dbfs, abs=1e-9)
+    assert r.ratio_db < -200
+
+
+def test_multitone_stimulus_gives_the_filter_response():
+    # audiodsm.signals.multitone has equal tone amplitudes (Schroeder phases); through a
+    # 4th-order Chebyshev type I low-pass (0.5 dB ripple, 15 kHz) the measured response is
+    # scipy.signal.sosfreqz relative to 997 Hz, and the in-band ripple its peak-to-peak.
+    from audiodsm.signals import multitone
+
+    freqs = [31.0, 100.0, 500.0, 997.0, 2000.0, 5000.0, 9000.0, 12000.0, 14500.0]
+    sos = signal.cheby1(4, 0.5, 15000.0, output="sos", fs=RATE)
+    y = signal.sosfilt(sos, multitone(freqs, -6.0, rate_hz=RATE, duration_s=1.0))
+    r = frequency_response(y, rate_hz=RATE, frequencies_hz=freqs)
+    _, h = signal.sosfreqz(sos, worN=np.array(freqs), fs=RATE)
+    expected = 20 * np.log10(np.abs(h) / np.abs(h[3]))
+    np.testing.assert_allclose(r.gain_db, expected, atol=1e-6)
+    assert r.ripple_db == pytest.approx(np.ptp(expected), abs=1e-6)
+    assert 0.3 < r.ripple_db < 0.6  # Chebyshev ripple 0.5 dB, sampled at these tones
