@@ -139,6 +139,14 @@ def test_three_parameter_fit_is_plain_least_squares(rng):
     assert fit.iterations == 0
 
 
+def test_fit_warns_when_the_iteration_cannot_converge(rng):
+    # white noise holds no tone: one iteration is not enough to settle, and the fit says so
+    x = rng.standard_normal(4000)
+    with pytest.warns(RuntimeWarning, match="did not converge"):
+        fit = fit_sine(x, rate_hz=RATE, max_iterations=1)
+    assert not fit.converged
+
+
 def test_interpolated_peak_is_close_enough_to_start():
     # The Hann three-bin estimator (Jacobsen & Kootsookos 2007) is exact to ~1e-3 bin for a
     # lone tone; 0.01 bin is a loose bound that still fails on an uninterpolated peak.

@@ -14,6 +14,7 @@ run the same code on a single block, so both give the same numbers.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -139,7 +140,8 @@ class SineFit:
     iterations : int
         Frequency iterations of the 4-parameter fit (0 for 3 parameters).
     converged : bool
-        Whether the 4-parameter iteration met its tolerance (always True for 3 parameters).
+        Whether the 4-parameter iteration met its tolerance (always True for 3 parameters);
+        when it did not, :func:`fit_sine` also warns (``RuntimeWarning``).
     """
 
     amplitude: float
@@ -285,6 +287,13 @@ def fit_sine(x, *, rate_hz, frequency_hz=None, four_parameter=True, max_iteratio
             if abs(step) * n < 1e-11:
                 converged = True
                 break
+    if not converged:
+        warnings.warn(
+            f"fit_sine: the 4-parameter fit did not converge in {max_iterations} iterations "
+            f"(frequency left at {omega * rate / _TWO_PI:.6f} Hz); is there a tone?",
+            RuntimeWarning,
+            stacklevel=2,
+        )
     a, b, dc = (float(v) for v in coef)
     amplitude = math.hypot(a, b)
     theta = math.atan2(-b, a)  # phase at the record centre
