@@ -33,6 +33,7 @@ __all__ = [
     "AudioInfo",
     "audio_info",
     "read_audio",
+    "read_audio_span",
     "iter_audio_blocks",
     "write_audio_atomic",
     "open_audio_writer",
@@ -242,6 +243,56 @@ def iter_audio_blocks(path, block_frames: int = 65536) -> Iterator[np.ndarray]:
             _check_finite(block, path, done)
             done += block.shape[0]
             yield block
+
+
+def read_audio_span(path, start_frame: int, frames: int) -> np.ndarray:
+    """Read ``frames`` frames from ``start_frame`` on (seeking, not reading what is before).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The audio file.
+    start_frame : int
+        First frame, from 0.
+    frames : int
+        Number of frames; the span must lie inside the file.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64, shape ``(frames, channels)``.
+
+    Raises
+    ------
+    AudioFileError
+        As :func:`iter_audio_blocks`.
+    ParameterError
+        When the span does not lie inside the file.
+    """
+    handle, _ = _open_checked(path)
+    with handle:
+        total = handle.frames
+        for name, value in (("start_frame", start_frame), ("frames", frames)):
+            if isinstance(value, bool) or not isinstance(value, int | np.integer) or value < 0:
+                raise ParameterError(name, value, "a whole number >= 0")
+        if start_frame + frames > total:
+            raise ParameterError(
+                "start_frame + frames", start_frame + frames, f"at most {total} (the file's frames)"
+            )
+        try:
+            handle.seek(int(start_frame))
+            block = handle.read(int(frames), dtype="float64", always_2d=True)
+        except (sf.SoundFileError, RuntimeError) as exc:
+            reason = str(exc).split(":")[-1].strip()
+            raise AudioFileError(
+                str(path), f"truncated or corrupt near frame {start_frame} ({reason})"
+            ) from None
+        if block.shape[0] != frames:
+            raise AudioFileError(
+                str(path), f"truncated: data end before frame {start_frame + frames} of {total}"
+            )
+        _check_finite(block, path, int(start_frame))
+        return block
 
 
 def read_audio(path) -> tuple[np.ndarray, int]:

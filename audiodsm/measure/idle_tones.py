@@ -43,6 +43,7 @@ References
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -53,7 +54,6 @@ from audiodsm.errors import ParameterError
 __all__ = [
     "SpectralLine",
     "IdleToneResult",
-    "LineSpectrum",
     "SpectrumAccumulator",
     "line_spectrum",
     "segment_frames_for",
@@ -78,48 +78,11 @@ DEFAULT_FLOOR_BINS = 65
 # ---------------------------------------------------------------------------------------------
 
 
-@dataclass(frozen=True)
-class LineSpectrum:
-    """An averaged, windowed periodogram (Welch) with the facts the detector needs.
-
-    Attributes
-    ----------
-    freq_hz : numpy.ndarray
-        Bin frequencies, 0 .. rate/2.
-    power : numpy.ndarray
-        Mean-square power per bin (power spectral density times the bin spacing, full scale
-        ±1.0): a tone's bins summed over its main lobe give its mean square, so
-        ``10*log10(sum / 0.5)`` is its level in dBFS (AES17); the bins of a band summed give
-        the band's noise power. Shape
-        ``(n_bins,)`` or ``(n_bins, channels)``.
-    rate_hz : float
-        Sample rate of the analysed signal.
-    window : str
-        Window name (scipy.signal.get_window, periodic form).
-    segment_frames : int
-        Segment (FFT) length.
-    step_frames : int
-        Hop between segment starts.
-    n_averages : int
-        Number of segments averaged.
-    enbw_hz : float
-        Equivalent noise bandwidth of one bin, in Hz.
-    """
-
-    freq_hz: np.ndarray
-    power: np.ndarray
-    rate_hz: float
-    window: str
-    segment_frames: int
-    step_frames: int
-    n_averages: int
-    enbw_hz: float
-
-    @property
-    def degrees_of_freedom(self) -> float:
-        """Equivalent chi-square degrees of freedom of each bin (Welch 1967)."""
-        w = signal.get_window(self.window, self.segment_frames, fftbins=True)
-        return welch_degrees_of_freedom(w, self.step_frames, self.n_averages)
+@functools.lru_cache(maxsize=16)
+def _window(name: str, frames: int) -> np.ndarray:
+    w = signal.get_window(name, frames, fftbins=True)
+    w.setflags(write=False)
+    return w
 
 
 def segment_frames_for(n_frames: int, rate_hz: float, *, min_averages: int = 8) -> int:
@@ -207,110 +170,133 @@ def welch_degrees_of_freedom(window, step_frames: int, n_averages: int) -> float
 
 
 class SpectrumAccumulator:
-    """Build a :class:`LineSpectrum` block by block, with bounded memory.
+    """Build an averaged spectrum of one channel block by block, fast, with bounded memory.
 
     Half-overlapping, mean-removed segments of a fixed length are windowed and their
     periodograms summed; frames left over at the end of a block wait for the next one, so
-    the result does not depend on how the signal is cut into blocks.
+    the segments do not depend on how the signal is cut into blocks (the sums agree to
+    rounding). The result is an :class:`audiodsm.measure.spectrum.Spectrum`, scaled as that
+    class states (mean square per bin, a tone's main lobe sums to its mean square), so it
+    equals ``accumulate_spectrum`` of the same signal to rounding. This form batches the
+    FFTs of many segments at once, which the ``analyze`` command needs to keep a
+    ten-minute 96 kHz file within its time budget.
 
     Parameters
     ----------
     segment_frames : int
-        Segment length (see :func:`segment_frames_for`).
+        Segment length, even (see :func:`segment_frames_for`).
     rate_hz : float
         Sample rate.
-    channels : int, optional
-        Number of channels in each block (blocks are ``(n, channels)``).
     window : str, optional
-        Window name.
+        Window name for ``scipy.signal.get_window`` (periodic); 4-term Blackman-Harris by
+        default.
     """
 
-    def __init__(self, segment_frames: int, *, rate_hz: float, channels: int = 1, window=None):
-        if segment_frames < 16:
-            raise ParameterError("segment_frames", segment_frames, "an integer >= 16")
+    def __init__(self, segment_frames: int, *, rate_hz: float, window: str = DETECTOR_WINDOW):
+        if (
+            isinstance(segment_frames, bool)
+            or not isinstance(segment_frames, int | np.integer)
+            or segment_frames < 16
+            or segment_frames % 2
+        ):
+            raise ParameterError("segment_frames", segment_frames, "an even integer >= 16")
+        _check_rate(rate_hz)
         self.segment_frames = int(segment_frames)
         self.step_frames = self.segment_frames // 2
         self.rate_hz = float(rate_hz)
-        self.window = window or DETECTOR_WINDOW
-        self._w = signal.get_window(self.window, self.segment_frames, fftbins=True)
-        self._sum = np.zeros((self.segment_frames // 2 + 1, channels))
-        self._pending = np.zeros((0, channels))
+        self.window = window
+        self._w = _window(window, self.segment_frames)
+        self._sum = np.zeros(self.segment_frames // 2 + 1)
+        self._pending = np.zeros(0)
         self.n_averages = 0
-        self.channels = channels
 
-    def add(self, block: np.ndarray) -> None:
-        """Feed the next block, shape ``(n,)`` (one channel) or ``(n, channels)``."""
+    def add(self, block) -> None:
+        """Feed the next block of the channel, shape ``(n,)``."""
         x = np.asarray(block, dtype=np.float64)
-        if x.ndim == 1:
-            x = x[:, None]
-        if x.shape[1] != self.channels:
-            raise ParameterError("block", f"{x.shape[1]} channels", f"{self.channels}")
+        if x.ndim != 1:
+            raise ParameterError("block", f"array of shape {x.shape}", "one channel, shape (n,)")
         data = np.concatenate([self._pending, x]) if self._pending.size else x
-        n, seg, step = data.shape[0], self.segment_frames, self.step_frames
-        count = _n_segments(n, seg)
+        seg, step = self.segment_frames, self.step_frames
+        count = _n_segments(data.shape[0], seg)
         if count:
-            starts = np.arange(count) * step
-            # process in groups to bound the temporary array size
-            for g in range(0, count, 64):
-                idx = starts[g : g + 64, None] + np.arange(seg)[None, :]
-                segs = data[idx]  # (g, seg, ch)
-                segs = segs - segs.mean(axis=1, keepdims=True)
-                spec = np.fft.rfft(segs * self._w[None, :, None], axis=1)
+            view = np.lib.stride_tricks.sliding_window_view(data, seg)[::step][:count]
+            group = max(1, (1 << 21) // seg)  # bounds the temporary arrays
+            for g in range(0, count, group):
+                segs = view[g : g + group]
+                segs = (segs - segs.mean(axis=1, keepdims=True)) * self._w
+                spec = np.fft.rfft(segs, axis=1)
                 self._sum += np.sum(spec.real**2 + spec.imag**2, axis=0)
             self.n_averages += count
             self._pending = data[count * step :].copy()
         else:
             self._pending = data.copy()
 
-    def result(self) -> LineSpectrum:
-        """The averaged spectrum so far (scaling as in :class:`LineSpectrum`)."""
+    def merge(self, other: SpectrumAccumulator) -> None:
+        """Add the segments of another accumulator (a separate stretch of the same channel).
+
+        No segment spans the gap between the two stretches; frames pending in ``other`` are
+        dropped.
+        """
+        if (other.segment_frames, other.rate_hz, other.window) != (
+            self.segment_frames,
+            self.rate_hz,
+            self.window,
+        ):
+            raise ParameterError("other", "a differently set-up accumulator", "the same settings")
+        self._sum += other._sum
+        self.n_averages += other.n_averages
+
+    def result(self):
+        """The averaged spectrum so far, an ``audiodsm.measure.spectrum.Spectrum``."""
+        from audiodsm.measure.spectrum import Spectrum
+
         if self.n_averages == 0:
             raise ParameterError(
                 "signal length", "shorter than one segment", f">= {self.segment_frames} frames"
             )
         w = self._w
-        # 2|X|^2 / (L * sum w^2): a tone's main lobe sums to its mean square (Parseval)
-        scale = 2.0 / (self.segment_frames * float(np.sum(w * w)))
-        power = self._sum * (scale / self.n_averages)
-        power[0] *= 0.5  # DC and Nyquist bins are not doubled in a one-sided spectrum
-        if self.segment_frames % 2 == 0:
-            power[-1] *= 0.5
-        enbw_bins = self.segment_frames * float(np.sum(w * w)) / float(np.sum(w)) ** 2
-        freq = np.fft.rfftfreq(self.segment_frames, 1.0 / self.rate_hz)
-        return LineSpectrum(
-            freq_hz=freq,
-            power=power if self.channels > 1 else power[:, 0],
+        n = self.segment_frames
+        # density times bin spacing: 2|X|^2 / (n * sum w^2), not doubled at DC and Nyquist
+        scale = np.full(n // 2 + 1, 2.0 / (n * float(np.sum(w * w))))
+        scale[0] /= 2.0
+        scale[-1] /= 2.0
+        return Spectrum(
+            freq_hz=np.arange(n // 2 + 1) * (self.rate_hz / n),
+            power=self._sum * scale / self.n_averages,
             rate_hz=self.rate_hz,
+            resolution_hz=self.rate_hz / n,
+            enbw_hz=self.rate_hz * float(np.sum(w * w)) / float(np.sum(w)) ** 2,
             window=self.window,
-            segment_frames=self.segment_frames,
-            step_frames=self.step_frames,
+            segment_frames=n,
             n_averages=self.n_averages,
-            enbw_hz=enbw_bins * self.rate_hz / self.segment_frames,
+            main_lobe_bins=_LOBE_HALF_BINS.get(self.window, 4),
         )
 
 
-def line_spectrum(x, *, rate_hz: float, segment_frames: int | None = None) -> LineSpectrum:
-    """Averaged spectrum of a whole signal, as the detector uses it.
+def line_spectrum(x, *, rate_hz: float, segment_frames: int | None = None):
+    """Averaged spectrum of one channel with the resolution the detector wants.
 
     Parameters
     ----------
     x : array_like
-        Signal, ``(n,)`` or ``(n, channels)``, full scale ±1.0.
+        One channel, shape ``(n,)``, full scale ±1.0.
     rate_hz : float
         Sample rate.
     segment_frames : int, optional
-        Segment length; by default :func:`segment_frames_for` chooses it.
+        Segment length; by default :func:`segment_frames_for` chooses it (bins of about
+        3 Hz when the signal is long enough).
 
     Returns
     -------
-    LineSpectrum
+    audiodsm.measure.spectrum.Spectrum
+        Blackman-Harris window, 50 % overlap, mean removed per segment.
     """
     a = np.asarray(x, dtype=np.float64)
-    if a.ndim not in (1, 2):
-        raise ParameterError("x", f"array of shape {a.shape}", "shape (n,) or (n, channels)")
+    if a.ndim != 1:
+        raise ParameterError("x", f"array of shape {a.shape}", "one channel, shape (n,)")
     _check_rate(rate_hz)
     seg = segment_frames or segment_frames_for(a.shape[0], rate_hz)
-    acc = SpectrumAccumulator(seg, rate_hz=rate_hz, channels=1 if a.ndim == 1 else a.shape[1])
+    acc = SpectrumAccumulator(seg, rate_hz=rate_hz)
     acc.add(a)
     return acc.result()
 
@@ -464,8 +450,7 @@ def _spectrum_dof(spec) -> float:
         raise ParameterError(
             "spectrum", type(spec).__name__, "a spectrum with window and n_averages"
         )
-    w = signal.get_window(window, seg, fftbins=True)
-    return welch_degrees_of_freedom(w, step, n_avg)
+    return welch_degrees_of_freedom(_window(window, seg), step, n_avg)
 
 
 def find_idle_tones(
@@ -481,8 +466,9 @@ def find_idle_tones(
 
     Parameters
     ----------
-    data : LineSpectrum or array_like
-        An averaged spectrum (one channel), or a one-channel signal, in which case
+    data : Spectrum or array_like
+        An averaged spectrum of one channel (``audiodsm.measure.spectrum.Spectrum``: Welch,
+        50 % overlap, with ``window`` and ``n_averages``), or a one-channel signal, in which case
         ``rate_hz`` is required and :func:`line_spectrum` is computed.
     rate_hz : float, optional
         Sample rate, when ``data`` is a signal.

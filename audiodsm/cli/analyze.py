@@ -1,0 +1,230 @@
+"""``audiodsm analyze FILE...``: measure any audio file the way AES17 measures a converter.
+
+For each file and channel the command finds what the channel holds (tone, twin tone, silence,
+program; see :mod:`audiodsm.measure.classify`) and measures accordingly, streaming the file
+in blocks so that memory stays bounded. By default it prints an aligned table per file with
+units; with ``--json`` it prints exactly one JSON object per file per line on stdout and
+nothing else there. A bad file gives one line on stderr naming the file and the problem; the
+other files are still measured, and the exit code is 2 when any file was bad, else 0.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+from dataclasses import dataclass
+
+import click
+import numpy as np
+
+from audiodsm.errors import AudioFileError, ParameterError
+
+__all__ = ["FileAnalysis", "analyze_file", "format_table", "analyze"]
+
+#: Files longer than this (seconds of audio) get a progress bar on stderr.
+PROGRESS_MIN_S = 20.0
+#: Frames per block read; bounds memory at about 8 channels x this x 8 bytes per block.
+BLOCK_FRAMES = 1 << 18
+
+
+@dataclass(frozen=True)
+class FileAnalysis:
+    """The measurements of one file.
+
+    Attributes
+    ----------
+    path : str
+    rate_hz : int
+    frames : int
+    container, sample_format : str
+        As libsndfile names them (e.g. ``"WAV"``, ``"PCM_24"``).
+    channels : list of ChannelAnalysis
+    measurement_s : float
+        Wall-clock seconds the measurement took.
+    """
+
+    path: str
+    rate_hz: int
+    frames: int
+    container: str
+    sample_format: str
+    channels: list
+    measurement_s: float
+
+    def to_dict(self) -> dict:
+        """The file's JSON object (keys are stable; see docs/analyze.md)."""
+        return {
+            "file": self.path,
+            "sample_rate_hz": int(self.rate_hz),
+            "channels": [c.to_dict() for c in self.channels],
+            "measurement_s": round(self.measurement_s, 3),
+        }
+
+
+def analyze_file(path, *, progress=None) -> FileAnalysis:
+    """Read, classify and measure every channel of one audio file.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A WAV, FLAC or AIFF file (see :func:`audiodsm.io.read_audio`).
+    progress : callable, optional
+        Called with the number of frames processed in the measuring pass.
+
+    Returns
+    -------
+    FileAnalysis
+
+    Raises
+    ------
+    AudioFileError
+        A bad file (see :mod:`audiodsm.io`) or one too short for the resolution needed.
+    """
+    from audiodsm.io import audio_info, iter_audio_blocks, read_audio_span
+    from audiodsm.measure.classify import analyze_blocks
+
+    start = time.perf_counter()
+    info = audio_info(path)
+    block = max(BLOCK_FRAMES, 1)
+    try:
+        channels = analyze_blocks(
+            lambda: iter_audio_blocks(path, block),
+            rate_hz=info.rate_hz,
+            channels=info.channels,
+            n_frames=info.frames,
+            read_span=lambda start, frames: read_audio_span(path, start, frames),
+            progress=progress,
+        )
+    except ParameterError as exc:
+        if exc.name in ("signal length", "x"):
+            raise AudioFileError(
+                str(path),
+                f"too short: {info.frames} frames ({info.duration_s:.3f} s); {exc.expected}",
+            ) from None
+        raise
+    return FileAnalysis(
+        path=str(path),
+        rate_hz=info.rate_hz,
+        frames=info.frames,
+        container=info.container,
+        sample_format=info.sample_format,
+        channels=channels,
+        measurement_s=time.perf_counter() - start,
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# Table
+# ---------------------------------------------------------------------------------------------
+
+# (label, unit, attribute, format)
+_ROWS = (
+    ("signal", "", None, None),
+    ("fundamental", "Hz", "fundamental_hz", "{:.3f}"),
+    ("level", "dBFS", "level_dbfs", "{:.2f}"),
+    ("THD+N", "dB", "thd_n_db", "{:.2f}"),
+    ("THD+N, A-weighted", "dB", "thd_n_db_a", "{:.2f}"),
+    ("THD (2nd-10th)", "dB", "thd_db", "{:.2f}"),
+    ("noise", "dBFS", "noise_dbfs", "{:.2f}"),
+    ("noise, A-weighted", "dBFS", "noise_dbfs_a", "{:.2f}"),
+    ("noise, CCIR-RMS", "dBFS", "noise_dbfs_ccir", "{:.2f}"),
+    ("dynamic range", "dB", "dynamic_range_db", "{:.2f}"),
+    ("dynamic range, A", "dB", "dynamic_range_db_a", "{:.2f}"),
+    ("spectral lines", "", None, None),
+)
+
+
+def _cell(value, fmt):
+    if value is None:
+        return "-"
+    v = float(value)
+    if not np.isfinite(v):
+        return "zero" if v < 0 else "-"
+    return fmt.format(v)
+
+
+def format_table(result: FileAnalysis) -> str:
+    """Aligned plain-text table of one file's measurements, one column per channel."""
+    seconds = result.frames / result.rate_hz
+    head = (
+        f"{result.path}: {result.rate_hz} Hz, {len(result.channels)} channel(s), "
+        f"{seconds:.2f} s, {result.sample_format} {result.container}; "
+        f"measured in {result.measurement_s:.2f} s"
+    )
+    columns = [f"ch {c.channel}" for c in result.channels]
+    body = []
+    for label, unit, attr, fmt in _ROWS:
+        if label == "signal":
+            cells = [c.content.kind for c in result.channels]
+        elif label == "spectral lines":
+            cells = [str(len(c.tones)) for c in result.channels]
+        else:
+            cells = [_cell(getattr(c, attr), fmt) for c in result.channels]
+        body.append((label, unit, cells))
+    w_label = max(len(r[0]) for r in body)
+    w_unit = max(len(r[1]) for r in body)
+    w_cell = max(8, *(len(c) for c in columns), *(len(x) for r in body for x in r[2]))
+    lines = [head, " " * (w_label + w_unit + 2) + "  ".join(c.rjust(w_cell) for c in columns)]
+    for label, unit, cells in body:
+        lines.append(
+            f"{label.ljust(w_label)}  {unit.ljust(w_unit)}"
+            + "  ".join(x.rjust(w_cell) for x in cells)
+        )
+    for c in result.channels:
+        for t in c.tones[:12]:
+            lines.append(
+                f"  ch {c.channel} line: {t.frequency_hz:10.2f} Hz  {t.level_dbfs:8.2f} dBFS"
+            )
+        if len(c.tones) > 12:
+            lines.append(f"  ch {c.channel}: {len(c.tones) - 12} more lines (see --json)")
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------------------------
+# Command
+# ---------------------------------------------------------------------------------------------
+
+
+@click.command("analyze")
+@click.argument("files", nargs=-1, required=True, type=click.Path(dir_okay=True))
+@click.option(
+    "--json",
+    "as_json",
+    is_flag=True,
+    help="Print one JSON object per file per line on stdout instead of tables.",
+)
+@click.option("--no-progress", is_flag=True, help="Never show a progress bar on stderr.")
+def analyze(files, as_json, no_progress):
+    """Measure audio FILES: what each channel holds, THD+N, THD, noise, DR, idle tones.
+
+    Reads WAV (including WAVE_FORMAT_EXTENSIBLE), FLAC and AIFF; 8 to 32-bit integer and
+    32/64-bit float; 1 to 8 channels at 44.1 kHz or more. Exit code 0 when every file was
+    measured, 2 when any file was bad (the others are still measured).
+    """
+    from audiodsm.io import audio_info
+
+    bad = 0
+    for i, path in enumerate(files):
+        try:
+            info = audio_info(path)
+            show = (not no_progress) and info.duration_s >= PROGRESS_MIN_S
+            if show:
+                with click.progressbar(
+                    length=info.frames, label=f"analyzing {path}", file=sys.stderr
+                ) as bar:
+                    result = analyze_file(path, progress=bar.update)
+            else:
+                result = analyze_file(path)
+        except AudioFileError as exc:
+            click.echo(f"audiodsm: error: {exc}", err=True)
+            bad += 1
+            continue
+        if as_json:
+            click.echo(json.dumps(result.to_dict(), allow_nan=False))
+        else:
+            if i:
+                click.echo("")
+            click.echo(format_table(result))
+    if bad:
+        sys.exit(2)

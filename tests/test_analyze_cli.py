@@ -1,0 +1,294 @@
+"""Tests for ``audiodsm analyze`` (CliRunner) and the streamed channel analysis behind it.
+
+Expected values are computed here from outside sources:
+* AES17 (dBFS: a sine of peak A reads 20*log10(A) dBFS; THD+N ratio = band-limited residual
+  over band-limited total; dynamic range from a -60 dBFS 997 Hz tone);
+* trigonometric identities for y = x + a2 x^2 + a3 x^3 with x = A cos(wt):
+  x^2 = A^2/2 (1 + cos 2wt), x^3 = A^3/4 (3 cos wt + cos 3wt);
+* Lipshitz, Wannamaker & Vanderkooy, JAES 40(5) 1992: TPDF dither of 2 LSB peak to peak
+  gives a total error power of Delta^2/4, white;
+* the A-weighting curve of IEC 61672-1 as implemented by ``librosa.A_weighting`` (an outside
+  implementation), integrated over the band.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+
+import librosa
+import numpy as np
+import pytest
+import soundfile as sf
+from click.testing import CliRunner
+
+from audiodsm.cli import main
+from audiodsm.measure.classify import analyze_blocks
+
+RATE = 48000
+KEYS = {
+    "channel",
+    "signal",
+    "fundamental_hz",
+    "level_dbfs",
+    "thd_n_db",
+    "thd_n_db_a",
+    "thd_db",
+    "noise_dbfs",
+    "noise_dbfs_a",
+    "noise_dbfs_ccir",
+    "dynamic_range_db",
+    "dynamic_range_db_a",
+    "tones",
+}
+
+
+def _tpdf(n, lsb, seed):
+    g = np.random.default_rng(seed)
+    return (g.uniform(-0.5, 0.5, n) + g.uniform(-0.5, 0.5, n)) * lsb
+
+
+def _band_fraction(rate, lo=20.0, hi=20000.0):
+    """Share of white noise power inside the band (flat one-sided density over 0..rate/2)."""
+    return (hi - lo) / (rate / 2)
+
+
+def _a_fraction(rate, lo=20.0, hi=20000.0):
+    """Share of white noise power passed by band limit plus A-weighting (IEC 61672-1 curve as
+    librosa implements it, integrated on a 0.5 Hz grid: the curve is smooth, so the trapezoid
+    error is far below 0.01 dB)."""
+    f = np.arange(lo, hi + 0.25, 0.5)
+    gain = 10 ** (librosa.A_weighting(f, min_db=None) / 10)
+    return np.trapezoid(gain, f) / (rate / 2)
+
+
+def _run(*args):
+    runner = CliRunner()
+    return runner.invoke(main, ["analyze", *map(str, args)])
+
+
+def _json_lines(output):
+    lines = [line for line in output.splitlines() if line.strip()]
+    return [json.loads(line) for line in lines]
+
+
+def test_known_distorted_tone_json(tmp_path):
+    # x = A cos(wt) through y = x + a2 x^2 + a3 x^3, plus white Gaussian noise, in a float
+    # file (no quantization): every number follows from the identities above.
+    n, amp, a2, a3, sigma = 2 * RATE, 10 ** (-1 / 20), 1e-3, 2e-3, 1e-6
+    t = np.arange(n) / RATE
+    x = amp * np.cos(2 * np.pi * 997.0 * t + 0.4)
+    y = x + a2 * x**2 + a3 * x**3 + np.random.default_rng(9).normal(0, sigma, n)
+    path = tmp_path / "tone.wav"
+    sf.write(str(path), y, RATE, subtype="DOUBLE")
+    result = _run("--json", path)
+    assert result.exit_code == 0, result.output
+    (obj,) = _json_lines(result.stdout)
+    assert set(obj) == {"file", "sample_rate_hz", "channels", "measurement_s"}
+    assert obj["file"] == str(path) and obj["sample_rate_hz"] == RATE
+    assert obj["measurement_s"] > 0
+    (ch,) = obj["channels"]
+    assert set(ch) == KEYS
+    assert ch["signal"] == "tone" and ch["channel"] == 1
+
+    fund = amp + 0.75 * a3 * amp**3
+    h2, h3 = a2 * amp**2 / 2, a3 * amp**3 / 4
+    # frequency: a 4-parameter fit at 120 dB SNR is accurate to micro-hertz; JSON keeps 1e-6
+    assert ch["fundamental_hz"] == pytest.approx(997.0, abs=1e-5)
+    # AES17 dBFS of the fitted fundamental; only noise limits it (1e-3 dB is generous)
+    assert ch["level_dbfs"] == pytest.approx(20 * np.log10(fund), abs=1e-3)
+    # THD within 0.05 dB (issue 3), harmonics 2 and 3 from the identities
+    thd = 20 * np.log10(np.hypot(h2, h3) / fund)
+    assert ch["thd_db"] == pytest.approx(thd, abs=0.05)
+    # residual = harmonics + band-limited noise; total = fundamental + residual (AES17)
+    noise_ms = sigma**2 * _band_fraction(RATE)
+    resid_ms = (h2**2 + h3**2) / 2 + noise_ms
+    total_ms = fund**2 / 2 + resid_ms
+    assert ch["noise_dbfs"] == pytest.approx(10 * np.log10(resid_ms / 0.5), abs=0.05)
+    assert ch["thd_n_db"] == pytest.approx(10 * np.log10(resid_ms / total_ms), abs=0.05)
+    # A-weighted: each harmonic scaled by the A curve at its frequency (librosa), plus the
+    # A-weighted noise; the digital A filter is class-1 accurate, so 0.1 dB
+    ga = 10 ** (librosa.A_weighting(np.array([1994.0, 2991.0]), min_db=None) / 10)
+    resid_a = (ga[0] * h2**2 + ga[1] * h3**2) / 2 + sigma**2 * _a_fraction(RATE)
+    assert ch["noise_dbfs_a"] == pytest.approx(10 * np.log10(resid_a / 0.5), abs=0.1)
+    assert ch["thd_n_db_a"] == pytest.approx(10 * np.log10(resid_a / total_ms), abs=0.1)
+    assert ch["dynamic_range_db"] is None and ch["dynamic_range_db_a"] is None
+    # the harmonics stand out of the residual as lines, at their frequencies and levels
+    lines = {round(tone["frequency_hz"]): tone["level_dbfs"] for tone in ch["tones"]}
+    assert set(lines) == {1994, 2991}
+    assert lines[1994] == pytest.approx(20 * np.log10(h2), abs=0.1)
+    assert lines[2991] == pytest.approx(20 * np.log10(h3), abs=0.1)
+
+
+def test_dynamic_range_of_ideal_16_bit_channel(tmp_path):
+    # A 16-bit TPDF-dithered -60 dBFS 997 Hz tone (issue 3): the noise is Delta^2/4 (LWV 1992)
+    # with Delta = 2^-15, white over 0..24 kHz; DR = minus the band-limited (weighted) noise
+    # in dBFS, within 0.3 dB (issue 3; the extra is for the fundamental removal).
+    n, lsb = 3 * RATE, 2.0**-15
+    t = np.arange(n) / RATE
+    tone = 10 ** (-60 / 20) * np.sin(2 * np.pi * 997.0 * t)
+    x = np.round((tone + _tpdf(n, lsb, 3)) / lsb) * lsb
+    path = tmp_path / "dr.flac"
+    sf.write(str(path), x, RATE, subtype="PCM_16")
+    result = _run("--json", path)
+    assert result.exit_code == 0, result.output
+    (ch,) = _json_lines(result.stdout)[0]["channels"]
+    ms = lsb**2 / 4
+    dr = -10 * np.log10(ms * _band_fraction(RATE) / 0.5)
+    dr_a = -10 * np.log10(ms * _a_fraction(RATE) / 0.5)
+    assert ch["signal"] == "tone"
+    assert ch["level_dbfs"] == pytest.approx(-60.0, abs=0.05)
+    assert ch["dynamic_range_db"] == pytest.approx(dr, abs=0.3)
+    assert ch["dynamic_range_db_a"] == pytest.approx(dr_a, abs=0.3)
+    assert ch["dynamic_range_db"] == -ch["noise_dbfs"]
+    assert ch["tones"] == []  # dithered: no spurious lines
+
+
+def test_silence_with_idle_tone_and_twin_tone(tmp_path):
+    # Channel 1: 24-bit TPDF-dithered silence with a -125 dBFS line at 1500 Hz (an idle tone).
+    # Channel 2: SMPTE RP120 twin tone, 60 Hz + 7 kHz at 4:1, 16-bit dithered.
+    n = 2 * RATE
+    t = np.arange(n) / RATE
+    lsb24, lsb16 = 2.0**-23, 2.0**-15
+    line_amp = 10 ** (-125 / 20)
+    idle = np.round((line_amp * np.sin(2 * np.pi * 1500.0 * t) + _tpdf(n, lsb24, 4)) / lsb24)
+    twin = 0.4 * np.sin(2 * np.pi * 60.0 * t) + 0.1 * np.sin(2 * np.pi * 7000.0 * t)
+    twin = np.round((twin + _tpdf(n, lsb16, 5)) / lsb16) * lsb16
+    path = tmp_path / "mixed.aiff"
+    sf.write(str(path), np.stack([idle * lsb24, twin], axis=1), RATE, subtype="PCM_24")
+    result = _run("--json", path)
+    assert result.exit_code == 0, result.output
+    silent, pair = _json_lines(result.stdout)[0]["channels"]
+
+    assert silent["signal"] == "silence"
+    assert silent["level_dbfs"] is None and silent["thd_n_db"] is None
+    assert silent["dynamic_range_db"] is None
+    # noise: 24-bit TPDF (LWV 1992) plus the line itself, band-limited
+    noise_ms = lsb24**2 / 4 * _band_fraction(RATE) + line_amp**2 / 2
+    assert silent["noise_dbfs"] == pytest.approx(10 * np.log10(noise_ms / 0.5), abs=0.3)
+    (line,) = silent["tones"]
+    assert line["frequency_hz"] == pytest.approx(1500.0, abs=0.5)
+    assert line["level_dbfs"] == pytest.approx(-125.0, abs=0.3)
+
+    assert pair["signal"] == "twin-tone"
+    assert pair["fundamental_hz"] is None and pair["thd_db"] is None
+    # combined level (AES17 rms convention): (0.4^2 + 0.1^2)/2 relative to 0.5
+    assert pair["level_dbfs"] == pytest.approx(10 * np.log10(0.4**2 + 0.1**2), abs=0.02)
+    # both tones removed: the residual is the 16-bit dither noise
+    expected = 10 * np.log10(lsb16**2 / 4 * _band_fraction(RATE) / 0.5)
+    assert pair["noise_dbfs"] == pytest.approx(expected, abs=0.3)
+    assert pair["tones"] == []
+
+
+def test_table_is_aligned_with_units(tmp_path):
+    n = RATE
+    t = np.arange(n) / RATE
+    x = np.stack([0.5 * np.sin(2 * np.pi * 997.0 * t), np.zeros(n)], axis=1)
+    path = tmp_path / "two.wav"
+    sf.write(str(path), x + _tpdf(n, 2.0**-23, 6)[:, None], RATE, subtype="FLOAT")
+    result = _run(path)
+    assert result.exit_code == 0, result.output
+    lines = result.stdout.splitlines()
+    assert str(path) in lines[0] and "measured in" in lines[0] and "48000 Hz" in lines[0]
+    assert lines[1].split() == ["ch", "1", "ch", "2"]
+    rows = {re.split(r"\s{2,}", line)[0]: line for line in lines[2:]}
+    assert rows["signal"].split()[-2:] == ["tone", "silence"]
+    assert "Hz" in rows["fundamental"] and "dBFS" in rows["level"]
+    assert "dB" in rows["THD+N"] and "dBFS" in rows["noise, CCIR-RMS"]
+    # every value column ends at the same place in every row (right-aligned)
+    ends = {len(line.rstrip()) for line in lines[1:13]}
+    assert len(ends) == 1
+    level = float(rows["level"].split()[-2])
+    assert level == pytest.approx(20 * np.log10(0.5), abs=0.01)
+
+
+def test_bad_files_exit_code_and_others_still_measured(tmp_path):
+    n = RATE
+    t = np.arange(n) / RATE
+    good = tmp_path / "good.wav"
+    sf.write(str(good), 0.25 * np.sin(2 * np.pi * 997.0 * t), RATE, subtype="PCM_24")
+    missing = tmp_path / "missing.wav"
+    truncated = tmp_path / "cut.wav"
+    truncated.write_bytes(good.read_bytes()[:5000])
+    nan = tmp_path / "nan.wav"
+    z = np.zeros(n)
+    z[100] = np.nan
+    sf.write(str(nan), z, RATE, subtype="FLOAT")
+    low = tmp_path / "low.wav"
+    sf.write(str(low), np.zeros(n), 22050, subtype="PCM_16")
+    short = tmp_path / "short.wav"
+    sf.write(str(short), np.zeros(RATE // 10), RATE, subtype="PCM_16")
+    result = _run("--json", missing, truncated, good, nan, low, short)
+    assert result.exit_code == 2
+    (obj,) = _json_lines(result.stdout)  # stdout holds only the good file's JSON
+    assert obj["file"] == str(good) and obj["channels"][0]["signal"] == "tone"
+    errors = result.stderr.strip().splitlines()
+    assert len(errors) == 5
+    for path, words in [
+        (missing, "no such file"),
+        (truncated, "truncated"),
+        (nan, "NaN"),
+        (low, "22050 Hz"),
+        (short, "too short"),
+    ]:
+        (line,) = [e for e in errors if str(path) in e]
+        assert words in line
+    assert _run(good).exit_code == 0
+
+
+def test_progress_bar_goes_to_stderr_only(tmp_path, monkeypatch):
+    import audiodsm.cli.analyze as cli_analyze
+
+    monkeypatch.setattr(cli_analyze, "PROGRESS_MIN_S", 0.5)
+    path = tmp_path / "p.wav"
+    sf.write(str(path), _tpdf(RATE, 2.0**-15, 7), RATE, subtype="PCM_16")
+    result = _run("--json", path)
+    assert result.exit_code == 0
+    assert "analyzing" in result.stderr
+    assert len(_json_lines(result.stdout)) == 1
+    quiet = _run("--json", "--no-progress", path)
+    assert quiet.stderr == ""
+
+
+def test_streamed_analysis_does_not_depend_on_block_size():
+    # The same signal cut into different blocks gives the same numbers (the meters and
+    # spectra carry their state between blocks).
+    n = 3 * RATE
+    t = np.arange(n) / RATE
+    x = np.stack(
+        [0.1 * np.sin(2 * np.pi * 997.0 * t), np.zeros(n)], axis=1
+    ) + np.random.default_rng(8).normal(0, 1e-5, (n, 2))
+
+    def run(block):
+        return analyze_blocks(
+            lambda: (x[i : i + block] for i in range(0, n, block)),
+            rate_hz=RATE,
+            channels=2,
+            n_frames=n,
+        )
+
+    a, b = run(RATE), run(50000)
+    for ca, cb in zip(a, b, strict=True):
+        da, db = ca.to_dict(), cb.to_dict()
+        assert da["signal"] == db["signal"]
+        for key in ("noise_dbfs", "noise_dbfs_a", "noise_dbfs_ccir", "level_dbfs"):
+            if da[key] is not None:
+                assert da[key] == pytest.approx(db[key], abs=1e-3)
+
+
+def test_spectral_noise_agrees_with_time_domain_meter():
+    # analyze reads noise from the residual's averaged spectrum; the time-domain path
+    # (audiodsm.measure.aes17.thd_plus_noise: fitted fundamental removed, AES17 band-limit
+    # filter, digital weighting filters) must agree on the same signal. Tolerance 0.1 dB:
+    # the filter's transition band above 20 kHz and the class-1 weighting filters against
+    # the ideal band and exact curves (bands.band_mask notes 0.1 dB on white noise).
+    from audiodsm.measure.aes17 import thd_plus_noise
+
+    n = 3 * RATE
+    t = np.arange(n) / RATE
+    x = 0.7 * np.sin(2 * np.pi * 997.0 * t + 1.0) + np.random.default_rng(12).normal(0, 3e-6, n)
+    (ch,) = analyze_blocks(lambda: iter([x[:, None]]), rate_hz=RATE, channels=1, n_frames=n)
+    for weighting, ours in (("unweighted", ch.thd_n_db), ("a", ch.thd_n_db_a)):
+        ref = thd_plus_noise(x, rate_hz=RATE, weighting=weighting)
+        assert ours == pytest.approx(ref.ratio_db, abs=0.1)
+    assert ch.level_dbfs == pytest.approx(20 * np.log10(0.7), abs=1e-4)
