@@ -39,6 +39,13 @@ AES17-practice metrics (``audiodsm.measure.aes17``)
     start_residual_meter, update_residual_meter, read_residual_meter,
     level_linearity, frequency_response, stepped_frequency_response,
     imd_smpte, imd_difference_frequency, out_of_band_power_dbfs, noise_modulation
+Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
+    find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
+    line_spectrum, SpectrumAccumulator, classify_channel, ChannelContent, analyze_blocks,
+    ChannelAnalysis
+Audio files (``audiodsm.io``)
+    read_audio, read_audio_span, audio_info, AudioInfo, iter_audio_blocks,
+    write_audio_atomic, open_audio_writer
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
 Chain profiles (``audiodsm.profile``)
@@ -53,6 +60,24 @@ __version__ = "0.1.0"
 
 # public name -> module that defines it
 _PUBLIC = {
+    "find_idle_tones": "audiodsm.measure.idle_tones",
+    "IdleToneResult": "audiodsm.measure.idle_tones",
+    "SpectralLine": "audiodsm.measure.idle_tones",
+    "line_threshold": "audiodsm.measure.idle_tones",
+    "welch_degrees_of_freedom": "audiodsm.measure.idle_tones",
+    "line_spectrum": "audiodsm.measure.idle_tones",
+    "SpectrumAccumulator": "audiodsm.measure.idle_tones",
+    "classify_channel": "audiodsm.measure.classify",
+    "ChannelContent": "audiodsm.measure.classify",
+    "analyze_blocks": "audiodsm.measure.classify",
+    "ChannelAnalysis": "audiodsm.measure.classify",
+    "read_audio": "audiodsm.io",
+    "read_audio_span": "audiodsm.io",
+    "audio_info": "audiodsm.io",
+    "AudioInfo": "audiodsm.io",
+    "iter_audio_blocks": "audiodsm.io",
+    "write_audio_atomic": "audiodsm.io",
+    "open_audio_writer": "audiodsm.io",
     "design_ntf": "audiodsm.design.ntf",
     "ntf_from_zeros_poles": "audiodsm.design.ntf",
     "NoiseTransfer": "audiodsm.design.ntf",

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 import click
 import numpy as np
 
-from audiodsm.errors import AudioFileError, ParameterError
+from audiodsm.errors import AudiodsmError, AudioFileError, ParameterError
 
 __all__ = ["FileAnalysis", "analyze_file", "format_table", "analyze"]
 
@@ -204,8 +204,8 @@ def analyze(files, as_json, no_progress):
     """
     from audiodsm.io import audio_info
 
-    bad = 0
-    for i, path in enumerate(files):
+    bad = printed = 0
+    for path in files:
         try:
             info = audio_info(path)
             show = (not no_progress) and info.duration_s >= PROGRESS_MIN_S
@@ -220,11 +220,16 @@ def analyze(files, as_json, no_progress):
             click.echo(f"audiodsm: error: {exc}", err=True)
             bad += 1
             continue
+        except AudiodsmError as exc:  # a measurement refused this file's content
+            click.echo(f"audiodsm: error: {path}: {exc}", err=True)
+            bad += 1
+            continue
         if as_json:
             click.echo(json.dumps(result.to_dict(), allow_nan=False))
         else:
-            if i:
+            if printed:
                 click.echo("")
             click.echo(format_table(result))
+        printed += 1
     if bad:
         sys.exit(2)
