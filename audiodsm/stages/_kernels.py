@@ -9,12 +9,927 @@ tests.
 
 from __future__ import annotations
 
-import numpy as np  # noqa: F401
-from numba import njit  # noqa: F401
+import math
+
+import numpy as np
+from numba import njit
 
 # ---------------------------------------------------------------------------------------------
 # Modulator loops (stages/modulator.py)
 # ---------------------------------------------------------------------------------------------
+
+# Every loop follows the update rule documented in audiodsm/design/realize.py. Coefficients
+# arrive as one array ``coef`` of shape (6, order), rows: leak d, chain gain k, resonator g,
+# feedback a, input gain b, quantizer-input weight c. Quantizer: ``levels`` output values
+# evenly spaced in [-1, 1]; for two levels v = copysign(1, w) (+1 for w >= +0, -1 below), an
+# exact and branch-free sign; otherwise the level index is
+# floor(w * (levels-1)/2 + (levels-1)/2 + 0.5) clipped to 0..levels-1, and v = index*step - 1.
+# TPDF dither: dither_scale * (r1 - r2), r1 and r2 uniform in [0, 1) from a counter-based
+# generator (SplitMix64 output function; G. L. Steele, D. Lea and C. H. Flood, "Fast
+# splittable pseudorandom number generators", OOPSLA 2014). The counter is the RNG state.
+# Guard: after each update, a sample is an overload when |y| > input_bound or any
+# |x[i]| > state_bound (or a value is not finite); then all states are zeroed (reset) or
+# each is clipped to +-state_bound (non-finite -> 0). Peaks are taken after the guard.
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+_MIX1 = np.uint64(0xBF58476D1CE4E5B9)
+_MIX2 = np.uint64(0x94D049BB133111EB)
+_S30 = np.uint64(30)
+_S27 = np.uint64(27)
+_S31 = np.uint64(31)
+_S11 = np.uint64(11)
+_INV_2_53 = 1.0 / 9007199254740992.0
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _unit_from_counter(counter):
+    """SplitMix64 output function of ``counter``, mapped to a float64 in [0, 1)."""
+    z = counter
+    z = (z ^ (z >> _S30)) * _MIX1
+    z = (z ^ (z >> _S27)) * _MIX2
+    z = z ^ (z >> _S31)
+    return float(z >> _S11) * _INV_2_53
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _clamp(x, bound):
+    """Clip ``x`` to [-bound, bound]; a non-finite value becomes 0."""
+    if x > bound:
+        return bound
+    if x < -bound:
+        return -bound
+    if x == x:
+        return x
+    return 0.0
+
+
+@njit(cache=True, nogil=True)
+def loop_any_structure(
+    u,
+    out,
+    coef,
+    state,
+    rng,
+    peaks,
+    counts,
+    structure,
+    levels,
+    dither_scale,
+    input_bound,
+    state_bound,
+    reset,
+    trace,
+):
+    """Run a loop of any order and structure over ``u``, writing the quantizer output to ``out``.
+
+    Parameters
+    ----------
+    u, out : float64 (n,)
+        Input and output samples.
+    coef : float64 (6, order)
+        Rows d, k, g, a, b, c (see the section comment).
+    state : float64 (order,)
+        Integrator states, updated in place.
+    rng : uint64 (1,)
+        Dither generator counter, updated in place.
+    peaks : float64 (order,)
+        Running peak |x[i]|, updated in place.
+    counts : int64 (1,)
+        Running count of overload samples, updated in place.
+    structure : int
+        0 feedback, 1 feedforward, 2 error feedback.
+    levels : int
+        Quantizer levels, 2..1024.
+    dither_scale : float
+        TPDF dither peak in full-scale units (0 = no dither).
+    input_bound, state_bound : float
+        Guard bounds on the quantizer input and on every state.
+    reset : bool
+        True: zero all states on overload; False: clip them.
+    trace : float64 (n, order) or (0, order)
+        When it has rows, the states after each sample are written to it.
+    """
+    order = state.shape[0]
+    last = order - 1
+    tracing = trace.shape[0] > 0
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    counter = rng[0]
+    overloads = counts[0]
+    x = state.copy()
+    for t in range(u.shape[0]):
+        ut = u[t]
+        if structure == 0:
+            y = x[last]
+        elif structure == 1:
+            y = 0.0
+            for i in range(order):
+                y = y + coef[5, i] * x[i]
+        else:
+            y = ut + x[last]
+        w = y
+        if dither_scale != 0.0:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if levels == 2:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        fed = x[last] + (v - y) if structure == 2 else v
+        for i in range(last, -1, -1):
+            if i > 0:
+                acc = (coef[0, i] * x[i] + coef[1, i] * x[i - 1]) - coef[3, i] * fed
+            else:
+                acc = (coef[0, 0] * x[0] + coef[4, 0] * ut) - coef[3, 0] * fed
+            if i < last:
+                acc = acc - coef[2, i] * x[i + 1]
+            x[i] = acc
+        ok = abs(y) <= input_bound
+        for i in range(order):
+            ok = ok and abs(x[i]) <= state_bound
+        if not ok:
+            overloads += 1
+            for i in range(order):
+                x[i] = 0.0 if reset else _clamp(x[i], state_bound)
+        for i in range(order):
+            peaks[i] = max(peaks[i], abs(x[i]))
+            if tracing:
+                trace[t, i] = x[i]
+    state[:] = x
+    rng[0] = counter
+    counts[0] = overloads
+
+
+# The feedback structure is the fast path: one kernel per order keeps every state in a local
+# scalar (a loop over a state array runs several times slower). They are written out from one
+# template (tests/test_kernels_modulator.py regenerates it and checks this text is current) and
+# compute exactly what loop_any_structure computes for structure 0.
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order1(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 1: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    a0 = coef[3, 0]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x0
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n0 = (d0 * x0 + b0 * u[t]) - a0 * v
+        x0 = n0
+        if not ((abs(y) <= input_bound) & (abs(x0) <= state_bound)):
+            overloads += 1
+            if reset:
+                x0 = 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+        p0 = max(p0, abs(x0))
+    state[0] = x0
+    peaks[0] = p0
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order2(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 2: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    a1 = coef[3, 1]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x1
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n1 = (d1 * x1 + k1 * x0) - a1 * v
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1 = n0, n1
+        if not ((abs(y) <= input_bound) & (abs(x0) <= state_bound) & (abs(x1) <= state_bound)):
+            overloads += 1
+            if reset:
+                x0, x1 = 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+    state[0] = x0
+    state[1] = x1
+    peaks[0] = p0
+    peaks[1] = p1
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order3(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 3: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    g1 = coef[2, 1]
+    a1 = coef[3, 1]
+    d2 = coef[0, 2]
+    k2 = coef[1, 2]
+    a2 = coef[3, 2]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    x2 = state[2]
+    p2 = peaks[2]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x2
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n2 = (d2 * x2 + k2 * x1) - a2 * v
+        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1, x2 = n0, n1, n2
+        if not (
+            (abs(y) <= input_bound)
+            & (abs(x0) <= state_bound)
+            & (abs(x1) <= state_bound)
+            & (abs(x2) <= state_bound)
+        ):
+            overloads += 1
+            if reset:
+                x0, x1, x2 = 0.0, 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+                x2 = _clamp(x2, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+        p2 = max(p2, abs(x2))
+    state[0] = x0
+    state[1] = x1
+    state[2] = x2
+    peaks[0] = p0
+    peaks[1] = p1
+    peaks[2] = p2
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order4(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 4: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    g1 = coef[2, 1]
+    a1 = coef[3, 1]
+    d2 = coef[0, 2]
+    k2 = coef[1, 2]
+    g2 = coef[2, 2]
+    a2 = coef[3, 2]
+    d3 = coef[0, 3]
+    k3 = coef[1, 3]
+    a3 = coef[3, 3]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    x2 = state[2]
+    p2 = peaks[2]
+    x3 = state[3]
+    p3 = peaks[3]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x3
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n3 = (d3 * x3 + k3 * x2) - a3 * v
+        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
+        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1, x2, x3 = n0, n1, n2, n3
+        if not (
+            (abs(y) <= input_bound)
+            & (abs(x0) <= state_bound)
+            & (abs(x1) <= state_bound)
+            & (abs(x2) <= state_bound)
+            & (abs(x3) <= state_bound)
+        ):
+            overloads += 1
+            if reset:
+                x0, x1, x2, x3 = 0.0, 0.0, 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+                x2 = _clamp(x2, state_bound)
+                x3 = _clamp(x3, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+        p2 = max(p2, abs(x2))
+        p3 = max(p3, abs(x3))
+    state[0] = x0
+    state[1] = x1
+    state[2] = x2
+    state[3] = x3
+    peaks[0] = p0
+    peaks[1] = p1
+    peaks[2] = p2
+    peaks[3] = p3
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order5(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 5: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    g1 = coef[2, 1]
+    a1 = coef[3, 1]
+    d2 = coef[0, 2]
+    k2 = coef[1, 2]
+    g2 = coef[2, 2]
+    a2 = coef[3, 2]
+    d3 = coef[0, 3]
+    k3 = coef[1, 3]
+    g3 = coef[2, 3]
+    a3 = coef[3, 3]
+    d4 = coef[0, 4]
+    k4 = coef[1, 4]
+    a4 = coef[3, 4]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    x2 = state[2]
+    p2 = peaks[2]
+    x3 = state[3]
+    p3 = peaks[3]
+    x4 = state[4]
+    p4 = peaks[4]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x4
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n4 = (d4 * x4 + k4 * x3) - a4 * v
+        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
+        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
+        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1, x2, x3, x4 = n0, n1, n2, n3, n4
+        if not (
+            (abs(y) <= input_bound)
+            & (abs(x0) <= state_bound)
+            & (abs(x1) <= state_bound)
+            & (abs(x2) <= state_bound)
+            & (abs(x3) <= state_bound)
+            & (abs(x4) <= state_bound)
+        ):
+            overloads += 1
+            if reset:
+                x0, x1, x2, x3, x4 = 0.0, 0.0, 0.0, 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+                x2 = _clamp(x2, state_bound)
+                x3 = _clamp(x3, state_bound)
+                x4 = _clamp(x4, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+        p2 = max(p2, abs(x2))
+        p3 = max(p3, abs(x3))
+        p4 = max(p4, abs(x4))
+    state[0] = x0
+    state[1] = x1
+    state[2] = x2
+    state[3] = x3
+    state[4] = x4
+    peaks[0] = p0
+    peaks[1] = p1
+    peaks[2] = p2
+    peaks[3] = p3
+    peaks[4] = p4
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order6(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 6: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    g1 = coef[2, 1]
+    a1 = coef[3, 1]
+    d2 = coef[0, 2]
+    k2 = coef[1, 2]
+    g2 = coef[2, 2]
+    a2 = coef[3, 2]
+    d3 = coef[0, 3]
+    k3 = coef[1, 3]
+    g3 = coef[2, 3]
+    a3 = coef[3, 3]
+    d4 = coef[0, 4]
+    k4 = coef[1, 4]
+    g4 = coef[2, 4]
+    a4 = coef[3, 4]
+    d5 = coef[0, 5]
+    k5 = coef[1, 5]
+    a5 = coef[3, 5]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    x2 = state[2]
+    p2 = peaks[2]
+    x3 = state[3]
+    p3 = peaks[3]
+    x4 = state[4]
+    p4 = peaks[4]
+    x5 = state[5]
+    p5 = peaks[5]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x5
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n5 = (d5 * x5 + k5 * x4) - a5 * v
+        n4 = ((d4 * x4 + k4 * x3) - a4 * v) - g4 * n5
+        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
+        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
+        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1, x2, x3, x4, x5 = n0, n1, n2, n3, n4, n5
+        if not (
+            (abs(y) <= input_bound)
+            & (abs(x0) <= state_bound)
+            & (abs(x1) <= state_bound)
+            & (abs(x2) <= state_bound)
+            & (abs(x3) <= state_bound)
+            & (abs(x4) <= state_bound)
+            & (abs(x5) <= state_bound)
+        ):
+            overloads += 1
+            if reset:
+                x0, x1, x2, x3, x4, x5 = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+                x2 = _clamp(x2, state_bound)
+                x3 = _clamp(x3, state_bound)
+                x4 = _clamp(x4, state_bound)
+                x5 = _clamp(x5, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+        p2 = max(p2, abs(x2))
+        p3 = max(p3, abs(x3))
+        p4 = max(p4, abs(x4))
+        p5 = max(p5, abs(x5))
+    state[0] = x0
+    state[1] = x1
+    state[2] = x2
+    state[3] = x3
+    state[4] = x4
+    state[5] = x5
+    peaks[0] = p0
+    peaks[1] = p1
+    peaks[2] = p2
+    peaks[3] = p3
+    peaks[4] = p4
+    peaks[5] = p5
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order7(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 7: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    g1 = coef[2, 1]
+    a1 = coef[3, 1]
+    d2 = coef[0, 2]
+    k2 = coef[1, 2]
+    g2 = coef[2, 2]
+    a2 = coef[3, 2]
+    d3 = coef[0, 3]
+    k3 = coef[1, 3]
+    g3 = coef[2, 3]
+    a3 = coef[3, 3]
+    d4 = coef[0, 4]
+    k4 = coef[1, 4]
+    g4 = coef[2, 4]
+    a4 = coef[3, 4]
+    d5 = coef[0, 5]
+    k5 = coef[1, 5]
+    g5 = coef[2, 5]
+    a5 = coef[3, 5]
+    d6 = coef[0, 6]
+    k6 = coef[1, 6]
+    a6 = coef[3, 6]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    x2 = state[2]
+    p2 = peaks[2]
+    x3 = state[3]
+    p3 = peaks[3]
+    x4 = state[4]
+    p4 = peaks[4]
+    x5 = state[5]
+    p5 = peaks[5]
+    x6 = state[6]
+    p6 = peaks[6]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x6
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n6 = (d6 * x6 + k6 * x5) - a6 * v
+        n5 = ((d5 * x5 + k5 * x4) - a5 * v) - g5 * n6
+        n4 = ((d4 * x4 + k4 * x3) - a4 * v) - g4 * n5
+        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
+        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
+        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1, x2, x3, x4, x5, x6 = n0, n1, n2, n3, n4, n5, n6
+        if not (
+            (abs(y) <= input_bound)
+            & (abs(x0) <= state_bound)
+            & (abs(x1) <= state_bound)
+            & (abs(x2) <= state_bound)
+            & (abs(x3) <= state_bound)
+            & (abs(x4) <= state_bound)
+            & (abs(x5) <= state_bound)
+            & (abs(x6) <= state_bound)
+        ):
+            overloads += 1
+            if reset:
+                x0, x1, x2, x3, x4, x5, x6 = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+                x2 = _clamp(x2, state_bound)
+                x3 = _clamp(x3, state_bound)
+                x4 = _clamp(x4, state_bound)
+                x5 = _clamp(x5, state_bound)
+                x6 = _clamp(x6, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+        p2 = max(p2, abs(x2))
+        p3 = max(p3, abs(x3))
+        p4 = max(p4, abs(x4))
+        p5 = max(p5, abs(x5))
+        p6 = max(p6, abs(x6))
+    state[0] = x0
+    state[1] = x1
+    state[2] = x2
+    state[3] = x3
+    state[4] = x4
+    state[5] = x5
+    state[6] = x6
+    peaks[0] = p0
+    peaks[1] = p1
+    peaks[2] = p2
+    peaks[3] = p3
+    peaks[4] = p4
+    peaks[5] = p5
+    peaks[6] = p6
+    rng[0] = counter
+    counts[0] = overloads
+
+
+@njit(cache=True, nogil=True)
+def feedback_loop_order8(
+    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
+):
+    """Feedback loop of order 8: same arguments and result as ``loop_any_structure``."""
+    d0 = coef[0, 0]
+    g0 = coef[2, 0]
+    a0 = coef[3, 0]
+    d1 = coef[0, 1]
+    k1 = coef[1, 1]
+    g1 = coef[2, 1]
+    a1 = coef[3, 1]
+    d2 = coef[0, 2]
+    k2 = coef[1, 2]
+    g2 = coef[2, 2]
+    a2 = coef[3, 2]
+    d3 = coef[0, 3]
+    k3 = coef[1, 3]
+    g3 = coef[2, 3]
+    a3 = coef[3, 3]
+    d4 = coef[0, 4]
+    k4 = coef[1, 4]
+    g4 = coef[2, 4]
+    a4 = coef[3, 4]
+    d5 = coef[0, 5]
+    k5 = coef[1, 5]
+    g5 = coef[2, 5]
+    a5 = coef[3, 5]
+    d6 = coef[0, 6]
+    k6 = coef[1, 6]
+    g6 = coef[2, 6]
+    a6 = coef[3, 6]
+    d7 = coef[0, 7]
+    k7 = coef[1, 7]
+    a7 = coef[3, 7]
+    b0 = coef[4, 0]
+    x0 = state[0]
+    p0 = peaks[0]
+    x1 = state[1]
+    p1 = peaks[1]
+    x2 = state[2]
+    p2 = peaks[2]
+    x3 = state[3]
+    p3 = peaks[3]
+    x4 = state[4]
+    p4 = peaks[4]
+    x5 = state[5]
+    p5 = peaks[5]
+    x6 = state[6]
+    p6 = peaks[6]
+    x7 = state[7]
+    p7 = peaks[7]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    dithered = dither_scale != 0.0
+    single_bit = levels == 2
+    counter = rng[0]
+    overloads = counts[0]
+    for t in range(u.shape[0]):
+        y = x7
+        w = y
+        if dithered:
+            counter += _GOLDEN
+            r1 = _unit_from_counter(counter)
+            counter += _GOLDEN
+            r2 = _unit_from_counter(counter)
+            w = y + dither_scale * (r1 - r2)
+        if single_bit:
+            v = math.copysign(1.0, w)
+        else:
+            q = np.floor(w * half + offset)
+            q = min(max(q, 0.0), top)
+            v = q * step - 1.0
+        out[t] = v
+        n7 = (d7 * x7 + k7 * x6) - a7 * v
+        n6 = ((d6 * x6 + k6 * x5) - a6 * v) - g6 * n7
+        n5 = ((d5 * x5 + k5 * x4) - a5 * v) - g5 * n6
+        n4 = ((d4 * x4 + k4 * x3) - a4 * v) - g4 * n5
+        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
+        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
+        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
+        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
+        x0, x1, x2, x3, x4, x5, x6, x7 = n0, n1, n2, n3, n4, n5, n6, n7
+        if not (
+            (abs(y) <= input_bound)
+            & (abs(x0) <= state_bound)
+            & (abs(x1) <= state_bound)
+            & (abs(x2) <= state_bound)
+            & (abs(x3) <= state_bound)
+            & (abs(x4) <= state_bound)
+            & (abs(x5) <= state_bound)
+            & (abs(x6) <= state_bound)
+            & (abs(x7) <= state_bound)
+        ):
+            overloads += 1
+            if reset:
+                x0, x1, x2, x3, x4, x5, x6, x7 = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
+            else:
+                x0 = _clamp(x0, state_bound)
+                x1 = _clamp(x1, state_bound)
+                x2 = _clamp(x2, state_bound)
+                x3 = _clamp(x3, state_bound)
+                x4 = _clamp(x4, state_bound)
+                x5 = _clamp(x5, state_bound)
+                x6 = _clamp(x6, state_bound)
+                x7 = _clamp(x7, state_bound)
+        p0 = max(p0, abs(x0))
+        p1 = max(p1, abs(x1))
+        p2 = max(p2, abs(x2))
+        p3 = max(p3, abs(x3))
+        p4 = max(p4, abs(x4))
+        p5 = max(p5, abs(x5))
+        p6 = max(p6, abs(x6))
+        p7 = max(p7, abs(x7))
+    state[0] = x0
+    state[1] = x1
+    state[2] = x2
+    state[3] = x3
+    state[4] = x4
+    state[5] = x5
+    state[6] = x6
+    state[7] = x7
+    peaks[0] = p0
+    peaks[1] = p1
+    peaks[2] = p2
+    peaks[3] = p3
+    peaks[4] = p4
+    peaks[5] = p5
+    peaks[6] = p6
+    peaks[7] = p7
+    rng[0] = counter
+    counts[0] = overloads
+
+
+FEEDBACK_LOOPS = (
+    None,
+    feedback_loop_order1,
+    feedback_loop_order2,
+    feedback_loop_order3,
+    feedback_loop_order4,
+    feedback_loop_order5,
+    feedback_loop_order6,
+    feedback_loop_order7,
+    feedback_loop_order8,
+)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -174,7 +1089,6 @@ def resample_rational(buf, phases, lengths, first_time, step, out):
 # ---------------------------------------------------------------------------------------------
 
 
-
 @njit(cache=True, nogil=True)
 def pwm_segments(
     codes_a,
@@ -297,7 +1211,6 @@ def pwm_segments(
                 levels[i, j] = volts * (2.0 * high_a - 1.0)
             else:
                 levels[i, j] = volts * (float(high_a) - float(high_b))
-
 
 
 # ---------------------------------------------------------------------------------------------
@@ -435,7 +1348,6 @@ def zoh_modal_steps_real_pair(
     xr[0] = x0
     xp[0, 0] = re
     xp[0, 1] = im
-
 
 
 # ---------------------------------------------------------------------------------------------

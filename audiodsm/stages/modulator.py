@@ -1,0 +1,544 @@
+"""The delta-sigma modulator stage: a realized loop, its quantizer, dither and overload guard.
+
+:class:`Modulator` runs the compiled loops of :mod:`audiodsm.stages._kernels` over audio at the
+modulator rate, block by block with explicit state. :func:`max_stable_amplitude` and
+:func:`find_stability_limit` search the largest input sine the loop handles, and
+:func:`scale_states` rescales the integrators for it.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.signal import windows
+
+from audiodsm.design.ntf import NoiseTransfer
+from audiodsm.design.realize import STRUCTURES, LoopRealization, realize_ntf
+from audiodsm.errors import ParameterError
+from audiodsm.stages import _kernels
+
+__all__ = [
+    "GUARD_ACTIONS",
+    "Modulator",
+    "ModulatorState",
+    "StabilityLimit",
+    "find_stability_limit",
+    "max_stable_amplitude",
+    "scale_states",
+]
+
+GUARD_ACTIONS = ("reset", "clamp")
+_STRUCTURE_CODE = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
+_GOLDEN = 0x9E3779B97F4A7C15
+_MASK = (1 << 64) - 1
+
+
+def _splitmix(value: int) -> int:
+    """SplitMix64 output function on a Python int (used to derive per-channel seeds)."""
+    z = value & _MASK
+    z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _MASK
+    z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _MASK
+    return z ^ (z >> 31)
+
+
+def _readonly(a: np.ndarray) -> np.ndarray:
+    a = np.array(a, copy=True)
+    a.setflags(write=False)
+    return a
+
+
+@dataclass(frozen=True, eq=False)
+class ModulatorState:
+    """Everything a :class:`Modulator` carries from one block to the next (a frozen value).
+
+    Attributes
+    ----------
+    integrators : ndarray, shape (channels, order)
+        Integrator states.
+    rng_counter : ndarray of uint64, shape (channels,)
+        Counter of each channel's dither generator.
+    overload_count : ndarray of int64, shape (channels,)
+        Samples so far on which the guard acted.
+    state_peak : ndarray, shape (channels, order)
+        Largest |state| seen so far (after the guard).
+    samples : int
+        Samples per channel processed so far.
+    """
+
+    integrators: np.ndarray
+    rng_counter: np.ndarray
+    overload_count: np.ndarray
+    state_peak: np.ndarray
+    samples: int = 0
+
+    @property
+    def channels(self) -> int:
+        """Number of channels this state belongs to."""
+        return self.integrators.shape[0]
+
+
+class Modulator:
+    """A delta-sigma modulator: loop, quantizer, optional TPDF dither and an overload guard.
+
+    Parameters
+    ----------
+    ntf : NoiseTransfer or LoopRealization
+        The noise transfer function to realize, or an already realized (e.g. scaled) loop.
+    structure : str
+        One of ``STRUCTURES`` (ignored when ``ntf`` is a ``LoopRealization``).
+    levels : int
+        Quantizer output levels, 2 (single bit) to 1024, evenly spaced in [-1, 1].
+    dither_lsb : float
+        TPDF dither added before the quantizer, peak amplitude in quantizer steps (LSB);
+        1.0 is the classic 2-LSB peak-to-peak TPDF. 0 disables it.
+    seed : int
+        Seed of the dither generators (channel ``c`` derives its own stream from it).
+    guard : str
+        What to do on overload: ``"reset"`` zeroes all states, ``"clamp"`` clips each state.
+    state_bound : float
+        Overload when any |state| exceeds this (default 1e6: unscaled feedforward loops keep
+        large states in their last integrators; a few times the bound suits scaled loops).
+    input_bound : float
+        Overload when |quantizer input| exceeds this (default 8 full-scale units: a loop whose
+        quantizer input is that far outside [-1, 1] has lost control).
+
+    Notes
+    -----
+    ``run`` returns the quantizer output in full-scale units. The guard checks every sample;
+    ``ModulatorState.overload_count`` counts the samples it acted on.
+    """
+
+    def __init__(
+        self,
+        ntf,
+        structure: str = "feedback",
+        levels: int = 2,
+        dither_lsb: float = 0.0,
+        seed: int = 0,
+        guard: str = "reset",
+        state_bound: float = 1.0e6,
+        input_bound: float = 8.0,
+    ):
+        if isinstance(ntf, LoopRealization):
+            loop = ntf
+        elif isinstance(ntf, NoiseTransfer):
+            if structure not in STRUCTURES:
+                raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")
+            loop = realize_ntf(ntf, structure)
+        else:
+            raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer or LoopRealization")
+        if isinstance(levels, bool) or not isinstance(levels, int | np.integer):
+            raise ParameterError("levels", levels, "an integer from 2 to 1024")
+        if not 2 <= levels <= 1024:
+            raise ParameterError("levels", levels, "an integer from 2 to 1024")
+        if not (np.isfinite(dither_lsb) and dither_lsb >= 0):
+            raise ParameterError("dither_lsb", dither_lsb, "a finite number >= 0")
+        if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
+            raise ParameterError("seed", seed, "an integer >= 0")
+        if guard not in GUARD_ACTIONS:
+            raise ParameterError("guard", guard, f"one of {', '.join(GUARD_ACTIONS)}")
+        for name, value in (("state_bound", state_bound), ("input_bound", input_bound)):
+            if not (np.isfinite(value) and value > 0):
+                raise ParameterError(name, value, "a finite number > 0")
+        self.loop = loop
+        self.levels = int(levels)
+        self.dither_lsb = float(dither_lsb)
+        self.seed = int(seed)
+        self.guard = guard
+        self.state_bound = float(state_bound)
+        self.input_bound = float(input_bound)
+        self._coef = np.ascontiguousarray(
+            np.vstack(
+                [
+                    loop.leak,
+                    loop.chain_gain,
+                    loop.resonator,
+                    loop.feedback,
+                    loop.input_gain,
+                    loop.output_weight,
+                ]
+            ),
+            dtype=np.float64,
+        )
+
+    @property
+    def structure(self) -> str:
+        """The loop structure."""
+        return self.loop.structure
+
+    @property
+    def order(self) -> int:
+        """The loop order."""
+        return self.loop.order
+
+    @property
+    def step(self) -> float:
+        """Quantizer step (one LSB) in full-scale units, ``2 / (levels - 1)``."""
+        return 2.0 / (self.levels - 1)
+
+    def __repr__(self) -> str:
+        return (
+            f"Modulator(order={self.order}, structure={self.structure!r}, levels={self.levels}, "
+            f"dither_lsb={self.dither_lsb}, guard={self.guard!r})"
+        )
+
+    def initial_state(self, channels: int = 1) -> ModulatorState:
+        """The state before the first sample: zero integrators, seeded dither counters."""
+        counters = np.array(
+            [_splitmix(self.seed * 0x100000001 + c + 1) for c in range(channels)], dtype=np.uint64
+        )
+        return ModulatorState(
+            integrators=_readonly(np.zeros((channels, self.order))),
+            rng_counter=_readonly(counters),
+            overload_count=_readonly(np.zeros(channels, dtype=np.int64)),
+            state_peak=_readonly(np.zeros((channels, self.order))),
+            samples=0,
+        )
+
+    def _check(self, x, state):
+        x = np.asarray(x)
+        if x.ndim not in (1, 2):
+            raise ParameterError("x.shape", x.shape, "(frames,) or (frames, channels)")
+        if not np.issubdtype(x.dtype, np.number) or np.iscomplexobj(x):
+            raise ParameterError("x.dtype", str(x.dtype), "real numbers")
+        x2 = x.reshape(len(x), -1).astype(np.float64, copy=False)
+        if x2.shape[1] == 0:
+            raise ParameterError("x.shape", x.shape, "at least one channel")
+        if not np.all(np.isfinite(x2)):
+            bad = int(np.flatnonzero(~np.isfinite(x2).all(axis=1))[0])
+            raise ParameterError("x", f"non-finite sample at frame {bad}", "finite samples")
+        channels = x2.shape[1]
+        if state is None:
+            state = self.initial_state(channels)
+        elif not isinstance(state, ModulatorState):
+            raise ParameterError("state", type(state).__name__, "a ModulatorState or None")
+        elif state.integrators.shape != (channels, self.order):
+            raise ParameterError(
+                "state",
+                f"shape {state.integrators.shape}",
+                f"a state for {channels} channel(s) of a loop of order {self.order}",
+            )
+        return x, x2, state
+
+    def _run_channel(self, u, state_row, counter, peak_row, count, trace):
+        out = np.empty(len(u))
+        st = np.array(state_row, dtype=np.float64)
+        rng = np.array([counter], dtype=np.uint64)
+        peaks = np.array(peak_row, dtype=np.float64)
+        counts = np.array([count], dtype=np.int64)
+        u = np.ascontiguousarray(u, dtype=np.float64)
+        args = (self.levels, self.dither_lsb * self.step, self.input_bound, self.state_bound)
+        reset = self.guard == "reset"
+        if trace is None and self.structure == "feedback":
+            _kernels.FEEDBACK_LOOPS[self.order](
+                u, out, self._coef, st, rng, peaks, counts, *args, reset
+            )
+        else:
+            tr = np.empty((0, self.order)) if trace is None else trace
+            _kernels.loop_any_structure(
+                u,
+                out,
+                self._coef,
+                st,
+                rng,
+                peaks,
+                counts,
+                _STRUCTURE_CODE[self.structure],
+                *args,
+                reset,
+                tr,
+            )
+        return out, st, rng[0], peaks, counts[0]
+
+    def _process(self, x, state, want_trace):
+        x, x2, state = self._check(x, state)
+        n, channels = x2.shape
+        traces = [np.empty((n, self.order)) if want_trace else None for _ in range(channels)]
+
+        def one(c):
+            return self._run_channel(
+                x2[:, c],
+                state.integrators[c],
+                state.rng_counter[c],
+                state.state_peak[c],
+                state.overload_count[c],
+                traces[c],
+            )
+
+        if channels > 1 and n > 0:
+            workers = min(channels, os.cpu_count() or 1)
+            with ThreadPoolExecutor(max_workers=workers) as pool:
+                results = list(pool.map(one, range(channels)))
+        else:
+            results = [one(c) for c in range(channels)]
+        y = np.empty((n, channels))
+        for c, r in enumerate(results):
+            y[:, c] = r[0]
+        new_state = ModulatorState(
+            integrators=_readonly(np.array([r[1] for r in results])),
+            rng_counter=_readonly(np.array([r[2] for r in results], dtype=np.uint64)),
+            state_peak=_readonly(np.array([r[3] for r in results])),
+            overload_count=_readonly(np.array([r[4] for r in results], dtype=np.int64)),
+            samples=state.samples + n,
+        )
+        if x.ndim == 1:
+            y = y[:, 0]
+        return y, new_state, traces
+
+    def run(self, x, state: ModulatorState | None = None) -> tuple[np.ndarray, ModulatorState]:
+        """Modulate ``x`` (full-scale units at the modulator rate).
+
+        Parameters
+        ----------
+        x : array_like, shape (frames,) or (frames, channels)
+            Input samples, finite. Channels are independent and run in parallel threads.
+        state : ModulatorState or None
+            The state returned by the previous call, or None to start from rest.
+
+        Returns
+        -------
+        y : ndarray, same shape as ``x``
+            Quantizer output, values in ``-1 + step * k``, ``k = 0 .. levels-1``.
+        state : ModulatorState
+            The state after the last sample. Running ``x`` in blocks and passing the state on
+            gives the same ``y``, bit for bit, as one call.
+        """
+        y, new_state, _ = self._process(x, state, False)
+        return y, new_state
+
+    def process(self, x, state: ModulatorState | None = None):
+        """Same as :meth:`run` (the stage interface ``process(x, state) -> (y, state)``)."""
+        return self.run(x, state)
+
+    def trace_states(self, x, state: ModulatorState | None = None):
+        """Run like :meth:`run` and also return the integrator states after every sample.
+
+        Returns
+        -------
+        y : ndarray
+            As from :meth:`run`.
+        states : ndarray, shape (frames, order) or (frames, channels, order)
+            Integrator states after each sample (after the guard).
+        """
+        y, _, traces = self._process(x, state, True)
+        states = traces[0] if np.ndim(x) == 1 else np.stack(traces, axis=1)
+        return y, states
+
+
+@dataclass(frozen=True)
+class StabilityLimit:
+    """Result of :func:`find_stability_limit`.
+
+    Attributes
+    ----------
+    amplitude : float
+        Largest sine amplitude (fraction of full scale) judged stable.
+    state_peak : ndarray, shape (order,)
+        Peak |state| of each integrator in the run at that amplitude.
+    sqnr_db : float
+        In-band SQNR at that amplitude.
+    reference_sqnr_db : float
+        In-band SQNR at the small reference amplitude.
+    frequency : float
+        Test frequency in cycles per modulator sample.
+    """
+
+    amplitude: float
+    state_peak: np.ndarray
+    sqnr_db: float
+    reference_sqnr_db: float
+    frequency: float
+
+
+def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
+    """SQNR of output ``y`` in the band 0..0.5/osr: tone bins vs the rest of the band.
+
+    The spectrum is taken with a 4-term Blackman-Harris window; the tone occupies bins
+    ``bin_index +- 4``; DC bins 0..3 are excluded from the noise.
+    """
+    n = len(y)
+    win = windows.blackmanharris(n, sym=False)
+    spec = np.abs(np.fft.rfft(y * win)) ** 2
+    edge = int(np.floor(n * 0.5 / osr))
+    tone = slice(bin_index - 4, bin_index + 5)
+    signal = spec[tone].sum()
+    band = spec[4 : edge + 1].sum()
+    noise = max(band - spec[max(tone.start, 4) : tone.stop].sum(), 1e-300)
+    return float(10 * np.log10(signal / noise))
+
+
+def _probe(modulator: Modulator, amplitude: float, freq_bin: int, n: int, settle: int, osr):
+    total = n + settle
+    t = np.arange(total)
+    x = amplitude * np.sin(2 * np.pi * freq_bin * t / n)
+    y, st = modulator.run(x)
+    sqnr = _in_band_sqnr_db(y[settle:], freq_bin, osr)
+    return sqnr, st
+
+
+def find_stability_limit(
+    modulator: Modulator,
+    *,
+    osr: float,
+    samples: int = 32768,
+    collapse_db: float = 6.0,
+    reference_dbfs: float = -40.0,
+    resolution: float = 0.002,
+) -> StabilityLimit:
+    """Search the largest stable input sine amplitude of a modulator by bisection.
+
+    Criterion: an amplitude ``A`` is stable when a run of ``samples`` samples (after a settling
+    run of ``samples/8``) of a sine at ``A`` has no overload (the guard never acted) and its
+    in-band SQNR is no more than ``collapse_db`` below the SQNR expected from the reference
+    run, ``SQNR_ref + 20 log10(A / A_ref)`` (the in-band noise has not risen by more than
+    ``collapse_db``). The test tone lies on an exact FFT bin near a fifth of the band edge
+    ``0.5/osr``. The runs are deterministic (dither, if any, comes from the modulator's seed).
+
+    Parameters
+    ----------
+    modulator : Modulator
+        The loop to test (its guard bounds define an overload).
+    osr : float, keyword-only
+        Oversampling ratio; the band is 0..0.5/osr cycles per sample.
+    samples : int
+        Samples analysed per run (a power of two is fastest).
+    collapse_db : float
+        Allowed rise of in-band noise over the reference.
+    reference_dbfs : float
+        Level of the reference run.
+    resolution : float
+        Bisection stops when the bracket is narrower than this (fraction of full scale).
+
+    Returns
+    -------
+    StabilityLimit
+        The amplitude, the state peaks there, and the SQNRs.
+
+    References
+    ----------
+    R. Schreier and G. C. Temes, *Understanding Delta-Sigma Data Converters*, 2005, ch. 4
+    (maximum stable amplitude found by simulation; noise rise as the sign of overload).
+    """
+    if not (np.isfinite(osr) and osr >= 4):
+        raise ParameterError("osr", osr, "a number >= 4")
+    if not (isinstance(samples, int | np.integer) and samples >= 1024):
+        raise ParameterError("samples", samples, "an integer >= 1024")
+    edge_bin = samples * 0.5 / osr
+    if edge_bin < 20:
+        raise ParameterError("samples", samples, f"at least {int(np.ceil(40 * osr))} for osr={osr}")
+    freq_bin = max(int(round(edge_bin / 5)) | 1, 9)
+    settle = samples // 8
+    ref_amp = 10 ** (reference_dbfs / 20)
+    ref_sqnr, _ = _probe(modulator, ref_amp, freq_bin, samples, settle, osr)
+
+    def judge(amp):
+        sqnr, st = _probe(modulator, amp, freq_bin, samples, settle, osr)
+        expected = ref_sqnr + 20 * np.log10(amp / ref_amp)
+        ok = int(st.overload_count[0]) == 0 and sqnr >= expected - collapse_db
+        return ok, sqnr, st
+
+    lo, hi = ref_amp, 1.0
+    ok_hi, sqnr_hi, st_hi = judge(hi)
+    if ok_hi:
+        best = (hi, sqnr_hi, st_hi)
+    else:
+        ok_lo, sqnr_lo, st_lo = judge(lo)
+        if not ok_lo:
+            return StabilityLimit(
+                0.0, np.zeros(modulator.order), sqnr_lo, ref_sqnr, freq_bin / samples
+            )
+        best = (lo, sqnr_lo, st_lo)
+        while hi - lo > resolution:
+            mid = 0.5 * (lo + hi)
+            ok, sqnr, st = judge(mid)
+            if ok:
+                lo, best = mid, (mid, sqnr, st)
+            else:
+                hi = mid
+    amp, sqnr, st = best
+    return StabilityLimit(
+        amplitude=float(amp),
+        state_peak=np.array(st.state_peak[0]),
+        sqnr_db=float(sqnr),
+        reference_sqnr_db=float(ref_sqnr),
+        frequency=freq_bin / samples,
+    )
+
+
+def max_stable_amplitude(modulator: Modulator, *, osr: float, **options) -> float:
+    """Largest stable sine amplitude (fraction of full scale); see :func:`find_stability_limit`.
+
+    Parameters
+    ----------
+    modulator : Modulator
+        The loop to test.
+    osr : float, keyword-only
+        Oversampling ratio.
+    **options
+        Passed on to :func:`find_stability_limit` (``samples``, ``collapse_db``, ...).
+
+    Returns
+    -------
+    float
+        The amplitude.
+    """
+    return find_stability_limit(modulator, osr=osr, **options).amplitude
+
+
+def scale_states(
+    modulator: Modulator, *, osr: float, bound: float = 1.0, **options
+) -> tuple[Modulator, StabilityLimit]:
+    """Rescale the loop's integrators so each peaks at ``bound`` at the maximum stable amplitude.
+
+    The stability limit is found on ``modulator``; its state peaks there give the diagonal
+    similarity transform (:meth:`LoopRealization.scaled`), which leaves the NTF unchanged. The
+    scaled loop is then run again at the same amplitude and its peaks reported.
+
+    Parameters
+    ----------
+    modulator : Modulator
+        The loop to scale.
+    osr : float, keyword-only
+        Oversampling ratio for the stability search.
+    bound : float, keyword-only
+        Target peak of each state.
+    **options
+        Passed on to :func:`find_stability_limit`.
+
+    Returns
+    -------
+    scaled : Modulator
+        Same settings, scaled loop.
+    limit : StabilityLimit
+        For the scaled loop at the amplitude found: ``state_peak`` are the simulated peaks
+        after scaling (close to ``bound``; the quantizer-facing state of the feedback and
+        error-feedback loops keeps its own size).
+    """
+    limit = find_stability_limit(modulator, osr=osr, **options)
+    if limit.amplitude <= 0:
+        raise ParameterError("modulator", repr(modulator), "a loop stable for some input")
+    peaks = np.where(limit.state_peak > 0, limit.state_peak, 1.0)
+    loop = modulator.loop.scaled(peaks, bound=bound)
+    scaled = Modulator(
+        loop,
+        levels=modulator.levels,
+        dither_lsb=modulator.dither_lsb,
+        seed=modulator.seed,
+        guard=modulator.guard,
+        state_bound=modulator.state_bound,
+        input_bound=modulator.input_bound,
+    )
+    samples = options.get("samples", 32768)
+    freq_bin = int(round(limit.frequency * samples))
+    sqnr, st = _probe(scaled, limit.amplitude, freq_bin, samples, samples // 8, osr)
+    after = StabilityLimit(
+        amplitude=limit.amplitude,
+        state_peak=np.array(st.state_peak[0]),
+        sqnr_db=sqnr,
+        reference_sqnr_db=limit.reference_sqnr_db,
+        frequency=limit.frequency,
+    )
+    return scaled, after
