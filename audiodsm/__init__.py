@@ -8,7 +8,8 @@ Noise-transfer design (``audiodsm.design.ntf``)
 Loop realization (``audiodsm.design.realize``)
     realize_ntf, LoopRealization, STRUCTURES
 Modulation (``audiodsm.stages.modulator``)
-    Modulator, ModulatorState, max_stable_amplitude
+    Modulator, ModulatorState, max_stable_amplitude, find_stability_limit, StabilityLimit,
+    scale_states
 Rate conversion (``audiodsm.stages.upsample``)
     design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
@@ -114,6 +115,9 @@ _PUBLIC = {
     "RippleReport": "audiodsm.stages.reconstruct",
     "filter_report": "audiodsm.stages.reconstruct",
     "FilterReport": "audiodsm.stages.reconstruct",
+    "find_stability_limit": "audiodsm.stages.modulator",
+    "StabilityLimit": "audiodsm.stages.modulator",
+    "scale_states": "audiodsm.stages.modulator",
     "ChainProfile": "audiodsm.profile",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",

@@ -217,7 +217,10 @@ class LoopRealization:
         ``z = 1``); poles are the eigenvalues of the closed-loop state matrix of
         :meth:`state_space`.
         """
-        poles = np.linalg.eigvals(self.state_space().closed_loop())
+        acl = self.state_space().closed_loop()
+        # eigenvalues of A_cl - I, shifted back: the poles crowd near z = 1, and this keeps
+        # their distance to 1 (which sets the in-band gain) accurate
+        poles = np.linalg.eigvals(acl - np.eye(self.order)) + 1.0
         return NoiseTransfer(zeros=self.loop_zeros(), poles=poles.astype(complex))
 
     def scaled(self, peaks, *, bound: float = 1.0) -> LoopRealization:
@@ -267,18 +270,19 @@ class LoopRealization:
         )
 
 
-def _charpoly(m: np.ndarray) -> np.ndarray:
-    """Coefficients of det(zI - m), highest power first, by sampling on the unit circle.
+def _charpoly(m: np.ndarray, radius: float = 1.0) -> np.ndarray:
+    """Coefficients of det(zI - m), highest power first, by sampling on a circle.
 
-    ``det`` is evaluated (LU) at N > n points z = exp(2j pi j / N) and the polynomial recovered
-    with an inverse DFT; this avoids computing eigenvalues of near-defective matrices (a chain
-    of ideal integrators has one eigenvalue 1 of multiplicity n).
+    ``det`` is evaluated (LU) at N > n points z = radius * exp(2j pi j / N) and the polynomial
+    recovered with a DFT; this avoids computing eigenvalues of near-defective matrices (a chain
+    of ideal integrators has one eigenvalue 1 of multiplicity n). A circle about as wide as the
+    eigenvalue cloud keeps the sampled values, and so their rounding, small.
     """
     n = m.shape[0]
     npts = 2 * n + 2
-    z = np.exp(2j * np.pi * np.arange(npts) / npts)
+    z = radius * np.exp(2j * np.pi * np.arange(npts) / npts)
     vals = np.array([np.linalg.det(zz * np.eye(n) - m) for zz in z])
-    coef = np.fft.fft(vals) / npts  # coef[k] is the coefficient of z^k
+    coef = np.fft.fft(vals) / npts / radius ** np.arange(npts)  # coef[k]: coefficient of z^k
     return np.real(coef[: n + 1])[::-1]
 
 
@@ -287,9 +291,7 @@ def _group_zeros(zeros: np.ndarray) -> tuple[list[tuple[complex, complex]], list
     zeros = np.asarray(zeros, dtype=complex)
     tol = 1e-9
     real = sorted(float(z.real) for z in zeros if abs(z.imag) <= tol * max(1.0, abs(z)))
-    upper = sorted(
-        (z for z in zeros if z.imag > tol * max(1.0, abs(z))), key=lambda z: np.angle(z)
-    )
+    upper = sorted((z for z in zeros if z.imag > tol * max(1.0, abs(z))), key=lambda z: np.angle(z))
     lower = [z for z in zeros if z.imag < -tol * max(1.0, abs(z))]
     if len(upper) != len(lower):
         raise ParameterError("ntf.zeros", zeros.tolist(), "real values or conjugate pairs")
@@ -324,8 +326,9 @@ def realize_ntf(ntf: NoiseTransfer, structure: str = "feedback") -> LoopRealizat
     ``g = 4 r sin^2(theta/2)`` (``= 2 r (1 - cos theta)``, written to keep precision for small
     ``theta``). Pairs come first in the chain (lowest frequency first) and real zeros last, so
     that in the feedback structure the quantizer reads a plain integrator. The free
-    coefficients then solve ``charpoly(A + b_feedback c^T) = prod(z - poles)``: a square linear
-    system, since a rank-one update changes the determinant affinely.
+    coefficients then solve ``charpoly(A + b_feedback c^T) = prod(z - poles)``, matched in
+    powers of ``z - 1``: a square linear system, since a rank-one update changes the
+    determinant affinely.
 
     References
     ----------
@@ -386,11 +389,21 @@ def realize_ntf(ntf: NoiseTransfer, structure: str = "feedback") -> LoopRealizat
         def with_unknowns(vec):
             return replace(base, feedback=np.asarray(vec, dtype=float))
 
-    target = np.real(np.poly(poles))  # monic, highest power first
-    p0 = _charpoly(with_unknowns(np.zeros(n)).state_space().closed_loop())
+    # Match in powers of (z - 1) rather than z: the loop's poles and zeros crowd around z = 1,
+    # where the monomial coefficients cancel badly (the in-band gain, set by prod(1 - poles),
+    # would carry a relative error near 1e-7 at order 8).
+    target = np.real(np.poly(poles - 1.0))  # monic in w = z - 1, highest power first
+    eye = np.eye(n)
+
+    radius = float(np.clip(np.max(np.abs(poles - 1.0)), 0.05, 1.0))
+
+    def shifted_charpoly(vec):
+        return _charpoly(with_unknowns(vec).state_space().closed_loop() - eye, radius)
+
+    p0 = shifted_charpoly(np.zeros(n))
     cols = []
     for j in range(n):
-        pj = _charpoly(with_unknowns(np.eye(n)[j]).state_space().closed_loop())
+        pj = shifted_charpoly(eye[j])
         cols.append(pj[1:] - p0[1:])
     unknowns = np.linalg.solve(np.array(cols).T, target[1:] - p0[1:])
     loop = with_unknowns(unknowns)

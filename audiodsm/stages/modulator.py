@@ -274,9 +274,12 @@ class Modulator:
                 results = list(pool.map(one, range(channels)))
         else:
             results = [one(c) for c in range(channels)]
-        y = np.empty((n, channels))
-        for c, r in enumerate(results):
-            y[:, c] = r[0]
+        if x.ndim == 1:
+            y = results[0][0]
+        else:
+            y = np.empty((n, channels))
+            for c, r in enumerate(results):
+                y[:, c] = r[0]
         new_state = ModulatorState(
             integrators=_readonly(np.array([r[1] for r in results])),
             rng_counter=_readonly(np.array([r[2] for r in results], dtype=np.uint64)),
@@ -284,8 +287,6 @@ class Modulator:
             overload_count=_readonly(np.array([r[4] for r in results], dtype=np.int64)),
             samples=state.samples + n,
         )
-        if x.ndim == 1:
-            y = y[:, 0]
         return y, new_state, traces
 
     def run(self, x, state: ModulatorState | None = None) -> tuple[np.ndarray, ModulatorState]:

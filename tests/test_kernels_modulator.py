@@ -1,0 +1,269 @@
+"""Modulator kernels against their slow pure-Python twin, operation for operation."""
+
+import ast
+import inspect
+import math
+
+import numpy as np
+import pytest
+
+from audiodsm.design.ntf import design_ntf
+from audiodsm.design.realize import STRUCTURES, realize_ntf
+from audiodsm.stages import _kernels
+
+MASK = (1 << 64) - 1
+GOLDEN = 0x9E3779B97F4A7C15
+CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
+
+
+def unit_from_counter(counter):
+    """SplitMix64 output function (Steele, Lea & Flood, OOPSLA 2014) -> [0, 1)."""
+    z = counter & MASK
+    z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & MASK
+    z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & MASK
+    z ^= z >> 31
+    return float(z >> 11) * (1.0 / 9007199254740992.0)
+
+
+def clamp(x, bound):
+    if x > bound:
+        return bound
+    if x < -bound:
+        return -bound
+    return x if x == x else 0.0
+
+
+def twin(u, coef, state, counter, peaks, count, structure, levels, dscale, ib, sb, reset):
+    """Slow reference of loop_any_structure, written from the rule in design/realize.py."""
+    d, k, g, a, b, c = (list(map(float, row)) for row in coef)
+    n = len(state)
+    x = [float(v) for v in state]
+    peaks = [float(v) for v in peaks]
+    top = float(levels - 1)
+    half = 0.5 * top
+    offset = half + 0.5
+    step = 2.0 / top
+    out = []
+    trace = []
+    for ut in map(float, u):
+        if structure == 0:
+            y = x[-1]
+        elif structure == 1:
+            y = 0.0
+            for i in range(n):
+                y = y + c[i] * x[i]
+        else:
+            y = ut + x[-1]
+        w = y
+        if dscale != 0.0:
+            counter = (counter + GOLDEN) & MASK
+            r1 = unit_from_counter(counter)
+            counter = (counter + GOLDEN) & MASK
+            r2 = unit_from_counter(counter)
+            w = y + dscale * (r1 - r2)
+        if levels == 2:
+            v = math.copysign(1.0, w)
+        else:
+            q = min(max(math.floor(w * half + offset), 0.0), top)
+            v = q * step - 1.0
+        out.append(v)
+        fed = x[-1] + (v - y) if structure == 2 else v
+        new = list(x)
+        for i in range(n - 1, -1, -1):
+            prev = k[i] * x[i - 1] if i > 0 else b[0] * ut
+            acc = (d[i] * x[i] + prev) - a[i] * fed
+            if i < n - 1:
+                acc = acc - g[i] * new[i + 1]
+            new[i] = acc
+        x = new
+        ok = abs(y) <= ib and all(abs(v_) <= sb for v_ in x)
+        if not ok:
+            count += 1
+            x = [0.0] * n if reset else [clamp(v_, sb) for v_ in x]
+        peaks = [max(p, abs(v_)) for p, v_ in zip(peaks, x, strict=True)]
+        trace.append(list(x))
+    return np.array(out), np.array(x), counter, np.array(peaks), count, np.array(trace)
+
+
+def coefficients(loop):
+    return np.ascontiguousarray(
+        np.vstack(
+            [
+                loop.leak,
+                loop.chain_gain,
+                loop.resonator,
+                loop.feedback,
+                loop.input_gain,
+                loop.output_weight,
+            ]
+        )
+    )
+
+
+def run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start):
+    n = loop.order
+    out = np.empty(len(u))
+    st = np.array(start, dtype=float)
+    rng = np.array([12345], dtype=np.uint64)
+    pk = np.zeros(n)
+    cnt = np.zeros(1, dtype=np.int64)
+    tr = np.empty((len(u), n))
+    coef = coefficients(loop)
+    if fast:
+        _kernels.FEEDBACK_LOOPS[n](u, out, coef, st, rng, pk, cnt, levels, dscale, ib, sb, reset)
+        tr = None
+    else:
+        code = CODES[loop.structure]
+        _kernels.loop_any_structure(
+            u, out, coef, st, rng, pk, cnt, code, levels, dscale, ib, sb, reset, tr
+        )
+    return out, st, int(rng[0]), pk, int(cnt[0]), tr
+
+
+CASES = [
+    # (levels, dither in LSB, input bound, state bound, reset)
+    (2, 0.0, 8.0, 1e6, True),
+    (17, 0.0, 8.0, 1e6, True),
+    (5, 1.0, 8.0, 1e6, False),
+    (2, 0.3, 8.0, 1e6, True),
+    (3, 0.0, 1.5, 0.4, True),  # tight bounds: the guard acts often (reset)
+    (2, 0.0, 1.2, 0.3, False),  # tight bounds: the guard acts often (clamp)
+]
+
+
+@pytest.mark.parametrize("order", range(1, 9))
+@pytest.mark.parametrize("structure", STRUCTURES)
+def test_kernels_equal_python_twin(order, structure, rng):
+    loop = realize_ntf(design_ntf(order, 32, max_gain=1.5 + 0.2 * (order % 3)), structure)
+    u = 0.5 * np.sin(np.arange(300) * 0.05) + 0.05 * rng.standard_normal(300)
+    start = 0.01 * rng.standard_normal(order)
+    for levels, dither, ib, sb, reset in CASES:
+        dscale = dither * 2.0 / (levels - 1)
+        expected = twin(
+            u,
+            coefficients(loop),
+            start,
+            12345,
+            np.zeros(order),
+            0,
+            CODES[structure],
+            levels,
+            dscale,
+            ib,
+            sb,
+            reset,
+        )
+        kernels = [False, True] if structure == "feedback" else [False]
+        for fast in kernels:
+            got = run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start)
+            np.testing.assert_array_equal(got[0], expected[0])  # outputs, bit for bit
+            np.testing.assert_array_equal(got[1], expected[1])  # final states
+            assert got[2] == expected[2]  # generator counter
+            np.testing.assert_array_equal(got[3], expected[3])  # peaks
+            assert got[4] == expected[4]  # overload count
+            if got[5] is not None:
+                np.testing.assert_array_equal(got[5], expected[5])
+        if ib < 2:
+            assert expected[4] > 0  # the tight-bound cases really exercise the guard
+
+
+def test_generator_matches_splitmix64_reference_values():
+    # SplitMix64 reference: seeded with 0, the first outputs are 0xE220A8397B1DCDAF and
+    # 0x6E789E6AA1B965F4 (Steele, Lea & Flood 2014 algorithm; values as printed by the
+    # reference C implementation of splitmix64.c, from memory).
+    z1 = unit_from_counter(GOLDEN)
+    z2 = unit_from_counter(2 * GOLDEN)
+    assert z1 == float(0xE220A8397B1DCDAF >> 11) / 2**53
+    assert z2 == float(0x6E789E6AA1B965F4 >> 11) / 2**53
+    with np.errstate(over="ignore"):  # uint64 wrap-around is the algorithm
+        assert _kernels._unit_from_counter.py_func(np.uint64(GOLDEN)) == z1
+
+
+def test_specialized_feedback_kernels_are_current():
+    """The per-order kernels are the template's output (compared as syntax trees)."""
+    for order in range(1, 9):
+        src = inspect.getsource(_kernels.FEEDBACK_LOOPS[order].py_func)
+        assert ast.dump(ast.parse(src)) == ast.dump(ast.parse(feedback_kernel_source(order)))
+
+
+def feedback_kernel_source(n):
+    """Template of the order-specialized feedback kernels in stages/_kernels.py.
+
+    Regenerate the kernels with it (then run ruff format) after changing the update rule.
+    """
+    lines = []
+    add = lines.append
+    xs = ", ".join(f"x{i}" for i in range(n))
+    ns = ", ".join(f"n{i}" for i in range(n))
+    add("@njit(cache=True, nogil=True)")
+    add(f"def feedback_loop_order{n}(")
+    add(
+        "    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound,"
+        " state_bound, reset"
+    )
+    add("):")
+    add(
+        f'    """Feedback loop of order {n}: same arguments and result as'
+        ' ``loop_any_structure``."""'
+    )
+    for i in range(n):
+        add(f"    d{i} = coef[0, {i}]")
+        if i > 0:
+            add(f"    k{i} = coef[1, {i}]")
+        if i < n - 1:
+            add(f"    g{i} = coef[2, {i}]")
+        add(f"    a{i} = coef[3, {i}]")
+    add("    b0 = coef[4, 0]")
+    for i in range(n):
+        add(f"    x{i} = state[{i}]")
+        add(f"    p{i} = peaks[{i}]")
+    add("    top = float(levels - 1)")
+    add("    half = 0.5 * top")
+    add("    offset = half + 0.5")
+    add("    step = 2.0 / top")
+    add("    dithered = dither_scale != 0.0")
+    add("    single_bit = levels == 2")
+    add("    counter = rng[0]")
+    add("    overloads = counts[0]")
+    add("    for t in range(u.shape[0]):")
+    add(f"        y = x{n - 1}")
+    add("        w = y")
+    add("        if dithered:")
+    add("            counter += _GOLDEN")
+    add("            r1 = _unit_from_counter(counter)")
+    add("            counter += _GOLDEN")
+    add("            r2 = _unit_from_counter(counter)")
+    add("            w = y + dither_scale * (r1 - r2)")
+    add("        if single_bit:")
+    add("            v = math.copysign(1.0, w)")
+    add("        else:")
+    add("            q = np.floor(w * half + offset)")
+    add("            q = min(max(q, 0.0), top)")
+    add("            v = q * step - 1.0")
+    add("        out[t] = v")
+    for i in range(n - 1, -1, -1):
+        prev = "b0 * u[t]" if i == 0 else f"k{i} * x{i - 1}"
+        expr = f"(d{i} * x{i} + {prev}) - a{i} * v"
+        if i < n - 1:
+            expr = f"({expr}) - g{i} * n{i + 1}"
+        add(f"        n{i} = {expr}")
+    add(f"        {xs} = {ns}")
+    conds = " & ".join(
+        ["(abs(y) <= input_bound)"] + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
+    )
+    add(f"        if not ({conds}):")
+    add("            overloads += 1")
+    add("            if reset:")
+    add(f"                {xs} = " + ", ".join("0.0" for _ in range(n)))
+    add("            else:")
+    for i in range(n):
+        add(f"                x{i} = _clamp(x{i}, state_bound)")
+    for i in range(n):
+        add(f"        p{i} = max(p{i}, abs(x{i}))")
+    for i in range(n):
+        add(f"    state[{i}] = x{i}")
+    for i in range(n):
+        add(f"    peaks[{i}] = p{i}")
+    add("    rng[0] = counter")
+    add("    counts[0] = overloads")
+    return "\n".join(lines) + "\n"
