@@ -20,7 +20,7 @@ from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
-from scipy import signal
+from scipy import optimize, signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _kernels
@@ -55,10 +55,6 @@ _UP_GRID_PER_FS = 4096
 _DOWN_GRID_STEP_HZ = 25.0
 _SINC_ORDERS = tuple(range(2, 9))
 _MAX_RATIONAL_UP = 1024
-# Remez is used for half-bands whose dense-phase passband is at least this wide (cycles per
-# sample); narrower ones make scipy's Remez exchange diverge (NaN) or crash, and a Kaiser
-# window is nearly optimal there anyway.
-_REMEZ_MIN_BAND = 0.1
 
 
 # ---------------------------------------------------------------------------------------------
@@ -79,6 +75,46 @@ def _halfband_from_kaiser(two_k: int, beta: float) -> np.ndarray:
     n = np.arange(n_taps) - (two_k - 1)
     h = 0.5 * np.sinc(n / 2.0) * signal.windows.kaiser(n_taps, beta)
     return 2.0 * h[0::2]
+
+
+def _halfband_minimax(two_k: int, pass_frac: float) -> np.ndarray | None:
+    """Dense-phase taps of the minimax (Chebyshev) half-band of length 4K - 1, or None.
+
+    Solved as a linear programme on a grid of the dense phase's passband: minimise d subject
+    to ``|A(theta_i) - 1| <= d`` and ``A(0) = 1``, where A is the Type II amplitude of ``g``.
+    """
+    k = two_k // 2
+    theta = np.linspace(0.0, 2.0 * pass_frac, 16 * k + 100)
+    offsets = k - 0.5 - np.arange(k)
+    basis = 2.0 * np.cos(2.0 * np.pi * np.outer(theta, offsets))
+    n = theta.size
+    cost = np.zeros(k + 1)
+    cost[-1] = 1.0
+    ones = np.ones((n, 1))
+    a_ub = np.block([[basis, -ones], [-basis, -ones]])
+    b_ub = np.concatenate([np.ones(n), -np.ones(n)])
+    # unity at DC exactly: rescaling a free minimax fit afterwards would double its error
+    a_eq = np.concatenate([basis[:1], [[0.0]]], axis=1)
+    res = optimize.linprog(
+        cost,
+        A_ub=a_ub,
+        b_ub=b_ub,
+        A_eq=a_eq,
+        b_eq=[1.0],
+        bounds=[(None, None)] * k + [(0.0, None)],
+        method="highs",
+        options={"primal_feasibility_tolerance": 1e-10, "dual_feasibility_tolerance": 1e-10},
+    )
+    if res.status != 0 or not np.all(np.isfinite(res.x)):
+        return None  # pragma: no cover - HiGHS failure; the Kaiser design takes over
+    half = res.x[:k]
+    return np.concatenate([half, half[::-1]])
+
+
+def _halfband_error(g: np.ndarray, pass_frac: float) -> float:
+    """Largest pass (and, by symmetry, stop) error of the half-band made from ``g``."""
+    theta = np.linspace(0.0, 2.0 * pass_frac, 2000)
+    return 0.5 * float(np.max(np.abs(_type2_amplitude(g, theta) - 1.0)))
 
 
 @functools.lru_cache(maxsize=512)
@@ -103,40 +139,49 @@ def _halfband(pass_frac: float, max_error: float) -> np.ndarray:
 
     Notes
     -----
-    ``g`` is designed as a one-band Parks-McClellan (Remez) Type II lowpass over
-    ``[0, 2 pass_frac]``; the Type II symmetry makes the half-band's stopband error equal its
-    passband error. For very narrow passbands Remez does not converge in double precision; a
-    Kaiser-window half-band of the same length is then tried. The first length for which
-    either meets ``max_error`` is kept.
+    ``g`` is a one-band Type II lowpass over ``[0, 2 pass_frac]``; its Type II symmetry makes
+    the half-band's stopband error equal its passband error, so one minimax fit of ``g``
+    gives the optimal half-band. The fit is a linear programme on a dense grid (the same
+    optimum the Parks-McClellan exchange reaches, but well conditioned for the very narrow
+    bands of the late interpolation and early decimation stages, where scipy's Remez does
+    not converge). The shortest K is found by bisection below the length a Kaiser-window
+    half-band needs; the Kaiser design is kept if the programme fails.
 
     References
     ----------
     .. [1] P. P. Vaidyanathan and T. Q. Nguyen, "A 'trick' for the design of FIR half-band
        filters," IEEE Trans. Circuits Syst., vol. 34, no. 3, pp. 297-300, 1987.
-    .. [2] J. F. Kaiser, "Nonrecursive digital filter design using the I0-sinh window
+    .. [2] L. R. Rabiner, "Linear program design of finite impulse response (FIR) digital
+       filters," IEEE Trans. Audio Electroacoust., vol. 20, no. 4, pp. 280-288, 1972.
+    .. [3] J. F. Kaiser, "Nonrecursive digital filter design using the I0-sinh window
        function," Proc. IEEE ISCAS, 1974.
     """
-    theta = np.linspace(0.0, 2.0 * pass_frac, 1200)
     atten = -20.0 * math.log10(max_error)
     beta = float(signal.kaiser_beta(atten))
-    for two_k in range(2, 2000, 2):
-        candidates = []
-        if 2.0 * pass_frac >= _REMEZ_MIN_BAND:
-            try:
-                g = signal.remez(two_k, [0.0, 2.0 * pass_frac], [1.0], fs=1.0, maxiter=200)
-                if np.all(np.isfinite(g)):
-                    candidates.append(g)
-            except (ValueError, RuntimeError):  # pragma: no cover - scipy's own failure modes
-                pass
-        candidates.append(_halfband_from_kaiser(two_k, beta))
-        for g in candidates:
+    kaiser = None
+    k_hi = 1
+    while kaiser is None:
+        g = _halfband_from_kaiser(2 * k_hi, beta)
+        g = g / g.sum()
+        if _halfband_error(g, pass_frac) <= max_error:
+            kaiser = g
+        elif k_hi > 4000:  # pragma: no cover - outside every supported spec
+            raise RuntimeError(f"no half-band found for pass_frac={pass_frac}")
+        else:
+            k_hi = k_hi + 1 if k_hi < 8 else int(k_hi * 1.25)
+    best, lo, hi = kaiser, 0, k_hi  # invariant: K = hi works, K = lo does not
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        g = _halfband_minimax(2 * mid, pass_frac)
+        if g is not None:
             g = g / g.sum()
-            error = 0.5 * np.max(np.abs(_type2_amplitude(g, theta) - 1.0))
-            if error <= max_error:
-                g = 0.5 * (g + g[::-1])  # exact symmetry for the paired kernel
-                g.setflags(write=False)
-                return g
-    raise RuntimeError(f"no half-band found for pass_frac={pass_frac}")  # pragma: no cover
+        if g is not None and _halfband_error(g, pass_frac) <= max_error:
+            best, hi = g, mid
+        else:
+            lo = mid
+    best = 0.5 * (best + best[::-1])  # exact symmetry for the paired kernels
+    best.setflags(write=False)
+    return best
 
 
 def _halfband_full(g: np.ndarray) -> np.ndarray:
@@ -354,8 +399,10 @@ def design_upsampler(
     halfband_stages : int, optional
         Number of half-band (x2) stages before the final stage, 1 .. log2(osr) - 1. By default
         the cheapest count that meets the spec is chosen. Given explicitly, the spec is not
-        enforced on the final stage's images (a hold, say, leaves images near -20 dB); the
-        design reports what it reaches in ``image_rejection_db`` and ``meets_spec``.
+        enforced on the final stage's images (a hold, say, leaves images near -20 dB): the
+        cheapest sinc order that meets it is taken if one does, else the order with the
+        highest image rejection, and the design reports what it reaches in
+        ``image_rejection_db`` and ``meets_spec``.
 
     Returns
     -------
@@ -459,15 +506,16 @@ def _design_upsampler_cached(rate, osr, pe, ripple, se, atten, final_stage, sinc
             candidates.append((hb_cost + final_cost, h, k, tuple(gs), kernel, plausible))
     candidates.sort(key=lambda c: (c[0], c[1], c[2]))
 
-    best_rejection = -np.inf
+    fallbacks = []
     for _cost, h, k, gs, kernel, plausible in candidates:
         if enforce and not plausible:
-            best_rejection = max(best_rejection, 0.0)
             continue
         design = _build_upsampler(rate, osr, pe, ripple, se, atten, final_stage, h, k, gs, kernel)
-        if design.meets_spec or not enforce:
+        if design.meets_spec:
             return design
-        best_rejection = max(best_rejection, design.image_rejection_db)
+        fallbacks.append(design)
+    if not enforce:  # the stage count was given: the best this chain can do, cheapest first
+        return max(fallbacks, key=lambda d: d.image_rejection_db)
     raise ParameterError(
         "final_stage",
         final_stage,
