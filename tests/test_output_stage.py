@@ -5,6 +5,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from audiodsm.errors import AudioFileError, OutputError, ParameterError
 from audiodsm.stages.output_stage import (
@@ -56,6 +58,15 @@ def test_nrz_levels_are_code_times_lsb(rng):
     )
     with pytest.raises(ParameterError, match="9-level grid"):
         nrz_waveform(np.array([0.1]), levels=9, frame_rate_hz=RATE)
+
+
+def test_waveform_is_read_only_but_leaves_the_callers_arrays_alone():
+    levels = np.zeros((3, 2))
+    ticks = np.ones((3, 2), dtype=np.int64)
+    wave = PulseWaveform(levels, ticks, 2, 1e3)
+    assert not wave.levels.flags.writeable and not wave.ticks.flags.writeable
+    levels[0, 0] = 1.0  # still writable for the caller
+    assert ticks.flags.writeable
 
 
 def test_waveform_checks_its_shape():
@@ -378,3 +389,35 @@ def test_code_text_round_trip_and_word_format(tmp_path, rng):
     path5.write_text("102\n")
     with pytest.raises(AudioFileError, match="other than 0 or 1"):
         read_code_text(path5, levels=5)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    seed=st.integers(0, 2**32 - 1),
+    case=st.sampled_from(CASES),
+    sub=st.integers(1, 3),
+    dead=st.integers(0, 8),
+    min_ticks=st.integers(0, 4),
+    action=st.sampled_from(["drop", "stretch"]),
+    cuts=st.lists(st.integers(0, 60), max_size=4),
+)
+def test_pwm_any_block_split_equals_one_shot(seed, case, sub, dead, min_ticks, action, cuts):
+    rng = np.random.default_rng(seed)
+    y = _grid(9, 60, rng)  # 8 steps: dead <= 8 <= frame, min_ticks <= 4 <= frame / 2
+    opts = dict(
+        frame_rate_hz=1e5,
+        levels=9,
+        tick_subdivision=sub,
+        dead_time_ticks=dead,
+        min_pulse_ticks=min_ticks,
+        min_pulse_action=action,
+        **case,
+    )
+    whole, _, end = pwm_waveform(y, **opts)
+    state, parts = None, []
+    bounds = [0, *sorted(cuts), 60]
+    for lo, hi in zip(bounds[:-1], bounds[1:], strict=True):
+        w, _, state = pwm_waveform(y[lo:hi], state=state, **opts)
+        parts.append(w.tick_samples())
+    assert np.array_equal(np.concatenate(parts), whole.tick_samples())
+    assert state.totals == end.totals

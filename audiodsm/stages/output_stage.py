@@ -103,6 +103,8 @@ class PulseWaveform:
             raise ParameterError("ticks", "a row with another sum or a negative", expected)
         if not np.all(np.isfinite(levels)):
             raise ParameterError("levels", "NaN or Inf", "finite values")
+        levels = levels.view()  # read-only views: the caller's arrays keep their flags
+        ticks = ticks.view()
         levels.setflags(write=False)
         ticks.setflags(write=False)
         object.__setattr__(self, "levels", levels)
