@@ -222,12 +222,24 @@ class ModulatorSettings:
         _int_range(0, 2**63 - 1),
         doc="Seed of the dither generator (results are reproducible from it).",
     )
+    input_scale: float = _key(
+        0.0,
+        "float",
+        "0 (automatic) or a number from 0.01 to 1",
+        lambda v: v == 0.0 or (math.isfinite(v) and 0.01 <= v <= 1.0),
+        doc="Modulator input for a full-scale (0 dBFS peak) sample, as a fraction of the "
+        "quantizer's full scale: headroom that keeps the loop stable; the chain's calibration "
+        "divides it out again. 0 chooses it: the guaranteed no-overload bound "
+        "(M + 2 - sum|h|) / M of a multi-bit loop (M = levels - 1, h the NTF's impulse "
+        "response) when that is at least 0.5, else 0.5.",
+    )
     guard: str = _key(
-        "clamp",
+        "reset",
         "str",
-        _fmt_choices("clamp", "reset"),
-        _choice("clamp", "reset"),
-        doc="What the stability guard does on overload: clamp the states or reset the loop.",
+        _fmt_choices("reset", "clamp"),
+        _choice("reset", "clamp"),
+        doc="What the stability guard does on overload: reset the loop states to zero or "
+        "clamp them.",
     )
     state_bound: float = _key(
         0.0,

@@ -1,0 +1,987 @@
+"""The chain driver: a profile becomes a sequence of stages run block by block.
+
+One channel's path is::
+
+    audio block --clip/refuse--> Upsampler --> Modulator --> output stage (PDM | NRZ | PWM)
+        --> [semi-digital FIR] --> analog reconstruction filter (exact for the waveform)
+        --> listening Downsampler --> calibration --> listening samples
+
+Every stage follows ``process(x, state) -> (y, state)`` and gives the same output for any
+split of its input into blocks, so the chain does too: :meth:`Chain.process` is a pure
+function of the block and a :class:`ChainState` value. Channels are independent and run in
+parallel threads (the compiled kernels release the GIL). A block of input frames never turns
+into more than about :data:`MAX_BLOCK_MODULATOR_SAMPLES` modulator samples per channel, so
+memory stays bounded for any input length.
+
+Calibration: the chain's static transfer (output-stage volts per full-scale unit and its
+offset, the semi-digital FIR's gain and the analog filter's, upsampler's and downsampler's
+responses at 997 Hz) is computed when the chain is built and divided out, so a -1 dBFS
+997 Hz tone comes out at -1 dBFS (the AES17 level definition: 0 dBFS is the rms of a
+full-scale sine).
+
+Time alignment: :meth:`Chain.stream` and :func:`run_chain` drop the chain's latency (rounded
+to a whole listening sample) from the start and flush the chain with silence at the end, so the
+listening output has exactly the duration of the input and lines up with it.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from collections.abc import Iterable, Iterator
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, replace
+from typing import NamedTuple
+
+import numpy as np
+
+from audiodsm.errors import ParameterError
+from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile
+
+__all__ = [
+    "KEEP_CHOICES",
+    "MAX_BLOCK_MODULATOR_SAMPLES",
+    "STAGE_NAMES",
+    "Chain",
+    "ChainState",
+    "ChainBlock",
+    "ChainStats",
+    "ChainResult",
+    "auto_input_scale",
+    "run_chain",
+]
+
+#: What :func:`run_chain` can keep: the listening output, the modulator output, the
+#: reconstructed (calibrated) output at the modulator rate, and the error-only signal.
+KEEP_CHOICES = ("listening", "modulator", "analog", "error")
+
+#: The stages whose time :attr:`Chain.stage_seconds` adds up (summed over channels).
+STAGE_NAMES = ("upsample", "modulate", "output_stage", "reconstruct", "decimate", "error_path")
+
+#: Upper bound on modulator samples per channel per block (sets the memory per block).
+MAX_BLOCK_MODULATOR_SAMPLES = 1 << 18
+
+#: The AES17 test frequency, used for calibration.
+_CAL_FREQ_HZ = 997.0
+#: Most channels a chain runs.
+_MAX_CHANNELS = 8
+
+
+# ---------------------------------------------------------------------------------------------
+# Results
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ChainStats:
+    """Running counts of one run, per channel (arrays of length ``channels``).
+
+    Attributes
+    ----------
+    input_frames : int
+        Input frames consumed (without the flush).
+    clipped_samples : ndarray of int
+        Input samples beyond ±1.0 that were clipped (``input.over_full_scale = "clip"``).
+    overload_count : ndarray of int
+        Modulator samples where the stability guard acted.
+    state_peak : ndarray of float, shape (channels, order)
+        Largest magnitude each loop state reached.
+    dropped_pulses, stretched_pulses : ndarray of int
+        PWM pulses shorter than the minimum width that were dropped or stretched.
+    switching_events : ndarray of float
+        Output level changes (PDM/NRZ: changes of the modulator level; PWM: transitions per
+        bridge leg, averaged over the legs).
+    output_clipped : ndarray of int
+        Listening samples beyond ±1.0 (clipped only when written to an integer file).
+    """
+
+    input_frames: int
+    clipped_samples: np.ndarray
+    overload_count: np.ndarray
+    state_peak: np.ndarray
+    dropped_pulses: np.ndarray
+    stretched_pulses: np.ndarray
+    switching_events: np.ndarray
+    output_clipped: np.ndarray
+
+    def switching_rate_hz(self, rate_hz: float) -> np.ndarray:
+        """Average switching events per second, given the input rate."""
+        seconds = self.input_frames / float(rate_hz)
+        return self.switching_events / seconds if seconds > 0 else self.switching_events * 0.0
+
+
+@dataclass(frozen=True)
+class ChainState:
+    """Everything the chain carries from one block to the next (a value).
+
+    Attributes
+    ----------
+    channels : tuple
+        One tuple of stage states per channel.
+    stats : ChainStats
+        Running counts.
+    to_skip : int
+        Listening samples still to drop at the start (latency alignment, :meth:`Chain.stream`).
+    """
+
+    channels: tuple
+    stats: ChainStats
+    to_skip: int = 0
+
+
+@dataclass(frozen=True)
+class ChainBlock:
+    """What one block of input produced; fields not asked for are None.
+
+    ``listening`` and ``error`` are ``(n, channels)`` at the listening rate; ``modulator``
+    and ``analog`` are ``(n * osr, channels)`` at the modulator rate.
+    """
+
+    listening: np.ndarray | None = None
+    modulator: np.ndarray | None = None
+    analog: np.ndarray | None = None
+    error: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class ChainResult:
+    """The outcome of :func:`run_chain`.
+
+    Attributes
+    ----------
+    listening : ndarray or None
+        Calibrated reconstructed output at ``listening_rate_hz``, ``(n, channels)``.
+    modulator : ndarray or None
+        Modulator output (levels in [-1, 1]) at ``modulator_rate_hz``.
+    analog : ndarray or None
+        Calibrated reconstructed output at ``modulator_rate_hz`` (for out-of-band noise).
+    error : ndarray or None
+        Listening output minus the ideal (the input through the same linear filters),
+        without any gain, at ``listening_rate_hz``.
+    rate_hz, modulator_rate_hz, listening_rate_hz : float
+        The three rates.
+    latency_s : float
+        Total latency of the chain (upsampler + loop + output stage + analog filter +
+        downsampler).
+    aligned : bool
+        True when the latency was removed from the outputs.
+    gain : float
+        Static gain divided out by the calibration (volts per full-scale unit at 997 Hz).
+    stats : ChainStats
+        Counts: clipped inputs, overloads, state peaks, dropped/stretched pulses, switching.
+    """
+
+    listening: np.ndarray | None
+    modulator: np.ndarray | None
+    analog: np.ndarray | None
+    error: np.ndarray | None
+    rate_hz: float
+    modulator_rate_hz: float
+    listening_rate_hz: float
+    latency_s: float
+    aligned: bool
+    gain: float
+    stats: ChainStats
+
+    @property
+    def switching_rate_hz(self) -> np.ndarray:
+        """Average output switching events per second, per channel."""
+        return self.stats.switching_rate_hz(self.rate_hz)
+
+
+# ---------------------------------------------------------------------------------------------
+# Stage construction from a profile
+# ---------------------------------------------------------------------------------------------
+
+
+def _build_ntf(mod):
+    from audiodsm.design.ntf import ntf_from_zeros_poles
+
+    if mod.explicit_ntf:
+        return ntf_from_zeros_poles(np.array(mod.zeros), np.array(mod.poles))
+    return None  # designed later, once the OSR is known
+
+
+def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
+    """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``."""
+    from audiodsm.stages import output_stage as out_mod
+
+    out = profile.output
+    levels = profile.modulator.levels
+    volts = out.full_scale_volts
+    if out.kind == "pdm":
+
+        def pdm(y, state):
+            wf = out_mod.pdm_waveform(y, frame_rate_hz=frame_rate_hz, full_scale_volts=volts)
+            return wf, (0, 0), state
+
+        return pdm
+    if out.kind == "nrz":
+        lsb = 2.0 * volts / (levels - 1)
+
+        def nrz(y, state):
+            wf = out_mod.nrz_waveform(y, levels=levels, frame_rate_hz=frame_rate_hz, lsb_volts=lsb)
+            return wf, (0, 0), state
+
+        return nrz
+
+    def pwm(y, state):
+        wf, stats, state = out_mod.pwm_waveform(
+            y,
+            frame_rate_hz=frame_rate_hz,
+            levels=levels,
+            counter_steps=out.counter_steps or None,
+            mode=out.pwm_mode,
+            carrier=out.pwm_carrier,
+            bridge=out.pwm_bridge,
+            tick_subdivision=out.tick_subdivision,
+            dead_time_ticks=out.dead_time_ticks,
+            min_pulse_ticks=out.min_pulse_ticks,
+            min_pulse_action=out.short_pulse_action,
+            supply_volts=volts,
+            state=state,
+        )
+        return wf, (stats.dropped_pulses, stats.stretched_pulses), state
+
+    return pwm
+
+
+def _analog_filter(profile: ChainProfile):
+    from audiodsm.stages import reconstruct as rec_mod
+
+    rec = profile.reconstruction
+    if rec.kind == "prototype":
+        return rec_mod.analog_prototype(
+            rec.family, order=rec.filter_order, cutoff_hz=rec.cutoff_hz, ripple_db=rec.ripple_db
+        )
+    if rec.kind == "lc":
+        return rec_mod.lc_filter(
+            rec.inductance_h,
+            rec.capacitance_f,
+            rec.load_ohm,
+            series_ohm=rec.series_ohm,
+            bridged=rec.bridged,
+        )
+    return None
+
+
+def _mean_level(wf) -> np.ndarray:
+    """Per-frame mean value of a PulseWaveform (the area of each frame over its length)."""
+    return (wf.levels * wf.ticks).sum(axis=1) / float(wf.ticks_per_frame)
+
+
+def _check_rate(rate_hz, name="rate_hz"):
+    if isinstance(rate_hz, bool) or not isinstance(rate_hz, (int, float, np.integer, np.floating)):
+        raise ParameterError(name, rate_hz, "one of " + ", ".join(map(str, AUDIO_RATES_HZ)))
+    if float(rate_hz) not in AUDIO_RATES_HZ:
+        raise ParameterError(name, rate_hz, "one of " + ", ".join(map(str, AUDIO_RATES_HZ)))
+    return int(rate_hz)
+
+
+# ---------------------------------------------------------------------------------------------
+# The chain
+# ---------------------------------------------------------------------------------------------
+
+
+class Chain:
+    """A profile's stages, built for one input rate and channel count.
+
+    Build it with :meth:`from_profile`. Then either call :meth:`process` block by block (raw,
+    latency included), or :meth:`stream` / :func:`run_chain` (latency removed, flushed).
+
+    Attributes
+    ----------
+    profile : ChainProfile
+    rate_hz, modulator_rate_hz, listening_rate_hz : int or float
+    channels, osr : int
+    gain : float
+        Static gain at 997 Hz divided out by the calibration.
+    offset : float
+        Static output offset (volts, e.g. half the supply of a single-ended PWM stage)
+        subtracted before the gain.
+    latency_s : float
+        Total latency of the chain.
+    input_scale : float
+        Modulator input for a full-scale input sample (fraction of the quantizer's full
+        scale): the profile's ``modulator.input_scale``, or :func:`auto_input_scale`.
+    block_frames : int
+        Input frames per internal block.
+    stage_seconds : dict
+        Time spent in each stage of :data:`STAGE_NAMES` so far, summed over channels (a
+        running tally for benchmarks; it does not affect results).
+    """
+
+    def __init__(self, profile, rate_hz, channels, *, listening_rate_hz=None, threads=None):
+        from audiodsm.design.ntf import design_ntf
+        from audiodsm.design.realize import realize_ntf
+        from audiodsm.stages.modulator import Modulator
+        from audiodsm.stages.reconstruct import semi_digital_fir
+        from audiodsm.stages.upsample import (
+            Downsampler,
+            Upsampler,
+            design_downsampler,
+            design_upsampler,
+        )
+
+        if not isinstance(profile, ChainProfile):
+            raise ParameterError("profile", type(profile).__name__, "a ChainProfile")
+        self.profile = profile
+        self.rate_hz = _check_rate(rate_hz)
+        if isinstance(channels, bool) or not isinstance(channels, (int, np.integer)):
+            raise ParameterError("channels", channels, f"an integer from 1 to {_MAX_CHANNELS}")
+        if not 1 <= channels <= _MAX_CHANNELS:
+            raise ParameterError("channels", channels, f"an integer from 1 to {_MAX_CHANNELS}")
+        self.channels = int(channels)
+        if listening_rate_hz is None:
+            listening_rate_hz = profile.listening.rate_hz or self.rate_hz
+        self.listening_rate_hz = _check_rate(listening_rate_hz, "listening_rate_hz")
+        up = profile.upsampler
+        self.osr = up.osr
+        self.modulator_rate_hz = self.rate_hz * self.osr
+        self.block_frames = max(1, MAX_BLOCK_MODULATOR_SAMPLES // self.osr)
+
+        # upsampler
+        self.upsampler_design = design_upsampler(
+            self.rate_hz,
+            self.osr,
+            passband_edge=up.passband_edge,
+            passband_ripple_db=up.passband_ripple_db,
+            stopband_edge=up.stopband_edge,
+            stopband_atten_db=up.stopband_atten_db,
+            final_stage=up.final_stage,
+        )
+        self._upsampler = Upsampler(self.upsampler_design)
+
+        # modulator
+        mod = profile.modulator
+        if mod.explicit_ntf:
+            self.ntf = _build_ntf(mod)
+        else:
+            self.ntf = design_ntf(
+                mod.order, self.osr, max_gain=mod.max_gain, optimize_zeros=mod.optimize_zeros
+            )
+        mod_kwargs = {
+            "structure": mod.structure,
+            "levels": mod.levels,
+            "dither_lsb": mod.dither_lsb,
+            "seed": mod.seed,
+            "guard": mod.guard,
+        }
+        if mod.state_bound:
+            mod_kwargs["state_bound"] = mod.state_bound
+        self.modulator = Modulator(self.ntf, **mod_kwargs)
+        self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
+        self._loop_space = realize_ntf(self.ntf, mod.structure).state_space()
+        self._stf = _stf_filter(self._loop_space)
+
+        # output stage, semi-digital FIR, analog filter
+        self._waveform = _output_waveform_fn(profile, float(self.modulator_rate_hz))
+        taps = profile.reconstruction.fir_taps
+        self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
+        self.analog_filter = _analog_filter(profile)
+
+        # listening decimator
+        self.downsampler_design = design_downsampler(
+            self.modulator_rate_hz,
+            self.listening_rate_hz,
+            passband_hz=profile.listening.passband_hz,
+        )
+        self._downsampler = Downsampler(self.downsampler_design)
+
+        self._calibrate()
+        self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
+        n_threads = threads if threads is not None else min(self.channels, os.cpu_count() or 1)
+        self._threads = max(1, int(n_threads))
+
+    @classmethod
+    def from_profile(cls, profile, rate_hz, channels, *, listening_rate_hz=None, threads=None):
+        """Build the chain of ``profile`` for input at ``rate_hz`` with ``channels`` channels.
+
+        Parameters
+        ----------
+        profile : ChainProfile
+        rate_hz : int
+            Input (audio) rate, one of :data:`~audiodsm.profile.AUDIO_RATES_HZ`.
+        channels : int
+            1 to 8.
+        listening_rate_hz : int, optional
+            Rate of the listening output; default: the profile's ``listening.rate_hz``, or
+            the input rate when that is 0.
+        threads : int, optional
+            Worker threads for the channels; default ``min(channels, cpu_count)``.
+
+        Returns
+        -------
+        Chain
+
+        Raises
+        ------
+        ParameterError
+            An unsupported rate or channel count, or a stage that rejects a setting.
+        """
+        return cls(profile, rate_hz, channels, listening_rate_hz=listening_rate_hz, threads=threads)
+
+    # -- calibration ---------------------------------------------------------------------------
+
+    def _calibrate(self) -> None:
+        """Compute the static offset, the 997 Hz gain and the latency of the chain."""
+        levels = self.profile.modulator.levels
+        probe = np.linspace(-1.0, 1.0, levels)
+        wf, _, _ = self._waveform(probe, None)
+        means = _mean_level(wf)
+        # least-squares line through (level, mean output): slope = volts per full-scale unit
+        slope, offset = np.polyfit(probe, means, 1)
+        self.stage_gain = float(slope)
+        self.offset = float(offset)
+        f = _CAL_FREQ_HZ
+        w = 2.0 * np.pi * f / self.modulator_rate_hz
+        # the loop's signal transfer (linearized loop), exact for the error-only path
+        stf_997 = complex(
+            self._loop_space.signal_response(np.array([f / self.modulator_rate_hz]))[0]
+        )
+        g = self.input_scale * self.stage_gain * abs(stf_997)
+        if self.fir is not None:
+            fr = self.modulator_rate_hz
+            g *= abs(complex(self.fir.response(np.array([f]), frame_rate_hz=fr)[0]))
+            self.fir_dc_gain = float(np.sum(self.fir.taps))
+        else:
+            self.fir_dc_gain = 1.0
+        if self.analog_filter is not None:
+            h = complex(np.asarray(self.analog_filter.response(np.array([f])))[0])
+            g *= abs(h)
+            self.analog_dc_gain = float(self.analog_filter.dc_gain)
+            analog_delay_s = -np.angle(h) / (2.0 * np.pi * f)
+        else:
+            self.analog_dc_gain = 1.0
+            analog_delay_s = 0.0
+        g *= abs(complex(np.asarray(self.upsampler_design.response(np.array([f])))[0]))
+        g *= abs(complex(np.asarray(self.downsampler_design.response(np.array([f])))[0]))
+        self.gain = float(g)
+        self._static_offset = self.offset * self.fir_dc_gain * self.analog_dc_gain
+        # latency: FIR delays + loop phase delay + half a frame (hold) + analog phase delay
+        fir_delay = 0.0
+        if self.fir is not None:
+            hf = complex(self.fir.response(np.array([f]), frame_rate_hz=self.modulator_rate_hz)[0])
+            fir_delay = -np.angle(hf) / w
+        loop_delay = -np.angle(stf_997) / w
+        self.latency_s = float(
+            self.upsampler_design.delay_input_samples / self.rate_hz
+            + (loop_delay + 0.5 + fir_delay) / self.modulator_rate_hz
+            + analog_delay_s
+            + self.downsampler_design.delay_seconds
+        )
+
+    # -- state ----------------------------------------------------------------------------------
+
+    def initial_state(self, *, skip: int = 0) -> ChainState:
+        """The state before the first block (all stages at rest)."""
+        c = self.channels
+        zeros_i = np.zeros(c, dtype=np.int64)
+        stats = ChainStats(
+            input_frames=0,
+            clipped_samples=zeros_i,
+            overload_count=zeros_i,
+            state_peak=np.zeros((c, self.ntf.order)),
+            dropped_pulses=zeros_i,
+            stretched_pulses=zeros_i,
+            switching_events=np.zeros(c),
+            output_clipped=zeros_i,
+        )
+        per = _ChannelState()
+        return ChainState(channels=(per,) * c, stats=stats, to_skip=int(skip))
+
+    # -- one channel ---------------------------------------------------------------------------
+
+    def _reconstruct(self, wf, fir_state, filt_state):
+        """Semi-digital FIR (on one-segment waveforms) and the analog filter."""
+        from audiodsm.stages.reconstruct import filter_waveform
+
+        if self.fir is not None:
+            wf, fir_state = self.fir.process(wf, fir_state)
+        if self.analog_filter is None:
+            out = _mean_level(wf)
+        else:
+            out, filt_state = filter_waveform(self.analog_filter, wf, filt_state)
+        return out, fir_state, filt_state
+
+    def _channel(self, x, st, keep):
+        clock = time.perf_counter
+        t0 = clock()
+        xu, up_s = self._upsampler.process(x, st.upsampler)
+        if self.input_scale != 1.0:
+            xu *= self.input_scale
+        t1 = clock()
+        y, mod_s = self.modulator.run(xu, st.modulator)
+        t2 = clock()
+        wf, (dropped, stretched), out_s = self._waveform(y, st.output)
+        prev = st.last_level
+        if self.profile.output.kind == "pwm":
+            switches = None  # the PWM stage counts its own edges
+        elif y.size:
+            first = prev is not None and y[0] != prev
+            switches = int(np.count_nonzero(y[1:] != y[:-1])) + int(first)
+            prev = float(y[-1])
+        else:
+            switches = 0
+        t3 = clock()
+        analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog)
+        calibrated = (analog - self._static_offset) / self.gain
+        t4 = clock()
+        listening, down_s = self._downsampler.process(calibrated, st.downsampler)
+        t5 = clock()
+        error = None
+        new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
+        if "error" in keep:
+            ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
+            ideal, ifir_s, ifilt_s = self._reconstruct(ideal_wf, st.ideal_fir, st.ideal_analog)
+            ideal = (ideal - self._static_offset) / self.gain
+            ideal_l, idown_s = self._downsampler.process(ideal, st.ideal_downsampler)
+            error = listening - ideal_l
+            new = new._replace(
+                ideal_stf=stf_s, ideal_fir=ifir_s, ideal_analog=ifilt_s, ideal_downsampler=idown_s
+            )
+        t6 = clock()
+        out = {
+            "listening": listening,
+            "modulator": y if "modulator" in keep else None,
+            "analog": calibrated if "analog" in keep else None,
+            "error": error,
+            "dropped": dropped,
+            "stretched": stretched,
+            "switches": switches,
+            "seconds": (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4, t6 - t5),
+        }
+        return out, new
+
+    def _ideal_waveform(self, xu, wf, stf_state):
+        """The ideal modulator output (the input through the loop's STF) as a waveform.
+
+        One segment per frame, through the output stage's static map (gain and offset), on
+        the same tick grid as the real waveform.
+        """
+        from audiodsm.stages.output_stage import PulseWaveform
+
+        if self._stf is None:
+            ideal = xu
+        else:
+            from scipy.signal import lfilter
+
+            num, den = self._stf
+            if stf_state is None:
+                stf_state = np.zeros(len(den) - 1)
+            ideal, stf_state = lfilter(num, den, xu, zi=stf_state)
+        levels = (self.offset + self.stage_gain * ideal)[:, None]
+        ticks = np.full((xu.size, 1), wf.ticks_per_frame, dtype=np.int64)
+        waveform = PulseWaveform(
+            levels=levels,
+            ticks=ticks,
+            ticks_per_frame=wf.ticks_per_frame,
+            frame_rate_hz=wf.frame_rate_hz,
+        )
+        return waveform, stf_state
+
+    # -- blocks ---------------------------------------------------------------------------------
+
+    def _check_block(self, x) -> np.ndarray:
+        x = np.asarray(x, dtype=np.float64)
+        if x.ndim == 1:
+            x = x[:, None]
+        if x.ndim != 2 or x.shape[1] != self.channels:
+            raise ParameterError(
+                "x", f"array of shape {x.shape}", f"shape (n, {self.channels}) (or (n,) for mono)"
+            )
+        if not np.isfinite(x).all():
+            raise ParameterError("x", "samples with NaN or Inf", "finite samples")
+        return x
+
+    def process(self, x, state=None, *, keep=("listening",)):
+        """Run one block of input through the chain (latency included).
+
+        Parameters
+        ----------
+        x : array_like
+            ``(n, channels)`` (or ``(n,)`` for one channel), full scale ±1.0, at ``rate_hz``.
+        state : ChainState, optional
+            From the previous call; None starts at rest.
+        keep : sequence of str, keyword-only
+            Outputs to return, from :data:`KEEP_CHOICES`.
+
+        Returns
+        -------
+        block : ChainBlock
+        state : ChainState
+
+        Raises
+        ------
+        ParameterError
+            Wrong shape, NaN/Inf, or (with ``input.over_full_scale = "refuse"``) a sample
+            beyond ±1.0.
+        """
+        keep = _check_keep(keep)
+        x = self._check_block(x)
+        if state is None:
+            state = self.initial_state()
+        over = np.abs(x) > 1.0
+        clipped = over.sum(axis=0)
+        if clipped.any():
+            if self.profile.input.over_full_scale == "refuse":
+                frame = int(np.argwhere(over)[0][0])
+                raise ParameterError(
+                    "x",
+                    f"a sample of {x[over][0]!r} (block frame {frame})",
+                    "samples within ±1.0 (the profile sets input.over_full_scale = 'refuse')",
+                )
+            x = np.clip(x, -1.0, 1.0)
+        parts = []
+        step = self.block_frames
+        for start in range(0, max(x.shape[0], 1), step):
+            block, state = self._process_piece(x[start : start + step], state, keep)
+            parts.append(block)
+        stats = state.stats
+        stats = replace(
+            stats,
+            input_frames=stats.input_frames + x.shape[0],
+            clipped_samples=stats.clipped_samples + clipped,
+        )
+        state = replace(state, stats=stats)
+        return _concat_blocks(parts, keep, self.channels), state
+
+    def _process_piece(self, x, state, keep):
+        cols = [np.ascontiguousarray(x[:, c]) for c in range(self.channels)]
+        if self._threads > 1 and self.channels > 1:
+            pool = _pool(self._threads)
+            futures = [
+                pool.submit(self._channel, cols[c], state.channels[c], keep)
+                for c in range(self.channels)
+            ]
+            results = [f.result() for f in futures]
+        else:
+            results = [
+                self._channel(cols[c], state.channels[c], keep) for c in range(self.channels)
+            ]
+        outs = [r[0] for r in results]
+        for o in outs:
+            for name, sec in zip(STAGE_NAMES, o["seconds"], strict=True):
+                self.stage_seconds[name] += sec
+        new_channels = tuple(r[1] for r in results)
+        stats = state.stats
+        mod_states = [st.modulator for st in new_channels]
+        overload = np.array([_scalar(ms.overload_count) for ms in mod_states], dtype=np.int64)
+        peaks = np.array([np.asarray(ms.state_peak, dtype=float).reshape(-1) for ms in mod_states])
+        switches = np.array(
+            [
+                o["switches"] if o["switches"] is not None else _pwm_switches(st.output)
+                for o, st in zip(outs, new_channels, strict=True)
+            ],
+            dtype=float,
+        )
+        if self.profile.output.kind == "pwm":
+            switching = switches  # cumulative count held by the PWM stage
+        else:
+            switching = stats.switching_events + switches
+        listening = np.stack([o["listening"] for o in outs], axis=1)
+        stats = replace(
+            stats,
+            overload_count=overload,
+            state_peak=peaks,
+            dropped_pulses=stats.dropped_pulses + np.array([o["dropped"] for o in outs]),
+            stretched_pulses=stats.stretched_pulses + np.array([o["stretched"] for o in outs]),
+            switching_events=switching,
+            output_clipped=stats.output_clipped + (np.abs(listening) > 1.0).sum(axis=0),
+        )
+        block = ChainBlock(
+            listening=listening,
+            modulator=_stack(outs, "modulator"),
+            analog=_stack(outs, "analog"),
+            error=_stack(outs, "error"),
+        )
+        return block, replace(state, channels=new_channels, stats=stats)
+
+    # -- aligned streaming ----------------------------------------------------------------------
+
+    @property
+    def latency_frames(self) -> int:
+        """The latency in whole listening samples (what :meth:`stream` drops at the start)."""
+        return int(round(self.latency_s * self.listening_rate_hz))
+
+    def stream(self, blocks: Iterable, *, keep=("listening",), state=None) -> Iterator:
+        """Run an iterable of input blocks with the latency removed and the chain flushed.
+
+        Parameters
+        ----------
+        blocks : iterable of array_like
+            Consecutive input blocks, each ``(n, channels)``.
+        keep : sequence of str, keyword-only
+            Outputs to yield (see :data:`KEEP_CHOICES`). Only the listening-rate outputs
+            (``listening``, ``error``) are aligned and flushed; ``modulator`` and ``analog``
+            come raw (latency included) and only for the input blocks, not the flush.
+        state : ChainState, optional
+            A starting state; None starts at rest.
+
+        Yields
+        ------
+        (ChainBlock, ChainState)
+            After each input block, and once more after the flush; the listening outputs
+            concatenated hold exactly ``ceil(n_in * listening_rate / rate)`` frames aligned with
+            the input. The last state's ``stats`` hold the run's counts.
+        """
+        keep = _check_keep(keep)
+        skip = self.latency_frames
+        state = state if state is not None else self.initial_state(skip=skip)
+        n_in = 0
+        n_out = 0
+        for x in blocks:
+            x = self._check_block(x)
+            n_in += x.shape[0]
+            block, state = self.process(x, state, keep=keep)
+            block, state = self._trim(block, state)
+            n_out += block.listening.shape[0]
+            yield block, state
+        # flush: enough silence to push the last input sample through the latency
+        want = math.ceil(n_in * self.listening_rate_hz / self.rate_hz)
+        stats_before = state.stats
+        while n_out < want:
+            need_out = want - n_out + state.to_skip
+            frames = math.ceil(need_out * self.rate_hz / self.listening_rate_hz) + 1
+            frames = min(frames, self.block_frames)
+            flush_keep = tuple(k for k in keep if k in ("listening", "error")) or ("listening",)
+            block, state = self.process(np.zeros((frames, self.channels)), state, keep=flush_keep)
+            block, state = self._trim(block, state)
+            take = min(block.listening.shape[0], want - n_out)
+            block = ChainBlock(
+                listening=block.listening[:take],
+                error=block.error[:take] if block.error is not None else None,
+            )
+            n_out += take
+            # the flush is not input: keep the input-frame count of the real input
+            state = replace(
+                state, stats=replace(state.stats, input_frames=stats_before.input_frames)
+            )
+            yield block, state
+
+    def _trim(self, block, state):
+        skip = state.to_skip
+        if skip <= 0:
+            return block, state
+        n = block.listening.shape[0]
+        drop = min(skip, n)
+        block = replace(
+            block,
+            listening=block.listening[drop:],
+            error=block.error[drop:] if block.error is not None else None,
+        )
+        return block, replace(state, to_skip=skip - drop)
+
+
+# ---------------------------------------------------------------------------------------------
+# helpers
+# ---------------------------------------------------------------------------------------------
+
+
+class _ChannelState(NamedTuple):
+    """One channel's stage states (each a value owned by its stage)."""
+
+    upsampler: object = None
+    modulator: object = None
+    output: object = None
+    fir: object = None
+    analog: object = None
+    downsampler: object = None
+    last_level: float | None = None  # for counting level changes of PDM/NRZ
+    ideal_stf: object = None  # the error-only path: STF, FIR, analog filter, downsampler
+    ideal_fir: object = None
+    ideal_analog: object = None
+    ideal_downsampler: object = None
+
+
+def auto_input_scale(ntf, levels: int) -> float:
+    """The modulator input scale a profile gets when it leaves ``input_scale`` at 0.
+
+    Parameters
+    ----------
+    ntf : NoiseTransfer
+    levels : int
+        Quantizer levels.
+
+    Returns
+    -------
+    float
+        For a multi-bit loop, the input bound below which the quantizer can never overload,
+        ``(M + 2 - ||h||_1) / M`` in full-scale units (``M = levels - 1`` steps, ``h`` the
+        NTF's impulse response), when it is at least 0.5 (capped at 1.0); otherwise 0.5, the
+        common practice for single-bit audio loops (about 6 dB of headroom).
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+       IEEE/Wiley 2005, ch. 4 (stability of multi-bit modulators: no overload when
+       max|u| <= M + 2 - ||h||_1, with the quantizer step 2; from memory).
+    """
+    from scipy.signal import lfilter
+
+    m = levels - 1
+    if m < 2:
+        return 0.5
+    b, a = ntf.polynomials()
+    impulse = np.zeros(1 << 14)
+    impulse[0] = 1.0
+    h1 = float(np.abs(lfilter(b, a, impulse)).sum())
+    bound = (m + 2 - h1) / m
+    return float(min(1.0, bound)) if bound >= 0.5 else 0.5
+
+
+def _stf_filter(space):
+    """The loop's linearized signal transfer as ``(num, den)`` for lfilter; None if it is 1.
+
+    From the closed-loop state space ``x+ = A_cl x + B u``, ``v = c x + d u`` with
+    ``A_cl = a + b_fb c^T`` and ``B = b_in + b_fb d`` (quantizer as additive noise).
+    """
+    from scipy.signal import ss2tf
+
+    a_cl = space.closed_loop()
+    b = space.b_input + space.b_feedback * space.d_input
+    if not np.any(b) and space.d_input == 1.0:
+        return None  # error feedback: the signal goes straight through
+    num, den = ss2tf(a_cl, b[:, None], space.c[None, :], np.array([[space.d_input]]))
+    return np.asarray(num[0], dtype=float), np.asarray(den, dtype=float)
+
+
+_POOLS: dict[int, ThreadPoolExecutor] = {}
+
+
+def _pool(workers: int) -> ThreadPoolExecutor:
+    """A shared worker pool per size (threads are reused across blocks and chains)."""
+    pool = _POOLS.get(workers)
+    if pool is None:
+        pool = _POOLS[workers] = ThreadPoolExecutor(
+            max_workers=workers, thread_name_prefix="audiodsm-chain"
+        )
+    return pool
+
+
+def _check_keep(keep) -> tuple:
+    if isinstance(keep, str):
+        keep = (keep,)
+    keep = tuple(keep)
+    for k in keep:
+        if k not in KEEP_CHOICES:
+            raise ParameterError("keep", k, "one of " + ", ".join(map(repr, KEEP_CHOICES)))
+    return keep
+
+
+def _scalar(v) -> int:
+    return int(np.asarray(v).sum())
+
+
+def _pwm_switches(out_state) -> float:
+    """Level changes so far, averaged over the bridge legs (PWM keeps the running totals)."""
+    if out_state is None:
+        return 0.0
+    legs = out_state.totals.transitions
+    return float(sum(legs)) / max(1, len(legs))
+
+
+def _stack(outs, name):
+    if outs[0][name] is None:
+        return None
+    return np.stack([o[name] for o in outs], axis=1)
+
+
+def _concat_blocks(parts, keep, channels) -> ChainBlock:
+    def cat(name):
+        arrays = [getattr(p, name) for p in parts if getattr(p, name) is not None]
+        if not arrays:
+            return None
+        return np.concatenate(arrays, axis=0)
+
+    return ChainBlock(
+        listening=cat("listening"),
+        modulator=cat("modulator"),
+        analog=cat("analog"),
+        error=cat("error"),
+    )
+
+
+def run_chain(
+    profile: ChainProfile,
+    x,
+    *,
+    rate_hz,
+    keep=("listening",),
+    listening_rate_hz=None,
+    align: bool = True,
+    threads=None,
+) -> ChainResult:
+    """Run a whole signal through a profile's chain, in memory.
+
+    Parameters
+    ----------
+    profile : ChainProfile
+    x : array_like
+        ``(n,)`` or ``(n, channels)``, full scale ±1.0.
+    rate_hz : int, keyword-only
+        Input rate, one of :data:`~audiodsm.profile.AUDIO_RATES_HZ`.
+    keep : sequence of str, keyword-only
+        Outputs to keep, from :data:`KEEP_CHOICES`: ``"listening"`` (calibrated output at the
+        listening rate), ``"modulator"`` (the modulator's levels), ``"analog"`` (calibrated
+        reconstructed output at the modulator rate, for out-of-band noise), ``"error"``
+        (listening output minus the ideal, no gain).
+    listening_rate_hz : int, optional
+        Default: the profile's listening rate (0 there means the input rate).
+    align : bool, keyword-only
+        Remove the latency from the listening-rate outputs and flush the chain (the default),
+        so ``listening`` has ``ceil(n * listening_rate / rate)`` frames aligned with ``x``.
+        With False every output is raw (latency included, no flush).
+    threads : int, optional
+        Worker threads for the channels.
+
+    Returns
+    -------
+    ChainResult
+
+    Notes
+    -----
+    The result does not depend on how the chain splits the signal into blocks: every stage's
+    streaming output equals its one-shot output bit for bit.
+    """
+    keep = _check_keep(keep)
+    x = np.asarray(x, dtype=np.float64)
+    mono = x.ndim == 1
+    x2 = x[:, None] if mono else x
+    if x2.ndim != 2:
+        raise ParameterError("x", f"array of shape {x.shape}", "shape (n,) or (n, channels)")
+    chain = Chain.from_profile(
+        profile, rate_hz, x2.shape[1], listening_rate_hz=listening_rate_hz, threads=threads
+    )
+    if align:
+        parts = []
+        state = None
+        for part, part_state in chain.stream([x2], keep=keep):
+            parts.append(part)
+            state = part_state
+        block = _concat_blocks(parts, keep, chain.channels)
+    else:
+        block, state = chain.process(x2, None, keep=keep)
+    stats = state.stats
+    modulator, analog, listening, error = (
+        block.modulator,
+        block.analog,
+        block.listening,
+        block.error,
+    )
+    if "listening" not in keep:
+        listening = None
+    return ChainResult(
+        listening=listening,
+        modulator=modulator,
+        analog=analog,
+        error=error,
+        rate_hz=float(chain.rate_hz),
+        modulator_rate_hz=float(chain.modulator_rate_hz),
+        listening_rate_hz=float(chain.listening_rate_hz),
+        latency_s=chain.latency_s,
+        aligned=bool(align),
+        gain=chain.gain,
+        stats=stats,
+    )

@@ -1,0 +1,143 @@
+"""Render benchmarks: speed of the whole chain, and peak memory on a long input.
+
+Cases
+-----
+``render_speed``
+    60 s of synthesized stereo 48 kHz program through the default profile (5th-order single-bit
+    PDM loop at OSR 64, 3rd-order Butterworth reconstruction) with a 24-bit listening file
+    written, as ``audiodsm render`` does it. Reports the time per stage (summed over the two
+    channels, which run in parallel threads) and the real-time factor. Target: >= 10x.
+``render_memory``
+    A 10-minute stereo 96 kHz 24-bit input at OSR 64, rendered in a child process that reports
+    its peak resident memory (``ru_maxrss``). Target: < 400 MB.
+
+``AUDIODSM_BENCH_RENDER_SECONDS`` (speed case) and ``AUDIODSM_BENCH_MEMORY_SECONDS`` (memory
+case) shorten the inputs for a quick check.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+SPEED_SECONDS = float(os.environ.get("AUDIODSM_BENCH_RENDER_SECONDS", "60"))
+MEMORY_SECONDS = float(os.environ.get("AUDIODSM_BENCH_MEMORY_SECONDS", "600"))
+
+
+def _program(n_frames: int, rate: int, start: int = 0) -> np.ndarray:
+    """Synthesized stereo program: plucked tones with decays, a bass line and a little noise."""
+    t = (start + np.arange(n_frames)) / rate
+    beat = 0.5  # a note every half second
+    phase = np.mod(t, beat)
+    env = np.exp(-phase * 6.0)
+    note = np.floor(t / beat).astype(np.int64)
+    freqs = 220.0 * 2.0 ** ((note * 7 % 12) / 12.0)
+    left = 0.35 * env * np.sin(2 * np.pi * freqs * t) + 0.2 * np.sin(2 * np.pi * 55.0 * t)
+    right = 0.3 * env * np.sin(2 * np.pi * 1.5 * freqs * t + 0.3) + 0.2 * np.sin(
+        2 * np.pi * 82.5 * t
+    )
+    rng = np.random.default_rng(start)
+    noise = 1e-3 * rng.standard_normal((n_frames, 2))
+    return np.column_stack([left, right]) + noise
+
+
+def _write_input(path: Path, seconds: float, rate: int) -> None:
+    from audiodsm.io import open_audio_writer
+
+    total = int(seconds * rate)
+    step = 1 << 18
+    with open_audio_writer(path, rate_hz=rate, channels=2, subtype="PCM_24") as writer:
+        for start in range(0, total, step):
+            writer.write(_program(min(step, total - start), rate, start))
+
+
+def _speed_case():
+    from audiodsm.cli.render import render_file
+    from audiodsm.profile import ChainProfile
+
+    profile = ChainProfile(name="pdm5-osr64")
+    rate = 48000
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        warm = tmp / "warm.wav"
+        _write_input(warm, 0.2, rate)
+        (tmp / "out").mkdir()
+        render_file(warm, profile, tmp / "out")  # compile the kernels first
+        src = tmp / "program.wav"
+        _write_input(src, SPEED_SECONDS, rate)
+        started = time.perf_counter()
+        summary = render_file(src, profile, tmp / "out")
+        elapsed = time.perf_counter() - started
+    return {
+        "case": "render_speed",
+        "profile": "5th-order single-bit PDM, OSR 64, 3rd-order Butterworth 60 kHz",
+        "audio_seconds": SPEED_SECONDS,
+        "rate_hz": rate,
+        "channels": 2,
+        "elapsed_s": round(elapsed, 3),
+        "realtime_factor": round(SPEED_SECONDS / elapsed, 2),
+        "target_realtime_factor": 10.0,
+        "stage_seconds_summed_over_channels": summary["stage_seconds"],
+        "cpu_count": os.cpu_count(),
+    }
+
+
+def _memory_child(src: str, out: str) -> None:
+    """Run in a child process: render, then print the peak resident memory."""
+    from audiodsm.cli.render import render_file
+    from audiodsm.profile import ChainProfile
+
+    started = time.perf_counter()
+    summary = render_file(src, ChainProfile(name="pdm5-osr64"), out)
+    elapsed = time.perf_counter() - started
+    peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # kilobytes on Linux
+    print(
+        json.dumps({"peak_mb": peak_kb / 1024.0, "elapsed_s": elapsed, "frames": summary["frames"]})
+    )
+
+
+def _memory_case():
+    rate = 96000
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        src = tmp / "long.wav"
+        _write_input(src, MEMORY_SECONDS, rate)
+        out = tmp / "out"
+        out.mkdir()
+        code = (
+            "import sys; from benchmarks.bench_render import _memory_child; "
+            "_memory_child(sys.argv[1], sys.argv[2])"
+        )
+        root = Path(__file__).resolve().parents[1]
+        done = subprocess.run(
+            [sys.executable, "-c", code, str(src), str(out)],
+            capture_output=True,
+            text=True,
+            cwd=root,
+            check=True,
+        )
+        child = json.loads(done.stdout.strip().splitlines()[-1])
+    return {
+        "case": "render_memory",
+        "profile": "5th-order single-bit PDM, OSR 64, 3rd-order Butterworth 60 kHz",
+        "audio_seconds": MEMORY_SECONDS,
+        "rate_hz": rate,
+        "channels": 2,
+        "peak_memory_mb": round(child["peak_mb"], 1),
+        "target_peak_memory_mb": 400.0,
+        "elapsed_s": round(child["elapsed_s"], 2),
+        "realtime_factor": round(MEMORY_SECONDS / child["elapsed_s"], 2),
+    }
+
+
+def run():
+    yield _speed_case()
+    yield _memory_case()

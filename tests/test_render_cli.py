@@ -1,0 +1,265 @@
+import json
+import math
+import os
+
+import numpy as np
+import pytest
+import soundfile as sf
+from click.testing import CliRunner
+
+from audiodsm.cli import main
+from audiodsm.cli.render import HEARING_CAUTION
+
+RATE = 48000
+
+# a light chain so the end-to-end runs stay short: 3rd order, 32x, PDM
+PROFILE = """
+name = "test-dac"
+description = "Invented test chip"
+[upsampler]
+osr = 32
+[modulator]
+order = 3
+[listening]
+error_gain_db = 40
+"""
+
+
+@pytest.fixture
+def setup(tmp_path):
+    """A profile, a stereo input (tone on the left, a quiet tone on the right, then silence)."""
+    src = tmp_path / "src"
+    src.mkdir()
+    prof = src / "dac.toml"
+    prof.write_text(PROFILE, encoding="utf-8")
+    n_tone, n_quiet = int(0.25 * RATE), int(1.0 * RATE)
+    t = np.arange(n_tone) / RATE
+    x = np.zeros((n_tone + n_quiet, 2))
+    fade = np.ones(n_tone)  # 10 ms raised-cosine fades: no onset overshoot in the output
+    ramp = int(0.01 * RATE)
+    fade[:ramp] = 0.5 - 0.5 * np.cos(np.pi * np.arange(ramp) / ramp)
+    fade[-ramp:] = fade[:ramp][::-1]
+    x[:n_tone, 0] = 10 ** (-1 / 20) * np.sin(2 * np.pi * 997 * t) * fade
+    x[:n_tone, 1] = 10 ** (-20 / 20) * np.sin(2 * np.pi * 997 * t) * fade
+    wav = src / "take one.wav"
+    sf.write(wav, x, RATE, subtype="PCM_24")
+    return tmp_path, prof, wav, x
+
+
+def invoke(args):
+    return CliRunner().invoke(main, ["render", *args])
+
+
+def final_files(folder):
+    return sorted(p.name for p in folder.iterdir()) if folder.exists() else []
+
+
+def test_render_end_to_end(setup):
+    tmp, prof, wav, x = setup
+    out = tmp / "out"
+    res = invoke(
+        [str(prof), str(wav), "--out-dir", str(out), "--json", "--error-file", "--save-stream"]
+    )
+    assert res.exit_code == 0, res.output + res.stderr
+    assert HEARING_CAUTION in res.stderr
+    assert "40 dB" in res.stderr
+    summary = json.loads(res.stdout.strip().splitlines()[-1])
+    names = final_files(out)
+    assert names == sorted(
+        [
+            "take one.test-dac.listen.wav",
+            "take one.test-dac.error+40dB.wav",
+            "take one.test-dac.bits",
+            "take one.test-dac.bits.json",
+            "take one.test-dac.summary.json",
+        ]
+    )
+    assert json.loads((out / "take one.test-dac.summary.json").read_text()) == summary
+    y, rate = sf.read(out / "take one.test-dac.listen.wav")
+    info = sf.info(out / "take one.test-dac.listen.wav")
+    assert rate == RATE and info.subtype == "PCM_24"
+    assert y.shape == x.shape  # latency removed and flushed: same length, aligned
+    # AES17 levels: the -1 dBFS and -20 dBFS tones come out at their levels (rms re a
+    # full-scale sine, i.e. 20 log10(sqrt(2) * rms))
+    seg = slice(int(0.05 * RATE), int(0.2 * RATE))
+    for ch, level in ((0, -1.0), (1, -20.0)):
+        rms = np.sqrt(np.mean(y[seg, ch] ** 2))
+        assert abs(20 * math.log10(math.sqrt(2) * rms) - level) < 0.06
+    ch0 = summary["channels"][0]
+    assert set(ch0) >= {
+        "rms_dbfs",
+        "peak_dbfs",
+        "overload_samples",
+        "dropped_pulses",
+        "silence_noise_dbfs_a",
+        "input_clipped_samples",
+    }
+    # summary rms and peak follow the input's (AES17 dBFS: 10 log10(2 mean(x^2)))
+    for ch in (0, 1):
+        expected_rms = 10 * math.log10(2 * np.mean(x[:, ch] ** 2))
+        assert abs(summary["channels"][ch]["rms_dbfs"] - expected_rms) < 0.05
+        # the peak carries the shaped noise this light 3rd-order 32x loop leaves between 20 and
+        # 24 kHz (about 1e-3 at its peaks), so it is compared in full-scale units
+        peak = 10 ** (summary["channels"][ch]["peak_dbfs"] / 20)
+        assert abs(peak - np.abs(x[:, ch]).max()) < 2e-3
+    assert ch0["overload_samples"] == 0
+    # the quiet passage is long enough: an A-weighted noise level is reported and it is far
+    # below the tone (a 3rd-order 32x single-bit loop is not 24-bit clean, but well below -60)
+    assert summary["silent_seconds"] >= 0.5
+    assert ch0["silence_noise_dbfs_a"] is not None and ch0["silence_noise_dbfs_a"] < -60
+    # the error file holds the library's error signal (output minus the ideal) raised by
+    # 40 dB = a factor of 10^(40/20) = 100, written as 24-bit integers (within one LSB, 2^-23)
+    from audiodsm.profile import load_profile
+    from audiodsm.stages.chain import run_chain
+
+    x_file, _ = sf.read(wav)  # the 24-bit samples the command read
+    lib = run_chain(load_profile(prof), x_file, rate_hz=RATE, keep=("listening", "error"))
+    e, _ = sf.read(out / "take one.test-dac.error+40dB.wav")
+    np.testing.assert_allclose(e, np.clip(lib.error * 10 ** (40 / 20), -1, 1), rtol=0, atol=2**-23)
+    np.testing.assert_allclose(y, np.clip(lib.listening, -1, 1), rtol=0, atol=2**-23)
+    assert np.abs(e).max() > 1e-3  # the tone's passage leaves a real error signal to hear
+    sidecar = json.loads((out / "take one.test-dac.bits.json").read_text())
+    assert sidecar["channels"] == 2
+    assert sidecar["samples_per_channel"] >= x.shape[0] * 32
+
+
+def test_table_output_and_progress_free_run(setup):
+    tmp, prof, wav, _ = setup
+    res = invoke([str(prof), str(wav), "--out-dir", str(tmp / "o"), "--no-progress"])
+    assert res.exit_code == 0, res.output
+    assert "rms dBFS" in res.stdout and "silence dBFS(A)" in res.stdout
+    assert HEARING_CAUTION in res.stderr
+
+
+def test_existing_outputs_are_kept_unless_replace(setup):
+    tmp, prof, wav, _ = setup
+    out = tmp / "out"
+    assert invoke([str(prof), str(wav), "--out-dir", str(out)]).exit_code == 0
+    listen = out / "take one.test-dac.listen.wav"
+    listen.write_bytes(b"keep me")
+    res = invoke([str(prof), str(wav), "--out-dir", str(out)])
+    assert res.exit_code == 2
+    errors = [line for line in res.stderr.splitlines() if line.startswith("audiodsm: error:")]
+    assert len(errors) == 1 and "already exists" in errors[0]
+    assert listen.read_bytes() == b"keep me"
+    res = invoke([str(prof), str(wav), "--out-dir", str(out), "--replace"])
+    assert res.exit_code == 0
+    assert listen.read_bytes() != b"keep me"
+
+
+def test_output_folder_may_not_hold_the_input(setup):
+    tmp, prof, wav, _ = setup
+    before = final_files(wav.parent)
+    res = invoke([str(prof), str(wav), "--out-dir", str(wav.parent)])
+    assert res.exit_code == 2
+    assert "holds this input" in res.stderr
+    assert final_files(wav.parent) == before
+
+
+@pytest.mark.parametrize(
+    ("make", "words"),
+    [
+        ("rate", "not supported"),
+        ("nan", "NaN"),
+        ("channels", "channels"),
+        ("unreadable", ""),
+        ("over", "full scale"),
+    ],
+)
+def test_bad_inputs_leave_nothing(setup, make, words):
+    tmp, prof, wav, _ = setup
+    bad = tmp / "src" / f"bad-{make}.wav"
+    if make == "rate":
+        sf.write(bad, np.zeros((4800, 1)), 50000)
+    elif make == "nan":
+        x = np.zeros((30000, 1))
+        x[20000] = np.nan
+        sf.write(bad, x, RATE, subtype="FLOAT")
+    elif make == "channels":
+        sf.write(bad, np.zeros((480, 9)), RATE)
+    elif make == "unreadable":
+        bad.write_bytes(b"RIFF but not really a wave file")
+    else:
+        prof.write_text(PROFILE + "\n[input]\nover_full_scale = 'refuse'\n", encoding="utf-8")
+        x = np.zeros((30000, 1))
+        x[25000] = 1.25
+        sf.write(bad, x, RATE, subtype="FLOAT")
+    out = tmp / "out"
+    res = invoke([str(prof), str(bad), "--out-dir", str(out), "--no-progress"])
+    assert res.exit_code == 2
+    lines = [line for line in res.stderr.splitlines() if line.startswith("audiodsm: error:")]
+    assert len(lines) == 1 and str(bad) in lines[0] and words in lines[0]
+    assert "Traceback" not in res.output
+    assert final_files(out) == []  # not even a temporary file is left
+
+
+def test_one_bad_file_does_not_stop_the_others(setup):
+    tmp, prof, wav, _ = setup
+    bad = tmp / "src" / "broken.wav"
+    bad.write_bytes(b"nothing")
+    out = tmp / "out"
+    res = invoke([str(prof), str(bad), str(wav), "--out-dir", str(out), "--json"])
+    assert res.exit_code == 2
+    assert len(res.stdout.strip().splitlines()) == 1
+    assert "take one.test-dac.listen.wav" in final_files(out)
+
+
+def test_bad_profile_key_is_one_line(setup):
+    tmp, prof, wav, _ = setup
+    prof.write_text("[modulator]\nordr = 3\n", encoding="utf-8")
+    res = invoke([str(prof), str(wav), "--out-dir", str(tmp / "out")])
+    assert res.exit_code == 2
+    assert res.stderr.strip() == (
+        f"audiodsm: error: {prof}: modulator.ordr: unknown key; expected one of: "
+        "order, max_gain, optimize_zeros, zeros, poles, structure, levels, dither_lsb, seed, "
+        "input_scale, guard, state_bound"
+    )
+    assert final_files(tmp / "out") == []
+
+
+def test_output_folder_that_cannot_be_made(setup):
+    tmp, prof, wav, _ = setup
+    blocker = tmp / "a-file"
+    blocker.write_text("not a folder")
+    res = invoke([str(prof), str(wav), "--out-dir", str(blocker / "out")])
+    assert res.exit_code == 2
+    assert res.stderr.strip().startswith("audiodsm: error:")
+    assert "cannot create the output folder" in res.stderr
+    assert len(res.stderr.strip().splitlines()) == 1
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root can write anywhere")
+def test_unwritable_output_folder(setup):
+    tmp, prof, wav, _ = setup
+    out = tmp / "locked"
+    out.mkdir()
+    out.chmod(0o555)
+    try:
+        res = invoke([str(prof), str(wav), "--out-dir", str(out)])
+    finally:
+        out.chmod(0o755)
+    assert res.exit_code == 2
+    assert "not writable" in res.stderr
+    assert final_files(out) == []
+
+
+def test_interrupt_mid_file_leaves_nothing(setup, monkeypatch):
+    tmp, prof, wav, _ = setup
+    from audiodsm.stages import chain as chain_mod
+
+    calls = {"n": 0}
+    original = chain_mod.Chain.process
+
+    def interrupted(self, x, state=None, *, keep=("listening",)):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt
+        return original(self, x, state, keep=keep)
+
+    monkeypatch.setattr(chain_mod.Chain, "process", interrupted)
+    monkeypatch.setattr(chain_mod, "MAX_BLOCK_MODULATOR_SAMPLES", 1 << 16)
+    out = tmp / "out"
+    res = invoke([str(prof), str(wav), "--out-dir", str(out), "--error-file", "--save-stream"])
+    assert res.exit_code != 0
+    assert calls["n"] == 3
+    assert final_files(out) == []
