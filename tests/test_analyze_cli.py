@@ -321,3 +321,29 @@ def test_spectral_noise_agrees_with_time_domain_meter():
         ref = thd_plus_noise(x, rate_hz=RATE, weighting=weighting)
         assert ours == pytest.approx(ref.ratio_db, abs=0.1)
     assert ch.level_dbfs == pytest.approx(20 * np.log10(0.7), abs=1e-4)
+
+
+def test_tone_after_leading_silence(tmp_path):
+    # Captured files often start silent. 1.5 s of digital zero, then 3 s of a -20 dBFS tone
+    # with 24-bit-level noise: the frequency fit must use a stretch where the tone plays, and
+    # the level (median of the piecewise fits, AES17 dBFS) must not be pulled down.
+    n0, n1 = int(1.5 * RATE), 3 * RATE
+    t = np.arange(n1) / RATE
+    amp = 10 ** (-20 / 20)
+    tone = amp * np.sin(2 * np.pi * 1234.5 * t) + np.random.default_rng(13).normal(0, 1e-7, n1)
+    x = np.concatenate([np.zeros(n0), tone])
+    path = tmp_path / "late.wav"
+    sf.write(str(path), x, RATE, subtype="FLOAT")
+    (ch,) = _json_lines(_run("--json", path).stdout)[0]["channels"]
+    assert ch["signal"] == "tone"
+    assert ch["fundamental_hz"] == pytest.approx(1234.5, abs=1e-4)
+    assert ch["level_dbfs"] == pytest.approx(-20.0, abs=0.01)
+    # the same through the block stream (no seeking)
+    (same,) = analyze_blocks(
+        lambda: (x[i : i + 40000, None] for i in range(0, x.size, 40000)),
+        rate_hz=RATE,
+        channels=1,
+        n_frames=x.size,
+    )
+    assert same.fundamental_hz == pytest.approx(ch["fundamental_hz"], abs=1e-6)
+    assert same.level_dbfs == pytest.approx(ch["level_dbfs"], abs=1e-4)

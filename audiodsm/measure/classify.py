@@ -341,8 +341,7 @@ class _ToneRemover:
         self.piece = int(piece)
         self.pending = np.zeros(0)
         self._full = None
-        self.amp_sums = np.zeros(len(self.freqs))
-        self.fitted = 0
+        self._amps: list = []
 
     def _basis(self, n: int):
         """DC, cosine and sine columns over n frames, phase counted from the piece start.
@@ -367,9 +366,7 @@ class _ToneRemover:
     def _fit(self, x: np.ndarray) -> np.ndarray:
         d, gram_inv = self._basis(x.size)
         coef = gram_inv @ (x @ d)
-        amps = np.hypot(coef[1::2], coef[2::2])
-        self.amp_sums += amps * x.size
-        self.fitted += x.size
+        self._amps.append(np.hypot(coef[1::2], coef[2::2]))
         return x - d @ coef
 
     def add(self, x: np.ndarray) -> np.ndarray:
@@ -391,14 +388,51 @@ class _ToneRemover:
         return self._fit(rest)
 
     def amplitudes(self) -> np.ndarray:
-        """Mean fitted peak amplitude of each tone (weighted by piece length)."""
-        return self.amp_sums / max(self.fitted, 1)
+        """Each tone's fitted peak amplitude where it plays.
+
+        The median over the pieces whose amplitude is within 3 dB of the largest: a stretch
+        of silence before or after the tone (common in captured files), and the pieces only
+        partly covered by it, do not pull the level down.
+        """
+        if not self._amps:
+            return np.zeros(len(self.freqs))
+        amps = np.array(self._amps)
+        out = np.empty(amps.shape[1])
+        for k in range(amps.shape[1]):
+            a = amps[:, k]
+            out[k] = np.median(a[a >= a.max() * 10 ** (-3.0 / 20.0)])
+        return out
 
 
 def _survey_spans(n_frames: int, span: int, count: int) -> list[int]:
     """Start frames of ``count`` spans of ``span`` frames spread evenly over the signal."""
     last = n_frames - span
     return sorted({int(round(v)) for v in np.linspace(0, last, count)})
+
+
+def _loud_start(levels_dbfs: np.ndarray, starts: np.ndarray) -> int:
+    """Start frame of the first short block within 3 dB of the loudest one (0 if none)."""
+    finite = np.isfinite(levels_dbfs)
+    if not finite.any():
+        return 0
+    top = levels_dbfs[finite].max()
+    idx = np.flatnonzero(finite & (levels_dbfs >= top - 3.0))
+    return int(starts[idx[0]])
+
+
+def _stretch_from_blocks(open_blocks, start: int, frames: int) -> np.ndarray:
+    """Frames ``start .. start+frames`` of a block stream (stops reading once it has them)."""
+    out, pos, need = [], 0, frames
+    for block in open_blocks():
+        end = pos + block.shape[0]
+        if end > start:
+            piece = block[max(start - pos, 0) :][:need]
+            out.append(piece.copy())
+            need -= piece.shape[0]
+            if need <= 0:
+                break
+        pos = end
+    return np.concatenate(out)
 
 
 def _lines_apart(spectrum, freqs, find_idle_tones):
@@ -430,12 +464,14 @@ def analyze_blocks(
     ``read_span`` is not given, otherwise of :data:`SURVEY_SPANS` one-second spans spread
     evenly over it. Then one streamed pass measures, with memory bounded by the block size:
 
-    * tone: the frequency from a 4-parameter sine fit (IEEE Std 1057) on the first second;
+    * tone: the frequency from a 4-parameter sine fit (IEEE Std 1057) on one second where
+      the tone plays (the first quarter-second block within 3 dB of the loudest on);
       the tone then removed piece by piece (about 1 s) by least-squares fits at that
-      frequency; the level is the mean fitted amplitude; noise is the residual's averaged
+      frequency; the level is the median fitted amplitude over the pieces within 3 dB of
+      the largest; noise is the residual's averaged
       spectrum summed over 20 Hz-20 kHz, unweighted and weighted (A, CCIR-RMS); THD+N is
       that noise over the band-limited total (fundamental plus residual; the weighting
-      applies to the residual only); THD from harmonics 2..10 fitted on the first
+      applies to the residual only); THD from harmonics 2..10 fitted on that
       second; lines searched in the residual spectrum;
     * twin tone: both tones removed the same way (jointly); noise and lines from the
       residual (intermodulation products show as lines); level = combined band level;
@@ -492,48 +528,60 @@ def analyze_blocks(
     piece = max(seg, int(round(_FIT_PIECE_S * rate)))
     span = max(2 * seg, int(round(_SURVEY_SPAN_S * rate)))
 
-    # survey: spectra and short-term levels for the classification, and the leading stretch
+    # survey: spectra and short-term levels for the classification
     survey = [SpectrumAccumulator(seg, rate_hz=rate) for _ in range(channels)]
-    levels = []
-    lead = None
+    levels, level_starts = [], []
     if read_span is not None and n_frames > 2 * SURVEY_SPANS * span:
-        lead = np.asarray(read_span(0, lead_frames), dtype=np.float64)
         for start in _survey_spans(n_frames, span, SURVEY_SPANS):
             x = np.asarray(read_span(start, span), dtype=np.float64)
             for c in range(channels):
                 part = SpectrumAccumulator(seg, rate_hz=rate)
                 part.add(x[:, c])
                 survey[c].merge(part)  # spans stay separate: no segment straddles two
-            levels.append(_block_levels(x, level_frames))
+            lv = _block_levels(x, level_frames)
+            levels.append(lv)
+            level_starts.append(start + level_frames * np.arange(lv.shape[0]))
     else:
-        got, carry, kept = 0, np.zeros((0, channels)), []
+        carry, done = np.zeros((0, channels)), 0
         for block in open_blocks():
             for c in range(channels):
                 survey[c].add(block[:, c])
             data = np.concatenate([carry, block]) if carry.size else block
             lv = _block_levels(data, level_frames)
             levels.append(lv)
+            level_starts.append(done + level_frames * np.arange(lv.shape[0]))
+            done += lv.shape[0] * level_frames
             carry = data[lv.shape[0] * level_frames :]
-            if got < lead_frames:
-                kept.append(block[: lead_frames - got].copy())
-                got += kept[-1].shape[0]
-        lead = np.concatenate(kept) if kept else np.zeros((0, channels))
     level_arr = np.concatenate(levels) if levels else np.zeros((0, channels))
+    starts_arr = np.concatenate(level_starts).astype(np.int64) if levels else np.zeros(0, int)
     contents = [
         classify_channel(survey[c].result(), block_levels_dbfs=level_arr[:, c])
         for c in range(channels)
     ]
 
-    # the fits that fix each tone's frequency, on the leading stretch
+    # a stretch where each tone plays (its first loud stretch: files often start silent)
+    leads: list = [None] * channels
+    for c, content in enumerate(contents):
+        if content.kind in ("tone", "twin-tone"):
+            start = _loud_start(level_arr[:, c], starts_arr)
+            start = max(0, min(start, n_frames - lead_frames))
+            if read_span is not None:
+                stretch = np.asarray(read_span(start, lead_frames), dtype=np.float64)
+            else:
+                stretch = _stretch_from_blocks(open_blocks, start, lead_frames)
+            leads[c] = np.ascontiguousarray(stretch[:, c])
+
+    # the fits that fix each tone's frequency
     freqs: list[tuple] = []
     one = int(round(_LEAD_S * rate))
     for c, content in enumerate(contents):
         if content.kind == "tone":
-            fit = fit_sine(lead[:one, c], rate_hz=rate, frequency_hz=content.frequencies_hz[0])
+            lead = leads[c][:one]
+            fit = fit_sine(lead, rate_hz=rate, frequency_hz=content.frequencies_hz[0])
             freqs.append((fit.frequency_hz,))
         elif content.kind == "twin-tone":
             # alternate 4-parameter fits, each with the other tone's model removed
-            two = lead[:, c]
+            two = leads[c]
             fa, fb = content.frequencies_hz
             other = np.zeros_like(two)
             for _ in range(3):
@@ -573,7 +621,7 @@ def analyze_blocks(
             total = amp * amp / 2.0 + noise["unweighted"]
             thd_n = _ratio_db(noise["unweighted"], total)
             thd_n_a = _ratio_db(noise["a"], total)
-            ratio = thd(lead[:, c], rate_hz=rate, frequency_hz=fundamental).ratio_db
+            ratio = thd(leads[c], rate_hz=rate, frequency_hz=fundamental).ratio_db
             thd_db = ratio if np.isfinite(ratio) else None
             if abs(level + 60.0) <= DR_TONE_WINDOW_DB:
                 dr, dr_a = -noise_dbfs["unweighted"], -noise_dbfs["a"]
