@@ -22,7 +22,7 @@ Reconstruction (``audiodsm.stages.reconstruct``)
     filter_waveform, filter_waveform_ticks, FilterState, out_of_band_ripple, waveform_ripple,
     RippleReport, filter_report, FilterReport
 Chain (``audiodsm.stages.chain``)
-    Chain, run_chain
+    Chain, ChainResult, run_chain
 Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
     find_idle_tones
@@ -119,6 +119,9 @@ _PUBLIC = {
     "StabilityLimit": "audiodsm.stages.modulator",
     "scale_states": "audiodsm.stages.modulator",
     "ChainProfile": "audiodsm.profile",
+    "Chain": "audiodsm.stages.chain",
+    "ChainResult": "audiodsm.stages.chain",
+    "run_chain": "audiodsm.stages.chain",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
     "profile_to_toml": "audiodsm.profile",
