@@ -42,8 +42,8 @@ AES17-practice metrics (``audiodsm.measure.aes17``)
     imd_smpte, imd_difference_frequency, out_of_band_power_dbfs, noise_modulation
 Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
-    line_spectrum, SpectrumAccumulator, classify_channel, ChannelContent, analyze_blocks,
-    ChannelAnalysis
+    line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
+    ChannelContent, analyze_blocks, ChannelAnalysis
 Audio files (``audiodsm.io``)
     read_audio, read_audio_span, audio_info, AudioInfo, iter_audio_blocks,
     write_audio_atomic, open_audio_writer
@@ -67,7 +67,8 @@ _PUBLIC = {
     "line_threshold": "audiodsm.measure.idle_tones",
     "welch_degrees_of_freedom": "audiodsm.measure.idle_tones",
     "line_spectrum": "audiodsm.measure.idle_tones",
-    "SpectrumAccumulator": "audiodsm.measure.idle_tones",
+    "accumulate_line_spectrum": "audiodsm.measure.idle_tones",
+    "LineSpectrumState": "audiodsm.measure.idle_tones",
     "classify_channel": "audiodsm.measure.classify",
     "ChannelContent": "audiodsm.measure.classify",
     "analyze_blocks": "audiodsm.measure.classify",

@@ -8,7 +8,7 @@ from scipy import signal, stats
 
 from audiodsm.errors import ParameterError
 from audiodsm.measure.idle_tones import (
-    SpectrumAccumulator,
+    accumulate_line_spectrum,
     find_idle_tones,
     line_spectrum,
     line_threshold,
@@ -51,22 +51,49 @@ def test_tone_level_sums_to_dbfs():
     )
 
 
-def test_streamed_spectrum_equals_one_shot_and_accumulate_spectrum(rng):
+def test_streamed_spectrum_equals_one_shot_bit_for_bit_and_accumulate_spectrum(rng):
     from audiodsm.measure.spectrum import accumulate_spectrum
 
-    x = rng.normal(size=30011)
-    whole = line_spectrum(x, rate_hz=RATE, segment_frames=2048)
-    acc = SpectrumAccumulator(2048, rate_hz=RATE)
-    for start in range(0, x.shape[0], 777):
-        acc.add(x[start : start + 777])
-    part = acc.result()
-    assert part.n_averages == whole.n_averages == (30011 - 2048) // 1024 + 1
-    np.testing.assert_allclose(part.power, whole.power, rtol=1e-12)
+    # Short segments, blocks that cut through them: block-wise equals one call bit for bit.
+    x = rng.normal(size=300011)
+    seg = 64
+    whole = accumulate_line_spectrum(x, rate_hz=RATE, segment_frames=seg)
+    st = None
+    for start in range(0, x.shape[0], 7777):
+        st = accumulate_line_spectrum(
+            x[start : start + 7777], rate_hz=RATE, segment_frames=seg, state=st
+        )
+    np.testing.assert_array_equal(st.spectrum().power, whole.spectrum().power)
+    assert st.spectrum().n_averages == (300011 - seg) // (seg // 2) + 1
     # the plain one-segment-at-a-time accumulator of the spectrum module gives the same
-    reference = accumulate_spectrum(x, rate_hz=RATE, segment_frames=2048).spectrum()
+    reference = accumulate_spectrum(x, rate_hz=RATE, segment_frames=seg).spectrum()
+    part = st.spectrum()
     np.testing.assert_allclose(part.power, reference.power, rtol=1e-12)
     assert part.enbw_hz == pytest.approx(reference.enbw_hz, rel=1e-12)
     assert part.main_lobe_bins == reference.main_lobe_bins
+
+
+def test_streamed_spectrum_across_full_groups_is_bit_exact(rng):
+    # 2048-frame segments: groups of 1024 segments (1,049,600 frames); 2.5 M frames cross two
+    # group boundaries, and odd block sizes cut through segments and groups alike.
+    x = rng.normal(size=2_500_000)
+    seg = 2048
+    whole = accumulate_line_spectrum(x, rate_hz=RATE, segment_frames=seg).spectrum()
+    st = None
+    for start in range(0, x.shape[0], 333_331):
+        st = accumulate_line_spectrum(
+            x[start : start + 333_331], rate_hz=RATE, segment_frames=seg, state=st
+        )
+    np.testing.assert_array_equal(st.spectrum().power, whole.power)
+    # pooling two separate stretches equals averaging their segments
+    a = accumulate_line_spectrum(x[:100_000], rate_hz=RATE, segment_frames=seg)
+    b = accumulate_line_spectrum(x[200_000:300_000], rate_hz=RATE, segment_frames=seg)
+    pooled = a.merged(b).spectrum()
+    sa, sb = a.spectrum(), b.spectrum()
+    expected = (sa.power * sa.n_averages + sb.power * sb.n_averages) / (
+        sa.n_averages + sb.n_averages
+    )
+    np.testing.assert_allclose(pooled.power, expected, rtol=1e-12)
 
 
 @pytest.mark.parametrize(

@@ -515,7 +515,7 @@ def analyze_blocks(
     """
     from audiodsm.measure.aes17 import fit_sine, thd
     from audiodsm.measure.idle_tones import (
-        SpectrumAccumulator,
+        accumulate_line_spectrum,
         find_idle_tones,
         segment_frames_for,
     )
@@ -529,15 +529,17 @@ def analyze_blocks(
     span = max(2 * seg, int(round(_SURVEY_SPAN_S * rate)))
 
     # survey: spectra and short-term levels for the classification
-    survey = [SpectrumAccumulator(seg, rate_hz=rate) for _ in range(channels)]
+    def more(x, st):
+        return accumulate_line_spectrum(x, rate_hz=rate, segment_frames=seg, state=st)
+
+    survey: list = [None] * channels
     levels, level_starts = [], []
     if read_span is not None and n_frames > 2 * SURVEY_SPANS * span:
         for start in _survey_spans(n_frames, span, SURVEY_SPANS):
             x = np.asarray(read_span(start, span), dtype=np.float64)
             for c in range(channels):
-                part = SpectrumAccumulator(seg, rate_hz=rate)
-                part.add(x[:, c])
-                survey[c].merge(part)  # spans stay separate: no segment straddles two
+                part = more(x[:, c], None)  # spans stay separate: none straddles two
+                survey[c] = part if survey[c] is None else survey[c].merged(part)
             lv = _block_levels(x, level_frames)
             levels.append(lv)
             level_starts.append(start + level_frames * np.arange(lv.shape[0]))
@@ -545,7 +547,7 @@ def analyze_blocks(
         carry, done = np.zeros((0, channels)), 0
         for block in open_blocks():
             for c in range(channels):
-                survey[c].add(block[:, c])
+                survey[c] = more(block[:, c], survey[c])
             data = np.concatenate([carry, block]) if carry.size else block
             lv = _block_levels(data, level_frames)
             levels.append(lv)
@@ -555,7 +557,7 @@ def analyze_blocks(
     level_arr = np.concatenate(levels) if levels else np.zeros((0, channels))
     starts_arr = np.concatenate(level_starts).astype(np.int64) if levels else np.zeros(0, int)
     contents = [
-        classify_channel(survey[c].result(), block_levels_dbfs=level_arr[:, c])
+        classify_channel(survey[c].spectrum(), block_levels_dbfs=level_arr[:, c])
         for c in range(channels)
     ]
 
@@ -596,20 +598,20 @@ def analyze_blocks(
 
     # the measuring pass
     removers = [_ToneRemover(f, rate, piece) if f else None for f in freqs]
-    spectra = [SpectrumAccumulator(seg, rate_hz=rate) for _ in range(channels)]
+    spectra: list = [None] * channels
     for block in open_blocks():
         for c in range(channels):
             x = np.ascontiguousarray(block[:, c])
-            spectra[c].add(removers[c].add(x) if removers[c] else x)
+            spectra[c] = more(removers[c].add(x) if removers[c] else x, spectra[c])
         if progress is not None:
             progress(block.shape[0])
     for c in range(channels):
         if removers[c]:
-            spectra[c].add(removers[c].finish())
+            spectra[c] = more(removers[c].finish(), spectra[c])
 
     results = []
     for c, content in enumerate(contents):
-        spec = spectra[c].result()
+        spec = spectra[c].spectrum()
         noise = {k: spec.band_power(*_BAND_HZ, weighting=k) for k in ("unweighted", "a", "ccir")}
         noise_dbfs = {k: _dbfs(v) for k, v in noise.items()}
         fundamental = level = thd_n = thd_n_a = thd_db = dr = dr_a = None

@@ -54,7 +54,8 @@ from audiodsm.errors import ParameterError
 __all__ = [
     "SpectralLine",
     "IdleToneResult",
-    "SpectrumAccumulator",
+    "LineSpectrumState",
+    "accumulate_line_spectrum",
     "line_spectrum",
     "segment_frames_for",
     "welch_degrees_of_freedom",
@@ -169,92 +170,72 @@ def welch_degrees_of_freedom(window, step_frames: int, n_averages: int) -> float
     return 2.0 * k / total
 
 
-class SpectrumAccumulator:
-    """Build an averaged spectrum of one channel block by block, fast, with bounded memory.
+@dataclass(frozen=True, eq=False)
+class LineSpectrumState:
+    """Running sum of windowed periodograms of one channel, carried between blocks (a value).
 
-    Half-overlapping, mean-removed segments of a fixed length are windowed and their
-    periodograms summed; frames left over at the end of a block wait for the next one, so
-    the segments do not depend on how the signal is cut into blocks (the sums agree to
-    rounding). The result is an :class:`audiodsm.measure.spectrum.Spectrum`, scaled as that
-    class states (mean square per bin, a tone's main lobe sums to its mean square), so it
-    equals ``accumulate_spectrum`` of the same signal to rounding. This form batches the
-    FFTs of many segments at once, which the ``analyze`` command needs to keep a
-    ten-minute 96 kHz file within its time budget.
-
-    Parameters
+    Attributes
     ----------
-    segment_frames : int
-        Segment length, even (see :func:`segment_frames_for`).
     rate_hz : float
-        Sample rate.
-    window : str, optional
-        Window name for ``scipy.signal.get_window`` (periodic); 4-term Blackman-Harris by
-        default.
+    window : str
+    segment_frames : int
+    power_sum : numpy.ndarray
+        Sum of the squared FFT magnitudes of the segments in completed groups (read-only).
+    n_averages : int
+        Segments in ``power_sum``.
+    pending : numpy.ndarray
+        Frames not yet part of a completed group (read-only).
     """
 
-    def __init__(self, segment_frames: int, *, rate_hz: float, window: str = DETECTOR_WINDOW):
-        if (
-            isinstance(segment_frames, bool)
-            or not isinstance(segment_frames, int | np.integer)
-            or segment_frames < 16
-            or segment_frames % 2
-        ):
-            raise ParameterError("segment_frames", segment_frames, "an even integer >= 16")
-        _check_rate(rate_hz)
-        self.segment_frames = int(segment_frames)
-        self.step_frames = self.segment_frames // 2
-        self.rate_hz = float(rate_hz)
-        self.window = window
-        self._w = _window(window, self.segment_frames)
-        self._sum = np.zeros(self.segment_frames // 2 + 1)
-        self._pending = np.zeros(0)
-        self.n_averages = 0
+    rate_hz: float
+    window: str
+    segment_frames: int
+    power_sum: np.ndarray = field(repr=False)
+    n_averages: int
+    pending: np.ndarray = field(repr=False)
 
-    def add(self, block) -> None:
-        """Feed the next block of the channel, shape ``(n,)``."""
-        x = np.asarray(block, dtype=np.float64)
-        if x.ndim != 1:
-            raise ParameterError("block", f"array of shape {x.shape}", "one channel, shape (n,)")
-        data = np.concatenate([self._pending, x]) if self._pending.size else x
-        seg, step = self.segment_frames, self.step_frames
-        count = _n_segments(data.shape[0], seg)
-        if count:
-            view = np.lib.stride_tricks.sliding_window_view(data, seg)[::step][:count]
-            group = max(1, (1 << 21) // seg)  # bounds the temporary arrays
-            for g in range(0, count, group):
-                segs = view[g : g + group]
-                segs = (segs - segs.mean(axis=1, keepdims=True)) * self._w
-                spec = np.fft.rfft(segs, axis=1)
-                self._sum += np.sum(spec.real**2 + spec.imag**2, axis=0)
-            self.n_averages += count
-            self._pending = data[count * step :].copy()
-        else:
-            self._pending = data.copy()
+    def _totals(self) -> tuple[np.ndarray, int]:
+        """Sums including the complete segments still pending."""
+        count = _n_segments(self.pending.shape[0], self.segment_frames)
+        if count == 0:
+            return self.power_sum, self.n_averages
+        part = _group_sum(self.pending, count, self.segment_frames, self.window)
+        return self.power_sum + part, self.n_averages + count
 
-    def merge(self, other: SpectrumAccumulator) -> None:
-        """Add the segments of another accumulator (a separate stretch of the same channel).
+    def merged(self, other: LineSpectrumState) -> LineSpectrumState:
+        """Pool with the state of a separate stretch of the same channel.
 
-        No segment spans the gap between the two stretches; frames pending in ``other`` are
-        dropped.
+        No segment spans the gap between the two stretches; frames that did not fill a
+        segment in either are dropped.
         """
         if (other.segment_frames, other.rate_hz, other.window) != (
             self.segment_frames,
             self.rate_hz,
             self.window,
         ):
-            raise ParameterError("other", "a differently set-up accumulator", "the same settings")
-        self._sum += other._sum
-        self.n_averages += other.n_averages
+            raise ParameterError("other", "a differently set-up spectrum", "the same settings")
+        a_sum, a_count = self._totals()
+        b_sum, b_count = other._totals()
+        total = a_sum + b_sum
+        total.setflags(write=False)
+        return LineSpectrumState(
+            self.rate_hz, self.window, self.segment_frames, total, a_count + b_count, _EMPTY
+        )
 
-    def result(self):
-        """The averaged spectrum so far, an ``audiodsm.measure.spectrum.Spectrum``."""
+    def spectrum(self):
+        """The averaged spectrum so far, an ``audiodsm.measure.spectrum.Spectrum``.
+
+        Scaled as that class states: mean square per bin (density times bin spacing), so a
+        band's noise is the sum of its bins and a tone's power the sum over its main lobe.
+        """
         from audiodsm.measure.spectrum import Spectrum
 
-        if self.n_averages == 0:
+        power_sum, count = self._totals()
+        if count == 0:
             raise ParameterError(
                 "signal length", "shorter than one segment", f">= {self.segment_frames} frames"
             )
-        w = self._w
+        w = _window(self.window, self.segment_frames)
         n = self.segment_frames
         # density times bin spacing: 2|X|^2 / (n * sum w^2), not doubled at DC and Nyquist
         scale = np.full(n // 2 + 1, 2.0 / (n * float(np.sum(w * w))))
@@ -262,15 +243,119 @@ class SpectrumAccumulator:
         scale[-1] /= 2.0
         return Spectrum(
             freq_hz=np.arange(n // 2 + 1) * (self.rate_hz / n),
-            power=self._sum * scale / self.n_averages,
+            power=power_sum * scale / count,
             rate_hz=self.rate_hz,
             resolution_hz=self.rate_hz / n,
             enbw_hz=self.rate_hz * float(np.sum(w * w)) / float(np.sum(w)) ** 2,
             window=self.window,
             segment_frames=n,
-            n_averages=self.n_averages,
+            n_averages=count,
             main_lobe_bins=_LOBE_HALF_BINS.get(self.window, 4),
         )
+
+
+_EMPTY = np.zeros(0)
+_EMPTY.setflags(write=False)
+
+
+def _group_frames(segment_frames: int) -> int:
+    """Segments per FFT batch: bounds the temporary arrays to about 2**21 samples."""
+    return max(1, (1 << 21) // segment_frames)
+
+
+def _group_sum(data: np.ndarray, count: int, seg: int, window: str) -> np.ndarray:
+    """Sum of |FFT|^2 of ``count`` mean-removed, windowed, half-overlapping segments."""
+    view = np.lib.stride_tricks.sliding_window_view(data, seg)[:: seg // 2][:count]
+    segs = (view - view.mean(axis=1, keepdims=True)) * _window(window, seg)
+    spec = np.fft.rfft(segs, axis=1)
+    return np.sum(spec.real**2 + spec.imag**2, axis=0)
+
+
+def accumulate_line_spectrum(
+    x,
+    *,
+    rate_hz: float,
+    segment_frames: int,
+    window: str = DETECTOR_WINDOW,
+    state: LineSpectrumState | None = None,
+) -> LineSpectrumState:
+    """Add a block of one channel to a running, batched Welch average.
+
+    Half-overlapping, mean-removed, windowed segments are cut from the concatenation of all
+    blocks and their FFTs taken in fixed groups of segments (counted from the start of the
+    signal), so the sums do not depend on how the signal was cut into blocks: block-wise
+    equals one call, bit for bit. The result equals
+    ``audiodsm.measure.spectrum.accumulate_spectrum`` of the same signal to rounding; this
+    batched form is several times faster, which the ``analyze`` command needs for
+    ten-minute 96 kHz files.
+
+    Parameters
+    ----------
+    x : array_like
+        The next block of the channel, shape ``(n,)``; any length.
+    rate_hz : float
+        Sample rate.
+    segment_frames : int
+        Segment length, even (see :func:`segment_frames_for`). Used only when starting.
+    window : str, optional
+        Window name for ``scipy.signal.get_window`` (periodic); 4-term Blackman-Harris by
+        default. Used only when starting.
+    state : LineSpectrumState, optional
+        The value returned for the previous block; None to start.
+
+    Returns
+    -------
+    LineSpectrumState
+        Call ``.spectrum()`` for the averaged spectrum.
+
+    References
+    ----------
+    .. [1] P. D. Welch, IEEE Trans. Audio Electroacoust. AU-15(2), 1967.
+    """
+    arr = np.asarray(x, dtype=np.float64)
+    if arr.ndim != 1:
+        raise ParameterError("x", f"array of shape {arr.shape}", "one channel, shape (n,)")
+    if state is None:
+        _check_rate(rate_hz)
+        if (
+            isinstance(segment_frames, bool)
+            or not isinstance(segment_frames, int | np.integer)
+            or segment_frames < 16
+            or segment_frames % 2
+        ):
+            raise ParameterError("segment_frames", segment_frames, "an even integer >= 16")
+        _window(window, int(segment_frames))  # validates the name
+        zero = np.zeros(int(segment_frames) // 2 + 1)
+        zero.setflags(write=False)
+        state = LineSpectrumState(float(rate_hz), window, int(segment_frames), zero, 0, _EMPTY)
+    elif not isinstance(state, LineSpectrumState):
+        raise ParameterError("state", type(state).__name__, "a LineSpectrumState or None")
+    elif float(rate_hz) != state.rate_hz:
+        raise ParameterError(
+            "rate_hz", rate_hz, f"the rate the spectrum began with, {state.rate_hz}"
+        )
+    seg = state.segment_frames
+    hop = seg // 2
+    group = _group_frames(seg)
+    need = (group + 1) * hop  # frames holding one full group of segments
+    data = np.concatenate([state.pending, arr]) if state.pending.size else arr
+    if data.shape[0] < need:
+        pending = np.array(data, copy=True)
+        pending.setflags(write=False)
+        return LineSpectrumState(
+            state.rate_hz, state.window, seg, state.power_sum, state.n_averages, pending
+        )
+    total = np.array(state.power_sum, copy=True)
+    count = state.n_averages
+    pos = 0
+    while data.shape[0] - pos >= need:
+        total += _group_sum(data[pos : pos + need], group, seg, state.window)
+        count += group
+        pos += group * hop
+    total.setflags(write=False)
+    pending = np.array(data[pos:], copy=True)
+    pending.setflags(write=False)
+    return LineSpectrumState(state.rate_hz, state.window, seg, total, count, pending)
 
 
 def line_spectrum(x, *, rate_hz: float, segment_frames: int | None = None):
@@ -296,9 +381,7 @@ def line_spectrum(x, *, rate_hz: float, segment_frames: int | None = None):
         raise ParameterError("x", f"array of shape {a.shape}", "one channel, shape (n,)")
     _check_rate(rate_hz)
     seg = segment_frames or segment_frames_for(a.shape[0], rate_hz)
-    acc = SpectrumAccumulator(seg, rate_hz=rate_hz)
-    acc.add(a)
-    return acc.result()
+    return accumulate_line_spectrum(a, rate_hz=rate_hz, segment_frames=seg).spectrum()
 
 
 def _check_rate(rate_hz) -> None:
