@@ -347,3 +347,29 @@ def test_tone_after_leading_silence(tmp_path):
     )
     assert same.fundamental_hz == pytest.approx(ch["fundamental_hz"], abs=1e-6)
     assert same.level_dbfs == pytest.approx(ch["level_dbfs"], abs=1e-4)
+
+
+def test_twin_tone_intermodulation_products_are_listed(tmp_path):
+    # SMPTE twin tone (60 Hz + 7 kHz, 4:1) through y = x + a2 x^2. Trigonometric identities:
+    # x^2 of A1 cos(w1 t) + A2 cos(w2 t) holds A1 A2 at w2 - w1 and w2 + w1, A1^2/2 at 2 w1 and
+    # A2^2/2 at 2 w2 (and DC). So lines at 6940 and 7060 Hz of amplitude a2 A1 A2, at 120 Hz
+    # of a2 A1^2 / 2 and at 14 kHz of a2 A2^2 / 2; levels in dBFS are 20 log10(amplitude)
+    # (AES17). The line levels are read above the noise floor: 0.1 dB.
+    n, a1, a2_amp, a2 = 2 * RATE, 0.4, 0.1, 1e-3
+    t = np.arange(n) / RATE
+    x = a1 * np.cos(2 * np.pi * 60.0 * t) + a2_amp * np.cos(2 * np.pi * 7000.0 * t + 0.3)
+    y = x + a2 * x**2 + np.random.default_rng(14).normal(0, 1e-7, n)
+    path = tmp_path / "smpte.wav"
+    sf.write(str(path), y, RATE, subtype="DOUBLE")
+    (ch,) = _json_lines(_run("--json", path).stdout)[0]["channels"]
+    assert ch["signal"] == "twin-tone"
+    lines = {round(tone["frequency_hz"]): tone["level_dbfs"] for tone in ch["tones"]}
+    expected = {
+        6940: a2 * a1 * a2_amp,
+        7060: a2 * a1 * a2_amp,
+        120: a2 * a1**2 / 2,
+        14000: a2 * a2_amp**2 / 2,
+    }
+    assert set(lines) == set(expected)
+    for f, amp in expected.items():
+        assert lines[f] == pytest.approx(20 * np.log10(amp), abs=0.1)
