@@ -263,3 +263,56 @@ def test_interrupt_mid_file_leaves_nothing(setup, monkeypatch):
     assert res.exit_code != 0
     assert calls["n"] == 3
     assert final_files(out) == []
+
+
+def test_pwm_profile_with_code_export_and_another_rate(setup):
+    tmp, _, wav, x = setup
+    prof = tmp / "src" / "amp.toml"
+    prof.write_text(
+        """
+name = "amp"
+[upsampler]
+osr = 16
+[modulator]
+order = 2
+levels = 9
+max_gain = 2.0
+[output]
+kind = "pwm"
+pwm_mode = "three-level"
+min_pulse_ticks = 1
+full_scale_volts = 12.0
+[reconstruction]
+kind = "lc"
+bridged = true
+""",
+        encoding="utf-8",
+    )
+    out = tmp / "out"
+    res = invoke(
+        [str(prof), str(wav), "--out-dir", str(out), "--json", "--save-stream"]
+        + ["--listen-rate", "96000", "--float32"]
+    )
+    assert res.exit_code == 0, res.stderr
+    summary = json.loads(res.stdout)
+    assert summary["listening_rate_hz"] == 96000
+    info = sf.info(out / "take one.amp.listen.wav")
+    assert info.samplerate == 96000 and info.subtype == "FLOAT"
+    assert info.frames == 2 * x.shape[0]  # same duration as the input
+    codes = (out / "take one.amp.codes.txt").read_text().splitlines()
+    # one line per modulator clock: input frames x OSR; 9 levels need 4 binary digits per
+    # channel, two channels per line
+    assert len(codes) == x.shape[0] * 16
+    assert {len(line) for line in codes} == {8}
+    ch = summary["channels"][0]
+    # Common practice: each leg of a double-edge PWM bridge switches at most twice per frame
+    assert 0 < ch["switching_rate_hz"] <= 2 * summary["modulator_rate_hz"]
+    assert ch["dropped_pulses"] >= 0 and ch["stretched_pulses"] == 0
+
+
+def test_bad_listen_rate_is_refused_before_anything_is_written(setup):
+    tmp, prof, wav, _ = setup
+    res = invoke([str(prof), str(wav), "--out-dir", str(tmp / "out"), "--listen-rate", "22050"])
+    assert res.exit_code == 2
+    assert "--listen-rate=22050" in res.stderr
+    assert final_files(tmp / "out") == []

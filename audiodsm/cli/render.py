@@ -521,11 +521,15 @@ def render(
     input's silent passages.
     """
     from audiodsm.errors import ParameterError
-    from audiodsm.profile import load_profile
+    from audiodsm.profile import AUDIO_RATES_HZ, load_profile
 
     profile = load_profile(profile_path)
     if error_gain is not None and not (math.isfinite(error_gain) and 0 <= error_gain <= 80):
         raise ParameterError("--error-gain", error_gain, "a number of dB from 0 to 80")
+    if listen_rate is not None and listen_rate not in AUDIO_RATES_HZ:
+        raise ParameterError(
+            "--listen-rate", listen_rate, "one of " + ", ".join(map(str, AUDIO_RATES_HZ))
+        )
     want_error = profile.listening.error_file if error_file is None else error_file
     gain_db = None
     if want_error:
