@@ -26,6 +26,7 @@ listening output has exactly the duration of the input and lines up with it.
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import time
@@ -203,6 +204,14 @@ def _build_ntf(mod):
     return None  # designed later, once the OSR is known
 
 
+@functools.lru_cache(maxsize=64)
+def _designed_ntf(order, osr, max_gain, optimize_zeros):
+    """design_ntf, remembered: a battery builds the same chain many times."""
+    from audiodsm.design.ntf import design_ntf
+
+    return design_ntf(order, osr, max_gain=max_gain, optimize_zeros=optimize_zeros)
+
+
 def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
     """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``."""
     from audiodsm.stages import output_stage as out_mod
@@ -313,8 +322,6 @@ class Chain:
     """
 
     def __init__(self, profile, rate_hz, channels, *, listening_rate_hz=None, threads=None):
-        from audiodsm.design.ntf import design_ntf
-        from audiodsm.design.realize import realize_ntf
         from audiodsm.stages.modulator import Modulator
         from audiodsm.stages.reconstruct import semi_digital_fir
         from audiodsm.stages.upsample import (
@@ -358,9 +365,7 @@ class Chain:
         if mod.explicit_ntf:
             self.ntf = _build_ntf(mod)
         else:
-            self.ntf = design_ntf(
-                mod.order, self.osr, max_gain=mod.max_gain, optimize_zeros=mod.optimize_zeros
-            )
+            self.ntf = _designed_ntf(mod.order, self.osr, mod.max_gain, mod.optimize_zeros)
         mod_kwargs = {
             "structure": mod.structure,
             "levels": mod.levels,
@@ -372,7 +377,7 @@ class Chain:
             mod_kwargs["state_bound"] = mod.state_bound
         self.modulator = Modulator(self.ntf, **mod_kwargs)
         self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
-        self._loop_space = realize_ntf(self.ntf, mod.structure).state_space()
+        self._loop_space = self.modulator.loop.state_space()
         self._stf = _stf_filter(self._loop_space)
 
         # output stage, semi-digital FIR, analog filter
