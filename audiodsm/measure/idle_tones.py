@@ -259,8 +259,8 @@ _EMPTY.setflags(write=False)
 
 
 def _group_frames(segment_frames: int) -> int:
-    """Segments per FFT batch: bounds the temporary arrays to about 2**21 samples."""
-    return max(1, (1 << 21) // segment_frames)
+    """Segments per FFT batch: bounds the temporary arrays to about 2**19 samples."""
+    return max(1, (1 << 19) // segment_frames)
 
 
 def _group_sum(data: np.ndarray, count: int, seg: int, window: str) -> np.ndarray:
