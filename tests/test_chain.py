@@ -302,3 +302,16 @@ def test_automatic_headroom_follows_the_multibit_no_overload_bound():
     res = run_chain(profile, tone(-1.0, 0.1), rate_hz=RATE)
     amp, _ = fit_tone(res.listening[480:-480, 0], RATE, 997.0)
     assert abs(20 * math.log10(amp) + 1.0) <= 0.05
+
+
+def test_empty_and_tiny_inputs():
+    # nothing in, nothing out; a few frames in, the same duration out at any listening rate
+    assert run_chain(PDM, np.zeros((0, 2)), rate_hz=RATE).listening.shape == (0, 2)
+    assert run_chain(PDM, np.zeros(5), rate_hz=RATE, listening_rate_hz=44100).listening.shape == (
+        math.ceil(5 * 44100 / RATE),
+        1,
+    )
+    chain = Chain.from_profile(PDM, RATE, 2)
+    block, state = chain.process(np.zeros((0, 2)), keep=("listening", "modulator"))
+    assert block.modulator.shape == (0, 2) and block.analog is None
+    assert state.stats.input_frames == 0

@@ -638,9 +638,13 @@ class Chain:
                     "samples within ±1.0 (the profile sets input.over_full_scale = 'refuse')",
                 )
             x = np.clip(x, -1.0, 1.0)
+        if x.shape[0] == 0:  # nothing to do: every requested output is empty
+            empty = np.zeros((0, self.channels))
+            block = ChainBlock(**{k: (empty if k in keep else None) for k in KEEP_CHOICES})
+            return block, state
         parts = []
         step = self.block_frames
-        for start in range(0, max(x.shape[0], 1), step):
+        for start in range(0, x.shape[0], step):
             block, state = self._process_piece(x[start : start + step], state, keep)
             parts.append(block)
         stats = state.stats
