@@ -22,6 +22,7 @@ from audiodsm.io import (
     iter_audio_blocks,
     open_audio_writer,
     read_audio,
+    read_audio_span,
     write_audio_atomic,
 )
 
@@ -150,6 +151,32 @@ def test_blocks_equal_whole_read(tmp_path, rng):
     np.testing.assert_array_equal(np.concatenate(blocks), x)
     with pytest.raises(ParameterError, match="block_frames"):
         next(iter_audio_blocks(path, 0))
+
+
+@pytest.mark.parametrize("suffix,subtype", [(".wav", "PCM_24"), (".flac", "PCM_16")])
+def test_span_reads_equal_slices(tmp_path, rng, suffix, subtype):
+    bits = {"PCM_16": 16, "PCM_24": 24}[subtype]
+    x = _codes(rng, 50000, 2, bits) / 2.0 ** (bits - 1)
+    path = tmp_path / f"span{suffix}"
+    sf.write(str(path), x, 48000, subtype=subtype)
+    for start, frames in ((0, 10), (12345, 20000), (49990, 10), (7, 0)):
+        np.testing.assert_array_equal(
+            read_audio_span(path, start, frames), x[start : start + frames]
+        )
+    with pytest.raises(ParameterError, match="at most 50000"):
+        read_audio_span(path, 49990, 11)
+    with pytest.raises(ParameterError, match="start_frame"):
+        read_audio_span(path, -1, 5)
+
+
+def test_span_read_reports_nan_frame(tmp_path):
+    x = np.zeros((1000, 1))
+    x[600, 0] = np.inf
+    path = tmp_path / "inf.wav"
+    sf.write(str(path), x, 48000, subtype="FLOAT")
+    assert read_audio_span(path, 0, 600).shape == (600, 1)
+    with pytest.raises(AudioFileError, match="frame 600"):
+        read_audio_span(path, 500, 200)
 
 
 # ---------------------------------------------------------------------------------------------
