@@ -51,16 +51,19 @@ def slow_resample_rational(buf, phases, lengths, first_time, step, n_out):
     return out
 
 
-def test_decimate_kernel_matches_slow_twin(rng):
+@pytest.mark.parametrize("n_held", [0, 14, 15])
+def test_decimate_kernel_matches_slow_twin(rng, n_held):
     half = rng.standard_normal(4)
     buf = rng.standard_normal((2, 2400))
     n = (2400 - 15) // 2 + 1
     out = np.empty((2, n))
-    _kernels.decimate_halfband(buf, half, out)
+    held, new = buf[:, :n_held], buf[:, n_held:]
+    _kernels.decimate_halfband(np.ascontiguousarray(held), np.ascontiguousarray(new), half, out)
     assert np.array_equal(out, slow_decimate_halfband(buf, half))
-    # the kernel also reads a transposed (frames, channels) buffer
+    # the kernel also reads a transposed (frames, channels) block
     out_t = np.empty((2, n))
-    _kernels.decimate_halfband(np.ascontiguousarray(buf.T).T, half, out_t)
+    new_t = np.ascontiguousarray(new.T).T
+    _kernels.decimate_halfband(np.ascontiguousarray(held), new_t, half, out_t)
     assert np.array_equal(out_t, out)
 
 

@@ -1012,32 +1012,43 @@ def interpolate_polyphase(buf, phases, lengths, out):
 
 
 @njit(cache=True, nogil=True)
-def decimate_halfband(buf, half, out):
+def decimate_halfband(held, new, half, out):
     """Decimate by 2 with a half-band FIR of length N = 4K - 1 (zeros never multiplied).
 
     ``half`` holds the K distinct outer taps (``h[2m]`` for m < K, the filter having unit DC
-    gain); the centre tap is 1/2. ``buf`` is (channels, L), any strides, whose first sample is
-    the oldest one the first output needs; output i uses the newest sample ``t = N - 1 + 2 i``:
+    gain); the centre tap is 1/2. The input is ``held`` (channels, H) followed by ``new``
+    (channels, n), any strides: call it ``buf``, whose first sample is the oldest one the
+    first output needs. Output i uses the newest sample ``t = N - 1 + 2 i``:
     ``out[c, i] = sum_m half[m] * (buf[c, t-2m] + buf[c, t-2(2K-1-m)]) + 0.5 * buf[c, t-2K+1]``,
     summed in increasing m, the centre term last. Each channel is first split into its even
     and odd samples (the paired taps all fall on the parity of t, the centre on the other),
     so the inner loops run over contiguous memory.
     """
-    n_ch = buf.shape[0]
+    n_ch = held.shape[0]
+    n_held = held.shape[1]
+    n_new = new.shape[1]
     k = half.shape[0]
     n = out.shape[1]
-    n_even = (buf.shape[1] + 1) // 2
+    n_even = (n_held + n_new + 1) // 2
     even = np.empty(n_even)
     odd = np.empty(n_even)
     acc = np.empty(_RATE_CHUNK)
     for c in range(n_ch):
-        row = buf[c]
-        src_even = row[0::2]
-        src_odd = row[1::2]
+        for j in range(n_held):
+            if j % 2 == 0:
+                even[j // 2] = held[c, j]
+            else:
+                odd[j // 2] = held[c, j]
+        # new[j] sits at buf index n_held + j
+        first_even = n_held % 2  # index into new of its first even-buf sample
+        src_even = new[c, first_even::2]
+        src_odd = new[c, 1 - first_even :: 2]
+        e0 = (n_held + first_even) // 2
+        o0 = (n_held + 1 - first_even) // 2
         for j in range(src_even.shape[0]):
-            even[j] = src_even[j]
+            even[e0 + j] = src_even[j]
         for j in range(src_odd.shape[0]):
-            odd[j] = src_odd[j]
+            odd[o0 + j] = src_odd[j]
         # t = 4K - 2 + 2i is even: t - 2m -> even[2K-1+i-m], t - 2(2K-1-m) -> even[i+m],
         # t - (2K-1) -> odd[K-1+i]
         for start in range(0, n, _RATE_CHUNK):

@@ -1190,16 +1190,19 @@ class Downsampler:
         cur = None  # (channels, n) between stages
         for half, held in zip(self._halves, state.buffers, strict=False):
             n_taps = 4 * half.size - 1
-            if cur is None:  # the kernel reads the caller's (n, channels) layout directly
-                buf = np.concatenate([held.T, frames]).T
-            else:
-                buf = np.concatenate([held, cur], 1)
-            length = buf.shape[1]
+            # the first stage reads the caller's (n, channels) layout directly, no copy
+            block = frames.T if cur is None else cur
+            length = held.shape[1] + block.shape[1]
             n_out = (length - n_taps) // 2 + 1 if length >= n_taps else 0
             out = np.empty((channels, n_out))
             if n_out:
-                _kernels.decimate_halfband(buf, half, out)
-            new_bufs.append(_frozen(buf[:, 2 * n_out :]))
+                _kernels.decimate_halfband(held, block, half, out)
+            used = 2 * n_out  # samples no later output needs
+            if used >= held.shape[1]:
+                rest = block[:, used - held.shape[1] :]
+            else:
+                rest = np.concatenate([held[:, used:], block], axis=1)
+            new_bufs.append(_frozen(rest))
             cur = out
         next_time = state.next_time
         if self._rational is not None:
