@@ -315,3 +315,19 @@ def test_empty_and_tiny_inputs():
     block, state = chain.process(np.zeros((0, 2)), keep=("listening", "modulator"))
     assert block.modulator.shape == (0, 2) and block.analog is None
     assert state.stats.input_frames == 0
+
+
+def test_a_forked_process_runs_chains_too():
+    # a batch grader may fork worker processes after this process has run chains in threads
+    import multiprocessing
+
+    x = tone(-6.0, 0.01, channels=2)
+    here = run_chain(PDM, x, rate_hz=RATE).listening
+    ctx = multiprocessing.get_context("fork")
+    with ctx.Pool(1) as pool:
+        there = pool.apply_async(_listening_in_child, (x,)).get(timeout=120)
+    np.testing.assert_array_equal(here, there)
+
+
+def _listening_in_child(x):
+    return run_chain(PDM, x, rate_hz=RATE).listening

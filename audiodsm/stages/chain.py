@@ -856,14 +856,19 @@ def _stf_filter(space):
     return np.asarray(num[0], dtype=float), np.asarray(den, dtype=float)
 
 
-_POOLS: dict[int, ThreadPoolExecutor] = {}
+_POOLS: dict[tuple[int, int], ThreadPoolExecutor] = {}
 
 
 def _pool(workers: int) -> ThreadPoolExecutor:
-    """A shared worker pool per size (threads are reused across blocks and chains)."""
-    pool = _POOLS.get(workers)
+    """A shared worker pool per size and process (threads are reused across blocks and chains).
+
+    Keyed by the process id too: a pool inherited through ``fork`` has no live threads in the
+    child, so a forked worker process (e.g. a batch grader) gets its own.
+    """
+    key = (os.getpid(), workers)
+    pool = _POOLS.get(key)
     if pool is None:
-        pool = _POOLS[workers] = ThreadPoolExecutor(
+        pool = _POOLS[key] = ThreadPoolExecutor(
             max_workers=workers, thread_name_prefix="audiodsm-chain"
         )
     return pool
