@@ -316,3 +316,25 @@ def test_bad_listen_rate_is_refused_before_anything_is_written(setup):
     assert res.exit_code == 2
     assert "--listen-rate=22050" in res.stderr
     assert final_files(tmp / "out") == []
+
+
+def test_output_beyond_full_scale_is_clipped_and_counted(setup):
+    tmp, prof, _, _ = setup
+    # a full-scale square wave: the band-limited output overshoots +-1 (Gibbs), which a 24-bit
+    # file cannot hold; the summary counts exactly the samples the file had to clip
+    n = int(0.1 * RATE)
+    x = np.where(np.sin(2 * np.pi * 500 * np.arange(n) / RATE) >= 0, 1.0, -1.0)
+    wav = tmp / "src" / "square.wav"
+    sf.write(wav, np.column_stack([x, 0.5 * x]), RATE, subtype="FLOAT")
+    res = invoke([str(prof), str(wav), "--out-dir", str(tmp / "out"), "--json"])
+    assert res.exit_code == 0, res.stderr
+    summary = json.loads(res.stdout)
+    from audiodsm.profile import load_profile
+    from audiodsm.stages.chain import run_chain
+
+    lib = run_chain(load_profile(prof), np.column_stack([x, 0.5 * x]), rate_hz=RATE)
+    over = (np.abs(lib.listening) > 1.0).sum(axis=0)
+    assert over[0] > 0 and over[1] == 0
+    assert [c["output_clipped_samples"] for c in summary["channels"]] == over.tolist()
+    y, _ = sf.read(tmp / "out" / "square.test-dac.listen.wav")
+    assert np.abs(y).max() <= 1.0

@@ -261,6 +261,7 @@ def render_file(
     peak = np.zeros(info.channels)
     n_out = 0
     error_clipped = np.zeros(info.channels, dtype=np.int64)
+    out_clipped = np.zeros(info.channels, dtype=np.int64)
     refuse = profile.input.over_full_scale == "refuse"
     done = [0]
     started = time.perf_counter()
@@ -335,6 +336,7 @@ def render_file(
             if y.shape[0]:
                 peak = np.maximum(peak, np.abs(y).max(axis=0))
             n_out += y.shape[0]
+            out_clipped += (np.abs(y) > 1.0).sum(axis=0)
             silence.feed_output(y)
             listen_w.write(y if float_output else np.clip(y, -1.0, 1.0))
             if error_w is not None:
@@ -376,7 +378,7 @@ def render_file(
                     "rms_dbfs": _dbfs_rms(float(power[c]) / max(1, n_out)),
                     "peak_dbfs": _dbfs_peak(float(peak[c])),
                     "input_clipped_samples": int(stats.clipped_samples[c]),
-                    "output_clipped_samples": int(stats.output_clipped[c]),
+                    "output_clipped_samples": int(out_clipped[c]),
                     "error_clipped_samples": int(error_clipped[c]) if error_w else None,
                     "overload_samples": int(stats.overload_count[c]),
                     "dropped_pulses": int(stats.dropped_pulses[c]),
@@ -386,7 +388,8 @@ def render_file(
                     "silence_noise_dbfs_a": silence_dbfs[c],
                 }
             )
-        _write_json_atomic(names["summary"], summary, overwrite=overwrite)
+    # the audio files are complete and renamed; the summary goes last
+    _write_json_atomic(names["summary"], summary, overwrite=overwrite)
     return summary
 
 
