@@ -266,6 +266,19 @@ def test_pwm_counts_dropped_pulses_and_switching():
     assert 0 < rate <= 2 * res.modulator_rate_hz
 
 
+def test_a_setting_a_stage_rejects_names_the_profile_and_section():
+    from audiodsm.errors import ProfileError
+
+    # an 8th-order NTF cannot have a peak gain as low as 1.01 (the design library says how low
+    # it can go); the error names the profile and its [modulator] section in one line
+    profile = parse_profile('name = "too-tight"\n[modulator]\norder = 8\nmax_gain = 1.01')
+    with pytest.raises(ProfileError) as info:
+        Chain.from_profile(profile, RATE, 1)
+    assert info.value.key == "modulator"
+    assert str(info.value).startswith("profile 'too-tight': modulator: max_gain=1.01")
+    assert "\n" not in str(info.value)
+
+
 def test_bad_arguments():
     with pytest.raises(ParameterError, match="rate_hz"):
         Chain.from_profile(PDM, 32000, 1)

@@ -26,6 +26,7 @@ listening output has exactly the duration of the input and lines up with it.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import math
 import os
@@ -37,7 +38,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from audiodsm.errors import ParameterError
+from audiodsm.errors import ParameterError, ProfileError
 from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile
 
 __all__ = [
@@ -204,6 +205,15 @@ def _build_ntf(mod):
     return None  # designed later, once the OSR is known
 
 
+@contextlib.contextmanager
+def _settings_of(profile: ChainProfile, section: str):
+    """Turn a stage's ParameterError into a ProfileError naming the profile and section."""
+    try:
+        yield
+    except ParameterError as exc:
+        raise ProfileError(f"profile {profile.name!r}", section, str(exc)) from None
+
+
 @functools.lru_cache(maxsize=64)
 def _designed_ntf(order, osr, max_gain, optimize_zeros):
     """design_ntf, remembered: a battery builds the same chain many times."""
@@ -348,53 +358,53 @@ class Chain:
         self.modulator_rate_hz = self.rate_hz * self.osr
         self.block_frames = max(1, MAX_BLOCK_MODULATOR_SAMPLES // self.osr)
 
-        # upsampler
-        self.upsampler_design = design_upsampler(
-            self.rate_hz,
-            self.osr,
-            passband_edge=up.passband_edge,
-            passband_ripple_db=up.passband_ripple_db,
-            stopband_edge=up.stopband_edge,
-            stopband_atten_db=up.stopband_atten_db,
-            final_stage=up.final_stage,
-        )
-        self._upsampler = Upsampler(self.upsampler_design)
+        with _settings_of(profile, "upsampler"):
+            self.upsampler_design = design_upsampler(
+                self.rate_hz,
+                self.osr,
+                passband_edge=up.passband_edge,
+                passband_ripple_db=up.passband_ripple_db,
+                stopband_edge=up.stopband_edge,
+                stopband_atten_db=up.stopband_atten_db,
+                final_stage=up.final_stage,
+            )
+            self._upsampler = Upsampler(self.upsampler_design)
 
-        # modulator
         mod = profile.modulator
-        if mod.explicit_ntf:
-            self.ntf = _build_ntf(mod)
-        else:
-            self.ntf = _designed_ntf(mod.order, self.osr, mod.max_gain, mod.optimize_zeros)
-        mod_kwargs = {
-            "structure": mod.structure,
-            "levels": mod.levels,
-            "dither_lsb": mod.dither_lsb,
-            "seed": mod.seed,
-            "guard": mod.guard,
-        }
-        if mod.state_bound:
-            mod_kwargs["state_bound"] = mod.state_bound
-        self.modulator = Modulator(self.ntf, **mod_kwargs)
-        self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
-        self._loop_space = self.modulator.loop.state_space()
-        self._stf = _stf_filter(self._loop_space)
+        with _settings_of(profile, "modulator"):
+            if mod.explicit_ntf:
+                self.ntf = _build_ntf(mod)
+            else:
+                self.ntf = _designed_ntf(mod.order, self.osr, mod.max_gain, mod.optimize_zeros)
+            mod_kwargs = {
+                "structure": mod.structure,
+                "levels": mod.levels,
+                "dither_lsb": mod.dither_lsb,
+                "seed": mod.seed,
+                "guard": mod.guard,
+            }
+            if mod.state_bound:
+                mod_kwargs["state_bound"] = mod.state_bound
+            self.modulator = Modulator(self.ntf, **mod_kwargs)
+            self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
+            self._loop_space = self.modulator.loop.state_space()
+            self._stf = _stf_filter(self._loop_space)
 
-        # output stage, semi-digital FIR, analog filter
-        self._waveform = _output_waveform_fn(profile, float(self.modulator_rate_hz))
-        taps = profile.reconstruction.fir_taps
-        self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
-        self.analog_filter = _analog_filter(profile)
-
-        # listening decimator
-        self.downsampler_design = design_downsampler(
-            self.modulator_rate_hz,
-            self.listening_rate_hz,
-            passband_hz=profile.listening.passband_hz,
-        )
-        self._downsampler = Downsampler(self.downsampler_design)
-
-        self._calibrate()
+        with _settings_of(profile, "output"):
+            self._waveform = _output_waveform_fn(profile, float(self.modulator_rate_hz))
+        with _settings_of(profile, "reconstruction"):
+            taps = profile.reconstruction.fir_taps
+            self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
+            self.analog_filter = _analog_filter(profile)
+        with _settings_of(profile, "listening"):
+            self.downsampler_design = design_downsampler(
+                self.modulator_rate_hz,
+                self.listening_rate_hz,
+                passband_hz=profile.listening.passband_hz,
+            )
+            self._downsampler = Downsampler(self.downsampler_design)
+        with _settings_of(profile, "output"):
+            self._calibrate()  # runs the output stage on its levels
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
         n_threads = threads if threads is not None else min(self.channels, os.cpu_count() or 1)
         self._threads = max(1, int(n_threads))
