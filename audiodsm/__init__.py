@@ -51,6 +51,15 @@ Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
 Chain profiles (``audiodsm.profile``)
     ChainProfile, load_profile, parse_profile, profile_to_toml, profile_digest
+Spec sheets (``audiodsm.spec``)
+    load_spec, parse_spec, spec_digest, SpecSheet, Target, METRIC_CATALOGUE
+Grading (``audiodsm.evaluate.grade``)
+    grade_batch, grade_metrics, rank_grades, collect_profiles, GradeBatch, ProfileGrade,
+    TargetGrade, GradeCache
+Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
+    write_report, render_html, batch_to_dict, batch_to_csv, plot_spectrum,
+    plot_thd_n_vs_level, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
+    plot_margins
 """
 
 from __future__ import annotations
@@ -183,6 +192,30 @@ _PUBLIC = {
     "imd_difference_frequency": "audiodsm.measure.aes17",
     "out_of_band_power_dbfs": "audiodsm.measure.aes17",
     "noise_modulation": "audiodsm.measure.aes17",
+    "load_spec": "audiodsm.spec",
+    "parse_spec": "audiodsm.spec",
+    "spec_digest": "audiodsm.spec",
+    "SpecSheet": "audiodsm.spec",
+    "Target": "audiodsm.spec",
+    "METRIC_CATALOGUE": "audiodsm.spec",
+    "grade_batch": "audiodsm.evaluate.grade",
+    "grade_metrics": "audiodsm.evaluate.grade",
+    "rank_grades": "audiodsm.evaluate.grade",
+    "collect_profiles": "audiodsm.evaluate.grade",
+    "GradeBatch": "audiodsm.evaluate.grade",
+    "ProfileGrade": "audiodsm.evaluate.grade",
+    "TargetGrade": "audiodsm.evaluate.grade",
+    "GradeCache": "audiodsm.evaluate.grade",
+    "write_report": "audiodsm.evaluate.report",
+    "render_html": "audiodsm.evaluate.report",
+    "batch_to_dict": "audiodsm.evaluate.report",
+    "batch_to_csv": "audiodsm.evaluate.report",
+    "plot_spectrum": "audiodsm.evaluate.plotting",
+    "plot_thd_n_vs_level": "audiodsm.evaluate.plotting",
+    "plot_idle_tone_map": "audiodsm.evaluate.plotting",
+    "plot_state_histograms": "audiodsm.evaluate.plotting",
+    "plot_frequency_response": "audiodsm.evaluate.plotting",
+    "plot_margins": "audiodsm.evaluate.plotting",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

@@ -1,0 +1,196 @@
+"""``audiodsm grade``: run the battery on candidate profiles and grade them against a spec."""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+import click
+
+from audiodsm.errors import ParameterError
+
+
+def _fmt(value, spec="+.2f"):
+    return "-" if value is None else format(value, spec)
+
+
+def _aligned(rows, right=()) -> list:
+    """Rows of text cells as aligned lines (columns in ``right`` are right-aligned)."""
+    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
+    out = []
+    for r in rows:
+        cells = [
+            cell.rjust(w) if c in right else cell.ljust(w)
+            for c, (cell, w) in enumerate(zip(r, widths, strict=True))
+        ]
+        out.append("  ".join(cells).rstrip())
+    return out
+
+
+def summary_table(batch) -> list:
+    """One line per profile: rank, verdict, worst margin, failed targets, source."""
+    rows = [("rank", "profile", "verdict", "worst margin", "failed", "from")]
+    for rank, g in enumerate(batch.grades, 1):
+        worst = g.worst_margin
+        rows.append(
+            (
+                str(rank),
+                g.name,
+                "PASS" if g.passed else "FAIL",
+                "none" if worst == float("-inf") else f"{worst:+.2f}",
+                f"{g.failed_count}/{len(g.lines)}",
+                "cache" if g.cached else ("crashed" if g.failure else "run"),
+            )
+        )
+    return _aligned(rows, right=(0, 3, 4))
+
+
+def detail_table(batch) -> list:
+    """One line per profile and target: requirement, reading, margin, unit, result."""
+    rows = [("rank", "profile", "target", "requirement", "reading", "margin", "unit", "result")]
+    for rank, g in enumerate(batch.grades, 1):
+        for k, line in enumerate(g.lines):
+            t = line.target
+            rows.append(
+                (
+                    str(rank) if k == 0 else "",
+                    g.name if k == 0 else "",
+                    t.label,
+                    t.requirement,
+                    _fmt(line.value, ".2f"),
+                    _fmt(line.margin),
+                    t.unit,
+                    "pass"
+                    if line.passed
+                    else ("FAIL" if not line.reason else "FAIL: " + line.reason),
+                )
+            )
+    return _aligned(rows, right=(0, 4, 5))
+
+
+class _Bar:
+    """A plain one-line progress bar on stderr (only when stderr is a terminal)."""
+
+    def __init__(self, enabled: bool):
+        self.enabled = enabled and sys.stderr.isatty()
+        self.last = ""
+
+    def __call__(self, fraction, label):
+        if not self.enabled:
+            return
+        filled = int(round(30 * fraction))
+        text = f"\r[{'=' * filled}{' ' * (30 - filled)}] {100 * fraction:5.1f}%  {label}"[:110]
+        sys.stderr.write(text.ljust(len(self.last)))
+        sys.stderr.flush()
+        self.last = text
+
+    def close(self):
+        if self.enabled and self.last:
+            sys.stderr.write("\n")
+            sys.stderr.flush()
+
+
+@click.command("grade")
+@click.argument("paths", metavar="PROFILE...", nargs=-1, required=True, type=click.Path())
+@click.option("--spec", "spec_path", required=True, type=click.Path(), help="Spec sheet (TOML).")
+@click.option(
+    "--jobs",
+    type=int,
+    default=None,
+    help="Cores to use; profiles run in parallel processes. Default: all cores.",
+)
+@click.option(
+    "--report",
+    "report_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Write the HTML page, JSON and CSV into this folder (created when missing).",
+)
+@click.option("--json", "as_json", is_flag=True, help="Print the grades as one JSON object.")
+@click.option(
+    "--cache",
+    "cache_dir",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Folder of cached battery results. Default: $XDG_CACHE_HOME/audiodsm/grades "
+    "(~/.cache/audiodsm/grades).",
+)
+@click.option("--no-cache", is_flag=True, help="Neither read nor write cached results.")
+@click.option("--recompute", is_flag=True, help="Run every battery again; refresh the cache.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Battery seed.")
+@click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
+def grade(
+    paths, spec_path, jobs, report_dir, as_json, cache_dir, no_cache, recompute, seed, no_progress
+):
+    """Grade candidate PROFILE files (or folders of them) against a spec sheet.
+
+    Every profile's chain goes through the test battery; each target of the spec sheet is
+    graded pass or fail with a margin in the metric's unit (positive = better than the limit),
+    and profiles are ranked by their worst margin. Exit status: 0 when every target of every
+    profile passes, 1 when any fails, 2 on bad input, 130 when interrupted (finished results
+    stay cached; run the same command again to resume).
+    """
+    from audiodsm.evaluate.grade import collect_profiles, default_cache_dir, grade_batch
+    from audiodsm.evaluate.report import batch_to_dict
+    from audiodsm.spec import load_spec
+
+    if jobs is not None and not 1 <= jobs <= 256:
+        raise ParameterError("--jobs", jobs, "an integer from 1 to 256")
+    spec = load_spec(spec_path)
+    profiles = collect_profiles(paths)
+    if no_cache:
+        cache = None
+    else:
+        cache = Path(cache_dir) if cache_dir else default_cache_dir()
+    protect = [Path(spec_path)] + [p for p, _ in profiles]
+    if report_dir is not None:
+        from audiodsm.evaluate.report import check_report_dir
+
+        check_report_dir(report_dir, protect=protect)
+    bar = _Bar(not no_progress)
+    try:
+        batch = grade_batch(
+            profiles,
+            spec,
+            jobs=jobs,
+            cache_dir=cache,
+            recompute=recompute,
+            seed=seed,
+            progress=bar,
+        )
+    finally:
+        bar.close()
+
+    written = {}
+    if report_dir is not None and batch.grades:
+        from audiodsm.evaluate.report import write_report
+
+        written = write_report(batch, report_dir, protect=protect)
+
+    if as_json:
+        click.echo(json.dumps(batch_to_dict(batch), indent=2))
+    else:
+        click.echo(f"spec sheet: {spec.name} ({len(spec.targets)} targets) from {spec_path}")
+        click.echo("")
+        for line in summary_table(batch):
+            click.echo(line)
+        click.echo("")
+        for line in detail_table(batch):
+            click.echo(line)
+        for g in batch.grades:
+            if g.failure:
+                click.echo(f"{g.name}: {g.failure}")
+        if batch.cache_dir:
+            click.echo(f"cache: {batch.cache_dir}")
+        for kind, path in written.items():
+            click.echo(f"report {kind}: {path}")
+    if batch.interrupted:
+        done = len(batch.grades)
+        total = done + len(batch.unfinished)
+        click.echo(
+            f"interrupted: {done} of {total} profiles finished and kept; run the same command "
+            "again to resume"
+        )
+        sys.exit(130)
+    sys.exit(0 if batch.passed else 1)

@@ -1,0 +1,628 @@
+"""Grade candidate profiles against a spec sheet, in one batch, with an on-disk cache.
+
+:func:`grade_metrics` compares one profile's battery readings with a spec sheet: for every
+target a pass or fail and a margin in the metric's unit, positive when the reading is better
+than the limit. :func:`grade_batch` runs the test battery on many profiles (in parallel
+processes), grades each, ranks them by their worst margin and keeps every finished battery in
+a cache keyed by (profile content digest, spec digest, tool version, battery options), so a
+repeated or interrupted batch resumes without recomputing.
+
+The battery is a parameter: any callable ``battery(profile, *, jobs, progress, seed,
+**options)`` returning an object with ``.metrics`` (dict) and ``.curves`` (dict of dicts of
+arrays) works; the default is :func:`audiodsm.evaluate.battery.run_battery`.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as _cf
+import hashlib
+import io
+import json
+import math
+import multiprocessing
+import os
+import queue as _queue
+import tempfile
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from audiodsm.errors import OutputError, ParameterError, ProfileError
+from audiodsm.profile import load_profile, profile_digest
+from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target, spec_digest
+
+__all__ = [
+    "TargetGrade",
+    "ProfileGrade",
+    "GradeBatch",
+    "GradeCache",
+    "default_cache_dir",
+    "collect_profiles",
+    "grade_metrics",
+    "rank_grades",
+    "grade_batch",
+]
+
+#: Tolerance when matching a target's tone level to a level of the THD+N sweep (dB).
+_LEVEL_MATCH_DB = 0.01
+#: Version of the cache file layout; part of every cache key.
+_CACHE_LAYOUT = 1
+
+
+@dataclass(frozen=True)
+class TargetGrade:
+    """One target of a spec sheet, graded.
+
+    Attributes
+    ----------
+    target : Target
+    value : float or None
+        The reading; None when there is none (not measured, or the run failed).
+    margin : float or None
+        ``value - limit`` for ``at_least``, ``limit - value`` for ``at_most``; positive is
+        better than the limit. None when there is no reading.
+    passed : bool
+    reason : str
+        Why there is no reading (empty when there is one).
+    """
+
+    target: Target
+    value: float | None
+    margin: float | None
+    passed: bool
+    reason: str = ""
+
+
+@dataclass(frozen=True)
+class ProfileGrade:
+    """A profile's grades against a spec sheet.
+
+    Attributes
+    ----------
+    name : str
+        Profile name (made unique within a batch).
+    source : str
+        The profile file.
+    digest : str
+        :func:`~audiodsm.profile.profile_digest` of the profile.
+    lines : tuple of TargetGrade
+        One per target, in the spec sheet's order.
+    metrics : dict
+        The battery's readings (empty when the run failed).
+    curves : dict
+        The battery's curves (empty when the run failed).
+    notes : tuple of str
+        The battery's notes on resolution and doubtful readings.
+    failure : str
+        Why the battery did not finish (empty when it did).
+    cached : bool
+        True when the battery result came from the cache.
+    seconds : float
+        Battery wall-clock time (of the original run when cached).
+    """
+
+    name: str
+    source: str
+    digest: str
+    lines: tuple
+    metrics: dict = field(default_factory=dict, repr=False)
+    curves: dict = field(default_factory=dict, repr=False)
+    notes: tuple = ()
+    failure: str = ""
+    cached: bool = False
+    seconds: float = 0.0
+
+    @property
+    def passed(self) -> bool:
+        """True when the battery finished and every target passed."""
+        return not self.failure and all(line.passed for line in self.lines)
+
+    @property
+    def worst_margin(self) -> float:
+        """The smallest margin over the targets; ``-inf`` when any target has no reading."""
+        margins = [line.margin for line in self.lines]
+        if self.failure or any(m is None for m in margins):
+            return -math.inf
+        return min(margins)
+
+    @property
+    def failed_count(self) -> int:
+        """Number of targets not met."""
+        return sum(not line.passed for line in self.lines)
+
+
+@dataclass(frozen=True)
+class GradeBatch:
+    """The outcome of :func:`grade_batch`.
+
+    Attributes
+    ----------
+    spec : SpecSheet
+    grades : tuple of ProfileGrade
+        Finished profiles, best worst-margin first (see :func:`rank_grades`).
+    unfinished : tuple of str
+        Sources of profiles not graded because the batch was interrupted.
+    interrupted : bool
+        True when Ctrl-C stopped the batch; the finished results are kept (and cached).
+    cache_dir : str
+        Where the battery results are cached ("" when caching is off).
+    """
+
+    spec: SpecSheet
+    grades: tuple
+    unfinished: tuple = ()
+    interrupted: bool = False
+    cache_dir: str = ""
+
+    @property
+    def passed(self) -> bool:
+        """True when every profile was graded and passed every target."""
+        return not self.unfinished and all(g.passed for g in self.grades)
+
+
+# ---------------------------------------------------------------------------------------------
+# Grading one profile
+# ---------------------------------------------------------------------------------------------
+
+
+def _reading(target: Target, metrics: dict, curves: dict):
+    """The value a target reads, or (None, reason)."""
+    if target.metric in CONDITIONAL_METRICS:
+        sweep = curves.get("thd_n_vs_level")
+        if not sweep or target.metric not in sweep:
+            return None, "no THD+N-versus-level sweep in the battery result"
+        levels = np.asarray(sweep["level_dbfs"], dtype=float)
+        values = np.asarray(sweep[target.metric], dtype=float)
+        hit = np.flatnonzero(np.abs(levels - target.at_level_dbfs) <= _LEVEL_MATCH_DB)
+        if hit.size == 0:
+            have = ", ".join(f"{v:g}" for v in levels)
+            return None, f"level {target.at_level_dbfs:g} dBFS not in the sweep ({have})"
+        value = float(values[hit[0]])
+    else:
+        if target.metric not in metrics:
+            return None, "not measured by the battery"
+        value = metrics[target.metric]
+        if value is None:
+            return None, "no reading (the loop could not be measured; unstable?)"
+        value = float(value)
+    if not math.isfinite(value):
+        return None, f"reading is {value}"
+    return value, ""
+
+
+def grade_metrics(metrics: dict, curves: dict, spec: SpecSheet) -> tuple:
+    """Grade one profile's battery readings against a spec sheet.
+
+    Parameters
+    ----------
+    metrics : dict
+        Metric name -> reading (None when the battery has none).
+    curves : dict
+        The battery's curves; ``curves["thd_n_vs_level"]`` serves the conditional metrics.
+    spec : SpecSheet
+
+    Returns
+    -------
+    tuple of TargetGrade
+        One per target, in the sheet's order. A target without a reading fails.
+    """
+    out = []
+    for target in spec.targets:
+        value, reason = _reading(target, metrics, curves)
+        if value is None:
+            out.append(TargetGrade(target, None, None, False, reason))
+            continue
+        margin = target.margin(value)
+        out.append(TargetGrade(target, value, margin, margin >= 0.0))
+    return tuple(out)
+
+
+def _failed_lines(spec: SpecSheet, reason: str) -> tuple:
+    return tuple(TargetGrade(t, None, None, False, reason) for t in spec.targets)
+
+
+def rank_grades(grades: Sequence[ProfileGrade]) -> tuple:
+    """Order profiles best first: by worst margin (descending), then fewer failed targets, name.
+
+    Margins of different targets are in their own units (dB, dBFS, counts); the worst margin
+    is the plain minimum of those numbers, as the spec sheet states them.
+    """
+    return tuple(sorted(grades, key=lambda g: (-g.worst_margin, g.failed_count, g.name)))
+
+
+# ---------------------------------------------------------------------------------------------
+# Profiles
+# ---------------------------------------------------------------------------------------------
+
+
+def collect_profiles(paths: Sequence) -> list:
+    """Load profiles from files and folders (a folder contributes its ``*.toml`` files).
+
+    Parameters
+    ----------
+    paths : sequence of path-like
+
+    Returns
+    -------
+    list of (Path, ChainProfile)
+        In the order given, folders sorted by file name, each file once.
+
+    Raises
+    ------
+    ProfileError
+        A path that does not exist, a folder without profiles, or a bad profile.
+    """
+    files = []
+    for p in map(Path, paths):
+        if p.is_dir():
+            found = sorted(q for q in p.glob("*.toml") if q.is_file())
+            if not found:
+                raise ProfileError(str(p), "", "folder holds no *.toml profiles")
+            files.extend(found)
+        elif p.is_file():
+            files.append(p)
+        else:
+            raise ProfileError(str(p), "", "no such file or folder")
+    seen, out = set(), []
+    for f in files:
+        key = f.resolve()
+        if key not in seen:
+            seen.add(key)
+            out.append((f, load_profile(f)))
+    return out
+
+
+def _unique_names(entries) -> list:
+    names = [prof.name for _, prof in entries]
+    out = []
+    for (path, _prof), name in zip(entries, names, strict=True):
+        out.append(name if names.count(name) == 1 else f"{name} ({path.stem})")
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# The cache
+# ---------------------------------------------------------------------------------------------
+
+
+def default_cache_dir() -> Path:
+    """The cache folder used when none is given: ``$XDG_CACHE_HOME/audiodsm/grades``.
+
+    Falls back to ``~/.cache/audiodsm/grades`` when ``XDG_CACHE_HOME`` is unset.
+    """
+    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base) / "audiodsm" / "grades"
+
+
+def _plain(v):
+    """A JSON-friendly scalar (numpy scalars to Python; inf/NaN to None)."""
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        v = float(v)
+        return v if math.isfinite(v) else None
+    if v is None or isinstance(v, str):
+        return v
+    return repr(v)
+
+
+class GradeCache:
+    """Battery results on disk, one file per (profile, spec, tool version, options) key.
+
+    Each entry is a NumPy ``.npz`` file (no pickled objects): the curves as arrays named
+    ``curve/<curve>/<field>`` and a JSON text ``meta`` with the metrics, notes and timing.
+    Entries are written to a temporary file in the cache folder and renamed when complete, so
+    an interrupted write never leaves a half entry; an unreadable entry counts as missing.
+
+    Parameters
+    ----------
+    directory : path-like
+        Created when missing.
+    """
+
+    def __init__(self, directory):
+        self.directory = Path(directory)
+        try:
+            self.directory.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise OutputError(f"{self.directory}: cannot create the cache folder ({exc})") from None
+
+    @staticmethod
+    def key(profile_hash: str, spec_hash: str, version: str, options: str = "") -> str:
+        """The entry name for one combination (64 hex digits)."""
+        text = json.dumps([_CACHE_LAYOUT, profile_hash, spec_hash, version, options])
+        return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+    def path(self, key: str) -> Path:
+        """The file of an entry."""
+        return self.directory / f"{key}.npz"
+
+    def load(self, key: str):
+        """The stored entry as ``{"metrics", "curves", "notes", "seconds"}``, or None."""
+        p = self.path(key)
+        if not p.is_file():
+            return None
+        try:
+            with np.load(p, allow_pickle=False) as data:
+                meta = json.loads(str(data["meta"]))
+                curves = {}
+                for name in data.files:
+                    if not name.startswith("curve/"):
+                        continue
+                    _, curve, fld = name.split("/", 2)
+                    curves.setdefault(curve, {})[fld] = data[name]
+        except (OSError, ValueError, KeyError, json.JSONDecodeError):
+            return None
+        return {
+            "metrics": meta["metrics"],
+            "curves": curves,
+            "notes": tuple(meta["notes"]),
+            "seconds": float(meta["seconds"]),
+        }
+
+    def store(self, key: str, entry: dict) -> Path:
+        """Write an entry atomically; return its file."""
+        arrays = {}
+        for curve, fields in entry["curves"].items():
+            if not isinstance(fields, dict):
+                fields = {"values": fields}
+            for fld, values in fields.items():
+                a = np.asarray(values)
+                if a.dtype != object:
+                    arrays[f"curve/{curve}/{fld}"] = a
+        meta = {
+            "metrics": {k: _plain(v) for k, v in entry["metrics"].items()},
+            "notes": [str(n) for n in entry["notes"]],
+            "seconds": float(entry["seconds"]),
+        }
+        buf = io.BytesIO()
+        np.savez(buf, meta=np.array(json.dumps(meta)), **arrays)
+        target = self.path(key)
+        fd, tmp = tempfile.mkstemp(dir=self.directory, prefix=".partial-", suffix=".npz")
+        try:
+            with os.fdopen(fd, "wb") as fh:
+                fh.write(buf.getvalue())
+            os.replace(tmp, target)
+        except BaseException:
+            Path(tmp).unlink(missing_ok=True)
+            raise
+        return target
+
+
+# ---------------------------------------------------------------------------------------------
+# Running the battery (in this process or in worker processes)
+# ---------------------------------------------------------------------------------------------
+
+_WORKER_QUEUE = None
+
+
+def _worker_init(q):
+    global _WORKER_QUEUE
+    _WORKER_QUEUE = q
+
+
+def _run_one(battery, profile, index, jobs, seed, options, report=None):
+    """Run the battery on one profile; never raises an ordinary exception."""
+    if report is None and _WORKER_QUEUE is not None:
+
+        def report(done, total, label):
+            _WORKER_QUEUE.put((index, done, total, label))
+
+    start = time.perf_counter()
+    try:
+        result = battery(profile, jobs=jobs, progress=report, seed=seed, **options)
+        metrics = dict(result.metrics)
+        curves = {k: dict(v) if isinstance(v, dict) else v for k, v in result.curves.items()}
+        notes = tuple(getattr(result, "notes", ()))
+    except Exception as exc:  # a crash fails this profile only
+        text = str(exc).splitlines()[0] if str(exc) else ""
+        return {"failure": f"battery crashed: {type(exc).__name__}: {text}".rstrip(": ")}
+    seconds = float(getattr(result, "seconds", time.perf_counter() - start))
+    return {"metrics": metrics, "curves": curves, "notes": notes, "seconds": seconds}
+
+
+def _default_battery():
+    from audiodsm.evaluate.battery import run_battery
+
+    return run_battery
+
+
+def grade_batch(
+    profiles: Sequence,
+    spec: SpecSheet,
+    *,
+    battery: Callable | None = None,
+    jobs: int | None = None,
+    cache_dir=None,
+    recompute: bool = False,
+    seed: int = 0,
+    battery_options: dict | None = None,
+    progress: Callable[[float, str], None] | None = None,
+) -> GradeBatch:
+    """Run the battery on every profile, grade each against the spec sheet, rank them.
+
+    Parameters
+    ----------
+    profiles : sequence of (path, ChainProfile)
+        As :func:`collect_profiles` returns them.
+    spec : SpecSheet
+    battery : callable, optional, keyword-only
+        ``battery(profile, *, jobs, progress, seed, **battery_options)`` returning an object
+        with ``.metrics`` and ``.curves`` (and optionally ``.notes``, ``.seconds``). Default:
+        :func:`audiodsm.evaluate.battery.run_battery`. With more than one worker process it
+        must be a module-level function (it is sent to the workers by reference).
+    jobs : int, optional, keyword-only
+        Cores to use (default: all). Profiles run in ``min(jobs, profiles to run)`` worker
+        processes, each battery with ``jobs // workers`` threads; ``jobs=1`` runs in this
+        process.
+    cache_dir : path-like or None, keyword-only
+        Cache folder; None turns caching off.
+    recompute : bool, keyword-only
+        Ignore cached entries (fresh results still replace them).
+    seed : int, keyword-only
+        Passed to the battery.
+    battery_options : dict, optional, keyword-only
+        Extra keyword arguments of the battery (e.g. a shorter plan); part of the cache key
+        through their ``repr``.
+    progress : callable, optional, keyword-only
+        Called as ``progress(fraction_done, label)`` as battery runs finish.
+
+    Returns
+    -------
+    GradeBatch
+        Ranked grades. On Ctrl-C the batch stops, keeps what finished (already cached) and
+        returns with ``interrupted=True``.
+
+    Raises
+    ------
+    ParameterError
+        A bad ``jobs`` or ``seed``.
+    """
+    from audiodsm import __version__
+
+    if jobs is None:
+        jobs = os.cpu_count() or 1
+    if isinstance(jobs, bool) or not isinstance(jobs, int) or not 1 <= jobs <= 256:
+        raise ParameterError("jobs", jobs, "an integer from 1 to 256")
+    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+        raise ParameterError("seed", seed, "a non-negative integer")
+    if battery is None:
+        battery = _default_battery()
+    options = dict(battery_options or {})
+    option_text = repr(sorted(options.items()))
+    spec_hash = spec_digest(spec)
+    cache = GradeCache(cache_dir) if cache_dir is not None else None
+
+    entries = list(profiles)
+    names = _unique_names(entries)
+    digests = [profile_digest(prof) for _, prof in entries]
+    keys = [GradeCache.key(d, spec_hash, __version__, option_text) for d in digests]
+    outcomes: dict[int, dict] = {}
+    cached: set[int] = set()
+    if cache is not None and not recompute:
+        for i, key in enumerate(keys):
+            entry = cache.load(key)
+            if entry is not None:
+                outcomes[i] = entry
+                cached.add(i)
+    todo = [i for i in range(len(entries)) if i not in outcomes]
+    fractions = {i: 0.0 for i in todo}
+
+    def tick(i, done, total, label):
+        if progress is None:
+            return
+        fractions[i] = max(fractions[i], done / total if total else 1.0)
+        progress(sum(fractions.values()) / max(1, len(todo)), f"{names[i]}: {label}")
+
+    def finish(i, outcome):
+        outcomes[i] = outcome
+        if cache is not None and "failure" not in outcome:
+            cache.store(keys[i], outcome)
+        tick(i, 1, 1, "done" if "failure" not in outcome else "failed")
+
+    interrupted = False
+    workers = min(jobs, len(todo))
+    try:
+        if workers <= 1:
+            for i in todo:
+                outcome = _run_one(
+                    battery,
+                    entries[i][1],
+                    i,
+                    jobs,
+                    seed,
+                    options,
+                    report=lambda d, t, lab, i=i: tick(i, d, t, lab),
+                )
+                finish(i, outcome)
+        else:
+            _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish)
+    except KeyboardInterrupt:
+        interrupted = True
+
+    grades = []
+    for i, (path, _prof) in enumerate(entries):
+        if i not in outcomes:
+            continue
+        out = outcomes[i]
+        if "failure" in out:
+            grades.append(
+                ProfileGrade(
+                    name=names[i],
+                    source=str(path),
+                    digest=digests[i],
+                    lines=_failed_lines(spec, out["failure"]),
+                    failure=out["failure"],
+                )
+            )
+            continue
+        grades.append(
+            ProfileGrade(
+                name=names[i],
+                source=str(path),
+                digest=digests[i],
+                lines=grade_metrics(out["metrics"], out["curves"], spec),
+                metrics=out["metrics"],
+                curves=out["curves"],
+                notes=tuple(out["notes"]),
+                cached=i in cached,
+                seconds=out["seconds"],
+            )
+        )
+    unfinished = tuple(str(entries[i][0]) for i in range(len(entries)) if i not in outcomes)
+    return GradeBatch(
+        spec=spec,
+        grades=rank_grades(grades),
+        unfinished=unfinished,
+        interrupted=interrupted,
+        cache_dir=str(cache.directory) if cache is not None else "",
+    )
+
+
+def _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish):
+    """Run the batteries in worker processes; results are handed to ``finish`` as they come."""
+    ctx = multiprocessing.get_context("spawn")
+    q = ctx.Queue()
+    threads = max(1, jobs // workers)
+    pool = _cf.ProcessPoolExecutor(
+        max_workers=workers, mp_context=ctx, initializer=_worker_init, initargs=(q,)
+    )
+    pending = {}
+    try:
+        for i in todo:
+            fut = pool.submit(_run_one, battery, entries[i][1], i, threads, seed, options)
+            pending[fut] = i
+        while pending:
+            done, _ = _cf.wait(pending, timeout=0.25, return_when=_cf.FIRST_COMPLETED)
+            _drain(q, tick)
+            for fut in done:
+                i = pending.pop(fut)
+                try:
+                    outcome = fut.result()
+                except _cf.process.BrokenProcessPool:
+                    outcome = {"failure": "worker process ended unexpectedly"}
+                finish(i, outcome)
+        _drain(q, tick)
+    except BaseException:
+        for fut in pending:
+            fut.cancel()
+        for proc in list(getattr(pool, "_processes", {}).values()):
+            proc.terminate()
+        pool.shutdown(wait=True, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
+    q.close()
+
+
+def _drain(q, tick):
+    while True:
+        try:
+            i, done, total, label = q.get_nowait()
+        except _queue.Empty:
+            return
+        tick(i, done, total, label)

@@ -1,0 +1,471 @@
+"""The grading report: one self-contained HTML page, plus JSON and CSV of the same grades.
+
+:func:`write_report` writes three files into a folder:
+
+``grades.html``
+    An overview (profiles ranked by worst margin, a target-by-profile matrix of readings and
+    margins, a chart of the margins), then one section per profile: its readings against the
+    spec sheet, every battery metric, the battery's notes and five plots (output spectrum with
+    the designed NTF and the A-weighting curve, THD+N against level, idle-tone map, integrator
+    state histograms, frequency response). The plots are embedded as base64 PNG, so the page
+    is a single file that opens anywhere.
+``grades.json``
+    :func:`batch_to_dict` of the batch.
+``grades.csv``
+    One row per profile and target (:data:`CSV_COLUMNS`).
+
+Each file is written to a temporary name in the folder and renamed when complete.
+"""
+
+from __future__ import annotations
+
+import base64
+import csv
+import html
+import io
+import json
+import math
+import os
+import tempfile
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+
+from audiodsm.errors import AudiodsmError, OutputError
+
+__all__ = [
+    "CSV_COLUMNS",
+    "REPORT_FILES",
+    "batch_to_dict",
+    "batch_to_csv",
+    "report_curves",
+    "figure_to_png",
+    "render_html",
+    "check_report_dir",
+    "write_report",
+]
+
+#: File names written by :func:`write_report` (kind -> name).
+REPORT_FILES = {"html": "grades.html", "json": "grades.json", "csv": "grades.csv"}
+
+#: Columns of the CSV file.
+CSV_COLUMNS = (
+    "rank",
+    "profile",
+    "source",
+    "metric",
+    "at_level_dbfs",
+    "bound",
+    "limit",
+    "unit",
+    "value",
+    "margin",
+    "passed",
+    "reason",
+)
+
+
+def _num(v):
+    if v is None:
+        return None
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        v = float(v)
+        return v if math.isfinite(v) else None
+    return v
+
+
+def batch_to_dict(batch) -> dict:
+    """The batch as plain JSON-ready data (non-finite numbers become None).
+
+    Parameters
+    ----------
+    batch : GradeBatch
+
+    Returns
+    -------
+    dict
+        ``{"tool_version", "spec": {...}, "profiles": [...], "interrupted", "unfinished"}``;
+        each profile carries ``rank``, ``name``, ``source``, ``digest``, ``passed``,
+        ``worst_margin``, ``failure``, ``cached``, ``seconds``, ``targets`` (one dict per
+        target: metric, at_level_dbfs, bound, limit, unit, value, margin, passed, reason,
+        note), ``metrics`` and ``notes``.
+    """
+    from audiodsm import __version__
+
+    spec = batch.spec
+    profiles = []
+    for rank, g in enumerate(batch.grades, 1):
+        targets = []
+        for line in g.lines:
+            t = line.target
+            targets.append(
+                {
+                    "metric": t.metric,
+                    "at_level_dbfs": t.at_level_dbfs,
+                    "bound": t.bound,
+                    "limit": t.limit,
+                    "unit": t.unit,
+                    "value": _num(line.value),
+                    "margin": _num(line.margin),
+                    "passed": bool(line.passed),
+                    "reason": line.reason,
+                    "note": t.note,
+                }
+            )
+        profiles.append(
+            {
+                "rank": rank,
+                "name": g.name,
+                "source": g.source,
+                "digest": g.digest,
+                "passed": g.passed,
+                "worst_margin": _num(g.worst_margin),
+                "failed_targets": g.failed_count,
+                "failure": g.failure,
+                "cached": g.cached,
+                "seconds": _num(g.seconds),
+                "targets": targets,
+                "metrics": {k: _num(v) for k, v in g.metrics.items()},
+                "notes": list(g.notes),
+            }
+        )
+    return {
+        "tool_version": __version__,
+        "spec": {
+            "name": spec.name,
+            "description": spec.description,
+            "path": spec.path,
+            "targets": [
+                {
+                    "metric": t.metric,
+                    "at_level_dbfs": t.at_level_dbfs,
+                    "bound": t.bound,
+                    "limit": t.limit,
+                    "unit": t.unit,
+                    "note": t.note,
+                }
+                for t in spec.targets
+            ],
+        },
+        "profiles": profiles,
+        "passed": batch.passed,
+        "interrupted": batch.interrupted,
+        "unfinished": list(batch.unfinished),
+    }
+
+
+def batch_to_csv(batch) -> str:
+    """One CSV row per profile and target, columns :data:`CSV_COLUMNS` (RFC 4180 quoting)."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\r\n")
+    w.writerow(CSV_COLUMNS)
+    for p in batch_to_dict(batch)["profiles"]:
+        for t in p["targets"]:
+            w.writerow(
+                [
+                    p["rank"],
+                    p["name"],
+                    p["source"],
+                    t["metric"],
+                    "" if t["at_level_dbfs"] is None else repr(t["at_level_dbfs"]),
+                    t["bound"],
+                    repr(t["limit"]),
+                    t["unit"],
+                    "" if t["value"] is None else repr(t["value"]),
+                    "" if t["margin"] is None else repr(t["margin"]),
+                    "pass" if t["passed"] else "fail",
+                    t["reason"],
+                ]
+            )
+    return buf.getvalue()
+
+
+def report_curves(curves: dict) -> dict:
+    """The battery's curves plus what the report overlays: the A-weighting on the spectrum.
+
+    ``curves["spectrum"]["weighting_db"]`` is the IEC 61672-1 A-weighting at the spectrum's
+    frequencies (:func:`audiodsm.measure.weighting.a_weighting_db`), floored at -120 dB.
+    The input is not changed.
+    """
+    from audiodsm.measure.weighting import a_weighting_db
+
+    out = dict(curves)
+    spec = curves.get("spectrum")
+    if isinstance(spec, dict) and "frequency_hz" in spec and "weighting_db" not in spec:
+        f = np.asarray(spec["frequency_hz"], dtype=float)
+        with np.errstate(divide="ignore"):
+            w = np.where(f > 0, a_weighting_db(np.maximum(f, 1e-3)), -np.inf)
+        out["spectrum"] = {**spec, "weighting_db": np.maximum(w, -120.0)}
+    return out
+
+
+def figure_to_png(fig) -> bytes:
+    """The figure as PNG bytes (100 dpi)."""
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100)
+    return buf.getvalue()
+
+
+_CSS = """
+body { font-family: system-ui, sans-serif; color: #222; background: #fbfaf7; margin: 0; }
+main { max-width: 1180px; margin: 0 auto; padding: 1.2em 1.5em 4em; }
+h1 { font-size: 1.5em; margin: 0.2em 0; }
+h2 { font-size: 1.2em; border-bottom: 2px solid #2f5d8a; padding-bottom: 0.2em; margin-top: 2em; }
+h3 { font-size: 1em; margin: 1.2em 0 0.4em; }
+p.meta { color: #555; margin: 0.2em 0; font-size: 0.9em; }
+table { border-collapse: collapse; margin: 0.5em 0 1em; font-size: 0.88em; }
+th, td { border: 1px solid #d6d3cc; padding: 0.25em 0.6em; text-align: left; }
+th { background: #eeebe4; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; }
+.ok { background: #e4efe6; color: #1f4a2a; }
+.bad { background: #f5e1dc; color: #6e2216; font-weight: 600; }
+.none { color: #888; }
+.plots { display: grid; grid-template-columns: repeat(auto-fill, minmax(520px, 1fr)); gap: 1em; }
+figure { margin: 0; background: #fff; border: 1px solid #e2dfd8; padding: 0.4em; }
+figure img { width: 100%; height: auto; }
+figcaption { font-size: 0.85em; color: #444; }
+nav a { margin-right: 1em; }
+ul.notes { font-size: 0.85em; color: #444; }
+"""
+
+
+def _e(text) -> str:
+    return html.escape(str(text), quote=True)
+
+
+def _f(v, spec=".2f") -> str:
+    return "&ndash;" if v is None or not math.isfinite(float(v)) else format(float(v), spec)
+
+
+def _anchor(rank) -> str:
+    return f"profile-{rank}"
+
+
+def _img(fig, alt) -> str:
+    data = base64.b64encode(figure_to_png(fig)).decode("ascii")
+    return f'<img alt="{_e(alt)}" src="data:image/png;base64,{data}">'
+
+
+def render_html(batch, *, title=None) -> str:
+    """The report page as one HTML string with every image embedded as base64 PNG.
+
+    Parameters
+    ----------
+    batch : GradeBatch
+    title : str, optional, keyword-only
+
+    Returns
+    -------
+    str
+    """
+    from audiodsm import __version__
+    from audiodsm.evaluate import plotting
+
+    spec = batch.spec
+    title = title or f"Grades against {spec.name}"
+    stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        f"<title>{_e(title)}</title><style>{_CSS}</style></head><body><main>",
+        f"<h1>{_e(title)}</h1>",
+        f'<p class="meta">spec sheet: {_e(spec.path or spec.name)} &middot; '
+        f"{len(spec.targets)} targets &middot; {len(batch.grades)} profiles &middot; "
+        f"audiodsm {_e(__version__)} &middot; {stamp}</p>",
+    ]
+    if spec.description:
+        parts.append(f'<p class="meta">{_e(spec.description)}</p>')
+    if batch.interrupted:
+        parts.append(
+            f'<p class="bad">The batch was interrupted: {len(batch.unfinished)} profile(s) '
+            "not graded: " + ", ".join(_e(u) for u in batch.unfinished) + "</p>"
+        )
+
+    # overview
+    parts.append('<h2 id="overview">Overview</h2>')
+    parts.append(
+        "<p>Profiles ranked by their worst margin. A margin is in the target's own unit; "
+        "positive means better than the limit.</p>"
+    )
+    parts.append(
+        "<table><tr><th>rank</th><th>profile</th><th>verdict</th><th>worst margin</th>"
+        "<th>targets failed</th><th>source</th></tr>"
+    )
+    for rank, g in enumerate(batch.grades, 1):
+        cls = "ok" if g.passed else "bad"
+        parts.append(
+            f'<tr><td class="num">{rank}</td><td><a href="#{_anchor(rank)}">{_e(g.name)}</a></td>'
+            f'<td class="{cls}">{"pass" if g.passed else "fail"}</td>'
+            f'<td class="num">{_f(g.worst_margin, "+.2f")}</td>'
+            f'<td class="num">{g.failed_count} of {len(g.lines)}</td><td>{_e(g.source)}</td></tr>'
+        )
+    parts.append("</table>")
+
+    parts.append("<h3>Readings against each target</h3>")
+    head = "".join(f"<th>{_e(g.name)}</th>" for g in batch.grades)
+    parts.append(f"<table><tr><th>target</th><th>requirement</th>{head}</tr>")
+    for k, t in enumerate(spec.targets):
+        cells = []
+        for g in batch.grades:
+            line = g.lines[k]
+            if line.value is None:
+                cells.append(f'<td class="bad" title="{_e(line.reason)}">no reading</td>')
+            else:
+                cls = "ok" if line.passed else "bad"
+                cells.append(
+                    f'<td class="num {cls}">{_f(line.value)} '
+                    f"<small>({_f(line.margin, '+.2f')})</small></td>"
+                )
+        parts.append(f"<tr><td>{_e(t.label)}</td><td>{_e(t.requirement)}</td>{''.join(cells)}</tr>")
+    parts.append("</table>")
+    if batch.grades:
+        fig = plotting.plot_margins(batch)
+        parts.append(f"<figure>{_img(fig, 'margins')}<figcaption>margin per target, "
+                     "per profile (crosses: no reading)</figcaption></figure>")  # fmt: skip
+
+    # one section per profile
+    for rank, g in enumerate(batch.grades, 1):
+        parts.append(f'<h2 id="{_anchor(rank)}">{rank}. {_e(g.name)}</h2>')
+        origin = "from the cache" if g.cached else "run now"
+        parts.append(
+            f'<p class="meta">{_e(g.source)} &middot; digest {_e(g.digest[:12])} &middot; '
+            f"battery {_f(g.seconds, '.1f')} s, {origin} &middot; "
+            '<a href="#overview">back to the overview</a></p>'
+        )
+        if g.failure:
+            parts.append(f'<p class="bad">Not graded: {_e(g.failure)}</p>')
+        parts.append(
+            "<table><tr><th>target</th><th>requirement</th><th>reading</th><th>margin</th>"
+            "<th>unit</th><th>result</th><th>note</th></tr>"
+        )
+        for line in g.lines:
+            t = line.target
+            cls = "ok" if line.passed else "bad"
+            result = (
+                "pass" if line.passed else ("fail" + (f": {line.reason}" if line.reason else ""))
+            )
+            parts.append(
+                f"<tr><td>{_e(t.label)}</td><td>{_e(t.requirement)}</td>"
+                f'<td class="num">{_f(line.value)}</td>'
+                f'<td class="num">{_f(line.margin, "+.2f")}</td>'
+                f'<td>{_e(t.unit)}</td><td class="{cls}">{_e(result)}</td>'
+                f"<td>{_e(t.note)}</td></tr>"
+            )
+        parts.append("</table>")
+        if g.metrics:
+            parts.append("<details><summary>every battery reading</summary><table>")
+            parts.append("<tr><th>metric</th><th>reading</th></tr>")
+            for name, v in g.metrics.items():
+                shown = _e(v) if isinstance(v, (bool, str)) or v is None else _f(v, ".4g")
+                parts.append(f'<tr><td>{_e(name)}</td><td class="num">{shown}</td></tr>')
+            parts.append("</table></details>")
+        if g.curves:
+            curves = report_curves(g.curves)
+            parts.append('<div class="plots">')
+            for _name, fn, caption in plotting.PLOTS:
+                try:
+                    fig = fn(curves)
+                except AudiodsmError:
+                    parts.append(
+                        f'<figure><p class="none">no {_e(caption)} in this battery result'
+                        "</p></figure>"
+                    )
+                    continue
+                parts.append(
+                    f"<figure>{_img(fig, caption)}<figcaption>{_e(caption)}</figcaption></figure>"
+                )
+            parts.append("</div>")
+        if g.notes:
+            parts.append('<h3>Battery notes</h3><ul class="notes">')
+            parts.extend(f"<li>{_e(n)}</li>" for n in g.notes)
+            parts.append("</ul>")
+    parts.append("</main></body></html>")
+    return "\n".join(parts) + "\n"
+
+
+def check_report_dir(directory, *, protect=()) -> Path:
+    """Make sure the report folder exists and that writing it replaces no input.
+
+    Parameters
+    ----------
+    directory : path-like
+        Created (with parents) when missing.
+    protect : sequence of path-like, keyword-only
+        Input files that must never be replaced.
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    OutputError
+        The path is a file, cannot be created, or a report file name is a protected input.
+    """
+    d = Path(directory)
+    if d.exists() and not d.is_dir():
+        raise OutputError(f"{d}: --report must be a folder, and this is a file")
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{d}: cannot create the report folder ({exc.strerror})") from None
+    if not os.access(d, os.W_OK):
+        raise OutputError(f"{d}: the report folder is not writable")
+    guarded = {Path(p).resolve() for p in protect}
+    for name in REPORT_FILES.values():
+        if (d / name).resolve() in guarded:
+            raise OutputError(f"{d / name}: is an input of this run; refusing to overwrite it")
+    return d
+
+
+def _write_atomic(path: Path, text: str) -> None:
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".partial")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def write_report(batch, directory, *, protect=(), title=None) -> dict:
+    """Write ``grades.html``, ``grades.json`` and ``grades.csv`` into a folder.
+
+    Parameters
+    ----------
+    batch : GradeBatch
+    directory : path-like
+        Created when missing.
+    protect : sequence of path-like, keyword-only
+        Input files never to replace.
+    title : str, optional, keyword-only
+        Page title (default: "Grades against <spec name>").
+
+    Returns
+    -------
+    dict
+        Kind (``"html"``, ``"json"``, ``"csv"``) -> path written.
+
+    Raises
+    ------
+    OutputError
+        See :func:`check_report_dir`.
+    """
+    d = check_report_dir(directory, protect=protect)
+    texts = {
+        "json": json.dumps(batch_to_dict(batch), indent=2, allow_nan=False) + "\n",
+        "csv": batch_to_csv(batch),
+        "html": render_html(batch, title=title),
+    }
+    written = {}
+    for kind in ("json", "csv", "html"):
+        path = d / REPORT_FILES[kind]
+        _write_atomic(path, texts[kind])
+        written[kind] = path
+    return written

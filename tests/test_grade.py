@@ -1,0 +1,374 @@
+import dataclasses
+import json
+import math
+import os
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from audiodsm.cli import main
+from audiodsm.errors import ParameterError, ProfileError
+from audiodsm.evaluate.grade import (
+    GradeCache,
+    ProfileGrade,
+    TargetGrade,
+    collect_profiles,
+    grade_batch,
+    grade_metrics,
+    rank_grades,
+)
+from audiodsm.spec import Target, parse_spec
+
+SPEC = """
+name = "test sheet"
+
+[[target]]
+metric = "dynamic_range_db_a"
+at_least = 110.0
+
+[[target]]
+metric = "idle_tone_max_dbfs"
+at_most = -130.0
+
+[[target]]
+metric = "thd_n_db"
+at_level_dbfs = -20.0
+at_most = -90.0
+"""
+
+
+def profile_text(name, order, levels=2):
+    return f'name = "{name}"\n[modulator]\norder = {order}\nlevels = {levels}\n'
+
+
+def fake_metrics(profile):
+    """Readings that follow the loop order, so the grades are known in advance."""
+    order = profile.modulator.order
+    return {
+        "dynamic_range_db_a": 95.0 + 5.0 * order,  # order 3: 110 (margin 0), 5: 120
+        "idle_tone_max_dbfs": -120.0 - 5.0 * order,  # order 3: -135, 5: -145
+        "max_stable_amplitude_dbfs": -1.0,
+    }
+
+
+def fake_curves(profile):
+    levels = np.array([0.0, -1.0, -20.0, -60.0])
+    return {
+        "thd_n_vs_level": {
+            "level_dbfs": levels,
+            "thd_n_db": -80.0 - profile.modulator.order * 2.0 + 0.0 * levels,
+            "thd_n_db_a": -82.0 + 0.0 * levels,
+        },
+        "frequency_response": {"frequency_hz": np.array([20.0, 1000.0]), "gain_db": np.zeros(2)},
+    }
+
+
+def fake_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """A stand-in battery; counts its calls in files when AUDIODSM_TEST_CALLS names a folder."""
+    folder = os.environ.get("AUDIODSM_TEST_CALLS")
+    if folder:
+        Path(folder, f"{profile.name}.{os.getpid()}.{len(os.listdir(folder))}").touch()
+    if profile.modulator.order == 7:
+        raise RuntimeError("loop blew up\nsecond line")
+    if progress is not None:
+        progress(1, 2, "half")
+        progress(2, 2, "all")
+    return SimpleNamespace(
+        metrics=fake_metrics(profile), curves=fake_curves(profile), notes=("fake",), seconds=0.01
+    )
+
+
+def interrupting_battery(profile, **kwargs):
+    if profile.modulator.order == 4:
+        raise KeyboardInterrupt
+    return fake_battery(profile, **kwargs)
+
+
+@pytest.fixture
+def calls(tmp_path, monkeypatch):
+    folder = tmp_path / "calls"
+    folder.mkdir()
+    monkeypatch.setenv("AUDIODSM_TEST_CALLS", str(folder))
+    return folder
+
+
+def call_names(folder):
+    return sorted(p.name.split(".")[0] for p in folder.iterdir())
+
+
+@pytest.fixture
+def batch_files(tmp_path):
+    pdir = tmp_path / "profiles"
+    pdir.mkdir()
+    for name, order in (("o3", 3), ("o4", 4), ("o5", 5)):
+        (pdir / f"{name}.toml").write_text(profile_text(name, order))
+    spec = tmp_path / "sheet.toml"
+    spec.write_text(SPEC)
+    return pdir, spec
+
+
+# --------------------------------------------------------------------------------------------
+# grading one profile
+# --------------------------------------------------------------------------------------------
+
+
+def test_margins_and_passes():
+    spec = parse_spec(SPEC)
+    prof = SimpleNamespace(modulator=SimpleNamespace(order=3))
+    lines = grade_metrics(fake_metrics(prof), fake_curves(prof), spec)
+    # by the definition in the spec sheet: at_least -> value - limit, at_most -> limit - value
+    dr, tone, thd = lines
+    assert dr.value == 110.0 and dr.margin == 0.0 and dr.passed  # exactly at the limit passes
+    assert tone.margin == pytest.approx(-130.0 - (-135.0)) and tone.passed
+    assert thd.value == pytest.approx(-86.0)  # read off the sweep at -20 dBFS
+    assert thd.margin == pytest.approx(-90.0 - (-86.0)) and not thd.passed
+
+
+def test_missing_readings_fail_with_a_reason():
+    spec = parse_spec(SPEC.replace("-20.0", "-30.0"))
+    lines = grade_metrics({"dynamic_range_db_a": None, "idle_tone_max_dbfs": math.nan}, {}, spec)
+    assert [ln.passed for ln in lines] == [False, False, False]
+    assert all(ln.margin is None for ln in lines)
+    assert "unstable" in lines[0].reason
+    assert "nan" in lines[1].reason
+    assert "sweep" in lines[2].reason
+    curves = {"thd_n_vs_level": {"level_dbfs": np.array([0.0, -20.0]), "thd_n_db": np.zeros(2)}}
+    lines = grade_metrics({}, curves, spec)
+    assert "not measured" in lines[0].reason
+    assert "-30 dBFS not in the sweep (0, -20)" in lines[2].reason
+
+
+def _grade(name, margins):
+    lines = tuple(
+        TargetGrade(Target("dynamic_range_db", "at_least", 0.0), m, m, m is not None and m >= 0)
+        for m in margins
+    )
+    return ProfileGrade(name=name, source="", digest="", lines=lines)
+
+
+def test_ranking_by_worst_margin():
+    a = _grade("a", [3.0, 1.0])  # worst 1
+    b = _grade("b", [5.0, -2.0])  # worst -2
+    c = _grade("c", [0.5, 9.0])  # worst 0.5
+    d = _grade("d", [None, 9.0])  # no reading: last
+    e = ProfileGrade(name="e", source="", digest="", lines=(), failure="crashed")
+    ranked = rank_grades([d, b, e, c, a])
+    assert [g.name for g in ranked[:3]] == ["a", "c", "b"]
+    assert {g.name for g in ranked[3:]} == {"d", "e"}
+    assert a.worst_margin == 1.0 and a.passed and not b.passed and not e.passed
+
+
+# --------------------------------------------------------------------------------------------
+# the batch: cache, resume, crash, interrupt, parallel
+# --------------------------------------------------------------------------------------------
+
+
+def test_batch_ranks_and_caches_then_resumes_without_recomputing(tmp_path, batch_files, calls):
+    pdir, spec_path = batch_files
+    spec = parse_spec(spec_path.read_text())
+    profiles = collect_profiles([pdir])
+    cache = tmp_path / "cache"
+    seen = []
+    first = grade_batch(
+        profiles,
+        spec,
+        battery=fake_battery,
+        jobs=1,
+        cache_dir=cache,
+        progress=lambda f, label: seen.append(f),
+    )
+    assert call_names(calls) == ["o3", "o4", "o5"]
+    assert [g.name for g in first.grades] == ["o5", "o4", "o3"]
+    assert not any(g.cached for g in first.grades)
+    assert seen and seen[-1] == pytest.approx(1.0) and seen == sorted(seen)
+    assert len(list(cache.glob("*.npz"))) == 3
+    assert not list(cache.glob(".partial-*"))
+
+    again = grade_batch(profiles, spec, battery=fake_battery, jobs=1, cache_dir=cache)
+    assert call_names(calls) == ["o3", "o4", "o5"]  # no new battery call
+    assert all(g.cached for g in again.grades)
+    for g1, g2 in zip(first.grades, again.grades, strict=True):
+        assert g1.lines == g2.lines
+        np.testing.assert_array_equal(
+            g1.curves["thd_n_vs_level"]["thd_n_db"], g2.curves["thd_n_vs_level"]["thd_n_db"]
+        )
+
+    # a changed spec is a new key: everything runs again
+    spec2 = parse_spec(SPEC.replace("110.0", "111.0"))
+    grade_batch(profiles, spec2, battery=fake_battery, jobs=1, cache_dir=cache)
+    assert len(call_names(calls)) == 6
+    # so is a changed profile (content, not name)
+    (pdir / "o3.toml").write_text(profile_text("o3", 3) + "seed = 9\n")
+    grade_batch(collect_profiles([pdir]), spec2, battery=fake_battery, jobs=1, cache_dir=cache)
+    assert call_names(calls).count("o3") == 3 and len(call_names(calls)) == 7
+
+
+def test_interrupted_batch_keeps_finished_results(tmp_path, batch_files, calls):
+    pdir, spec_path = batch_files
+    spec = parse_spec(spec_path.read_text())
+    profiles = collect_profiles([pdir])  # o3, o4 (interrupts), o5
+    cache = tmp_path / "cache"
+    out = grade_batch(profiles, spec, battery=interrupting_battery, jobs=1, cache_dir=cache)
+    assert out.interrupted and not out.passed
+    assert [g.name for g in out.grades] == ["o3"]
+    assert [Path(u).stem for u in out.unfinished] == ["o4", "o5"]
+    assert call_names(calls) == ["o3"]
+    resumed = grade_batch(profiles, spec, battery=fake_battery, jobs=1, cache_dir=cache)
+    assert call_names(calls) == ["o3", "o4", "o5"]  # o3 not run again
+    assert {g.name: g.cached for g in resumed.grades} == {"o3": True, "o4": False, "o5": False}
+
+
+def test_crashing_profile_fails_and_the_batch_goes_on(tmp_path, batch_files, calls):
+    pdir, spec_path = batch_files
+    (pdir / "o7.toml").write_text(profile_text("o7", 7))
+    out = grade_batch(
+        collect_profiles([pdir]),
+        parse_spec(spec_path.read_text()),
+        battery=fake_battery,
+        jobs=1,
+        cache_dir=tmp_path / "cache",
+    )
+    assert len(out.grades) == 4
+    bad = out.grades[-1]
+    assert bad.name == "o7" and not bad.passed
+    assert bad.failure == "battery crashed: RuntimeError: loop blew up"
+    assert all(not ln.passed and ln.reason == bad.failure for ln in bad.lines)
+    # failures are not cached: the next batch tries again
+    assert len(list((tmp_path / "cache").glob("*.npz"))) == 3
+
+
+def test_parallel_batch_uses_worker_processes(tmp_path, batch_files, calls):
+    pdir, spec_path = batch_files
+    (pdir / "o7.toml").write_text(profile_text("o7", 7))
+    spec = parse_spec(spec_path.read_text())
+    one = grade_batch(collect_profiles([pdir]), spec, battery=fake_battery, jobs=1)
+    serial_calls = set(call_names(calls))
+    for p in calls.iterdir():
+        p.unlink()
+    fractions = []
+    two = grade_batch(
+        collect_profiles([pdir]),
+        spec,
+        battery=fake_battery,
+        jobs=2,
+        progress=lambda f, label: fractions.append(f),
+    )
+    assert set(call_names(calls)) == serial_calls
+    pids = {p.name.split(".")[1] for p in calls.iterdir()}
+    assert str(os.getpid()) not in pids and 1 <= len(pids) <= 2
+    assert [g.name for g in two.grades] == [g.name for g in one.grades]
+    assert [g.lines for g in two.grades] == [g.lines for g in one.grades]
+    assert two.grades[-1].failure.startswith("battery crashed")
+    assert fractions[-1] == pytest.approx(1.0)
+
+
+def test_bad_arguments(batch_files):
+    pdir, spec_path = batch_files
+    spec = parse_spec(spec_path.read_text())
+    with pytest.raises(ParameterError, match="jobs=0"):
+        grade_batch([], spec, battery=fake_battery, jobs=0)
+    with pytest.raises(ProfileError, match="no such file"):
+        collect_profiles([pdir / "missing.toml"])
+    empty = pdir / "empty"
+    empty.mkdir()
+    with pytest.raises(ProfileError, match="no \\*.toml"):
+        collect_profiles([empty])
+
+
+def test_same_names_are_told_apart(tmp_path, calls):
+    for stem in ("a", "b"):
+        (tmp_path / f"{stem}.toml").write_text(profile_text("twin", 3))
+    out = grade_batch(collect_profiles([tmp_path]), parse_spec(SPEC), battery=fake_battery, jobs=1)
+    assert sorted(g.name for g in out.grades) == ["twin (a)", "twin (b)"]
+
+
+def test_cache_ignores_a_damaged_entry(tmp_path):
+    cache = GradeCache(tmp_path)
+    key = GradeCache.key("p", "s", "1", "")
+    assert len(key) == 64
+    cache.path(key).write_bytes(b"not a zip file")
+    assert cache.load(key) is None
+    entry = {
+        "metrics": {"x": np.float64(1.5), "y": None, "z": math.inf},
+        "curves": {"c": {"a": np.arange(3)}},
+        "notes": ("n",),
+        "seconds": 2,
+    }
+    cache.store(key, entry)
+    entry = cache.load(key)
+    assert entry["metrics"] == {"x": 1.5, "y": None, "z": None}
+    np.testing.assert_array_equal(entry["curves"]["c"]["a"], np.arange(3))
+
+
+# --------------------------------------------------------------------------------------------
+# the command
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.fixture
+def use_fake_battery(monkeypatch):
+    monkeypatch.setattr("audiodsm.evaluate.grade._default_battery", lambda: fake_battery)
+
+
+def run_cli(args):
+    return CliRunner().invoke(main, ["grade", *args], catch_exceptions=False)
+
+
+def test_cli_exit_codes_and_table(tmp_path, batch_files, calls, use_fake_battery):
+    pdir, spec_path = batch_files
+    cache = tmp_path / "cache"
+    # o3 fails the -20 dBFS THD+N target: exit 1
+    r = run_cli([str(pdir), "--spec", str(spec_path), "--jobs", "1", "--cache", str(cache)])
+    assert r.exit_code == 1, r.output
+    lines = r.output.splitlines()
+    header = next(ln for ln in lines if ln.startswith("rank") and "target" in ln)
+    assert "margin" in header and "unit" in header
+    # the table is aligned: in every row the unit column starts under its heading
+    start = header.index("unit")
+    rows = lines[lines.index(header) + 1 : lines.index(header) + 10]
+    assert [ln[start:].split()[0] for ln in rows] == ["dB", "dBFS", "dB"] * 3
+    assert any("o5" in ln and "PASS" in ln for ln in lines)
+    assert any("o3" in ln and "FAIL" in ln for ln in lines)
+    # only passing profiles: exit 0
+    r = run_cli([str(pdir / "o5.toml"), "--spec", str(spec_path), "--jobs", "1",
+                 "--cache", str(cache)])  # fmt: skip
+    assert r.exit_code == 0, r.output
+    # bad input: exit 2 and one line
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[[target]]\nmetric = "loudness"\nat_least = 1\n')
+    r = CliRunner().invoke(main, ["grade", str(pdir), "--spec", str(bad)])
+    assert r.exit_code == 2
+    assert "loudness" in r.output and len(r.output.strip().splitlines()) == 1
+    r = CliRunner().invoke(main, ["grade", str(tmp_path / "nope"), "--spec", str(spec_path)])
+    assert r.exit_code == 2
+
+
+def test_cli_json(tmp_path, batch_files, calls, use_fake_battery):
+    pdir, spec_path = batch_files
+    r = run_cli([str(pdir), "--spec", str(spec_path), "--jobs", "1", "--json",
+                 "--cache", str(tmp_path / "c")])  # fmt: skip
+    assert r.exit_code == 1
+    data = json.loads(r.output)
+    assert [p["name"] for p in data["profiles"]] == ["o5", "o4", "o3"]
+    o3 = data["profiles"][2]
+    assert o3["passed"] is False
+    thd = next(t for t in o3["targets"] if t["metric"] == "thd_n_db")
+    assert thd["at_level_dbfs"] == -20.0 and thd["margin"] == pytest.approx(-4.0)
+
+
+def test_cli_interrupt_exit_code(tmp_path, batch_files, calls, monkeypatch):
+    monkeypatch.setattr("audiodsm.evaluate.grade._default_battery", lambda: interrupting_battery)
+    pdir, spec_path = batch_files
+    r = run_cli([str(pdir), "--spec", str(spec_path), "--jobs", "1",
+                 "--cache", str(tmp_path / "c")])  # fmt: skip
+    assert r.exit_code == 130
+    assert "interrupted" in r.output and "o3" in r.output
+
+
+def test_dataclass_is_frozen():
+    g = _grade("a", [1.0])
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        g.name = "b"

@@ -1,0 +1,271 @@
+import base64
+import csv
+import io
+import json
+import re
+import shutil
+import struct
+import subprocess
+import sys
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+from audiodsm.errors import OutputError, ParameterError
+from audiodsm.evaluate import plotting
+from audiodsm.evaluate.grade import collect_profiles, grade_batch
+from audiodsm.evaluate.report import (
+    CSV_COLUMNS,
+    REPORT_FILES,
+    batch_to_csv,
+    batch_to_dict,
+    render_html,
+    report_curves,
+    write_report,
+)
+from audiodsm.spec import parse_spec
+
+SPEC = """
+name = "report sheet"
+description = "made up for a test"
+
+[[target]]
+metric = "dynamic_range_db_a"
+at_least = 112.0
+
+[[target]]
+metric = "thd_n_db"
+at_level_dbfs = -20.0
+at_most = -90.0
+note = "a <note> & more"
+"""
+
+
+def full_curves(order):
+    """Curves of every kind the battery gives, shaped as the battery shapes them."""
+    f = np.linspace(0.0, 1.5e6, 2049)
+    levels = np.array([0.0, -1.0, -20.0, -40.0, -60.0, -80.0, -100.0])
+    offs = np.geomspace(1e-6, 1e-2, 4)
+    edges = np.tile(np.linspace(-1.0, 1.0, 17), (order, 1))
+    return {
+        "spectrum": {
+            "frequency_hz": f,
+            "level_dbfs": -150.0 + 20.0 * np.log10(1.0 + f / 2e4),
+            "ntf_gain_db": -100.0 + 0.0 * f,
+        },
+        "thd_n_vs_level": {
+            "level_dbfs": levels,
+            "thd_n_db": -95.0 - levels * 0.0 - order,
+            "thd_n_db_a": -97.0 + 0.0 * levels,
+        },
+        "idle_tone_map": {
+            "dc_offset": np.concatenate([-offs[::-1], offs]),
+            "line_dbfs": np.array([np.nan, -140.0, np.nan, -150.0, np.nan, -145.0, np.nan, -139]),
+            "detection_limit_dbfs": np.full(8, -155.0),
+        },
+        "state_histograms": {"edges": edges, "counts": np.ones((order, 16))},
+        "frequency_response": {
+            "frequency_hz": np.array([20.0, 997.0, 20000.0]),
+            "gain_db": np.array([-0.01, 0.0, -0.05]),
+        },
+    }
+
+
+def report_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    order = profile.modulator.order
+    if order == 7:
+        raise ValueError("no luck")
+    return SimpleNamespace(
+        metrics={"dynamic_range_db_a": 100.0 + 3.0 * order, "idle_tone_max_dbfs": None},
+        curves=full_curves(order),
+        notes=("a note",),
+    )
+
+
+@pytest.fixture
+def batch(tmp_path):
+    pdir = tmp_path / "profiles"
+    pdir.mkdir()
+    for name, order in (("third", 3), ("fifth", 5), ("broken", 7)):
+        (pdir / f"{name}.toml").write_text(f'name = "{name}"\n[modulator]\norder = {order}\n')
+    return grade_batch(
+        collect_profiles([pdir]), parse_spec(SPEC, path="sheet.toml"), battery=report_battery,
+        jobs=1,
+    )  # fmt: skip
+
+
+def png_size(data: bytes):
+    # PNG (ISO/IEC 15948:2004, also RFC 2083 sec. 3.1 and 4.1.1): an 8-byte signature, then
+    # the IHDR chunk (length, type, width, height as big-endian 32-bit integers)
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    length, kind, width, height = struct.unpack(">I4sII", data[8:24])
+    assert kind == b"IHDR" and length == 13
+    return width, height
+
+
+def test_report_files_and_embedded_images(tmp_path, batch):
+    out = tmp_path / "report"
+    written = write_report(batch, out)
+    assert {k: p.name for k, p in written.items()} == REPORT_FILES
+    assert sorted(p.name for p in out.iterdir()) == sorted(REPORT_FILES.values())  # no leftovers
+    page = (out / "grades.html").read_text()
+    images = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
+    # the overview chart, then five plots for each of the two profiles that ran
+    assert len(images) == 1 + 5 * 2
+    for b64 in images:
+        w, h = png_size(base64.b64decode(b64, validate=True))
+        assert w >= 300 and h >= 150
+    # self-contained: nothing fetched from anywhere
+    assert not re.search(r'(src|href)="(https?:|//|file:)', page)
+    assert "battery crashed: ValueError: no luck" in page
+    assert "a &lt;note&gt; &amp; more" in page  # text is escaped
+    assert page.index("fifth") < page.index("third")  # ranked
+
+
+def test_plot_size_matches_the_figure():
+    fig = plotting.plot_frequency_response(full_curves(3))
+    from audiodsm.evaluate.report import figure_to_png
+
+    w, h = png_size(figure_to_png(fig))
+    # figure size in inches x 100 dpi (matplotlib savefig contract)
+    assert (w, h) == tuple(int(round(v * 100)) for v in fig.get_size_inches())
+
+
+def test_json_and_csv_carry_the_grades(tmp_path, batch):
+    data = batch_to_dict(batch)
+    json.dumps(data, allow_nan=False)  # strict JSON: no NaN or inf anywhere
+    names = [p["name"] for p in data["profiles"]]
+    assert names == ["fifth", "third", "broken"]
+    fifth = data["profiles"][0]
+    assert fifth["targets"][0]["margin"] == pytest.approx(115.0 - 112.0)
+    assert fifth["targets"][1]["value"] == pytest.approx(-100.0)
+    assert data["profiles"][2]["worst_margin"] is None  # -inf is not JSON
+    rows = list(csv.reader(io.StringIO(batch_to_csv(batch))))
+    assert tuple(rows[0]) == CSV_COLUMNS
+    assert len(rows) == 1 + 3 * 2
+    third_dr = next(r for r in rows[1:] if r[1] == "third" and r[3] == "dynamic_range_db_a")
+    assert float(third_dr[CSV_COLUMNS.index("margin")]) == pytest.approx(109.0 - 112.0)
+    assert third_dr[CSV_COLUMNS.index("passed")] == "fail"
+
+
+def test_report_written_atomically(tmp_path, batch, monkeypatch):
+    out = tmp_path / "report"
+    write_report(batch, out)
+    before = (out / "grades.html").read_bytes()
+    import audiodsm.evaluate.report as report
+
+    real = report.os.replace
+
+    def failing_replace(src, dst):
+        if str(dst).endswith(".html"):
+            raise OSError("disk full")
+        return real(src, dst)
+
+    monkeypatch.setattr(report.os, "replace", failing_replace)
+    with pytest.raises(OSError, match="disk full"):
+        write_report(batch, out)
+    # the old page is intact and no half-written file is left behind
+    assert (out / "grades.html").read_bytes() == before
+    assert sorted(p.name for p in out.iterdir()) == sorted(REPORT_FILES.values())
+
+
+def test_report_never_overwrites_an_input(tmp_path, batch):
+    out = tmp_path / "report"
+    out.mkdir()
+    clash = out / "grades.json"
+    clash.write_text("{}")
+    with pytest.raises(OutputError, match="input"):
+        write_report(batch, out, protect=[clash])
+    assert clash.read_text() == "{}"
+    afile = tmp_path / "plain"
+    afile.write_text("x")
+    with pytest.raises(OutputError, match="folder"):
+        write_report(batch, afile)
+
+
+def test_weighting_overlay_is_the_a_curve():
+    librosa = pytest.importorskip("librosa")
+    curves = full_curves(2)
+    out = report_curves(curves)
+    assert "weighting_db" not in curves["spectrum"]  # input untouched
+    f = curves["spectrum"]["frequency_hz"]
+    w = out["spectrum"]["weighting_db"]
+    sel = (f >= 10.0) & (f <= 100e3)
+    # librosa.A_weighting implements the IEC 61672-1 analytic A-curve; both normalise to
+    # 0 dB at 1 kHz within the standard's rounding of A1000 (-2.000 dB), so 0.01 dB covers it
+    ref = librosa.A_weighting(f[sel], min_db=None)
+    np.testing.assert_allclose(w[sel], ref, atol=0.01)
+    assert w[0] == -120.0  # DC floored
+
+
+def test_plots_refuse_missing_curves():
+    with pytest.raises(ParameterError, match="spectrum"):
+        plotting.plot_spectrum({})
+    with pytest.raises(ParameterError, match="edges"):
+        plotting.plot_state_histograms({"state_histograms": {"counts": np.ones(3)}})
+
+
+def test_plots_draw_on_a_given_axes():
+    from matplotlib.figure import Figure
+
+    fig = Figure()
+    axes = fig.subplots(1, 5)
+    for ax, (_name, fn, _cap) in zip(axes, plotting.PLOTS, strict=True):
+        assert fn(full_curves(3), ax=ax) is fig
+    # the data drawn is the data given (plots compute nothing)
+    line = axes[4].get_lines()[0]
+    np.testing.assert_array_equal(line.get_xdata(), [20.0, 997.0, 20000.0])
+    np.testing.assert_array_equal(line.get_ydata(), [-0.01, 0.0, -0.05])
+
+
+def test_importing_the_report_does_not_load_matplotlib():
+    code = (
+        "import sys, audiodsm.evaluate.report, audiodsm.evaluate.plotting, "
+        "audiodsm.evaluate.grade; print('matplotlib' in sys.modules)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
+
+
+def _chromium():
+    for name in ("chromium", "chromium-browser", "google-chrome", "chrome"):
+        path = shutil.which(name)
+        if path:
+            return path
+    return None
+
+
+@pytest.mark.skipif(_chromium() is None, reason="no Chromium installed")
+def test_page_renders_in_headless_chromium(tmp_path, batch):
+    out = tmp_path / "report"
+    write_report(batch, out)
+    shot = tmp_path / "shot.png"
+    profile_dir = tmp_path / "chromium-profile"
+    cmd = [
+        _chromium(),
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        f"--user-data-dir={profile_dir}",
+        "--hide-scrollbars",
+        "--window-size=1280,2400",
+        f"--screenshot={shot}",
+        (out / "grades.html").as_uri(),
+    ]
+    subprocess.run(cmd, capture_output=True, timeout=120, check=False)
+    assert shot.is_file(), "Chromium wrote no screenshot"
+    from matplotlib.image import imread
+
+    img = imread(shot)
+    assert img.shape[:2] == (2400, 1280)
+    # a rendered page, not a blank one: many distinct colours (tables, plots, text)
+    flat = (img[..., :3] * 255).astype(np.uint8).reshape(-1, 3)
+    assert len(np.unique(flat[::7], axis=0)) > 200
+    Path(tmp_path / "keep").write_text(str(shot))
