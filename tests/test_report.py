@@ -21,7 +21,6 @@ from audiodsm.evaluate.report import (
     REPORT_FILES,
     batch_to_csv,
     batch_to_dict,
-    render_html,
     report_curves,
     write_report,
 )
