@@ -309,7 +309,7 @@ class OutputStageSettings:
         "0 (levels - 1) or an integer from 1 to 65536",
         _int_range(0, 65536),
         only="pwm",
-        doc="PWM counter steps per frame; 0 uses levels - 1.",
+        doc="PWM counter steps per frame: 0 uses levels - 1; otherwise a multiple of levels - 1.",
     )
     tick_subdivision: int = _key(
         1,
@@ -663,6 +663,13 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
             path,
             "output.pwm_bridge",
             f"got {out.pwm_bridge!r} with three-level PWM; expected 'full' (both legs switch)",
+        )
+    if out.kind == "pwm" and out.counter_steps and out.counter_steps % (mod.levels - 1):
+        raise ProfileError(
+            path,
+            "output.counter_steps",
+            f"got {out.counter_steps}; expected a multiple of modulator.levels - 1 = "
+            f"{mod.levels - 1} (every level an exact pulse width)",
         )
     if rec.fir_taps and out.kind == "pwm":
         raise ProfileError(

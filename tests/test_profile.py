@@ -176,6 +176,11 @@ ERRORS = [
         "reconstruction.fir_taps",
         "bitstream",
     ),
+    (
+        "[modulator]\nlevels = 9\n[output]\nkind = 'pwm'\ncounter_steps = 12",
+        "output.counter_steps",
+        "multiple",
+    ),
     ("[modulator]\nzeros = [1.0]", "modulator.poles", "together"),
     ("[modulator]\nzeros = [1.0]\npoles = [0.5, 0.2]", "modulator.poles", "same count"),
     ("[modulator]\nzeros = [[1.0, 0.1]]\npoles = [0.5]", "modulator.zeros", "conjugate"),
