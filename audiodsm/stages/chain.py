@@ -474,6 +474,8 @@ class Chain:
         g *= abs(complex(np.asarray(self.downsampler_design.response(np.array([f])))[0]))
         self.gain = float(g)
         self._static_offset = self.offset * self.fir_dc_gain * self.analog_dc_gain
+        down_dc = float(np.real(self.downsampler_design.response(np.array([0.0]))[0]))
+        self._listening_offset = self._static_offset * down_dc
         # latency: FIR delays + loop phase delay + half a frame (hold) + analog phase delay
         fir_delay = 0.0
         if self.fir is not None:
@@ -523,9 +525,9 @@ class Chain:
     def _channel(self, x, st, keep):
         clock = time.perf_counter
         t0 = clock()
-        xu, up_s = self._upsampler.process(x, st.upsampler)
         if self.input_scale != 1.0:
-            xu *= self.input_scale
+            x = x * self.input_scale  # at the audio rate: the upsampler is linear
+        xu, up_s = self._upsampler.process(x, st.upsampler)
         t1 = clock()
         y, mod_s = self.modulator.run(xu, st.modulator)
         t2 = clock()
@@ -541,18 +543,18 @@ class Chain:
             switches = 0
         t3 = clock()
         analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog)
-        calibrated = (analog - self._static_offset) / self.gain
         t4 = clock()
-        listening, down_s = self._downsampler.process(calibrated, st.downsampler)
+        # the decimator is linear: calibrate after it, on 1/OSR as many samples
+        raw, down_s = self._downsampler.process(analog, st.downsampler)
+        listening = (raw - self._listening_offset) / self.gain
         t5 = clock()
         error = None
         new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
         if "error" in keep:
             ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
             ideal, ifir_s, ifilt_s = self._reconstruct(ideal_wf, st.ideal_fir, st.ideal_analog)
-            ideal = (ideal - self._static_offset) / self.gain
-            ideal_l, idown_s = self._downsampler.process(ideal, st.ideal_downsampler)
-            error = listening - ideal_l
+            ideal_raw, idown_s = self._downsampler.process(ideal, st.ideal_downsampler)
+            error = (raw - ideal_raw) / self.gain  # the static offset cancels
             new = new._replace(
                 ideal_stf=stf_s, ideal_fir=ifir_s, ideal_analog=ifilt_s, ideal_downsampler=idown_s
             )
@@ -560,7 +562,7 @@ class Chain:
         out = {
             "listening": listening,
             "modulator": y if "modulator" in keep else None,
-            "analog": calibrated if "analog" in keep else None,
+            "analog": (analog - self._static_offset) / self.gain if "analog" in keep else None,
             "error": error,
             "dropped": dropped,
             "stretched": stretched,
