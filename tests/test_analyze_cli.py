@@ -395,3 +395,19 @@ def test_noise_of_steeply_shaped_noise_against_ntf_integral():
     assert ch.noise_dbfs == pytest.approx(10 * np.log10(band_ms / 0.5), abs=0.2)
     total_dbfs = 10 * np.log10(np.mean(x**2) / 0.5)
     assert total_dbfs - ch.noise_dbfs > 70
+
+
+def test_pure_float_sine_has_no_lines_and_digital_zero_reads_floor():
+    # A synthesized float64 sine leaves only rounding residue (near -250 dBFS) after the fit:
+    # no lines are reported, and the noise reads far below any converter. Digital zero and a
+    # pure DC offset (outside the 20 Hz band) are silence at the documented -400 dBFS floor.
+    n = 2 * RATE
+    t = np.arange(n) / RATE
+    x = np.stack([0.5 * np.sin(2 * np.pi * 997.0 * t), np.zeros(n), np.full(n, 0.25)], axis=1)
+    chans = analyze_blocks(lambda: iter([x]), rate_hz=RATE, channels=3, n_frames=n)
+    tone, zero, dc = (c.to_dict() for c in chans)
+    assert tone["signal"] == "tone" and tone["tones"] == []
+    assert tone["noise_dbfs"] < -200
+    assert zero["signal"] == dc["signal"] == "silence"
+    assert zero["noise_dbfs"] == dc["noise_dbfs"] == -400.0
+    assert json.loads(json.dumps(zero)) == zero  # finite numbers only: valid JSON

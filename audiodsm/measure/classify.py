@@ -43,6 +43,7 @@ __all__ = [
     "ChannelContent",
     "classify_channel",
     "ZERO_LEVEL_DBFS",
+    "LINE_FLOOR_DBFS",
     "SURVEY_SPANS",
     "ChannelAnalysis",
     "analyze_blocks",
@@ -223,6 +224,10 @@ def classify_channel(
 
 #: Level reported for digital zero, where the true level is minus infinity (JSON has no -inf).
 ZERO_LEVEL_DBFS = -400.0
+#: Lines weaker than this are not reported: the rounding of 64-bit arithmetic on a full-scale
+#: signal leaves structured residue near -250 dBFS, and no file format holds a real line
+#: there next to a signal (24-bit LSB -141 dBFS, 32-bit -187 dBFS, float32 relative -144 dB).
+LINE_FLOOR_DBFS = -200.0
 #: A tone counts as the AES17 dynamic-range stimulus within this many dB of -60 dBFS.
 DR_TONE_WINDOW_DB = 1.0
 #: Number of evenly spread spans a long file's survey reads.
@@ -442,10 +447,15 @@ def _lines_apart(spectrum, freqs, find_idle_tones):
     per billion, not exactly); that trace is not a spurious line, so lines within one main
     lobe plus a bin of a removed tone are dropped.
     """
-    found = find_idle_tones(spectrum).tones
+    found = _real_lines(find_idle_tones(spectrum).tones)
     bin_hz = float(spectrum.freq_hz[1] - spectrum.freq_hz[0])
     reach = (int(getattr(spectrum, "main_lobe_bins", 4)) + 1) * bin_hz
     return tuple(t for t in found if all(abs(t.frequency_hz - f) > reach for f in freqs))
+
+
+def _real_lines(lines) -> tuple:
+    """Lines at or above :data:`LINE_FLOOR_DBFS` (below it they are float64 rounding)."""
+    return tuple(t for t in lines if t.level_dbfs >= LINE_FLOOR_DBFS)
 
 
 def analyze_blocks(
@@ -633,7 +643,7 @@ def analyze_blocks(
             level = _dbfs(float(np.sum(amps * amps)) / 2.0 + noise["unweighted"])
             tones = _lines_apart(spec, freqs[c], find_idle_tones)
         elif content.kind == "silence":
-            tones = find_idle_tones(spec).tones
+            tones = _real_lines(find_idle_tones(spec).tones)
         else:
             level = noise_dbfs["unweighted"]
         results.append(
