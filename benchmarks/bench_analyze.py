@@ -3,8 +3,9 @@
 Target (issue 3): under 15 s on the project machine, memory bounded by streaming. The file is
 generated block by block into a temporary folder (channel 1: a -1 dBFS 997 Hz tone, channel 2:
 silence, both with 24-bit TPDF dither), then analysed in a child process so that its peak
-resident memory can be read on its own. Wall-clock and CPU seconds are both reported: on a
-shared machine the CPU time is the steadier figure.
+resident memory can be read on its own. Wall-clock and CPU seconds of the measurement are
+both reported (on a shared machine the CPU time is the steadier figure), and the child
+process's whole run including Python start-up and imports.
 """
 
 from __future__ import annotations
@@ -58,9 +59,11 @@ def run():
         t = time.perf_counter()
         _make_file(path, MINUTES * 60)
         made = time.perf_counter() - t
+        t = time.perf_counter()
         proc = subprocess.run(
             [sys.executable, "-c", _CHILD, path], capture_output=True, text=True, check=True
         )
+        process_seconds = time.perf_counter() - t
         child = json.loads(proc.stdout.strip().splitlines()[-1])
         size_mb = os.path.getsize(path) / 1e6
     yield {
@@ -69,6 +72,7 @@ def run():
         "target_seconds": TARGET_S,
         "meets_target": child["seconds"] < TARGET_S,
         "cpu_seconds": round(child["cpu"], 2),
+        "process_seconds_with_imports": round(process_seconds, 2),
         "peak_memory_mb": round(child["peak_kib"] / 1024, 1),
         "file_mb": round(size_mb, 1),
         "signals": child["kinds"],

@@ -19,6 +19,8 @@ import click
 import numpy as np
 
 from audiodsm.errors import AudiodsmError, AudioFileError, ParameterError
+from audiodsm.io import audio_info, iter_audio_blocks, read_audio_span
+from audiodsm.measure.classify import analyze_blocks
 
 __all__ = ["FileAnalysis", "analyze_file", "format_table", "analyze"]
 
@@ -81,9 +83,6 @@ def analyze_file(path, *, progress=None) -> FileAnalysis:
     AudioFileError
         A bad file (see :mod:`audiodsm.io`) or one too short for the resolution needed.
     """
-    from audiodsm.io import audio_info, iter_audio_blocks, read_audio_span
-    from audiodsm.measure.classify import analyze_blocks
-
     start = time.perf_counter()
     info = audio_info(path)
     block = max(BLOCK_FRAMES, 1)
@@ -202,8 +201,6 @@ def analyze(files, as_json, no_progress):
     32/64-bit float; 1 to 8 channels at 44.1 kHz or more. Exit code 0 when every file was
     measured, 2 when any file was bad (the others are still measured).
     """
-    from audiodsm.io import audio_info
-
     bad = printed = 0
     for path in files:
         try:

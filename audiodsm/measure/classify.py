@@ -32,6 +32,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from audiodsm.errors import ParameterError
+from audiodsm.measure.aes17 import fit_sine, thd
+from audiodsm.measure.idle_tones import (
+    accumulate_line_spectrum,
+    find_idle_tones,
+    segment_frames_for,
+)
 
 __all__ = [
     "KINDS",
@@ -440,7 +446,7 @@ def _stretch_from_blocks(open_blocks, start: int, frames: int) -> np.ndarray:
     return np.concatenate(out)
 
 
-def _lines_apart(spectrum, freqs, find_idle_tones):
+def _lines_apart(spectrum, freqs):
     """Lines in a residual spectrum, leaving out what remains of the removed tones.
 
     A removed tone leaves a trace far below itself (its frequency is known to a few parts
@@ -523,13 +529,6 @@ def analyze_blocks(
     On white noise the two agree within 0.1 dB (tested against
     :func:`audiodsm.measure.aes17.thd_plus_noise`).
     """
-    from audiodsm.measure.aes17 import fit_sine, thd
-    from audiodsm.measure.idle_tones import (
-        accumulate_line_spectrum,
-        find_idle_tones,
-        segment_frames_for,
-    )
-
     rate = float(rate_hz)
     n_frames = int(n_frames)
     seg = segment_frames_for(n_frames, rate)
@@ -637,11 +636,11 @@ def analyze_blocks(
             thd_db = ratio if np.isfinite(ratio) else None
             if abs(level + 60.0) <= DR_TONE_WINDOW_DB:
                 dr, dr_a = -noise_dbfs["unweighted"], -noise_dbfs["a"]
-            tones = _lines_apart(spec, freqs[c], find_idle_tones)
+            tones = _lines_apart(spec, freqs[c])
         elif content.kind == "twin-tone":
             amps = removers[c].amplitudes()
             level = _dbfs(float(np.sum(amps * amps)) / 2.0 + noise["unweighted"])
-            tones = _lines_apart(spec, freqs[c], find_idle_tones)
+            tones = _lines_apart(spec, freqs[c])
         elif content.kind == "silence":
             tones = _real_lines(find_idle_tones(spec).tones)
         else:
