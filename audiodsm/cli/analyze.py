@@ -85,10 +85,9 @@ def analyze_file(path, *, progress=None) -> FileAnalysis:
     """
     start = time.perf_counter()
     info = audio_info(path)
-    block = max(BLOCK_FRAMES, 1)
     try:
         channels = analyze_blocks(
-            lambda: iter_audio_blocks(path, block),
+            lambda: iter_audio_blocks(path, BLOCK_FRAMES),
             rate_hz=info.rate_hz,
             channels=info.channels,
             n_frames=info.frames,
@@ -96,7 +95,7 @@ def analyze_file(path, *, progress=None) -> FileAnalysis:
             progress=progress,
         )
     except ParameterError as exc:
-        if exc.name in ("signal length", "x"):
+        if exc.name == "signal length":
             raise AudioFileError(
                 str(path),
                 f"too short: {info.frames} frames ({info.duration_s:.3f} s); {exc.expected}",
