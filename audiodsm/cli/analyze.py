@@ -143,7 +143,20 @@ def _cell(value, fmt):
 
 
 def format_table(result: FileAnalysis) -> str:
-    """Aligned plain-text table of one file's measurements, one column per channel."""
+    """Aligned plain-text table of one file's measurements, one column per channel.
+
+    Parameters
+    ----------
+    result : FileAnalysis
+        What :func:`analyze_file` returned.
+
+    Returns
+    -------
+    str
+        A header line (file, rate, channels, duration, format, measurement time), a row per
+        quantity with its unit, right-aligned columns, then the detected lines (12 per
+        channel at most).
+    """
     seconds = result.frames / result.rate_hz
     head = (
         f"{result.path}: {result.rate_hz} Hz, {len(result.channels)} channel(s), "
