@@ -1,15 +1,14 @@
 """Modulator kernels against their slow pure-Python twin, operation for operation."""
 
-import ast
-import inspect
 import math
 
 import numpy as np
 import pytest
 
-from audiodsm.design.ntf import design_ntf
+from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
 from audiodsm.design.realize import STRUCTURES, realize_ntf
 from audiodsm.stages import _kernels
+from audiodsm.stages.modulator import _feedback_kernel_key
 
 MASK = (1 << 64) - 1
 GOLDEN = 0x9E3779B97F4A7C15
@@ -71,7 +70,11 @@ def twin(u, coef, state, counter, peaks, count, structure, levels, dscale, ib, s
         new = list(x)
         for i in range(n - 1, -1, -1):
             prev = k[i] * x[i - 1] if i > 0 else b[0] * ut
-            acc = (d[i] * x[i] + prev) - a[i] * fed
+            acc = d[i] * x[i] + prev
+            if levels != 2 and structure != 2:
+                acc = (acc + a[i]) - q * (a[i] * step)  # = acc - a[i] * v, rounded this way
+            else:
+                acc = acc - a[i] * fed
             if i < n - 1:
                 acc = acc - g[i] * new[i + 1]
             new[i] = acc
@@ -110,7 +113,8 @@ def run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start):
     tr = np.empty((len(u), n))
     coef = coefficients(loop)
     if fast:
-        _kernels.FEEDBACK_LOOPS[n](u, out, coef, st, rng, pk, cnt, levels, dscale, ib, sb, reset)
+        kernel = _kernels.feedback_kernel(*fast)
+        kernel(u, out, coef, st, rng, pk, cnt, levels, dscale, ib, sb, reset)
         tr = None
     else:
         code = CODES[loop.structure]
@@ -126,15 +130,34 @@ CASES = [
     (17, 0.0, 8.0, 1e6, True),
     (5, 1.0, 8.0, 1e6, False),
     (2, 0.3, 8.0, 1e6, True),
-    (3, 0.0, 1.5, 0.4, True),  # tight bounds: the guard acts often (reset)
-    (2, 0.0, 1.2, 0.3, False),  # tight bounds: the guard acts often (clamp)
+    (3, 0.0, 1.0, 0.05, True),  # tight bounds: the guard acts often (reset)
+    (2, 0.0, 1.0, 0.05, False),  # tight bounds: the guard acts often (clamp)
 ]
 
 
-@pytest.mark.parametrize("order", range(1, 9))
+def make_loop(order, structure, kind, rng):
+    """A realized loop: as designed, scaled (chain gains != 1) or with leaky zeros."""
+    if kind == "leaky":
+        zeros = 0.99 * design_ntf(order, 32).zeros
+        ntf = ntf_from_zeros_poles(zeros, design_ntf(order, 32, max_gain=1.7).poles)
+        return realize_ntf(ntf, structure)
+    ntf = design_ntf(order, 32, max_gain=1.5 + 0.2 * (order % 3), optimize_zeros=order % 2 == 0)
+    loop = realize_ntf(ntf, structure)
+    if kind == "scaled":
+        loop = loop.scaled(rng.uniform(0.5, 4.0, order))
+    return loop
+
+
+# every order as designed; scaled and leaky loops (other specialised kernels) for a few orders.
+# Each specialised kernel compiles once (then numba's cache serves it), so the set is kept small.
+KINDS = [(order, "designed") for order in range(1, 9)]
+KINDS += [(order, kind) for order in (2, 5, 8) for kind in ("scaled", "leaky")]
+
+
+@pytest.mark.parametrize(("order", "kind"), KINDS)
 @pytest.mark.parametrize("structure", STRUCTURES)
-def test_kernels_equal_python_twin(order, structure, rng):
-    loop = realize_ntf(design_ntf(order, 32, max_gain=1.5 + 0.2 * (order % 3)), structure)
+def test_kernels_equal_python_twin(order, kind, structure, rng):
+    loop = make_loop(order, structure, kind, rng)
     u = 0.5 * np.sin(np.arange(300) * 0.05) + 0.05 * rng.standard_normal(300)
     start = 0.01 * rng.standard_normal(order)
     for levels, dither, ib, sb, reset in CASES:
@@ -153,7 +176,12 @@ def test_kernels_equal_python_twin(order, structure, rng):
             sb,
             reset,
         )
-        kernels = [False, True] if structure == "feedback" else [False]
+        kernels = [False]
+        if structure == "feedback":
+            # the specialised kernel that fits this loop, and the fully general one
+            kernels.append(_feedback_kernel_key(loop))
+            if kind == "designed" and order in (1, 4, 7):
+                kernels.append((order, False, False, -1))  # the fully general one
         for fast in kernels:
             got = run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start)
             np.testing.assert_array_equal(got[0], expected[0])  # outputs, bit for bit
@@ -179,91 +207,10 @@ def test_generator_matches_splitmix64_reference_values():
         assert _kernels._unit_from_counter.py_func(np.uint64(GOLDEN)) == z1
 
 
-def test_specialized_feedback_kernels_are_current():
-    """The per-order kernels are the template's output (compared as syntax trees)."""
-    for order in range(1, 9):
-        src = inspect.getsource(_kernels.FEEDBACK_LOOPS[order].py_func)
-        assert ast.dump(ast.parse(src)) == ast.dump(ast.parse(feedback_kernel_source(order)))
-
-
-def feedback_kernel_source(n):
-    """Template of the order-specialized feedback kernels in stages/_kernels.py.
-
-    Regenerate the kernels with it (then run ruff format) after changing the update rule.
-    """
-    lines = []
-    add = lines.append
-    xs = ", ".join(f"x{i}" for i in range(n))
-    ns = ", ".join(f"n{i}" for i in range(n))
-    add("@njit(cache=True, nogil=True)")
-    add(f"def feedback_loop_order{n}(")
-    add(
-        "    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound,"
-        " state_bound, reset"
-    )
-    add("):")
-    add(
-        f'    """Feedback loop of order {n}: same arguments and result as'
-        ' ``loop_any_structure``."""'
-    )
-    for i in range(n):
-        add(f"    d{i} = coef[0, {i}]")
-        if i > 0:
-            add(f"    k{i} = coef[1, {i}]")
-        if i < n - 1:
-            add(f"    g{i} = coef[2, {i}]")
-        add(f"    a{i} = coef[3, {i}]")
-    add("    b0 = coef[4, 0]")
-    for i in range(n):
-        add(f"    x{i} = state[{i}]")
-        add(f"    p{i} = peaks[{i}]")
-    add("    top = float(levels - 1)")
-    add("    half = 0.5 * top")
-    add("    offset = half + 0.5")
-    add("    step = 2.0 / top")
-    add("    dithered = dither_scale != 0.0")
-    add("    single_bit = levels == 2")
-    add("    counter = rng[0]")
-    add("    overloads = counts[0]")
-    add("    for t in range(u.shape[0]):")
-    add(f"        y = x{n - 1}")
-    add("        w = y")
-    add("        if dithered:")
-    add("            counter += _GOLDEN")
-    add("            r1 = _unit_from_counter(counter)")
-    add("            counter += _GOLDEN")
-    add("            r2 = _unit_from_counter(counter)")
-    add("            w = y + dither_scale * (r1 - r2)")
-    add("        if single_bit:")
-    add("            v = math.copysign(1.0, w)")
-    add("        else:")
-    add("            q = np.floor(w * half + offset)")
-    add("            q = min(max(q, 0.0), top)")
-    add("            v = q * step - 1.0")
-    add("        out[t] = v")
-    for i in range(n - 1, -1, -1):
-        prev = "b0 * u[t]" if i == 0 else f"k{i} * x{i - 1}"
-        expr = f"(d{i} * x{i} + {prev}) - a{i} * v"
-        if i < n - 1:
-            expr = f"({expr}) - g{i} * n{i + 1}"
-        add(f"        n{i} = {expr}")
-    add(f"        {xs} = {ns}")
-    conds = " & ".join(
-        ["(abs(y) <= input_bound)"] + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
-    )
-    add(f"        if not ({conds}):")
-    add("            overloads += 1")
-    add("            if reset:")
-    add(f"                {xs} = " + ", ".join("0.0" for _ in range(n)))
-    add("            else:")
-    for i in range(n):
-        add(f"                x{i} = _clamp(x{i}, state_bound)")
-    for i in range(n):
-        add(f"        p{i} = max(p{i}, abs(x{i}))")
-    for i in range(n):
-        add(f"    state[{i}] = x{i}")
-    for i in range(n):
-        add(f"    peaks[{i}] = p{i}")
-    add("    rng[0] = counter")
-    add("    counts[0] = overloads")
-    return "\n".join(lines) + "\n"
+def test_specialised_kernel_is_chosen_for_designed_loops():
+    loop = realize_ntf(design_ntf(5, 64), "feedback")
+    assert _feedback_kernel_key(loop) == (5, True, True, 2)
+    loop = realize_ntf(design_ntf(4, 64, optimize_zeros=False), "feedback")
+    assert _feedback_kernel_key(loop) == (4, True, True, 0)
+    scaled = realize_ntf(design_ntf(3, 64), "feedback").scaled([2.0, 3.0, 1.0])
+    assert _feedback_kernel_key(scaled) == (3, True, False, 1)

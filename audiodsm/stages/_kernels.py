@@ -136,6 +136,7 @@ def loop_any_structure(
             counter += _GOLDEN
             r2 = _unit_from_counter(counter)
             w = y + dither_scale * (r1 - r2)
+        q = 0.0
         if levels == 2:
             v = math.copysign(1.0, w)
         else:
@@ -144,11 +145,18 @@ def loop_any_structure(
             v = q * step - 1.0
         out[t] = v
         fed = x[last] + (v - y) if structure == 2 else v
+        by_index = levels != 2 and structure != 2
         for i in range(last, -1, -1):
             if i > 0:
-                acc = (coef[0, i] * x[i] + coef[1, i] * x[i - 1]) - coef[3, i] * fed
+                acc = coef[0, i] * x[i] + coef[1, i] * x[i - 1]
             else:
-                acc = (coef[0, 0] * x[0] + coef[4, 0] * ut) - coef[3, 0] * fed
+                acc = coef[0, 0] * x[0] + coef[4, 0] * ut
+            if by_index:
+                # a * v written as a * (q * step - 1) = q * (a * step) - a: the level index q
+                # is then one multiply-subtract away from the new state
+                acc = (acc + coef[3, i]) - q * (coef[3, i] * step)
+            else:
+                acc = acc - coef[3, i] * fed
             if i < last:
                 acc = acc - coef[2, i] * x[i + 1]
             x[i] = acc
@@ -168,768 +176,164 @@ def loop_any_structure(
     counts[0] = overloads
 
 
-# The feedback structure is the fast path: one kernel per order keeps every state in a local
-# scalar (a loop over a state array runs several times slower). They are written out from one
-# template (tests/test_kernels_modulator.py regenerates it and checks this text is current) and
-# compute exactly what loop_any_structure computes for structure 0.
+# The feedback structure is the fast path. Its kernels keep every state in a local scalar (a
+# loop over a state array runs several times slower) and leave out the multiplications a given
+# loop does not need: the leak when every zero is on the unit circle, the chain gain when the
+# states are unscaled, and the resonator term on integrators that are not the upstream half of
+# a resonator pair. One kernel per (order, leak, chain gain, pairs) is written from the template
+# below on first use and compiled with numba's on-disk cache (keyed to this file, so editing the
+# template recompiles). Each computes exactly what loop_any_structure computes for structure 0.
 
 
-@njit(cache=True, nogil=True)
-def feedback_loop_order1(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 1: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    a0 = coef[3, 0]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x0
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
+def feedback_kernel_name(order, lossless, unit_chain, pairs):
+    """Name of the specialised feedback kernel for these properties."""
+    leak = "l" if lossless else "d"
+    chain = "u" if unit_chain else "k"
+    resonators = "all" if pairs < 0 else pairs
+    return f"feedback_loop_order{order}_{leak}{chain}_p{resonators}"
+
+
+def feedback_kernel_source(order, lossless, unit_chain, pairs):
+    """Python source of one specialised feedback kernel (see feedback_kernel).
+
+    Parameters
+    ----------
+    order : int
+        1..8.
+    lossless : bool
+        Every leak is exactly 1 (the multiplication by the leak is left out).
+    unit_chain : bool
+        Every chain gain is exactly 1 (unscaled loop).
+    pairs : int
+        Number of resonator pairs at the head of the chain (upstream integrators 0, 2, ...),
+        or -1 to keep the resonator term on every integrator.
+    """
+    n = order
+    lines = []
+    add = lines.append
+    xs = ", ".join(f"x{i}" for i in range(n))
+    ns = ", ".join(f"n{i}" for i in range(n))
+
+    def has_g(i):
+        return i < n - 1 and (pairs < 0 or (i % 2 == 0 and i < 2 * pairs))
+
+    add(f"def {feedback_kernel_name(order, lossless, unit_chain, pairs)}(")
+    add("    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound,")
+    add("    state_bound, reset,")
+    add("):")
+    add("    top = float(levels - 1)")
+    add("    half = 0.5 * top")
+    add("    offset = half + 0.5")
+    add("    step = 2.0 / top")
+    for i in range(n):
+        if not lossless:
+            add(f"    d{i} = coef[0, {i}]")
+        if i > 0 and not unit_chain:
+            add(f"    k{i} = coef[1, {i}]")
+        if has_g(i):
+            add(f"    g{i} = coef[2, {i}]")
+        add(f"    a{i} = coef[3, {i}]")
+        add(f"    s{i} = a{i} * step")
+    add("    b0 = coef[4, 0]")
+    for i in range(n):
+        add(f"    x{i} = state[{i}]")
+        add(f"    p{i} = peaks[{i}]")
+    add("    counter = rng[0]")
+    add("    overloads = counts[0]")
+
+    def base(i):
+        own = f"x{i}" if lossless else f"d{i} * x{i}"
+        if i == 0:
+            prev = "b0 * u[t]"
         else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n0 = (d0 * x0 + b0 * u[t]) - a0 * v
-        x0 = n0
-        if not ((abs(y) <= input_bound) & (abs(x0) <= state_bound)):
-            overloads += 1
-            if reset:
-                x0 = 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-        p0 = max(p0, abs(x0))
-    state[0] = x0
-    peaks[0] = p0
-    rng[0] = counter
-    counts[0] = overloads
+            prev = f"x{i - 1}" if unit_chain else f"k{i} * x{i - 1}"
+        return f"({own} + {prev})"
 
-
-@njit(cache=True, nogil=True)
-def feedback_loop_order2(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 2: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    a1 = coef[3, 1]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x1
-        w = y
+    def body(single_bit, dithered):
+        ind = "            "
+        body_lines = [f"{ind}y = x{n - 1}"]
         if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
+            body_lines += [
+                f"{ind}counter += _GOLDEN",
+                f"{ind}r1 = _unit_from_counter(counter)",
+                f"{ind}counter += _GOLDEN",
+                f"{ind}r2 = _unit_from_counter(counter)",
+                f"{ind}w = y + dither_scale * (r1 - r2)",
+            ]
         else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n1 = (d1 * x1 + k1 * x0) - a1 * v
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1 = n0, n1
-        if not ((abs(y) <= input_bound) & (abs(x0) <= state_bound) & (abs(x1) <= state_bound)):
-            overloads += 1
-            if reset:
-                x0, x1 = 0.0, 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-    state[0] = x0
-    state[1] = x1
-    peaks[0] = p0
-    peaks[1] = p1
-    rng[0] = counter
-    counts[0] = overloads
-
-
-@njit(cache=True, nogil=True)
-def feedback_loop_order3(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 3: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    g1 = coef[2, 1]
-    a1 = coef[3, 1]
-    d2 = coef[0, 2]
-    k2 = coef[1, 2]
-    a2 = coef[3, 2]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    x2 = state[2]
-    p2 = peaks[2]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x2
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
+            body_lines.append(f"{ind}w = y")
         if single_bit:
-            v = math.copysign(1.0, w)
+            body_lines += [f"{ind}v = math.copysign(1.0, w)", f"{ind}out[t] = v"]
         else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n2 = (d2 * x2 + k2 * x1) - a2 * v
-        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1, x2 = n0, n1, n2
-        if not (
-            (abs(y) <= input_bound)
-            & (abs(x0) <= state_bound)
-            & (abs(x1) <= state_bound)
-            & (abs(x2) <= state_bound)
-        ):
-            overloads += 1
-            if reset:
-                x0, x1, x2 = 0.0, 0.0, 0.0
+            body_lines += [
+                f"{ind}q = np.floor(w * half + offset)",
+                f"{ind}q = min(max(q, 0.0), top)",
+                f"{ind}out[t] = q * step - 1.0",
+            ]
+        for i in range(n - 1, -1, -1):
+            if single_bit:
+                expr = f"{base(i)} - a{i} * v"
             else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-                x2 = _clamp(x2, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-        p2 = max(p2, abs(x2))
-    state[0] = x0
-    state[1] = x1
-    state[2] = x2
-    peaks[0] = p0
-    peaks[1] = p1
-    peaks[2] = p2
-    rng[0] = counter
-    counts[0] = overloads
+                expr = f"({base(i)} + a{i}) - q * s{i}"
+            if has_g(i):
+                expr = f"({expr}) - g{i} * n{i + 1}"
+            body_lines.append(f"{ind}n{i} = {expr}")
+        body_lines.append(f"{ind}{xs} = {ns}")
+        conds = " & ".join(
+            ["(abs(y) <= input_bound)"] + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
+        )
+        body_lines += [
+            f"{ind}if not ({conds}):",
+            f"{ind}    overloads += 1",
+            f"{ind}    if reset:",
+            f"{ind}        {xs} = " + ", ".join("0.0" for _ in range(n)),
+            f"{ind}    else:",
+        ]
+        body_lines += [f"{ind}        x{i} = _clamp(x{i}, state_bound)" for i in range(n)]
+        body_lines += [f"{ind}p{i} = max(p{i}, abs(x{i}))" for i in range(n)]
+        return body_lines
+
+    first = True
+    for single_bit in (True, False):
+        for dithered in (False, True):
+            cond = f"{'levels == 2' if single_bit else 'levels != 2'} and "
+            cond += "dither_scale != 0.0" if dithered else "dither_scale == 0.0"
+            add(f"    {'if' if first else 'elif'} {cond}:")
+            first = False
+            add("        for t in range(u.shape[0]):")
+            lines.extend(body(single_bit, dithered))
+    for i in range(n):
+        add(f"    state[{i}] = x{i}")
+    for i in range(n):
+        add(f"    peaks[{i}] = p{i}")
+    add("    rng[0] = counter")
+    add("    counts[0] = overloads")
+    return "\n".join(lines) + "\n"
 
 
-@njit(cache=True, nogil=True)
-def feedback_loop_order4(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 4: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    g1 = coef[2, 1]
-    a1 = coef[3, 1]
-    d2 = coef[0, 2]
-    k2 = coef[1, 2]
-    g2 = coef[2, 2]
-    a2 = coef[3, 2]
-    d3 = coef[0, 3]
-    k3 = coef[1, 3]
-    a3 = coef[3, 3]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    x2 = state[2]
-    p2 = peaks[2]
-    x3 = state[3]
-    p3 = peaks[3]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x3
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
-        else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n3 = (d3 * x3 + k3 * x2) - a3 * v
-        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
-        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1, x2, x3 = n0, n1, n2, n3
-        if not (
-            (abs(y) <= input_bound)
-            & (abs(x0) <= state_bound)
-            & (abs(x1) <= state_bound)
-            & (abs(x2) <= state_bound)
-            & (abs(x3) <= state_bound)
-        ):
-            overloads += 1
-            if reset:
-                x0, x1, x2, x3 = 0.0, 0.0, 0.0, 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-                x2 = _clamp(x2, state_bound)
-                x3 = _clamp(x3, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-        p2 = max(p2, abs(x2))
-        p3 = max(p3, abs(x3))
-    state[0] = x0
-    state[1] = x1
-    state[2] = x2
-    state[3] = x3
-    peaks[0] = p0
-    peaks[1] = p1
-    peaks[2] = p2
-    peaks[3] = p3
-    rng[0] = counter
-    counts[0] = overloads
+_FEEDBACK_KERNELS = {}
 
 
-@njit(cache=True, nogil=True)
-def feedback_loop_order5(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 5: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    g1 = coef[2, 1]
-    a1 = coef[3, 1]
-    d2 = coef[0, 2]
-    k2 = coef[1, 2]
-    g2 = coef[2, 2]
-    a2 = coef[3, 2]
-    d3 = coef[0, 3]
-    k3 = coef[1, 3]
-    g3 = coef[2, 3]
-    a3 = coef[3, 3]
-    d4 = coef[0, 4]
-    k4 = coef[1, 4]
-    a4 = coef[3, 4]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    x2 = state[2]
-    p2 = peaks[2]
-    x3 = state[3]
-    p3 = peaks[3]
-    x4 = state[4]
-    p4 = peaks[4]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x4
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
-        else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n4 = (d4 * x4 + k4 * x3) - a4 * v
-        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
-        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
-        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1, x2, x3, x4 = n0, n1, n2, n3, n4
-        if not (
-            (abs(y) <= input_bound)
-            & (abs(x0) <= state_bound)
-            & (abs(x1) <= state_bound)
-            & (abs(x2) <= state_bound)
-            & (abs(x3) <= state_bound)
-            & (abs(x4) <= state_bound)
-        ):
-            overloads += 1
-            if reset:
-                x0, x1, x2, x3, x4 = 0.0, 0.0, 0.0, 0.0, 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-                x2 = _clamp(x2, state_bound)
-                x3 = _clamp(x3, state_bound)
-                x4 = _clamp(x4, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-        p2 = max(p2, abs(x2))
-        p3 = max(p3, abs(x3))
-        p4 = max(p4, abs(x4))
-    state[0] = x0
-    state[1] = x1
-    state[2] = x2
-    state[3] = x3
-    state[4] = x4
-    peaks[0] = p0
-    peaks[1] = p1
-    peaks[2] = p2
-    peaks[3] = p3
-    peaks[4] = p4
-    rng[0] = counter
-    counts[0] = overloads
+def feedback_kernel(order, lossless, unit_chain, pairs):
+    """Compiled feedback kernel for these properties (built from the template on first use).
 
-
-@njit(cache=True, nogil=True)
-def feedback_loop_order6(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 6: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    g1 = coef[2, 1]
-    a1 = coef[3, 1]
-    d2 = coef[0, 2]
-    k2 = coef[1, 2]
-    g2 = coef[2, 2]
-    a2 = coef[3, 2]
-    d3 = coef[0, 3]
-    k3 = coef[1, 3]
-    g3 = coef[2, 3]
-    a3 = coef[3, 3]
-    d4 = coef[0, 4]
-    k4 = coef[1, 4]
-    g4 = coef[2, 4]
-    a4 = coef[3, 4]
-    d5 = coef[0, 5]
-    k5 = coef[1, 5]
-    a5 = coef[3, 5]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    x2 = state[2]
-    p2 = peaks[2]
-    x3 = state[3]
-    p3 = peaks[3]
-    x4 = state[4]
-    p4 = peaks[4]
-    x5 = state[5]
-    p5 = peaks[5]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x5
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
-        else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n5 = (d5 * x5 + k5 * x4) - a5 * v
-        n4 = ((d4 * x4 + k4 * x3) - a4 * v) - g4 * n5
-        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
-        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
-        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1, x2, x3, x4, x5 = n0, n1, n2, n3, n4, n5
-        if not (
-            (abs(y) <= input_bound)
-            & (abs(x0) <= state_bound)
-            & (abs(x1) <= state_bound)
-            & (abs(x2) <= state_bound)
-            & (abs(x3) <= state_bound)
-            & (abs(x4) <= state_bound)
-            & (abs(x5) <= state_bound)
-        ):
-            overloads += 1
-            if reset:
-                x0, x1, x2, x3, x4, x5 = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-                x2 = _clamp(x2, state_bound)
-                x3 = _clamp(x3, state_bound)
-                x4 = _clamp(x4, state_bound)
-                x5 = _clamp(x5, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-        p2 = max(p2, abs(x2))
-        p3 = max(p3, abs(x3))
-        p4 = max(p4, abs(x4))
-        p5 = max(p5, abs(x5))
-    state[0] = x0
-    state[1] = x1
-    state[2] = x2
-    state[3] = x3
-    state[4] = x4
-    state[5] = x5
-    peaks[0] = p0
-    peaks[1] = p1
-    peaks[2] = p2
-    peaks[3] = p3
-    peaks[4] = p4
-    peaks[5] = p5
-    rng[0] = counter
-    counts[0] = overloads
-
-
-@njit(cache=True, nogil=True)
-def feedback_loop_order7(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 7: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    g1 = coef[2, 1]
-    a1 = coef[3, 1]
-    d2 = coef[0, 2]
-    k2 = coef[1, 2]
-    g2 = coef[2, 2]
-    a2 = coef[3, 2]
-    d3 = coef[0, 3]
-    k3 = coef[1, 3]
-    g3 = coef[2, 3]
-    a3 = coef[3, 3]
-    d4 = coef[0, 4]
-    k4 = coef[1, 4]
-    g4 = coef[2, 4]
-    a4 = coef[3, 4]
-    d5 = coef[0, 5]
-    k5 = coef[1, 5]
-    g5 = coef[2, 5]
-    a5 = coef[3, 5]
-    d6 = coef[0, 6]
-    k6 = coef[1, 6]
-    a6 = coef[3, 6]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    x2 = state[2]
-    p2 = peaks[2]
-    x3 = state[3]
-    p3 = peaks[3]
-    x4 = state[4]
-    p4 = peaks[4]
-    x5 = state[5]
-    p5 = peaks[5]
-    x6 = state[6]
-    p6 = peaks[6]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x6
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
-        else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n6 = (d6 * x6 + k6 * x5) - a6 * v
-        n5 = ((d5 * x5 + k5 * x4) - a5 * v) - g5 * n6
-        n4 = ((d4 * x4 + k4 * x3) - a4 * v) - g4 * n5
-        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
-        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
-        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1, x2, x3, x4, x5, x6 = n0, n1, n2, n3, n4, n5, n6
-        if not (
-            (abs(y) <= input_bound)
-            & (abs(x0) <= state_bound)
-            & (abs(x1) <= state_bound)
-            & (abs(x2) <= state_bound)
-            & (abs(x3) <= state_bound)
-            & (abs(x4) <= state_bound)
-            & (abs(x5) <= state_bound)
-            & (abs(x6) <= state_bound)
-        ):
-            overloads += 1
-            if reset:
-                x0, x1, x2, x3, x4, x5, x6 = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-                x2 = _clamp(x2, state_bound)
-                x3 = _clamp(x3, state_bound)
-                x4 = _clamp(x4, state_bound)
-                x5 = _clamp(x5, state_bound)
-                x6 = _clamp(x6, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-        p2 = max(p2, abs(x2))
-        p3 = max(p3, abs(x3))
-        p4 = max(p4, abs(x4))
-        p5 = max(p5, abs(x5))
-        p6 = max(p6, abs(x6))
-    state[0] = x0
-    state[1] = x1
-    state[2] = x2
-    state[3] = x3
-    state[4] = x4
-    state[5] = x5
-    state[6] = x6
-    peaks[0] = p0
-    peaks[1] = p1
-    peaks[2] = p2
-    peaks[3] = p3
-    peaks[4] = p4
-    peaks[5] = p5
-    peaks[6] = p6
-    rng[0] = counter
-    counts[0] = overloads
-
-
-@njit(cache=True, nogil=True)
-def feedback_loop_order8(
-    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound, state_bound, reset
-):
-    """Feedback loop of order 8: same arguments and result as ``loop_any_structure``."""
-    d0 = coef[0, 0]
-    g0 = coef[2, 0]
-    a0 = coef[3, 0]
-    d1 = coef[0, 1]
-    k1 = coef[1, 1]
-    g1 = coef[2, 1]
-    a1 = coef[3, 1]
-    d2 = coef[0, 2]
-    k2 = coef[1, 2]
-    g2 = coef[2, 2]
-    a2 = coef[3, 2]
-    d3 = coef[0, 3]
-    k3 = coef[1, 3]
-    g3 = coef[2, 3]
-    a3 = coef[3, 3]
-    d4 = coef[0, 4]
-    k4 = coef[1, 4]
-    g4 = coef[2, 4]
-    a4 = coef[3, 4]
-    d5 = coef[0, 5]
-    k5 = coef[1, 5]
-    g5 = coef[2, 5]
-    a5 = coef[3, 5]
-    d6 = coef[0, 6]
-    k6 = coef[1, 6]
-    g6 = coef[2, 6]
-    a6 = coef[3, 6]
-    d7 = coef[0, 7]
-    k7 = coef[1, 7]
-    a7 = coef[3, 7]
-    b0 = coef[4, 0]
-    x0 = state[0]
-    p0 = peaks[0]
-    x1 = state[1]
-    p1 = peaks[1]
-    x2 = state[2]
-    p2 = peaks[2]
-    x3 = state[3]
-    p3 = peaks[3]
-    x4 = state[4]
-    p4 = peaks[4]
-    x5 = state[5]
-    p5 = peaks[5]
-    x6 = state[6]
-    p6 = peaks[6]
-    x7 = state[7]
-    p7 = peaks[7]
-    top = float(levels - 1)
-    half = 0.5 * top
-    offset = half + 0.5
-    step = 2.0 / top
-    dithered = dither_scale != 0.0
-    single_bit = levels == 2
-    counter = rng[0]
-    overloads = counts[0]
-    for t in range(u.shape[0]):
-        y = x7
-        w = y
-        if dithered:
-            counter += _GOLDEN
-            r1 = _unit_from_counter(counter)
-            counter += _GOLDEN
-            r2 = _unit_from_counter(counter)
-            w = y + dither_scale * (r1 - r2)
-        if single_bit:
-            v = math.copysign(1.0, w)
-        else:
-            q = np.floor(w * half + offset)
-            q = min(max(q, 0.0), top)
-            v = q * step - 1.0
-        out[t] = v
-        n7 = (d7 * x7 + k7 * x6) - a7 * v
-        n6 = ((d6 * x6 + k6 * x5) - a6 * v) - g6 * n7
-        n5 = ((d5 * x5 + k5 * x4) - a5 * v) - g5 * n6
-        n4 = ((d4 * x4 + k4 * x3) - a4 * v) - g4 * n5
-        n3 = ((d3 * x3 + k3 * x2) - a3 * v) - g3 * n4
-        n2 = ((d2 * x2 + k2 * x1) - a2 * v) - g2 * n3
-        n1 = ((d1 * x1 + k1 * x0) - a1 * v) - g1 * n2
-        n0 = ((d0 * x0 + b0 * u[t]) - a0 * v) - g0 * n1
-        x0, x1, x2, x3, x4, x5, x6, x7 = n0, n1, n2, n3, n4, n5, n6, n7
-        if not (
-            (abs(y) <= input_bound)
-            & (abs(x0) <= state_bound)
-            & (abs(x1) <= state_bound)
-            & (abs(x2) <= state_bound)
-            & (abs(x3) <= state_bound)
-            & (abs(x4) <= state_bound)
-            & (abs(x5) <= state_bound)
-            & (abs(x6) <= state_bound)
-            & (abs(x7) <= state_bound)
-        ):
-            overloads += 1
-            if reset:
-                x0, x1, x2, x3, x4, x5, x6, x7 = 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0
-            else:
-                x0 = _clamp(x0, state_bound)
-                x1 = _clamp(x1, state_bound)
-                x2 = _clamp(x2, state_bound)
-                x3 = _clamp(x3, state_bound)
-                x4 = _clamp(x4, state_bound)
-                x5 = _clamp(x5, state_bound)
-                x6 = _clamp(x6, state_bound)
-                x7 = _clamp(x7, state_bound)
-        p0 = max(p0, abs(x0))
-        p1 = max(p1, abs(x1))
-        p2 = max(p2, abs(x2))
-        p3 = max(p3, abs(x3))
-        p4 = max(p4, abs(x4))
-        p5 = max(p5, abs(x5))
-        p6 = max(p6, abs(x6))
-        p7 = max(p7, abs(x7))
-    state[0] = x0
-    state[1] = x1
-    state[2] = x2
-    state[3] = x3
-    state[4] = x4
-    state[5] = x5
-    state[6] = x6
-    state[7] = x7
-    peaks[0] = p0
-    peaks[1] = p1
-    peaks[2] = p2
-    peaks[3] = p3
-    peaks[4] = p4
-    peaks[5] = p5
-    peaks[6] = p6
-    peaks[7] = p7
-    rng[0] = counter
-    counts[0] = overloads
-
-
-FEEDBACK_LOOPS = (
-    None,
-    feedback_loop_order1,
-    feedback_loop_order2,
-    feedback_loop_order3,
-    feedback_loop_order4,
-    feedback_loop_order5,
-    feedback_loop_order6,
-    feedback_loop_order7,
-    feedback_loop_order8,
-)
+    Arguments of the returned function: ``(u, out, coef, state, rng, peaks, counts, levels,
+    dither_scale, input_bound, state_bound, reset)``, as for ``loop_any_structure``.
+    """
+    key = (int(order), bool(lossless), bool(unit_chain), int(pairs))
+    kernel = _FEEDBACK_KERNELS.get(key)
+    if kernel is None:
+        source = feedback_kernel_source(*key)
+        name = feedback_kernel_name(*key)
+        namespace = {}
+        # compiled under this file's name so numba's cache can find (and invalidate) it
+        exec(compile(source, __file__, "exec"), globals(), namespace)
+        function = namespace[name]
+        function.__module__ = __name__
+        function.__qualname__ = name
+        kernel = njit(cache=True, nogil=True)(function)
+        _FEEDBACK_KERNELS[key] = kernel
+    return kernel
 
 
 # ---------------------------------------------------------------------------------------------

@@ -50,6 +50,18 @@ def _readonly(a: np.ndarray) -> np.ndarray:
     return a
 
 
+def _feedback_kernel_key(loop: LoopRealization) -> tuple[int, bool, bool, int]:
+    """Which specialised feedback kernel fits ``loop``: (order, lossless, unit chain, pairs)."""
+    n = loop.order
+    lossless = bool(np.all(loop.leak == 1.0))
+    unit_chain = bool(np.all(loop.chain_gain[1:] == 1.0))
+    upstream = np.flatnonzero(loop.resonator[: n - 1] != 0.0)
+    pairs = len(upstream)
+    if not np.array_equal(upstream, np.arange(0, 2 * pairs, 2)):
+        pairs = -1  # not the layout realize_ntf makes: keep every resonator term
+    return n, lossless, unit_chain, pairs
+
+
 @dataclass(frozen=True, eq=False)
 class ModulatorState:
     """Everything a :class:`Modulator` carries from one block to the next (a frozen value).
@@ -164,6 +176,9 @@ class Modulator:
             dtype=np.float64,
         )
 
+        if loop.structure == "feedback":
+            self._fast_kernel = _kernels.feedback_kernel(*_feedback_kernel_key(loop))
+
     @property
     def structure(self) -> str:
         """The loop structure."""
@@ -233,9 +248,7 @@ class Modulator:
         args = (self.levels, self.dither_lsb * self.step, self.input_bound, self.state_bound)
         reset = self.guard == "reset"
         if trace is None and self.structure == "feedback":
-            _kernels.FEEDBACK_LOOPS[self.order](
-                u, out, self._coef, st, rng, peaks, counts, *args, reset
-            )
+            self._fast_kernel(u, out, self._coef, st, rng, peaks, counts, *args, reset)
         else:
             tr = np.empty((0, self.order)) if trace is None else trace
             _kernels.loop_any_structure(
