@@ -257,7 +257,7 @@ def test_interrupt_mid_file_leaves_nothing(setup, monkeypatch):
         return original(self, x, state, keep=keep)
 
     monkeypatch.setattr(chain_mod.Chain, "process", interrupted)
-    monkeypatch.setattr(chain_mod, "MAX_BLOCK_MODULATOR_SAMPLES", 1 << 14)
+    monkeypatch.setattr(chain_mod, "MAX_BLOCK_MODULATOR_SAMPLES", 1 << 16)
     out = tmp / "out"
     res = invoke([str(prof), str(wav), "--out-dir", str(out), "--error-file", "--save-stream"])
     assert res.exit_code != 0
