@@ -228,6 +228,7 @@ td.num { text-align: right; font-variant-numeric: tabular-nums; }
 .plots { display: grid; grid-template-columns: repeat(auto-fill, minmax(520px, 1fr)); gap: 1em; }
 figure { margin: 0; background: #fff; border: 1px solid #e2dfd8; padding: 0.4em; }
 figure img { width: 100%; height: auto; }
+figure.wide { max-width: 820px; }
 figcaption { font-size: 0.85em; color: #444; }
 nav a { margin-right: 1em; }
 ul.notes { font-size: 0.85em; color: #444; }
@@ -325,7 +326,7 @@ def render_html(batch, *, title=None) -> str:
     parts.append("</table>")
     if batch.grades:
         fig = plotting.plot_margins(batch)
-        parts.append(f"<figure>{_img(fig, 'margins')}<figcaption>margin per target, "
+        parts.append(f"<figure class=\"wide\">{_img(fig, 'margins')}<figcaption>margin per target, "
                      "per profile (crosses: no reading)</figcaption></figure>")  # fmt: skip
 
     # one section per profile

@@ -1,0 +1,190 @@
+"""The shipped demo: grade, render and report the candidates of two invented products.
+
+It grades the candidate profiles, renders the demo material through each candidate, writes
+the reports and prints where everything went.
+
+Run it as ``python -m audiodsm.demo`` (``make demo``) from a checkout. It reads
+
+* ``profiles/dac_chip/*.toml`` and ``profiles/pocket_amp/*.toml``: the candidates of a demo
+  DAC chip and a demo portable class-D speaker amplifier (both invented);
+* ``profiles/specs/dac_chip.toml`` and ``profiles/specs/pocket_amp.toml``: their spec sheets
+  (targets invented for the demo);
+* ``audio_demo/*.wav``: short synthesized program material (made by
+  ``audio_demo/make_demo_audio.py``; remade here when missing);
+
+and writes into ``demo_out/`` (git-ignored): ``report/<product>/grades.{html,json,csv}``,
+``listening/<product>/*.listen.wav`` (plus each render's summary JSON) and the battery cache
+``cache/``, so a second run reuses the graded batteries.
+
+To keep the whole demo within about three minutes on two cores, it runs the battery's short
+plan (fewer levels and DC offsets, shorter captures) and says so in its output; ``audiodsm
+grade`` runs the full battery.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import os
+import sys
+import time
+from pathlib import Path
+
+__all__ = ["PRODUCTS", "run_demo", "main"]
+
+#: product folder name -> (plain title, spec sheet file name)
+PRODUCTS = {
+    "dac_chip": ("demo DAC chip (invented)", "dac_chip.toml"),
+    "pocket_amp": ("demo pocket speaker amplifier (invented)", "pocket_amp.toml"),
+}
+
+
+def _checkout() -> Path:
+    """The checkout holding ``profiles/`` and ``audio_demo/`` (the package's parent folder)."""
+    return Path(__file__).resolve().parent.parent
+
+
+def _demo_clips(root: Path, say) -> list:
+    folder = root / "audio_demo"
+    clips = sorted(folder.glob("*.wav"))
+    if clips:
+        return clips
+    say("demo audio missing; synthesizing it with audio_demo/make_demo_audio.py")
+    spec = importlib.util.spec_from_file_location("_demo_audio", folder / "make_demo_audio.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return sorted(module.write_clips(folder))
+
+
+def _quick_plan():
+    from audiodsm.evaluate.battery import BatteryPlan
+
+    return BatteryPlan.quick()
+
+
+def run_demo(
+    root=None, out_dir=None, *, jobs=None, full_battery=False, battery=None, say=print
+) -> dict:
+    """Run the demo end to end.
+
+    Parameters
+    ----------
+    root : path-like, optional
+        The checkout (default: the one this module lives in).
+    out_dir : path-like, optional
+        Output folder (default: ``<root>/demo_out``).
+    jobs : int, optional, keyword-only
+        Cores to use (default: all).
+    full_battery : bool, keyword-only
+        Run the full battery instead of its short plan (slower than three minutes).
+    battery : callable, optional, keyword-only
+        The test battery (default: :func:`audiodsm.evaluate.battery.run_battery`); see
+        :func:`audiodsm.evaluate.grade.grade_batch`.
+    say : callable, keyword-only
+        Where progress lines go.
+
+    Returns
+    -------
+    dict
+        ``{"reports": {product: {kind: path}}, "listening": [paths], "batches": {product:
+        GradeBatch}, "seconds": float}``.
+    """
+    from audiodsm.cli.render import HEARING_CAUTION, render_file
+    from audiodsm.evaluate.grade import collect_profiles, grade_batch
+    from audiodsm.evaluate.report import write_report
+    from audiodsm.spec import load_spec
+
+    start = time.perf_counter()
+    root = Path(root) if root is not None else _checkout()
+    out = Path(out_dir) if out_dir is not None else root / "demo_out"
+    out.mkdir(parents=True, exist_ok=True)
+    options = {} if full_battery else {"plan": _quick_plan()}
+    if not full_battery:
+        say(
+            "note: the demo runs the battery's short plan (fewer levels and DC offsets, "
+            "shorter captures) to finish in about three minutes; `audiodsm grade` runs the "
+            "full battery"
+        )
+    clips = _demo_clips(root, say)
+    inputs = [*clips]
+    reports, listening, batches = {}, [], {}
+    for product, (title, spec_name) in PRODUCTS.items():
+        spec_path = root / "profiles" / "specs" / spec_name
+        spec = load_spec(spec_path)
+        profiles = collect_profiles([root / "profiles" / product])
+        inputs += [spec_path, *(p for p, _ in profiles)]
+        say(f"\n== {title}: {len(profiles)} candidate profiles against {spec_path.name} ==")
+        t0 = time.perf_counter()
+        batch = grade_batch(
+            profiles,
+            spec,
+            battery=battery,
+            jobs=jobs,
+            cache_dir=out / "cache",
+            battery_options=options,
+            progress=None,
+        )
+        batches[product] = batch
+        say(f"graded in {time.perf_counter() - t0:.1f} s")
+        from audiodsm.cli.grade import detail_table, summary_table
+
+        for line in summary_table(batch):
+            say("  " + line)
+        say("")
+        for line in detail_table(batch):
+            say("  " + line)
+        for g in batch.grades:
+            if g.failure:
+                say(f"  {g.name}: {g.failure}")
+        reports[product] = write_report(
+            batch, out / "report" / product, protect=inputs, title=f"{title}: grades"
+        )
+
+        listen_dir = out / "listening" / product
+        listen_dir.mkdir(parents=True, exist_ok=True)
+        t0 = time.perf_counter()
+        for _path, prof in profiles:
+            for clip in clips:
+                summary = render_file(clip, prof, listen_dir, overwrite=True, protect=inputs)
+                listening.append(Path(summary["outputs"]["listening"]))
+        say(f"rendered {len(clips)} clips x {len(profiles)} profiles in "
+            f"{time.perf_counter() - t0:.1f} s")  # fmt: skip
+
+    seconds = time.perf_counter() - start
+    say("\n== where everything went ==")
+    for product, files in reports.items():
+        say(f"report, {PRODUCTS[product][0]}: {files['html']}")
+        say(f"   same grades as JSON and CSV: {files['json'].name}, {files['csv'].name}")
+    say(f"listening files ({len(listening)}): {out / 'listening'}/<product>/")
+    say(f"battery cache (a second run reuses it): {out / 'cache'}")
+    say(f"demo material: {root / 'audio_demo'}")
+    say("")
+    say(HEARING_CAUTION)
+    say(f"demo finished in {seconds:.0f} s")
+    return {"reports": reports, "listening": listening, "batches": batches, "seconds": seconds}
+
+
+def main(argv=None) -> int:
+    """Command-line entry: ``python -m audiodsm.demo [--out DIR] [--jobs N] [--full]``."""
+    parser = argparse.ArgumentParser(
+        prog="python -m audiodsm.demo", description="Run the shipped audiodsm demo."
+    )
+    parser.add_argument("--out", default=None, help="output folder (default: demo_out/)")
+    parser.add_argument("--jobs", type=int, default=None, help="cores to use (default: all)")
+    parser.add_argument("--full", action="store_true", help="run the full battery (slower)")
+    args = parser.parse_args(argv)
+    from audiodsm.errors import AudiodsmError
+
+    try:
+        run_demo(out_dir=args.out, jobs=args.jobs or os.cpu_count(), full_battery=args.full)
+    except AudiodsmError as exc:
+        print(f"audiodsm demo: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("audiodsm demo: interrupted; finished batteries are cached", file=sys.stderr)
+        return 130
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
