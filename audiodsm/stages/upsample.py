@@ -802,19 +802,20 @@ class Upsampler:
         else:
             _check_state_channels(state, channels, ndim)
         new_hist = []
-        cur = None  # (channels, n) between stages
         last = len(self._stages) - 1
-        for s, ((kind, data, hist_len), hist) in enumerate(
-            zip(self._stages, state.histories, strict=True)
-        ):
-            buf = _with_history(hist, frames) if cur is None else np.concatenate([hist, cur], 1)
+        # each stage writes straight into the next stage's buffer, behind its history
+        buf = _with_history(state.histories[0], frames)
+        for s, (kind, data, hist_len) in enumerate(self._stages):
             n = buf.shape[1] - hist_len
             ratio = 2 if kind == "halfband" else (data if kind == "hold" else data[0].shape[0])
             if s == last:  # write the caller's (n, channels) layout directly
                 result = np.empty((ratio * n, channels))
-                out = result.T
+                out, next_buf = result.T, None
             else:
-                out = np.empty((channels, ratio * n))
+                next_hist = self._stages[s + 1][2]
+                next_buf = np.empty((channels, next_hist + ratio * n))
+                next_buf[:, :next_hist] = state.histories[s + 1]
+                out = next_buf[:, next_hist:]
             if kind == "halfband":
                 if n:
                     _kernels.interpolate_halfband(buf, data, out)
@@ -824,7 +825,7 @@ class Upsampler:
             else:  # hold: a copy of each sample, no arithmetic
                 out[...] = np.repeat(buf, data, axis=1)
             new_hist.append(_frozen(buf[:, buf.shape[1] - hist_len :]))
-            cur = out
+            buf = next_buf
         new_state = UpsamplerState(histories=tuple(new_hist), channels=channels, ndim=ndim)
         return _to_frames(result, ndim), new_state
 
