@@ -338,3 +338,15 @@ def test_output_beyond_full_scale_is_clipped_and_counted(setup):
     assert [c["output_clipped_samples"] for c in summary["channels"]] == over.tolist()
     y, _ = sf.read(tmp / "out" / "square.test-dac.listen.wav")
     assert np.abs(y).max() <= 1.0
+
+
+def test_inputs_whose_outputs_would_collide_are_refused(setup):
+    tmp, prof, wav, x = setup
+    other = tmp / "elsewhere"
+    other.mkdir()
+    twin = other / "take one.flac"
+    sf.write(twin, x[:4800], RATE)
+    res = invoke([str(prof), str(wav), str(twin), "--out-dir", str(tmp / "out")])
+    assert res.exit_code == 2
+    assert "would collide" in res.stderr
+    assert final_files(tmp / "out") == []

@@ -544,6 +544,15 @@ def render(
         raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
     if not os.access(out, os.W_OK | os.X_OK):
         raise OutputError(f"{out}: the output folder is not writable")
+    seen = {}
+    for name in inputs:
+        stem = Path(name).stem
+        if stem in seen and Path(seen[stem]).resolve() != Path(name).resolve():
+            raise OutputError(
+                f"{name}: has the same name as {seen[stem]}; their outputs would collide "
+                "(render them into different folders)"
+            )
+        seen.setdefault(stem, name)
     out_real = out.resolve()
     for name in inputs:
         if Path(name).resolve().parent == out_real:
