@@ -44,6 +44,11 @@ Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.meas
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
     ChannelContent, analyze_blocks, ChannelAnalysis
+Test battery (``audiodsm.evaluate.battery``)
+    run_battery, BatteryPlan, BatteryResult, battery_rate_hz
+Design search (``audiodsm.evaluate.search``)
+    search_designs, confirm_candidates, predicted_dynamic_range_db, loop_cost, Candidate,
+    Confirmation
 Audio files (``audiodsm.io``)
     read_audio, read_audio_span, audio_info, AudioInfo, iter_audio_blocks,
     write_audio_atomic, open_audio_writer
@@ -132,6 +137,16 @@ _PUBLIC = {
     "Chain": "audiodsm.stages.chain",
     "ChainResult": "audiodsm.stages.chain",
     "run_chain": "audiodsm.stages.chain",
+    "run_battery": "audiodsm.evaluate.battery",
+    "BatteryPlan": "audiodsm.evaluate.battery",
+    "BatteryResult": "audiodsm.evaluate.battery",
+    "battery_rate_hz": "audiodsm.evaluate.battery",
+    "search_designs": "audiodsm.evaluate.search",
+    "confirm_candidates": "audiodsm.evaluate.search",
+    "predicted_dynamic_range_db": "audiodsm.evaluate.search",
+    "loop_cost": "audiodsm.evaluate.search",
+    "Candidate": "audiodsm.evaluate.search",
+    "Confirmation": "audiodsm.evaluate.search",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
     "profile_to_toml": "audiodsm.profile",

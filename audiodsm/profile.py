@@ -204,8 +204,8 @@ class ModulatorSettings:
     levels: int = _key(
         2,
         "int",
-        "an integer from 2 to 1024",
-        _int_range(2, 1024),
+        "an integer from 2 to 16777216",
+        _int_range(2, 1 << 24),
         doc="Quantizer levels, evenly spaced in [-1, 1]; 2 is a single-bit loop.",
     )
     dither_lsb: float = _key(
@@ -657,6 +657,13 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
             path,
             "modulator.levels",
             f"got {mod.levels} with output.kind = 'pdm'; expected 2 (PDM is a single-bit stream)",
+        )
+    if out.kind == "pwm" and out.counter_steps == 0 and mod.levels - 1 > 65536:
+        raise ProfileError(
+            path,
+            "modulator.levels",
+            f"got {mod.levels} with output.kind = 'pwm' and counter_steps = 0; expected at most "
+            "65537 (one PWM counter step per level step), or set output.counter_steps",
         )
     if out.kind == "pwm" and out.pwm_mode == "three-level" and out.pwm_bridge != "full":
         raise ProfileError(

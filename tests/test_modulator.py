@@ -287,7 +287,7 @@ def test_bad_input():
     ntf = design_ntf(3, 64)
     with pytest.raises(ParameterError, match="structure"):
         Modulator(ntf, "round-robin")
-    for levels in (1, 1025, 2.5):
+    for levels in (1, 2**24 + 1, 2.5):
         with pytest.raises(ParameterError, match="levels"):
             Modulator(ntf, levels=levels)
     with pytest.raises(ParameterError, match="dither_lsb"):

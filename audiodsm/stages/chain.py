@@ -73,6 +73,8 @@ CACHE_PIECE_MODULATOR_SAMPLES = 1 << 16
 
 #: The AES17 test frequency, used for calibration.
 _CAL_FREQ_HZ = 997.0
+#: Most quantizer levels the calibration probes one by one (more: an even spread of them).
+_CAL_MAX_LEVELS = 4097
 #: Most channels a chain runs.
 _MAX_CHANNELS = 8
 
@@ -450,7 +452,11 @@ class Chain:
     def _calibrate(self) -> None:
         """Compute the static offset, the 997 Hz gain and the latency of the chain."""
         levels = self.profile.modulator.levels
-        probe = np.linspace(-1.0, 1.0, levels)
+        if levels <= _CAL_MAX_LEVELS:
+            probe = np.linspace(-1.0, 1.0, levels)
+        else:  # a fine quantizer (up to 24 bits): a spread of its exact levels is enough
+            codes = np.unique(np.round(np.linspace(0.0, levels - 1.0, _CAL_MAX_LEVELS)))
+            probe = codes * (2.0 / (levels - 1)) - 1.0
         wf, _, _ = self._waveform(probe, None)
         means = _mean_level(wf)
         # least-squares line through (level, mean output): slope = volts per full-scale unit

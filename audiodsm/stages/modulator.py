@@ -102,7 +102,7 @@ class Modulator:
     structure : str
         One of ``STRUCTURES`` (ignored when ``ntf`` is a ``LoopRealization``).
     levels : int
-        Quantizer output levels, 2 (single bit) to 1024, evenly spaced in [-1, 1].
+        Quantizer output levels, 2 (single bit) to 2**24, evenly spaced in [-1, 1].
     dither_lsb : float
         TPDF dither added before the quantizer, peak amplitude in quantizer steps (LSB);
         1.0 is the classic 2-LSB peak-to-peak TPDF. 0 disables it.
@@ -143,9 +143,9 @@ class Modulator:
         else:
             raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer or LoopRealization")
         if isinstance(levels, bool) or not isinstance(levels, int | np.integer):
-            raise ParameterError("levels", levels, "an integer from 2 to 1024")
-        if not 2 <= levels <= 1024:
-            raise ParameterError("levels", levels, "an integer from 2 to 1024")
+            raise ParameterError("levels", levels, "an integer from 2 to 16777216")
+        if not 2 <= levels <= 1 << 24:
+            raise ParameterError("levels", levels, "an integer from 2 to 16777216")
         if not (np.isfinite(dither_lsb) and dither_lsb >= 0):
             raise ParameterError("dither_lsb", dither_lsb, "a finite number >= 0")
         if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:

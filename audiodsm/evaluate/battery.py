@@ -1,0 +1,1078 @@
+"""The test battery: AES17-practice measurements of one profile's whole chain.
+
+:func:`run_battery` synthesizes the stimuli of an AES17-style converter test at the profile's
+audio rate, runs each through the profile's complete chain (upsampler, modulator, output stage,
+reconstruction filter, listening decimator; :func:`audiodsm.stages.chain.run_chain`) and
+measures the reconstructed output with :mod:`audiodsm.measure`. The result is a frozen
+:class:`BatteryResult` holding a flat dict of metrics (stable snake_case names, the unit in the
+name) and the curves behind them (arrays for plots).
+
+The tests
+---------
+``dynamic_range``
+    A -60 dBFS 997 Hz tone; the fundamental is removed by a least-squares sine fit and the
+    band-limited (20 Hz .. 20 kHz) residual is read unweighted, A-weighted and CCIR-RMS
+    (AES17 -60 dBFS method). The same run's output at the modulator rate gives the
+    out-of-band noise after the reconstruction filter and the output spectrum.
+``level_sweep``
+    997 Hz tones from 0 to -100 dBFS: THD+N against level (unweighted and A-weighted), THD+N
+    at -1 and -20 dBFS, the A-weighted noise floor against level (noise modulation, read over
+    the levels at or below the maximum stable amplitude, 0 .. -90 dBFS), idle tones under the
+    low-level tones (-60 dBFS and below) and the overload onset.
+``idle``
+    Digital silence: idle-channel noise (unweighted, A, CCIR-RMS), idle tones, and for PWM
+    stages the switching rate at idle.
+``dc_sweep``
+    Small DC offsets, log-spaced, both signs: the strongest in-band line at each offset (the
+    idle-tone map).
+``stability``
+    The maximum stable amplitude of the profile's modulator (bisection on a sine, no guard
+    action and no collapse of the SQNR), the integrator state histograms at that amplitude,
+    and a few tones above it through the whole chain (the overload behaviour).
+``frequency_response``
+    A Schroeder-phase multitone on the 1/3-octave centres from 20 Hz to 20 kHz plus 997 Hz:
+    the response of the whole chain relative to 997 Hz and its peak-to-peak ripple.
+``images``
+    An in-band tone at ``image_tone_hz``; its image at ``rate - image_tone_hz`` is read on the
+    reconstructed output at the modulator rate (AES17 practice for DAC images).
+``intermodulation``
+    SMPTE (60 Hz + 7 kHz, 4:1) and difference-frequency (19 + 20 kHz, 1:1) twin tones.
+
+Every test's durations are set by a :class:`BatteryPlan`. The default plan keeps the battery of
+a 5th-order single-bit 64x profile within about 20 s on two cores; its resolution is stated in
+``BatteryResult.notes`` and in docs/battery.md.
+
+Determinism: each run's dither stream is derived from the profile's ``modulator.seed``, the
+``seed`` argument and the run's index, so results do not depend on how the runs are scheduled.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as _cf
+import math
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from audiodsm.errors import ParameterError
+from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile, profile_digest
+
+__all__ = [
+    "DEFAULT_RATE_HZ",
+    "TEST_NAMES",
+    "METRIC_UNITS",
+    "BatteryPlan",
+    "BatteryResult",
+    "battery_rate_hz",
+    "run_battery",
+]
+
+#: Audio rate of the battery when the profile does not set ``listening.rate_hz``.
+DEFAULT_RATE_HZ = 48000
+
+#: The tests of a battery, in the order they are listed.
+TEST_NAMES = (
+    "dynamic_range",
+    "level_sweep",
+    "idle",
+    "dc_sweep",
+    "stability",
+    "frequency_response",
+    "images",
+    "intermodulation",
+)
+
+#: Every metric name, the test that produces it, and a short plain description with unit.
+METRIC_UNITS = {
+    "dynamic_range_db": ("dynamic_range", "dB", "dynamic range, unweighted (-60 dBFS method)"),
+    "dynamic_range_db_a": ("dynamic_range", "dB", "dynamic range, A-weighted"),
+    "dynamic_range_db_ccir": ("dynamic_range", "dB", "dynamic range, CCIR-RMS weighted"),
+    "out_of_band_noise_dbfs": (
+        "dynamic_range",
+        "dBFS",
+        "noise after the reconstruction filter, 20 kHz to the set upper frequency",
+    ),
+    "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
+    "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
+    "thd_n_db_at_minus20_dbfs": ("level_sweep", "dB", "THD+N at -20 dBFS"),
+    "thd_n_db_a_at_minus20_dbfs": ("level_sweep", "dB", "THD+N at -20 dBFS, A-weighted"),
+    "noise_modulation_db": (
+        "level_sweep",
+        "dB",
+        "spread of the A-weighted noise floor over tone levels",
+    ),
+    "overload_onset_dbfs": (
+        "level_sweep",
+        "dBFS",
+        "lowest 997 Hz tone level at which the loop guard acted (none: null)",
+    ),
+    "idle_noise_dbfs": ("idle", "dBFS", "idle-channel noise, unweighted"),
+    "idle_noise_dbfs_a": ("idle", "dBFS", "idle-channel noise, A-weighted"),
+    "idle_noise_dbfs_ccir": ("idle", "dBFS", "idle-channel noise, CCIR-RMS weighted"),
+    "switching_rate_hz": ("idle", "Hz", "output level changes per second at idle"),
+    "idle_tone_max_dbfs": (
+        "idle",
+        "dBFS",
+        "strongest in-band line over silence, DC offsets and low-level tones "
+        "(detection limit when none is found)",
+    ),
+    "idle_tone_count": ("idle", "", "captures in which an in-band line was found"),
+    "max_stable_amplitude_dbfs": ("stability", "dBFS", "largest stable sine amplitude"),
+    "state_peak_max": (
+        "stability",
+        "",
+        "largest integrator state magnitude at or below the maximum stable amplitude",
+    ),
+    "passband_ripple_db": (
+        "frequency_response",
+        "dB",
+        "peak-to-peak response of the whole chain, 20 Hz .. 20 kHz",
+    ),
+    "image_rejection_db": ("images", "dB", "in-band tone over its image at rate - f"),
+    "image_rejection_noise_limited": (
+        "images",
+        "",
+        "true when the image is below the noise and the rejection is a lower bound",
+    ),
+    "imd_smpte_db": ("intermodulation", "dB", "SMPTE IMD (60 Hz + 7 kHz, 4:1)"),
+    "imd_difference_db": ("intermodulation", "dB", "difference-frequency IMD (19 + 20 kHz)"),
+    "overload_count": (
+        "",
+        "",
+        "loop guard actions in runs at or below the maximum stable amplitude",
+    ),
+    "pwm_dropped_pulses": ("", "", "PWM pulses dropped for the minimum width (PWM only)"),
+    "pwm_stretched_pulses": ("", "", "PWM pulses stretched to the minimum width (PWM only)"),
+}
+
+_TEST_HZ = 997.0
+_BAND = (20.0, 20000.0)
+_WEIGHTINGS = ("unweighted", "a", "ccir")
+#: Shortest capture the idle-tone detector accepts (12 Hz bins, 8 averages; idle_tones.py).
+_MIN_SEARCH_S = 0.4
+#: Extra stimulus after each measured stretch, cut off again (see _chain_run).
+_TAIL_S = 0.05
+#: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
+_SPECTRUM_RESOLUTION_HZ = 100.0
+
+
+@dataclass(frozen=True)
+class BatteryPlan:
+    """Durations, levels and resolutions of the battery's tests.
+
+    Every duration is the measured stretch; ``settle_s`` of settling is added in front of
+    each stimulus and excluded from the readings.
+
+    Attributes
+    ----------
+    settle_s : float
+        Settling time before every measured stretch.
+    tone_s : float
+        The -60 dBFS dynamic-range tone.
+    sweep_levels_dbfs : tuple of float
+        Levels of the THD+N-versus-level sweep (997 Hz).
+    sweep_s : float
+        Each sweep point.
+    silence_s : float
+        Digital silence.
+    dc_offsets : int
+        DC offsets per sign, log-spaced over ``dc_range``.
+    dc_range : (float, float)
+        Smallest and largest DC offset magnitude, in full-scale units.
+    dc_s : float
+        Each DC offset.
+    response_s : float
+        The frequency-response multitone.
+    response_level_dbfs : float
+        Peak level of the multitone.
+    image_tone_hz : float
+        In-band tone of the image test.
+    image_s : float
+        The image test.
+    composite_level_dbfs : float
+        Peak level of the image tone and of both twin tones (combined peak).
+    imd_s : float
+        Each twin tone.
+    out_of_band_upper_hz : float
+        Upper edge of the out-of-band noise band (capped at half the modulator rate).
+    stability_samples : int
+        Modulator samples per probe of the stability search.
+    overload_steps_db : tuple of float
+        Levels above the maximum stable amplitude (dB) probed through the whole chain.
+    histogram_samples : int
+        Modulator samples traced for the state histograms.
+    histogram_bins : int
+        Bins per integrator histogram.
+    false_alarm : float
+        Probability that noise alone triggers a line anywhere in the battery (shared out over
+        all the captures searched for idle tones).
+    """
+
+    settle_s: float = 0.1
+    tone_s: float = 1.0
+    sweep_levels_dbfs: tuple = (0.0, -1.0, -10.0, -20.0, -30.0, -40.0, -50.0, -60.0, -70.0,
+                                -80.0, -90.0, -100.0)  # fmt: skip
+    sweep_s: float = 0.5
+    silence_s: float = 2.0
+    dc_offsets: int = 40
+    dc_range: tuple = (1e-6, 1e-2)
+    dc_s: float = 0.4
+    response_s: float = 0.5
+    response_level_dbfs: float = -6.0
+    image_tone_hz: float = 17000.0
+    image_s: float = 0.5
+    composite_level_dbfs: float = -6.0
+    imd_s: float = 1.0
+    out_of_band_upper_hz: float = 500000.0
+    stability_samples: int = 32768
+    overload_steps_db: tuple = (0.5, 1.0, 2.0, 3.0, 6.0)
+    histogram_samples: int = 1 << 17
+    histogram_bins: int = 64
+    false_alarm: float = 0.01
+
+    @classmethod
+    def quick(cls) -> BatteryPlan:
+        """A short plan for tests and previews: fewer points, shorter captures."""
+        return cls(
+            tone_s=0.5,
+            sweep_levels_dbfs=(0.0, -1.0, -20.0, -40.0, -60.0, -80.0, -100.0),
+            sweep_s=0.4,
+            silence_s=0.4,
+            dc_offsets=4,
+            dc_s=0.4,
+            response_s=0.4,
+            image_s=0.3,
+            imd_s=0.4,
+            stability_samples=16384,
+            overload_steps_db=(1.0, 3.0),
+            histogram_samples=1 << 15,
+        )
+
+    def check(self) -> BatteryPlan:
+        """Validate the plan; return it unchanged or raise :class:`ParameterError`."""
+        for name in ("settle_s", "tone_s", "sweep_s", "silence_s", "dc_s", "response_s"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float)) and math.isfinite(v) and 0.0 < v <= 60.0):
+                raise ParameterError(f"plan.{name}", v, "a duration in seconds, above 0, <= 60")
+        for name in ("sweep_s", "silence_s", "dc_s"):
+            if getattr(self, name) < _MIN_SEARCH_S:
+                raise ParameterError(
+                    f"plan.{name}",
+                    getattr(self, name),
+                    f"at least {_MIN_SEARCH_S} s (the idle-tone search needs 12 Hz bins "
+                    "averaged 8 times)",
+                )
+        for name in ("image_s", "imd_s"):
+            v = getattr(self, name)
+            if not (math.isfinite(v) and 0.05 <= v <= 60.0):
+                raise ParameterError(f"plan.{name}", v, "a duration from 0.05 to 60 s")
+        if not self.sweep_levels_dbfs or any(
+            not (-160.0 <= float(v) <= 0.0) for v in self.sweep_levels_dbfs
+        ):
+            raise ParameterError(
+                "plan.sweep_levels_dbfs", self.sweep_levels_dbfs, "levels from -160 to 0 dBFS"
+            )
+        lo, hi = self.dc_range
+        if not (0.0 < lo <= hi < 1.0) or not (0 <= self.dc_offsets <= 400):
+            raise ParameterError(
+                "plan.dc_range", self.dc_range, "0 < low <= high < 1 and 0..400 offsets per sign"
+            )
+        if not (0.0 < self.false_alarm < 0.5):
+            raise ParameterError("plan.false_alarm", self.false_alarm, "a probability in (0, 0.5)")
+        for name in ("response_level_dbfs", "composite_level_dbfs"):
+            v = getattr(self, name)
+            if not (-60.0 <= v <= 0.0):
+                raise ParameterError(f"plan.{name}", v, "a level from -60 to 0 dBFS")
+        if not (float(self.image_tone_hz).is_integer() and 20.0 <= self.image_tone_hz <= 20000.0):
+            raise ParameterError(
+                "plan.image_tone_hz", self.image_tone_hz, "a whole number of Hz, 20 to 20000"
+            )
+        if not (self.histogram_bins >= 4 and self.histogram_samples >= 1024):
+            raise ParameterError(
+                "plan.histogram_bins", self.histogram_bins, ">= 4 bins over >= 1024 samples"
+            )
+        return self
+
+
+@dataclass(frozen=True)
+class BatteryResult:
+    """What :func:`run_battery` measured for one profile.
+
+    Attributes
+    ----------
+    profile_name : str
+    digest : str
+        :func:`~audiodsm.profile.profile_digest` of the profile measured.
+    rate_hz : int
+        Audio rate of the stimuli.
+    metrics : dict
+        Metric name -> float, int, bool or None (None when a reading does not exist, e.g. the
+        dynamic range of a loop too unstable to pass a -60 dBFS tone); names in
+        :data:`METRIC_UNITS`.
+    curves : dict
+        Curve name -> dict of numpy arrays (see docs/battery.md).
+    notes : tuple of str
+        Resolution of each test, and anything that made a reading doubtful.
+    seconds : float
+        Wall-clock time of the battery.
+    plan : BatteryPlan
+    run_seconds : dict
+        Test label -> seconds its runs took (summed over runs; they overlap in parallel).
+    """
+
+    profile_name: str
+    digest: str
+    rate_hz: int
+    metrics: dict
+    curves: dict = field(repr=False)
+    notes: tuple
+    seconds: float
+    plan: BatteryPlan = field(repr=False)
+    run_seconds: dict = field(default_factory=dict, repr=False)
+
+    def json_metrics(self) -> dict:
+        """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
+        return {k: _plain_number(v) for k, v in self.metrics.items()}
+
+
+def _plain_number(v):
+    if isinstance(v, (bool, np.bool_)):
+        return bool(v)
+    if isinstance(v, (int, np.integer)):
+        return int(v)
+    if isinstance(v, (float, np.floating)):
+        v = float(v)
+        return v if math.isfinite(v) else None
+    return v
+
+
+def battery_rate_hz(profile: ChainProfile) -> int:
+    """The audio rate the battery uses for a profile: its listening rate, else 48 kHz."""
+    return int(profile.listening.rate_hz or DEFAULT_RATE_HZ)
+
+
+# ---------------------------------------------------------------------------------------------
+# Small helpers
+# ---------------------------------------------------------------------------------------------
+
+
+def _db(x: float) -> float:
+    return 20.0 * math.log10(x) if x > 0 else -math.inf
+
+
+def _run_seed(profile_seed: int, seed: int, index: int) -> int:
+    """An independent dither seed for run ``index`` (numpy SeedSequence mixing)."""
+    ss = np.random.SeedSequence([int(profile_seed), int(seed), int(index)])
+    return int(ss.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1))
+
+
+def _chain_run(profile, x, *, rate, keep=("listening",)):
+    """Run ``x`` ((n,) or (n, channels)) through the chain with one thread per call.
+
+    The caller's stimulus already runs ``_TAIL_S`` longer than the stretch to measure: the
+    chain's linear-phase filters see past the end of the input, so its last milliseconds
+    would carry the transient of the stimulus stopping. The listening output is returned
+    without that tail.
+    """
+    from audiodsm.stages.chain import run_chain
+
+    res = run_chain(profile, x, rate_hz=rate, keep=keep, listening_rate_hz=rate, threads=1)
+    if res.listening is not None:
+        tail = int(round(_TAIL_S * rate))
+        res = replace(res, listening=res.listening[: len(res.listening) - tail])
+    return res
+
+
+def _meter(x, rate, frequency_hz, weightings, settle_s):
+    """Band-limited residual readings (fundamental removed when ``frequency_hz`` is set).
+
+    The first half of the settling time is cut off before the meter sees the signal, and the
+    meter's own settling skips the second half. The cut keeps the stimulus's start transient
+    out of the sine fits: a fit over a stretch that holds it is biased, and the bias would
+    stay in the residual as a tone about 110 dB below the fundamental.
+    """
+    from audiodsm.measure.aes17 import (
+        read_residual_meter,
+        start_residual_meter,
+        update_residual_meter,
+    )
+
+    cut = int(round(0.5 * settle_s * rate))
+    x = x[cut:]
+    settle_s = settle_s - cut / rate
+    st = start_residual_meter(
+        rate_hz=rate,
+        frequency_hz=frequency_hz,
+        weightings=weightings,
+        upper_hz=_BAND[1],
+        lower_hz=_BAND[0],
+        segment_s=0.5,
+        settle_s=settle_s,
+    )
+    return read_residual_meter(update_residual_meter(np.ascontiguousarray(x), st))
+
+
+def _tone(level_dbfs, rate, seconds):
+    from audiodsm.signals import sine
+
+    return sine(_TEST_HZ, level_dbfs, rate_hz=rate, duration_s=seconds)
+
+
+def _lines(x, rate, *, false_alarm, exclude_hz=()):
+    """Idle-tone search on one capture: (strongest line level or None, its Hz, limit dBFS).
+
+    Lines within three main lobes of a frequency in ``exclude_hz`` (the test tone's harmonics)
+    are not idle tones and are left out. The detection limit is the weakest line the detector
+    would report anywhere in the band: (threshold - 1) x local floor x ENBW in bins.
+    """
+    from audiodsm.measure.idle_tones import find_idle_tones, line_spectrum
+
+    spec = line_spectrum(x, rate_hz=rate)
+    res = find_idle_tones(spec, false_alarm=false_alarm, band_hz=_BAND)
+    bin_hz = float(spec.freq_hz[1] - spec.freq_hz[0])
+    enbw_bins = float(spec.enbw_hz) / bin_hz
+    guard = 3.0 * max(enbw_bins, 2.0) * bin_hz
+    kept = [t for t in res.tones if not any(abs(t.frequency_hz - f) <= guard for f in exclude_hz)]
+    band = (res.freq_hz >= _BAND[0]) & (res.freq_hz <= _BAND[1])
+    t_lin = 10.0 ** (res.threshold_db / 10.0)
+    floor = 10.0 ** (res.floor_dbfs[band] / 10.0)
+    limit = 10.0 * math.log10(float(np.max((t_lin - 1.0) * floor * enbw_bins)))
+    if kept:
+        best = max(kept, key=lambda t: t.level_dbfs)
+        return best.level_dbfs, best.frequency_hz, limit
+    return None, None, limit
+
+
+def _remove_fundamental(x, rate, settle):
+    """The capture after ``settle`` frames with a 3-parameter 997 Hz fit removed."""
+    from audiodsm.measure.aes17 import fit_sine
+
+    seg = np.ascontiguousarray(x[settle:])
+    return fit_sine(seg, rate_hz=rate, frequency_hz=_TEST_HZ, four_parameter=False).residual
+
+
+def _coherent_amplitudes(y, bins):
+    """Sine amplitudes at exact DFT bins of ``y`` (rectangular window, coherent sampling).
+
+    With a whole number of cycles in the record, the DFT bin of a sine holds exactly its
+    amplitude times ``len(y)/2``; it equals a least-squares sine fit at that frequency.
+    """
+    spec = np.fft.rfft(y - y.mean())
+    return 2.0 * np.abs(spec[np.asarray(bins)]) / len(y)
+
+
+# ---------------------------------------------------------------------------------------------
+# The tests. Each returns a dict of partial results; they run in worker threads.
+# ---------------------------------------------------------------------------------------------
+
+
+def _test_dynamic_range(ctx, profile):
+    from audiodsm.measure.spectrum import averaged_spectrum
+
+    plan, rate = ctx.plan, ctx.rate
+    x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
+    res = _chain_run(profile, x, rate=rate, keep=("listening", "analog"))
+    y = res.listening[:, 0]
+    r = _meter(y, rate, _TEST_HZ, _WEIGHTINGS, plan.settle_s)
+    out = {"stats": [(res.stats, 0, 10 ** (-60 / 20))]}
+    notes = [
+        f"dynamic range: -60 dBFS 997 Hz, {plan.tone_s:g} s after {plan.settle_s:g} s "
+        f"settling, 20 Hz..20 kHz, fundamental removed by 3-parameter fits over 0.5 s segments"
+    ]
+    if r.fundamental_dbfs is not None and abs(r.fundamental_dbfs + 60.0) <= 1.0:
+        for k, name in zip(_WEIGHTINGS, ("", "_a", "_ccir"), strict=True):
+            out[f"dynamic_range_db{name}"] = -r.noise_dbfs[k]
+    else:
+        for name in ("", "_a", "_ccir"):
+            out[f"dynamic_range_db{name}"] = None
+        notes.append(
+            f"dynamic range: the -60 dBFS tone came out at {r.fundamental_dbfs:.2f} dBFS "
+            "(not within 1 dB), so no dynamic range is given"
+        )
+    fm = res.modulator_rate_hz
+    a = res.analog[:, 0]
+    skip = int(round((plan.settle_s + res.latency_s) * fm))
+    a = a[min(skip, len(a) // 2) :]
+    upper = min(plan.out_of_band_upper_hz, fm / 2)
+    # One averaged spectrum (Welch, 4-term Blackman-Harris) serves the out-of-band power and
+    # the spectrum curve; its band power is what measure.aes17.out_of_band_power_dbfs reads.
+    spec = averaged_spectrum(a, rate_hz=fm, resolution_hz=_SPECTRUM_RESOLUTION_HZ)
+    out["out_of_band_noise_dbfs"] = spec.band_noise_dbfs(_BAND[1], upper)
+    notes.append(
+        f"out-of-band noise: reconstructed output at {fm / 1e6:g} MHz during the -60 dBFS "
+        f"tone, {_BAND[1] / 1e3:g} kHz..{upper / 1e3:g} kHz, {spec.resolution_hz:.0f} Hz bins"
+    )
+    out["curve_spectrum"] = {
+        "frequency_hz": spec.freq_hz,
+        "level_dbfs": spec.bins_dbfs(),
+        "resolution_hz": np.array([spec.resolution_hz]),
+    }
+    out["notes"] = notes
+    return out
+
+
+def _test_level_sweep(ctx, profile, levels):
+    plan, rate = ctx.plan, ctx.rate
+    seconds = plan.settle_s + plan.sweep_s + _TAIL_S
+    x = np.stack([_tone(lv, rate, seconds) for lv in levels], axis=1)
+    res = _chain_run(profile, x, rate=rate)
+    settle = int(round(plan.settle_s * rate))
+    points = []
+    for c, lv in enumerate(levels):
+        y = res.listening[:, c]
+        r = _meter(y, rate, _TEST_HZ, ("unweighted", "a"), plan.settle_s)
+        point = {
+            "level_dbfs": lv,
+            "tone_dbfs": r.fundamental_dbfs,
+            "thd_n_db": r.thd_n_db["unweighted"],
+            "thd_n_db_a": r.thd_n_db["a"],
+            "noise_dbfs_a": r.noise_dbfs["a"],
+            "overload_count": int(res.stats.overload_count[c]),
+        }
+        if lv <= -60.0:
+            resid = _remove_fundamental(y, rate, settle)
+            harmonics = [k * _TEST_HZ for k in range(1, 21)]
+            point["lines"] = _lines(resid, rate, false_alarm=ctx.false_alarm, exclude_hz=harmonics)
+        points.append(point)
+    stats = [(res.stats, c, 10 ** (lv / 20)) for c, lv in enumerate(levels)]
+    return {"sweep": points, "stats": stats}
+
+
+def _test_idle(ctx, profile):
+    plan, rate = ctx.plan, ctx.rate
+    n = int(round((plan.settle_s + plan.silence_s + _TAIL_S) * rate))
+    res = _chain_run(profile, np.zeros(n), rate=rate)
+    y = res.listening[:, 0]
+    r = _meter(y, rate, None, _WEIGHTINGS, plan.settle_s)
+    settle = int(round(plan.settle_s * rate))
+    out = {
+        "idle_noise_dbfs": r.noise_dbfs["unweighted"],
+        "idle_noise_dbfs_a": r.noise_dbfs["a"],
+        "idle_noise_dbfs_ccir": r.noise_dbfs["ccir"],
+        "switching_rate_hz": float(res.stats.switching_rate_hz(rate)[0]),
+        "silence_lines": _lines(y[settle:], rate, false_alarm=ctx.false_alarm),
+        "stats": [(res.stats, 0, 0.0)],
+        "notes": [
+            f"idle: {plan.silence_s:g} s of digital silence after {plan.settle_s:g} s settling"
+        ],
+    }
+    return out
+
+
+def _test_dc(ctx, profile, offsets):
+    plan, rate = ctx.plan, ctx.rate
+    n = int(round((plan.settle_s + plan.dc_s + _TAIL_S) * rate))
+    x = np.ones((n, len(offsets))) * np.asarray(offsets)[None, :]
+    res = _chain_run(profile, x, rate=rate)
+    settle = int(round(plan.settle_s * rate))
+    found = []
+    for c, off in enumerate(offsets):
+        y = res.listening[settle:, c]
+        found.append((off, _lines(y - y.mean(), rate, false_alarm=ctx.false_alarm)))
+    stats = [(res.stats, c, abs(off)) for c, off in enumerate(offsets)]
+    return {"dc": found, "stats": stats}
+
+
+def _test_stability(ctx, profile):
+    from audiodsm.stages.chain import Chain
+    from audiodsm.stages.modulator import find_stability_limit
+
+    plan = ctx.plan
+    chain = Chain.from_profile(profile, ctx.rate, 1, listening_rate_hz=ctx.rate, threads=1)
+    limit = find_stability_limit(chain.modulator, osr=chain.osr, samples=plan.stability_samples)
+    # the chain scales its input by input_scale before the loop (headroom the calibration
+    # divides out again), so an amplitude at the loop is amplitude / input_scale at the input
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    out = {
+        "msa": float(limit.amplitude) / scale,
+        "msa_modulator": float(limit.amplitude),
+        "input_scale": scale,
+        "msa_state_peak": np.asarray(limit.state_peak, dtype=float),
+        "ntf": chain.ntf,
+        "modulator_rate_hz": float(chain.modulator_rate_hz),
+        "notes": [
+            f"stability: bisection on a sine near a fifth of the band edge, "
+            f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
+            "stable = no guard action and in-band SQNR within 6 dB of the linear extrapolation; "
+            f"the loop's own limit {limit.amplitude:.4f} of its full scale, divided by the "
+            f"chain's input scale {scale:g} to refer it to the chain input"
+        ],
+    }
+    out["curve_stability"] = {
+        "loop_amplitude": np.array([float(limit.amplitude)]),
+        "input_scale": np.array([scale]),
+        "state_peak": np.asarray(limit.state_peak, dtype=float),
+        "sqnr_db": np.array([float(limit.sqnr_db)]),
+    }
+    if limit.amplitude > 0:
+        n = plan.histogram_samples
+        t = np.arange(n)
+        x = limit.amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
+        _, states = chain.modulator.trace_states(x)
+        states = np.asarray(states, dtype=float).reshape(n, -1)
+        edges, counts = [], []
+        for k in range(states.shape[1]):
+            top = float(np.max(np.abs(states[:, k]))) or 1.0
+            e = np.linspace(-top, top, plan.histogram_bins + 1)
+            h, _ = np.histogram(states[:, k], bins=e)
+            edges.append(e)
+            counts.append(h)
+        out["curve_state_histograms"] = {
+            "edges": np.array(edges),
+            "counts": np.array(counts),
+            "peak": np.max(np.abs(states), axis=0),
+            "amplitude": np.array([limit.amplitude]),
+        }
+    return out
+
+
+def _test_overload(ctx, profile, levels):
+    plan, rate = ctx.plan, ctx.rate
+    if not levels:
+        return {"overload": []}
+    seconds = plan.settle_s + plan.sweep_s + _TAIL_S
+    x = np.stack([_tone(lv, rate, seconds) for lv in levels], axis=1)
+    res = _chain_run(profile, x, rate=rate)
+    points = []
+    for c, lv in enumerate(levels):
+        r = _meter(res.listening[:, c], rate, _TEST_HZ, ("unweighted",), plan.settle_s)
+        points.append(
+            {
+                "level_dbfs": lv,
+                "tone_dbfs": r.fundamental_dbfs,
+                "thd_n_db": r.thd_n_db["unweighted"],
+                "overload_count": int(res.stats.overload_count[c]),
+            }
+        )
+    stats = [(res.stats, c, 10 ** (lv / 20)) for c, lv in enumerate(levels)]
+    return {"overload": points, "stats": stats, "probe_stats": True}
+
+
+def _response_frequencies():
+    """1/3-octave centres 20 Hz .. 20 kHz (exact base-10, IEC 61260-1) plus 997 Hz."""
+    # 1 kHz itself gives way to the 997 Hz reference, 3 Hz away
+    centres = [1000.0 * 10.0 ** (k / 10.0) for k in range(-17, 14) if k != 0]
+    return sorted({*(round(f, 6) for f in centres), _TEST_HZ, 20000.0})
+
+
+def _test_response(ctx, profile):
+    from audiodsm.measure.aes17 import frequency_response
+    from audiodsm.signals import multitone
+
+    plan, rate = ctx.plan, ctx.rate
+    freqs = _response_frequencies()
+    seconds = plan.settle_s + plan.response_s + _TAIL_S
+    x = multitone(freqs, plan.response_level_dbfs, rate_hz=rate, duration_s=seconds)
+    res = _chain_run(profile, x, rate=rate)
+    fr = frequency_response(
+        res.listening[:, 0],
+        rate_hz=rate,
+        frequencies_hz=freqs,
+        settle_s=plan.settle_s,
+        lower_hz=_BAND[0],
+        upper_hz=_BAND[1],
+    )
+    return {
+        "passband_ripple_db": fr.ripple_db,
+        "curve_frequency_response": {
+            "frequency_hz": np.array(fr.frequency_hz),
+            "gain_db": np.array(fr.gain_db),
+        },
+        "stats": [(res.stats, 0, 10 ** (plan.response_level_dbfs / 20))],
+        "notes": [
+            f"frequency response: {len(freqs)}-tone Schroeder multitone at "
+            f"{plan.response_level_dbfs:g} dBFS peak, {plan.response_s:g} s, joint "
+            "least-squares fit of every tone, relative to 997 Hz"
+        ],
+    }
+
+
+def _test_images(ctx, profile):
+    from audiodsm.signals import sine
+
+    plan, rate = ctx.plan, ctx.rate
+    f = float(plan.image_tone_hz)
+    level = plan.composite_level_dbfs
+    x = sine(f, level, rate_hz=rate, duration_s=plan.settle_s + plan.image_s + _TAIL_S)
+    res = _chain_run(profile, x, rate=rate, keep=("analog",))
+    fm = res.modulator_rate_hz
+    a = res.analog[:, 0]
+    skip = int(round((plan.settle_s + res.latency_s) * fm))
+    a = a[min(skip, len(a) // 2) :]
+    image = rate - f
+    # a record holding whole cycles of the tone and of its image: both on exact DFT bins
+    cycle = int(round(fm)) // math.gcd(int(round(fm)), int(f), int(image))
+    a = a[: (len(a) // cycle) * cycle]
+    span = len(a) / fm
+    k_tone, k_image = int(round(f * span)), int(round(image * span))
+    # noise readings on bins beside the image: uncorrelated with it and with each other
+    neighbours = [k_image + d for d in (-9, -7, -5, 5, 7, 9)]
+    amps = _coherent_amplitudes(a, [k_tone, k_image, *neighbours])
+    tone, img, noise = amps[0], amps[1], float(np.sqrt(np.mean(amps[2:] ** 2)))
+    # an image reading within 3x the rms noise reading is indistinguishable from noise
+    limited = bool(img < 3.0 * noise)
+    rejection = _db(tone) - _db(max(img, 3.0 * noise) if limited else img)
+    return {
+        "image_rejection_db": rejection,
+        "image_rejection_noise_limited": limited,
+        "stats": [(res.stats, 0, 10 ** (level / 20))],
+        "notes": [
+            f"images: {f:g} Hz at {level:g} dBFS, image at {image:g} Hz read on the "
+            f"reconstructed output at {fm / 1e6:g} MHz over {span:.2f} s (fit bandwidth "
+            f"{1 / span:.1f} Hz)"
+            + (
+                "; the image lies below the noise, so the rejection is a lower bound"
+                if limited
+                else ""
+            )  # fmt: skip
+        ],
+    }
+
+
+def _test_imd(ctx, profile):
+    from audiodsm.measure.aes17 import imd_difference_frequency, imd_smpte
+    from audiodsm.signals import twin_tone_difference, twin_tone_smpte
+
+    plan, rate = ctx.plan, ctx.rate
+    level = plan.composite_level_dbfs
+    seconds = plan.settle_s + plan.imd_s + _TAIL_S
+    x = np.stack(
+        [
+            twin_tone_smpte(level, rate_hz=rate, duration_s=seconds),
+            twin_tone_difference(level, rate_hz=rate, duration_s=seconds),
+        ],
+        axis=1,
+    )
+    res = _chain_run(profile, x, rate=rate)
+    smpte = imd_smpte(res.listening[:, 0], rate_hz=rate, settle_s=plan.settle_s)
+    diff = imd_difference_frequency(res.listening[:, 1], rate_hz=rate, settle_s=plan.settle_s)
+    peak = 10 ** (level / 20)
+    return {
+        "imd_smpte_db": smpte.ratio_db,
+        "imd_difference_db": diff.ratio_db,
+        "stats": [(res.stats, 0, peak), (res.stats, 1, peak)],
+        "notes": [
+            f"intermodulation: twin tones at {level:g} dBFS combined peak, {plan.imd_s:g} s; "
+            + smpte.convention
+        ],
+    }
+
+
+# ---------------------------------------------------------------------------------------------
+# The driver
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Context:
+    plan: BatteryPlan
+    rate: int
+    false_alarm: float
+
+
+def _chunks(seq, size):
+    return [seq[i : i + size] for i in range(0, len(seq), size)]
+
+
+def _dc_offsets(plan):
+    if plan.dc_offsets == 0:
+        return []
+    mags = np.geomspace(plan.dc_range[0], plan.dc_range[1], plan.dc_offsets)
+    return [float(s * m) for s in (1.0, -1.0) for m in mags]
+
+
+def run_battery(
+    profile: ChainProfile,
+    *,
+    jobs: int | None = None,
+    progress: Callable[[int, int, str], None] | None = None,
+    seed: int = 0,
+    plan: BatteryPlan | None = None,
+    tests=None,
+) -> BatteryResult:
+    """Run the test battery on one profile's whole chain.
+
+    Parameters
+    ----------
+    profile : ChainProfile
+        The chain to measure.
+    jobs : int, optional, keyword-only
+        Worker threads (the compiled loops release the GIL). Default: the number of cores.
+    progress : callable, optional, keyword-only
+        Called as ``progress(done, total, label)`` after each run finishes (from the calling
+        thread).
+    seed : int, keyword-only
+        Mixed with the profile's ``modulator.seed`` and each run's index to seed its dither.
+    plan : BatteryPlan, optional, keyword-only
+        Durations and levels; default :class:`BatteryPlan()`.
+    tests : sequence of str, optional, keyword-only
+        A subset of :data:`TEST_NAMES`; default all. Metrics of tests not run are absent.
+
+    Returns
+    -------
+    BatteryResult
+
+    Raises
+    ------
+    ParameterError
+        A bad argument, or a profile the chain cannot build.
+
+    References
+    ----------
+    .. [1] AES17-2015, AES standard method for digital audio engineering - Measurement of
+       digital audio equipment (dynamic range, THD+N, idle-channel noise, frequency response,
+       images; clause numbers from memory).
+    .. [2] IEC 60268-3 and SMPTE RP120, intermodulation (from memory).
+    .. [3] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
+       ch. 4 (maximum stable amplitude by simulation).
+    """
+    start = time.perf_counter()
+    if not isinstance(profile, ChainProfile):
+        raise ParameterError("profile", type(profile).__name__, "a ChainProfile")
+    plan = (plan if plan is not None else BatteryPlan()).check()
+    if tests is None:
+        tests = TEST_NAMES
+    tests = tuple(tests)
+    bad = [t for t in tests if t not in TEST_NAMES]
+    if bad or not tests:
+        raise ParameterError("tests", tests, "names from " + ", ".join(TEST_NAMES))
+    if jobs is None:
+        jobs = os.cpu_count() or 1
+    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
+        raise ParameterError("jobs", jobs, "a positive integer")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ParameterError("seed", seed, "a non-negative integer")
+    rate = battery_rate_hz(profile)
+    if rate not in AUDIO_RATES_HZ:  # pragma: no cover - the profile schema enforces it
+        raise ParameterError("listening.rate_hz", rate, "a supported audio rate")
+
+    dc = _dc_offsets(plan) if "dc_sweep" in tests else []
+    sweep_levels = sorted({float(v) for v in plan.sweep_levels_dbfs}, reverse=True)
+    low_tone_captures = sum(1 for v in sweep_levels if v <= -60.0)
+    searched = ("idle" in tests) + len(dc) + (low_tone_captures if "level_sweep" in tests else 0)
+    ctx = _Context(plan, rate, plan.false_alarm / max(1, searched))
+
+    # the runs: (label, function, args); "stability" feeds the overload probes
+    runs = []
+    if "stability" in tests:
+        runs.append(("stability", _test_stability, ()))
+    if "dynamic_range" in tests:
+        runs.append(("dynamic range", _test_dynamic_range, ()))
+    if "level_sweep" in tests:
+        for part in _chunks(sweep_levels, 6):
+            runs.append(("THD+N vs level", _test_level_sweep, (part,)))
+    if "idle" in tests:
+        runs.append(("idle channel", _test_idle, ()))
+    for part in _chunks(dc, 8):
+        runs.append(("DC offsets", _test_dc, (part,)))
+    if "frequency_response" in tests:
+        runs.append(("frequency response", _test_response, ()))
+    if "images" in tests:
+        runs.append(("images", _test_images, ()))
+    if "intermodulation" in tests:
+        runs.append(("intermodulation", _test_imd, ()))
+    total = len(runs) + ("stability" in tests)  # the overload probes follow the stability run
+
+    def with_seed(index):
+        s = _run_seed(profile.modulator.seed, seed, index)
+        return replace(profile, modulator=replace(profile.modulator, seed=s))
+
+    results = []
+    run_seconds = {}
+    done = 0
+
+    def timed(fn, *args):
+        t0 = time.perf_counter()
+        out = fn(*args)
+        return out, time.perf_counter() - t0
+
+    workers = max(1, min(int(jobs), total))
+    # One BLAS thread per worker: the runs already fill the cores, and a multi-threaded BLAS
+    # inside each (the least-squares fits) oversubscribes them and slows down many times over.
+    from threadpoolctl import threadpool_limits
+
+    with (
+        threadpool_limits(limits=1, user_api="blas"),
+        _cf.ThreadPoolExecutor(max_workers=workers) as pool,
+    ):
+        pending = {}
+        for i, (label, fn, args) in enumerate(runs):
+            pending[pool.submit(timed, fn, ctx, with_seed(i), *args)] = label
+        while pending:
+            finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
+            for fut in finished:
+                label = pending.pop(fut)
+                part, spent = fut.result()
+                run_seconds[label] = run_seconds.get(label, 0.0) + spent
+                results.append(part)
+                done += 1
+                if progress is not None:
+                    progress(done, total, label)
+                if label == "stability":
+                    msa_db = _db(part["msa"])
+                    probe = sorted(
+                        {
+                            round(min(0.0, msa_db + d), 3)
+                            for d in plan.overload_steps_db
+                            if math.isfinite(msa_db)
+                        }
+                        - {round(msa_db, 3)}
+                    )
+                    probe = [p for p in probe if p > msa_db]
+                    fut2 = pool.submit(timed, _test_overload, ctx, with_seed(len(runs)), probe)
+                    pending[fut2] = "overload"
+    metrics, curves, notes = _assemble(results, tests, plan, profile)
+    return BatteryResult(
+        profile_name=profile.name,
+        digest=profile_digest(profile),
+        rate_hz=rate,
+        metrics=metrics,
+        curves=curves,
+        notes=tuple(notes),
+        seconds=time.perf_counter() - start,
+        plan=plan,
+        run_seconds=run_seconds,
+    )
+
+
+_SCALARS = (
+    "dynamic_range_db",
+    "dynamic_range_db_a",
+    "dynamic_range_db_ccir",
+    "out_of_band_noise_dbfs",
+    "idle_noise_dbfs",
+    "idle_noise_dbfs_a",
+    "idle_noise_dbfs_ccir",
+    "switching_rate_hz",
+    "passband_ripple_db",
+    "image_rejection_db",
+    "image_rejection_noise_limited",
+    "imd_smpte_db",
+    "imd_difference_db",
+)
+
+
+def _assemble(results, tests, plan, profile):
+    """Merge the runs' partial results into metrics, curves and notes."""
+    metrics, curves, notes = {}, {}, []
+    sweep, overload, dc, lines = [], [], [], []
+    stats = []
+    msa = None
+    stab = None
+    for part in results:
+        for k in _SCALARS:
+            if k in part:
+                metrics[k] = part[k]
+        for k, v in part.items():
+            if k.startswith("curve_"):
+                curves[k[6:]] = v
+        notes.extend(part.get("notes", ()))
+        sweep.extend(part.get("sweep", ()))
+        overload.extend(part.get("overload", ()))
+        dc.extend(part.get("dc", ()))
+        stats.extend(part.get("stats", ()))
+        if "silence_lines" in part:
+            lines.append(("silence", 0.0, part["silence_lines"]))
+        if "msa" in part:
+            stab = part
+            msa = part["msa"]
+    msa_amp = msa if msa is not None else 1.0
+    msa_db = _db(msa_amp)
+
+    if stab is not None:
+        metrics["max_stable_amplitude_dbfs"] = msa_db
+        ntf = stab["ntf"]
+        if "spectrum" in curves:
+            fm = stab["modulator_rate_hz"]
+            f = curves["spectrum"]["frequency_hz"]
+            curves["spectrum"]["ntf_gain_db"] = 20.0 * np.log10(
+                np.maximum(np.abs(ntf.response(f / fm)), 1e-300)
+            )
+
+    if sweep:
+        sweep.sort(key=lambda p: -p["level_dbfs"])
+        by_level = {p["level_dbfs"]: p for p in sweep}
+        for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
+            if lv in by_level:
+                metrics[f"thd_n_db_at_{name}_dbfs"] = by_level[lv]["thd_n_db"]
+                metrics[f"thd_n_db_a_at_{name}_dbfs"] = by_level[lv]["thd_n_db_a"]
+        curves["thd_n_vs_level"] = {
+            k: np.array([p[k] for p in sweep], dtype=float)
+            for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "thd_n_db_a", "overload_count")
+        }
+        floor = [
+            p["noise_dbfs_a"]
+            for p in sweep
+            if -90.0 <= p["level_dbfs"] <= 0.0 and p["level_dbfs"] <= msa_db + 1e-9
+        ]
+        metrics["noise_modulation_db"] = (max(floor) - min(floor)) if len(floor) >= 2 else None
+        curves["noise_vs_level"] = {
+            "level_dbfs": np.array([p["level_dbfs"] for p in sweep]),
+            "noise_dbfs_a": np.array([p["noise_dbfs_a"] for p in sweep]),
+        }
+        for p in sweep:
+            if "lines" in p:
+                lines.append(("tone", p["level_dbfs"], p["lines"]))
+        notes.append(
+            f"THD+N vs level: 997 Hz at {len(sweep)} levels, {plan.sweep_s:g} s each; noise "
+            "modulation over the levels from 0 to -90 dBFS at or below the maximum stable "
+            "amplitude, A-weighted"
+        )
+    if sweep or overload:
+        pts = sorted(sweep + overload, key=lambda p: p["level_dbfs"])
+        over = [p["level_dbfs"] for p in pts if p["overload_count"] > 0]
+        metrics["overload_onset_dbfs"] = over[0] if over else None
+        if overload:
+            curves["overload"] = {
+                k: np.array([p[k] for p in pts], dtype=float)
+                for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
+            }
+
+    if dc:
+        dc.sort(key=lambda d: d[0])
+        for off, found in dc:
+            lines.append(("dc", off, found))
+        curves["idle_tone_map"] = {
+            "dc_offset": np.array([d[0] for d in dc]),
+            "line_dbfs": np.array([np.nan if d[1][0] is None else d[1][0] for d in dc]),
+            "line_hz": np.array([np.nan if d[1][1] is None else d[1][1] for d in dc]),
+            "detection_limit_dbfs": np.array([d[1][2] for d in dc]),
+        }
+        notes.append(
+            f"idle tones: {len(dc)} DC offsets from {plan.dc_range[0]:g} to "
+            f"{plan.dc_range[1]:g} of full scale (both signs), {plan.dc_s:g} s each"
+        )
+    if lines:
+        found = [entry[2][0] for entry in lines if entry[2][0] is not None]
+        limits = [entry[2][2] for entry in lines]
+        metrics["idle_tone_max_dbfs"] = max(found) if found else max(limits)
+        metrics["idle_tone_count"] = len(found)
+        notes.append(
+            f"idle tones searched in {len(lines)} captures with a battery-wide false-alarm "
+            f"probability of {plan.false_alarm:g}"
+            + ("" if found else "; none found, so idle_tone_max_dbfs is the detection limit")
+        )
+
+    if stab is not None:
+        peaks = [np.max(np.asarray(stab["msa_state_peak"], dtype=float), initial=0.0)]
+    else:
+        peaks = []
+    count = 0
+    dropped = stretched = 0
+    for st, c, peak in stats:
+        dropped += int(st.dropped_pulses[c])
+        stretched += int(st.stretched_pulses[c])
+        if peak <= msa_amp * (1 + 1e-9):
+            count += int(st.overload_count[c])
+            peaks.append(float(np.max(st.state_peak[c], initial=0.0)))
+    if stats:
+        metrics["overload_count"] = count
+        metrics["state_peak_max"] = max(peaks) if peaks else None
+        pwm = profile.output.kind == "pwm"
+        metrics["pwm_dropped_pulses"] = dropped if pwm else None
+        metrics["pwm_stretched_pulses"] = stretched if pwm else None
+    ordered = {k: metrics[k] for k in METRIC_UNITS if k in metrics}
+    return ordered, curves, notes

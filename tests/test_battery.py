@@ -1,0 +1,272 @@
+"""The test battery, checked against outside sources.
+
+Each battery run here uses a short plan or a subset of the tests, to keep the file fast.
+"""
+
+import math
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from audiodsm.errors import ParameterError
+from audiodsm.evaluate.battery import (
+    METRIC_UNITS,
+    TEST_NAMES,
+    BatteryPlan,
+    battery_rate_hz,
+    run_battery,
+)
+from audiodsm.profile import ChainProfile, profile_from_dict
+
+RATE = 48000
+
+
+def _transparent(bits):
+    """A quantizer without noise shaping: NTF = z/z = 1, TPDF dither of 2 LSB peak-to-peak."""
+    return profile_from_dict(
+        {
+            "name": f"transparent-{bits}bit",
+            "upsampler": {"osr": 16},
+            "modulator": {
+                "zeros": [0.0],
+                "poles": [0.0],
+                "structure": "error-feedback",
+                "levels": 2**bits,
+                "dither_lsb": 1.0,
+            },
+            "output": {"kind": "nrz"},
+            "reconstruction": {"kind": "none"},
+        }
+    )
+
+
+def _band_integral(power_fn, lo=20.0, hi=20000.0, points=200001):
+    """Integral of a power response over the band (trapezoid on a fine linear grid)."""
+    f = np.linspace(lo, hi, points)
+    return float(np.trapezoid(power_fn(f), f))
+
+
+@pytest.fixture(scope="module")
+def transparent_result():
+    return run_battery(_transparent(24), tests=("dynamic_range",), plan=BatteryPlan.quick())
+
+
+def test_transparent_chain_matches_tpdf_dither_theory(transparent_result):
+    # Lipshitz, Wannamaker & Vanderkooy, "Quantization and Dither: A Theoretical Survey",
+    # JAES 40(5), 1992: TPDF dither of 2 LSB peak-to-peak gives a total error power of
+    # Delta^2/4, white, independent of the signal. Here it is spread evenly over 0..fm/2 at
+    # the modulator rate fm, so the noise in the 20 Hz..20 kHz band is
+    # (Delta^2/4) * int W(f)^2 df / (fm/2). Dynamic range = 10 log10(0.5 / noise) (0.5 is the
+    # power of a 0 dBFS sine, AES17). Tolerance 0.5 dB (the brief's), which covers the AES17
+    # band-limit filter's skirts against the ideal band (< 0.1 dB) and the 0.5 s noise
+    # estimate (about 0.05 dB rms for 20 kHz of bandwidth).
+    import librosa
+
+    levels = 2**24
+    delta = 2.0 / (levels - 1)
+    fm = RATE * 16
+    white = delta**2 / 4.0 / (fm / 2.0)  # power per Hz
+    noise = white * _band_integral(lambda f: np.ones_like(f))
+    expected = 10.0 * math.log10(0.5 / noise)
+    got = transparent_result.metrics["dynamic_range_db"]
+    assert got == pytest.approx(expected, abs=0.5)
+    # A-weighted: the IEC 61672-1 analytic curve as librosa computes it (an outside library)
+    noise_a = white * _band_integral(lambda f: 10.0 ** (librosa.A_weighting(f) / 10.0))
+    expected_a = 10.0 * math.log10(0.5 / noise_a)
+    assert transparent_result.metrics["dynamic_range_db_a"] == pytest.approx(expected_a, abs=0.5)
+    # and the dither-theory figure is far from the undithered one (Delta^2/12, 4.77 dB less
+    # noise), so the check can tell the two apart
+    assert abs(got - (expected + 10 * math.log10(3.0))) > 4.0
+
+
+def test_multibit_dynamic_range_agrees_with_linear_model():
+    # Schreier & Temes, "Understanding Delta-Sigma Data Converters", 2005, ch. 2/4: white
+    # quantization noise Delta^2/12 shaped by the NTF (NoiseTransfer.predicted_sqnr_db), here
+    # over the 20 kHz measurement band, i.e. an OSR of fm / (2 * 20 kHz). The chain gives the
+    # loop input_scale of headroom and calibrates it out, which lowers the dynamic range at the
+    # chain input by 20 log10(input_scale). Tolerance 2 dB (the brief's): a multi-bit
+    # quantizer's error is close to, but not exactly, white and uniform.
+    from audiodsm.design.ntf import design_ntf
+    from audiodsm.stages.chain import Chain
+
+    prof = profile_from_dict(
+        {
+            "name": "nrz17",
+            "modulator": {"order": 4, "levels": 17, "max_gain": 2.5},
+            "output": {"kind": "nrz"},
+        }
+    )
+    res = run_battery(prof, tests=("dynamic_range",), plan=BatteryPlan.quick())
+    ntf = design_ntf(4, 64, max_gain=2.5)
+    chain = Chain.from_profile(prof, RATE, 1)
+    fm = 64 * RATE
+    expected = ntf.predicted_sqnr_db(17, fm / (2 * 20000.0)) + 20 * math.log10(chain.input_scale)
+    assert res.metrics["dynamic_range_db"] == pytest.approx(expected, abs=2.0)
+
+
+@pytest.fixture(scope="module")
+def stability_by_order():
+    out = {}
+    for order in (2, 3, 4, 5):
+        prof = ChainProfile(
+            name=f"pdm{order}", modulator=replace(ChainProfile().modulator, order=order)
+        )
+        out[order] = run_battery(prof, tests=("stability",), plan=BatteryPlan.quick())
+    return out
+
+
+def test_single_bit_stable_amplitude_drops_with_order(stability_by_order):
+    # Common practice (Lee's rule literature; Schreier & Temes 2005, ch. 4): with the peak NTF
+    # gain held at 1.5, the maximum stable amplitude of a single-bit loop falls as the order
+    # rises. The loop's own amplitude (fraction of its full scale) is compared.
+    amps = [stability_by_order[k].curves["stability"]["loop_amplitude"][0] for k in (2, 3, 4, 5)]
+    assert all(a > b for a, b in zip(amps, amps[1:], strict=False)), amps
+    # plausible ranges (from memory of the published simulations, common practice): a
+    # 2nd-order single-bit loop handles most of full scale; a 5th-order loop with a peak gain
+    # of 1.5 saturates somewhere around half to three quarters of full scale
+    assert 0.7 <= amps[0] <= 1.0
+    assert 0.4 <= amps[-1] <= 0.85
+
+
+def test_stable_amplitude_metric_refers_to_the_chain_input(stability_by_order):
+    res = stability_by_order[5]
+    curve = res.curves["stability"]
+    loop_amp = curve["loop_amplitude"][0]
+    scale = curve["input_scale"][0]
+    assert res.metrics["max_stable_amplitude_dbfs"] == pytest.approx(
+        20 * math.log10(loop_amp / scale), abs=1e-12
+    )
+    hist = res.curves["state_histograms"]
+    assert hist["counts"].shape == (5, BatteryPlan.quick().histogram_bins)
+    assert np.all(hist["counts"].sum(axis=1) == BatteryPlan.quick().histogram_samples)
+    # the histogram spans exactly +-peak of each state
+    assert np.allclose(hist["edges"][:, -1], hist["peak"])
+
+
+def test_first_order_idle_tone_at_the_predicted_frequency():
+    # R. M. Gray, IEEE Trans. Commun. 37(6), 1989 (and J. C. Candy, 1981): a first-order
+    # single-bit loop (NTF = 1 - z^-1) with a constant input u makes a periodic output whose
+    # lines lie at multiples of (1 + u)/2 * fm, folded; the even ones give in-band lines at
+    # multiples of u * fm, the fundamental u * fm the strongest. Here u is the DC offset
+    # times the chain's input scale. Tolerance: two bins of the detector's spectrum.
+    from audiodsm.stages.chain import Chain
+
+    prof = profile_from_dict({"name": "first-order", "modulator": {"zeros": [1.0], "poles": [0.0]}})
+    plan = replace(BatteryPlan.quick(), dc_offsets=1, dc_range=(1e-3, 1e-3))
+    res = run_battery(prof, tests=("dc_sweep",), plan=plan)
+    scale = Chain.from_profile(prof, RATE, 1).input_scale
+    fm = 64 * RATE
+    tone_map = res.curves["idle_tone_map"]
+    assert list(tone_map["dc_offset"]) == [-1e-3, 1e-3]
+    for hz in tone_map["line_hz"]:
+        assert hz == pytest.approx(1e-3 * scale * fm, abs=2 * RATE / 4096)
+    assert res.metrics["idle_tone_count"] == 2
+    assert res.metrics["idle_tone_max_dbfs"] == pytest.approx(np.max(tone_map["line_dbfs"]))
+
+
+@pytest.fixture(scope="module")
+def full_quick():
+    prof = ChainProfile(name="pdm5")
+    seen = []
+    res = run_battery(prof, plan=BatteryPlan.quick(), jobs=2, progress=lambda *a: seen.append(a))
+    return res, seen
+
+
+def test_full_battery_gives_every_metric(full_quick):
+    res, seen = full_quick
+    expected = {k for k in METRIC_UNITS}
+    assert set(res.metrics) == expected
+    for k, v in res.json_metrics().items():
+        assert v is None or isinstance(v, (int, float, bool)), k
+    # progress: every run reported once, in order, against a fixed total
+    assert [d for d, _, _ in seen] == list(range(1, len(seen) + 1))
+    assert {t for _, t, _ in seen} == {len(seen)}
+    for name in ("thd_n_vs_level", "idle_tone_map", "frequency_response", "state_histograms"):
+        assert name in res.curves
+
+
+def test_full_battery_readings_are_plausible(full_quick):
+    res, _ = full_quick
+    m = res.metrics
+    # AES17 relations: dynamic range = -(noise floor); THD+N at -20 dBFS = floor + 20 dB
+    # when noise dominates (within 1 dB; the loop's distortion at -20 dBFS is far lower)
+    assert m["thd_n_db_at_minus20_dbfs"] == pytest.approx(-m["dynamic_range_db"] + 20.0, abs=1.0)
+    # the shaped noise of a single-bit loop rises above the band: A-weighting (which falls
+    # off above 10 kHz, IEC 61672-1) gives a higher dynamic range than the unweighted one
+    assert m["dynamic_range_db_a"] > m["dynamic_range_db"]
+    # a chain with a 0.005 dB upsampler spec and a 60 kHz 3rd-order Butterworth filter:
+    # |H(20k)|^2 = 1 / (1 + (20/60)^6), so the response may droop by at most about 0.01 dB
+    droop = -10 * math.log10(1 + (20 / 60) ** 6)
+    assert 0 <= m["passband_ripple_db"] <= abs(droop) + 0.02
+    assert m["overload_count"] == 0
+    assert m["pwm_dropped_pulses"] is None
+    # PDM switching: the output changes level on a large fraction of the clock ticks
+    assert 0.1 * 64 * RATE < m["switching_rate_hz"] < 64 * RATE
+
+
+def test_jobs_and_reruns_give_the_same_numbers(full_quick):
+    res, _ = full_quick
+    again = run_battery(
+        ChainProfile(name="pdm5"), plan=BatteryPlan.quick(), jobs=1, tests=("dynamic_range",)
+    )
+    for k in ("dynamic_range_db", "dynamic_range_db_a", "out_of_band_noise_dbfs"):
+        assert again.metrics[k] == res.metrics[k]
+
+
+def test_seed_changes_dithered_runs_only():
+    prof = _transparent(16)
+    plan = BatteryPlan.quick()
+    a = run_battery(prof, tests=("dynamic_range",), plan=plan, seed=1)
+    b = run_battery(prof, tests=("dynamic_range",), plan=plan, seed=1)
+    c = run_battery(prof, tests=("dynamic_range",), plan=plan, seed=2)
+    assert a.metrics == b.metrics
+    assert a.metrics["dynamic_range_db"] != c.metrics["dynamic_range_db"]
+
+
+def test_pwm_switching_rate_from_first_principles():
+    # A double-edge (symmetric) PWM frame with a duty strictly between 0 and 1 has one rising
+    # and one falling edge per leg, so at idle (an odd level count puts silence on the middle
+    # level, 50 % duty) the switching rate is two edges per frame times the frame rate.
+    prof = profile_from_dict(
+        {
+            "name": "pwm",
+            "modulator": {"order": 3, "levels": 9, "max_gain": 2.0},
+            "output": {"kind": "pwm", "pwm_carrier": "double-edge"},
+            "reconstruction": {"kind": "lc"},
+        }
+    )
+    res = run_battery(prof, tests=("idle",), plan=BatteryPlan.quick())
+    # Tolerance 0.5 %: the chain counts the edges of its flush (about its latency, a few ms of
+    # silence after the 0.55 s input) but divides by the input's duration only.
+    assert res.metrics["switching_rate_hz"] == pytest.approx(2 * 64 * RATE, rel=5e-3)
+    assert res.metrics["pwm_dropped_pulses"] == 0
+    assert res.metrics["pwm_stretched_pulses"] == 0
+
+
+def test_bad_arguments_are_refused():
+    prof = ChainProfile()
+    with pytest.raises(ParameterError, match="tests"):
+        run_battery(prof, tests=("loudness",))
+    with pytest.raises(ParameterError, match="jobs"):
+        run_battery(prof, jobs=0)
+    with pytest.raises(ParameterError, match="plan.dc_s"):
+        run_battery(prof, plan=replace(BatteryPlan(), dc_s=0.1))
+    with pytest.raises(ParameterError, match="profile"):
+        run_battery({"name": "x"})
+    assert set(TEST_NAMES) >= {m[0] for m in METRIC_UNITS.values() if m[0]}
+    assert battery_rate_hz(prof) == 48000
+
+
+def test_fine_quantizers_are_accepted_and_pwm_keeps_its_counter_bound():
+    # the transparent profile needs a 24-bit quantizer (2**24 levels); a PWM stage with one
+    # counter step per level step cannot have more than 65536 steps (output.counter_steps)
+    from audiodsm.errors import ProfileError
+
+    assert _transparent(24).modulator.levels == 2**24
+    with pytest.raises(ProfileError, match="modulator.levels"):
+        profile_from_dict({"modulator": {"levels": 65538}, "output": {"kind": "pwm"}})
+    ok = profile_from_dict(
+        {"modulator": {"levels": 65538}, "output": {"kind": "pwm", "counter_steps": 1024}}
+    )
+    assert ok.output.counter_steps == 1024

@@ -1,0 +1,202 @@
+import json
+import math
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from audiodsm.cli import main
+from audiodsm.cli.design import write_text_atomic
+from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
+from audiodsm.errors import OutputError, ParameterError
+from audiodsm.evaluate.search import (
+    impulse_l1_norm,
+    loop_cost,
+    predicted_dynamic_range_db,
+    search_designs,
+)
+from audiodsm.profile import load_profile
+
+RATE = 48000
+
+
+@pytest.mark.parametrize("order", [1, 2, 3])
+def test_prediction_matches_the_textbook_peak_sqnr(order):
+    # Schreier & Temes, "Understanding Delta-Sigma Data Converters", 2005, eq. for an ideal
+    # L-th order loop NTF = (1 - z^-1)^L with M = levels - 1 steps:
+    #   SQNR = 10log10(1.5 M^2) - 10log10(pi^(2L) / (2L + 1)) + (2L + 1) 10log10(OSR).
+    # The band here is 20 Hz..20 kHz at fm = 128 x 48 kHz, so OSR = fm / 40 kHz = 153.6. The
+    # textbook formula takes |1 - e^-jw| ~ w; at this OSR that small-angle error and the
+    # missing 0..20 Hz are below 0.01 dB, hence the 0.02 dB tolerance.
+    ntf = ntf_from_zeros_poles([1.0] * order, [0.0] * order)
+    levels = 17
+    fm = 128 * RATE
+    osr = fm / 40000.0
+    m = levels - 1
+    L = order
+    expected = (
+        10 * math.log10(1.5 * m**2)
+        - 10 * math.log10(math.pi ** (2 * L) / (2 * L + 1))
+        + (2 * L + 1) * 10 * math.log10(osr)
+    )
+    got = predicted_dynamic_range_db(ntf, levels, modulator_rate_hz=fm)
+    assert got == pytest.approx(expected, abs=0.02)
+    # and it is the same number NoiseTransfer.predicted_sqnr_db gives for that band
+    assert got == pytest.approx(ntf.predicted_sqnr_db(levels, osr), abs=0.01)
+
+
+def test_prediction_weighting_and_headroom():
+    ntf = design_ntf(5, 64)
+    fm = 64 * RATE
+    base = predicted_dynamic_range_db(ntf, 2, modulator_rate_hz=fm)
+    # headroom: noise referred to the input grows by 1/input_scale^2
+    half = predicted_dynamic_range_db(ntf, 2, modulator_rate_hz=fm, input_scale=0.5)
+    assert half == pytest.approx(base + 20 * math.log10(0.5), abs=1e-9)
+    # A-weighting (IEC 61672-1, via librosa as the outside reference curve): integrate the
+    # shaped noise times the weighting on a fine grid and compare
+    import librosa
+
+    f = np.linspace(20.0, 20000.0, 400001)
+    shaped = np.abs(ntf.response(f / fm)) ** 2
+    w = 10 ** (librosa.A_weighting(f) / 10)
+    noise = (2.0**2 / 12) * np.trapezoid(shaped * w, f) * 2 / fm
+    expected = 10 * math.log10(0.5 / noise)
+    got = predicted_dynamic_range_db(ntf, 2, modulator_rate_hz=fm, weighting="a")
+    assert got == pytest.approx(expected, abs=0.02)
+    with pytest.raises(ParameterError, match="levels"):
+        predicted_dynamic_range_db(ntf, 1, modulator_rate_hz=fm)
+
+
+def test_impulse_norm_of_a_pure_difference():
+    # (1 - z^-1)^L has binomial impulse response, so ||h||_1 = 2^L (the binomial theorem)
+    for order in (1, 2, 4):
+        ntf = ntf_from_zeros_poles([1.0] * order, [0.0] * order)
+        assert impulse_l1_norm(ntf) == pytest.approx(2.0**order, rel=1e-12)
+
+
+def test_search_returns_the_cheapest_passing_loops_in_cost_order():
+    target = 110.0
+    found = search_designs(
+        target, rate_hz=RATE, weighting="unweighted", orders=(2, 3, 4, 5), osrs=(32, 64, 128),
+        levels=(2, 5, 17), limit=50,
+    )  # fmt: skip
+    assert found
+    costs = [c.cost for c in found]
+    assert costs == sorted(costs)
+    for c in found:
+        assert c.predicted_dynamic_range_db >= target
+        assert c.cost == pytest.approx(loop_cost(c.order, c.levels, modulator_rate_hz=c.osr * RATE))
+        if c.levels == 2:
+            assert c.max_gain == 1.5
+        else:  # Schreier & Temes no-overload bound, with half of full scale to spare
+            ntf = design_ntf(c.order, c.osr, max_gain=c.max_gain)
+            m = c.levels - 1
+            assert (m + 2 - impulse_l1_norm(ntf)) / m >= 0.5
+    # brute force over the same grid: no loop cheaper than the first passes the same rules
+    from audiodsm.stages.chain import auto_input_scale
+
+    first = found[0]
+    for order in (2, 3, 4, 5):
+        for osr in (32, 64, 128):
+            for levels in (2, 5, 17):
+                fm = osr * RATE
+                if loop_cost(order, levels, modulator_rate_hz=fm) >= first.cost:
+                    continue
+                for gain in (1.5,) if levels == 2 else (1.5, 2.0, 3.0):
+                    try:
+                        ntf = design_ntf(order, osr, max_gain=gain)
+                    except ParameterError:
+                        continue
+                    m = levels - 1
+                    if levels > 2 and (m + 2 - impulse_l1_norm(ntf)) / m < 0.5:
+                        continue
+                    dr = predicted_dynamic_range_db(
+                        ntf, levels, modulator_rate_hz=fm, input_scale=auto_input_scale(ntf, levels)
+                    )
+                    assert dr < target, (order, osr, levels, gain)
+
+
+def test_design_writes_a_profile_and_a_summary(tmp_path):
+    out = tmp_path / "dac.toml"
+    runner = CliRunner()
+    result = runner.invoke(
+        main, ["design", str(out), "--order", "4", "--levels", "9", "--max-gain", "2.5", "--json"]
+    )
+    assert result.exit_code == 0, result.output
+    record = json.loads(result.stdout.strip().splitlines()[-1])
+    prof = load_profile(out)
+    assert prof.name == "dac"
+    assert (prof.modulator.order, prof.modulator.levels, prof.modulator.max_gain) == (4, 9, 2.5)
+    assert prof.output.kind == "nrz"
+    ntf = design_ntf(4, 64, max_gain=2.5)
+    assert record["ntf_peak_gain"] == pytest.approx(ntf.peak_gain(), rel=1e-9)
+    assert record["predicted_sqnr_db"] == pytest.approx(
+        ntf.predicted_sqnr_db(9, 64 * RATE / 40000.0), abs=1e-9
+    )
+    assert 0.0 < record["loop_stable_amplitude"] <= 1.0
+    # a second run refuses to replace the file; --overwrite replaces it
+    again = runner.invoke(main, ["design", str(out), "--order", "3"])
+    assert again.exit_code == 2
+    assert "already exists" in again.output
+    assert load_profile(out).modulator.order == 4
+    again = runner.invoke(main, ["design", str(out), "--order", "3", "--overwrite"])
+    assert again.exit_code == 0, again.output
+    assert load_profile(out).modulator.order == 3
+    assert "NTF peak gain" in again.output
+    assert [p.name for p in tmp_path.iterdir()] == ["dac.toml"]  # no temporary left over
+
+
+def test_design_refuses_pdm_with_many_levels(tmp_path):
+    result = CliRunner().invoke(
+        main, ["design", str(tmp_path / "x.toml"), "--levels", "5", "--output-stage", "pdm"]
+    )
+    assert result.exit_code == 2
+    assert "--output-stage" in result.output
+    assert not (tmp_path / "x.toml").exists()
+
+
+def test_target_search_confirms_by_simulation(tmp_path):
+    out = tmp_path / "found.toml"
+    result = CliRunner().invoke(
+        main,
+        [
+            "design", str(out), "--target-dynamic-range", "80", "--weighting", "unweighted",
+            "--order", "2", "--levels", "2", "--confirm", "1", "--json",
+        ],
+    )  # fmt: skip
+    assert result.exit_code == 0, result.output
+    record = json.loads(result.stdout.strip().splitlines()[-1])
+    best = record["candidates"][0]
+    assert best["meets_target"]
+    assert best["measured_dynamic_range_db"] >= 80.0
+    prof = load_profile(out)
+    assert prof.name == "found"
+    assert (prof.modulator.order, prof.modulator.levels, prof.upsampler.osr) == (
+        2,
+        2,
+        best["osr"],
+    )
+
+
+def test_unreachable_target_exits_1(tmp_path):
+    result = CliRunner().invoke(
+        main,
+        [
+            "design", str(tmp_path / "x.toml"), "--target-dynamic-range", "240", "--order", "1",
+            "--level-choices", "2,3",
+        ],
+    )  # fmt: skip
+    assert result.exit_code == 1
+    assert not (tmp_path / "x.toml").exists()
+
+
+def test_atomic_text_writer(tmp_path):
+    p = write_text_atomic(tmp_path / "a.toml", "x = 1\n")
+    assert p.read_text() == "x = 1\n"
+    with pytest.raises(OutputError, match="already exists"):
+        write_text_atomic(p, "x = 2\n")
+    write_text_atomic(p, "x = 2\n", overwrite=True)
+    assert p.read_text() == "x = 2\n"
+    with pytest.raises(OutputError, match="does not exist"):
+        write_text_atomic(tmp_path / "nope" / "a.toml", "")
+    assert sorted(q.name for q in tmp_path.iterdir()) == ["a.toml"]
