@@ -658,12 +658,12 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
             "modulator.levels",
             f"got {mod.levels} with output.kind = 'pdm'; expected 2 (PDM is a single-bit stream)",
         )
-    if out.kind == "pwm" and out.counter_steps == 0 and mod.levels - 1 > 65536:
+    if out.kind == "pwm" and mod.levels - 1 > 65536:
         raise ProfileError(
             path,
             "modulator.levels",
-            f"got {mod.levels} with output.kind = 'pwm' and counter_steps = 0; expected at most "
-            "65537 (one PWM counter step per level step), or set output.counter_steps",
+            f"got {mod.levels} with output.kind = 'pwm'; expected at most 65537 (the PWM "
+            "counter steps, a multiple of levels - 1, are at most 65536)",
         )
     if out.kind == "pwm" and out.pwm_mode == "three-level" and out.pwm_bridge != "full":
         raise ProfileError(

@@ -259,14 +259,12 @@ def test_bad_arguments_are_refused():
 
 
 def test_fine_quantizers_are_accepted_and_pwm_keeps_its_counter_bound():
-    # the transparent profile needs a 24-bit quantizer (2**24 levels); a PWM stage with one
-    # counter step per level step cannot have more than 65536 steps (output.counter_steps)
+    # the transparent profile needs a 24-bit quantizer (2**24 levels); a PWM stage's counter
+    # steps are a multiple of levels - 1 and at most 65536, so it keeps 65537 levels at most
     from audiodsm.errors import ProfileError
 
     assert _transparent(24).modulator.levels == 2**24
     with pytest.raises(ProfileError, match="modulator.levels"):
         profile_from_dict({"modulator": {"levels": 65538}, "output": {"kind": "pwm"}})
-    ok = profile_from_dict(
-        {"modulator": {"levels": 65538}, "output": {"kind": "pwm", "counter_steps": 1024}}
-    )
-    assert ok.output.counter_steps == 1024
+    ok = profile_from_dict({"modulator": {"levels": 65537}, "output": {"kind": "pwm"}})
+    assert ok.modulator.levels == 65537
