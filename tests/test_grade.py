@@ -2,6 +2,10 @@ import dataclasses
 import json
 import math
 import os
+import signal
+import subprocess
+import sys
+import time
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -372,3 +376,63 @@ def test_dataclass_is_frozen():
     g = _grade("a", [1.0])
     with pytest.raises(dataclasses.FrozenInstanceError):
         g.name = "b"
+
+
+def blocking_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """Finishes at once for loop order 2; otherwise marks that it started and waits forever."""
+    if profile.modulator.order != 2:
+        Path(os.environ["AUDIODSM_TEST_CALLS"], f"started.{profile.name}").touch()
+        while True:
+            time.sleep(0.05)
+    return fake_battery(profile)
+
+
+_CTRL_C_SCRIPT = """
+import sys
+sys.path.insert(0, {tests!r})
+from test_grade import blocking_battery
+from audiodsm.evaluate.grade import collect_profiles, grade_batch
+from audiodsm.spec import parse_spec
+
+if __name__ == "__main__":
+    spec = parse_spec('[[target]]\\nmetric = "dynamic_range_db_a"\\nat_least = 90\\n')
+    b = grade_batch(collect_profiles([{pdir!r}]), spec, battery=blocking_battery, jobs=2,
+                    cache_dir={cache!r})
+    print("RESULT", b.interrupted, [g.name for g in b.grades], len(b.unfinished), flush=True)
+"""
+
+
+def test_ctrl_c_on_a_parallel_batch_keeps_finished_results(tmp_path, calls):
+    # a real SIGINT to the whole process group, as a terminal's Ctrl-C sends it
+    pdir = tmp_path / "p"
+    pdir.mkdir()
+    for name, order in (("a", 2), ("b", 3), ("c", 4)):
+        (pdir / f"{name}.toml").write_text(profile_text(name, order))
+    cache = tmp_path / "cache"
+    script = tmp_path / "run.py"
+    script.write_text(
+        _CTRL_C_SCRIPT.format(tests=str(Path(__file__).parent), pdir=str(pdir), cache=str(cache))
+    )
+    proc = subprocess.Popen(
+        [sys.executable, str(script)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        start_new_session=True,
+    )
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            started = [p for p in calls.iterdir() if p.name.startswith("started.")]
+            if len(list(cache.glob("*.npz"))) == 1 and started:
+                break
+            time.sleep(0.1)
+        else:
+            pytest.fail("the batch never got going")
+        os.killpg(proc.pid, signal.SIGINT)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+    assert "RESULT True ['a'] 2" in out, err
+    assert len(list(cache.glob("*.npz"))) == 1
