@@ -237,6 +237,9 @@ def test_equal_rates_pass_through(rng):
     x = rng.standard_normal((100, 2))
     y, _ = dn.process(x)
     assert np.array_equal(y, x)
+    assert not np.shares_memory(y, x)  # never hands back the caller's buffer
+    y1, _ = dn.process(x[:, 0])
+    assert y1.shape == (100,) and not np.shares_memory(y1, x)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -672,8 +672,8 @@ def _with_history(held: np.ndarray, frames: np.ndarray) -> np.ndarray:
 
 
 def _to_frames(frames: np.ndarray, ndim: int) -> np.ndarray:
-    """(n, channels) back to the caller's layout."""
-    return frames[:, 0].copy() if ndim == 1 else frames
+    """A fresh (n, channels) C-contiguous array back in the caller's layout (no copy)."""
+    return frames.reshape(-1) if ndim == 1 else frames
 
 
 def _frozen(a: np.ndarray) -> np.ndarray:
