@@ -79,6 +79,25 @@ kind = "lc"
 """
 )
 
+PWM_DEAD_TIME = parse_profile(
+    """
+name = "pwm-dead-time"
+[modulator]
+order = 3
+levels = 9
+max_gain = 2.0
+dither_lsb = 1.0
+[output]
+kind = "pwm"
+pwm_carrier = "trailing"
+tick_subdivision = 8
+dead_time_ticks = 1
+[reconstruction]
+kind = "lc"
+series_ohm = 0.1
+"""
+)
+
 CHEBY_FIR = parse_profile(
     """
 name = "cheby-fir"
@@ -113,8 +132,15 @@ def fit_tone(y, rate, freq):
 
 @pytest.mark.parametrize(
     ("profile", "listen_rate"),
-    [(PDM, None), (NRZ_LC, None), (PWM_BRIDGE, None), (CHEBY_FIR, 96000), (PDM, 44100)],
-    ids=["pdm", "nrz-lc", "pwm-bridge", "cheby-fir-96k", "pdm-44k1"],
+    [
+        (PDM, None),
+        (NRZ_LC, None),
+        (PWM_BRIDGE, None),
+        (PWM_DEAD_TIME, None),
+        (CHEBY_FIR, 96000),
+        (PDM, 44100),
+    ],
+    ids=["pdm", "nrz-lc", "pwm-bridge", "pwm-dead-time", "cheby-fir-96k", "pdm-44k1"],
 )
 def test_997hz_at_minus_1_dbfs_comes_out_at_minus_1_dbfs(profile, listen_rate):
     # AES17 level definition: 0 dBFS = the rms of a full-scale sine, so a -1 dBFS tone has a

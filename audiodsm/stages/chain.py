@@ -457,8 +457,11 @@ class Chain:
         else:  # a fine quantizer (up to 24 bits): a spread of its exact levels is enough
             codes = np.unique(np.round(np.linspace(0.0, levels - 1.0, _CAL_MAX_LEVELS)))
             probe = codes * (2.0 / (levels - 1)) - 1.0
-        wf, _, _ = self._waveform(probe, None)
-        means = _mean_level(wf)
+        # each level held for a few frames, so edge effects between frames (dead time) settle;
+        # the last frame of each run is the stage's steady output for that level
+        hold = 4
+        wf, _, _ = self._waveform(np.repeat(probe, hold), None)
+        means = _mean_level(wf)[hold - 1 :: hold]
         # least-squares line through (level, mean output): slope = volts per full-scale unit
         slope, offset = np.polyfit(probe, means, 1)
         self.stage_gain = float(slope)
