@@ -207,6 +207,23 @@ def test_weighting_filter_stable_and_normalised():
     )
 
 
+@pytest.mark.parametrize("kind", ["a", "ccir"])
+def test_weighting_filters_settle_quickly(kind):
+    # No fitted pole may sit near z = 1 (a near pole-zero cancellation would ring for seconds
+    # and spoil block measurements). The slowest pole allowed is the A network's own 20.6 Hz
+    # pole (IEC 61672-1 Annex E), mapped by the bilinear transform; the impulse response must
+    # fall below 1e-6 of its peak within 0.5 s (20.6 Hz: exp(-2 pi 20.6 0.5) ~ 1e-28, with a
+    # double pole still far below).
+    rate = 48000.0
+    sos = weighting_filter(kind, rate)
+    slowest = np.exp(-2 * np.pi * 20.0 / rate)
+    assert np.max(np.abs(signal.sos2zpk(sos)[1])) <= slowest
+    impulse = np.zeros(int(rate))
+    impulse[0] = 1.0
+    h = signal.sosfilt(sos, impulse)
+    assert np.max(np.abs(h[int(0.5 * rate) :])) < 1e-6 * np.max(np.abs(h))
+
+
 def test_weighting_filter_bad_rate_and_kind():
     with pytest.raises(ParameterError, match="rate_hz"):
         weighting_filter("a", 32000.0)
