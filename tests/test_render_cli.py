@@ -350,3 +350,39 @@ def test_inputs_whose_outputs_would_collide_are_refused(setup):
     assert res.exit_code == 2
     assert "would collide" in res.stderr
     assert final_files(tmp / "out") == []
+
+
+def test_a_real_ctrl_c_leaves_nothing(setup):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    tmp, prof, _, _ = setup
+    n = 20 * RATE
+    t = np.arange(n) / RATE
+    long_wav = tmp / "src" / "long.wav"
+    sf.write(long_wav, 0.5 * np.column_stack([np.sin(2 * np.pi * 440 * t)] * 2), RATE)
+    out = tmp / "out"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "audiodsm", "render", str(prof), str(long_wav)]
+        + ["--out-dir", str(out), "--error-file", "--no-progress"],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    )
+    try:
+        deadline = time.monotonic() + 120
+        # wait until the temporary files exist (the render is under way)
+        while time.monotonic() < deadline and not (out.exists() and any(out.iterdir())):
+            time.sleep(0.05)
+        time.sleep(0.3)
+        assert proc.poll() is None, "the render finished before it could be interrupted"
+        before = sorted(p.name for p in out.iterdir())
+        proc.send_signal(signal.SIGINT)
+        proc.wait(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode != 0
+    assert any(name.endswith(".partial") for name in before)  # it was writing
+    assert sorted(p.name for p in out.iterdir()) == []  # no final and no temporary files
