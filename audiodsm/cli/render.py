@@ -522,6 +522,9 @@ def render(
     -1 dBFS), optionally an amplified error-only WAV and the modulator stream, and a summary:
     rms and peak per channel, clip/overload/pulse counts, and the A-weighted noise in the
     input's silent passages.
+
+    Caution: listening files can be loud. Test tones and amplified error files can damage
+    hearing and tweeters; start playback at low volume.
     """
     from audiodsm.errors import ParameterError
     from audiodsm.profile import AUDIO_RATES_HZ, load_profile
