@@ -144,6 +144,42 @@ def test_stable_amplitude_metric_refers_to_the_chain_input(stability_by_order):
     assert np.allclose(hist["edges"][:, -1], hist["peak"])
 
 
+def test_overload_above_the_stable_amplitude_only():
+    # Common practice (Schreier & Temes 2005, ch. 4): a single-bit loop driven past its
+    # maximum stable amplitude overloads (its states run away and the guard acts), while
+    # below it the guard stays idle. Without the chain's headroom (input_scale = 1) the
+    # 5th-order loop's limit lies below 0 dBFS, so probes above it run through the chain.
+    prof = profile_from_dict({"name": "no-headroom", "modulator": {"input_scale": 1.0}})
+    res = run_battery(prof, tests=("stability", "level_sweep"), plan=BatteryPlan.quick())
+    msa = res.metrics["max_stable_amplitude_dbfs"]
+    assert msa < 0.0
+    over = res.curves["overload"]
+    assert res.metrics["overload_count"] == 0
+    assert np.all(over["overload_count"][over["level_dbfs"] <= msa] == 0)
+    assert np.any(over["overload_count"][over["level_dbfs"] > msa] > 0)
+    assert msa < res.metrics["overload_onset_dbfs"] <= 0.0
+    # above the limit the THD+N collapses from the noise floor to gross distortion
+    below = over["thd_n_db"][over["level_dbfs"] == -20.0][0]
+    assert over["thd_n_db"][-1] > below + 40.0
+
+
+def test_a_tone_lost_in_a_limit_cycle_is_reported_not_averaged():
+    # A low-order single-bit loop without dither can lock into a limit cycle that ignores a
+    # small input (Gray 1989 for the first-order case; common practice for low orders). Here
+    # a 2nd-order loop at OSR 32 loses the low tones: they are reported as lost and kept out
+    # of the noise-modulation spread (which would otherwise compare against digital zero).
+    prof = profile_from_dict(
+        {"name": "second", "modulator": {"order": 2}, "upsampler": {"osr": 32}}
+    )
+    res = run_battery(prof, tests=("level_sweep",), plan=BatteryPlan.quick())
+    curve = res.curves["thd_n_vs_level"]
+    off = np.abs(curve["tone_dbfs"] - curve["level_dbfs"]) > 3.0
+    assert off.any()
+    assert res.metrics["tone_lost_at_dbfs"] == np.max(curve["level_dbfs"][off])
+    assert 0.0 <= res.metrics["noise_modulation_db"] < 30.0
+    assert any("did not come through" in n for n in res.notes)
+
+
 def test_first_order_idle_tone_at_the_predicted_frequency():
     # R. M. Gray, IEEE Trans. Commun. 37(6), 1989 (and J. C. Candy, 1981): a first-order
     # single-bit loop (NTF = 1 - z^-1) with a constant input u makes a periodic output whose

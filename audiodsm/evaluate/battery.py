@@ -104,6 +104,11 @@ METRIC_UNITS = {
         "dB",
         "spread of the A-weighted noise floor over tone levels",
     ),
+    "tone_lost_at_dbfs": (
+        "level_sweep",
+        "dBFS",
+        "highest sweep level at which the 997 Hz tone came out more than 3 dB off (none: null)",
+    ),
     "overload_onset_dbfs": (
         "level_sweep",
         "dBFS",
@@ -157,6 +162,10 @@ _MIN_SEARCH_S = 0.4
 _TAIL_S = 0.05
 #: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
 _SPECTRUM_RESOLUTION_HZ = 100.0
+#: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
+_LINE_FLOOR_DBFS = -200.0
+#: A sweep tone more than this far from its level counts as lost (dead zone, limit cycle).
+_LOST_DB = 3.0
 
 
 @dataclass(frozen=True)
@@ -335,17 +344,18 @@ class BatteryResult:
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
-        return {k: _plain_number(v) for k, v in self.metrics.items()}
+        return {k: _plain_number(v, finite_only=True) for k, v in self.metrics.items()}
 
 
-def _plain_number(v):
+def _plain_number(v, *, finite_only=False):
+    """A numpy scalar as the plain Python bool, int or float (non-finite: None if asked)."""
     if isinstance(v, (bool, np.bool_)):
         return bool(v)
     if isinstance(v, (int, np.integer)):
         return int(v)
     if isinstance(v, (float, np.floating)):
         v = float(v)
-        return v if math.isfinite(v) else None
+        return v if (math.isfinite(v) or not finite_only) else None
     return v
 
 
@@ -425,8 +435,10 @@ def _lines(x, rate, *, false_alarm, exclude_hz=()):
     """Idle-tone search on one capture: (strongest line level or None, its Hz, limit dBFS).
 
     Lines within three main lobes of a frequency in ``exclude_hz`` (the test tone's harmonics)
-    are not idle tones and are left out. The detection limit is the weakest line the detector
-    would report anywhere in the band: (threshold - 1) x local floor x ENBW in bins.
+    are not idle tones and are left out, and so are lines below ``_LINE_FLOOR_DBFS`` (patterns
+    of float64 rounding in an output that is digitally silent). The detection limit is the
+    weakest line the detector would report anywhere in the band, about (threshold - 1) x local
+    floor x ENBW in bins, and no lower than that floor.
     """
     from audiodsm.measure.idle_tones import find_idle_tones, line_spectrum
 
@@ -435,11 +447,17 @@ def _lines(x, rate, *, false_alarm, exclude_hz=()):
     bin_hz = float(spec.freq_hz[1] - spec.freq_hz[0])
     enbw_bins = float(spec.enbw_hz) / bin_hz
     guard = 3.0 * max(enbw_bins, 2.0) * bin_hz
-    kept = [t for t in res.tones if not any(abs(t.frequency_hz - f) <= guard for f in exclude_hz)]
+    kept = [
+        t
+        for t in res.tones
+        if t.level_dbfs > _LINE_FLOOR_DBFS
+        and not any(abs(t.frequency_hz - f) <= guard for f in exclude_hz)
+    ]
     band = (res.freq_hz >= _BAND[0]) & (res.freq_hz <= _BAND[1])
     t_lin = 10.0 ** (res.threshold_db / 10.0)
     floor = 10.0 ** (res.floor_dbfs[band] / 10.0)
     limit = 10.0 * math.log10(float(np.max((t_lin - 1.0) * floor * enbw_bins)))
+    limit = max(limit, _LINE_FLOOR_DBFS)
     if kept:
         best = max(kept, key=lambda t: t.level_dbfs)
         return best.level_dbfs, best.frequency_hz, limit
@@ -784,6 +802,15 @@ def _dc_offsets(plan):
     return [float(s * m) for s in (1.0, -1.0) for m in mags]
 
 
+def _probe_levels(msa, steps_db):
+    """Tone levels (dBFS) above the stable amplitude, up to 0 dBFS, for the overload probes."""
+    msa_db = _db(msa)
+    if not math.isfinite(msa_db):
+        return []
+    levels = {round(min(0.0, msa_db + d), 3) for d in steps_db}
+    return sorted(v for v in levels if v > msa_db)
+
+
 def run_battery(
     profile: ChainProfile,
     *,
@@ -894,36 +921,29 @@ def run_battery(
     # inside each (the least-squares fits) oversubscribes them and slows down many times over.
     from threadpoolctl import threadpool_limits
 
-    with (
-        threadpool_limits(limits=1, user_api="blas"),
-        _cf.ThreadPoolExecutor(max_workers=workers) as pool,
-    ):
-        pending = {}
-        for i, (label, fn, args) in enumerate(runs):
-            pending[pool.submit(timed, fn, ctx, with_seed(i), *args)] = label
-        while pending:
-            finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
-            for fut in finished:
-                label = pending.pop(fut)
-                part, spent = fut.result()
-                run_seconds[label] = run_seconds.get(label, 0.0) + spent
-                results.append(part)
-                done += 1
-                if progress is not None:
-                    progress(done, total, label)
-                if label == "stability":
-                    msa_db = _db(part["msa"])
-                    probe = sorted(
-                        {
-                            round(min(0.0, msa_db + d), 3)
-                            for d in plan.overload_steps_db
-                            if math.isfinite(msa_db)
-                        }
-                        - {round(msa_db, 3)}
-                    )
-                    probe = [p for p in probe if p > msa_db]
-                    fut2 = pool.submit(timed, _test_overload, ctx, with_seed(len(runs)), probe)
-                    pending[fut2] = "overload"
+    pool = _cf.ThreadPoolExecutor(max_workers=workers)
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            pending = {}
+            for i, (label, fn, args) in enumerate(runs):
+                pending[pool.submit(timed, fn, ctx, with_seed(i), *args)] = label
+            while pending:
+                finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
+                for fut in finished:
+                    label = pending.pop(fut)
+                    part, spent = fut.result()
+                    run_seconds[label] = run_seconds.get(label, 0.0) + spent
+                    results.append(part)
+                    done += 1
+                    if progress is not None:
+                        progress(done, total, label)
+                    if label == "stability":
+                        probe = _probe_levels(part["msa"], plan.overload_steps_db)
+                        fut2 = pool.submit(timed, _test_overload, ctx, with_seed(len(runs)), probe)
+                        pending[fut2] = "overload"
+    finally:
+        # on an error or Ctrl-C, runs not yet started are dropped; running ones finish
+        pool.shutdown(wait=True, cancel_futures=True)
     metrics, curves, notes = _assemble(results, tests, plan, profile)
     return BatteryResult(
         profile_name=profile.name,
@@ -953,6 +973,12 @@ _SCALARS = (
     "imd_smpte_db",
     "imd_difference_db",
 )
+
+
+def _came_through(point) -> bool:
+    """Whether a sweep tone came out within ``_LOST_DB`` of its level (AES17 gain at 997 Hz)."""
+    tone = point["tone_dbfs"]
+    return tone is not None and math.isfinite(tone) and abs(tone - point["level_dbfs"]) <= _LOST_DB
 
 
 def _assemble(results, tests, plan, profile):
@@ -1003,12 +1029,24 @@ def _assemble(results, tests, plan, profile):
             k: np.array([p[k] for p in sweep], dtype=float)
             for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "thd_n_db_a", "overload_count")
         }
+        # a tone that does not come through (a loop stuck in a limit cycle or dead zone) has
+        # no noise floor "under" it: it is reported as lost, not as a noise level
+        lost = [p["level_dbfs"] for p in sweep if not _came_through(p)]
+        metrics["tone_lost_at_dbfs"] = max(lost) if lost else None
         floor = [
             p["noise_dbfs_a"]
             for p in sweep
-            if -90.0 <= p["level_dbfs"] <= 0.0 and p["level_dbfs"] <= msa_db + 1e-9
+            if -90.0 <= p["level_dbfs"] <= 0.0
+            and p["level_dbfs"] <= msa_db + 1e-9
+            and _came_through(p)
         ]
         metrics["noise_modulation_db"] = (max(floor) - min(floor)) if len(floor) >= 2 else None
+        if lost:
+            notes.append(
+                f"level sweep: the 997 Hz tone did not come through within {_LOST_DB:g} dB at "
+                + ", ".join(f"{v:g}" for v in sorted(lost, reverse=True))
+                + " dBFS (left out of the noise modulation)"
+            )
         curves["noise_vs_level"] = {
             "level_dbfs": np.array([p["level_dbfs"] for p in sweep]),
             "noise_dbfs_a": np.array([p["noise_dbfs_a"] for p in sweep]),
@@ -1074,5 +1112,5 @@ def _assemble(results, tests, plan, profile):
         pwm = profile.output.kind == "pwm"
         metrics["pwm_dropped_pulses"] = dropped if pwm else None
         metrics["pwm_stretched_pulses"] = stretched if pwm else None
-    ordered = {k: metrics[k] for k in METRIC_UNITS if k in metrics}
+    ordered = {k: _plain_number(metrics[k]) for k in METRIC_UNITS if k in metrics}
     return ordered, curves, notes
