@@ -462,8 +462,13 @@ class Chain:
         hold = 4
         wf, _, _ = self._waveform(np.repeat(probe, hold), None)
         means = _mean_level(wf)[hold - 1 :: hold]
-        # least-squares line through (level, mean output): slope = volts per full-scale unit
-        slope, offset = np.polyfit(probe, means, 1)
+        # least-squares line through (level, mean output): slope = volts per full-scale unit.
+        # With five or more levels the two end levels are left out: a PWM leg held fully on or
+        # off has no edges, so dead time costs it nothing, while every level between loses the
+        # same edge time. The line through the inner levels is the stage's transfer where a
+        # signal spends its time, and it leaves no offset at mid-scale (silence).
+        fit = slice(1, -1) if probe.size >= 5 else slice(None)
+        slope, offset = np.polyfit(probe[fit], means[fit], 1)
         self.stage_gain = float(slope)
         self.offset = float(offset)
         f = _CAL_FREQ_HZ
