@@ -2,8 +2,9 @@
 
 One channel's path is::
 
-    audio block --clip/refuse--> Upsampler --> Modulator --> output stage (PDM | NRZ | PWM)
-        --> [semi-digital FIR] --> analog reconstruction filter (exact for the waveform)
+    audio block --clip/refuse--> x input_scale (headroom) --> Upsampler --> Modulator
+        --> output stage (PDM | NRZ | PWM) --> [semi-digital FIR]
+        --> analog reconstruction filter (exact for the waveform)
         --> listening Downsampler --> calibration --> listening samples
 
 Every stage follows ``process(x, state) -> (y, state)`` and gives the same output for any
@@ -11,13 +12,15 @@ split of its input into blocks, so the chain does too: :meth:`Chain.process` is 
 function of the block and a :class:`ChainState` value. Channels are independent and run in
 parallel threads (the compiled kernels release the GIL). A block of input frames never turns
 into more than about :data:`MAX_BLOCK_MODULATOR_SAMPLES` modulator samples per channel, so
-memory stays bounded for any input length.
+memory stays bounded for any input length; each worker runs its block through the stages in
+pieces of :data:`CACHE_PIECE_MODULATOR_SAMPLES`, which stay in the core's cache.
 
-Calibration: the chain's static transfer (output-stage volts per full-scale unit and its
-offset, the semi-digital FIR's gain and the analog filter's, upsampler's and downsampler's
-responses at 997 Hz) is computed when the chain is built and divided out, so a -1 dBFS
-997 Hz tone comes out at -1 dBFS (the AES17 level definition: 0 dBFS is the rms of a
-full-scale sine).
+Calibration: the chain's static transfer (the headroom factor, the output stage's volts per
+full-scale unit and its offset, the loop's signal transfer, the semi-digital FIR's gain and
+the analog filter's, upsampler's and downsampler's responses at 997 Hz) is computed when the
+chain is built and divided out, so a -1 dBFS 997 Hz tone comes out at -1 dBFS (the AES17 level
+definition: 0 dBFS is the rms of a full-scale sine). The linear parts are applied where they
+cost least: the headroom factor before the upsampler, the calibration after the decimator.
 
 Time alignment: :meth:`Chain.stream` and :func:`run_chain` drop the chain's latency (rounded
 to a whole listening sample) from the start and flush the chain with silence at the end, so the
@@ -207,11 +210,10 @@ class ChainResult:
 
 
 def _build_ntf(mod):
+    """The NTF a profile gives by its zeros and poles (checked by the design library)."""
     from audiodsm.design.ntf import ntf_from_zeros_poles
 
-    if mod.explicit_ntf:
-        return ntf_from_zeros_poles(np.array(mod.zeros), np.array(mod.poles))
-    return None  # designed later, once the OSR is known
+    return ntf_from_zeros_poles(np.array(mod.zeros), np.array(mod.poles))
 
 
 @contextlib.contextmanager
@@ -1012,6 +1014,15 @@ def run_chain(
     -----
     The result does not depend on how the chain splits the signal into blocks: every stage's
     streaming output equals its one-shot output bit for bit.
+
+    Levels follow AES17: a sine whose peak reaches full scale (±1.0) is 0 dBFS, and the
+    calibration makes a 997 Hz tone come out at the level it went in.
+
+    References
+    ----------
+    .. [1] AES17-2015, "AES standard method for digital audio engineering - Measurement of
+       digital audio equipment", Audio Engineering Society (full-scale level definition and
+       the 997 Hz test frequency).
     """
     keep = _check_keep(keep)
     x = np.asarray(x, dtype=np.float64)
