@@ -386,3 +386,20 @@ def test_a_real_ctrl_c_leaves_nothing(setup):
     assert proc.returncode != 0
     assert any(name.endswith(".partial") for name in before)  # it was writing
     assert sorted(p.name for p in out.iterdir()) == []  # no final and no temporary files
+
+
+def test_error_gain_asks_for_the_error_file(setup):
+    tmp, prof, wav, _ = setup
+    out = tmp / "out"
+    res = invoke([str(prof), str(wav), "--out-dir", str(out), "--error-gain", "20", "--json"])
+    assert res.exit_code == 0, res.stderr
+    assert (out / "take one.test-dac.error+20dB.wav").exists()
+    assert "20 dB" in res.stderr  # the caution names the gain
+    res = invoke(
+        [str(prof), str(wav), "--out-dir", str(tmp / "o2"), "--error-gain", "20"]
+        + ["--no-error-file"]
+    )
+    assert res.exit_code == 0
+    assert not any("error" in p.name for p in (tmp / "o2").iterdir())
+    res = invoke([str(prof), str(wav), "--out-dir", str(tmp / "o3"), "--error-gain", "90"])
+    assert res.exit_code == 2 and "--error-gain=90.0" in res.stderr

@@ -498,7 +498,8 @@ def _table(summary: dict) -> str:
     "error_gain",
     type=float,
     default=None,
-    help="Gain of the error-only file in dB (default: the profile's); it is in the file name.",
+    help="Gain of the error-only file in dB (default: the profile's); it is in the file name. "
+    "Implies --error-file unless --no-error-file is given.",
 )
 @click.option("--replace", is_flag=True, help="Replace outputs that already exist.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON summary per file.")
@@ -536,7 +537,10 @@ def render(
         raise ParameterError(
             "--listen-rate", listen_rate, "one of " + ", ".join(map(str, AUDIO_RATES_HZ))
         )
-    want_error = profile.listening.error_file if error_file is None else error_file
+    if error_file is None:  # not given: the profile decides, and --error-gain asks for it
+        want_error = profile.listening.error_file or error_gain is not None
+    else:
+        want_error = error_file
     gain_db = None
     if want_error:
         gain_db = profile.listening.error_gain_db if error_gain is None else float(error_gain)
