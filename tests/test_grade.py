@@ -436,3 +436,45 @@ def test_ctrl_c_on_a_parallel_batch_keeps_finished_results(tmp_path, calls):
             os.killpg(proc.pid, signal.SIGKILL)
     assert "RESULT True ['a'] 2" in out, err
     assert len(list(cache.glob("*.npz"))) == 1
+
+
+def test_real_battery_on_a_shipped_profile(tmp_path):
+    # the real battery, cut to two of its tests and its short plan, on the shipped 17-level loop
+    from audiodsm.evaluate.battery import BatteryPlan
+    from audiodsm.evaluate.report import write_report
+
+    root = Path(__file__).resolve().parents[1]
+    sheet = parse_spec(
+        '[[target]]\nmetric = "dynamic_range_db_a"\nat_least = 100.0\n'
+        '[[target]]\nmetric = "thd_n_db"\nat_level_dbfs = -20.0\nat_most = -90.0\n'
+        '[[target]]\nmetric = "max_stable_amplitude_dbfs"\nat_least = -6.0\n'
+    )
+    options = {"plan": BatteryPlan.quick(), "tests": ("dynamic_range", "level_sweep")}
+    batch = grade_batch(
+        collect_profiles([root / "profiles" / "dac_chip" / "nrz17_64x.toml"]),
+        sheet,
+        jobs=1,
+        cache_dir=tmp_path / "cache",
+        battery_options=options,
+    )
+    (g,) = batch.grades
+    dr, thd, msa = g.lines
+    assert dr.margin == pytest.approx(g.metrics["dynamic_range_db_a"] - 100.0)
+    # the sweep point at -20 dBFS is the battery's own -20 dBFS THD+N reading
+    assert thd.value == pytest.approx(g.metrics["thd_n_db_at_minus20_dbfs"])
+    assert thd.margin == pytest.approx(-90.0 - thd.value)
+    assert msa.reason == "not measured by the battery" and not g.passed
+    # the options are part of the cache key: the same run is read back, a fuller one is not
+    again = grade_batch(
+        collect_profiles([root / "profiles" / "dac_chip"]),
+        sheet,
+        jobs=1,
+        cache_dir=tmp_path / "cache",
+        battery_options=options,
+        battery=fake_battery,
+    )
+    by_name = {x.name: x for x in again.grades}
+    assert by_name[g.name].cached and by_name[g.name].lines == g.lines
+    assert not any(x.cached for x in again.grades if x.name != g.name)
+    page = write_report(batch, tmp_path / "r")["html"].read_text()
+    assert page.count("data:image/png;base64,") == 1 + 2  # overview, spectrum, THD+N sweep
