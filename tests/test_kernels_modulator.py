@@ -8,7 +8,7 @@ import pytest
 from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
 from audiodsm.design.realize import STRUCTURES, realize_ntf
 from audiodsm.stages import _kernels
-from audiodsm.stages.modulator import _feedback_kernel_key
+from audiodsm.stages.modulator import _kernel_key
 
 MASK = (1 << 64) - 1
 GOLDEN = 0x9E3779B97F4A7C15
@@ -113,7 +113,7 @@ def run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start):
     tr = np.empty((len(u), n))
     coef = coefficients(loop)
     if fast:
-        kernel = _kernels.feedback_kernel(*fast)
+        kernel = _kernels.loop_kernel(*fast)
         kernel(u, out, coef, st, rng, pk, cnt, levels, dscale, ib, sb, reset)
         tr = None
     else:
@@ -148,15 +148,21 @@ def make_loop(order, structure, kind, rng):
     return loop
 
 
-# every order as designed; scaled and leaky loops (other specialised kernels) for a few orders.
-# Each specialised kernel compiles once (then numba's cache serves it), so the set is kept small.
-KINDS = [(order, "designed") for order in range(1, 9)]
-KINDS += [(order, kind) for order in (2, 5, 8) for kind in ("scaled", "leaky")]
+# The generic loop for every order and structure; the specialised kernels for every order of
+# the feedback structure (the fast path) and a spread of orders of the others, as designed,
+# scaled (chain gains != 1) and with leaky zeros. Each specialised kernel compiles once (then
+# numba's cache serves it), so the set is kept to what exercises different template branches.
+CASES_BY_STRUCTURE = []
+for _structure in STRUCTURES:
+    _orders = range(1, 9) if _structure == "feedback" else (1, 2, 4, 7)
+    CASES_BY_STRUCTURE += [(_structure, order, "designed") for order in _orders]
+    CASES_BY_STRUCTURE += [
+        (_structure, order, kind) for order in (3, 8) for kind in ("scaled", "leaky")
+    ]
 
 
-@pytest.mark.parametrize(("order", "kind"), KINDS)
-@pytest.mark.parametrize("structure", STRUCTURES)
-def test_kernels_equal_python_twin(order, kind, structure, rng):
+@pytest.mark.parametrize(("structure", "order", "kind"), CASES_BY_STRUCTURE)
+def test_kernels_equal_python_twin(structure, order, kind, rng):
     loop = make_loop(order, structure, kind, rng)
     u = 0.5 * np.sin(np.arange(300) * 0.05) + 0.05 * rng.standard_normal(300)
     start = 0.01 * rng.standard_normal(order)
@@ -176,12 +182,11 @@ def test_kernels_equal_python_twin(order, kind, structure, rng):
             sb,
             reset,
         )
-        kernels = [False]
-        if structure == "feedback":
-            # the specialised kernel that fits this loop, and the fully general one
-            kernels.append(_feedback_kernel_key(loop))
-            if kind == "designed" and order in (1, 4, 7):
-                kernels.append((order, False, False, -1))  # the fully general one
+        # the generic loop, the specialised kernel that fits this loop, and (for a few orders)
+        # the least specialised one
+        kernels = [False, _kernel_key(loop)]
+        if kind == "designed" and order in (1, 4, 7) and structure == "feedback":
+            kernels.append((structure, order, False, False, -1))
         for fast in kernels:
             got = run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start)
             np.testing.assert_array_equal(got[0], expected[0])  # outputs, bit for bit
@@ -209,8 +214,8 @@ def test_generator_matches_splitmix64_reference_values():
 
 def test_specialised_kernel_is_chosen_for_designed_loops():
     loop = realize_ntf(design_ntf(5, 64), "feedback")
-    assert _feedback_kernel_key(loop) == (5, True, True, 2)
-    loop = realize_ntf(design_ntf(4, 64, optimize_zeros=False), "feedback")
-    assert _feedback_kernel_key(loop) == (4, True, True, 0)
-    scaled = realize_ntf(design_ntf(3, 64), "feedback").scaled([2.0, 3.0, 1.0])
-    assert _feedback_kernel_key(scaled) == (3, True, False, 1)
+    assert _kernel_key(loop) == ("feedback", 5, True, True, 2)
+    loop = realize_ntf(design_ntf(4, 64, optimize_zeros=False), "error-feedback")
+    assert _kernel_key(loop) == ("error-feedback", 4, True, True, 0)
+    scaled = realize_ntf(design_ntf(3, 64), "feedforward").scaled([2.0, 3.0, 1.0])
+    assert _kernel_key(scaled) == ("feedforward", 3, True, False, 1)

@@ -176,28 +176,35 @@ def loop_any_structure(
     counts[0] = overloads
 
 
-# The feedback structure is the fast path. Its kernels keep every state in a local scalar (a
-# loop over a state array runs several times slower) and leave out the multiplications a given
-# loop does not need: the leak when every zero is on the unit circle, the chain gain when the
-# states are unscaled, and the resonator term on integrators that are not the upstream half of
-# a resonator pair. One kernel per (order, leak, chain gain, pairs) is written from the template
-# below on first use and compiled with numba's on-disk cache (keyed to this file, so editing the
-# template recompiles). Each computes exactly what loop_any_structure computes for structure 0.
+# The specialised loops. Each keeps every state in a local scalar (a loop over a state array
+# runs several times slower) and leaves out the multiplications a given loop does not need: the
+# leak when every zero is on the unit circle, the chain gain when the states are unscaled, and
+# the resonator term on integrators that are not the upstream half of a resonator pair. One
+# kernel per (structure, order, leak, chain gain, pairs) is written from the template below on
+# first use and compiled with numba's on-disk cache (keyed to this file, so editing the template
+# recompiles). Each computes exactly what loop_any_structure computes for its structure. The
+# feedforward kernels assume, as realize_ntf builds them, that only the first integrator
+# receives the quantizer output.
+
+STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
 
 
-def feedback_kernel_name(order, lossless, unit_chain, pairs):
-    """Name of the specialised feedback kernel for these properties."""
+def loop_kernel_name(structure, order, lossless, unit_chain, pairs):
+    """Name of the specialised kernel for these properties."""
+    kind = structure.replace("-", "_")
     leak = "l" if lossless else "d"
     chain = "u" if unit_chain else "k"
     resonators = "all" if pairs < 0 else pairs
-    return f"feedback_loop_order{order}_{leak}{chain}_p{resonators}"
+    return f"{kind}_loop_order{order}_{leak}{chain}_p{resonators}"
 
 
-def feedback_kernel_source(order, lossless, unit_chain, pairs):
-    """Python source of one specialised feedback kernel (see feedback_kernel).
+def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
+    """Python source of one specialised loop kernel (see loop_kernel).
 
     Parameters
     ----------
+    structure : str
+        ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
     order : int
         1..8.
     lossless : bool
@@ -209,6 +216,7 @@ def feedback_kernel_source(order, lossless, unit_chain, pairs):
         or -1 to keep the resonator term on every integrator.
     """
     n = order
+    code = STRUCTURE_CODES[structure]
     lines = []
     add = lines.append
     xs = ", ".join(f"x{i}" for i in range(n))
@@ -217,7 +225,10 @@ def feedback_kernel_source(order, lossless, unit_chain, pairs):
     def has_g(i):
         return i < n - 1 and (pairs < 0 or (i % 2 == 0 and i < 2 * pairs))
 
-    add(f"def {feedback_kernel_name(order, lossless, unit_chain, pairs)}(")
+    def has_a(i):
+        return code != 1 or i == 0
+
+    add(f"def {loop_kernel_name(structure, order, lossless, unit_chain, pairs)}(")
     add("    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound,")
     add("    state_bound, reset,")
     add("):")
@@ -232,8 +243,11 @@ def feedback_kernel_source(order, lossless, unit_chain, pairs):
             add(f"    k{i} = coef[1, {i}]")
         if has_g(i):
             add(f"    g{i} = coef[2, {i}]")
-        add(f"    a{i} = coef[3, {i}]")
-        add(f"    s{i} = a{i} * step")
+        if has_a(i):
+            add(f"    a{i} = coef[3, {i}]")
+            add(f"    s{i} = a{i} * step")
+        if code == 1:
+            add(f"    c{i} = coef[5, {i}]")
     add("    b0 = coef[4, 0]")
     for i in range(n):
         add(f"    x{i} = state[{i}]")
@@ -251,7 +265,15 @@ def feedback_kernel_source(order, lossless, unit_chain, pairs):
 
     def body(single_bit, dithered):
         ind = "            "
-        body_lines = [f"{ind}y = x{n - 1}"]
+        if code == 0:
+            y = f"x{n - 1}"
+        elif code == 1:
+            y = "0.0"
+            for i in range(n):
+                y = f"({y} + c{i} * x{i})"
+        else:
+            y = f"u[t] + x{n - 1}"
+        body_lines = [f"{ind}y = {y}"]
         if dithered:
             body_lines += [
                 f"{ind}counter += _GOLDEN",
@@ -268,13 +290,20 @@ def feedback_kernel_source(order, lossless, unit_chain, pairs):
             body_lines += [
                 f"{ind}q = np.floor(w * half + offset)",
                 f"{ind}q = min(max(q, 0.0), top)",
-                f"{ind}out[t] = q * step - 1.0",
+                f"{ind}v = q * step - 1.0",
+                f"{ind}out[t] = v",
             ]
+        if code == 2:
+            body_lines.append(f"{ind}f = x{n - 1} + (v - y)")
         for i in range(n - 1, -1, -1):
-            if single_bit:
-                expr = f"{base(i)} - a{i} * v"
-            else:
-                expr = f"({base(i)} + a{i}) - q * s{i}"
+            expr = base(i)
+            if has_a(i):
+                if code == 2:
+                    expr = f"{expr} - a{i} * f"
+                elif single_bit:
+                    expr = f"{expr} - a{i} * v"
+                else:
+                    expr = f"({expr} + a{i}) - q * s{i}"
             if has_g(i):
                 expr = f"({expr}) - g{i} * n{i + 1}"
             body_lines.append(f"{ind}n{i} = {expr}")
@@ -311,20 +340,20 @@ def feedback_kernel_source(order, lossless, unit_chain, pairs):
     return "\n".join(lines) + "\n"
 
 
-_FEEDBACK_KERNELS = {}
+_LOOP_KERNELS = {}
 
 
-def feedback_kernel(order, lossless, unit_chain, pairs):
-    """Compiled feedback kernel for these properties (built from the template on first use).
+def loop_kernel(structure, order, lossless, unit_chain, pairs):
+    """Compiled specialised loop for these properties (built from the template on first use).
 
     Arguments of the returned function: ``(u, out, coef, state, rng, peaks, counts, levels,
     dither_scale, input_bound, state_bound, reset)``, as for ``loop_any_structure``.
     """
-    key = (int(order), bool(lossless), bool(unit_chain), int(pairs))
-    kernel = _FEEDBACK_KERNELS.get(key)
+    key = (str(structure), int(order), bool(lossless), bool(unit_chain), int(pairs))
+    kernel = _LOOP_KERNELS.get(key)
     if kernel is None:
-        source = feedback_kernel_source(*key)
-        name = feedback_kernel_name(*key)
+        source = loop_kernel_source(*key)
+        name = loop_kernel_name(*key)
         namespace = {}
         # compiled under this file's name so numba's cache can find (and invalidate) it
         exec(compile(source, __file__, "exec"), globals(), namespace)
@@ -332,7 +361,7 @@ def feedback_kernel(order, lossless, unit_chain, pairs):
         function.__module__ = __name__
         function.__qualname__ = name
         kernel = njit(cache=True, nogil=True)(function)
-        _FEEDBACK_KERNELS[key] = kernel
+        _LOOP_KERNELS[key] = kernel
     return kernel
 
 

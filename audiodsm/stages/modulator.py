@@ -31,7 +31,6 @@ __all__ = [
 ]
 
 GUARD_ACTIONS = ("reset", "clamp")
-_STRUCTURE_CODE = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
 _GOLDEN = 0x9E3779B97F4A7C15
 _MASK = (1 << 64) - 1
 
@@ -50,16 +49,22 @@ def _readonly(a: np.ndarray) -> np.ndarray:
     return a
 
 
-def _feedback_kernel_key(loop: LoopRealization) -> tuple[int, bool, bool, int]:
-    """Which specialised feedback kernel fits ``loop``: (order, lossless, unit chain, pairs)."""
+def _kernel_key(loop: LoopRealization) -> tuple[str, int, bool, bool, int] | None:
+    """Which specialised kernel fits ``loop``: (structure, order, lossless, unit chain, pairs).
+
+    None when no specialised kernel applies (a feedforward loop whose quantizer output reaches
+    more than the first integrator); the generic loop runs it then.
+    """
     n = loop.order
+    if loop.structure == "feedforward" and np.any(loop.feedback[1:] != 0.0):
+        return None
     lossless = bool(np.all(loop.leak == 1.0))
     unit_chain = bool(np.all(loop.chain_gain[1:] == 1.0))
     upstream = np.flatnonzero(loop.resonator[: n - 1] != 0.0)
     pairs = len(upstream)
     if not np.array_equal(upstream, np.arange(0, 2 * pairs, 2)):
         pairs = -1  # not the layout realize_ntf makes: keep every resonator term
-    return n, lossless, unit_chain, pairs
+    return loop.structure, n, lossless, unit_chain, pairs
 
 
 @dataclass(frozen=True, eq=False)
@@ -176,8 +181,8 @@ class Modulator:
             dtype=np.float64,
         )
 
-        if loop.structure == "feedback":
-            self._fast_kernel = _kernels.feedback_kernel(*_feedback_kernel_key(loop))
+        key = _kernel_key(loop)
+        self._fast_kernel = None if key is None else _kernels.loop_kernel(*key)
 
     @property
     def structure(self) -> str:
@@ -247,7 +252,7 @@ class Modulator:
         u = np.ascontiguousarray(u, dtype=np.float64)
         args = (self.levels, self.dither_lsb * self.step, self.input_bound, self.state_bound)
         reset = self.guard == "reset"
-        if trace is None and self.structure == "feedback":
+        if trace is None and self._fast_kernel is not None:
             self._fast_kernel(u, out, self._coef, st, rng, peaks, counts, *args, reset)
         else:
             tr = np.empty((0, self.order)) if trace is None else trace
@@ -259,7 +264,7 @@ class Modulator:
                 rng,
                 peaks,
                 counts,
-                _STRUCTURE_CODE[self.structure],
+                _kernels.STRUCTURE_CODES[self.structure],
                 *args,
                 reset,
                 tr,
