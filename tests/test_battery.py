@@ -304,3 +304,32 @@ def test_fine_quantizers_are_accepted_and_pwm_keeps_its_counter_bound():
         profile_from_dict({"modulator": {"levels": 65538}, "output": {"kind": "pwm"}})
     ok = profile_from_dict({"modulator": {"levels": 65537}, "output": {"kind": "pwm"}})
     assert ok.modulator.levels == 65537
+
+
+def test_pwm_short_pulses_are_counted():
+    # A double-edge carrier makes each counter code 2 x tick_subdivision = 8 ticks wide, so a
+    # 12-tick minimum catches the one-code pulses (codes 1 and N-1), which a -1 dBFS tone
+    # without headroom (input_scale = 1) drives the 9-level loop into all the time; the
+    # configured action must show in its own count and only there. Their number is the same
+    # either way: the output stage acts after the loop, so the same frames are caught.
+    plan = replace(BatteryPlan.quick(), sweep_levels_dbfs=(-1.0,))
+    counts = {}
+    for act in ("drop", "stretch"):
+        prof = profile_from_dict(
+            {
+                "name": f"pwm-{act}",
+                "modulator": {"order": 3, "levels": 9, "max_gain": 2.0, "input_scale": 1.0},
+                "output": {
+                    "kind": "pwm",
+                    "tick_subdivision": 4,
+                    "min_pulse_ticks": 12,
+                    "short_pulse_action": act,
+                },
+                "reconstruction": {"kind": "lc"},
+            }
+        )
+        res = run_battery(prof, tests=("level_sweep",), plan=plan)
+        counts[act] = (res.metrics["pwm_dropped_pulses"], res.metrics["pwm_stretched_pulses"])
+    assert counts["drop"][0] > 0 and counts["drop"][1] == 0
+    assert counts["stretch"][0] == 0 and counts["stretch"][1] > 0
+    assert counts["drop"][0] == counts["stretch"][1]
