@@ -301,6 +301,14 @@ def test_bad_input():
         mod.run(np.array([0.0, np.nan, 0.1]))
     with pytest.raises(ParameterError, match="x"):
         mod.run(np.array([0.0, np.inf]))
+    late = np.zeros(40_000)
+    late[35_001] = np.nan  # past the first internal chunk
+    with pytest.raises(ParameterError, match="frame 35001"):
+        mod.run(late)
+    two = np.zeros((100, 2))
+    two[7, 1] = -np.inf
+    with pytest.raises(ParameterError, match="frame 7"):
+        mod.run(two)
     with pytest.raises(ParameterError, match="x.shape"):
         mod.run(np.zeros((4, 2, 2)))
     _, st = mod.run(np.zeros((10, 2)))

@@ -35,6 +35,23 @@ _GOLDEN = 0x9E3779B97F4A7C15
 _MASK = (1 << 64) - 1
 
 
+_CHUNK = 1 << 15  # samples per kernel call inside one run
+_POOLS: dict[int, ThreadPoolExecutor] = {}
+
+
+def _thread_pool() -> ThreadPoolExecutor:
+    """One worker thread per core, shared by all modulators of this process.
+
+    Keyed by process id: a pool inherited through ``fork`` has no live threads in the child.
+    The kernels release the GIL, so channels really run in parallel.
+    """
+    pool = _POOLS.get(os.getpid())
+    if pool is None:
+        pool = ThreadPoolExecutor(max_workers=os.cpu_count() or 1, thread_name_prefix="modulator")
+        _POOLS[os.getpid()] = pool
+    return pool
+
+
 def _splitmix(value: int) -> int:
     """SplitMix64 output function on a Python int (used to derive per-channel seeds)."""
     z = value & _MASK
@@ -227,9 +244,6 @@ class Modulator:
         x2 = x.reshape(len(x), -1).astype(np.float64, copy=False)
         if x2.shape[1] == 0:
             raise ParameterError("x.shape", x.shape, "at least one channel")
-        if not np.all(np.isfinite(x2)):
-            bad = int(np.flatnonzero(~np.isfinite(x2).all(axis=1))[0])
-            raise ParameterError("x", f"non-finite sample at frame {bad}", "finite samples")
         channels = x2.shape[1]
         if state is None:
             state = self.initial_state(channels)
@@ -252,23 +266,33 @@ class Modulator:
         u = np.ascontiguousarray(u, dtype=np.float64)
         args = (self.levels, self.dither_lsb * self.step, self.input_bound, self.state_bound)
         reset = self.guard == "reset"
-        if trace is None and self._fast_kernel is not None:
-            self._fast_kernel(u, out, self._coef, st, rng, peaks, counts, *args, reset)
-        else:
-            tr = np.empty((0, self.order)) if trace is None else trace
-            _kernels.loop_any_structure(
-                u,
-                out,
-                self._coef,
-                st,
-                rng,
-                peaks,
-                counts,
-                _kernels.STRUCTURE_CODES[self.structure],
-                *args,
-                reset,
-                tr,
-            )
+        no_trace = np.empty((0, self.order))
+        # Chunks small enough to stay in cache: each is checked for non-finite samples and then
+        # run, so the check costs little. Streaming makes the chunking invisible in the result.
+        for start in range(0, len(u), _CHUNK):
+            stop = min(len(u), start + _CHUNK)
+            seg = u[start:stop]
+            if not np.isfinite(seg).all():
+                bad = start + int(np.flatnonzero(~np.isfinite(seg))[0])
+                raise ParameterError("x", f"non-finite sample at frame {bad}", "finite samples")
+            if trace is None and self._fast_kernel is not None:
+                self._fast_kernel(
+                    seg, out[start:stop], self._coef, st, rng, peaks, counts, *args, reset
+                )
+            else:
+                _kernels.loop_any_structure(
+                    seg,
+                    out[start:stop],
+                    self._coef,
+                    st,
+                    rng,
+                    peaks,
+                    counts,
+                    _kernels.STRUCTURE_CODES[self.structure],
+                    *args,
+                    reset,
+                    no_trace if trace is None else trace[start:stop],
+                )
         return out, st, rng[0], peaks, counts[0]
 
     def _process(self, x, state, want_trace):
@@ -287,9 +311,7 @@ class Modulator:
             )
 
         if channels > 1 and n > 0:
-            workers = min(channels, os.cpu_count() or 1)
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                results = list(pool.map(one, range(channels)))
+            results = list(_thread_pool().map(one, range(channels)))
         else:
             results = [one(c) for c in range(channels)]
         if x.ndim == 1:
