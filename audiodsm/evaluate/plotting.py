@@ -163,6 +163,16 @@ def plot_idle_tone_map(curves, *, ax=None, title="Idle tones against DC offset")
         mag = np.abs(off[sel])[order]
         ax.semilogx(mag, limit[sel][order], color=colour, lw=0.8, ls=":")
         ax.semilogx(mag, line[sel][order], marker, color=colour, ms=5, label=f"{label} offset")
+    if np.isnan(line).all():
+        ax.text(
+            0.5,
+            0.5,
+            "no line above the detection limit at any offset",
+            transform=ax.transAxes,
+            ha="center",
+            fontsize=9,
+            color=_INK,
+        )
     _style(ax, title, "DC offset (fraction of full scale)", "strongest line (dBFS)")
     ax.legend(fontsize=8, frameon=False, title="dotted: detection limit", title_fontsize=7)
     return fig
@@ -236,7 +246,7 @@ def plot_margins(batch, *, ax=None, title="Margin per target"):
     """
     grades = list(batch.grades)
     targets = list(batch.spec.targets)
-    fig, ax = _axes(ax, size=(7.2, 0.45 * len(targets) * max(1, len(grades)) ** 0.5 + 1.4))
+    fig, ax = _axes(ax, size=(7.6, 0.3 * len(targets) * max(1, len(grades)) ** 0.5 + 1.3))
     palette = (_BLUE, _OCHRE, _GREEN, _RED, _GREY, _INK, "#6b4c9a", "#2a8a8a")
     n = max(1, len(grades))
     height = 0.8 / n
@@ -251,9 +261,12 @@ def plot_margins(batch, *, ax=None, title="Margin per target"):
         if missing.any():
             ax.plot(np.full(missing.sum(), low), pos[missing], "x", color=_RED, ms=6)
     ax.axvline(0.0, color=_INK, lw=0.9)
+    # margins come in different units and sizes (0.1 dB to 1e5 Hz): a scale linear within
+    # +-1 and logarithmic beyond keeps every bar readable
+    ax.set_xscale("symlog", linthresh=1.0)
     ax.set_yticks(y, [t.label + f" ({t.unit})" for t in targets], fontsize=8)
     ax.invert_yaxis()
-    _style(ax, title, "margin in the target's unit", "")
+    _style(ax, title, "margin in the target's unit (linear within ±1, logarithmic beyond)", "")
     ax.legend(fontsize=7, frameon=False, loc="best")
     return fig
 
