@@ -478,3 +478,31 @@ def test_real_battery_on_a_shipped_profile(tmp_path):
     assert not any(x.cached for x in again.grades if x.name != g.name)
     page = write_report(batch, tmp_path / "r")["html"].read_text()
     assert page.count("data:image/png;base64,") == 1 + 2  # overview, spectrum, THD+N sweep
+
+
+def test_cli_report_and_no_cache(tmp_path, batch_files, calls, use_fake_battery, monkeypatch):
+    pdir, spec_path = batch_files
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
+    report = tmp_path / "out" / "report"
+    r = run_cli([str(pdir / "o5.toml"), "--spec", str(spec_path), "--jobs", "1",
+                 "--report", str(report), "--no-progress"])  # fmt: skip
+    assert r.exit_code == 0, r.output
+    assert sorted(p.name for p in report.iterdir()) == ["grades.csv", "grades.html", "grades.json"]
+    assert str(report / "grades.html") in r.output
+    # the default cache folder follows XDG_CACHE_HOME
+    assert len(list((tmp_path / "xdg" / "audiodsm" / "grades").glob("*.npz"))) == 1
+    r = run_cli([str(pdir / "o5.toml"), "--spec", str(spec_path), "--jobs", "1", "--no-cache"])
+    assert r.exit_code == 0 and "cache:" not in r.output
+    assert call_names(calls) == ["o5", "o5"]  # --no-cache ran it again
+    # a report folder that is a file is bad input
+    r = CliRunner().invoke(
+        main, ["grade", str(pdir), "--spec", str(spec_path), "--report", str(spec_path)]
+    )
+    assert r.exit_code == 2 and "is a file" in r.output
+
+
+def test_cli_help_names_the_options():
+    r = CliRunner().invoke(main, ["grade", "--help"])
+    assert r.exit_code == 0
+    for option in ("--spec", "--jobs", "--report", "--json", "--cache", "--recompute"):
+        assert option in r.output
