@@ -506,3 +506,27 @@ def test_cli_help_names_the_options():
     assert r.exit_code == 0
     for option in ("--spec", "--jobs", "--report", "--json", "--cache", "--recompute"):
         assert option in r.output
+
+
+def dying_battery(profile, **kwargs):
+    """Ends its whole process (as a crash in compiled code would) for loop order 7."""
+    if profile.modulator.order == 7:
+        os._exit(3)
+    return fake_battery(profile, **kwargs)
+
+
+def test_a_profile_that_kills_its_worker_fails_alone(tmp_path, batch_files, calls):
+    pdir, spec_path = batch_files
+    (pdir / "o7.toml").write_text(profile_text("o7", 7))
+    out = grade_batch(
+        collect_profiles([pdir]),
+        parse_spec(spec_path.read_text()),
+        battery=dying_battery,
+        jobs=2,
+        cache_dir=tmp_path / "cache",
+    )
+    by_name = {g.name: g for g in out.grades}
+    assert set(by_name) == {"o3", "o4", "o5", "o7"} and not out.interrupted
+    assert by_name["o7"].failure.startswith("worker process ended unexpectedly")
+    assert not any(by_name[n].failure for n in ("o3", "o4", "o5"))
+    assert len(list((tmp_path / "cache").glob("*.npz"))) == 3

@@ -585,14 +585,31 @@ def grade_batch(
 
 
 def _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish):
-    """Run the batteries in worker processes; results are handed to ``finish`` as they come."""
+    """Run the batteries in worker processes; results are handed to ``finish`` as they come.
+
+    A worker process that dies outright (a crash of the interpreter, not an exception) breaks
+    the pool and every profile still in it. Those profiles are then run again one at a time,
+    each in a fresh single-worker pool, so only the profile that kills its process is graded
+    failed.
+    """
     ctx = multiprocessing.get_context("spawn")
     q = ctx.Queue()
     threads = max(1, jobs // workers)
+    broken = _pool_pass(battery, entries, todo, workers, threads, seed, options, tick, finish,
+                        ctx, q)  # fmt: skip
+    for i in broken:
+        again = _pool_pass(battery, entries, [i], 1, threads, seed, options, tick, finish, ctx, q)
+        if again:
+            finish(i, {"failure": "worker process ended unexpectedly (the battery crashed it)"})
+    q.close()
+
+
+def _pool_pass(battery, entries, todo, workers, threads, seed, options, tick, finish, ctx, q):
+    """One pool over ``todo``; returns the profiles lost to a broken pool (not finished)."""
     pool = _cf.ProcessPoolExecutor(
         max_workers=workers, mp_context=ctx, initializer=_worker_init, initargs=(q,)
     )
-    pending = {}
+    pending, broken = {}, []
     try:
         for i in todo:
             fut = pool.submit(_run_one, battery, entries[i][1], i, threads, seed, options)
@@ -605,18 +622,19 @@ def _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish
                 try:
                     outcome = fut.result()
                 except _cf.process.BrokenProcessPool:
-                    outcome = {"failure": "worker process ended unexpectedly"}
+                    broken.append(i)
+                    continue
                 finish(i, outcome)
         _drain(q, tick)
     except BaseException:
         for fut in pending:
             fut.cancel()
-        for proc in list(getattr(pool, "_processes", {}).values()):
+        for proc in list((getattr(pool, "_processes", None) or {}).values()):
             proc.terminate()
         pool.shutdown(wait=True, cancel_futures=True)
         raise
     pool.shutdown(wait=True)
-    q.close()
+    return broken
 
 
 def _drain(q, tick):
