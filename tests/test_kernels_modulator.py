@@ -152,13 +152,11 @@ def make_loop(order, structure, kind, rng):
 # the feedback structure (the fast path) and a spread of orders of the others, as designed,
 # scaled (chain gains != 1) and with leaky zeros. Each specialised kernel compiles once (then
 # numba's cache serves it), so the set is kept to what exercises different template branches.
-CASES_BY_STRUCTURE = []
-for _structure in STRUCTURES:
-    _orders = range(1, 9) if _structure == "feedback" else (1, 2, 4, 7)
-    CASES_BY_STRUCTURE += [(_structure, order, "designed") for order in _orders]
-    CASES_BY_STRUCTURE += [
-        (_structure, order, kind) for order in (3, 8) for kind in ("scaled", "leaky")
-    ]
+CASES_BY_STRUCTURE = [("feedback", order, "designed") for order in range(1, 9)]
+CASES_BY_STRUCTURE += [("feedback", 3, "scaled"), ("feedback", 8, "leaky")]
+for _structure in STRUCTURES[1:]:  # feedforward, error feedback
+    CASES_BY_STRUCTURE += [(_structure, order, "designed") for order in (1, 2, 5)]
+    CASES_BY_STRUCTURE += [(_structure, 3, "scaled"), (_structure, 8, "leaky")]
 
 
 @pytest.mark.parametrize(("structure", "order", "kind"), CASES_BY_STRUCTURE)
@@ -185,7 +183,7 @@ def test_kernels_equal_python_twin(structure, order, kind, rng):
         # the generic loop, the specialised kernel that fits this loop, and (for a few orders)
         # the least specialised one
         kernels = [False, _kernel_key(loop)]
-        if kind == "designed" and order in (1, 4, 7) and structure == "feedback":
+        if kind == "designed" and order in (1, 4) and structure == "feedback":
             kernels.append((structure, order, False, False, -1))
         for fast in kernels:
             got = run_kernel(fast, loop, u, levels, dscale, ib, sb, reset, start)

@@ -241,16 +241,17 @@ def test_output_levels_are_evenly_spaced():
 
 
 def test_stability_limit_single_bit_and_multi_bit():
-    # Schreier & Temes 2005, ch. 4: a high-order single-bit loop cannot take a full-scale input
-    # (its maximum stable amplitude is well below 1), while a multi-bit loop with the same
-    # NTF goes close to full scale. The limit found must separate a clean run from a collapsed
-    # one: a sine 0.1 above it fails the criterion.
+    # Schreier & Temes 2005, ch. 4 (chapter from memory): a high-order single-bit loop cannot
+    # take a full-scale input (its maximum stable amplitude is well below 1), while a multi-bit
+    # loop with the same NTF goes close to full scale. The 0.3..0.9 bracket for a 5th-order,
+    # gain-1.5 loop is common practice, not a published figure. The limit found must separate
+    # a clean run from a collapsed one: a sine 0.1 above it fails the criterion.
     ntf = design_ntf(5, 64, max_gain=1.5)
     one_bit = Modulator(ntf, "feedback", levels=2)
     lim = find_stability_limit(one_bit, osr=64)
     assert 0.3 < lim.amplitude < 0.9
-    above = find_stability_limit(one_bit, osr=64, samples=32768)
-    assert above.amplitude == lim.amplitude  # deterministic
+    again = find_stability_limit(one_bit, osr=64, samples=32768)
+    assert again.amplitude == lim.amplitude  # deterministic
     n, settle = 32768, 4096
     x = (lim.amplitude + 0.1) * np.sin(2 * np.pi * lim.frequency * np.arange(n + settle))
     y, st = one_bit.run(x)

@@ -52,9 +52,11 @@ def test_error_feedback_signal_transfer_is_one_everywhere():
 
 
 def test_second_order_textbook_coefficients():
-    # Schreier & Temes 2005, ch. 3: the second-order loop with NTF (1 - z^-1)^2 built from two
-    # delaying integrators with distributed feedback has feedback gains 1 and 2 (and input gain
-    # 1 into the first integrator); the first-order loop (1 - z^-1) has feedback gain 1.
+    # Schreier & Temes 2005, ch. 3 (chapter from memory): the second-order loop with NTF
+    # (1 - z^-1)^2 built from two delaying integrators with distributed feedback has feedback
+    # gains 1 and 2 (and input gain 1 into the first integrator); the first-order loop
+    # (1 - z^-1) has feedback gain 1. By hand: 1 - L(z) = ((z-1)^2 + a2 (z-1) + a1) / (z-1)^2
+    # must equal z^2 / (z-1)^2, so a2 = 2 and a1 = 1.
     loop2 = realize_ntf(ntf_from_zeros_poles([1, 1], [0, 0]), "feedback")
     np.testing.assert_allclose(loop2.feedback, [1.0, 2.0], atol=1e-12)
     np.testing.assert_allclose(loop2.input_gain, [1.0, 0.0], atol=1e-12)

@@ -333,8 +333,9 @@ def realize_ntf(ntf: NoiseTransfer, structure: str = "feedback") -> LoopRealizat
     References
     ----------
     R. Schreier and G. C. Temes, *Understanding Delta-Sigma Data Converters*, IEEE Press /
-    Wiley, 2005, ch. 4 (loop filters with distributed feedback or feedforward and resonators)
-    and ch. 8 (error-feedback structures).
+    Wiley, 2005, ch. 4 (loop filters with distributed feedback or distributed feedforward and
+    resonators; chapter number from memory). The coefficient solve itself is derived here from
+    the matrix determinant lemma, not taken from the book.
     """
     if structure not in STRUCTURES:
         raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")

@@ -461,7 +461,8 @@ def find_stability_limit(
     References
     ----------
     R. Schreier and G. C. Temes, *Understanding Delta-Sigma Data Converters*, 2005, ch. 4
-    (maximum stable amplitude found by simulation; noise rise as the sign of overload).
+    (maximum stable amplitude found by simulation; chapter number from memory). The criterion
+    and its thresholds here are this project's own choice.
     """
     if not (np.isfinite(osr) and osr >= 4):
         raise ParameterError("osr", osr, "a number >= 4")
