@@ -2,6 +2,8 @@
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import signal
 
 from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
@@ -327,3 +329,27 @@ def test_realization_can_be_passed_in():
     loop = realize_ntf(design_ntf(4, 64), "feedforward")
     mod = Modulator(loop, levels=3)
     assert mod.structure == "feedforward" and mod.order == 4
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    samples=st.lists(
+        st.floats(allow_nan=False, allow_infinity=False, width=64), min_size=1, max_size=64
+    ),
+    structure=st.sampled_from(STRUCTURES),
+    levels=st.sampled_from([2, 3, 17]),
+    guard=st.sampled_from(["reset", "clamp"]),
+)
+def test_any_finite_input_gives_valid_levels(samples, structure, levels, guard):
+    # Property: whatever finite samples come in (up to +-1.8e308), the output holds only the
+    # quantizer's levels and the state stays finite.
+    mod = Modulator(_PROPERTY_NTF, structure, levels=levels, guard=guard)
+    y, st_ = mod.run(np.array(samples))
+    k = (y + 1) * (levels - 1) / 2
+    assert np.all(np.isfinite(y))
+    np.testing.assert_allclose(k, np.round(k), atol=1e-9)
+    assert np.all((k > -1e-9) & (k < levels - 1 + 1e-9))
+    assert np.all(np.isfinite(st_.integrators)) and np.all(np.isfinite(st_.state_peak))
+
+
+_PROPERTY_NTF = design_ntf(4, 32, max_gain=2.0)
