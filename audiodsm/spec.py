@@ -125,7 +125,7 @@ class Target:
         """Plain text of the requirement, e.g. ``">= 118 dB"``."""
         sign = ">=" if self.bound == "at_least" else "<="
         unit = f" {self.unit}" if self.unit else ""
-        return f"{sign} {self.limit:g}{unit}"
+        return f"{sign} {self.limit:,.10g}{unit}"
 
     def margin(self, value: float) -> float:
         """How far ``value`` is better than the limit (positive) or worse (negative)."""

@@ -48,6 +48,7 @@ def test_parse_good_sheet():
     assert thd.at_level_dbfs == -10.0 and thd.note == "mid level"
     assert thd.label == "thd_n_db @ -10 dBFS"
     assert thd.requirement == "<= -100.5 dB"
+    assert Target("switching_rate_hz", "at_most", 2e6).requirement == "<= 2,000,000 Hz"
     assert over.unit == "count"
     # the frozen data cannot change
     with pytest.raises(AttributeError):
