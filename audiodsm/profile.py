@@ -47,7 +47,7 @@ __all__ = [
 AUDIO_RATES_HZ = (44100, 48000, 88200, 96000, 176400, 192000)
 
 #: Version of the digest recipe; bump it when the meaning of a key changes.
-_DIGEST_VERSION = 1
+_DIGEST_VERSION = 2  # 2: modulator state scaling (on by default)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -246,7 +246,27 @@ class ModulatorSettings:
         "float",
         "0 (the modulator's own bound) or a number from 1 to 1e6",
         lambda v: v == 0.0 or (math.isfinite(v) and 1.0 <= v <= 1e6),
-        doc="State magnitude that counts as overload; 0 keeps the modulator's default.",
+        doc="State magnitude that counts as overload; 0 keeps the modulator's default. With "
+        "state scaling on it applies to the scaled states.",
+    )
+    state_scaling: str = _key(
+        "power-of-two",
+        "str",
+        _fmt_choices("power-of-two", "exact", "off"),
+        _choice("power-of-two", "exact", "off"),
+        doc="Scale the integrator states (without changing the NTF) so each peaks within "
+        "state_peak_bound on a sine at the loop's maximum stable amplitude. 'power-of-two': "
+        "factors are powers of two, peaks land in (bound/2, bound] and the output bits are "
+        "exactly those of the unscaled loop; 'exact': peaks land on the bound, output equal up "
+        "to floating-point rounding; 'off': the unscaled realization. The quantizer-facing "
+        "state of feedback and error-feedback loops keeps its size.",
+    )
+    state_peak_bound: float = _key(
+        1.0,
+        "float",
+        "a number from 0.001 to 1000",
+        _float_range(0.001, 1000.0),
+        doc="Peak each scaled integrator state should reach at the maximum stable amplitude.",
     )
 
     @property

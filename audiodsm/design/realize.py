@@ -223,7 +223,7 @@ class LoopRealization:
         poles = np.linalg.eigvals(acl - np.eye(self.order)) + 1.0
         return NoiseTransfer(zeros=self.loop_zeros(), poles=poles.astype(complex))
 
-    def scaled(self, peaks, *, bound: float = 1.0) -> LoopRealization:
+    def scaled(self, peaks, *, bound: float = 1.0, power_of_two: bool = False) -> LoopRealization:
         """Return the loop with each state divided so that its peak becomes ``bound``.
 
         A diagonal similarity transform ``x_s = x / s`` with ``s = peaks / bound``: the NTF and
@@ -236,11 +236,27 @@ class LoopRealization:
             Observed peak magnitude of every state (as they are in this realization).
         bound : float, keyword-only
             The peak each state should have after scaling.
+        power_of_two : bool, keyword-only
+            Round every factor up to a power of two, ``s = 2**ceil(log2(peaks / bound))``, so
+            each peak lands in ``(bound/2, bound]``. Multiplying or dividing by a power of two
+            is exact in binary floating point (barring overflow and subnormals), and it
+            commutes with the rounding of every product and sum of the loop, so the scaled
+            loop computes exactly the unscaled states divided by ``s``: its output is the same,
+            bit for bit. It is also what a fixed-point loop does with shifts. Without it the
+            factors are exact ratios, the peaks land on ``bound``, and rounding differs in the
+            last bits (a single-bit loop's output can then part from the unscaled one when a
+            quantizer input falls within rounding of zero).
 
         Returns
         -------
         LoopRealization
             The scaled loop; ``state_scale`` accumulates the factors.
+
+        References
+        ----------
+        IEEE Std 754-2019, *Standard for Floating-Point Arithmetic*, clause 4.3 (every
+        operation is the exactly rounded result; scaling by a power of two within range is
+        exact, so it commutes with rounding). Clause number from memory.
         """
         peaks = np.asarray(peaks, dtype=float)
         if peaks.shape != (self.order,) or not np.all(np.isfinite(peaks)) or np.any(peaks <= 0):
@@ -250,6 +266,8 @@ class LoopRealization:
         if not (np.isfinite(bound) and bound > 0):
             raise ParameterError("bound", bound, "a finite positive number")
         s = peaks / bound
+        if power_of_two:
+            s = np.exp2(np.ceil(np.log2(s)))
         if self.structure != "feedforward":
             s[-1] = 1.0
         n = self.order

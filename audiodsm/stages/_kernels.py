@@ -99,7 +99,7 @@ def loop_any_structure(
     structure : int
         0 feedback, 1 feedforward, 2 error feedback.
     levels : int
-        Quantizer levels, 2..1024.
+        Quantizer levels, 2 to 2**24 (16777216).
     dither_scale : float
         TPDF dither peak in full-scale units (0 = no dither).
     input_bound, state_bound : float

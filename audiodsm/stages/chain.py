@@ -233,6 +233,58 @@ def _designed_ntf(order, osr, max_gain, optimize_zeros):
     return design_ntf(order, osr, max_gain=max_gain, optimize_zeros=optimize_zeros)
 
 
+_SCALED_LOOPS: dict = {}
+_SCALED_LOOPS_MAX = 64
+
+
+def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
+    """The loop the chain runs: ``ntf`` realized, its states scaled as the profile asks.
+
+    Scaling simulates (a stability search and one check run, see
+    :func:`~audiodsm.stages.modulator.scale_states`), so results are remembered per process,
+    keyed by the NTF's values and every setting that enters the simulation; the runs are
+    deterministic, so a remembered result equals a fresh one. The search runs the unscaled
+    loop with the modulator's default guard bounds (the profile's ``state_bound`` is meant for
+    the scaled states). A loop with no stable amplitude at all is left unscaled.
+
+    Returns
+    -------
+    loop : LoopRealization or NoiseTransfer
+        What to build the chain's Modulator from (the NTF itself when scaling is off).
+    limit : StabilityLimit or None
+        The scaled loop's simulated state peaks at the maximum stable amplitude (None when
+        scaling is off; amplitude 0 when no stable amplitude was found).
+    """
+    from audiodsm.stages.modulator import Modulator, StabilityLimit, scale_states
+
+    if mode == "off":
+        return ntf, None
+    key = (
+        np.asarray(ntf.zeros, dtype=complex).tobytes(),
+        np.asarray(ntf.poles, dtype=complex).tobytes(),
+        float(ntf.gain),
+        tuple(sorted(mod_kwargs.items())),
+        int(osr),
+        mode,
+        float(bound),
+    )
+    hit = _SCALED_LOOPS.get(key)
+    if hit is not None:
+        return hit
+    unscaled = Modulator(ntf, **mod_kwargs)
+    try:
+        scaled, limit = scale_states(
+            unscaled, osr=osr, bound=bound, power_of_two=(mode == "power-of-two")
+        )
+        result = (scaled.loop, limit)
+    except ParameterError:  # no stable amplitude: nothing to scale for
+        result = (unscaled.loop, StabilityLimit(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0))
+    if len(_SCALED_LOOPS) >= _SCALED_LOOPS_MAX:
+        _SCALED_LOOPS.pop(next(iter(_SCALED_LOOPS)))
+    _SCALED_LOOPS[key] = result
+    return result
+
+
 def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
     """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``."""
     from audiodsm.stages import output_stage as out_mod
@@ -335,6 +387,9 @@ class Chain:
     input_scale : float
         Modulator input for a full-scale input sample (fraction of the quantizer's full
         scale): the profile's ``modulator.input_scale``, or :func:`auto_input_scale`.
+    state_scaling_limit : StabilityLimit or None
+        With ``modulator.state_scaling`` on: the maximum stable amplitude found for the loop
+        and the simulated peak of each scaled state there (None when scaling is off).
     block_frames : int
         Input frames per internal block.
     stage_seconds : dict
@@ -395,9 +450,12 @@ class Chain:
                 "seed": mod.seed,
                 "guard": mod.guard,
             }
+            loop, self.state_scaling_limit = _scaled_loop(
+                self.ntf, mod_kwargs, self.osr, mod.state_scaling, mod.state_peak_bound
+            )
             if mod.state_bound:
                 mod_kwargs["state_bound"] = mod.state_bound
-            self.modulator = Modulator(self.ntf, **mod_kwargs)
+            self.modulator = Modulator(loop, **mod_kwargs)
             self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
             self._loop_space = self.modulator.loop.state_space()
             self._stf = _stf_filter(self._loop_space)

@@ -241,7 +241,8 @@ class Modulator:
             raise ParameterError("x.shape", x.shape, "(frames,) or (frames, channels)")
         if not np.issubdtype(x.dtype, np.number) or np.iscomplexobj(x):
             raise ParameterError("x.dtype", str(x.dtype), "real numbers")
-        x2 = x.reshape(len(x), -1).astype(np.float64, copy=False)
+        # indexing rather than reshape(len(x), -1), which has no answer for 0 frames
+        x2 = (x[:, None] if x.ndim == 1 else x).astype(np.float64, copy=False)
         if x2.shape[1] == 0:
             raise ParameterError("x.shape", x.shape, "at least one channel")
         channels = x2.shape[1]
@@ -336,6 +337,7 @@ class Modulator:
         ----------
         x : array_like, shape (frames,) or (frames, channels)
             Input samples, finite. Channels are independent and run in parallel threads.
+            Zero frames are allowed: the output is empty and the state comes back unchanged.
         state : ModulatorState or None
             The state returned by the previous call, or None to start from rest.
 
@@ -531,13 +533,21 @@ def max_stable_amplitude(modulator: Modulator, *, osr: float, **options) -> floa
 
 
 def scale_states(
-    modulator: Modulator, *, osr: float, bound: float = 1.0, **options
+    modulator: Modulator,
+    *,
+    osr: float,
+    bound: float = 1.0,
+    power_of_two: bool = False,
+    **options,
 ) -> tuple[Modulator, StabilityLimit]:
     """Rescale the loop's integrators so each peaks at ``bound`` at the maximum stable amplitude.
 
     The stability limit is found on ``modulator``; its state peaks there give the diagonal
     similarity transform (:meth:`LoopRealization.scaled`), which leaves the NTF unchanged. The
     scaled loop is then run again at the same amplitude and its peaks reported.
+
+    With ``power_of_two`` every factor is a power of two: the scaled loop's output is then
+    bit-identical to the unscaled loop's, and each scaled state peaks in ``(bound/2, bound]``.
 
     Parameters
     ----------
@@ -547,6 +557,8 @@ def scale_states(
         Oversampling ratio for the stability search.
     bound : float, keyword-only
         Target peak of each state.
+    power_of_two : bool, keyword-only
+        Round the factors up to powers of two (see :meth:`LoopRealization.scaled`).
     **options
         Passed on to :func:`find_stability_limit`.
 
@@ -563,7 +575,7 @@ def scale_states(
     if limit.amplitude <= 0:
         raise ParameterError("modulator", repr(modulator), "a loop stable for some input")
     peaks = np.where(limit.state_peak > 0, limit.state_peak, 1.0)
-    loop = modulator.loop.scaled(peaks, bound=bound)
+    loop = modulator.loop.scaled(peaks, bound=bound, power_of_two=power_of_two)
     scaled = Modulator(
         loop,
         levels=modulator.levels,
