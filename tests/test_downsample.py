@@ -67,6 +67,38 @@ def test_decimate_kernel_matches_slow_twin(rng, n_held):
     assert np.array_equal(out_t, out)
 
 
+@pytest.mark.parametrize("held_lens", [(6, 6, 10), (0, 3, 0), (5, 6, 9)])
+def test_cascade_kernel_matches_slow_twin_stage_by_stage(rng, held_lens):
+    # the fused cascade must give the very bits of the single-stage twin run stage after stage,
+    # across several internal chunks (the input is longer than _CASCADE_CHUNK)
+    ks = np.array([2, 2, 3])
+    halves = np.zeros((3, 3))
+    for s, k in enumerate(ks):
+        halves[s, :k] = rng.standard_normal(k)
+    n = 3 * _kernels._CASCADE_CHUNK + 123
+    x = rng.standard_normal((2, n))
+    held = np.zeros((3, 2, max(held_lens)))
+    expected_rest = []
+    cur = x
+    for s, k in enumerate(ks):
+        prev = rng.standard_normal((2, held_lens[s]))
+        held[s, :, : held_lens[s]] = prev
+        buf = np.concatenate([prev, cur], axis=1)
+        cur = slow_decimate_halfband(buf, halves[s, :k])
+        expected_rest.append(buf[:, 2 * cur.shape[1] :])
+    out = np.empty_like(cur)
+    rest = np.full((3, 2, 16), np.nan)
+    _kernels.decimate_halfband_cascade(x, halves, ks, held, np.array(held_lens), out, rest)
+    assert np.array_equal(out, cur)
+    for s, r in enumerate(expected_rest):
+        assert np.array_equal(rest[s, :, : r.shape[1]], r)
+    # a (frames, channels) block read through its transpose gives the same bits
+    out_t = np.empty_like(cur)
+    xt = np.ascontiguousarray(x.T).T
+    _kernels.decimate_halfband_cascade(xt, halves, ks, held, np.array(held_lens), out_t, rest)
+    assert np.array_equal(out_t, cur)
+
+
 def test_rational_kernel_matches_slow_twin(rng):
     up, down, taps = 5, 7, 6
     phases = rng.standard_normal((up, taps))

@@ -499,6 +499,106 @@ def decimate_halfband(held, new, half, out):
                 dst[i] = acc[i] + 0.5 * centre[i]
 
 
+_CASCADE_CHUNK = 4096
+
+
+@njit(cache=True, nogil=True)
+def _deinterleave_into(src, even, odd, fill):
+    """Append ``src`` to a stage buffer kept as its even and odd samples (``fill`` held)."""
+    n = src.shape[0]
+    first = fill & 1  # index into src of the first sample that lands on an even position
+    e0 = (fill + first) >> 1
+    o0 = (fill + 1 - first) >> 1
+    src_even = src[first::2]
+    src_odd = src[1 - first :: 2]
+    dst_even = even[e0 : e0 + src_even.shape[0]]
+    dst_odd = odd[o0 : o0 + src_odd.shape[0]]
+    for j in range(src_even.shape[0]):
+        dst_even[j] = src_even[j]
+    for j in range(src_odd.shape[0]):
+        dst_odd[j] = src_odd[j]
+    return fill + n
+
+
+@njit(cache=True, nogil=True)
+def decimate_halfband_cascade(x, halves, ks, held, held_len, out, rest):
+    """Run a cascade of S half-band decimate-by-2 stages in one pass, chunk by chunk.
+
+    Stage s is the half-band FIR of length ``4 ks[s] - 1`` whose outer taps are
+    ``halves[s, :ks[s]]`` and whose centre tap is 1/2, exactly as in
+    :func:`decimate_halfband`: every output is the same sum in the same order, so the
+    cascade gives the same bits as running that kernel stage after stage.
+
+    ``x`` is the new input (channels, n), any strides. ``held`` is (S, channels, H): stage s's
+    input samples not yet consumed, the first ``held_len[s]`` of each row. ``out`` is
+    (channels, m) and receives every output of the last stage this input completes (the
+    caller computes m). ``rest`` is (S, channels, R) and receives each stage's unconsumed
+    samples afterwards (the caller computes their counts: the fill left after taking as
+    many outputs as possible). The input is fed in chunks of a few thousand samples, and
+    each chunk is carried through all stages before the next, so the intermediate signals
+    stay in the core's first-level cache; each stage keeps its buffer split into even and
+    odd samples, so the inner loops run over contiguous memory.
+    """
+    n_ch = x.shape[0]
+    n = x.shape[1]
+    n_st = ks.shape[0]
+    # a stage never holds more than its history (< 4k - 1, or what the caller held) plus
+    # one chunk's worth of new samples
+    width = 4 * np.max(ks) + held.shape[2] + _CASCADE_CHUNK + 8
+    even = np.empty((n_st, width // 2 + 2))
+    odd = np.empty((n_st, width // 2 + 2))
+    acc = np.empty(width // 2 + 2)
+    fill = np.empty(n_st, dtype=np.int64)
+    for c in range(n_ch):
+        for s in range(n_st):
+            fill[s] = _deinterleave_into(held[s, c, : held_len[s]], even[s], odd[s], 0)
+        pos = 0
+        for start in range(0, n, _CASCADE_CHUNK):
+            stop = min(start + _CASCADE_CHUNK, n)
+            fill[0] = _deinterleave_into(x[c, start:stop], even[0], odd[0], fill[0])
+            for s in range(n_st):
+                k = ks[s]
+                n_taps = 4 * k - 1
+                if fill[s] < n_taps:
+                    break
+                m_out = (fill[s] - n_taps) // 2 + 1
+                ev = even[s]
+                od = odd[s]
+                # output i uses newest sample t = 4k - 2 + 2i (even): t - 2m -> ev[2k-1+i-m],
+                # t - 2(2k-1-m) -> ev[i+m], the centre t - (2k-1) -> od[k-1+i]
+                acc[:m_out] = 0.0
+                for m in range(k):
+                    coef = halves[s, m]
+                    a = ev[2 * k - 1 - m : 2 * k - 1 - m + m_out]
+                    b = ev[m : m + m_out]
+                    for i in range(m_out):
+                        acc[i] += coef * (a[i] + b[i])
+                centre = od[k - 1 : k - 1 + m_out]
+                for i in range(m_out):
+                    acc[i] = acc[i] + 0.5 * centre[i]
+                if s == n_st - 1:
+                    dst = out[c, pos : pos + m_out]
+                    for i in range(m_out):
+                        dst[i] = acc[i]
+                    pos += m_out
+                else:
+                    fill[s + 1] = _deinterleave_into(
+                        acc[:m_out], even[s + 1], odd[s + 1], fill[s + 1]
+                    )
+                # drop the 2 m_out samples no later output needs (an even count: the parity
+                # of the buffer start never changes)
+                left = fill[s] - 2 * m_out
+                for j in range((left + 1) // 2):
+                    ev[j] = ev[m_out + j]
+                for j in range(left // 2):
+                    od[j] = od[m_out + j]
+                fill[s] = left
+        for s in range(n_st):
+            row = rest[s, c]
+            for j in range(fill[s]):
+                row[j] = even[s, j >> 1] if j % 2 == 0 else odd[s, j >> 1]
+
+
 @njit(cache=True, nogil=True)
 def resample_rational(buf, phases, lengths, first_time, step, out):
     """Resample by L/M with a polyphase FIR (zeros never multiplied).

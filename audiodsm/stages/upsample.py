@@ -1177,6 +1177,12 @@ class Downsampler:
         self._halves = [
             np.ascontiguousarray(h[0 : (h.size + 1) // 2 : 2]) for h in design.halfband_taps
         ]
+        n_half = [h.size for h in self._halves]
+        self._n_half = np.array(n_half, dtype=np.int64)
+        self._n_taps = [4 * k - 1 for k in n_half]
+        self._half_table = np.zeros((len(n_half), max(n_half, default=1)))
+        for s, h in enumerate(self._halves):
+            self._half_table[s, : h.size] = h
         if design.rational_taps.size:
             table, lengths = _phase_table(np.asarray(design.rational_taps), design.rational_up)
             self._rational = (np.ascontiguousarray(table), lengths)
@@ -1194,6 +1200,30 @@ class Downsampler:
         if self._rational is not None:
             bufs.append(_frozen(np.zeros((channels, self._rational[0].shape[1] - 1))))
         return DownsamplerState(buffers=tuple(bufs), next_time=0, channels=channels, ndim=ndim)
+
+    def _run_halfbands(self, block, helds, new_bufs):
+        """All half-band stages in one compiled pass; appends each stage's leftover samples."""
+        channels = block.shape[0]
+        n_in = block.shape[1]
+        lens = []
+        rests = []
+        for taps, held in zip(self._n_taps, helds, strict=True):
+            length = held.shape[1] + n_in
+            n_out = (length - taps) // 2 + 1 if length >= taps else 0
+            lens.append(held.shape[1])
+            rests.append(length - 2 * n_out)
+            n_in = n_out
+        held_all = np.zeros((len(helds), channels, max(max(lens), 1)))
+        for s, held in enumerate(helds):
+            held_all[s, :, : held.shape[1]] = held
+        rest_all = np.empty((len(helds), channels, max(max(rests), 1)))
+        out = np.empty((channels, n_in))
+        _kernels.decimate_halfband_cascade(
+            block, self._half_table, self._n_half, held_all, np.array(lens), out, rest_all
+        )
+        for s, r in enumerate(rests):
+            new_bufs.append(_frozen(rest_all[s, :, :r].copy()))
+        return out
 
     def process(self, x, state: DownsamplerState | None = None):
         """Decimate one block.
@@ -1224,22 +1254,8 @@ class Downsampler:
             _check_state_channels(state, channels, ndim)
         new_bufs = []
         cur = None  # (channels, n) between stages
-        for half, held in zip(self._halves, state.buffers, strict=False):
-            n_taps = 4 * half.size - 1
-            # the first stage reads the caller's (n, channels) layout directly, no copy
-            block = frames.T if cur is None else cur
-            length = held.shape[1] + block.shape[1]
-            n_out = (length - n_taps) // 2 + 1 if length >= n_taps else 0
-            out = np.empty((channels, n_out))
-            if n_out:
-                _kernels.decimate_halfband(held, block, half, out)
-            used = 2 * n_out  # samples no later output needs
-            if used >= held.shape[1]:
-                rest = block[:, used - held.shape[1] :]
-            else:
-                rest = np.concatenate([held[:, used:], block], axis=1)
-            new_bufs.append(_frozen(rest))
-            cur = out
+        if self._halves:
+            cur = self._run_halfbands(frames.T, state.buffers[: len(self._halves)], new_bufs)
         next_time = state.next_time
         if self._rational is not None:
             table, lengths = self._rational
