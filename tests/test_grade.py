@@ -530,3 +530,14 @@ def test_a_profile_that_kills_its_worker_fails_alone(tmp_path, batch_files, call
     assert by_name["o7"].failure.startswith("worker process ended unexpectedly")
     assert not any(by_name[n].failure for n in ("o3", "o4", "o5"))
     assert len(list((tmp_path / "cache").glob("*.npz"))) == 3
+
+
+def test_cli_interrupted_json_stays_one_document(tmp_path, batch_files, calls, monkeypatch):
+    monkeypatch.setattr("audiodsm.evaluate.grade._default_battery", lambda: interrupting_battery)
+    pdir, spec_path = batch_files
+    r = run_cli([str(pdir), "--spec", str(spec_path), "--jobs", "1", "--json",
+                 "--cache", str(tmp_path / "c")])  # fmt: skip
+    assert r.exit_code == 130
+    data = json.loads(r.stdout)
+    assert data["interrupted"] is True and [p["name"] for p in data["profiles"]] == ["o3"]
+    assert "interrupted" in r.stderr

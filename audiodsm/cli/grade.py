@@ -190,7 +190,8 @@ def grade(
         total = done + len(batch.unfinished)
         click.echo(
             f"interrupted: {done} of {total} profiles finished and kept; run the same command "
-            "again to resume"
+            "again to resume",
+            err=as_json,  # keep stdout a single JSON document
         )
         sys.exit(130)
     sys.exit(0 if batch.passed else 1)
