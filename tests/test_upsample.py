@@ -75,6 +75,43 @@ def test_polyphase_kernel_matches_slow_twin(rng):
     assert np.array_equal(out, slow_interpolate_polyphase(buf, phases, lengths))
 
 
+def test_cascade_kernel_matches_slow_twins_stage_by_stage(rng):
+    # half-band (x2), polyphase FIR (x3), hold (x2): the fused one-pass kernel must give the
+    # bits of the slow twins run stage after stage, with histories carried in and out, and
+    # across several internal chunks (the output is longer than _INTERP_CHUNK_OUT)
+    dense = rng.standard_normal(6)
+    dense = dense + dense[::-1]
+    phases = rng.standard_normal((3, 4))
+    plens = np.array([4, 4, 3])
+    phases[2, 3:] = 0.0
+    kinds = np.array([0, 1, 2])
+    ratios = np.array([2, 3, 2])
+    taps = np.array([6, 4, 0])
+    tables = np.zeros((3, 3, 6))
+    tables[0, 0, :6] = dense
+    tables[1, :, :4] = phases
+    lengths = np.zeros((3, 3), dtype=np.int64)
+    lengths[1] = plens
+    n = _kernels._INTERP_CHUNK_OUT // 12 * 2 + 37
+    x = rng.standard_normal((2, n))
+    hist0 = rng.standard_normal((2, 5))
+    hist1 = rng.standard_normal((2, 3))
+    held = np.zeros((3, 2, 5))
+    held[0] = hist0
+    held[1, :, :3] = hist1
+    buf0 = np.concatenate([hist0, x], axis=1)
+    y0 = slow_interpolate_halfband(buf0, dense)
+    buf1 = np.concatenate([hist1, y0], axis=1)
+    y1 = slow_interpolate_polyphase(buf1, phases, plens)
+    expected = np.repeat(y1, 2, axis=1)  # a hold repeats each sample
+    out = np.empty((n * 12, 2)).T  # written through a transpose, as the Upsampler does
+    rest = np.full((3, 2, 5), np.nan)
+    _kernels.interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest)
+    assert np.array_equal(out, expected)
+    assert np.array_equal(rest[0], buf0[:, -5:])
+    assert np.array_equal(rest[1, :, :3], buf1[:, -3:])
+
+
 def test_halfband_interpolator_is_the_textbook_polyphase_fir(rng):
     # Crochiere & Rabiner (1983) sec. 3.3: interpolation by 2 = zero insertion, then the
     # FIR at the high rate (gain 2). scipy.signal.upfirdn does exactly that; the polyphase

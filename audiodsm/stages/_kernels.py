@@ -445,6 +445,125 @@ def interpolate_polyphase(buf, phases, lengths, out):
 
 
 @njit(cache=True, nogil=True)
+def _interpolate_halfband_row(row, dense, out, acc):
+    """One channel of :func:`interpolate_halfband`: ``row`` is 2K - 1 history + n, ``out`` 2n."""
+    two_k = dense.shape[0]
+    k = two_k // 2
+    n = out.shape[0] // 2
+    for start in range(0, n, _RATE_CHUNK):
+        length = min(start + _RATE_CHUNK, n) - start
+        acc[:length] = 0.0
+        for m in range(k):
+            coef = dense[m]
+            a = row[start + two_k - 1 - m : start + two_k - 1 - m + length]
+            b = row[start + m : start + m + length]
+            for i in range(length):
+                acc[i] += coef * (a[i] + b[i])
+        even = out[2 * start : 2 * (start + length) : 2]
+        odd = out[2 * start + 1 : 2 * (start + length) : 2]
+        centre = row[start + k : start + k + length]
+        for i in range(length):
+            even[i] = acc[i]
+            odd[i] = centre[i]
+
+
+@njit(cache=True, nogil=True)
+def _interpolate_polyphase_row(row, phases, ratio, taps, lengths, out, acc):
+    """One channel of :func:`interpolate_polyphase` with R = ``ratio``, M = ``taps``."""
+    n = out.shape[0] // ratio
+    for start in range(0, n, _RATE_CHUNK):
+        length = min(start + _RATE_CHUNK, n) - start
+        for p in range(ratio):
+            acc[:length] = 0.0
+            for m in range(lengths[p]):
+                coef = phases[p, m]
+                seg = row[start + taps - 1 - m : start + taps - 1 - m + length]
+                for i in range(length):
+                    acc[i] += coef * seg[i]
+            dst = out[ratio * start + p : ratio * (start + length) : ratio]
+            for i in range(length):
+                dst[i] = acc[i]
+
+
+_INTERP_CHUNK_OUT = 16384
+
+
+@njit(cache=True, nogil=True)
+def interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest):
+    """Run a whole interpolation chain in one pass, a few thousand output samples at a time.
+
+    Stage s is of kind ``kinds[s]``: 0 a half-band interpolator as in
+    :func:`interpolate_halfband` (dense taps ``tables[s, 0, :taps[s]]``, history
+    ``taps[s] - 1``); 1 a polyphase FIR as in :func:`interpolate_polyphase` (ratio
+    ``ratios[s]``, phases ``tables[s, :ratios[s], :taps[s]]`` with ``lengths[s, p]`` taps used,
+    history ``taps[s] - 1``); 2 a hold that repeats each sample ``ratios[s]`` times (no
+    history). Every output is the same sum, in the same order, as in those kernels, so the
+    cascade gives their bits.
+
+    ``x`` is (channels, n), any strides. ``held`` is (S, channels, H): each stage's history,
+    its first ``history`` samples used. ``out`` is (channels, n R) with R the product of the
+    ratios. ``rest`` is (S, channels, H) and receives the histories afterwards. The input is
+    fed in chunks that make about ``_INTERP_CHUNK_OUT`` output samples, each carried through
+    every stage before the next, so the intermediate signals stay in the first-level cache.
+    """
+    n_ch = x.shape[0]
+    n = x.shape[1]
+    n_st = kinds.shape[0]
+    total = 1
+    for s in range(n_st):
+        total *= ratios[s]
+    chunk = max(1, _INTERP_CHUNK_OUT // total)
+    hist = np.empty(n_st, dtype=np.int64)
+    offset = np.empty(n_st + 1, dtype=np.int64)
+    offset[0] = 0
+    size = chunk
+    for s in range(n_st):
+        hist[s] = taps[s] - 1 if kinds[s] != 2 else 0
+        offset[s + 1] = offset[s] + hist[s] + size
+        size *= ratios[s]
+    work = np.empty(offset[n_st])
+    acc = np.empty(_RATE_CHUNK)
+    for c in range(n_ch):
+        for s in range(n_st):
+            base = offset[s]
+            for j in range(hist[s]):
+                work[base + j] = held[s, c, j]
+        pos = 0
+        for start in range(0, n, chunk):
+            length = min(start + chunk, n) - start
+            first = work[offset[0] + hist[0] : offset[0] + hist[0] + length]
+            src = x[c, start : start + length]
+            for j in range(length):
+                first[j] = src[j]
+            for s in range(n_st):
+                ratio = ratios[s]
+                row = work[offset[s] : offset[s] + hist[s] + length]
+                if s == n_st - 1:
+                    dst = out[c, pos : pos + ratio * length]
+                    pos += ratio * length
+                else:
+                    nxt = offset[s + 1] + hist[s + 1]
+                    dst = work[nxt : nxt + ratio * length]
+                if kinds[s] == 0:
+                    _interpolate_halfband_row(row, tables[s, 0, : taps[s]], dst, acc)
+                elif kinds[s] == 1:
+                    _interpolate_polyphase_row(row, tables[s], ratio, taps[s], lengths[s], dst, acc)
+                else:
+                    for i in range(length):
+                        v = row[i]
+                        for r in range(ratio):
+                            dst[i * ratio + r] = v
+                # keep the newest hist[s] samples as the history of the next chunk
+                for j in range(hist[s]):
+                    row[j] = row[length + j]
+                length *= ratio
+        for s in range(n_st):
+            base = offset[s]
+            for j in range(hist[s]):
+                rest[s, c, j] = work[base + j]
+
+
+@njit(cache=True, nogil=True)
 def decimate_halfband(held, new, half, out):
     """Decimate by 2 with a half-band FIR of length N = 4K - 1 (zeros never multiplied).
 

@@ -760,6 +760,32 @@ class Upsampler:
             table, lengths = _phase_table(np.asarray(design.final_taps), design.final_ratio)
             stages.append(("fir", (table, lengths), table.shape[1] - 1))
         self._stages = stages
+        # the same stages as flat tables for the one-pass compiled cascade
+        n_st = len(stages)
+        kinds = np.zeros(n_st, dtype=np.int64)
+        ratios = np.ones(n_st, dtype=np.int64)
+        taps = np.zeros(n_st, dtype=np.int64)
+        shapes = []
+        for s, (kind, data, _hist) in enumerate(stages):
+            if kind == "halfband":
+                kinds[s], ratios[s], taps[s] = 0, 2, data.size
+                shapes.append((1, data.size))
+            elif kind == "fir":
+                kinds[s], ratios[s], taps[s] = 1, data[0].shape[0], data[0].shape[1]
+                shapes.append(data[0].shape)
+            else:
+                kinds[s], ratios[s], taps[s] = 2, data, 0
+                shapes.append((1, 1))
+        tables = np.zeros((n_st, max(r for r, _ in shapes), max(m for _, m in shapes)))
+        lengths = np.zeros((n_st, tables.shape[1]), dtype=np.int64)
+        for s, (kind, data, _hist) in enumerate(stages):
+            if kind == "halfband":
+                tables[s, 0, : data.size] = data
+            elif kind == "fir":
+                tables[s, : data[0].shape[0], : data[0].shape[1]] = data[0]
+                lengths[s, : data[0].shape[0]] = data[1]
+        self._cascade = (kinds, ratios, taps, tables, lengths)
+        self._total_ratio = int(np.prod(ratios))
 
     @property
     def delay_input_samples(self) -> float:
@@ -801,31 +827,22 @@ class Upsampler:
             raise ParameterError("state", type(state).__name__, "an UpsamplerState of this chain")
         else:
             _check_state_channels(state, channels, ndim)
-        new_hist = []
-        last = len(self._stages) - 1
-        # each stage writes straight into the next stage's buffer, behind its history
-        buf = _with_history(state.histories[0], frames)
-        for s, (kind, data, hist_len) in enumerate(self._stages):
-            n = buf.shape[1] - hist_len
-            ratio = 2 if kind == "halfband" else (data if kind == "hold" else data[0].shape[0])
-            if s == last:  # write the caller's (n, channels) layout directly
-                result = np.empty((ratio * n, channels))
-                out, next_buf = result.T, None
-            else:
-                next_hist = self._stages[s + 1][2]
-                next_buf = np.empty((channels, next_hist + ratio * n))
-                next_buf[:, :next_hist] = state.histories[s + 1]
-                out = next_buf[:, next_hist:]
-            if kind == "halfband":
-                if n:
-                    _kernels.interpolate_halfband(buf, data, out)
-            elif kind == "fir":
-                if n:
-                    _kernels.interpolate_polyphase(buf, data[0], data[1], out)
-            else:  # hold: a copy of each sample, no arithmetic
-                out[...] = np.repeat(buf, data, axis=1)
-            new_hist.append(_frozen(buf[:, buf.shape[1] - hist_len :]))
-            buf = next_buf
+        n_st = len(self._stages)
+        width = max(1, max(h.shape[1] for h in state.histories))
+        held = np.zeros((n_st, channels, width))
+        for s, h in enumerate(state.histories):
+            held[s, :, : h.shape[1]] = h
+        rest = np.empty((n_st, channels, width))
+        # the caller's (n * osr, channels) layout is written directly, through its transpose
+        result = np.empty((n * self._total_ratio, channels))
+        if n:
+            kinds, ratios, taps, tables, lengths = self._cascade
+            _kernels.interpolate_cascade(
+                frames.T, kinds, ratios, taps, tables, lengths, held, result.T, rest
+            )
+            new_hist = [_frozen(rest[s, :, : st[2]].copy()) for s, st in enumerate(self._stages)]
+        else:
+            new_hist = list(state.histories)
         new_state = UpsamplerState(histories=tuple(new_hist), channels=channels, ndim=ndim)
         return _to_frames(result, ndim), new_state
 
