@@ -71,8 +71,8 @@ def test_decimate_kernel_matches_slow_twin(rng, n_held):
 def test_cascade_kernel_matches_slow_twin_stage_by_stage(rng, held_lens):
     # the fused cascade must give the very bits of the single-stage twin run stage after stage,
     # across several internal chunks (the input is longer than _CASCADE_CHUNK)
-    ks = np.array([2, 2, 3])
-    halves = np.zeros((3, 3))
+    ks = np.array([2, 3, 4])  # the kernel spells out k = 2 and 3; 4 takes the general loop
+    halves = np.zeros((3, 4))
     for s, k in enumerate(ks):
         halves[s, :k] = rng.standard_normal(k)
     n = 3 * _kernels._CASCADE_CHUNK + 123

@@ -685,16 +685,43 @@ def decimate_halfband_cascade(x, halves, ks, held, held_len, out, rest):
                 od = odd[s]
                 # output i uses newest sample t = 4k - 2 + 2i (even): t - 2m -> ev[2k-1+i-m],
                 # t - 2(2k-1-m) -> ev[i+m], the centre t - (2k-1) -> od[k-1+i]
-                acc[:m_out] = 0.0
-                for m in range(k):
-                    coef = halves[s, m]
-                    a = ev[2 * k - 1 - m : 2 * k - 1 - m + m_out]
-                    b = ev[m : m + m_out]
-                    for i in range(m_out):
-                        acc[i] += coef * (a[i] + b[i])
                 centre = od[k - 1 : k - 1 + m_out]
-                for i in range(m_out):
-                    acc[i] = acc[i] + 0.5 * centre[i]
+                if k == 2:  # the short first stages: one pass, the same sum in the same order
+                    h0 = halves[s, 0]
+                    h1 = halves[s, 1]
+                    a0 = ev[3 : 3 + m_out]
+                    b0 = ev[0:m_out]
+                    a1 = ev[2 : 2 + m_out]
+                    b1 = ev[1 : 1 + m_out]
+                    for i in range(m_out):
+                        acc[i] = ((0.0 + h0 * (a0[i] + b0[i])) + h1 * (a1[i] + b1[i])) + (
+                            0.5 * centre[i]
+                        )
+                elif k == 3:
+                    h0 = halves[s, 0]
+                    h1 = halves[s, 1]
+                    h2 = halves[s, 2]
+                    a0 = ev[5 : 5 + m_out]
+                    b0 = ev[0:m_out]
+                    a1 = ev[4 : 4 + m_out]
+                    b1 = ev[1 : 1 + m_out]
+                    a2 = ev[3 : 3 + m_out]
+                    b2 = ev[2 : 2 + m_out]
+                    for i in range(m_out):
+                        acc[i] = (
+                            ((0.0 + h0 * (a0[i] + b0[i])) + h1 * (a1[i] + b1[i]))
+                            + h2 * (a2[i] + b2[i])
+                        ) + 0.5 * centre[i]
+                else:
+                    acc[:m_out] = 0.0
+                    for m in range(k):
+                        coef = halves[s, m]
+                        a = ev[2 * k - 1 - m : 2 * k - 1 - m + m_out]
+                        b = ev[m : m + m_out]
+                        for i in range(m_out):
+                            acc[i] += coef * (a[i] + b[i])
+                    for i in range(m_out):
+                        acc[i] = acc[i] + 0.5 * centre[i]
                 if s == n_st - 1:
                     dst = out[c, pos : pos + m_out]
                     for i in range(m_out):
