@@ -58,6 +58,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from audiodsm.errors import ParameterError
+from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile, profile_digest
 
 __all__ = [
@@ -344,19 +345,7 @@ class BatteryResult:
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
-        return {k: _plain_number(v, finite_only=True) for k, v in self.metrics.items()}
-
-
-def _plain_number(v, *, finite_only=False):
-    """A numpy scalar as the plain Python bool, int or float (non-finite: None if asked)."""
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        v = float(v)
-        return v if (math.isfinite(v) or not finite_only) else None
-    return v
+        return {k: plain_scalar(v) for k, v in self.metrics.items()}
 
 
 def battery_rate_hz(profile: ChainProfile) -> int:
@@ -1112,5 +1101,5 @@ def _assemble(results, tests, plan, profile):
         pwm = profile.output.kind == "pwm"
         metrics["pwm_dropped_pulses"] = dropped if pwm else None
         metrics["pwm_stretched_pulses"] = stretched if pwm else None
-    ordered = {k: _plain_number(metrics[k]) for k in METRIC_UNITS if k in metrics}
+    ordered = {k: plain_scalar(metrics[k], finite_only=False) for k in METRIC_UNITS if k in metrics}
     return ordered, curves, notes

@@ -31,6 +31,7 @@ from pathlib import Path
 import numpy as np
 
 from audiodsm.errors import OutputError, ParameterError, ProfileError
+from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.profile import load_profile, profile_digest
 from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target, spec_digest
 
@@ -297,20 +298,6 @@ def default_cache_dir() -> Path:
     return Path(base) / "audiodsm" / "grades"
 
 
-def _plain(v):
-    """A JSON-friendly scalar (numpy scalars to Python; inf/NaN to None)."""
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        v = float(v)
-        return v if math.isfinite(v) else None
-    if v is None or isinstance(v, str):
-        return v
-    return repr(v)
-
-
 class GradeCache:
     """Battery results on disk, one file per (profile, spec, tool version, options) key.
 
@@ -376,7 +363,7 @@ class GradeCache:
                 if a.dtype != object:
                     arrays[f"curve/{curve}/{fld}"] = a
         meta = {
-            "metrics": {k: _plain(v) for k, v in entry["metrics"].items()},
+            "metrics": {k: plain_scalar(v, repr_other=True) for k, v in entry["metrics"].items()},
             "notes": [str(n) for n in entry["notes"]],
             "seconds": float(entry["seconds"]),
         }

@@ -33,6 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from audiodsm.errors import AudiodsmError, OutputError
+from audiodsm.evaluate._plain import plain_scalar
 
 __all__ = [
     "CSV_COLUMNS",
@@ -66,19 +67,6 @@ CSV_COLUMNS = (
 )
 
 
-def _num(v):
-    if v is None:
-        return None
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        v = float(v)
-        return v if math.isfinite(v) else None
-    return v
-
-
 def batch_to_dict(batch) -> dict:
     """The batch as plain JSON-ready data (non-finite numbers become None).
 
@@ -110,8 +98,8 @@ def batch_to_dict(batch) -> dict:
                     "bound": t.bound,
                     "limit": t.limit,
                     "unit": t.unit,
-                    "value": _num(line.value),
-                    "margin": _num(line.margin),
+                    "value": plain_scalar(line.value),
+                    "margin": plain_scalar(line.margin),
                     "passed": bool(line.passed),
                     "reason": line.reason,
                     "note": t.note,
@@ -124,13 +112,13 @@ def batch_to_dict(batch) -> dict:
                 "source": g.source,
                 "digest": g.digest,
                 "passed": g.passed,
-                "worst_margin": _num(g.worst_margin),
+                "worst_margin": plain_scalar(g.worst_margin),
                 "failed_targets": g.failed_count,
                 "failure": g.failure,
                 "cached": g.cached,
-                "seconds": _num(g.seconds),
+                "seconds": plain_scalar(g.seconds),
                 "targets": targets,
-                "metrics": {k: _num(v) for k, v in g.metrics.items()},
+                "metrics": {k: plain_scalar(v) for k, v in g.metrics.items()},
                 "notes": list(g.notes),
             }
         )
