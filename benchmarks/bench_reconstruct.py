@@ -7,23 +7,13 @@ the output stage and the filter alone sustain, in frames per second per channel.
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from audiodsm.stages.output_stage import pdm_waveform, pwm_waveform
 from audiodsm.stages.reconstruct import analog_prototype, filter_waveform, lc_filter
+from benchmarks._timing import best_seconds
 
 RATE = 3.072e6
-
-
-def _best(fn, repeats=3):
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
 
 
 def run():
@@ -32,9 +22,9 @@ def run():
     bits = np.where(rng.random(n) < 0.5, -1.0, 1.0)
     butter = analog_prototype("butterworth", order=3, cutoff_hz=60e3)
     filter_waveform(butter, pdm_waveform(bits[:10], frame_rate_hz=RATE))  # compile
-    t_wave = _best(lambda: pdm_waveform(bits, frame_rate_hz=RATE))
+    t_wave = best_seconds(lambda: pdm_waveform(bits, frame_rate_hz=RATE))
     wave = pdm_waveform(bits, frame_rate_hz=RATE)
-    t_filt = _best(lambda: filter_waveform(butter, wave))
+    t_filt = best_seconds(lambda: filter_waveform(butter, wave))
     yield {
         "bench": "pdm_butterworth3",
         "frames": n,
@@ -48,10 +38,10 @@ def run():
     lc = lc_filter(22e-6, 680e-9, 8.0)
     opts = dict(frame_rate_hz=384e3, levels=17, carrier="double-edge", mode="three-level")
     pwm_waveform(y[:10], **opts)
-    t_pwm = _best(lambda: pwm_waveform(y, **opts))
+    t_pwm = best_seconds(lambda: pwm_waveform(y, **opts))
     pwave, _, _ = pwm_waveform(y, **opts)
     filter_waveform(lc, pwave)
-    t_lc = _best(lambda: filter_waveform(lc, pwave))
+    t_lc = best_seconds(lambda: filter_waveform(lc, pwave))
     yield {
         "bench": "pwm_three_level_double_edge_lc",
         "frames": m,

@@ -16,17 +16,9 @@ import numpy as np
 from audiodsm.measure import bands, weighting
 from audiodsm.measure.bands import band_limit, band_limit_filter
 from audiodsm.measure.weighting import apply_weighting, weighting_filter
+from benchmarks._timing import best_seconds
 
 RATE = 96000.0
-
-
-def _best(fn, repeats=3):
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
 
 
 def run():
@@ -54,7 +46,7 @@ def run():
     rng = np.random.default_rng(1)
     frames = 960_000  # 10 s of stereo 96 kHz
     x = rng.standard_normal((frames, 2)) * 0.1
-    t = _best(lambda: band_limit(x, rate_hz=RATE))
+    t = best_seconds(lambda: band_limit(x, rate_hz=RATE))
     yield {
         "bench": "band_limit_stereo",
         "rate_hz": RATE,
@@ -65,7 +57,7 @@ def run():
         "ten_minute_file_s": round(t * 60.0, 2),
     }
     for kind in ("a", "ccir"):
-        t = _best(lambda kind=kind: apply_weighting(x, rate_hz=RATE, kind=kind))
+        t = best_seconds(lambda kind=kind: apply_weighting(x, rate_hz=RATE, kind=kind))
         yield {
             "bench": f"apply_weighting_{kind}_stereo",
             "rate_hz": RATE,
