@@ -87,6 +87,11 @@ def _check_positive(value, name, *, allow_zero=False):
     return float(value)
 
 
+def _settle_frames(settle_s, rate):
+    """The number of frames in ``settle_s`` seconds (checked: zero or more) at ``rate``."""
+    return round(_check_positive(settle_s, "settle_s", allow_zero=True) * rate)
+
+
 def _check_frequency(freq, rate, name="frequency_hz"):
     if not (isinstance(freq, int | float) and math.isfinite(freq) and 0 < freq < rate / 2):
         raise ParameterError(name, freq, f"a frequency between 0 and {rate / 2:g} Hz")
@@ -1148,7 +1153,7 @@ def level_linearity(
     if ref not in levels:
         raise ParameterError("reference_dbfs", reference_dbfs, "one of levels_dbfs")
     sos = _third_octave_sos(freq, rate)
-    skip = round(_check_positive(settle_s, "settle_s", allow_zero=True) * rate)
+    skip = _settle_frames(settle_s, rate)
     measured = []
     for i, cap in enumerate(caps):
         arr = _as_signal(cap, f"captures[{i}]")
@@ -1266,7 +1271,7 @@ def frequency_response(
     if len(set(freqs)) != len(freqs) or not freqs:
         raise ParameterError("frequencies_hz", frequencies_hz, "distinct tone frequencies")
     amps_in = _check_amplitudes(input_amplitudes, len(freqs))
-    skip = round(_check_positive(settle_s, "settle_s", allow_zero=True) * rate)
+    skip = _settle_frames(settle_s, rate)
     if len(arr) - skip < 4 * len(freqs) + 16:
         raise ParameterError("x", f"{len(arr)} frames", "a longer capture for this many tones")
     amps, _ = _fit_lines(arr[skip:], freqs, rate)
@@ -1302,7 +1307,7 @@ def stepped_frequency_response(
             "captures", f"{len(caps)} captures for {len(freqs)} frequencies", "one per frequency"
         )
     amps_in = _check_amplitudes(input_amplitudes, len(freqs))
-    skip = round(_check_positive(settle_s, "settle_s", allow_zero=True) * rate)
+    skip = _settle_frames(settle_s, rate)
     amps = []
     for i, (cap, f) in enumerate(zip(caps, freqs, strict=True)):
         arr = _as_signal(cap, f"captures[{i}]")
@@ -1395,7 +1400,11 @@ def _line_amplitudes(arr, rate, f1, f2, wanted):
     return amp
 
 
-def _check_twin(arr, rate, f1_hz, f2_hz):
+def _twin_capture(x, rate_hz, f1_hz, f2_hz, settle_s):
+    """A twin-tone capture checked and trimmed: ``(samples after settle_s, rate, f1, f2)``."""
+    arr = _as_signal(x)
+    rate = _check_rate(rate_hz)
+    arr = arr[_settle_frames(settle_s, rate) :]
     f1 = _check_frequency(f1_hz, rate, "f1_hz")
     f2 = _check_frequency(f2_hz, rate, "f2_hz")
     if not f1 < f2:
@@ -1403,7 +1412,7 @@ def _check_twin(arr, rate, f1_hz, f2_hz):
     # the fit separates lines 1/T apart; ask for a few times that
     if len(arr) * min(f1, f2 - f1) / rate < 4:
         raise ParameterError("x", f"{len(arr)} frames", "a record of at least 4 cycles of f1")
-    return f1, f2
+    return arr, rate, f1, f2
 
 
 def imd_smpte(x, *, rate_hz, f1_hz=60.0, f2_hz=7000.0, orders=(1, 2, 3), settle_s=0.0):
@@ -1436,10 +1445,7 @@ def imd_smpte(x, *, rate_hz, f1_hz=60.0, f2_hz=7000.0, orders=(1, 2, 3), settle_
     .. [1] SMPTE RP 120, measurement of intermodulation distortion (60 Hz and 7 kHz, 4:1),
        and IEC 60268-3, modulation distortion (from memory).
     """
-    arr = _as_signal(x)
-    rate = _check_rate(rate_hz)
-    arr = arr[round(_check_positive(settle_s, "settle_s", allow_zero=True) * rate) :]
-    f1, f2 = _check_twin(arr, rate, f1_hz, f2_hz)
+    arr, rate, f1, f2 = _twin_capture(x, rate_hz, f1_hz, f2_hz, settle_s)
     ords = [int(n) for n in orders]
     if not ords or any(n < 1 for n in ords):
         raise ParameterError("orders", orders, "sideband orders of 1 or more")
@@ -1498,10 +1504,7 @@ def imd_difference_frequency(x, *, rate_hz, f1_hz=19000.0, f2_hz=20000.0, settle
     .. [1] IEC 60268-3, difference-frequency distortion, products expressed relative to
        twice the amplitude of f2 (from memory).
     """
-    arr = _as_signal(x)
-    rate = _check_rate(rate_hz)
-    arr = arr[round(_check_positive(settle_s, "settle_s", allow_zero=True) * rate) :]
-    f1, f2 = _check_twin(arr, rate, f1_hz, f2_hz)
+    arr, rate, f1, f2 = _twin_capture(x, rate_hz, f1_hz, f2_hz, settle_s)
     nyq = rate / 2
     cands = [("f2-f1", f2 - f1, 2), ("2f1-f2", 2 * f1 - f2, 3), ("2f2-f1", 2 * f2 - f1, 3)]
     cands = [c for c in cands if 0 < c[1] < nyq]
