@@ -50,6 +50,7 @@ import numpy as np
 from scipy import ndimage, optimize, signal, stats
 
 from audiodsm.errors import ParameterError
+from audiodsm.measure.spectrum import SpectrumState, accumulate_spectrum
 
 __all__ = [
     "SpectralLine",
@@ -170,105 +171,8 @@ def welch_degrees_of_freedom(window, step_frames: int, n_averages: int) -> float
     return 2.0 * k / total
 
 
-@dataclass(frozen=True, eq=False)
-class LineSpectrumState:
-    """Running sum of windowed periodograms of one channel, carried between blocks (a value).
-
-    Attributes
-    ----------
-    rate_hz : float
-    window : str
-    segment_frames : int
-    power_sum : numpy.ndarray
-        Sum of the squared FFT magnitudes of the segments in completed groups (read-only).
-    n_averages : int
-        Segments in ``power_sum``.
-    pending : numpy.ndarray
-        Frames not yet part of a completed group (read-only).
-    """
-
-    rate_hz: float
-    window: str
-    segment_frames: int
-    power_sum: np.ndarray = field(repr=False)
-    n_averages: int
-    pending: np.ndarray = field(repr=False)
-
-    def _totals(self) -> tuple[np.ndarray, int]:
-        """Sums including the complete segments still pending."""
-        count = _n_segments(self.pending.shape[0], self.segment_frames)
-        if count == 0:
-            return self.power_sum, self.n_averages
-        part = _group_sum(self.pending, count, self.segment_frames, self.window)
-        return self.power_sum + part, self.n_averages + count
-
-    def merged(self, other: LineSpectrumState) -> LineSpectrumState:
-        """Pool with the state of a separate stretch of the same channel.
-
-        No segment spans the gap between the two stretches; frames that did not fill a
-        segment in either are dropped.
-        """
-        if (other.segment_frames, other.rate_hz, other.window) != (
-            self.segment_frames,
-            self.rate_hz,
-            self.window,
-        ):
-            raise ParameterError("other", "a differently set-up spectrum", "the same settings")
-        a_sum, a_count = self._totals()
-        b_sum, b_count = other._totals()
-        total = a_sum + b_sum
-        total.setflags(write=False)
-        return LineSpectrumState(
-            self.rate_hz, self.window, self.segment_frames, total, a_count + b_count, _EMPTY
-        )
-
-    def spectrum(self):
-        """The averaged spectrum so far, an ``audiodsm.measure.spectrum.Spectrum``.
-
-        Scaled as that class states: mean square per bin (density times bin spacing), so a
-        band's noise is the sum of its bins and a tone's power the sum over its main lobe.
-        """
-        from audiodsm.measure.spectrum import Spectrum
-
-        power_sum, count = self._totals()
-        if count == 0:
-            raise ParameterError(
-                "signal length", "shorter than one segment", f">= {self.segment_frames} frames"
-            )
-        w = _window(self.window, self.segment_frames)
-        n = self.segment_frames
-        # density times bin spacing: 2|X|^2 / (n * sum w^2), not doubled at DC and Nyquist
-        scale = np.full(n // 2 + 1, 2.0 / (n * float(np.sum(w * w))))
-        scale[0] /= 2.0
-        scale[-1] /= 2.0
-        return Spectrum(
-            freq_hz=np.arange(n // 2 + 1) * (self.rate_hz / n),
-            power=power_sum * scale / count,
-            rate_hz=self.rate_hz,
-            resolution_hz=self.rate_hz / n,
-            enbw_hz=self.rate_hz * float(np.sum(w * w)) / float(np.sum(w)) ** 2,
-            window=self.window,
-            segment_frames=n,
-            n_averages=count,
-            main_lobe_bins=_LOBE_HALF_BINS.get(self.window, 4),
-        )
-
-
-_EMPTY = np.zeros(0)
-_EMPTY.setflags(write=False)
-
-
-def _group_frames(segment_frames: int) -> int:
-    """Segments per FFT batch: bounds the temporary arrays to about 2**19 samples."""
-    return max(1, (1 << 19) // segment_frames)
-
-
-def _group_sum(data: np.ndarray, count: int, seg: int, window: str) -> np.ndarray:
-    """Sum of |FFT|^2 of ``count`` mean-removed, windowed, half-overlapping segments."""
-    view = np.lib.stride_tricks.sliding_window_view(data, seg)[:: seg // 2][:count]
-    segs = (view - view.mean(axis=1, keepdims=True)) * _window(window, seg)
-    spec = np.fft.rfft(segs, axis=1)
-    return np.sum(spec.real**2 + spec.imag**2, axis=0)
+#: The running state of :func:`accumulate_line_spectrum` (the spectrum module's state).
+LineSpectrumState = SpectrumState
 
 
 def accumulate_line_spectrum(
@@ -277,17 +181,14 @@ def accumulate_line_spectrum(
     rate_hz: float,
     segment_frames: int,
     window: str = DETECTOR_WINDOW,
-    state: LineSpectrumState | None = None,
-) -> LineSpectrumState:
-    """Add a block of one channel to a running, batched Welch average.
+    state: SpectrumState | None = None,
+) -> SpectrumState:
+    """Add a block of one channel to the running average the detector reads.
 
-    Half-overlapping, mean-removed, windowed segments are cut from the concatenation of all
-    blocks and their FFTs taken in fixed groups of segments (counted from the start of the
-    signal), so the sums do not depend on how the signal was cut into blocks: block-wise
-    equals one call, bit for bit. The result equals
-    ``audiodsm.measure.spectrum.accumulate_spectrum`` of the same signal to rounding; this
-    batched form is several times faster, which the ``analyze`` command needs for
-    ten-minute 96 kHz files.
+    This is ``audiodsm.measure.spectrum.accumulate_spectrum`` with the detector's settings:
+    an explicit segment length, half-overlapping mean-removed segments and the 4-term
+    Blackman-Harris window by default. Block-wise equals one call, bit for bit, and
+    separate stretches pool with ``state.merged(other)``.
 
     Parameters
     ----------
@@ -298,64 +199,22 @@ def accumulate_line_spectrum(
     segment_frames : int
         Segment length, even (see :func:`segment_frames_for`). Used only when starting.
     window : str, optional
-        Window name for ``scipy.signal.get_window`` (periodic); 4-term Blackman-Harris by
-        default. Used only when starting.
-    state : LineSpectrumState, optional
+        Window name for ``scipy.signal.get_window`` (periodic). Used only when starting.
+    state : SpectrumState, optional
         The value returned for the previous block; None to start.
 
     Returns
     -------
-    LineSpectrumState
+    SpectrumState
         Call ``.spectrum()`` for the averaged spectrum.
 
     References
     ----------
     .. [1] P. D. Welch, IEEE Trans. Audio Electroacoust. AU-15(2), 1967.
     """
-    arr = np.asarray(x, dtype=np.float64)
-    if arr.ndim != 1:
-        raise ParameterError("x", f"array of shape {arr.shape}", "one channel, shape (n,)")
-    if state is None:
-        _check_rate(rate_hz)
-        if (
-            isinstance(segment_frames, bool)
-            or not isinstance(segment_frames, int | np.integer)
-            or segment_frames < 16
-            or segment_frames % 2
-        ):
-            raise ParameterError("segment_frames", segment_frames, "an even integer >= 16")
-        _window(window, int(segment_frames))  # validates the name
-        zero = np.zeros(int(segment_frames) // 2 + 1)
-        zero.setflags(write=False)
-        state = LineSpectrumState(float(rate_hz), window, int(segment_frames), zero, 0, _EMPTY)
-    elif not isinstance(state, LineSpectrumState):
-        raise ParameterError("state", type(state).__name__, "a LineSpectrumState or None")
-    elif float(rate_hz) != state.rate_hz:
-        raise ParameterError(
-            "rate_hz", rate_hz, f"the rate the spectrum began with, {state.rate_hz}"
-        )
-    seg = state.segment_frames
-    hop = seg // 2
-    group = _group_frames(seg)
-    need = (group + 1) * hop  # frames holding one full group of segments
-    data = np.concatenate([state.pending, arr]) if state.pending.size else arr
-    if data.shape[0] < need:
-        pending = np.array(data, copy=True)
-        pending.setflags(write=False)
-        return LineSpectrumState(
-            state.rate_hz, state.window, seg, state.power_sum, state.n_averages, pending
-        )
-    total = np.array(state.power_sum, copy=True)
-    count = state.n_averages
-    pos = 0
-    while data.shape[0] - pos >= need:
-        total += _group_sum(data[pos : pos + need], group, seg, state.window)
-        count += group
-        pos += group * hop
-    total.setflags(write=False)
-    pending = np.array(data[pos:], copy=True)
-    pending.setflags(write=False)
-    return LineSpectrumState(state.rate_hz, state.window, seg, total, count, pending)
+    return accumulate_spectrum(
+        x, rate_hz=rate_hz, state=state, segment_frames=segment_frames, window=window
+    )
 
 
 def line_spectrum(x, *, rate_hz: float, segment_frames: int | None = None):

@@ -12,8 +12,9 @@ Full scale is ±1.0; a full-scale sine has mean-square 1/2, and that is 0 dBFS.
 
 from __future__ import annotations
 
+import functools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import signal as _sig
@@ -103,13 +104,28 @@ def level_dbfs(x):
 
 
 def _window(window, frames):
+    """The periodic window as a read-only array (cached per name and length)."""
+    try:
+        return _cached_window(window, int(frames))
+    except TypeError:  # an unhashable window spec: build it without the cache
+        return _make_window(window, int(frames))
+
+
+@functools.lru_cache(maxsize=16)
+def _cached_window(window, frames):
+    return _make_window(window, frames)
+
+
+def _make_window(window, frames):
     try:
         w = _sig.get_window(window, frames, fftbins=True)
     except (ValueError, TypeError) as exc:
         raise ParameterError(
             "window", window, f"a window name scipy.signal accepts ({exc})"
         ) from None
-    return np.asarray(w, dtype=float)
+    w = np.array(w, dtype=float)
+    w.setflags(write=False)
+    return w
 
 
 def _main_lobe_half_width(w):
@@ -255,7 +271,10 @@ def _weighting_power(freq_hz, weighting):
 
 @dataclass(frozen=True, eq=False)
 class SpectrumState:
-    """Running sum of windowed periodograms, carried between blocks.
+    """Running sum of windowed periodograms of one channel, carried between blocks (a value).
+
+    Segments are transformed in fixed groups counted from the start of the signal (see
+    :func:`accumulate_spectrum`); frames of a group not yet complete wait in ``pending``.
 
     Attributes
     ----------
@@ -264,20 +283,59 @@ class SpectrumState:
     segment_frames : int
     detrend : bool
     power_sum : numpy.ndarray
-        Sum of the scaled one-sided periodograms of the complete segments so far.
+        Sum of the squared FFT magnitudes of the segments in completed groups (read-only,
+        not yet scaled).
     n_averages : int
-        Complete segments so far.
+        Segments in ``power_sum``.
     pending : numpy.ndarray
-        Trailing frames not yet part of a complete segment (fewer than ``segment_frames``).
+        Frames not yet part of a completed group (read-only).
     """
 
     rate_hz: float
     window: str
     segment_frames: int
     detrend: bool
-    power_sum: np.ndarray
+    power_sum: np.ndarray = field(repr=False)
     n_averages: int
-    pending: np.ndarray
+    pending: np.ndarray = field(repr=False)
+
+    def _totals(self):
+        """``(power_sum, n_averages)`` including the complete segments still pending."""
+        n = self.segment_frames
+        count = _segment_count(self.pending.shape[0], n)
+        if count == 0:
+            return self.power_sum, self.n_averages
+        part = _segments_power(self.pending, count, n, self.window, self.detrend)
+        return self.power_sum + part, self.n_averages + count
+
+    def merged(self, other):
+        """Pool with the state of a separate stretch of the same channel.
+
+        No segment spans the gap between the two stretches; frames that did not fill a
+        segment in either are dropped.
+
+        Parameters
+        ----------
+        other : SpectrumState
+            Set up with the same rate, window, segment length and detrending.
+
+        Returns
+        -------
+        SpectrumState
+        """
+        settings = (self.segment_frames, self.rate_hz, self.window, self.detrend)
+        if not isinstance(other, SpectrumState) or settings != (
+            other.segment_frames,
+            other.rate_hz,
+            other.window,
+            other.detrend,
+        ):
+            raise ParameterError("other", "a differently set-up spectrum", "the same settings")
+        a_sum, a_count = self._totals()
+        b_sum, b_count = other._totals()
+        total = a_sum + b_sum
+        total.setflags(write=False)
+        return replace(self, power_sum=total, n_averages=a_count + b_count, pending=_EMPTY)
 
     def spectrum(self):
         """The averaged spectrum of everything accumulated so far.
@@ -287,26 +345,56 @@ class SpectrumState:
         ParameterError
             When no complete segment has been seen yet.
         """
-        if self.n_averages == 0:
+        power_sum, count = self._totals()
+        n = self.segment_frames
+        if count == 0:
             raise ParameterError(
                 "x",
                 f"{len(self.pending)} frames",
-                f"at least {self.segment_frames} frames for one segment",
+                f"at least {n} frames for one segment",
             )
-        w = _window(self.window, self.segment_frames)
-        enbw = self.rate_hz * float(np.sum(w * w)) / float(np.sum(w)) ** 2
-        n = self.segment_frames
+        w = _window(self.window, n)
+        energy = float(np.sum(w * w))
+        # density scaling times the bin spacing: |X|^2 / (sum(w^2) * n) per bin, doubled
+        # for the one-sided spectrum except at DC and (even n) Nyquist.
+        scale = np.full(n // 2 + 1, 2.0 / (energy * n))
+        scale[0] /= 2.0
+        scale[-1] /= 2.0
         return Spectrum(
             freq_hz=np.arange(n // 2 + 1) * (self.rate_hz / n),
-            power=self.power_sum / self.n_averages,
+            power=power_sum * scale / count,
             rate_hz=self.rate_hz,
             resolution_hz=self.rate_hz / n,
-            enbw_hz=enbw,
+            enbw_hz=self.rate_hz * energy / float(np.sum(w)) ** 2,
             window=str(self.window),
             segment_frames=n,
-            n_averages=self.n_averages,
+            n_averages=count,
             main_lobe_bins=_main_lobe_half_width(w),
         )
+
+
+_EMPTY = np.zeros(0)
+_EMPTY.setflags(write=False)
+
+
+def _segment_count(n_frames, segment_frames):
+    """Complete half-overlapping segments in ``n_frames`` frames."""
+    hop = segment_frames // 2
+    return 0 if n_frames < segment_frames else 1 + (n_frames - segment_frames) // hop
+
+
+def _group_segments(segment_frames):
+    """Segments per FFT batch: bounds the temporary arrays to about 2**19 samples."""
+    return max(1, (1 << 19) // segment_frames)
+
+
+def _segments_power(data, count, n, window, detrend):
+    """Sum of ``|FFT|**2`` of the first ``count`` windowed, half-overlapping segments."""
+    segs = np.lib.stride_tricks.sliding_window_view(data, n)[:: n // 2][:count]
+    if detrend:
+        segs = segs - segs.mean(axis=1, keepdims=True)
+    spec = np.fft.rfft(segs * _window(window, n), axis=1)
+    return np.sum(spec.real**2 + spec.imag**2, axis=0)
 
 
 def _segment_frames_for(n_frames, rate_hz, resolution_hz, segments):
@@ -339,7 +427,10 @@ def accumulate_spectrum(
     """Add a block of samples to a running Welch average.
 
     Segments of ``segment_frames`` frames with 50 % overlap are taken from the concatenation
-    of all blocks, so the result does not depend on how the signal was cut into blocks.
+    of all blocks and their FFTs taken in fixed groups of segments (about 2**19 samples,
+    counted from the start of the signal), so the sums do not depend on how the signal was
+    cut into blocks: block-wise equals one call, bit for bit. Separate stretches of one
+    channel can be pooled with :meth:`SpectrumState.merged`.
 
     Parameters
     ----------
@@ -363,6 +454,11 @@ def accumulate_spectrum(
     -------
     SpectrumState
         Call ``.spectrum()`` on it for the averaged :class:`Spectrum`.
+
+    References
+    ----------
+    .. [1] P. D. Welch, "The use of fast Fourier transform for the estimation of power
+       spectra", IEEE Trans. Audio Electroacoust. AU-15(2), 1967, pp. 70-73.
     """
     arr = _as_signal(x) if np.size(x) else np.zeros(0)
     if state is None:
@@ -373,20 +469,26 @@ def accumulate_spectrum(
                     "resolution_hz", None, "a bin spacing in Hz (or segment_frames) when streaming"
                 )
             segment_frames = _segment_frames_for(0, rate, resolution_hz, 1)
-        if not (isinstance(segment_frames, int | np.integer) and segment_frames >= _MIN_SEGMENT):
+        if isinstance(segment_frames, bool) or not (
+            isinstance(segment_frames, int | np.integer) and segment_frames >= _MIN_SEGMENT
+        ):
             raise ParameterError("segment_frames", segment_frames, f"an integer >= {_MIN_SEGMENT}")
         if segment_frames % 2:
             raise ParameterError("segment_frames", segment_frames, "an even number of frames")
         _window(window, 8)  # validate the name early
+        zero = np.zeros(int(segment_frames) // 2 + 1)
+        zero.setflags(write=False)
         state = SpectrumState(
             rate_hz=rate,
             window=window,
             segment_frames=int(segment_frames),
             detrend=bool(detrend),
-            power_sum=np.zeros(int(segment_frames) // 2 + 1),
+            power_sum=zero,
             n_averages=0,
-            pending=np.zeros(0),
+            pending=_EMPTY,
         )
+    elif not isinstance(state, SpectrumState):
+        raise ParameterError("state", type(state).__name__, "a SpectrumState or None")
     elif float(rate_hz) != state.rate_hz:
         raise ParameterError(
             "rate_hz", rate_hz, f"the rate the spectrum began with, {state.rate_hz}"
@@ -394,37 +496,24 @@ def accumulate_spectrum(
 
     n = state.segment_frames
     hop = n // 2
-    data = np.concatenate([state.pending, arr])
-    count = 0 if len(data) < n else 1 + (len(data) - n) // hop
-    power_sum = state.power_sum.copy()
-    if count:
-        w = _window(state.window, n)
-        # density scaling times the bin spacing: |X|^2 / (sum(w^2) * n) per bin, doubled
-        # for the one-sided spectrum except at DC and (even n) Nyquist.
-        scale = np.full(n // 2 + 1, 2.0 / (float(np.sum(w * w)) * n))
-        scale[0] /= 2.0
-        scale[-1] /= 2.0
-        # a bounded number of segments at once keeps memory small
-        chunk = max(1, (1 << 22) // n)
-        for first in range(0, count, chunk):
-            idx = np.arange(first, min(count, first + chunk))
-            segs = np.lib.stride_tricks.sliding_window_view(data, n)[idx * hop]
-            if state.detrend:
-                segs = segs - segs.mean(axis=1, keepdims=True)
-            spec = np.fft.rfft(segs * w, axis=1)
-            per = (spec.real**2 + spec.imag**2) * scale
-            for row in per:  # sum in order so block splits give the same bits
-                power_sum += row
-    rest = data[count * hop :] if count else data
-    return SpectrumState(
-        rate_hz=state.rate_hz,
-        window=state.window,
-        segment_frames=n,
-        detrend=state.detrend,
-        power_sum=power_sum,
-        n_averages=state.n_averages + count,
-        pending=rest.copy(),
-    )
+    group = _group_segments(n)
+    need = (group + 1) * hop  # frames holding one full group of segments
+    data = np.concatenate([state.pending, arr]) if state.pending.size else arr
+    if data.shape[0] < need:
+        pending = np.array(data, copy=True)
+        pending.setflags(write=False)
+        return replace(state, pending=pending)
+    total = np.array(state.power_sum, copy=True)
+    count = state.n_averages
+    pos = 0
+    while data.shape[0] - pos >= need:
+        total += _segments_power(data[pos : pos + need], group, n, state.window, state.detrend)
+        count += group
+        pos += group * hop
+    total.setflags(write=False)
+    pending = np.array(data[pos:], copy=True)
+    pending.setflags(write=False)
+    return replace(state, power_sum=total, n_averages=count, pending=pending)
 
 
 def averaged_spectrum(
