@@ -259,7 +259,8 @@ class ModulatorSettings:
         "factors are powers of two, peaks land in (bound/2, bound] and the output bits are "
         "exactly those of the unscaled loop; 'exact': peaks land on the bound, output equal up "
         "to floating-point rounding; 'off': the unscaled realization. The quantizer-facing "
-        "state of feedback and error-feedback loops keeps its size.",
+        "state keeps its size in error-feedback loops and multi-level feedback loops, where "
+        "the quantizer sets it.",
     )
     state_peak_bound: float = _key(
         1.0,

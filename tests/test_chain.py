@@ -465,3 +465,18 @@ def test_state_scaling_is_remembered_and_deterministic():
         fresh.state_scaling_limit.state_peak, first.state_scaling_limit.state_peak
     )
     assert np.max(first.state_scaling_limit.state_peak) <= 0.55
+
+
+@pytest.mark.parametrize("name", ["pdm2_64x", "pdm5_64x"])
+def test_demo_pdm_profiles_keep_every_state_within_the_bound(name):
+    from pathlib import Path
+
+    from audiodsm.profile import load_profile
+
+    path = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / f"{name}.toml"
+    chain = Chain.from_profile(load_profile(path), RATE, 1)
+    lim = chain.state_scaling_limit
+    # single-bit loops scale every state, the quantizer-facing one of a feedback loop too;
+    # powers of two put each peak in (bound/2, bound] exactly (no rounding involved)
+    bound = chain.profile.modulator.state_peak_bound
+    assert np.all(lim.state_peak <= bound) and np.all(lim.state_peak > bound / 2)

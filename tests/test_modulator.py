@@ -371,8 +371,11 @@ def test_power_of_two_scaling_gives_the_same_bits(structure, levels, dither, rng
     ntf = design_ntf(5, 64, max_gain=1.5 if levels == 2 else 3.0)
     plain = Modulator(ntf, structure, levels=levels, dither_lsb=dither, seed=3)
     peaks = np.array([0.003, 0.07, 2.5, 40.0, 900.0])  # any positive peaks will do
-    loop = plain.loop.scaled(peaks, bound=1.0, power_of_two=True)
+    # a single-bit feedback loop may scale its quantizer-facing state too
+    last_too = structure == "feedback" and levels == 2
+    loop = plain.loop.scaled(peaks, bound=1.0, power_of_two=True, quantizer_state=last_too)
     s = loop.state_scale
+    assert (s[-1] != 1.0) == (structure == "feedforward" or last_too)
     assert np.all(np.exp2(np.round(np.log2(s))) == s)  # powers of two
     scaled = Modulator(loop, levels=levels, dither_lsb=dither, seed=3)
     x = 0.5 * np.sin(2 * np.pi * 0.0017 * np.arange(6000)) + 0.01 * rng.standard_normal(6000)
@@ -390,7 +393,9 @@ def test_power_of_two_scale_states_peaks_between_half_bound_and_bound(structure)
     mod = Modulator(ntf, structure, levels=2)
     bound = 0.75
     scaled, lim = scale_states(mod, osr=64, bound=bound, power_of_two=True, samples=16384)
-    inner = lim.state_peak if structure == "feedforward" else lim.state_peak[:-1]
+    # every state but the error-feedback loop's quantizer-facing one, which the quantizer
+    # sizes (a single-bit feedback loop scales its last state too)
+    inner = lim.state_peak if structure != "error-feedback" else lim.state_peak[:-1]
     # rounding s up to the next power of two puts every scaled peak in (bound/2, bound]; the
     # re-simulation is bit-exact (test above), so the bound holds with no tolerance
     assert np.all(inner <= bound) and np.all(inner > bound / 2)
@@ -421,3 +426,17 @@ def test_empty_input_gives_empty_output_and_the_same_state(shape):
     assert y.shape == shape and fresh.samples == 0
     y, states = mod.trace_states(np.zeros(shape))
     assert y.shape == shape and states.shape[0] == 0
+
+
+def test_scaled_quantizer_state_needs_a_single_bit_feedback_loop():
+    ntf = design_ntf(4, 64)
+    peaks = np.array([0.5, 0.7, 0.9, 2.0])
+    loop = realize_ntf(ntf, "feedback").scaled(peaks, quantizer_state=True)
+    assert loop.output_weight[-1] == 2.0
+    Modulator(loop, levels=2)  # fine
+    with pytest.raises(ParameterError, match="levels"):
+        Modulator(loop, levels=3)
+    with pytest.raises(ParameterError, match="quantizer_state"):
+        realize_ntf(ntf, "error-feedback").scaled(peaks, quantizer_state=True)
+    # without the option the quantizer-facing state keeps its size
+    assert realize_ntf(ntf, "feedback").scaled(peaks).state_scale[-1] == 1.0

@@ -223,12 +223,20 @@ class LoopRealization:
         poles = np.linalg.eigvals(acl - np.eye(self.order)) + 1.0
         return NoiseTransfer(zeros=self.loop_zeros(), poles=poles.astype(complex))
 
-    def scaled(self, peaks, *, bound: float = 1.0, power_of_two: bool = False) -> LoopRealization:
+    def scaled(
+        self,
+        peaks,
+        *,
+        bound: float = 1.0,
+        power_of_two: bool = False,
+        quantizer_state: bool = False,
+    ) -> LoopRealization:
         """Return the loop with each state divided so that its peak becomes ``bound``.
 
         A diagonal similarity transform ``x_s = x / s`` with ``s = peaks / bound``: the NTF and
         the STF are unchanged. The state read by the quantizer in the feedback and error-feedback
-        structures (the last one) is not scaled, since the quantizer fixes its size.
+        structures (the last one) is not scaled, since the quantizer fixes its size, unless
+        ``quantizer_state`` asks for it in a feedback loop.
 
         Parameters
         ----------
@@ -246,6 +254,13 @@ class LoopRealization:
             factors are exact ratios, the peaks land on ``bound``, and rounding differs in the
             last bits (a single-bit loop's output can then part from the unscaled one when a
             quantizer input falls within rounding of zero).
+        quantizer_state : bool, keyword-only
+            Scale the quantizer-facing (last) state of a feedback loop too; ``output_weight``
+            then carries the factor, so the quantizer input is ``c[-1] * x_s[-1]``. Only a
+            single-bit quantizer can run such a loop (its decision is a sign, blind to a
+            positive factor; :class:`~audiodsm.stages.modulator.Modulator` refuses more
+            levels). Ignored for feedforward loops (their states are all scaled anyway); an
+            error-feedback loop cannot have it (its quantizer adds the input to that state).
 
         Returns
         -------
@@ -265,10 +280,16 @@ class LoopRealization:
             )
         if not (np.isfinite(bound) and bound > 0):
             raise ParameterError("bound", bound, "a finite positive number")
+        if quantizer_state and self.structure == "error-feedback":
+            raise ParameterError(
+                "quantizer_state", True, "False for an error-feedback loop (or a feedback loop)"
+            )
         s = peaks / bound
         if power_of_two:
             s = np.exp2(np.ceil(np.log2(s)))
-        if self.structure != "feedforward":
+        if self.structure == "error-feedback" or (
+            self.structure == "feedback" and not quantizer_state
+        ):
             s[-1] = 1.0
         n = self.order
         k = self.chain_gain.copy()

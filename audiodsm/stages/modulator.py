@@ -177,6 +177,19 @@ class Modulator:
         for name, value in (("state_bound", state_bound), ("input_bound", input_bound)):
             if not (np.isfinite(value) and value > 0):
                 raise ParameterError(name, value, "a finite number > 0")
+        # A single-bit feedback loop may have its quantizer-facing state scaled too
+        # (LoopRealization.scaled(quantizer_state=True)): the kernels read that state as the
+        # quantizer input, so the quantizer sees y / g (g = c[-1]); a sign decision does not
+        # mind, and the dither and the input bound are divided by g to match.
+        self._quantizer_gain = 1.0
+        if loop.structure == "feedback" and loop.output_weight[-1] != 1.0:
+            if levels != 2:
+                raise ParameterError(
+                    "levels",
+                    levels,
+                    "2 for a feedback loop whose quantizer-facing state is scaled",
+                )
+            self._quantizer_gain = float(loop.output_weight[-1])
         self.loop = loop
         self.levels = int(levels)
         self.dither_lsb = float(dither_lsb)
@@ -265,7 +278,13 @@ class Modulator:
         peaks = np.array(peak_row, dtype=np.float64)
         counts = np.array([count], dtype=np.int64)
         u = np.ascontiguousarray(u, dtype=np.float64)
-        args = (self.levels, self.dither_lsb * self.step, self.input_bound, self.state_bound)
+        g = self._quantizer_gain
+        args = (
+            self.levels,
+            self.dither_lsb * self.step / g,
+            self.input_bound / g,
+            self.state_bound,
+        )
         reset = self.guard == "reset"
         no_trace = np.empty((0, self.order))
         # Chunks small enough to stay in cache: each is checked for non-finite samples and then
@@ -568,14 +587,18 @@ def scale_states(
         Same settings, scaled loop.
     limit : StabilityLimit
         For the scaled loop at the amplitude found: ``state_peak`` are the simulated peaks
-        after scaling (close to ``bound``; the quantizer-facing state of the feedback and
-        error-feedback loops keeps its own size).
+        after scaling (close to ``bound``). The quantizer-facing state keeps its own size in
+        error-feedback loops and in multi-level feedback loops, where the quantizer fixes it;
+        a single-bit feedback loop has it scaled too (its sign decision does not mind).
     """
     limit = find_stability_limit(modulator, osr=osr, **options)
     if limit.amplitude <= 0:
         raise ParameterError("modulator", repr(modulator), "a loop stable for some input")
     peaks = np.where(limit.state_peak > 0, limit.state_peak, 1.0)
-    loop = modulator.loop.scaled(peaks, bound=bound, power_of_two=power_of_two)
+    single_bit_feedback = modulator.structure == "feedback" and modulator.levels == 2
+    loop = modulator.loop.scaled(
+        peaks, bound=bound, power_of_two=power_of_two, quantizer_state=single_bit_feedback
+    )
     scaled = Modulator(
         loop,
         levels=modulator.levels,
