@@ -212,7 +212,7 @@ def test_bad_profile_key_is_one_line(setup):
     assert res.stderr.strip() == (
         f"audiodsm: error: {prof}: modulator.ordr: unknown key; expected one of: "
         "order, max_gain, optimize_zeros, zeros, poles, structure, levels, dither_lsb, seed, "
-        "input_scale, guard, state_bound"
+        "input_scale, guard, state_bound, state_scaling, state_peak_bound"
     )
     assert final_files(tmp / "out") == []
 
