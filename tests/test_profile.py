@@ -22,6 +22,7 @@ from audiodsm.profile import (
 )
 
 DOCS = Path(__file__).resolve().parents[1] / "docs" / "profiles.md"
+README = Path(__file__).resolve().parents[1] / "README.md"
 
 CLASS_D = """
 name = "speaker-amp-9level"
@@ -251,9 +252,10 @@ def test_digest_is_sha256_of_the_effective_settings():
     assert hashlib.sha256(text.encode()).hexdigest() == digest
 
 
-def test_docs_list_every_key_with_its_default():
-    text = DOCS.read_text(encoding="utf-8")
+@pytest.mark.parametrize("doc", [DOCS, README], ids=["docs/profiles.md", "README.md"])
+def test_docs_list_every_key_with_its_default(doc):
+    text = doc.read_text(encoding="utf-8")
     for key, _kind, _expect, default, _doc in schema_rows():
         row = next((line for line in text.splitlines() if f"`{key}`" in line), None)
-        assert row is not None, f"{key} missing from docs/profiles.md"
-        assert f"`{default}`" in row, f"{key}: default {default} not in its docs row"
+        assert row is not None, f"{key} missing from {doc.name}"
+        assert f"`{default}`" in row, f"{key}: default {default} not in its {doc.name} row"
