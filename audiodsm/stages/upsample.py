@@ -647,7 +647,7 @@ def _build_upsampler(rate, osr, pe, ripple, se, atten, final_stage, h, k, gs, ke
 # ---------------------------------------------------------------------------------------------
 
 
-def _as_frames(x, name="x"):
+def _as_frames(x, name="x", *, check_finite=True):
     """Validate a (n,) or (n, channels) signal; return it as float64 (n, channels) and ndim."""
     arr = np.asarray(x)
     if arr.ndim not in (1, 2) or (arr.ndim == 2 and arr.shape[1] < 1):
@@ -657,7 +657,7 @@ def _as_frames(x, name="x"):
     arr = arr.astype(np.float64, copy=False)
     # one pass: a NaN or Inf anywhere makes the sum non-finite (so does an overflow, which
     # only values near 1e308 can cause: also not a signal)
-    if not math.isfinite(float(np.sum(arr))):
+    if check_finite and not math.isfinite(float(np.sum(arr))):
         raise ParameterError(name, "an array holding NaN or Inf", "finite samples")
     return (arr[:, None] if arr.ndim == 1 else arr), arr.ndim
 
@@ -1242,7 +1242,7 @@ class Downsampler:
             new_bufs.append(_frozen(rest_all[s, :, :r].copy()))
         return out
 
-    def process(self, x, state: DownsamplerState | None = None):
+    def process(self, x, state: DownsamplerState | None = None, *, check_finite: bool = True):
         """Decimate one block.
 
         Parameters
@@ -1251,6 +1251,9 @@ class Downsampler:
             Block of shape (n,) or (n, channels) at ``rate_in_hz``.
         state : DownsamplerState, optional
             State returned by the previous call; None starts from silence.
+        check_finite : bool, keyword-only
+            Refuse NaN and Inf samples (one pass over the block). The chain, whose analog
+            filter output is finite by construction, turns it off.
 
         Returns
         -------
@@ -1260,7 +1263,7 @@ class Downsampler:
         state : DownsamplerState
             State to pass with the next block.
         """
-        frames, ndim = _as_frames(x)
+        frames, ndim = _as_frames(x, check_finite=check_finite)
         channels = frames.shape[1]
         n_buf = len(self._halves) + (self._rational is not None)
         if state is None:
