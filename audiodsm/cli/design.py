@@ -26,6 +26,7 @@ from pathlib import Path
 
 import click
 
+from audiodsm.cli._table import aligned_lines
 from audiodsm.errors import OutputError
 
 __all__ = ["design", "write_text_atomic"]
@@ -227,16 +228,12 @@ def _ranked_table(confirmations, target, weighting):
                 verdict,
             ]
         )
-    widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
     click.echo(
         f"target: dynamic range {target:g} dB ({_WEIGHTING_LABEL[weighting]}); "
         "cost = modulator clock MHz x levels x order"
     )
-    for j, r in enumerate(rows):
-        cells = [c.rjust(w) for c, w in zip(r[:-1], widths[:-1], strict=True)] + [r[-1]]
-        click.echo("  ".join(cells))
-        if j == 0:
-            click.echo("  ".join("-" * w for w in widths))
+    for line in aligned_lines(rows, right=range(len(head) - 1), rule=True):
+        click.echo(line)
 
 
 @click.command("design")

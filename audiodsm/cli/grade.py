@@ -8,24 +8,12 @@ from pathlib import Path
 
 import click
 
+from audiodsm.cli._table import aligned_lines
 from audiodsm.errors import ParameterError
 
 
 def _fmt(value, spec="+.2f"):
     return "-" if value is None else format(value, spec)
-
-
-def _aligned(rows, right=()) -> list:
-    """Rows of text cells as aligned lines (columns in ``right`` are right-aligned)."""
-    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
-    out = []
-    for r in rows:
-        cells = [
-            cell.rjust(w) if c in right else cell.ljust(w)
-            for c, (cell, w) in enumerate(zip(r, widths, strict=True))
-        ]
-        out.append("  ".join(cells).rstrip())
-    return out
 
 
 def summary_table(batch) -> list:
@@ -43,7 +31,7 @@ def summary_table(batch) -> list:
                 "cache" if g.cached else ("crashed" if g.failure else "run"),
             )
         )
-    return _aligned(rows, right=(0, 3, 4))
+    return aligned_lines(rows, right=(0, 3, 4))
 
 
 def detail_table(batch) -> list:
@@ -66,7 +54,7 @@ def detail_table(batch) -> list:
                     else ("FAIL" if not line.reason else "FAIL: " + line.reason),
                 )
             )
-    return _aligned(rows, right=(0, 4, 5))
+    return aligned_lines(rows, right=(0, 4, 5))
 
 
 class _Bar:

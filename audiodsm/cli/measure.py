@@ -18,6 +18,8 @@ from pathlib import Path
 
 import click
 
+from audiodsm.cli._table import aligned_lines
+
 __all__ = ["measure", "profile_paths", "metrics_table"]
 
 
@@ -92,14 +94,7 @@ def metrics_table(names: list[str], metric_rows: list[dict]) -> str:
     for k in keys:
         unit = METRIC_UNITS[k][1]
         rows.append([k, unit or "-", *(_cell(m.get(k), unit) for m in metric_rows)])
-    widths = [max(len(r[i]) for r in rows) for i in range(len(header))]
-    lines = []
-    for j, r in enumerate(rows):
-        cells = [r[0].ljust(widths[0]), r[1].ljust(widths[1])]
-        cells += [c.rjust(w) for c, w in zip(r[2:], widths[2:], strict=True)]
-        lines.append("  ".join(cells).rstrip())
-        if j == 0:
-            lines.append("  ".join("-" * w for w in widths))
+    lines = aligned_lines(rows, right=range(2, len(header)), rule=True)
     return "\n".join(lines)
 
 
