@@ -33,6 +33,8 @@ _OCHRE = "#b07d1a"
 _GREY = "#8a8a8a"
 _RED = "#a33b2b"
 _GREEN = "#3d7a4a"
+#: Colours for a series of curves or bars, used in turn.
+_SERIES = (_BLUE, _OCHRE, _GREEN, _RED, _GREY, _INK, "#6b4c9a", "#2a8a8a")
 
 
 def _axes(ax, size=(6.4, 3.4)):
@@ -197,11 +199,10 @@ def plot_state_histograms(curves, *, ax=None, title="Integrator states"):
     fig, ax = _axes(ax)
     edges = np.atleast_2d(np.asarray(c["edges"], dtype=float))
     counts = np.atleast_2d(np.asarray(c["counts"], dtype=float))
-    palette = (_BLUE, _OCHRE, _GREEN, _RED, _GREY, _INK, "#6b4c9a", "#2a8a8a")
     for k in range(counts.shape[0]):
         total = counts[k].sum()
         share = counts[k] / total if total > 0 else counts[k]
-        ax.stairs(share, edges[k], color=palette[k % len(palette)], lw=1.1, label=f"state {k + 1}")
+        ax.stairs(share, edges[k], color=_SERIES[k % len(_SERIES)], lw=1.1, label=f"state {k + 1}")
     _style(ax, title, "state value (full-scale units)", "share of samples")
     ax.legend(fontsize=7, frameon=False, ncols=2)
     return fig
@@ -247,7 +248,6 @@ def plot_margins(batch, *, ax=None, title="Margin per target"):
     grades = list(batch.grades)
     targets = list(batch.spec.targets)
     fig, ax = _axes(ax, size=(7.6, 0.3 * len(targets) * max(1, len(grades)) ** 0.5 + 1.3))
-    palette = (_BLUE, _OCHRE, _GREEN, _RED, _GREY, _INK, "#6b4c9a", "#2a8a8a")
     n = max(1, len(grades))
     height = 0.8 / n
     y = np.arange(len(targets), dtype=float)
@@ -256,7 +256,7 @@ def plot_margins(batch, *, ax=None, title="Margin per target"):
     for k, g in enumerate(grades):
         pos = y - 0.4 + height * (k + 0.5)
         m = np.array([np.nan if ln.margin is None else ln.margin for ln in g.lines])
-        ax.barh(pos, np.nan_to_num(m), height=height, color=palette[k % len(palette)], label=g.name)
+        ax.barh(pos, np.nan_to_num(m), height=height, color=_SERIES[k % len(_SERIES)], label=g.name)
         missing = np.isnan(m)
         if missing.any():
             ax.plot(np.full(missing.sum(), low), pos[missing], "x", color=_RED, ms=6)
