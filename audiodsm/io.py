@@ -38,6 +38,7 @@ __all__ = [
     "write_audio_atomic",
     "open_audio_writer",
     "AudioFileWriter",
+    "replace_text_atomically",
 ]
 
 #: The most channels a file may hold.
@@ -539,3 +540,38 @@ def write_audio_atomic(
     ) as writer:
         writer.write(x)
     return writer.path
+
+
+def replace_text_atomically(path, text: str) -> Path:
+    """Put a text file in place through a temporary file in the same folder and a rename.
+
+    The text is written as UTF-8 with no newline translation to a hidden temporary file
+    beside the target, which is then renamed over it (``os.replace``); on any failure the
+    temporary file is removed and the target is left as it was.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The target file. The caller decides whether an existing file may be replaced.
+    text : str
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    OSError
+        The folder is missing or not writable, or the write or rename failed.
+    """
+    p = Path(path)
+    folder = p.parent if str(p.parent) else Path(".")
+    fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{p.name}.", suffix=".partial")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, p)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return p

@@ -323,3 +323,20 @@ def test_streaming_writer_renames_only_on_success(tmp_path, rng):
         with open_audio_writer(failed, rate_hz=48000, channels=2) as w:
             w.write(np.zeros((10, 3)))
     assert sorted(os.listdir(tmp_path)) == ["s.wav"]
+
+
+def test_text_is_replaced_whole_or_not_at_all(tmp_path):
+    from audiodsm.io import replace_text_atomically
+
+    target = tmp_path / "notes.csv"
+    assert replace_text_atomically(target, "a,b\r\n1,2\r\n") == target
+    # no newline translation: CSV line ends survive as written
+    assert target.read_bytes() == b"a,b\r\n1,2\r\n"
+    # a text UTF-8 cannot encode (a lone surrogate) fails mid-write: the old file stays
+    # and no temporary file is left beside it
+    with pytest.raises(UnicodeEncodeError):
+        replace_text_atomically(target, "x\ud800")
+    assert target.read_bytes() == b"a,b\r\n1,2\r\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.csv"]
+    with pytest.raises(OSError):
+        replace_text_atomically(tmp_path / "missing" / "x.txt", "x")

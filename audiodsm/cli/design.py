@@ -18,9 +18,7 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import sys
-import tempfile
 from dataclasses import replace
 from pathlib import Path
 
@@ -28,6 +26,7 @@ import click
 
 from audiodsm.cli._table import aligned_lines
 from audiodsm.errors import OutputError
+from audiodsm.io import replace_text_atomically
 
 __all__ = ["design", "write_text_atomic"]
 
@@ -62,19 +61,9 @@ def write_text_atomic(path, text: str, *, overwrite: bool = False) -> Path:
     if p.exists() and p.is_dir():
         raise OutputError(f"{p}: is a folder; expected a profile file name")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".part", dir=folder)
+        replace_text_atomically(p, text)
     except OSError as exc:
         raise OutputError(f"{p}: cannot write in {str(folder)!r} ({exc.strerror})") from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, p)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
     return p
 
 

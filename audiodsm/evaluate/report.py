@@ -26,7 +26,6 @@ import io
 import json
 import math
 import os
-import tempfile
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -34,6 +33,7 @@ import numpy as np
 
 from audiodsm.errors import AudiodsmError, OutputError
 from audiodsm.evaluate._plain import plain_scalar
+from audiodsm.io import replace_text_atomically
 
 __all__ = [
     "CSV_COLUMNS",
@@ -412,17 +412,6 @@ def check_report_dir(directory, *, protect=()) -> Path:
     return d
 
 
-def _write_atomic(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".partial")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
 def write_report(batch, directory, *, protect=(), title=None) -> dict:
     """Write ``grades.html``, ``grades.json`` and ``grades.csv`` into a folder.
 
@@ -455,6 +444,6 @@ def write_report(batch, directory, *, protect=(), title=None) -> dict:
     written = {}
     for kind in ("json", "csv", "html"):
         path = d / REPORT_FILES[kind]
-        _write_atomic(path, texts[kind])
+        replace_text_atomically(path, texts[kind])
         written[kind] = path
     return written
