@@ -625,17 +625,19 @@ _CASCADE_CHUNK = 4096
 def _deinterleave_into(src, even, odd, fill):
     """Append ``src`` to a stage buffer kept as its even and odd samples (``fill`` held)."""
     n = src.shape[0]
-    first = fill & 1  # index into src of the first sample that lands on an even position
-    e0 = (fill + first) >> 1
-    o0 = (fill + 1 - first) >> 1
-    src_even = src[first::2]
-    src_odd = src[1 - first :: 2]
-    dst_even = even[e0 : e0 + src_even.shape[0]]
-    dst_odd = odd[o0 : o0 + src_odd.shape[0]]
-    for j in range(src_even.shape[0]):
-        dst_even[j] = src_even[j]
-    for j in range(src_odd.shape[0]):
-        dst_odd[j] = src_odd[j]
+    pairs = n >> 1
+    half = fill >> 1
+    if fill & 1 == 0:  # src[2j] lands on an even position, src[2j + 1] on an odd one
+        dst_a = even[half : half + pairs + (n & 1)]
+        dst_b = odd[half : half + pairs]
+    else:
+        dst_a = odd[half : half + pairs + (n & 1)]
+        dst_b = even[half + 1 : half + 1 + pairs]
+    for j in range(pairs):
+        dst_a[j] = src[2 * j]
+        dst_b[j] = src[2 * j + 1]
+    if n & 1:
+        dst_a[pairs] = src[n - 1]
     return fill + n
 
 
