@@ -75,24 +75,27 @@ def test_polyphase_kernel_matches_slow_twin(rng):
     assert np.array_equal(out, slow_interpolate_polyphase(buf, phases, lengths))
 
 
-def test_cascade_kernel_matches_slow_twins_stage_by_stage(rng):
-    # half-band (x2), polyphase FIR (x3), hold (x2): the fused one-pass kernel must give the
-    # bits of the slow twins run stage after stage, with histories carried in and out, and
-    # across several internal chunks (the output is longer than _INTERP_CHUNK_OUT)
+@pytest.mark.parametrize("pratio", [3, 2])  # ratio 2 has its own interleaved store
+def test_cascade_kernel_matches_slow_twins_stage_by_stage(rng, pratio):
+    # half-band (x2), polyphase FIR (x pratio), hold (x2): the fused one-pass kernel must give
+    # the bits of the slow twins run stage after stage, with histories carried in and out,
+    # and across several internal chunks (the output is longer than _INTERP_CHUNK_OUT)
     dense = rng.standard_normal(6)
     dense = dense + dense[::-1]
-    phases = rng.standard_normal((3, 4))
-    plens = np.array([4, 4, 3])
-    phases[2, 3:] = 0.0
+    phases = rng.standard_normal((pratio, 4))
+    plens = np.array([4, 4, 3][:pratio])
+    phases[-1, 3:] = 0.0
+    plens[-1] = 3
     kinds = np.array([0, 1, 2])
-    ratios = np.array([2, 3, 2])
+    ratios = np.array([2, pratio, 2])
     taps = np.array([6, 4, 0])
     tables = np.zeros((3, 3, 6))
     tables[0, 0, :6] = dense
-    tables[1, :, :4] = phases
+    tables[1, :pratio, :4] = phases
     lengths = np.zeros((3, 3), dtype=np.int64)
-    lengths[1] = plens
-    n = _kernels._INTERP_CHUNK_OUT // 12 * 2 + 37
+    lengths[1, :pratio] = plens
+    total = 4 * pratio
+    n = _kernels._INTERP_CHUNK_OUT // total * 2 + 37
     x = rng.standard_normal((2, n))
     hist0 = rng.standard_normal((2, 5))
     hist1 = rng.standard_normal((2, 3))
@@ -104,7 +107,7 @@ def test_cascade_kernel_matches_slow_twins_stage_by_stage(rng):
     buf1 = np.concatenate([hist1, y0], axis=1)
     y1 = slow_interpolate_polyphase(buf1, phases, plens)
     expected = np.repeat(y1, 2, axis=1)  # a hold repeats each sample
-    out = np.empty((n * 12, 2)).T  # written through a transpose, as the Upsampler does
+    out = np.empty((n * total, 2)).T  # written through a transpose, as the Upsampler does
     rest = np.full((3, 2, 5), np.nan)
     _kernels.interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest)
     assert np.array_equal(out, expected)

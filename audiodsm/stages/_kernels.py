@@ -459,18 +459,36 @@ def _interpolate_halfband_row(row, dense, out, acc):
             b = row[start + m : start + m + length]
             for i in range(length):
                 acc[i] += coef * (a[i] + b[i])
-        even = out[2 * start : 2 * (start + length) : 2]
-        odd = out[2 * start + 1 : 2 * (start + length) : 2]
+        # a contiguous destination written with a fixed stride of 2 vectorizes
+        dst = out[2 * start : 2 * (start + length)]
         centre = row[start + k : start + k + length]
         for i in range(length):
-            even[i] = acc[i]
-            odd[i] = centre[i]
+            dst[2 * i] = acc[i]
+            dst[2 * i + 1] = centre[i]
 
 
 @njit(cache=True, nogil=True)
 def _interpolate_polyphase_row(row, phases, ratio, taps, lengths, out, acc):
     """One channel of :func:`interpolate_polyphase` with R = ``ratio``, M = ``taps``."""
     n = out.shape[0] // ratio
+    if ratio == 2:  # both phases, then one interleaved store with a fixed stride of 2
+        acc0 = acc[:_RATE_CHUNK]
+        acc1 = acc[_RATE_CHUNK : 2 * _RATE_CHUNK]
+        for start in range(0, n, _RATE_CHUNK):
+            length = min(start + _RATE_CHUNK, n) - start
+            for p in range(2):
+                a = acc0 if p == 0 else acc1
+                a[:length] = 0.0
+                for m in range(lengths[p]):
+                    coef = phases[p, m]
+                    seg = row[start + taps - 1 - m : start + taps - 1 - m + length]
+                    for i in range(length):
+                        a[i] += coef * seg[i]
+            dst = out[2 * start : 2 * (start + length)]
+            for i in range(length):
+                dst[2 * i] = acc0[i]
+                dst[2 * i + 1] = acc1[i]
+        return
     for start in range(0, n, _RATE_CHUNK):
         length = min(start + _RATE_CHUNK, n) - start
         for p in range(ratio):
@@ -522,7 +540,7 @@ def interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest
         offset[s + 1] = offset[s] + hist[s] + size
         size *= ratios[s]
     work = np.empty(offset[n_st])
-    acc = np.empty(_RATE_CHUNK)
+    acc = np.empty(2 * _RATE_CHUNK)
     for c in range(n_ch):
         for s in range(n_st):
             base = offset[s]
