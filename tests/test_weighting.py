@@ -278,3 +278,18 @@ def test_apply_weighting_refuses_foreign_state_and_bad_input(rng):
         apply_weighting(np.zeros((2, 2, 2)), rate_hz=48000.0, kind="a")
     y, state = apply_weighting(np.zeros(0), rate_hz=48000.0, kind="a", state=state_a)
     assert y.shape == (0,) and np.array_equal(state.zi, state_a.zi)
+
+
+def test_power_gain_reads_the_iec_table_as_power():
+    from audiodsm.measure.weighting import weighting_power_gain
+
+    # IEC 61672-1:2013, table 3 (values from memory, printed to 0.1 dB, hence +-0.05 dB):
+    # A-weighting -19.1 dB at 100 Hz, 0.0 dB at 1 kHz, -2.5 dB at 10 kHz.
+    f = np.array([0.0, 100.0, 1000.0, 10000.0])
+    gain = weighting_power_gain(f, "a")
+    assert gain[0] == 0.0  # -inf dB at DC: no power passes
+    table_db = np.array([-19.1, 0.0, -2.5])
+    np.testing.assert_allclose(10.0 * np.log10(gain[1:]), table_db, atol=0.05)
+    np.testing.assert_array_equal(weighting_power_gain(f, "unweighted"), np.ones(4))
+    # CCIR-RMS: 0 dB at 2 kHz by definition (AES17, from memory)
+    assert weighting_power_gain(np.array([2000.0]), "ccir")[0] == pytest.approx(1.0, abs=1e-9)

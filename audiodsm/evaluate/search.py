@@ -110,14 +110,6 @@ def loop_cost(order: int, levels: int, *, modulator_rate_hz: float) -> float:
     return modulator_rate_hz / 1e6 * levels * order
 
 
-def _weighting_power(freq_hz, weighting):
-    if weighting == "unweighted":
-        return np.ones_like(freq_hz)
-    from audiodsm.measure.weighting import weighting_db
-
-    return 10.0 ** (np.asarray(weighting_db(freq_hz, weighting)) / 10.0)
-
-
 def predicted_dynamic_range_db(
     ntf,
     levels: int,
@@ -171,7 +163,9 @@ def predicted_dynamic_range_db(
     lo, hi = band_hz
     logf = np.linspace(math.log(lo), math.log(hi), points)
     f = np.exp(logf)
-    mag2 = np.abs(ntf.response(f / modulator_rate_hz)) ** 2 * _weighting_power(f, weighting)
+    from audiodsm.measure.weighting import weighting_power_gain
+
+    mag2 = np.abs(ntf.response(f / modulator_rate_hz)) ** 2 * weighting_power_gain(f, weighting)
     # integrate over f on a log grid: df = f dlogf
     gain = float(simpson(mag2 * f, x=logf)) * 2.0 / modulator_rate_hz
     step = 2.0 / (levels - 1)

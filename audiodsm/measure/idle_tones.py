@@ -43,14 +43,13 @@ References
 
 from __future__ import annotations
 
-import functools
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import ndimage, optimize, signal, stats
+from scipy import ndimage, optimize, stats
 
 from audiodsm.errors import ParameterError
-from audiodsm.measure.spectrum import SpectrumState, accumulate_spectrum
+from audiodsm.measure.spectrum import SpectrumState, _check_rate, _window, accumulate_spectrum
 
 __all__ = [
     "SpectralLine",
@@ -78,13 +77,6 @@ DEFAULT_FLOOR_BINS = 65
 # ---------------------------------------------------------------------------------------------
 # A streamed, averaged spectrum with known statistics
 # ---------------------------------------------------------------------------------------------
-
-
-@functools.lru_cache(maxsize=16)
-def _window(name: str, frames: int) -> np.ndarray:
-    w = signal.get_window(name, frames, fftbins=True)
-    w.setflags(write=False)
-    return w
 
 
 def segment_frames_for(n_frames: int, rate_hz: float, *, min_averages: int = 8) -> int:
@@ -241,11 +233,6 @@ def line_spectrum(x, *, rate_hz: float, segment_frames: int | None = None):
     _check_rate(rate_hz)
     seg = segment_frames or segment_frames_for(a.shape[0], rate_hz)
     return accumulate_line_spectrum(a, rate_hz=rate_hz, segment_frames=seg).spectrum()
-
-
-def _check_rate(rate_hz) -> None:
-    if not np.isfinite(rate_hz) or rate_hz <= 0:
-        raise ParameterError("rate_hz", rate_hz, "a positive sample rate in Hz")
 
 
 # ---------------------------------------------------------------------------------------------

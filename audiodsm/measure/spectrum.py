@@ -69,7 +69,8 @@ def _as_signal(x, name="x", *, allow_2d=False):
 
 
 def _check_rate(rate_hz):
-    if not (isinstance(rate_hz, int | float) and math.isfinite(rate_hz) and rate_hz > 0):
+    ok = isinstance(rate_hz, int | float | np.integer | np.floating)
+    if not (ok and math.isfinite(rate_hz) and rate_hz > 0):
         raise ParameterError("rate_hz", rate_hz, "a positive sample rate in Hz")
     return float(rate_hz)
 
@@ -251,22 +252,14 @@ class Spectrum:
         width = right - left
         overlap = np.clip(np.minimum(right, hi) - np.maximum(left, lo), 0.0, None)
         frac = np.divide(overlap, width, out=np.zeros_like(overlap), where=width > 0)
-        gain = _weighting_power(self.freq_hz, weighting)
+        from audiodsm.measure.weighting import weighting_power_gain
+
+        gain = weighting_power_gain(self.freq_hz, weighting)
         return float(np.sum(self.power * frac * gain))
 
     def band_noise_dbfs(self, lower_hz, upper_hz, *, weighting="unweighted"):
         """Noise power between two frequencies in dBFS (see :meth:`band_power`)."""
         return power_to_dbfs(self.band_power(lower_hz, upper_hz, weighting=weighting))
-
-
-def _weighting_power(freq_hz, weighting):
-    if weighting == "unweighted":
-        return np.ones_like(freq_hz)
-    from audiodsm.measure.weighting import weighting_db
-
-    with np.errstate(divide="ignore", over="ignore"):
-        db = np.asarray(weighting_db(freq_hz, weighting), dtype=float)
-    return np.where(np.isfinite(db), 10.0 ** (db / 10.0), 0.0)
 
 
 @dataclass(frozen=True, eq=False)

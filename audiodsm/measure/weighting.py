@@ -51,6 +51,7 @@ __all__ = [
     "ccir_weighting_db",
     "bs468_weighting_db",
     "weighting_db",
+    "weighting_power_gain",
     "weighting_filter",
     "apply_weighting",
 ]
@@ -231,6 +232,30 @@ def weighting_db(freq_hz, kind):
 # --- digital filter design ---------------------------------------------------------------
 
 _LOW_POLE_LIMIT_HZ = 2000.0
+
+
+def weighting_power_gain(freq_hz, kind):
+    """The named weighting as a power gain, ``10**(weighting_db / 10)``.
+
+    This is the factor each bin of a noise power spectrum is multiplied by to weight it.
+
+    Parameters
+    ----------
+    freq_hz : array_like
+        Frequencies in Hz (>= 0).
+    kind : {"unweighted", "a", "ccir"}
+
+    Returns
+    -------
+    numpy.ndarray
+        The power gain at each frequency: 1 everywhere for ``"unweighted"``, 0 where the
+        weighting is ``-inf`` dB (at 0 Hz).
+    """
+    if kind == "unweighted":
+        return np.ones_like(np.asarray(freq_hz, dtype=float))
+    with np.errstate(divide="ignore", over="ignore"):
+        db = np.asarray(weighting_db(freq_hz, kind), dtype=float)
+    return np.where(np.isfinite(db), 10.0 ** (db / 10.0), 0.0)
 
 
 def _analog_network(kind):
