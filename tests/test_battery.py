@@ -12,6 +12,7 @@ import pytest
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate.battery import (
     METRIC_UNITS,
+    NUMERIC_FLOOR_DBFS,
     TEST_NAMES,
     BatteryPlan,
     battery_rate_hz,
@@ -333,3 +334,38 @@ def test_pwm_short_pulses_are_counted():
     assert counts["drop"][0] > 0 and counts["drop"][1] == 0
     assert counts["stretch"][0] == 0 and counts["stretch"][1] > 0
     assert counts["drop"][0] == counts["stretch"][1]
+
+
+def test_digitally_silent_idle_output_reports_the_numeric_floor():
+    # An undithered 9-level loop idling on its zero level puts out exact zeros, so the idle
+    # noise has no physical value; float64 rounding noise on a full-scale signal sits near
+    # 20 log10(2**-53) = -319 dB (IEEE 754 double precision), below which a reading means
+    # only "digitally silent". The battery reports the floor and says so.
+    silent = profile_from_dict(
+        {
+            "name": "silent-nrz9",
+            "modulator": {"order": 2, "levels": 9, "optimize_zeros": False},
+            "output": {"kind": "nrz"},
+        }
+    )
+    result = run_battery(silent, tests=("idle",), plan=BatteryPlan.quick())
+    assert 20 * math.log10(2.0**-53) < NUMERIC_FLOOR_DBFS
+    for key in ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir"):
+        assert result.metrics[key] == NUMERIC_FLOOR_DBFS
+    assert any("digitally silent" in note for note in result.notes)
+
+
+def test_a_dithered_idle_output_is_not_floored():
+    # The same 9-level loop with 1 LSB of TPDF dither is never silent: the total error power is
+    # Delta^2/4 whatever the input (Lipshitz, Wannamaker & Vanderkooy 1992), shaped by the NTF,
+    # so its idle noise is a real reading far above the numeric floor.
+    dithered = profile_from_dict(
+        {
+            "name": "dithered-nrz9",
+            "modulator": {"order": 2, "levels": 9, "optimize_zeros": False, "dither_lsb": 1.0},
+            "output": {"kind": "nrz"},
+        }
+    )
+    result = run_battery(dithered, tests=("idle",), plan=BatteryPlan.quick())
+    assert -200.0 < result.metrics["idle_noise_dbfs"] < -60.0
+    assert not any("digitally silent" in note for note in result.notes)

@@ -161,6 +161,12 @@ _WEIGHTINGS = ("unweighted", "a", "ccir")
 _MIN_SEARCH_S = 0.4
 #: Extra stimulus after each measured stretch, cut off again (see _chain_run).
 _TAIL_S = 0.05
+# The simulation carries float64 numbers, whose rounding noise on a full-scale signal lies near
+# 20 log10(2**-53) = -319 dB. A noise reading below this floor says only that the output was
+# digitally silent (e.g. an undithered multi-level loop idling on its zero level), so the battery
+# reports the floor and says so in the notes instead of a number of no physical meaning.
+NUMERIC_FLOOR_DBFS = -300.0
+_FLOORED_METRICS = ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir")
 #: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
 _SPECTRUM_RESOLUTION_HZ = 100.0
 #: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
@@ -1101,5 +1107,17 @@ def _assemble(results, tests, plan, profile):
         pwm = profile.output.kind == "pwm"
         metrics["pwm_dropped_pulses"] = dropped if pwm else None
         metrics["pwm_stretched_pulses"] = stretched if pwm else None
+    floored = [
+        k
+        for k in _FLOORED_METRICS
+        if metrics.get(k) is not None and metrics[k] < NUMERIC_FLOOR_DBFS
+    ]
+    for k in floored:
+        metrics[k] = NUMERIC_FLOOR_DBFS
+    if floored:
+        notes.append(
+            f"{', '.join(floored)}: the output was digitally silent (below the simulation's "
+            f"numeric floor); reported as {NUMERIC_FLOOR_DBFS:g} dBFS"
+        )
     ordered = {k: plain_scalar(metrics[k], finite_only=False) for k in METRIC_UNITS if k in metrics}
     return ordered, curves, notes
