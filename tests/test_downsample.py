@@ -13,7 +13,7 @@ from audiodsm.stages.upsample import Downsampler, DownsamplerState, design_downs
 PASSBAND_HZ = 20000.0
 RIPPLE_DB = 0.01
 ALIAS_DB = 110.0
-AES17_TONE_HZ = 997.0  # AES17-2015 test frequency (from memory; /work/shared/REFERENCES.md)
+AES17_TONE_HZ = 997.0  # AES17-2015 test frequency (from memory; listed in the shared REFERENCES.md)
 
 
 # ---------------------------------------------------------------------------------------------

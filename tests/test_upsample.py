@@ -14,7 +14,7 @@ from audiodsm.stages.upsample import (
     design_upsampler,
 )
 
-# Common-practice interpolation spec of audio DAC datasheets (/work/shared/REFERENCES.md,
+# Common-practice interpolation spec of audio DAC datasheets (the shared REFERENCES.md,
 # "Interpolation filters"): passband to 0.4535 fs within +/-0.005 dB, stopband from 0.5465 fs.
 PASS_EDGE = 0.4535
 STOP_EDGE = 0.5465
