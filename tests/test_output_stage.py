@@ -421,3 +421,17 @@ def test_pwm_any_block_split_equals_one_shot(seed, case, sub, dead, min_ticks, a
         parts.append(w.tick_samples())
     assert np.array_equal(np.concatenate(parts), whole.tick_samples())
     assert state.totals == end.totals
+
+
+def test_pdm_waveform_without_validation_is_the_same_waveform(rng):
+    # First principles: skipping the input check must not change the waveform of a valid
+    # single-bit stream, and the caller's array stays writable (the waveform holds a view).
+    y = np.where(rng.random(1000) < 0.5, -1.0, 1.0)
+    for volts in (1.0, 2.5):
+        checked = pdm_waveform(y, frame_rate_hz=3.072e6, full_scale_volts=volts)
+        trusted = pdm_waveform(y, frame_rate_hz=3.072e6, full_scale_volts=volts, validate=False)
+        assert np.array_equal(checked.levels, trusted.levels)
+        assert np.array_equal(checked.ticks, trusted.ticks)
+        assert trusted.ticks_per_frame == 1 and trusted.frame_rate_hz == 3.072e6
+        assert not trusted.levels.flags.writeable
+    assert y.flags.writeable

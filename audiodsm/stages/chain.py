@@ -295,7 +295,10 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
     if out.kind == "pdm":
 
         def pdm(y, state):
-            wf = out_mod.pdm_waveform(y, frame_rate_hz=frame_rate_hz, full_scale_volts=volts)
+            # y is the single-bit loop's own output (+-1 by construction): no re-check, no copy
+            wf = out_mod.pdm_waveform(
+                y, frame_rate_hz=frame_rate_hz, full_scale_volts=volts, validate=False
+            )
             return wf, (0, 0), state
 
         return pdm

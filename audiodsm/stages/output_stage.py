@@ -218,7 +218,9 @@ def level_codes(y, *, levels: int) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 
 
-def pdm_waveform(y, *, frame_rate_hz: float, full_scale_volts: float = 1.0) -> PulseWaveform:
+def pdm_waveform(
+    y, *, frame_rate_hz: float, full_scale_volts: float = 1.0, validate: bool = True
+) -> PulseWaveform:
     """The single-bit stream as a waveform: +/- ``full_scale_volts`` held for one frame.
 
     Parameters
@@ -229,6 +231,11 @@ def pdm_waveform(y, *, frame_rate_hz: float, full_scale_volts: float = 1.0) -> P
         The modulator rate.
     full_scale_volts : float, optional
         The voltage of a 1 bit; a 0 bit is its negative.
+    validate : bool, optional
+        Check that every value is -1.0 or +1.0 and copy ``y`` (default). ``False`` is for a
+        caller that holds a single-bit loop's own output: it skips the check, and with
+        ``full_scale_volts = 1`` the waveform shares ``y``'s memory (a read-only view), so the
+        caller must not change ``y`` afterwards. The chain uses it at the modulator rate.
 
     Returns
     -------
@@ -240,6 +247,9 @@ def pdm_waveform(y, *, frame_rate_hz: float, full_scale_volts: float = 1.0) -> P
         raise ParameterError("y.shape", arr.shape, "a one-channel array of shape (n,)")
     rate = _check_rate(frame_rate_hz)
     volts = _check_volts(full_scale_volts, "full_scale_volts")
+    if not validate:
+        levels = (arr * volts if volts != 1.0 else arr).reshape(-1, 1)  # a view of its own
+        return PulseWaveform._trusted(levels, _ONE_TICK[: arr.size], 1, rate)
     if not np.all(np.abs(arr) == 1.0):  # also rejects NaN
         bad = arr[np.flatnonzero(np.abs(arr) != 1.0)[0]]
         raise ParameterError("y", float(bad), "-1.0 or +1.0 (a single-bit stream)")
