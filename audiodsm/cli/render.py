@@ -21,7 +21,6 @@ import math
 import os
 import re
 import sys
-import tempfile
 import time
 from contextlib import ExitStack
 from pathlib import Path
@@ -394,18 +393,11 @@ def render_file(
 
 
 def _write_json_atomic(path: Path, data: dict, *, overwrite: bool) -> None:
+    from audiodsm.io import replace_text_atomically
+
     if path.exists() and not overwrite:
         raise OutputError(f"{path}: already exists (use --replace to replace it)")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as handle:
-            json.dump(data, handle, indent=2)
-            handle.write("\n")
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    replace_text_atomically(path, json.dumps(data, indent=2) + "\n")
 
 
 def _fmt(value, spec=".1f", none="-"):
