@@ -283,29 +283,22 @@ def render_file(
                 progress(block.shape[0])
 
     state = None
-    with ExitStack() as stack:
-        listen_w = stack.enter_context(
-            open_audio_writer(
-                names["listening"],
-                rate_hz=int(chain.listening_rate_hz),
-                channels=info.channels,
-                subtype=subtype,
-                overwrite=overwrite,
-                protect=protected,
-            )
+
+    def listening_writer(path):
+        return open_audio_writer(
+            path,
+            rate_hz=int(chain.listening_rate_hz),
+            channels=info.channels,
+            subtype=subtype,
+            overwrite=overwrite,
+            protect=protected,
         )
+
+    with ExitStack() as stack:
+        listen_w = stack.enter_context(listening_writer(names["listening"]))
         error_w = None
         if "error" in names:
-            error_w = stack.enter_context(
-                open_audio_writer(
-                    names["error"],
-                    rate_hz=int(chain.listening_rate_hz),
-                    channels=info.channels,
-                    subtype=subtype,
-                    overwrite=overwrite,
-                    protect=protected,
-                )
-            )
+            error_w = stack.enter_context(listening_writer(names["error"]))
         stream_w = None
         if "bits" in names:
             stream_w = stack.enter_context(
