@@ -51,25 +51,9 @@ def slow_resample_rational(buf, phases, lengths, first_time, step, n_out):
     return out
 
 
-@pytest.mark.parametrize("n_held", [0, 14, 15])
-def test_decimate_kernel_matches_slow_twin(rng, n_held):
-    half = rng.standard_normal(4)
-    buf = rng.standard_normal((2, 2400))
-    n = (2400 - 15) // 2 + 1
-    out = np.empty((2, n))
-    held, new = buf[:, :n_held], buf[:, n_held:]
-    _kernels.decimate_halfband(np.ascontiguousarray(held), np.ascontiguousarray(new), half, out)
-    assert np.array_equal(out, slow_decimate_halfband(buf, half))
-    # the kernel also reads a transposed (frames, channels) block
-    out_t = np.empty((2, n))
-    new_t = np.ascontiguousarray(new.T).T
-    _kernels.decimate_halfband(np.ascontiguousarray(held), new_t, half, out_t)
-    assert np.array_equal(out_t, out)
-
-
 @pytest.mark.parametrize("held_lens", [(6, 6, 10), (0, 3, 0), (5, 6, 9)])
 def test_cascade_kernel_matches_slow_twin_stage_by_stage(rng, held_lens):
-    # the fused cascade must give the very bits of the single-stage twin run stage after stage,
+    # the fused cascade must give the very bits of the slow twin run stage after stage,
     # across several internal chunks (the input is longer than _CASCADE_CHUNK)
     ks = np.array([2, 3, 4])  # the kernel spells out k = 2 and 3; 4 takes the general loop
     halves = np.zeros((3, 4))
@@ -97,6 +81,36 @@ def test_cascade_kernel_matches_slow_twin_stage_by_stage(rng, held_lens):
     xt = np.ascontiguousarray(x.T).T
     _kernels.decimate_halfband_cascade(xt, halves, ks, held, np.array(held_lens), out_t, rest)
     assert np.array_equal(out_t, cur)
+
+
+def test_cascade_is_the_textbook_decimator_stage_by_stage(rng):
+    # Crochiere & Rabiner (1981): decimation by 2 = the FIR at the high rate, then every
+    # other sample. Reference: scipy.signal.upfirdn(h, x, down=2), run stage after stage with
+    # each designed full half-band h. Started from N - 1 zeros of history per stage (as
+    # Downsampler.initial_state does), output i of a stage is upfirdn's output i; the
+    # cascade must agree up to rounding (it pairs the symmetric taps), over two channels and
+    # several internal chunks. The 3.072 MHz design has the short stages the kernel spells
+    # out (2 and 3 outer taps) and longer ones.
+    hs = design_downsampler(3072000, 48000).halfband_taps
+    ks = np.array([(h.size + 1) // 4 for h in hs])
+    assert {2, 3} <= set(ks.tolist()) and ks.max() > 3
+    halves = np.zeros((len(hs), ks.max()))
+    for s, h in enumerate(hs):
+        halves[s, : ks[s]] = h[0 : (h.size + 1) // 2 : 2]
+    held_lens = np.array([h.size - 1 for h in hs])
+    held = np.zeros((len(hs), 2, held_lens.max()))
+    n = 3 * _kernels._CASCADE_CHUNK + 123
+    x = rng.standard_normal((2, n))
+    refs = []
+    for c in range(2):
+        cur = x[c]
+        for h in hs:
+            cur = signal.upfirdn(h, cur, down=2)[: -(-cur.size // 2)]
+        refs.append(cur)
+    out = np.empty((2, refs[0].size))
+    rest = np.empty((len(hs), 2, 4 * ks.max()))
+    _kernels.decimate_halfband_cascade(x, halves, ks, held, held_lens, out, rest)
+    assert np.max(np.abs(out - np.array(refs))) < 1e-12
 
 
 def test_rational_kernel_matches_slow_twin(rng):

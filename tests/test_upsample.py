@@ -23,7 +23,7 @@ ATTEN_DB = 100.0
 
 
 # ---------------------------------------------------------------------------------------------
-# slow twins of the kernels: plain Python, one output at a time, same summation order
+# slow twins of the kernels' stages: plain Python, one output at a time, same summation order
 # ---------------------------------------------------------------------------------------------
 
 
@@ -54,25 +54,6 @@ def slow_interpolate_polyphase(buf, phases, lengths):
                     acc += phases[p, m] * buf[c, i + taps - 1 - m]
                 out[c, ratio * i + p] = acc
     return out
-
-
-def test_halfband_kernel_matches_slow_twin(rng):
-    dense = rng.standard_normal(10)
-    dense = dense + dense[::-1]
-    buf = rng.standard_normal((2, 9 + 1100))  # crosses the 512-sample chunk boundary twice
-    out = np.empty((2, 2 * 1100))
-    _kernels.interpolate_halfband(buf, dense, out)
-    assert np.array_equal(out, slow_interpolate_halfband(buf, dense))
-
-
-def test_polyphase_kernel_matches_slow_twin(rng):
-    phases = rng.standard_normal((4, 5))
-    lengths = np.array([5, 4, 4, 3])
-    phases[1, 4:] = phases[2, 4:] = phases[3, 3:] = 0.0
-    buf = rng.standard_normal((3, 4 + 700))
-    out = np.empty((3, 4 * 700))
-    _kernels.interpolate_polyphase(buf, phases, lengths, out)
-    assert np.array_equal(out, slow_interpolate_polyphase(buf, phases, lengths))
 
 
 @pytest.mark.parametrize("pratio", [3, 2])  # ratio 2 has its own interleaved store
@@ -115,19 +96,38 @@ def test_cascade_kernel_matches_slow_twins_stage_by_stage(rng, pratio):
     assert np.array_equal(rest[1, :, :3], buf1[:, -3:])
 
 
-def test_halfband_interpolator_is_the_textbook_polyphase_fir(rng):
-    # Crochiere & Rabiner (1983) sec. 3.3: interpolation by 2 = zero insertion, then the
-    # FIR at the high rate (gain 2). scipy.signal.upfirdn does exactly that; the polyphase
-    # kernel must agree up to rounding (its sums are paired differently).
-    design = design_upsampler(48000, 16)
-    h = design.halfband_taps[0]
+def test_cascade_is_the_textbook_interpolator_stage_by_stage(rng):
+    # Crochiere & Rabiner (1983) sec. 3.3: interpolation by R = zero insertion, then the FIR
+    # at the high rate (gain R). Reference: scipy.signal.upfirdn(h, x, up=R), which does
+    # exactly that, run stage after stage (a hold is np.repeat). The one-pass cascade - a
+    # half-band x2 with the designed taps, a 4-phase FIR whose phases have 5, 5, 4, 4 taps, a
+    # hold x2 - started from zero histories must agree up to rounding (its half-band sums pair
+    # the symmetric taps), over several channels and internal chunks.
+    h = design_upsampler(48000, 16).halfband_taps[0]
     g = 2.0 * h[0::2]
-    x = rng.standard_normal(300)
-    buf = np.concatenate([np.zeros(g.size - 1), x])[None, :]
-    out = np.empty((1, 600))
-    _kernels.interpolate_halfband(buf, g, out)
-    ref = signal.upfirdn(2.0 * h, x, up=2)[:600]
-    assert np.max(np.abs(out[0] - ref)) < 1e-13
+    fir = rng.standard_normal(18)
+    kinds = np.array([0, 1, 2])
+    ratios = np.array([2, 4, 2])
+    taps = np.array([g.size, 5, 0])
+    tables = np.zeros((3, 4, max(g.size, 5)))
+    tables[0, 0, : g.size] = g
+    lengths = np.zeros((3, 4), dtype=np.int64)
+    for p in range(4):
+        phase = fir[p::4]
+        tables[1, p, : phase.size] = phase
+        lengths[1, p] = phase.size
+    assert list(lengths[1]) == [5, 5, 4, 4]
+    n = 3 * _kernels._INTERP_CHUNK_OUT // 16 + 29
+    x = rng.standard_normal((3, n))
+    held = np.zeros((3, 3, g.size - 1))
+    out = np.empty((3, 16 * n))
+    rest = np.empty_like(held)
+    _kernels.interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest)
+    for c in range(3):
+        y = signal.upfirdn(2.0 * h, x[c], up=2)[: 2 * n]
+        y = signal.upfirdn(fir, y, up=4)[: 8 * n]
+        ref = np.repeat(y, 2)
+        assert np.max(np.abs(out[c] - ref)) < 1e-12
 
 
 @pytest.mark.parametrize("pass_frac", [PASS_EDGE / 2, STOP_EDGE / 16])

@@ -369,84 +369,26 @@ def loop_kernel(structure, order, lossless, unit_chain, pairs):
 # Rate conversion (stages/upsample.py)
 # ---------------------------------------------------------------------------------------------
 #
-# Layout: every signal here is (channels, samples), C-contiguous float64, with the stage's
-# history already prepended by the wrapper. Every output is summed tap by tap in a fixed order
-# that does not depend on where a block starts, so block-wise and one-shot runs agree bit for
-# bit. The loops over output samples are innermost, over slices (which spares the
-# negative-index checks), so that they vectorise without reordering any sum.
+# Layout: every signal here is (channels, samples) float64. The cascades take the new block
+# (any strides) and each stage's history apart; resample_rational takes a C-contiguous buffer
+# with the history already prepended by the wrapper. Every output is summed tap by tap in a
+# fixed order that does not depend on where a block starts, so block-wise and one-shot runs
+# agree bit for bit. The loops over output samples are innermost, over slices (which spares
+# the negative-index checks), so that they vectorise without reordering any sum.
 
 _RATE_CHUNK = 512
 
 
 @njit(cache=True, nogil=True)
-def interpolate_halfband(buf, dense, out):
-    """Interpolate by 2 with a half-band FIR (polyphase; zeros are never multiplied).
+def _interpolate_halfband_row(row, dense, out, acc):
+    """Interpolate one channel by 2 with a half-band FIR (zeros are never multiplied).
 
     ``dense`` holds the 2K taps of the dense phase (symmetric, ``dense[m] == dense[2K-1-m]``),
     scaled for an interpolation gain of 2; the other phase is the centre tap, a pure delay of
-    K - 1 input samples. ``buf`` is (channels, 2K - 1 + n): the last 2K - 1 input samples of
-    the previous block, then the new block. ``out`` is (channels, 2n):
-    ``out[c, 2i] = sum_m dense[m] * (buf[c, i+2K-1-m] + buf[c, i+m])`` for m < K, summed in
-    increasing m, and ``out[c, 2i+1] = buf[c, i+K]``.
+    K - 1 input samples. ``row`` is the last 2K - 1 input samples of the previous chunk, then
+    the n new ones; ``out`` is 2n long: ``out[2i] = sum_m dense[m] * (row[i+2K-1-m] +
+    row[i+m])`` for m < K, summed in increasing m, and ``out[2i+1] = row[i+K]``.
     """
-    n_ch = buf.shape[0]
-    two_k = dense.shape[0]
-    k = two_k // 2
-    n = out.shape[1] // 2
-    acc = np.empty(_RATE_CHUNK)
-    for c in range(n_ch):
-        row = buf[c]
-        for start in range(0, n, _RATE_CHUNK):
-            length = min(start + _RATE_CHUNK, n) - start
-            acc[:length] = 0.0
-            for m in range(k):
-                coef = dense[m]
-                a = row[start + two_k - 1 - m : start + two_k - 1 - m + length]
-                b = row[start + m : start + m + length]
-                for i in range(length):
-                    acc[i] += coef * (a[i] + b[i])
-            even = out[c, 2 * start : 2 * (start + length) : 2]
-            odd = out[c, 2 * start + 1 : 2 * (start + length) : 2]
-            centre = row[start + k : start + k + length]
-            for i in range(length):
-                even[i] = acc[i]
-                odd[i] = centre[i]
-
-
-@njit(cache=True, nogil=True)
-def interpolate_polyphase(buf, phases, lengths, out):
-    """Interpolate by R with a general FIR split into R phases (zeros never multiplied).
-
-    ``phases`` is (R, M): ``phases[p, m]`` is tap ``p + m R`` of the interpolation filter
-    (gain R); only the first ``lengths[p]`` taps of phase p are used. ``buf`` is
-    (channels, M - 1 + n) with the previous block's last M - 1 samples first; ``out`` is
-    (channels, R n) with ``out[c, R i + p] = sum_m phases[p, m] * buf[c, i + M - 1 - m]``,
-    summed in increasing m.
-    """
-    n_ch = buf.shape[0]
-    ratio = phases.shape[0]
-    taps = phases.shape[1]
-    n = out.shape[1] // ratio
-    acc = np.empty(_RATE_CHUNK)
-    for c in range(n_ch):
-        row = buf[c]
-        for start in range(0, n, _RATE_CHUNK):
-            length = min(start + _RATE_CHUNK, n) - start
-            for p in range(ratio):
-                acc[:length] = 0.0
-                for m in range(lengths[p]):
-                    coef = phases[p, m]
-                    seg = row[start + taps - 1 - m : start + taps - 1 - m + length]
-                    for i in range(length):
-                        acc[i] += coef * seg[i]
-                dst = out[c, ratio * start + p : ratio * (start + length) : ratio]
-                for i in range(length):
-                    dst[i] = acc[i]
-
-
-@njit(cache=True, nogil=True)
-def _interpolate_halfband_row(row, dense, out, acc):
-    """One channel of :func:`interpolate_halfband`: ``row`` is 2K - 1 history + n, ``out`` 2n."""
     two_k = dense.shape[0]
     k = two_k // 2
     n = out.shape[0] // 2
@@ -469,7 +411,14 @@ def _interpolate_halfband_row(row, dense, out, acc):
 
 @njit(cache=True, nogil=True)
 def _interpolate_polyphase_row(row, phases, ratio, taps, lengths, out, acc):
-    """One channel of :func:`interpolate_polyphase` with R = ``ratio``, M = ``taps``."""
+    """Interpolate one channel by R = ``ratio`` with an FIR split into R phases.
+
+    ``phases`` is (R, M) with M = ``taps``: ``phases[p, m]`` is tap ``p + m R`` of the
+    interpolation filter (gain R); only the first ``lengths[p]`` taps of phase p are used, so
+    zeros are never multiplied. ``row`` is the last M - 1 input samples of the previous chunk,
+    then the n new ones; ``out`` is R n long with ``out[R i + p] = sum_m phases[p, m] *
+    row[i + M - 1 - m]``, summed in increasing m.
+    """
     n = out.shape[0] // ratio
     if ratio == 2:  # both phases, then one interleaved store with a fixed stride of 2
         acc0 = acc[:_RATE_CHUNK]
@@ -511,12 +460,12 @@ def interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest
     """Run a whole interpolation chain in one pass, a few thousand output samples at a time.
 
     Stage s is of kind ``kinds[s]``: 0 a half-band interpolator as in
-    :func:`interpolate_halfband` (dense taps ``tables[s, 0, :taps[s]]``, history
-    ``taps[s] - 1``); 1 a polyphase FIR as in :func:`interpolate_polyphase` (ratio
+    :func:`_interpolate_halfband_row` (dense taps ``tables[s, 0, :taps[s]]``, history
+    ``taps[s] - 1``); 1 a polyphase FIR as in :func:`_interpolate_polyphase_row` (ratio
     ``ratios[s]``, phases ``tables[s, :ratios[s], :taps[s]]`` with ``lengths[s, p]`` taps used,
     history ``taps[s] - 1``); 2 a hold that repeats each sample ``ratios[s]`` times (no
-    history). Every output is the same sum, in the same order, as in those kernels, so the
-    cascade gives their bits.
+    history). Every output is a fixed sum in a fixed order, so the cascade gives the bits of
+    the same stages run one after the other over whole signals.
 
     ``x`` is (channels, n), any strides. ``held`` is (S, channels, H): each stage's history,
     its first ``history`` samples used. ``out`` is (channels, n R) with R the product of the
@@ -581,61 +530,6 @@ def interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest
                 rest[s, c, j] = work[base + j]
 
 
-@njit(cache=True, nogil=True)
-def decimate_halfband(held, new, half, out):
-    """Decimate by 2 with a half-band FIR of length N = 4K - 1 (zeros never multiplied).
-
-    ``half`` holds the K distinct outer taps (``h[2m]`` for m < K, the filter having unit DC
-    gain); the centre tap is 1/2. The input is ``held`` (channels, H) followed by ``new``
-    (channels, n), any strides: call it ``buf``, whose first sample is the oldest one the
-    first output needs. Output i uses the newest sample ``t = N - 1 + 2 i``:
-    ``out[c, i] = sum_m half[m] * (buf[c, t-2m] + buf[c, t-2(2K-1-m)]) + 0.5 * buf[c, t-2K+1]``,
-    summed in increasing m, the centre term last. Each channel is first split into its even
-    and odd samples (the paired taps all fall on the parity of t, the centre on the other),
-    so the inner loops run over contiguous memory.
-    """
-    n_ch = held.shape[0]
-    n_held = held.shape[1]
-    n_new = new.shape[1]
-    k = half.shape[0]
-    n = out.shape[1]
-    n_even = (n_held + n_new + 1) // 2
-    even = np.empty(n_even)
-    odd = np.empty(n_even)
-    acc = np.empty(_RATE_CHUNK)
-    for c in range(n_ch):
-        for j in range(n_held):
-            if j % 2 == 0:
-                even[j // 2] = held[c, j]
-            else:
-                odd[j // 2] = held[c, j]
-        # new[j] sits at buf index n_held + j
-        first_even = n_held % 2  # index into new of its first even-buf sample
-        src_even = new[c, first_even::2]
-        src_odd = new[c, 1 - first_even :: 2]
-        e0 = (n_held + first_even) // 2
-        o0 = (n_held + 1 - first_even) // 2
-        for j in range(src_even.shape[0]):
-            even[e0 + j] = src_even[j]
-        for j in range(src_odd.shape[0]):
-            odd[o0 + j] = src_odd[j]
-        # t = 4K - 2 + 2i is even: t - 2m -> even[2K-1+i-m], t - 2(2K-1-m) -> even[i+m],
-        # t - (2K-1) -> odd[K-1+i]
-        for start in range(0, n, _RATE_CHUNK):
-            length = min(start + _RATE_CHUNK, n) - start
-            acc[:length] = 0.0
-            for m in range(k):
-                coef = half[m]
-                a = even[start + 2 * k - 1 - m : start + 2 * k - 1 - m + length]
-                b = even[start + m : start + m + length]
-                for i in range(length):
-                    acc[i] += coef * (a[i] + b[i])
-            centre = odd[start + k - 1 : start + k - 1 + length]
-            dst = out[c, start : start + length]
-            for i in range(length):
-                dst[i] = acc[i] + 0.5 * centre[i]
-
-
 _CASCADE_CHUNK = 4096
 
 
@@ -663,10 +557,13 @@ def _deinterleave_into(src, even, odd, fill):
 def decimate_halfband_cascade(x, halves, ks, held, held_len, out, rest):
     """Run a cascade of S half-band decimate-by-2 stages in one pass, chunk by chunk.
 
-    Stage s is the half-band FIR of length ``4 ks[s] - 1`` whose outer taps are
-    ``halves[s, :ks[s]]`` and whose centre tap is 1/2, exactly as in
-    :func:`decimate_halfband`: every output is the same sum in the same order, so the
-    cascade gives the same bits as running that kernel stage after stage.
+    Stage s is the half-band FIR of length N = 4K - 1, K = ``ks[s]``, whose outer taps are
+    ``halves[s, :K]`` (``h[2m]`` for m < K, the filter having unit DC gain) and whose centre
+    tap is 1/2; zeros are never multiplied. With ``buf`` the stage's input, output i uses the
+    newest sample ``t = N - 1 + 2 i``: ``out[i] = sum_m half[m] * (buf[t-2m] +
+    buf[t-2(2K-1-m)]) + 0.5 * buf[t-2K+1]``, summed in increasing m, the centre term last.
+    Every output is that sum in that order, so the cascade gives the same bits as running
+    the stages one after the other over whole signals.
 
     ``x`` is the new input (channels, n), any strides. ``held`` is (S, channels, H): stage s's
     input samples not yet consumed, the first ``held_len[s]`` of each row. ``out`` is
