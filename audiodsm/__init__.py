@@ -10,7 +10,7 @@ Loop realization (``audiodsm.design.realize``)
 Modulation (``audiodsm.stages.modulator``)
     Modulator, ModulatorState, max_stable_amplitude, find_stability_limit, StabilityLimit,
     scale_states
-Rate conversion (``audiodsm.stages.upsample``)
+Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
 Output stages (``audiodsm.stages.output_stage``)
@@ -180,10 +180,10 @@ _PUBLIC = {
     "UpsamplerDesign": "audiodsm.stages.upsample",
     "Upsampler": "audiodsm.stages.upsample",
     "UpsamplerState": "audiodsm.stages.upsample",
-    "design_downsampler": "audiodsm.stages.upsample",
-    "DownsamplerDesign": "audiodsm.stages.upsample",
-    "Downsampler": "audiodsm.stages.upsample",
-    "DownsamplerState": "audiodsm.stages.upsample",
+    "design_downsampler": "audiodsm.stages.downsample",
+    "DownsamplerDesign": "audiodsm.stages.downsample",
+    "Downsampler": "audiodsm.stages.downsample",
+    "DownsamplerState": "audiodsm.stages.downsample",
     "level_dbfs": "audiodsm.measure.spectrum",
     "power_to_dbfs": "audiodsm.measure.spectrum",
     "averaged_spectrum": "audiodsm.measure.spectrum",

@@ -401,14 +401,10 @@ class Chain:
     """
 
     def __init__(self, profile, rate_hz, channels, *, listening_rate_hz=None, threads=None):
+        from audiodsm.stages.downsample import Downsampler, design_downsampler
         from audiodsm.stages.modulator import Modulator
         from audiodsm.stages.reconstruct import semi_digital_fir
-        from audiodsm.stages.upsample import (
-            Downsampler,
-            Upsampler,
-            design_downsampler,
-            design_upsampler,
-        )
+        from audiodsm.stages.upsample import Upsampler, design_upsampler
 
         if not isinstance(profile, ChainProfile):
             raise ParameterError("profile", type(profile).__name__, "a ChainProfile")
