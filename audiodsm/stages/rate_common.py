@@ -168,6 +168,11 @@ def _halfband_full(g: np.ndarray) -> np.ndarray:
     return h
 
 
+# ---------------------------------------------------------------------------------------------
+# Checks of numeric options
+# ---------------------------------------------------------------------------------------------
+
+
 def _check_range(name, value, low, high, *, low_open=False, high_open=False):
     try:
         v = float(value)
