@@ -10,6 +10,7 @@ import sys
 from pathlib import Path
 from types import SimpleNamespace
 
+import librosa
 import numpy as np
 import pytest
 
@@ -188,7 +189,6 @@ def test_report_never_overwrites_an_input(tmp_path, batch):
 
 
 def test_weighting_overlay_is_the_a_curve():
-    librosa = pytest.importorskip("librosa")
     curves = full_curves(2)
     out = report_curves(curves)
     assert "weighting_db" not in curves["spectrum"]  # input untouched

@@ -1,5 +1,6 @@
 """Tests of the interpolation chain (audiodsm.stages.upsample: design_upsampler, Upsampler)."""
 
+import librosa
 import numpy as np
 import pytest
 from scipy import signal
@@ -154,7 +155,6 @@ def test_passband_agrees_with_soxr_through_librosa(rng):
     # is linear phase and removes its own delay. Its passband ripple is far below ours (from
     # memory: well under 0.001 dB to about 0.45 fs), so the tolerance is our +/-0.005 dB spec
     # plus a little; tones up to 0.44 fs.
-    librosa = pytest.importorskip("librosa")
     rate, osr = 48000, 16
     design = design_upsampler(rate, osr)
     up = Upsampler(design)
