@@ -89,7 +89,7 @@ def run_demo(
         ``{"reports": {product: {kind: path}}, "listening": [paths], "batches": {product:
         GradeBatch}, "seconds": float}``.
     """
-    from audiodsm.cli.render import HEARING_CAUTION, render_file
+    from audiodsm.evaluate.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.grade import collect_profiles, grade_batch
     from audiodsm.evaluate.report import write_report
     from audiodsm.spec import load_spec
