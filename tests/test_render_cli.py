@@ -85,6 +85,8 @@ def test_render_end_to_end(setup):
     for ch, level in ((0, -1.0), (1, -20.0)):
         rms = np.sqrt(np.mean(y[seg, ch] ** 2))
         assert abs(20 * math.log10(math.sqrt(2) * rms) - level) < 0.06
+    # channels are numbered from 1 for people, as `analyze` numbers them (docs/render.md)
+    assert [c["channel"] for c in summary["channels"]] == [1, 2]
     ch0 = summary["channels"][0]
     assert set(ch0) >= {
         "rms_dbfs",
