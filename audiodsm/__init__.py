@@ -65,6 +65,9 @@ Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
     write_report, render_html, batch_to_dict, batch_to_csv, plot_spectrum,
     plot_thd_n_vs_level, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
     plot_margins
+Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
+``audiodsm.measure.silence``)
+    render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
 """
 
 from __future__ import annotations
@@ -231,6 +234,12 @@ _PUBLIC = {
     "plot_state_histograms": "audiodsm.evaluate.plotting",
     "plot_frequency_response": "audiodsm.evaluate.plotting",
     "plot_margins": "audiodsm.evaluate.plotting",
+    "render_file": "audiodsm.evaluate.render",
+    "render_files": "audiodsm.evaluate.render",
+    "output_names": "audiodsm.evaluate.render",
+    "analyze_file": "audiodsm.evaluate.analyze",
+    "FileAnalysis": "audiodsm.evaluate.analyze",
+    "SilenceNoiseMeter": "audiodsm.measure.silence",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]
