@@ -27,8 +27,8 @@ Two ways to run the same filter:
   gives the window sums divided by N^K, so DC passes at unity. Each output is the weighted sum
   of its window (the cascade's integer impulse response), summed in one fixed order, so a
   stream cut into blocks gives the same bits as one call. For a ±1 stream the output is
-  ``2 count / N^K - 1`` exactly (``count`` the weighted number of ones; every step is exact in
-  float64 while ``N^K < 2^52``).
+  ``2 count / N^K - 1`` (``count`` the weighted number of ones), exactly for a power-of-two
+  N (the sums are whole numbers below 2^53 and the division is by a power of two).
 
 :func:`design_counting_downsampler` and :class:`CountingDownsampler` put a counting stage in
 front of the clean listening decimator (:class:`~audiodsm.stages.upsample.Downsampler`) when
@@ -333,6 +333,11 @@ class CountingDecimator:
         counts : numpy.ndarray of int64
             (m,) or (m, channels), each from 0 to :attr:`max_count` (with the default width).
         state : CountRegisters
+
+        Notes
+        -----
+        Cleared registers stand for code 0 before the stream, while :meth:`process` starts
+        from level 0 (silence); the first K outputs of the two differ, the rest agree.
         """
         arr = np.asarray(codes)
         if arr.ndim not in (1, 2) or (arr.ndim == 2 and arr.shape[1] < 1):
