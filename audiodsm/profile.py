@@ -499,6 +499,34 @@ class ListeningSettings:
         _float_range(15000.0, 40000.0),
         doc="Flat band kept by the listening decimator (Hz).",
     )
+    decimator: str = _key(
+        "half-band",
+        "str",
+        _fmt_choices("half-band", "counting"),
+        _choice("half-band", "counting"),
+        doc="Listening decimator: 'half-band' (the clean cascade) or 'counting' (count the "
+        "stream over counting_length clocks in counting_stages cascaded counters, sinc^K, "
+        "then the clean cascade for any further ratio).",
+    )
+    counting_stages: int = _key(
+        1,
+        "int",
+        "an integer from 1 to 6",
+        _int_range(1, 6),
+        only="counting",
+        only_by="decimator",
+        doc="Cascaded counters K (sinc^K); K >= loop order + 1 keeps folded noise down.",
+    )
+    counting_length: int = _key(
+        64,
+        "int",
+        "a power of two from 2 to 1024",
+        _power_of_two(2, 1024),
+        only="counting",
+        only_by="decimator",
+        doc="Counting window N in modulator clocks (also its decimation ratio); at most the "
+        "modulator rate over the listening rate.",
+    )
 
 
 _SECTIONS = {
@@ -629,14 +657,15 @@ def _parse_section(cls, table, path, section):
         values[name] = value
     settings = cls(**values)
     # keys that belong to another kind of this stage would do nothing: refuse them
-    kind = getattr(settings, "kind", None)
     for name, f in fields.items():
         only = f.metadata.get("only")
+        by = f.metadata.get("only_by", "kind")
+        kind = getattr(settings, by, None)
         if only is not None and name in table and kind != only:
             raise ProfileError(
                 path,
                 f"{section}.{name}",
-                f"applies only when {section}.kind = {only!r}; this profile has kind = {kind!r}",
+                f"applies only when {section}.{by} = {only!r}; this profile has {by} = {kind!r}",
             )
     return settings
 
@@ -833,7 +862,7 @@ _DESIGN_KEYS = ("order", "max_gain", "optimize_zeros")
 def _applies(settings, f) -> bool:
     """Whether field ``f`` does something for these settings (kind-specific keys)."""
     only = f.metadata.get("only")
-    if only is not None and only != getattr(settings, "kind", None):
+    if only is not None and only != getattr(settings, f.metadata.get("only_by", "kind"), None):
         return False
     if isinstance(settings, ModulatorSettings) and settings.explicit_ntf:
         return f.name not in _DESIGN_KEYS
