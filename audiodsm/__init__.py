@@ -35,11 +35,18 @@ Test stimuli (``audiodsm.signals``)
     dbfs_to_amplitude, amplitude_to_dbfs, rms_to_dbfs, dbfs_to_rms
 Levels and spectra (``audiodsm.measure.spectrum``)
     level_dbfs, power_to_dbfs, averaged_spectrum, accumulate_spectrum, Spectrum
-AES17-practice metrics (``audiodsm.measure.aes17``)
-    fit_sine, thd_plus_noise, thd, sinad_db, enob_bits, dynamic_range, idle_channel_noise,
-    start_residual_meter, update_residual_meter, read_residual_meter,
-    level_linearity, frequency_response, stepped_frequency_response,
-    imd_smpte, imd_difference_frequency, out_of_band_power_dbfs, noise_modulation
+Sine fits (``audiodsm.measure.sine_fit``)
+    fit_sine, SineFit
+Residual meter, block by block (``audiodsm.measure.residual``)
+    start_residual_meter, update_residual_meter, read_residual_meter
+Tone distortion (``audiodsm.measure.tone``)
+    thd_plus_noise, thd, sinad_db, enob_bits
+Noise (``audiodsm.measure.noise``)
+    dynamic_range, idle_channel_noise, out_of_band_power_dbfs, noise_modulation
+Level and frequency response (``audiodsm.measure.response``)
+    level_linearity, frequency_response, stepped_frequency_response
+Intermodulation (``audiodsm.measure.intermod``)
+    imd_smpte, imd_difference_frequency
 Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
@@ -192,24 +199,24 @@ _PUBLIC = {
     "averaged_spectrum": "audiodsm.measure.spectrum",
     "accumulate_spectrum": "audiodsm.measure.spectrum",
     "Spectrum": "audiodsm.measure.spectrum",
-    "fit_sine": "audiodsm.measure.aes17",
-    "SineFit": "audiodsm.measure.aes17",
-    "thd_plus_noise": "audiodsm.measure.aes17",
-    "thd": "audiodsm.measure.aes17",
-    "sinad_db": "audiodsm.measure.aes17",
-    "enob_bits": "audiodsm.measure.aes17",
-    "dynamic_range": "audiodsm.measure.aes17",
-    "idle_channel_noise": "audiodsm.measure.aes17",
-    "start_residual_meter": "audiodsm.measure.aes17",
-    "update_residual_meter": "audiodsm.measure.aes17",
-    "read_residual_meter": "audiodsm.measure.aes17",
-    "level_linearity": "audiodsm.measure.aes17",
-    "frequency_response": "audiodsm.measure.aes17",
-    "stepped_frequency_response": "audiodsm.measure.aes17",
-    "imd_smpte": "audiodsm.measure.aes17",
-    "imd_difference_frequency": "audiodsm.measure.aes17",
-    "out_of_band_power_dbfs": "audiodsm.measure.aes17",
-    "noise_modulation": "audiodsm.measure.aes17",
+    "fit_sine": "audiodsm.measure.sine_fit",
+    "SineFit": "audiodsm.measure.sine_fit",
+    "thd_plus_noise": "audiodsm.measure.tone",
+    "thd": "audiodsm.measure.tone",
+    "sinad_db": "audiodsm.measure.tone",
+    "enob_bits": "audiodsm.measure.tone",
+    "dynamic_range": "audiodsm.measure.noise",
+    "idle_channel_noise": "audiodsm.measure.noise",
+    "start_residual_meter": "audiodsm.measure.residual",
+    "update_residual_meter": "audiodsm.measure.residual",
+    "read_residual_meter": "audiodsm.measure.residual",
+    "level_linearity": "audiodsm.measure.response",
+    "frequency_response": "audiodsm.measure.response",
+    "stepped_frequency_response": "audiodsm.measure.response",
+    "imd_smpte": "audiodsm.measure.intermod",
+    "imd_difference_frequency": "audiodsm.measure.intermod",
+    "out_of_band_power_dbfs": "audiodsm.measure.noise",
+    "noise_modulation": "audiodsm.measure.noise",
     "load_spec": "audiodsm.spec",
     "parse_spec": "audiodsm.spec",
     "spec_digest": "audiodsm.spec",

@@ -24,6 +24,8 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import tomli_w
+
 from audiodsm.errors import ProfileError
 
 __all__ = [
@@ -900,32 +902,9 @@ def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
     return out
 
 
-def _toml_string(text: str) -> str:
-    """A TOML basic string (TOML v1.0.0: escape quote, backslash and control characters)."""
-    out = []
-    for ch in text:
-        code = ord(ch)
-        if ch in '"\\':
-            out.append("\\" + ch)
-        elif code < 0x20 or code == 0x7F:
-            out.append(f"\\u{code:04X}")
-        else:
-            out.append(ch)
-    return '"' + "".join(out) + '"'
-
-
-def _toml_value(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        return repr(value)  # shortest text that round-trips exactly
-    if isinstance(value, str):
-        return _toml_string(value)
-    if isinstance(value, list):
-        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    raise TypeError(f"cannot write {value!r} as TOML")  # pragma: no cover
+def _toml_literal(value) -> str:
+    """One plain value as TOML text, as tomli-w writes it (for the table of keys and defaults)."""
+    return tomli_w.dumps({"v": value}).removeprefix("v = ").removesuffix("\n")
 
 
 def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
@@ -941,7 +920,13 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
     Returns
     -------
     str
-        TOML text ending in a newline.
+        TOML text ending in a newline, written by tomli-w (one key a line, each stage a table,
+        a list one item a line).
+
+    References
+    ----------
+    .. [1] TOML v1.0.0, https://toml.io/en/v1.0.0 (the format tomli-w writes and
+       :mod:`tomllib` reads).
     """
     data = profile_to_dict(profile, full=False)
     if full:
@@ -952,17 +937,13 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
                 for f in dataclasses.fields(cls)
                 if _applies(getattr(profile, section), f)
             }
-    lines = [f"name = {_toml_value(data['name'])}"]
+    document = {"name": data["name"]}
     if data["description"]:
-        lines.append(f"description = {_toml_value(data['description'])}")
+        document["description"] = data["description"]
     for section in _SECTIONS:
-        table = data[section]
-        if not table:
-            continue
-        lines.append("")
-        lines.append(f"[{section}]")
-        lines.extend(f"{k} = {_toml_value(v)}" for k, v in table.items())
-    return "\n".join(lines) + "\n"
+        if data[section]:
+            document[section] = data[section]
+    return tomli_w.dumps(document)
 
 
 def profile_digest(profile: ChainProfile) -> str:
@@ -1004,6 +985,6 @@ def schema_rows():
                 f"{section}.{f.name}",
                 f.metadata["kind"],
                 f.metadata["expect"],
-                _toml_value(_plain(default)),
+                _toml_literal(_plain(default)),
                 f.metadata.get("doc", ""),
             )

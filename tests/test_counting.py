@@ -7,7 +7,7 @@ import pytest
 
 from audiodsm.design.ntf import ntf_from_zeros_poles
 from audiodsm.errors import ParameterError, ProfileError
-from audiodsm.measure.aes17 import fit_sine
+from audiodsm.measure.sine_fit import fit_sine
 from audiodsm.profile import profile_from_dict
 from audiodsm.stages import _counting_kernels
 from audiodsm.stages.chain import Chain, run_chain
