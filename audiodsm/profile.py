@@ -596,7 +596,7 @@ def _convert(value, kind, path, key, expect):
             out.append(float(v))
         return tuple(out)
     if kind == "roots":
-        if not isinstance(value, list) or len(value) > 8:
+        if not isinstance(value, list) or len(value) > ORDER_RANGE[1]:
             bad()
         out = []
         for v in value:

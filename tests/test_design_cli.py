@@ -215,3 +215,37 @@ def test_atomic_text_writer(tmp_path):
     with pytest.raises(OutputError, match="does not exist"):
         write_text_atomic(tmp_path / "nope" / "a.toml", "")
     assert sorted(q.name for q in tmp_path.iterdir()) == ["a.toml"]
+
+
+def test_options_and_profile_keys_share_one_set_of_limits():
+    # design --levels used to stop at 1024 while modulator.levels allows 2**24: both now read
+    # audiodsm.limits, so the command accepts exactly what the profile schema accepts
+    from audiodsm.cli.design import design
+    from audiodsm.errors import ProfileError
+    from audiodsm.limits import LEVELS_RANGE, ORDER_RANGE, OUT_OF_BAND_GAIN_RANGE
+    from audiodsm.profile import profile_from_dict
+
+    params = {p.name: p for p in design.params}
+    assert (params["levels"].type.min, params["levels"].type.max) == LEVELS_RANGE
+    assert (params["order"].type.min, params["order"].type.max) == ORDER_RANGE
+    gain = params["out_of_band_gain"].type
+    assert (gain.min, gain.max, gain.min_open) == (*OUT_OF_BAND_GAIN_RANGE, True)
+    top = LEVELS_RANGE[1]
+    prof = profile_from_dict({"modulator": {"levels": top}, "output": {"kind": "nrz"}})
+    assert prof.modulator.levels == top
+    with pytest.raises(ProfileError, match="modulator.levels"):
+        profile_from_dict({"modulator": {"levels": top + 1}, "output": {"kind": "nrz"}})
+    with pytest.raises(ProfileError, match="modulator.out_of_band_gain"):
+        profile_from_dict({"modulator": {"out_of_band_gain": OUT_OF_BAND_GAIN_RANGE[0]}})
+    result = CliRunner().invoke(main, ["design", "x.toml", "--levels", str(top + 1)])
+    assert result.exit_code == 2 and "--levels" in result.output
+
+
+def test_design_job_refuses_pdm_with_many_levels_by_name(tmp_path):
+    from audiodsm.evaluate.design_job import DesignRequest, run_design_job
+
+    request = DesignRequest(tmp_path / "x.toml", levels=5, output_stage="pdm")
+    with pytest.raises(ParameterError) as err:
+        run_design_job(request)
+    assert err.value.name == "output_stage"
+    assert not (tmp_path / "x.toml").exists()

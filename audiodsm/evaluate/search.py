@@ -28,7 +28,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from audiodsm.errors import ParameterError
-from audiodsm.limits import TARGET_DYNAMIC_RANGE_DB
+from audiodsm.limits import ORDER_RANGE, OSR_CHOICES, TARGET_DYNAMIC_RANGE_DB
 from audiodsm.profile import ChainProfile
 
 __all__ = [
@@ -47,8 +47,8 @@ __all__ = [
 AUDIO_BAND_HZ = (20.0, 20000.0)
 
 #: Search grid defaults.
-DEFAULT_ORDERS = tuple(range(1, 9))
-DEFAULT_OSRS = (16, 32, 64, 128, 256, 512)
+DEFAULT_ORDERS = tuple(range(ORDER_RANGE[0], ORDER_RANGE[1] + 1))
+DEFAULT_OSRS = OSR_CHOICES
 DEFAULT_LEVELS = (2, 3, 5, 9, 17, 33)
 DEFAULT_MULTIBIT_GAINS = (1.5, 2.0, 3.0)
 #: Lee's rule, common practice for single-bit loops.
