@@ -213,7 +213,7 @@ def test_bad_profile_key_is_one_line(setup):
     assert res.exit_code == 2
     assert res.stderr.strip() == (
         f"audiodsm: error: {prof}: modulator.ordr: unknown key; expected one of: "
-        "order, max_gain, optimize_zeros, zeros, poles, structure, levels, dither_lsb, seed, "
+        "order, out_of_band_gain, zero_layout, zeros, poles, structure, levels, dither_lsb, seed, "
         "input_scale, guard, state_bound, state_scaling, state_peak_bound"
     )
     assert final_files(tmp / "out") == []
@@ -278,7 +278,7 @@ osr = 16
 [modulator]
 order = 2
 levels = 9
-max_gain = 2.0
+out_of_band_gain = 2.0
 [output]
 kind = "pwm"
 pwm_mode = "three-level"
