@@ -561,7 +561,9 @@ class Chain:
         self._static_offset = self.offset * self.fir_dc_gain * self.analog_dc_gain
         down_dc = float(np.real(self.downsampler_design.response(np.array([0.0]))[0]))
         self._listening_offset = self._static_offset * down_dc
-        # latency: FIR delays + loop phase delay + half a frame (hold) + analog phase delay
+        # latency: FIR delays + loop phase delay + analog phase delay. The hold of each frame is
+        # centred half a frame after its sample, and the frame mean the filter delivers is
+        # centred on the same point, so together they add no delay.
         fir_delay = 0.0
         if self.fir is not None:
             hf = complex(self.fir.response(np.array([f]), frame_rate_hz=self.modulator_rate_hz)[0])
@@ -569,7 +571,7 @@ class Chain:
         loop_delay = -np.angle(stf_997) / w
         self.latency_s = float(
             self.upsampler_design.delay_input_samples / self.rate_hz
-            + (loop_delay + 0.5 + fir_delay) / self.modulator_rate_hz
+            + (loop_delay + fir_delay) / self.modulator_rate_hz
             + analog_delay_s
             + self.downsampler_design.delay_seconds
         )
