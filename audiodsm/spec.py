@@ -72,6 +72,7 @@ METRIC_CATALOGUE = {
     "pwm_dropped_pulses": ("count", "PWM pulses dropped for the minimum width"),
     "pwm_stretched_pulses": ("count", "PWM pulses stretched to the minimum width"),
     "switching_rate_hz": ("Hz", "output level changes per second at idle"),
+    "dc_offset_dbfs": ("dBFS", "DC at the output during silence"),
     # read from the THD+N-versus-level sweep at the level the target names
     "thd_n_db": ("dB", "THD+N at the stated tone level"),
     "thd_n_db_a": ("dB", "THD+N at the stated tone level, A-weighted"),

@@ -352,6 +352,8 @@ def test_digitally_silent_idle_output_reports_the_numeric_floor():
     assert 20 * math.log10(2.0**-53) < NUMERIC_FLOOR_DBFS
     for key in ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir"):
         assert result.metrics[key] == NUMERIC_FLOOR_DBFS
+    # and its DC is exactly zero: also reported at the floor, not as -inf
+    assert result.metrics["dc_offset_dbfs"] == NUMERIC_FLOOR_DBFS
     assert any("digitally silent" in note for note in result.notes)
 
 
@@ -369,3 +371,9 @@ def test_a_dithered_idle_output_is_not_floored():
     result = run_battery(dithered, tests=("idle",), plan=BatteryPlan.quick())
     assert -200.0 < result.metrics["idle_noise_dbfs"] < -60.0
     assert not any("digitally silent" in note for note in result.notes)
+    # The NTF's zeros at DC (optimize_zeros = false) make the loop's output mean follow its
+    # input mean (zero) up to its bounded states over the run length (Schreier & Temes 2005,
+    # ch. 2, the noise-shaping loop's DC behaviour): the DC reading is a real number, far below
+    # the idle noise and the AES17 level of a DC of 1e-4 of full scale (-77 dBFS).
+    dc = result.metrics["dc_offset_dbfs"]
+    assert NUMERIC_FLOOR_DBFS < dc < 20 * math.log10(1e-4 * math.sqrt(2))

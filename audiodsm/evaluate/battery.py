@@ -119,6 +119,11 @@ METRIC_UNITS = {
     "idle_noise_dbfs_a": ("idle", "dBFS", "idle-channel noise, A-weighted"),
     "idle_noise_dbfs_ccir": ("idle", "dBFS", "idle-channel noise, CCIR-RMS weighted"),
     "switching_rate_hz": ("idle", "Hz", "output level changes per second at idle"),
+    "dc_offset_dbfs": (
+        "idle",
+        "dBFS",
+        "DC at the output during silence (a DC of full-scale value reads +3.01 dBFS)",
+    ),
     "idle_tone_max_dbfs": (
         "idle",
         "dBFS",
@@ -166,7 +171,12 @@ _TAIL_S = 0.05
 # digitally silent (e.g. an undithered multi-level loop idling on its zero level), so the battery
 # reports the floor and says so in the notes instead of a number of no physical meaning.
 NUMERIC_FLOOR_DBFS = -300.0
-_FLOORED_METRICS = ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir")
+_FLOORED_METRICS = (
+    "idle_noise_dbfs",
+    "idle_noise_dbfs_a",
+    "idle_noise_dbfs_ccir",
+    "dc_offset_dbfs",
+)
 #: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
 _SPECTRUM_RESOLUTION_HZ = 100.0
 #: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
@@ -561,7 +571,12 @@ def _test_idle(ctx, profile):
     y = res.listening[:, 0]
     r = _meter(y, rate, None, _WEIGHTINGS, plan.settle_s)
     settle = int(round(plan.settle_s * rate))
+    # the DC the output really carries: the chain's calibration removes only the static
+    # offset of the output stage without dead time, so an offset from dead time (or anything
+    # else in the product) stays in; AES17 dBFS of a constant: 20 log10(|dc| sqrt(2))
+    dc = float(np.mean(y[settle:]))
     out = {
+        "dc_offset_dbfs": 20.0 * math.log10(abs(dc) * math.sqrt(2.0)) if dc else -math.inf,
         "idle_noise_dbfs": r.noise_dbfs["unweighted"],
         "idle_noise_dbfs_a": r.noise_dbfs["a"],
         "idle_noise_dbfs_ccir": r.noise_dbfs["ccir"],
@@ -962,6 +977,7 @@ _SCALARS = (
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",
     "switching_rate_hz",
+    "dc_offset_dbfs",
     "passband_ripple_db",
     "image_rejection_db",
     "image_rejection_noise_limited",

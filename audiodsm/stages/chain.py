@@ -332,6 +332,40 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
     return pwm
 
 
+def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
+    """PWM with load-current-dependent dead time and the LC filter, in one loop.
+
+    A function ``(y, state) -> (frame means, (dropped, stretched), state)``: the leg voltage
+    during each dead interval follows the sign of the filter's inductor current, so the output
+    stage cannot run ahead of the filter (see
+    :func:`~audiodsm.stages.reconstruct.filter_pwm_with_dead_time`).
+    """
+    from audiodsm.stages.reconstruct import filter_pwm_with_dead_time
+
+    out = profile.output
+
+    def pwm_dead_time(y, state):
+        means, stats, state = filter_pwm_with_dead_time(
+            filt,
+            y,
+            frame_rate_hz=frame_rate_hz,
+            levels=profile.modulator.levels,
+            counter_steps=out.counter_steps or None,
+            mode=out.pwm_mode,
+            carrier=out.pwm_carrier,
+            bridge=out.pwm_bridge,
+            tick_subdivision=out.tick_subdivision,
+            dead_time_ticks=out.dead_time_ticks,
+            min_pulse_ticks=out.min_pulse_ticks,
+            min_pulse_action=out.short_pulse_action,
+            supply_volts=out.full_scale_volts,
+            state=state,
+        )
+        return means, (stats.dropped_pulses, stats.stretched_pulses), state
+
+    return pwm_dead_time
+
+
 def _analog_filter(profile: ChainProfile):
     from audiodsm.stages import reconstruct as rec_mod
 
@@ -463,12 +497,24 @@ class Chain:
             self._loop_space = self.modulator.loop.state_space()
             self._stf = _stf_filter(self._loop_space)
 
-        with _settings_of(profile, "output"):
-            self._waveform = _output_waveform_fn(profile, float(self.modulator_rate_hz))
         with _settings_of(profile, "reconstruction"):
             taps = profile.reconstruction.fir_taps
             self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
             self.analog_filter = _analog_filter(profile)
+        with _settings_of(profile, "output"):
+            # Dead time follows the LC filter's inductor current, so that output stage runs
+            # together with the filter. The plain stage (without dead time) is what the
+            # calibration reads: the dead-time error is the product's, and stays in the output.
+            out = profile.output
+            self._pwm_dead_time = None
+            if out.kind == "pwm" and out.dead_time_ticks > 0:
+                plain = replace(profile, output=replace(out, dead_time_ticks=0))
+                self._pwm_dead_time = _pwm_dead_time_fn(
+                    profile, float(self.modulator_rate_hz), self.analog_filter
+                )
+            else:
+                plain = profile
+            self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
         with _settings_of(profile, "listening"):
             self.downsampler_design = design_downsampler(
                 self.modulator_rate_hz,
@@ -520,16 +566,17 @@ class Chain:
         else:  # a fine quantizer (up to 24 bits): a spread of its exact levels is enough
             codes = np.unique(np.round(np.linspace(0.0, levels - 1.0, _CAL_MAX_LEVELS)))
             probe = codes * (2.0 / (levels - 1)) - 1.0
-        # each level held for a few frames, so edge effects between frames (dead time) settle;
-        # the last frame of each run is the stage's steady output for that level
+        # each level held for a few frames, so edge effects between frames settle; the last
+        # frame of each run is the stage's steady output for that level. The stage probed has
+        # no dead time (see __init__): the error dead time makes depends on the load current,
+        # it is the product's offset and distortion, and the measurements must show it.
         hold = 4
         wf, _, _ = self._waveform(np.repeat(probe, hold), None)
         means = _mean_level(wf)[hold - 1 :: hold]
         # least-squares line through (level, mean output): slope = volts per full-scale unit.
-        # With five or more levels the two end levels are left out: a PWM leg held fully on or
-        # off has no edges, so dead time costs it nothing, while every level between loses the
-        # same edge time. The line through the inner levels is the stage's transfer where a
-        # signal spends its time, and it leaves no offset at mid-scale (silence).
+        # With five or more levels the two end levels are left out: a minimum pulse width can
+        # drop the pulses of the levels next to them. The line through the inner levels is the
+        # stage's transfer where a signal spends its time.
         fit = slice(1, -1) if probe.size >= 5 else slice(None)
         slope, offset = np.polyfit(probe[fit], means[fit], 1)
         self.stage_gain = float(slope)
@@ -638,7 +685,11 @@ class Chain:
         t1 = clock()
         y, mod_s = self.modulator.run(xu, st.modulator)
         t2 = clock()
-        wf, (dropped, stretched), out_s = self._waveform(y, st.output)
+        if self._pwm_dead_time is not None:  # output stage and filter in one loop
+            analog, (dropped, stretched), out_s = self._pwm_dead_time(y, st.output)
+            wf, fir_s, filt_s = None, st.fir, st.analog
+        else:
+            wf, (dropped, stretched), out_s = self._waveform(y, st.output)
         prev = st.last_level
         if self.profile.output.kind == "pwm":
             switches = None  # the PWM stage counts its own edges
@@ -649,7 +700,8 @@ class Chain:
         else:
             switches = 0
         t3 = clock()
-        analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog)
+        if wf is not None:
+            analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog)
         t4 = clock()
         # the decimator is linear: calibrate after it, on 1/OSR as many samples
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
@@ -698,12 +750,13 @@ class Chain:
                 stf_state = np.zeros(len(den) - 1)
             ideal, stf_state = lfilter(num, den, xu, zi=stf_state)
         levels = (self.offset + self.stage_gain * ideal)[:, None]
-        ticks = np.full((xu.size, 1), wf.ticks_per_frame, dtype=np.int64)
+        tpf = wf.ticks_per_frame if wf is not None else 1  # one segment a frame either way
+        ticks = np.full((xu.size, 1), tpf, dtype=np.int64)
         waveform = PulseWaveform(
             levels=levels,
             ticks=ticks,
-            ticks_per_frame=wf.ticks_per_frame,
-            frame_rate_hz=wf.frame_rate_hz,
+            ticks_per_frame=tpf,
+            frame_rate_hz=float(self.modulator_rate_hz),
         )
         return waveform, stf_state
 
