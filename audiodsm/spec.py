@@ -66,6 +66,7 @@ METRIC_CATALOGUE = {
     "imd_smpte_db": ("dB", "SMPTE intermodulation"),
     "imd_difference_db": ("dB", "difference-frequency intermodulation"),
     "out_of_band_noise_dbfs": ("dBFS", "out-of-band noise after the reconstruction filter"),
+    "carrier_ripple_dbfs": ("dBFS", "ripple inside each frame (PWM carrier) after the filter"),
     "noise_modulation_db": ("dB", "noise modulation spread"),
     "state_peak_max": ("FS", "largest integrator state"),
     "overload_count": ("count", "loop guard actions at or below the stable amplitude"),

@@ -525,3 +525,37 @@ def test_dead_time_loss_is_not_calibrated_away():
     level = 20 * math.log10(amp)
     assert abs(level - predicted) <= 0.1, (level, predicted)
     assert level < -1.3
+
+
+def test_pwm_carrier_ripple_is_counted_with_the_analog_output():
+    """An undithered 9-level loop idles on its zero level, so a two-level PWM stage makes a
+    50 % square wave of +-V at the modulator rate f_c. After the LC filter its ripple power is
+    the square wave's Fourier series through the filter, sum over odd m of
+    (4 V |H(m f_c)| / (pi m))^2 / 2 (any signals text). The chain counts it (with "analog"
+    kept) although the frame-rate output carries none of it; 1 % covers the start-up."""
+    profile = parse_profile(
+        """
+name = "pwm-idle-ripple"
+[modulator]
+order = 2
+levels = 9
+optimize_zeros = false
+[output]
+kind = "pwm"
+full_scale_volts = 2.0
+[reconstruction]
+kind = "lc"
+"""
+    )
+    res = run_chain(profile, np.zeros(4800), rate_hz=RATE, keep=("listening", "analog"))
+    chain = Chain.from_profile(profile, RATE, 1)
+    fc = res.modulator_rate_hz
+    m = np.arange(1, 2001, 2)
+    h = np.abs(chain.analog_filter.response(m * fc))
+    expected = math.sqrt(np.sum((4 * 2.0 * h / (np.pi * m)) ** 2) / 2)
+    assert res.stats.ripple_rms()[0] == pytest.approx(expected, rel=0.01)
+    # the frame-rate output itself holds no carrier: it sits at the (zero) frame mean
+    assert np.max(np.abs(res.analog[2000:, 0])) < 1e-6 * expected
+    # without "analog" kept nothing is counted
+    quiet = run_chain(profile, np.zeros(480), rate_hz=RATE)
+    assert quiet.stats.ripple_frames[0] == 0

@@ -4,6 +4,7 @@ import math
 
 import numpy as np
 import pytest
+import scipy.integrate
 import scipy.linalg
 
 from audiodsm.errors import ParameterError
@@ -58,15 +59,28 @@ def _slow_dead_time(filt, y, *, rate, levels, sub, dead, volts, mode, carrier, b
     phi, gam = big[:m, :m], big[:m, 2 * m]
     w_x = filt.c[0] @ big[m : 2 * m, :m]
     w_u = filt.c[0] @ big[m : 2 * m, 2 * m] + filt.d[0, 0] * dt
+    # the squared output over one tick as a quadratic form in z = [x; u], by numerical
+    # quadrature of (H expm(F t))' (H expm(F t)) (scipy.integrate.quad_vec), F = [[A, B], [0, 0]]
+    f = np.zeros((m + 1, m + 1))
+    f[:m, :m] = filt.a
+    f[:m, m] = filt.b[:, 0]
+    hrow = np.append(filt.c[0], filt.d[0, 0])
+
+    def integrand(t):
+        v = hrow @ scipy.linalg.expm(f * t)
+        return np.outer(v, v)
+
+    q_tick = scipy.integrate.quad_vec(integrand, 0.0, dt, epsabs=0, epsrel=1e-13)[0]
     x = np.zeros(m)
     prev = [0] * legs
     level = [0] * legs
     dead_level = [0] * legs
     dead_until = [-1] * legs
-    out = []
+    out, squares = [], []
     g = 0
     for k in codes:
         area = 0.0
+        square = 0.0
         for t in range(frame):
             for leg in range(legs):
                 c = command(leg, int(k), t)
@@ -79,10 +93,13 @@ def _slow_dead_time(filt, y, *, rate, levels, sub, dead, volts, mode, carrier, b
                 level[leg] = dead_level[leg] if g < dead_until[leg] else c
             u = volts * (2 * level[0] - 1 if legs == 1 else level[0] - level[1])
             area += w_x @ x + w_u * u
+            z = np.append(x, u)
+            square += z @ q_tick @ z
             x = phi @ x + gam * u
             g += 1
         out.append(area / (frame * dt))
-    return np.array(out)
+        squares.append(square / (frame * dt))
+    return np.array(out), np.array(squares)
 
 
 @pytest.mark.parametrize("dead", [0, 1, 3, 7])
@@ -91,8 +108,10 @@ def test_kernel_equals_tick_by_tick_twin(case, dead, rng):
     filt = lc_filter(10e-6, 1e-6, 4.0, series_ohm=0.05, bridged=CASES[case]["bridge"] == "full")
     y = rng.integers(0, 5, 150) / 2.0 - 1.0
     kw = dict(levels=5, tick_subdivision=2, supply_volts=3.0, **CASES[case])
-    got, _, _ = filter_pwm_with_dead_time(filt, y, frame_rate_hz=384e3, dead_time_ticks=dead, **kw)
-    ref = _slow_dead_time(
+    got, got_sq, _, _ = filter_pwm_with_dead_time(
+        filt, y, frame_rate_hz=384e3, dead_time_ticks=dead, **kw
+    )
+    ref, ref_sq = _slow_dead_time(
         filt,
         y,
         rate=384e3,
@@ -105,6 +124,7 @@ def test_kernel_equals_tick_by_tick_twin(case, dead, rng):
         bridge=kw["bridge"],
     )
     np.testing.assert_allclose(got, ref, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(got_sq, ref_sq, rtol=1e-9, atol=1e-9)
 
 
 @pytest.mark.parametrize("case", sorted(CASES))
@@ -114,7 +134,7 @@ def test_zero_dead_time_equals_the_plain_waveform_through_the_filter(case, rng):
     filt = lc_filter(22e-6, 680e-9, 8.0, bridged=CASES[case]["bridge"] == "full")
     y = rng.integers(0, 9, 2000) / 4.0 - 1.0
     kw = dict(frame_rate_hz=768e3, levels=9, tick_subdivision=4, supply_volts=5.0, **CASES[case])
-    got, stats, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw)
+    got, _, stats, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw)
     wave, plain_stats, _ = pwm_waveform(y, **kw)
     ref, _ = filter_waveform(filt, wave)
     np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12)
@@ -134,12 +154,14 @@ def test_blockwise_equals_one_shot(rng):
         mode="three-level",
         carrier="double-edge",
     )
-    whole, stats, end = filter_pwm_with_dead_time(filt, y, **kw)
-    parts, state = [], None
+    whole, whole_sq, stats, end = filter_pwm_with_dead_time(filt, y, **kw)
+    parts, squares, state = [], [], None
     for lo, hi in ((0, 1), (1, 1), (1, 333), (333, 900)):
-        out, _, state = filter_pwm_with_dead_time(filt, y[lo:hi], state=state, **kw)
+        out, sq, _, state = filter_pwm_with_dead_time(filt, y[lo:hi], state=state, **kw)
         parts.append(out)
+        squares.append(sq)
     assert np.array_equal(np.concatenate(parts), whole)
+    assert np.array_equal(np.concatenate(squares), whole_sq)
     assert np.array_equal(state.filter.coords, end.filter.coords)
     assert state.totals == end.totals
     assert stats.transitions == end.totals.transitions
@@ -162,8 +184,8 @@ def test_dead_time_error_is_a_square_wave_in_phase_with_the_load_current():
     filt = lc_filter(100e-6, 0.47e-6, 4.0)
     y = 0.8 * np.cos(2 * np.pi * np.arange(30 * per) / per)
     kw = dict(frame_rate_hz=fc, counter_steps=steps, bridge="half", supply_volts=volts)
-    with_dead, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=dead, **kw)
-    without, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw)
+    with_dead, _, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=dead, **kw)
+    without, _, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw)
     keep = 10 * per
     err = np.fft.rfft((with_dead - without)[-keep:]) * 2 / keep
     ref = np.fft.rfft(without[-keep:]) * 2 / keep
@@ -183,7 +205,7 @@ def test_dead_time_error_is_a_square_wave_in_phase_with_the_load_current():
     diff = np.angle(np.exp(1j * (error_phase - current_phase - np.pi)))
     assert abs(math.degrees(diff)) < 3.0
     # with zero dead time the term vanishes exactly
-    again, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw)
+    again, _, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw)
     assert np.array_equal(again, without)
 
 

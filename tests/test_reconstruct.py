@@ -15,6 +15,7 @@ from audiodsm.stages.reconstruct import (
     analog_prototype,
     filter_report,
     filter_waveform,
+    filter_waveform_power,
     filter_waveform_ticks,
     lc_filter,
     out_of_band_ripple,
@@ -526,3 +527,45 @@ def test_a_carrier_sideband_is_not_aliased_into_the_audio_band(rng):
     assert any(near[0] < t.frequency_hz < near[1] for t in found_end.tones)
     found_mean = find_idle_tones(means[skip:], rate_hz=fc, band_hz=(20.0, 20000.0))
     assert not any(near[0] < t.frequency_hz < near[1] for t in found_mean.tones)
+
+
+def test_frame_mean_square_of_an_rc_equals_the_closed_form():
+    """Closed form (first-order linear ODE): with y(t) = u + (y0 - u) exp(-t / tau) over a
+    segment of length h, int y^2 = u^2 h + 2 u (y0 - u) tau (1 - exp(-h / tau))
+    + (y0 - u)^2 (tau / 2) (1 - exp(-2 h / tau)). The frame means come out bit for bit as
+    filter_waveform's."""
+    tau = 2.1e-6
+    rc = AnalogFilter([[-1.0 / tau]], [1.0 / tau], [1.0], 0.0, description="RC")
+    tpf, rate = 10, 250e3
+    dt = 1.0 / (rate * tpf)
+    levels = np.array([[1.0, -1.0, 0.5], [0.25, 1.0, -0.75], [-1.0, 0.0, 1.0]] * 30)
+    ticks = np.array([[3, 5, 2], [10, 0, 0], [1, 8, 1]] * 30, dtype=np.int64)
+    wave = PulseWaveform(levels, ticks, tpf, rate)
+    means, squares, _ = filter_waveform_power(rc, wave)
+    assert np.array_equal(means, filter_waveform(rc, wave)[0])
+    expected, y0 = [], 0.0
+    for lv_row, tk_row in zip(levels, ticks, strict=True):
+        total = 0.0
+        for u, k in zip(lv_row, tk_row, strict=True):
+            h, e = k * dt, y0 - u
+            total += u * u * h + 2 * u * e * tau * -math.expm1(-h / tau)
+            total += e * e * tau / 2 * -math.expm1(-2 * h / tau)
+            y0 = u + e * math.exp(-h / tau)
+        expected.append(total / (tpf * dt))
+    np.testing.assert_allclose(squares, expected, rtol=0, atol=1e-12)
+
+
+def test_carrier_ripple_power_equals_the_square_wave_fourier_series():
+    """A 50 % two-level PWM is a +-V square wave at f_c: odd harmonics m of amplitude
+    4 V / (pi m) (Fourier series, any signals text). In steady state the frame mean holds only
+    the DC (zero) and the mean square the whole output, so the within-frame variance is the
+    ripple power sum_m (4 V |H(m f_c)| / (pi m))^2 / 2 exactly; the sum over m < 2001 is
+    checked to 1e-6 relative (the LC's tail beyond is below 1e-12 of it)."""
+    filt = lc_filter(22e-6, 680e-9, 8.0)
+    fc, volts = 384e3, 20.0
+    wave, _, _ = pwm_waveform(np.zeros(3000), frame_rate_hz=fc, levels=3, supply_volts=volts)
+    means, squares, _ = filter_waveform_power(filt, wave)
+    ripple = np.mean(squares[2000:] - means[2000:] ** 2)
+    m = np.arange(1, 2001, 2)
+    expected = np.sum((4 * volts * np.abs(filt.response(m * fc)) / (np.pi * m)) ** 2) / 2
+    assert ripple == pytest.approx(expected, rel=1e-6)

@@ -96,6 +96,12 @@ METRIC_UNITS = {
         "dBFS",
         "noise after the reconstruction filter, 20 kHz to the set upper frequency",
     ),
+    "carrier_ripple_dbfs": (
+        "dynamic_range",
+        "dBFS",
+        "rms of the output's ripple inside each modulator frame (the PWM carrier after the "
+        "filter), which the frame-rate output cannot carry",
+    ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
     "thd_n_db_at_minus20_dbfs": ("level_sweep", "dB", "THD+N at -20 dBFS"),
@@ -524,9 +530,15 @@ def _test_dynamic_range(ctx, profile):
     # the spectrum curve; its band power is what measure.aes17.out_of_band_power_dbfs reads.
     spec = averaged_spectrum(a, rate_hz=fm, resolution_hz=_SPECTRUM_RESOLUTION_HZ)
     out["out_of_band_noise_dbfs"] = spec.band_noise_dbfs(_BAND[1], upper)
+    # the ripple inside the frames (above the frame rate: a PWM carrier and its sidebands),
+    # exact from the filter's mean square over every frame, in full-scale units
+    ripple = float(res.stats.ripple_rms()[0]) / res.gain
+    out["carrier_ripple_dbfs"] = _db(ripple * math.sqrt(2.0)) if ripple > 0 else -math.inf
     notes.append(
         f"out-of-band noise: reconstructed output at {fm / 1e6:g} MHz during the -60 dBFS "
-        f"tone, {_BAND[1] / 1e3:g} kHz..{upper / 1e3:g} kHz, {spec.resolution_hz:.0f} Hz bins"
+        f"tone, {_BAND[1] / 1e3:g} kHz..{upper / 1e3:g} kHz, {spec.resolution_hz:.0f} Hz bins; "
+        "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
+        "whole run"
     )
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
@@ -973,6 +985,7 @@ _SCALARS = (
     "dynamic_range_db_a",
     "dynamic_range_db_ccir",
     "out_of_band_noise_dbfs",
+    "carrier_ripple_dbfs",
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",

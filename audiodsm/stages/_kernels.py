@@ -956,9 +956,11 @@ def pwm_dead_time_means(
     gammas,
     wx,
     wu,
+    qs,
     current_w,
     x,
     y,
+    power,
     counts,
 ):
     """PWM with load-current-dependent dead time, run through the filter frame by frame.
@@ -973,12 +975,13 @@ def pwm_dead_time_means(
     level (counted as a pulse lost to dead time). Outside dead intervals a leg follows its
     command. The frame is cut at every command change and dead-interval end; each segment's
     level is ``volts (2 A - 1)`` (half bridge) or ``volts (A - B)``, and it updates the frame
-    mean and the state as in :func:`frame_means_segments`.
+    mean, the frame's mean square and the state as in :func:`frame_power_segments`.
 
     ``command``, ``dead_left``, ``dead_level``, ``leg_level``: (n_legs,) int64 state, updated
     (command level at the end of the last frame, dead ticks still to run at the frame start,
     the level of that dead interval, the leg's actual level); tables over lengths 0..frame;
-    ``x``: (m,) updated; ``y``: (n,) frame means written; ``counts``: (3,) int64 incremented
+    ``x``: (m,) updated; ``y``, ``power``: (n,) frame means and mean squares written;
+    ``counts``: (3,) int64 incremented
     with [pulses lost to dead time, transitions of leg A, transitions of leg B].
     """
     n = codes_a.shape[0]
@@ -1028,6 +1031,7 @@ def pwm_dead_time_means(
             in_dead[leg] = 1 if dead_left[leg] > 0 else 0
             dead_end[leg] = dead_left[leg]
         acc = 0.0
+        sq = 0.0
         t = 0
         while t < frame:
             u_high_a = 0
@@ -1079,6 +1083,12 @@ def pwm_dead_time_means(
             acc += wu[kk] * u
             for q in range(m):
                 acc += wx[kk, q] * x[q]
+            for r in range(m + 1):
+                zr = x[r] if r < m else u
+                row = qs[kk, r, m] * u
+                for q in range(m):
+                    row += qs[kk, r, q] * x[q]
+                sq += zr * row
             for r in range(m):
                 v = gammas[kk, r] * u
                 for q in range(m):
@@ -1088,6 +1098,7 @@ def pwm_dead_time_means(
                 x[r] = tmp[r]
             t = t_next
         y[i] = acc
+        power[i] = sq
         for leg in range(n_legs):
             command[leg] = _leg_high(st, en, leg, 2 * frame - 1)
             if in_dead[leg] == 1 and dead_end[leg] > frame:
@@ -1134,6 +1145,47 @@ def frame_means_segments(levels, ticks, phis, gammas, wx, wu, x, y):
             for r in range(m):
                 x[r] = tmp[r]
         y[i] = acc
+
+
+@njit(cache=True, nogil=True)
+def frame_power_segments(levels, ticks, phis, gammas, wx, wu, qs, x, y, power):
+    """:func:`frame_means_segments`, and the mean square of the output over every frame.
+
+    Per segment of ``k`` ticks, with ``z = [x; u]`` at its start, the frame's mean square gains
+    ``z' Q(k) z`` (``qs``: (F + 1, m + 1, m + 1), the output's squared integral over the
+    segment as a quadratic form, divided by the frame length). The means, the state and their
+    operation order are those of :func:`frame_means_segments`. ``power``: (n,) written.
+    """
+    n = levels.shape[0]
+    s = levels.shape[1]
+    m = x.shape[0]
+    tmp = np.empty(m)
+    for i in range(n):
+        acc = 0.0
+        sq = 0.0
+        for j in range(s):
+            k = ticks[i, j]
+            if k == 0:
+                continue
+            u = levels[i, j]
+            acc += wu[k] * u
+            for q in range(m):
+                acc += wx[k, q] * x[q]
+            for r in range(m + 1):
+                zr = x[r] if r < m else u
+                row = qs[k, r, m] * u
+                for q in range(m):
+                    row += qs[k, r, q] * x[q]
+                sq += zr * row
+            for r in range(m):
+                v = gammas[k, r] * u
+                for q in range(m):
+                    v += phis[k, r, q] * x[q]
+                tmp[r] = v
+            for r in range(m):
+                x[r] = tmp[r]
+        y[i] = acc
+        power[i] = sq
 
 
 @njit(cache=True, nogil=True)

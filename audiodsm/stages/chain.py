@@ -108,6 +108,11 @@ class ChainStats:
         bridge leg, averaged over the legs).
     output_clipped : ndarray of int
         Listening samples beyond ±1.0 (clipped only when written to an integer file).
+    ripple_energy, ripple_frames : ndarray
+        Only counted while ``"analog"`` is kept: the sum over frames of the reconstructed
+        output's power inside each frame that the frame means do not carry (its mean square
+        minus its squared mean, in volts squared: a PWM carrier's ripple after the filter),
+        and the number of frames summed.
     """
 
     input_frames: int
@@ -118,11 +123,20 @@ class ChainStats:
     stretched_pulses: np.ndarray
     switching_events: np.ndarray
     output_clipped: np.ndarray
+    ripple_energy: np.ndarray | None = None
+    ripple_frames: np.ndarray | None = None
 
     def switching_rate_hz(self, rate_hz: float) -> np.ndarray:
         """Average switching events per second, given the input rate."""
         seconds = self.input_frames / float(rate_hz)
         return self.switching_events / seconds if seconds > 0 else self.switching_events * 0.0
+
+    def ripple_rms(self) -> np.ndarray:
+        """Rms of the in-frame ripple per channel, in volts (NaN where none was counted)."""
+        if self.ripple_energy is None or self.ripple_frames is None:
+            return np.full(len(self.overload_count), np.nan)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.sqrt(self.ripple_energy / self.ripple_frames)
 
 
 @dataclass(frozen=True)
@@ -335,7 +349,8 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
 def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
     """PWM with load-current-dependent dead time and the LC filter, in one loop.
 
-    A function ``(y, state) -> (frame means, (dropped, stretched), state)``: the leg voltage
+    A function ``(y, state) -> (frame means, frame mean squares, (dropped, stretched),
+    state)``: the leg voltage
     during each dead interval follows the sign of the filter's inductor current, so the output
     stage cannot run ahead of the filter (see
     :func:`~audiodsm.stages.reconstruct.filter_pwm_with_dead_time`).
@@ -345,7 +360,7 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
     out = profile.output
 
     def pwm_dead_time(y, state):
-        means, stats, state = filter_pwm_with_dead_time(
+        means, squares, stats, state = filter_pwm_with_dead_time(
             filt,
             y,
             frame_rate_hz=frame_rate_hz,
@@ -361,7 +376,7 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
             supply_volts=out.full_scale_volts,
             state=state,
         )
-        return means, (stats.dropped_pulses, stats.stretched_pulses), state
+        return means, squares, (stats.dropped_pulses, stats.stretched_pulses), state
 
     return pwm_dead_time
 
@@ -638,20 +653,32 @@ class Chain:
             stretched_pulses=zeros_i,
             switching_events=np.zeros(c),
             output_clipped=zeros_i,
+            ripple_energy=np.zeros(c),
+            ripple_frames=zeros_i,
         )
         per = _ChannelState()
         return ChainState(channels=(per,) * c, stats=stats, to_skip=int(skip))
 
     # -- one channel ---------------------------------------------------------------------------
 
-    def _reconstruct(self, wf, fir_state, filt_state):
-        """Semi-digital FIR (on one-segment waveforms) and the analog filter."""
-        from audiodsm.stages.reconstruct import filter_waveform
+    def _reconstruct(self, wf, fir_state, filt_state, ripple=None):
+        """Semi-digital FIR (on one-segment waveforms) and the analog filter.
+
+        With a list as ``ripple``, the frames' in-frame ripple energy (volts squared, summed)
+        is appended to it.
+        """
+        from audiodsm.stages.reconstruct import filter_waveform, filter_waveform_power
 
         if self.fir is not None:
             wf, fir_state = self.fir.process(wf, fir_state)
         if self.analog_filter is None:
             out = _mean_level(wf)
+            if ripple is not None:
+                squares = (wf.levels * wf.levels * wf.ticks).sum(axis=1) / wf.ticks_per_frame
+                ripple.append(float(np.sum(np.maximum(squares - out * out, 0.0))))
+        elif ripple is not None:
+            out, squares, filt_state = filter_waveform_power(self.analog_filter, wf, filt_state)
+            ripple.append(float(np.sum(np.maximum(squares - out * out, 0.0))))
         else:
             out, filt_state = filter_waveform(self.analog_filter, wf, filt_state)
         return out, fir_state, filt_state
@@ -671,6 +698,7 @@ class Chain:
             merged[name] = None if parts[0] is None else np.concatenate(parts)
         for name in ("dropped", "stretched"):
             merged[name] = sum(o[name] for o in outs)
+        merged["ripple"] = tuple(map(sum, zip(*(o["ripple"] for o in outs), strict=True)))
         switches = [o["switches"] for o in outs]
         merged["switches"] = None if switches[0] is None else sum(switches)
         merged["seconds"] = tuple(map(sum, zip(*(o["seconds"] for o in outs), strict=True)))
@@ -685,9 +713,12 @@ class Chain:
         t1 = clock()
         y, mod_s = self.modulator.run(xu, st.modulator)
         t2 = clock()
+        ripple = [] if "analog" in keep else None
         if self._pwm_dead_time is not None:  # output stage and filter in one loop
-            analog, (dropped, stretched), out_s = self._pwm_dead_time(y, st.output)
+            analog, squares, (dropped, stretched), out_s = self._pwm_dead_time(y, st.output)
             wf, fir_s, filt_s = None, st.fir, st.analog
+            if ripple is not None:
+                ripple.append(float(np.sum(np.maximum(squares - analog * analog, 0.0))))
         else:
             wf, (dropped, stretched), out_s = self._waveform(y, st.output)
         prev = st.last_level
@@ -701,7 +732,7 @@ class Chain:
             switches = 0
         t3 = clock()
         if wf is not None:
-            analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog)
+            analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
         t4 = clock()
         # the decimator is linear: calibrate after it, on 1/OSR as many samples
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
@@ -728,6 +759,7 @@ class Chain:
             "dropped": dropped,
             "stretched": stretched,
             "switches": switches,
+            "ripple": (sum(ripple), y.size) if ripple is not None else (0.0, 0),
             "seconds": (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4, t6 - t5),
         }
         return out, new
@@ -872,6 +904,8 @@ class Chain:
             stretched_pulses=stats.stretched_pulses + np.array([o["stretched"] for o in outs]),
             switching_events=switching,
             output_clipped=stats.output_clipped + (np.abs(listening) > 1.0).sum(axis=0),
+            ripple_energy=stats.ripple_energy + np.array([o["ripple"][0] for o in outs]),
+            ripple_frames=stats.ripple_frames + np.array([o["ripple"][1] for o in outs]),
         )
         block = ChainBlock(
             listening=listening,

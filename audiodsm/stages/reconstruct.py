@@ -38,6 +38,7 @@ __all__ = [
     "FilterState",
     "filter_waveform",
     "filter_waveform_ticks",
+    "filter_waveform_power",
     "DeadTimeState",
     "filter_pwm_with_dead_time",
     "RippleReport",
@@ -408,6 +409,7 @@ class _Model:
 
 _MODELS: dict[bytes, _Model] = {}
 _TABLES: dict[tuple, tuple] = {}
+_POWER_TABLES: dict[tuple, np.ndarray] = {}
 
 
 def _model(filt: AnalogFilter) -> _Model:
@@ -503,6 +505,40 @@ def _tables(model: _Model, dt: float, frame_ticks: int):
         _TABLES.clear()
     _TABLES[tkey] = tables
     return tables
+
+
+def _power_tables(model: _Model, dt: float, frame_ticks: int) -> np.ndarray:
+    """``Q(k)`` for every k = 0..frame_ticks: a segment's share of the frame's mean square.
+
+    With ``z = [x0; u]`` at the segment start, the output over the segment is
+    ``y(t) = H expm(F t) z`` with ``F = [[A, B], [0, 0]]`` and ``H = [C, D]``, so its squared
+    integral is ``z' (int_0^h expm(F' t) H' H expm(F t) dt) z``. The integral is Van Loan's:
+    with ``expm([[-F', H' H], [0, F]] h) = [[E11, E12], [0, E22]]`` it equals ``E22' E12``.
+    Divided by the frame length. Cached like the other tables.
+    """
+    tkey = (model.key, dt, frame_ticks)
+    hit = _POWER_TABLES.get(tkey)
+    if hit is not None:
+        return hit
+    m = model.a.shape[0]
+    f = np.zeros((m + 1, m + 1))
+    f[:m, :m] = model.a
+    f[:m, m] = model.b
+    h = np.append(model.c, model.d)[None, :]
+    big = np.zeros((2 * (m + 1), 2 * (m + 1)))
+    big[: m + 1, : m + 1] = -f.T
+    big[: m + 1, m + 1 :] = h.T @ h
+    big[m + 1 :, m + 1 :] = f
+    lengths = np.arange(frame_ticks + 1, dtype=np.float64) * dt
+    e = scipy.linalg.expm(big[None, :, :] * lengths[:, None, None])
+    e12 = e[:, : m + 1, m + 1 :]
+    e22 = e[:, m + 1 :, m + 1 :]
+    q = e22.transpose(0, 2, 1) @ e12 / (frame_ticks * dt)
+    q = np.ascontiguousarray(0.5 * (q + q.transpose(0, 2, 1)))  # symmetric to rounding
+    if len(_POWER_TABLES) > 64:
+        _POWER_TABLES.clear()
+    _POWER_TABLES[tkey] = q
+    return q
 
 
 @dataclass(frozen=True, eq=False)
@@ -666,6 +702,53 @@ def filter_waveform_ticks(
     return filter_waveform(filt, per_tick, state)
 
 
+def filter_waveform_power(
+    filt: AnalogFilter, waveform: PulseWaveform, state: FilterState | None = None
+) -> tuple[np.ndarray, np.ndarray, FilterState]:
+    """Like :func:`filter_waveform`, and also the mean square of the output over every frame.
+
+    Returns
+    -------
+    means : ndarray, shape (n_frames,)
+        Exactly the values :func:`filter_waveform` returns.
+    mean_squares : ndarray, shape (n_frames,)
+        ``(1 / T) int y(t)^2 dt`` over every frame, exact for the piecewise-constant input
+        (:func:`_power_tables`). ``mean_squares - means**2`` is the power of what moves inside
+        each frame, which the frame means cannot carry: a PWM carrier's ripple after the
+        filter.
+    state : FilterState
+
+    Notes
+    -----
+    Frames of up to ``DEAD_TIME_MAX_FRAME_TICKS`` ticks (every segment length is tabulated).
+
+    References
+    ----------
+    .. [1] C. Van Loan, "Computing integrals involving the matrix exponential", IEEE Trans.
+       Automatic Control 23(3), 1978.
+    """
+    if not isinstance(filt, AnalogFilter):
+        raise ParameterError("filt", type(filt).__name__, "an AnalogFilter")
+    if not isinstance(waveform, PulseWaveform):
+        raise ParameterError("waveform", type(waveform).__name__, "a PulseWaveform")
+    tpf = waveform.ticks_per_frame
+    if tpf > DEAD_TIME_MAX_FRAME_TICKS:
+        raise ParameterError(
+            "waveform.ticks_per_frame", tpf, f"at most {DEAD_TIME_MAX_FRAME_TICKS}"
+        )
+    model = _model(filt)
+    x = _check_state(state, model, model.a.shape[0])
+    dt = 1.0 / (waveform.frame_rate_hz * tpf)
+    phis, gammas, wx, wu = _tables(model, dt, tpf)
+    qs = _power_tables(model, dt, tpf)
+    y = np.empty(waveform.n_frames)
+    power = np.empty(waveform.n_frames)
+    _kernels.frame_power_segments(
+        waveform.levels, waveform.ticks, phis, gammas, wx, wu, qs, x, y, power
+    )
+    return y, power, _new_state(x, model)
+
+
 # ---------------------------------------------------------------------------------------------
 # PWM whose dead time follows the load current: output stage and filter in one loop
 # ---------------------------------------------------------------------------------------------
@@ -715,7 +798,7 @@ def filter_pwm_with_dead_time(
     min_pulse_action: str = "drop",
     supply_volts: float = 1.0,
     state: DeadTimeState | None = None,
-) -> tuple[np.ndarray, PwmStats, DeadTimeState]:
+) -> tuple[np.ndarray, np.ndarray, PwmStats, DeadTimeState]:
     """PWM with dead time that follows the load current, through the filter: frame means.
 
     The PWM settings are those of :func:`~audiodsm.stages.output_stage.pwm_waveform`. Dead
@@ -746,6 +829,8 @@ def filter_pwm_with_dead_time(
     -------
     means : ndarray, shape (n,)
         The filter output's mean over every frame (as :func:`filter_waveform`).
+    mean_squares : ndarray, shape (n,)
+        Its mean square over every frame (as :func:`filter_waveform_power`).
     stats : PwmStats
         Counts for this block (``pulses_lost_to_dead_time``: command changes that fell inside
         a dead interval, i.e. pulses shorter than the dead time).
@@ -811,8 +896,10 @@ def filter_pwm_with_dead_time(
     command, dead_left, dead_level, leg_level = (np.array(v, dtype=np.int64) for v in per_leg)
     dt = 1.0 / (plan.rate * plan.frame)
     phis, gammas, wx, wu = _tables(model, dt, plan.frame)
+    qs = _power_tables(model, dt, plan.frame)
     current_w = np.ascontiguousarray(model.to_physical[filt.current_index])
     means = np.empty(plan.n)
+    power = np.empty(plan.n)
     counts = np.zeros(3, dtype=np.int64)
     _kernels.pwm_dead_time_means(
         plan.codes_a,
@@ -833,9 +920,11 @@ def filter_pwm_with_dead_time(
         gammas,
         wx,
         wu,
+        qs,
         current_w,
         x,
         means,
+        power,
         counts,
     )
     stats, totals = _out._pwm_counts(
@@ -849,7 +938,7 @@ def filter_pwm_with_dead_time(
         tuple(int(v) for v in leg_level),
         totals,
     )
-    return means, stats, new_state
+    return means, power, stats, new_state
 
 
 # ---------------------------------------------------------------------------------------------
