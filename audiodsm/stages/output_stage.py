@@ -549,7 +549,10 @@ def pwm_waveform(
     dead_time_ticks : int
         Every rising edge of every leg is delayed by this many ticks (the switch turns on only
         after its command has been high that long; a shorter pulse vanishes). During the delay
-        the leg is low. At most the frame length.
+        the leg is low: the waveform of a bridge whose leg currents always flow out of the legs.
+        For dead time that follows the real load current use
+        :func:`audiodsm.stages.reconstruct.filter_pwm_with_dead_time` (the chain does). At most
+        the frame length.
     min_pulse_ticks : int
         Shortest pulse the power stage makes, in ticks. Applied per frame and leg command to
         the high time and to the low time within the frame, before dead time. At most half
@@ -576,9 +579,10 @@ def pwm_waveform(
     Notes
     -----
     The frame mean is ``y * supply_volts`` exactly when there is no dead time and no pulse
-    was dropped or stretched. Dead time is modelled as a plain turn-on delay of each leg (the
-    output during the dead interval really depends on the load current's direction); see
-    docs/outputs.md.
+    was dropped or stretched. Dead time here is a plain turn-on delay of each leg; in a real
+    bridge the leg during the dead interval follows the load current's direction, which
+    needs the filter's state: :func:`audiodsm.stages.reconstruct.filter_pwm_with_dead_time`
+    models that (see docs/outputs.md).
 
     References
     ----------
