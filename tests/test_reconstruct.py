@@ -569,3 +569,15 @@ def test_carrier_ripple_power_equals_the_square_wave_fourier_series():
     m = np.arange(1, 2001, 2)
     expected = np.sum((4 * volts * np.abs(filt.response(m * fc)) / (np.pi * m)) ** 2) / 2
     assert ripple == pytest.approx(expected, rel=1e-6)
+
+
+def test_mean_squares_on_fine_tick_grids_use_only_the_lengths_present(monkeypatch, rng):
+    """As filter_waveform: above the full-table limit the matrices come for the lengths
+    present; each expm is computed on its own matrix either way, so the numbers are the same."""
+    filt = FILTERS["butter3"]
+    wave = _pulse_train(rng, 200, 64)
+    full = filter_waveform_power(filt, wave)
+    monkeypatch.setattr(rec, "_FULL_TABLE_MAX", 8)
+    sparse = filter_waveform_power(filt, wave)
+    assert np.array_equal(full[0], sparse[0]) and np.array_equal(full[1], sparse[1])
+    assert np.array_equal(full[0], filter_waveform(filt, wave)[0])

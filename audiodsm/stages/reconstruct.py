@@ -520,6 +520,15 @@ def _power_tables(model: _Model, dt: float, frame_ticks: int) -> np.ndarray:
     hit = _POWER_TABLES.get(tkey)
     if hit is not None:
         return hit
+    q = _power_matrices(model, dt, np.arange(frame_ticks + 1), frame_ticks)
+    if len(_POWER_TABLES) > 64:
+        _POWER_TABLES.clear()
+    _POWER_TABLES[tkey] = q
+    return q
+
+
+def _power_matrices(model: _Model, dt: float, lengths: np.ndarray, frame_ticks: int):
+    """``Q(k)`` of :func:`_power_tables` for the given segment lengths (not cached)."""
     m = model.a.shape[0]
     f = np.zeros((m + 1, m + 1))
     f[:m, :m] = model.a
@@ -529,16 +538,12 @@ def _power_tables(model: _Model, dt: float, frame_ticks: int) -> np.ndarray:
     big[: m + 1, : m + 1] = -f.T
     big[: m + 1, m + 1 :] = h.T @ h
     big[m + 1 :, m + 1 :] = f
-    lengths = np.arange(frame_ticks + 1, dtype=np.float64) * dt
-    e = scipy.linalg.expm(big[None, :, :] * lengths[:, None, None])
+    h_s = lengths.astype(np.float64) * dt
+    e = scipy.linalg.expm(big[None, :, :] * h_s[:, None, None])
     e12 = e[:, : m + 1, m + 1 :]
     e22 = e[:, m + 1 :, m + 1 :]
     q = e22.transpose(0, 2, 1) @ e12 / (frame_ticks * dt)
-    q = np.ascontiguousarray(0.5 * (q + q.transpose(0, 2, 1)))  # symmetric to rounding
-    if len(_POWER_TABLES) > 64:
-        _POWER_TABLES.clear()
-    _POWER_TABLES[tkey] = q
-    return q
+    return np.ascontiguousarray(0.5 * (q + q.transpose(0, 2, 1)))  # symmetric to rounding
 
 
 @dataclass(frozen=True, eq=False)
@@ -718,10 +723,6 @@ def filter_waveform_power(
         filter.
     state : FilterState
 
-    Notes
-    -----
-    Frames of up to ``DEAD_TIME_MAX_FRAME_TICKS`` ticks (every segment length is tabulated).
-
     References
     ----------
     .. [1] C. Van Loan, "Computing integrals involving the matrix exponential", IEEE Trans.
@@ -732,20 +733,21 @@ def filter_waveform_power(
     if not isinstance(waveform, PulseWaveform):
         raise ParameterError("waveform", type(waveform).__name__, "a PulseWaveform")
     tpf = waveform.ticks_per_frame
-    if tpf > DEAD_TIME_MAX_FRAME_TICKS:
-        raise ParameterError(
-            "waveform.ticks_per_frame", tpf, f"at most {DEAD_TIME_MAX_FRAME_TICKS}"
-        )
     model = _model(filt)
     x = _check_state(state, model, model.a.shape[0])
     dt = 1.0 / (waveform.frame_rate_hz * tpf)
-    phis, gammas, wx, wu = _tables(model, dt, tpf)
-    qs = _power_tables(model, dt, tpf)
+    if tpf <= _FULL_TABLE_MAX:
+        phis, gammas, wx, wu = _tables(model, dt, tpf)
+        qs = _power_tables(model, dt, tpf)
+        index = waveform.ticks
+    else:  # as filter_waveform: only the lengths present, index 0 the empty segment
+        lengths = np.unique(np.concatenate([[0], waveform.ticks.ravel()]))
+        phis, gammas, wx, wu = _expm_tables(model, dt, lengths, tpf)
+        qs = _power_matrices(model, dt, lengths, tpf)
+        index = np.searchsorted(lengths, waveform.ticks)
     y = np.empty(waveform.n_frames)
     power = np.empty(waveform.n_frames)
-    _kernels.frame_power_segments(
-        waveform.levels, waveform.ticks, phis, gammas, wx, wu, qs, x, y, power
-    )
+    _kernels.frame_power_segments(waveform.levels, index, phis, gammas, wx, wu, qs, x, y, power)
     return y, power, _new_state(x, model)
 
 
