@@ -20,7 +20,8 @@ Output stages (``audiodsm.stages.output_stage``)
     CodeTextWriter, write_code_text, read_code_text
 Reconstruction (``audiodsm.stages.reconstruct``)
     AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
-    filter_waveform, filter_waveform_ticks, FilterState, out_of_band_ripple, waveform_ripple,
+    filter_waveform, filter_waveform_ticks, filter_waveform_power, FilterState,
+    filter_pwm_with_dead_time, DeadTimeState, out_of_band_ripple, waveform_ripple,
     RippleReport, filter_report, FilterReport
 Chain (``audiodsm.stages.chain``)
     Chain, ChainResult, run_chain
@@ -132,6 +133,9 @@ _PUBLIC = {
     "semi_digital_fir": "audiodsm.stages.reconstruct",
     "filter_waveform": "audiodsm.stages.reconstruct",
     "filter_waveform_ticks": "audiodsm.stages.reconstruct",
+    "filter_waveform_power": "audiodsm.stages.reconstruct",
+    "filter_pwm_with_dead_time": "audiodsm.stages.reconstruct",
+    "DeadTimeState": "audiodsm.stages.reconstruct",
     "FilterState": "audiodsm.stages.reconstruct",
     "out_of_band_ripple": "audiodsm.stages.reconstruct",
     "waveform_ripple": "audiodsm.stages.reconstruct",

@@ -365,7 +365,8 @@ class OutputStageSettings:
         "an integer from 0 to 4096",
         _int_range(0, 4096),
         only="pwm",
-        doc="Delay of every rising edge, in ticks (counter steps / tick_subdivision).",
+        doc="Dead time after every command edge of every leg, in ticks (counter steps / "
+        "tick_subdivision); the leg then follows the inductor current (needs an LC filter).",
     )
     min_pulse_ticks: int = _key(
         0,
@@ -746,6 +747,14 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
             "output.counter_steps",
             f"got {out.counter_steps}; expected a multiple of modulator.levels - 1 = "
             f"{mod.levels - 1} (every level an exact pulse width)",
+        )
+    if out.kind == "pwm" and out.dead_time_ticks > 0 and rec.kind != "lc":
+        raise ProfileError(
+            path,
+            "output.dead_time_ticks",
+            f"got {out.dead_time_ticks} with reconstruction.kind = {rec.kind!r}; dead time needs "
+            "reconstruction.kind = 'lc' (the leg voltage in a dead interval follows the "
+            "inductor current)",
         )
     if rec.fir_taps and out.kind == "pwm":
         raise ProfileError(

@@ -10,7 +10,12 @@ from __future__ import annotations
 import numpy as np
 
 from audiodsm.stages.output_stage import pdm_waveform, pwm_waveform
-from audiodsm.stages.reconstruct import analog_prototype, filter_waveform, lc_filter
+from audiodsm.stages.reconstruct import (
+    analog_prototype,
+    filter_pwm_with_dead_time,
+    filter_waveform,
+    lc_filter,
+)
 from benchmarks._timing import best_seconds
 
 RATE = 3.072e6
@@ -48,4 +53,18 @@ def run():
         "segments_per_frame": pwave.n_segments,
         "waveform_frames_per_s": m / t_pwm,
         "filter_frames_per_s": m / t_lc,
+    }
+
+    # the half bridge whose dead time follows the inductor current: stage and filter in one loop
+    y9 = -1.0 + 2.0 * rng.integers(0, 9, m) / 8
+    dead_opts = dict(
+        frame_rate_hz=768e3, levels=9, bridge="half", tick_subdivision=4, dead_time_ticks=1
+    )
+    filter_pwm_with_dead_time(lc, y9[:10], **dead_opts)  # compile
+    t_dead = best_seconds(lambda: filter_pwm_with_dead_time(lc, y9, **dead_opts))
+    yield {
+        "bench": "pwm_half_bridge_dead_time_lc",
+        "frames": m,
+        "frames_per_s": m / t_dead,
+        "realtime_factor_per_channel_at_768kHz": m / t_dead / 768e3,
     }

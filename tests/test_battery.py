@@ -356,6 +356,8 @@ def test_digitally_silent_idle_output_reports_the_numeric_floor():
     assert 20 * math.log10(2.0**-53) < NUMERIC_FLOOR_DBFS
     for key in ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir"):
         assert result.metrics[key] == NUMERIC_FLOOR_DBFS
+    # and its DC is exactly zero: also reported at the floor, not as -inf
+    assert result.metrics["dc_offset_dbfs"] == NUMERIC_FLOOR_DBFS
     assert any("digitally silent" in note for note in result.notes)
 
 
@@ -384,3 +386,9 @@ def test_a_dithered_idle_output_is_not_floored():
     expected = 10 * np.log10(step**2 / 4 * shaped / chain.input_scale**2 / 0.5)
     assert result.metrics["idle_noise_dbfs"] == pytest.approx(expected, abs=0.5)
     assert not any("digitally silent" in note for note in result.notes)
+    # The NTF's zeros at DC (zero_layout = "dc") make the loop's output mean follow its
+    # input mean (zero) up to its bounded states over the run length (Schreier & Temes 2005,
+    # ch. 2, the noise-shaping loop's DC behaviour): the DC reading is a real number, far below
+    # the idle noise and the AES17 level of a DC of 1e-4 of full scale (-77 dBFS).
+    dc = result.metrics["dc_offset_dbfs"]
+    assert NUMERIC_FLOOR_DBFS < dc < 20 * math.log10(1e-4 * math.sqrt(2))

@@ -1,5 +1,6 @@
 import dataclasses
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -98,6 +99,8 @@ series_ohm = 0.1
 """
 )
 
+PWM_NO_DEAD_TIME = replace(PWM_DEAD_TIME, output=replace(PWM_DEAD_TIME.output, dead_time_ticks=0))
+
 CHEBY_FIR = parse_profile(
     """
 name = "cheby-fir"
@@ -136,11 +139,11 @@ def fit_tone(y, rate, freq):
         (PDM, None),
         (NRZ_LC, None),
         (PWM_BRIDGE, None),
-        (PWM_DEAD_TIME, None),
+        (PWM_NO_DEAD_TIME, None),
         (CHEBY_FIR, 96000),
         (PDM, 44100),
     ],
-    ids=["pdm", "nrz-lc", "pwm-bridge", "pwm-dead-time", "cheby-fir-96k", "pdm-44k1"],
+    ids=["pdm", "nrz-lc", "pwm-bridge", "pwm-no-dead-time", "cheby-fir-96k", "pdm-44k1"],
 )
 def test_997hz_at_minus_1_dbfs_comes_out_at_minus_1_dbfs(profile, listen_rate):
     # AES17 level definition: 0 dBFS = the rms of a full-scale sine, so a -1 dBFS tone has a
@@ -495,3 +498,64 @@ def test_power_of_two_scaling_leaves_the_chain_bits_identical():
         blocks.append(block)
     np.testing.assert_array_equal(blocks[1].modulator, blocks[0].modulator)
     np.testing.assert_allclose(blocks[1].listening, blocks[0].listening, rtol=0, atol=1e-14)
+
+
+def test_dead_time_loss_is_not_calibrated_away():
+    """The calibration reads the stage without dead time, so the dead-time error stays in the
+    output. Textbook inverter analysis (Mohan, Undeland & Robbins, "Power Electronics", Wiley
+    2003, blanking time): with a load current that changes sign cleanly the error is a square
+    wave of amplitude a = (bridge step) t_d / T opposing the current, whose fundamental
+    4 a / pi (Fourier series of a square wave) comes off the tone's peak at the bridge. Here a
+    two-level full bridge steps by 2 V and t_d / T = 1 / 64: the -1 dBFS tone comes out near
+    -1 + 20 log10(1 - (4 a / pi) / peak), a little less low because frames at the end codes
+    have no edges and near the current's zero crossings the ripple current makes switching
+    soft (0.1 dB allowed)."""
+    from audiodsm.stages.chain import Chain
+
+    x = tone(-1.0, 0.25)
+    res = run_chain(PWM_DEAD_TIME, x, rate_hz=RATE)
+    cut = int(0.03 * RATE)
+    amp, _ = fit_tone(res.listening[cut:-cut, 0], RATE, 997.0)
+    chain = Chain.from_profile(PWM_DEAD_TIME, RATE, 1)
+    volts = PWM_DEAD_TIME.output.full_scale_volts
+    frame_ticks = (PWM_DEAD_TIME.modulator.levels - 1) * PWM_DEAD_TIME.output.tick_subdivision
+    a = 2 * volts * PWM_DEAD_TIME.output.dead_time_ticks / frame_ticks
+    peak = 10 ** (-1 / 20) * chain.input_scale * chain.stage_gain
+    predicted = -1.0 + 20 * math.log10(1 - (4 / math.pi) * a / peak)
+    level = 20 * math.log10(amp)
+    assert abs(level - predicted) <= 0.1, (level, predicted)
+    assert level < -1.3
+
+
+def test_pwm_carrier_ripple_is_counted_with_the_analog_output():
+    """An undithered 9-level loop idles on its zero level, so a two-level PWM stage makes a
+    50 % square wave of +-V at the modulator rate f_c. After the LC filter its ripple power is
+    the square wave's Fourier series through the filter, sum over odd m of
+    (4 V |H(m f_c)| / (pi m))^2 / 2 (any signals text). The chain counts it (with "analog"
+    kept) although the frame-rate output carries none of it; 1 % covers the start-up."""
+    profile = parse_profile(
+        """
+name = "pwm-idle-ripple"
+[modulator]
+order = 2
+levels = 9
+zero_layout = "dc"
+[output]
+kind = "pwm"
+full_scale_volts = 2.0
+[reconstruction]
+kind = "lc"
+"""
+    )
+    res = run_chain(profile, np.zeros(4800), rate_hz=RATE, keep=("listening", "analog"))
+    chain = Chain.from_profile(profile, RATE, 1)
+    fc = res.modulator_rate_hz
+    m = np.arange(1, 2001, 2)
+    h = np.abs(chain.analog_filter.response(m * fc))
+    expected = math.sqrt(np.sum((4 * 2.0 * h / (np.pi * m)) ** 2) / 2)
+    assert res.stats.ripple_rms()[0] == pytest.approx(expected, rel=0.01)
+    # the frame-rate output itself holds no carrier: it sits at the (zero) frame mean
+    assert np.max(np.abs(res.analog[2000:, 0])) < 1e-6 * expected
+    # without "analog" kept nothing is counted
+    quiet = run_chain(profile, np.zeros(480), rate_hz=RATE)
+    assert quiet.stats.ripple_frames[0] == 0

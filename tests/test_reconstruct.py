@@ -15,6 +15,7 @@ from audiodsm.stages.reconstruct import (
     analog_prototype,
     filter_report,
     filter_waveform,
+    filter_waveform_power,
     filter_waveform_ticks,
     lc_filter,
     out_of_band_ripple,
@@ -25,12 +26,30 @@ from audiodsm.stages.reconstruct import (
 RATE = 3.072e6  # 48 kHz x 64
 
 
-def _discrete_reference(filt, u, dt):
-    """scipy.signal.cont2discrete(method="zoh") + dlsim: y[n] is C x[n] + D u[n] *before* the
-    update, so the value at the end of sample n is the reference's y[n + 1]."""
-    a, b, c, d, _ = ss.cont2discrete((filt.a, filt.b, filt.c, filt.d), dt, method="zoh")
-    _, y, _ = ss.dlsim((a, b, c, d, dt), np.append(u, 0.0))
-    return y[1:, 0]
+def _integrating_system(filt):
+    """The filter with an integrator on its output: states [x, xi], xi' = C x + D u, output xi.
+
+    Driving it with scipy.signal.lsim (zero-order hold) gives the running integral of the
+    filter output, so the frame means are the differences of xi at frame ends over the frame
+    length: an independent route to the frame mean through scipy's own discretization.
+    """
+    m = filt.order
+    a = np.zeros((m + 1, m + 1))
+    a[:m, :m] = filt.a
+    a[m, :m] = filt.c[0]
+    b = np.vstack([filt.b, filt.d])
+    c = np.zeros((1, m + 1))
+    c[0, m] = 1.0
+    return a, b, c, np.zeros((1, 1))
+
+
+def _mean_reference(filt, u_ticks, tick_s, ticks_per_frame):
+    """Frame means of the filter output for a tick-held input (scipy.signal.cont2discrete
+    'zoh' of the integrating system, stepped tick by tick with dlsim)."""
+    sys = ss.cont2discrete(_integrating_system(filt), tick_s, method="zoh")
+    _, xi, _ = ss.dlsim(sys, np.append(u_ticks, 0.0))
+    ends = xi[::ticks_per_frame, 0]
+    return np.diff(ends) / (ticks_per_frame * tick_s)
 
 
 # a critically damped LC (Q = 0.5, a repeated real pole) has no usable modal form: it takes
@@ -50,9 +69,9 @@ def test_one_segment_matches_scipy_cont2discrete(name, rng):
     bits = np.where(rng.random(400) < 0.5, -1.0, 1.0)
     for u in (step, bits):
         y, _ = filter_waveform(filt, pdm_waveform(u, frame_rate_hz=RATE))
-        ref = _discrete_reference(filt, u, 1.0 / RATE)
-        # scipy.signal.cont2discrete('zoh') + dlsim: the issue's tolerance 1e-9 (outputs are
-        # O(1) here; both sides are exact ZOH up to rounding in expm).
+        ref = _mean_reference(filt, u, 1.0 / RATE, 1)
+        # scipy.signal.cont2discrete('zoh') + dlsim of the filter with an output integrator:
+        # tolerance 1e-9 (outputs are O(1) here; both sides are exact ZOH up to rounding).
         np.testing.assert_allclose(y, ref, rtol=0, atol=1e-9)
 
 
@@ -81,12 +100,15 @@ def test_multi_segment_matches_scipy_lsim(name, rng):
     dt = 1.0 / wave.tick_rate_hz
     t = np.arange(u.size + 1) * dt
     # scipy.signal.lsim with interp=False holds each input sample (zero-order hold), exactly
-    # the piecewise-constant waveform; its output at t = (n + 1) T is the frame-end value.
-    _, y_ref, _ = ss.lsim((filt.a, filt.b, filt.c, filt.d), np.append(u, 0.0), t, interp=False)
-    np.testing.assert_allclose(y, y_ref[tpf::tpf], rtol=0, atol=1e-9)
-    # per-tick variant: every tick end
+    # the piecewise-constant waveform; run on the filter with an output integrator, the
+    # integral's differences at frame ends over the frame length are the frame means.
+    _, xi, _ = ss.lsim(_integrating_system(filt), np.append(u, 0.0), t, interp=False)
+    np.testing.assert_allclose(y, np.diff(xi[::tpf]) / (tpf * dt), rtol=0, atol=1e-9)
+    # per-tick variant: the mean over every tick
     y_ticks, _ = filter_waveform_ticks(filt, wave)
-    np.testing.assert_allclose(y_ticks, y_ref[1:], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(y_ticks, np.diff(xi) / dt, rtol=0, atol=1e-9)
+    # and the frame mean is the mean of the frame's tick means
+    np.testing.assert_allclose(y, y_ticks.reshape(-1, tpf).mean(axis=1), rtol=0, atol=1e-12)
 
 
 def test_pwm_step_response_matches_lsim():
@@ -97,9 +119,11 @@ def test_pwm_step_response_matches_lsim():
     )
     y, _ = filter_waveform(filt, wave)
     u = wave.tick_samples()
+    tpf = wave.ticks_per_frame
     t = np.arange(u.size + 1) / wave.tick_rate_hz
-    _, y_ref, _ = ss.lsim((filt.a, filt.b, filt.c, filt.d), np.append(u, 0.0), t, interp=False)
-    np.testing.assert_allclose(y, y_ref[wave.ticks_per_frame :: wave.ticks_per_frame], atol=1e-9)
+    _, xi, _ = ss.lsim(_integrating_system(filt), np.append(u, 0.0), t, interp=False)
+    ref = np.diff(xi[::tpf]) * wave.frame_rate_hz
+    np.testing.assert_allclose(y, ref, atol=1e-9)
 
 
 @pytest.mark.parametrize("name", ["butter3", "lc_critical"])
@@ -161,39 +185,40 @@ def test_physical_state_of_lc_at_rest_after_dc():
 # --- slow twins of the kernels ---------------------------------------------------------------
 
 
-def _slow_segments(levels, ticks, phis, gammas, c, d, x):
+def _slow_segments(levels, ticks, phis, gammas, wx, wu, x):
+    """Slow twin of _kernels.frame_means_segments (same operation order)."""
     x = list(x)
     m = len(x)
     y = []
-    u = 0.0
     for i in range(levels.shape[0]):
+        acc = 0.0
         for j in range(levels.shape[1]):
             k = int(ticks[i, j])
             if k == 0:
                 continue
             u = float(levels[i, j])
+            acc += wu[k] * u
+            for q in range(m):
+                acc += wx[k, q] * x[q]
             new = []
             for r in range(m):
-                acc = gammas[k, r] * u
+                v = gammas[k, r] * u
                 for q in range(m):
-                    acc += phis[k, r, q] * x[q]
-                new.append(acc)
+                    v += phis[k, r, q] * x[q]
+                new.append(v)
             x = new
-        out = d * u
-        for r in range(m):
-            out += c[r] * x[r]
-        y.append(out)
+        y.append(acc)
     return np.array(y), np.array(x)
 
 
-def test_zoh_segments_kernel_equals_slow_twin(rng):
+def test_frame_means_kernel_equals_slow_twin(rng):
     model = rec._model(FILTERS["lc_critical"])
-    phis, gammas = rec._tables(model, 1 / (384e3 * 8), 8)
+    phis, gammas, wx, wu = rec._tables(model, 1 / (384e3 * 8), 8)
     wave = _pulse_train(rng, 40, 8)
     x = np.array([0.1, -0.2])
     y = np.empty(40)
-    ref_y, ref_x = _slow_segments(wave.levels, wave.ticks, phis, gammas, model.c, model.d, x.copy())
-    _kernels.zoh_segments(wave.levels, wave.ticks, phis, gammas, model.c, model.d, x, y)
+    ref_y, ref_x = _slow_segments(wave.levels, wave.ticks, phis, gammas, wx, wu, x.copy())
+    _kernels.frame_means_segments(wave.levels, wave.ticks, phis, gammas, wx, wu, x, y)
     np.testing.assert_array_equal(y, ref_y)
     np.testing.assert_array_equal(x, ref_x)
 
@@ -205,14 +230,14 @@ def test_modal_kernel_equals_dense_twin(order, rng):
     filt = analog_prototype("butterworth", order=order, cutoff_hz=50e3)
     model = rec._model(filt)
     assert model.modal and model.n_real == order % 2
-    phis, gammas = rec._tables(model, 1 / RATE, 1)
+    phis, gammas, wx, wu = rec._tables(model, 1 / RATE, 1)
     u = np.where(rng.random(500) < 0.5, -1.0, 1.0)
     levels = u[:, None].copy()
     ticks = np.ones((500, 1), np.int64)
-    ref_y, ref_x = _slow_segments(levels, ticks, phis, gammas, model.c, model.d, np.zeros(order))
+    ref_y, ref_x = _slow_segments(levels, ticks, phis, gammas, wx, wu, np.zeros(order))
     x = np.zeros(order)
     y = np.empty(500)
-    rec._run_modal(u, model, phis, gammas, x, y)
+    rec._run_modal(u, model, phis, gammas, wx, wu, x, y)
     np.testing.assert_array_equal(y, ref_y)
     np.testing.assert_array_equal(x, ref_x)
 
@@ -377,10 +402,11 @@ def test_carrier_ripple_of_a_square_wave_through_the_lc_filter():
     assert rep.rms_volts == pytest.approx(expected, rel=0.01)
     # AES17 dBFS: relative to the rms of a sine of peak full_scale_volts
     assert rep.rms_dbfs == pytest.approx(20 * math.log10(expected * math.sqrt(2) / volts), abs=0.1)
-    # the frame-end samples alias the carrier to DC: they hide this ripple (why the tick
+    # the frame means average the steady carrier out exactly (the mean of a periodic ripple
+    # over its period is zero): the frame-rate output carries none of it (why the tick
     # variant exists)
     y, _ = filter_waveform(filt, wave)
-    assert out_of_band_ripple(y[750:], rate_hz=fc).rms_volts < 1e-3 * expected
+    assert out_of_band_ripple(y[750:], rate_hz=fc).rms_volts < 1e-9 * expected
 
 
 def test_filter_report_fields():
@@ -409,3 +435,149 @@ def test_bad_parameters_raise_one_line_errors(call, name):
         call()
     assert info.value.name == name
     assert "\n" not in str(info.value)
+
+
+# --- frame means: the output is averaged over every frame, never point-sampled ---------------
+
+
+def test_frame_mean_of_an_rc_driven_by_a_pulse_train_equals_the_closed_form():
+    """Closed form for a first-order RC low-pass (y' = (u - y) / tau), u held at a value over a
+    segment of length h from y0: y(t) = u + (y0 - u) exp(-t / tau), so the segment's integral
+    is u h + (y0 - u) tau (1 - exp(-h / tau)) and it ends at u + (y0 - u) exp(-h / tau)
+    (first-order linear ODE, any circuits or ODE text). Summed per frame and divided by the
+    frame length, the frame means must match filter_waveform to 1e-12."""
+    tau = 3.3e-6
+    rc = AnalogFilter([[-1.0 / tau]], [1.0 / tau], [1.0], 0.0, description="RC")
+    tpf, rate = 12, 200e3
+    dt = 1.0 / (rate * tpf)
+    # a known pulse train: a fixed 4-frame pattern of (level, ticks) segments, repeated
+    pattern = [
+        ([1.0, -1.0, 0.5], [3, 7, 2]),
+        ([-0.25, 1.0, 1.0], [12, 0, 0]),
+        ([0.0, 0.75, -1.0], [1, 10, 1]),
+        ([1.0, -0.5, 0.25], [5, 5, 2]),
+    ]
+    reps = 25
+    levels = np.array([p[0] for p in pattern] * reps)
+    ticks = np.array([p[1] for p in pattern] * reps, dtype=np.int64)
+    wave = PulseWaveform(levels, ticks, tpf, rate)
+    y, _ = filter_waveform(rc, wave)
+    expected = []
+    y0 = 0.0
+    for lv_row, tk_row in zip(levels, ticks, strict=True):
+        area = 0.0
+        for u, k in zip(lv_row, tk_row, strict=True):
+            h = k * dt
+            area += u * h + (y0 - u) * tau * -math.expm1(-h / tau)
+            y0 = u + (y0 - u) * math.exp(-h / tau)
+        expected.append(area / (tpf * dt))
+    np.testing.assert_allclose(y, expected, rtol=0, atol=1e-12)
+    # the one-segment (NRZ) fast path, against the same closed form
+    u = levels[:, 0]
+    y1, _ = filter_waveform(rc, PulseWaveform(u[:, None], np.ones((u.size, 1), np.int64), 1, rate))
+    h, y0, expected = 1.0 / rate, 0.0, []
+    for v in u:
+        expected.append(v + (y0 - v) * tau * -math.expm1(-h / tau) / h)
+        y0 = v + (y0 - v) * math.exp(-h / tau)
+    np.testing.assert_allclose(y1, expected, rtol=0, atol=1e-12)
+
+
+def test_a_carrier_sideband_is_not_aliased_into_the_audio_band(rng):
+    """A case built so that point sampling folds a carrier sideband onto a known in-band
+    frequency. A 50 % two-level carrier at f_c (one frame: low, high, high, low quarters) whose
+    supply carries a ripple 1 + e cos(2 pi f_a t) has, after the LC filter, sidebands at
+    odd k f_c +- f_a and nothing at f_a itself: the tick values s_j r_j, with s = (-1, 1, 1,
+    -1) repeating (DFT bins 0 and 2 of s are zero), have spectral lines only at f_c +- f_a and
+    3 f_c +- f_a modulo 4 f_c (product of line spectra; ZOH of tick values). A sample taken at
+    every frame end takes the sideband f_c - f_a to f_a in full (sampling theorem); the frame
+    mean takes it only scaled by the boxcar's |sinc((f_c - f_a) / f_c)| ~ f_a / f_c.
+    White noise on the levels (rms 0.01) gives a floor near -99 dBFS per 12 Hz bin, well above
+    the boxcar's residual (about -107 dBFS here) and well below the frame-end alias (about
+    -46 dBFS); the project's idle-tone detector (a stated false-alarm rate) must find the line
+    in the frame-end values and none in the means."""
+    from audiodsm.measure.idle_tones import find_idle_tones
+
+    fc, fa, ripple, n = 384e3, 3000.0, 0.5, 192000
+    filt = lc_filter(22e-6, 680e-9, 8.0)
+    j = np.arange(4 * n)
+    r = 1.0 + ripple * np.cos(2 * np.pi * fa * j / (4 * fc))
+    s = np.tile([-1.0, 1.0, 1.0, -1.0], n)
+    levels = s * r
+    clean = PulseWaveform(levels.reshape(n, 4), np.ones((n, 4), np.int64), 4, fc)
+    noisy = PulseWaveform(
+        (levels + 0.01 * rng.standard_normal(4 * n)).reshape(n, 4), clean.ticks, 4, fc
+    )
+    skip = 4000
+    # without noise: the line the frame mean leaves at f_a is below the boxcar's bound
+    # |sinc((f_c - f_a) / f_c)| = sin(pi f_a / f_c) / (pi (1 - f_a / f_c)) times the alias a
+    # frame-end sample takes (both read coherently: 3000 Hz is on a DFT bin of the record)
+    means, _ = filter_waveform(filt, clean)
+    ends = filter_waveform_ticks(filt, clean)[0][3::4]  # mean over the last quarter: ~ a sample
+    k = n - skip
+    bin_fa = round(fa * k / fc)
+    line_mean = abs(np.fft.rfft(means[skip:])[bin_fa])
+    line_end = abs(np.fft.rfft(ends[skip:])[bin_fa])
+    bound = math.sin(math.pi * fa / fc) / (math.pi * (1 - fa / fc))
+    assert line_mean < bound * line_end
+    # with the noise floor: a line in the frame-end values, none in the frame means
+    means, _ = filter_waveform(filt, noisy)
+    frame_end = filter_waveform_ticks(filt, noisy)[0][3::4]
+    near = (fa - 50.0, fa + 50.0)
+    found_end = find_idle_tones(frame_end[skip:], rate_hz=fc, band_hz=(20.0, 20000.0))
+    assert any(near[0] < t.frequency_hz < near[1] for t in found_end.tones)
+    found_mean = find_idle_tones(means[skip:], rate_hz=fc, band_hz=(20.0, 20000.0))
+    assert not any(near[0] < t.frequency_hz < near[1] for t in found_mean.tones)
+
+
+def test_frame_mean_square_of_an_rc_equals_the_closed_form():
+    """Closed form (first-order linear ODE): with y(t) = u + (y0 - u) exp(-t / tau) over a
+    segment of length h, int y^2 = u^2 h + 2 u (y0 - u) tau (1 - exp(-h / tau))
+    + (y0 - u)^2 (tau / 2) (1 - exp(-2 h / tau)). The frame means come out bit for bit as
+    filter_waveform's."""
+    tau = 2.1e-6
+    rc = AnalogFilter([[-1.0 / tau]], [1.0 / tau], [1.0], 0.0, description="RC")
+    tpf, rate = 10, 250e3
+    dt = 1.0 / (rate * tpf)
+    levels = np.array([[1.0, -1.0, 0.5], [0.25, 1.0, -0.75], [-1.0, 0.0, 1.0]] * 30)
+    ticks = np.array([[3, 5, 2], [10, 0, 0], [1, 8, 1]] * 30, dtype=np.int64)
+    wave = PulseWaveform(levels, ticks, tpf, rate)
+    means, squares, _ = filter_waveform_power(rc, wave)
+    assert np.array_equal(means, filter_waveform(rc, wave)[0])
+    expected, y0 = [], 0.0
+    for lv_row, tk_row in zip(levels, ticks, strict=True):
+        total = 0.0
+        for u, k in zip(lv_row, tk_row, strict=True):
+            h, e = k * dt, y0 - u
+            total += u * u * h + 2 * u * e * tau * -math.expm1(-h / tau)
+            total += e * e * tau / 2 * -math.expm1(-2 * h / tau)
+            y0 = u + e * math.exp(-h / tau)
+        expected.append(total / (tpf * dt))
+    np.testing.assert_allclose(squares, expected, rtol=0, atol=1e-12)
+
+
+def test_carrier_ripple_power_equals_the_square_wave_fourier_series():
+    """A 50 % two-level PWM is a +-V square wave at f_c: odd harmonics m of amplitude
+    4 V / (pi m) (Fourier series, any signals text). In steady state the frame mean holds only
+    the DC (zero) and the mean square the whole output, so the within-frame variance is the
+    ripple power sum_m (4 V |H(m f_c)| / (pi m))^2 / 2 exactly; the sum over m < 2001 is
+    checked to 1e-6 relative (the LC's tail beyond is below 1e-12 of it)."""
+    filt = lc_filter(22e-6, 680e-9, 8.0)
+    fc, volts = 384e3, 20.0
+    wave, _, _ = pwm_waveform(np.zeros(3000), frame_rate_hz=fc, levels=3, supply_volts=volts)
+    means, squares, _ = filter_waveform_power(filt, wave)
+    ripple = np.mean(squares[2000:] - means[2000:] ** 2)
+    m = np.arange(1, 2001, 2)
+    expected = np.sum((4 * volts * np.abs(filt.response(m * fc)) / (np.pi * m)) ** 2) / 2
+    assert ripple == pytest.approx(expected, rel=1e-6)
+
+
+def test_mean_squares_on_fine_tick_grids_use_only_the_lengths_present(monkeypatch, rng):
+    """As filter_waveform: above the full-table limit the matrices come for the lengths
+    present; each expm is computed on its own matrix either way, so the numbers are the same."""
+    filt = FILTERS["butter3"]
+    wave = _pulse_train(rng, 200, 64)
+    full = filter_waveform_power(filt, wave)
+    monkeypatch.setattr(rec, "_FULL_TABLE_MAX", 8)
+    sparse = filter_waveform_power(filt, wave)
+    assert np.array_equal(full[0], sparse[0]) and np.array_equal(full[1], sparse[1])
+    assert np.array_equal(full[0], filter_waveform(filt, wave)[0])

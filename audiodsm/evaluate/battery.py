@@ -96,6 +96,12 @@ METRIC_UNITS = {
         "dBFS",
         "noise after the reconstruction filter, 20 kHz to the set upper frequency",
     ),
+    "carrier_ripple_dbfs": (
+        "dynamic_range",
+        "dBFS",
+        "rms of the output's ripple inside each modulator frame (the PWM carrier after the "
+        "filter), which the frame-rate output cannot carry",
+    ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
     "thd_n_db_at_minus20_dbfs": ("level_sweep", "dB", "THD+N at -20 dBFS"),
@@ -119,6 +125,11 @@ METRIC_UNITS = {
     "idle_noise_dbfs_a": ("idle", "dBFS", "idle-channel noise, A-weighted"),
     "idle_noise_dbfs_ccir": ("idle", "dBFS", "idle-channel noise, CCIR-RMS weighted"),
     "switching_rate_hz": ("idle", "Hz", "output level changes per second at idle"),
+    "dc_offset_dbfs": (
+        "idle",
+        "dBFS",
+        "DC at the output during silence (a DC of full-scale value reads +3.01 dBFS)",
+    ),
     "idle_tone_max_dbfs": (
         "idle",
         "dBFS",
@@ -166,7 +177,12 @@ _TAIL_S = 0.05
 # digitally silent (e.g. an undithered multi-level loop idling on its zero level), so the battery
 # reports the floor and says so in the notes instead of a number of no physical meaning.
 NUMERIC_FLOOR_DBFS = -300.0
-_FLOORED_METRICS = ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir")
+_FLOORED_METRICS = (
+    "idle_noise_dbfs",
+    "idle_noise_dbfs_a",
+    "idle_noise_dbfs_ccir",
+    "dc_offset_dbfs",
+)
 #: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
 _SPECTRUM_RESOLUTION_HZ = 100.0
 #: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
@@ -514,9 +530,15 @@ def _test_dynamic_range(ctx, profile):
     # the spectrum curve; its band power is what measure.noise.out_of_band_power_dbfs reads.
     spec = averaged_spectrum(a, rate_hz=fm, resolution_hz=_SPECTRUM_RESOLUTION_HZ)
     out["out_of_band_noise_dbfs"] = spec.band_noise_dbfs(_BAND[1], upper)
+    # the ripple inside the frames (above the frame rate: a PWM carrier and its sidebands),
+    # exact from the filter's mean square over every frame, in full-scale units
+    ripple = float(res.stats.ripple_rms()[0]) / res.gain
+    out["carrier_ripple_dbfs"] = _db(ripple * math.sqrt(2.0)) if ripple > 0 else -math.inf
     notes.append(
         f"out-of-band noise: reconstructed output at {fm / 1e6:g} MHz during the -60 dBFS "
-        f"tone, {_BAND[1] / 1e3:g} kHz..{upper / 1e3:g} kHz, {spec.resolution_hz:.0f} Hz bins"
+        f"tone, {_BAND[1] / 1e3:g} kHz..{upper / 1e3:g} kHz, {spec.resolution_hz:.0f} Hz bins; "
+        "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
+        "whole run"
     )
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
@@ -561,7 +583,12 @@ def _test_idle(ctx, profile):
     y = res.listening[:, 0]
     r = _meter(y, rate, None, _WEIGHTINGS, plan.settle_s)
     settle = int(round(plan.settle_s * rate))
+    # the DC the output really carries: the chain's calibration removes only the static
+    # offset of the output stage without dead time, so an offset from dead time (or anything
+    # else in the product) stays in; AES17 dBFS of a constant: 20 log10(|dc| sqrt(2))
+    dc = float(np.mean(y[settle:]))
     out = {
+        "dc_offset_dbfs": 20.0 * math.log10(abs(dc) * math.sqrt(2.0)) if dc else -math.inf,
         "idle_noise_dbfs": r.noise_dbfs["unweighted"],
         "idle_noise_dbfs_a": r.noise_dbfs["a"],
         "idle_noise_dbfs_ccir": r.noise_dbfs["ccir"],
@@ -957,10 +984,12 @@ _SCALARS = (
     "dynamic_range_db_a",
     "dynamic_range_db_ccir",
     "out_of_band_noise_dbfs",
+    "carrier_ripple_dbfs",
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",
     "switching_rate_hz",
+    "dc_offset_dbfs",
     "passband_ripple_db",
     "image_rejection_db",
     "image_rejection_noise_limited",

@@ -108,6 +108,11 @@ class ChainStats:
         bridge leg, averaged over the legs).
     output_clipped : ndarray of int
         Listening samples beyond ±1.0 (clipped only when written to an integer file).
+    ripple_energy, ripple_frames : ndarray
+        Only counted while ``"analog"`` is kept: the sum over frames of the reconstructed
+        output's power inside each frame that the frame means do not carry (its mean square
+        minus its squared mean, in volts squared: a PWM carrier's ripple after the filter),
+        and the number of frames summed.
     """
 
     input_frames: int
@@ -118,11 +123,20 @@ class ChainStats:
     stretched_pulses: np.ndarray
     switching_events: np.ndarray
     output_clipped: np.ndarray
+    ripple_energy: np.ndarray | None = None
+    ripple_frames: np.ndarray | None = None
 
     def switching_rate_hz(self, rate_hz: float) -> np.ndarray:
         """Average switching events per second, given the input rate."""
         seconds = self.input_frames / float(rate_hz)
         return self.switching_events / seconds if seconds > 0 else self.switching_events * 0.0
+
+    def ripple_rms(self) -> np.ndarray:
+        """Rms of the in-frame ripple per channel, in volts (NaN where none was counted)."""
+        if self.ripple_energy is None or self.ripple_frames is None:
+            return np.full(len(self.overload_count), np.nan)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.sqrt(self.ripple_energy / self.ripple_frames)
 
 
 @dataclass(frozen=True)
@@ -334,6 +348,41 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
     return pwm
 
 
+def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
+    """PWM with load-current-dependent dead time and the LC filter, in one loop.
+
+    A function ``(y, state) -> (frame means, frame mean squares, (dropped, stretched),
+    state)``: the leg voltage
+    during each dead interval follows the sign of the filter's inductor current, so the output
+    stage cannot run ahead of the filter (see
+    :func:`~audiodsm.stages.reconstruct.filter_pwm_with_dead_time`).
+    """
+    from audiodsm.stages.reconstruct import filter_pwm_with_dead_time
+
+    out = profile.output
+
+    def pwm_dead_time(y, state):
+        means, squares, stats, state = filter_pwm_with_dead_time(
+            filt,
+            y,
+            frame_rate_hz=frame_rate_hz,
+            levels=profile.modulator.levels,
+            counter_steps=out.counter_steps or None,
+            mode=out.pwm_mode,
+            carrier=out.pwm_carrier,
+            bridge=out.pwm_bridge,
+            tick_subdivision=out.tick_subdivision,
+            dead_time_ticks=out.dead_time_ticks,
+            min_pulse_ticks=out.min_pulse_ticks,
+            min_pulse_action=out.short_pulse_action,
+            supply_volts=out.full_scale_volts,
+            state=state,
+        )
+        return means, squares, (stats.dropped_pulses, stats.stretched_pulses), state
+
+    return pwm_dead_time
+
+
 def _analog_filter(profile: ChainProfile):
     from audiodsm.stages import reconstruct as rec_mod
 
@@ -461,12 +510,24 @@ class Chain:
             self._loop_space = self.modulator.loop.linearized()
             self._stf = _stf_filter(self._loop_space)
 
-        with _settings_of(profile, "output"):
-            self._waveform = _output_waveform_fn(profile, float(self.modulator_rate_hz))
         with _settings_of(profile, "reconstruction"):
             taps = profile.reconstruction.fir_taps
             self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
             self.analog_filter = _analog_filter(profile)
+        with _settings_of(profile, "output"):
+            # Dead time follows the LC filter's inductor current, so that output stage runs
+            # together with the filter. The plain stage (without dead time) is what the
+            # calibration reads: the dead-time error is the product's, and stays in the output.
+            out = profile.output
+            self._pwm_dead_time = None
+            if out.kind == "pwm" and out.dead_time_ticks > 0:
+                plain = replace(profile, output=replace(out, dead_time_ticks=0))
+                self._pwm_dead_time = _pwm_dead_time_fn(
+                    profile, float(self.modulator_rate_hz), self.analog_filter
+                )
+            else:
+                plain = profile
+            self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
         with _settings_of(profile, "listening"):
             listen = profile.listening
             if listen.decimator == "counting":  # same interface as the half-band cascade
@@ -532,16 +593,17 @@ class Chain:
         else:  # a fine quantizer (up to 24 bits): a spread of its exact levels is enough
             codes = np.unique(np.round(np.linspace(0.0, levels - 1.0, _CAL_MAX_LEVELS)))
             probe = codes * (2.0 / (levels - 1)) - 1.0
-        # each level held for a few frames, so edge effects between frames (dead time) settle;
-        # the last frame of each run is the stage's steady output for that level
+        # each level held for a few frames, so edge effects between frames settle; the last
+        # frame of each run is the stage's steady output for that level. The stage probed has
+        # no dead time (see __init__): the error dead time makes depends on the load current,
+        # it is the product's offset and distortion, and the measurements must show it.
         hold = 4
         wf, _, _ = self._waveform(np.repeat(probe, hold), None)
         means = _mean_level(wf)[hold - 1 :: hold]
         # least-squares line through (level, mean output): slope = volts per full-scale unit.
-        # With five or more levels the two end levels are left out: a PWM leg held fully on or
-        # off has no edges, so dead time costs it nothing, while every level between loses the
-        # same edge time. The line through the inner levels is the stage's transfer where a
-        # signal spends its time, and it leaves no offset at mid-scale (silence).
+        # With five or more levels the two end levels are left out: a minimum pulse width can
+        # drop the pulses of the levels next to them. The line through the inner levels is the
+        # stage's transfer where a signal spends its time.
         fit = slice(1, -1) if probe.size >= 5 else slice(None)
         slope, offset = np.polyfit(probe[fit], means[fit], 1)
         self.stage_gain = float(slope)
@@ -573,7 +635,9 @@ class Chain:
         self._static_offset = self.offset * self.fir_dc_gain * self.analog_dc_gain
         down_dc = float(np.real(self.downsampler_design.response(np.array([0.0]))[0]))
         self._listening_offset = self._static_offset * down_dc
-        # latency: FIR delays + loop phase delay + half a frame (hold) + analog phase delay
+        # latency: FIR delays + loop phase delay + analog phase delay. The hold of each frame is
+        # centred half a frame after its sample, and the frame mean the filter delivers is
+        # centred on the same point, so together they add no delay.
         fir_delay = 0.0
         if self.fir is not None:
             hf = complex(self.fir.response(np.array([f]), frame_rate_hz=self.modulator_rate_hz)[0])
@@ -581,7 +645,7 @@ class Chain:
         loop_delay = -np.angle(stf_997) / w
         self.latency_s = float(
             self.upsampler_design.delay_input_samples / self.rate_hz
-            + (loop_delay + 0.5 + fir_delay) / self.modulator_rate_hz
+            + (loop_delay + fir_delay) / self.modulator_rate_hz
             + analog_delay_s
             + self.downsampler_design.delay_seconds
         )
@@ -601,20 +665,32 @@ class Chain:
             stretched_pulses=zeros_i,
             switching_events=np.zeros(c),
             output_clipped=zeros_i,
+            ripple_energy=np.zeros(c),
+            ripple_frames=zeros_i,
         )
         per = _ChannelState()
         return ChainState(channels=(per,) * c, stats=stats, to_skip=int(skip))
 
     # -- one channel ---------------------------------------------------------------------------
 
-    def _reconstruct(self, wf, fir_state, filt_state):
-        """Semi-digital FIR (on one-segment waveforms) and the analog filter."""
-        from audiodsm.stages.reconstruct import filter_waveform
+    def _reconstruct(self, wf, fir_state, filt_state, ripple=None):
+        """Semi-digital FIR (on one-segment waveforms) and the analog filter.
+
+        With a list as ``ripple``, the frames' in-frame ripple energy (volts squared, summed)
+        is appended to it.
+        """
+        from audiodsm.stages.reconstruct import filter_waveform, filter_waveform_power
 
         if self.fir is not None:
             wf, fir_state = self.fir.process(wf, fir_state)
         if self.analog_filter is None:
             out = _mean_level(wf)
+            if ripple is not None:
+                squares = (wf.levels * wf.levels * wf.ticks).sum(axis=1) / wf.ticks_per_frame
+                ripple.append(float(np.sum(np.maximum(squares - out * out, 0.0))))
+        elif ripple is not None:
+            out, squares, filt_state = filter_waveform_power(self.analog_filter, wf, filt_state)
+            ripple.append(float(np.sum(np.maximum(squares - out * out, 0.0))))
         else:
             out, filt_state = filter_waveform(self.analog_filter, wf, filt_state)
         return out, fir_state, filt_state
@@ -634,6 +710,7 @@ class Chain:
             merged[name] = None if parts[0] is None else np.concatenate(parts)
         for name in ("dropped", "stretched"):
             merged[name] = sum(o[name] for o in outs)
+        merged["ripple"] = tuple(map(sum, zip(*(o["ripple"] for o in outs), strict=True)))
         switches = [o["switches"] for o in outs]
         merged["switches"] = None if switches[0] is None else sum(switches)
         merged["seconds"] = tuple(map(sum, zip(*(o["seconds"] for o in outs), strict=True)))
@@ -648,7 +725,14 @@ class Chain:
         t1 = clock()
         y, mod_s = self.modulator.run(xu, st.modulator)
         t2 = clock()
-        wf, (dropped, stretched), out_s = self._waveform(y, st.output)
+        ripple = [] if "analog" in keep else None
+        if self._pwm_dead_time is not None:  # output stage and filter in one loop
+            analog, squares, (dropped, stretched), out_s = self._pwm_dead_time(y, st.output)
+            wf, fir_s, filt_s = None, st.fir, st.analog
+            if ripple is not None:
+                ripple.append(float(np.sum(np.maximum(squares - analog * analog, 0.0))))
+        else:
+            wf, (dropped, stretched), out_s = self._waveform(y, st.output)
         prev = st.last_level
         if self.profile.output.kind == "pwm":
             switches = None  # the PWM stage counts its own edges
@@ -659,7 +743,8 @@ class Chain:
         else:
             switches = 0
         t3 = clock()
-        analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog)
+        if wf is not None:
+            analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
         t4 = clock()
         # the decimator is linear: calibrate after it, on 1/OSR as many samples
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
@@ -686,6 +771,7 @@ class Chain:
             "dropped": dropped,
             "stretched": stretched,
             "switches": switches,
+            "ripple": (sum(ripple), y.size) if ripple is not None else (0.0, 0),
             "seconds": (t1 - t0, t2 - t1, t3 - t2, t4 - t3, t5 - t4, t6 - t5),
         }
         return out, new
@@ -708,12 +794,13 @@ class Chain:
                 stf_state = np.zeros(len(den) - 1)
             ideal, stf_state = lfilter(num, den, xu, zi=stf_state)
         levels = (self.offset + self.stage_gain * ideal)[:, None]
-        ticks = np.full((xu.size, 1), wf.ticks_per_frame, dtype=np.int64)
+        tpf = wf.ticks_per_frame if wf is not None else 1  # one segment a frame either way
+        ticks = np.full((xu.size, 1), tpf, dtype=np.int64)
         waveform = PulseWaveform(
             levels=levels,
             ticks=ticks,
-            ticks_per_frame=wf.ticks_per_frame,
-            frame_rate_hz=wf.frame_rate_hz,
+            ticks_per_frame=tpf,
+            frame_rate_hz=float(self.modulator_rate_hz),
         )
         return waveform, stf_state
 
@@ -829,6 +916,8 @@ class Chain:
             stretched_pulses=stats.stretched_pulses + np.array([o["stretched"] for o in outs]),
             switching_events=switching,
             output_clipped=stats.output_clipped + (np.abs(listening) > 1.0).sum(axis=0),
+            ripple_energy=stats.ripple_energy + np.array([o["ripple"][0] for o in outs]),
+            ripple_frames=stats.ripple_frames + np.array([o["ripple"][1] for o in outs]),
         )
         block = ChainBlock(
             listening=listening,

@@ -422,6 +422,81 @@ def _apply_min_pulse(codes, steps, unit, min_ticks, action):
     return out, 0, int(high_short.sum() + low_short.sum())
 
 
+@dataclass(frozen=True)
+class _PwmPlan:
+    """Validated PWM settings and the per-frame counter codes of both legs."""
+
+    n: int
+    rate: float
+    n_legs: int
+    steps: int
+    sub: int
+    frame: int
+    dead: int
+    volts: float
+    invert_b: bool
+    double_edge: bool
+    half_bridge: bool
+    codes_a: np.ndarray
+    codes_b: np.ndarray
+    dropped: int
+    stretched: int
+
+
+def _pwm_plan(
+    y,
+    frame_rate_hz,
+    levels,
+    counter_steps,
+    mode,
+    carrier,
+    bridge,
+    tick_subdivision,
+    dead_time_ticks,
+    min_pulse_ticks,
+    min_pulse_action,
+    supply_volts,
+) -> _PwmPlan:
+    """Check the PWM settings (as documented in :func:`pwm_waveform`) and make the codes."""
+    arr = _as_channel(y)
+    rate = _check_rate(frame_rate_hz)
+    mode = _check_choice(mode, "mode", _MODES)
+    carrier = _check_choice(carrier, "carrier", _CARRIERS)
+    bridge = _check_choice(bridge, "bridge", _BRIDGES)
+    action = _check_choice(min_pulse_action, "min_pulse_action", _ACTIONS)
+    if mode == "three-level" and bridge != "full":
+        raise ParameterError("bridge", bridge, "'full' for three-level modulation")
+    sub = _check_int(tick_subdivision, "tick_subdivision", 1)
+    volts = _check_volts(supply_volts, "supply_volts")
+    codes, steps = _pwm_codes(arr, levels, counter_steps)
+    unit = sub * (1 if carrier == "trailing" else 2)
+    frame = steps * unit
+    dead = _check_int(dead_time_ticks, "dead_time_ticks", 0, frame)
+    min_ticks = _check_int(min_pulse_ticks, "min_pulse_ticks", 0, frame // 2)
+    n_legs = 2 if bridge == "full" else 1
+    codes, dropped, stretched = _apply_min_pulse(codes, steps, unit, min_ticks, action)
+    # leg commands: A follows the codes; B is A's complement (two-level full bridge) or runs
+    # on the mirrored code N - k (three-level)
+    codes_b = codes if n_legs == 1 or mode == "two-level" else steps - codes
+    return _PwmPlan(
+        n=arr.size,
+        rate=rate,
+        n_legs=n_legs,
+        steps=steps,
+        sub=sub,
+        frame=frame,
+        dead=dead,
+        volts=volts,
+        invert_b=mode == "two-level",  # leg B is leg A's complement in a two-level full bridge
+        double_edge=carrier == "double-edge",
+        half_bridge=n_legs == 1,
+        codes_a=np.ascontiguousarray(codes, dtype=np.int64),
+        codes_b=np.ascontiguousarray(codes_b, dtype=np.int64),
+        dropped=dropped,
+        stretched=stretched,
+    )
+
+
 def pwm_waveform(
     y,
     *,
@@ -474,7 +549,10 @@ def pwm_waveform(
     dead_time_ticks : int
         Every rising edge of every leg is delayed by this many ticks (the switch turns on only
         after its command has been high that long; a shorter pulse vanishes). During the delay
-        the leg is low. At most the frame length.
+        the leg is low: the waveform of a bridge whose leg currents always flow out of the legs.
+        For dead time that follows the real load current use
+        :func:`audiodsm.stages.reconstruct.filter_pwm_with_dead_time` (the chain does). At most
+        the frame length.
     min_pulse_ticks : int
         Shortest pulse the power stage makes, in ticks. Applied per frame and leg command to
         the high time and to the low time within the frame, before dead time. At most half
@@ -501,9 +579,10 @@ def pwm_waveform(
     Notes
     -----
     The frame mean is ``y * supply_volts`` exactly when there is no dead time and no pulse
-    was dropped or stretched. Dead time is modelled as a plain turn-on delay of each leg (the
-    output during the dead interval really depends on the load current's direction); see
-    docs/outputs.md.
+    was dropped or stretched. Dead time here is a plain turn-on delay of each leg; in a real
+    bridge the leg during the dead interval follows the load current's direction, which
+    needs the filter's state: :func:`audiodsm.stages.reconstruct.filter_pwm_with_dead_time`
+    models that (see docs/outputs.md).
 
     References
     ----------
@@ -512,65 +591,66 @@ def pwm_waveform(
     .. [2] Z. Song and D. V. Sarwate, "The frequency spectrum of pulse width modulated signals",
        IEEE Trans. Signal Processing, 2003.
     """
-    arr = _as_channel(y)
-    rate = _check_rate(frame_rate_hz)
-    mode = _check_choice(mode, "mode", _MODES)
-    carrier = _check_choice(carrier, "carrier", _CARRIERS)
-    bridge = _check_choice(bridge, "bridge", _BRIDGES)
-    action = _check_choice(min_pulse_action, "min_pulse_action", _ACTIONS)
-    if mode == "three-level" and bridge != "full":
-        raise ParameterError("bridge", bridge, "'full' for three-level modulation")
-    sub = _check_int(tick_subdivision, "tick_subdivision", 1)
-    volts = _check_volts(supply_volts, "supply_volts")
-    codes, steps = _pwm_codes(arr, levels, counter_steps)
-    unit = sub * (1 if carrier == "trailing" else 2)
-    frame = steps * unit
-    dead = _check_int(dead_time_ticks, "dead_time_ticks", 0, frame)
-    min_ticks = _check_int(min_pulse_ticks, "min_pulse_ticks", 0, frame // 2)
-
-    n_legs = 2 if bridge == "full" else 1
+    plan = _pwm_plan(
+        y,
+        frame_rate_hz,
+        levels,
+        counter_steps,
+        mode,
+        carrier,
+        bridge,
+        tick_subdivision,
+        dead_time_ticks,
+        min_pulse_ticks,
+        min_pulse_action,
+        supply_volts,
+    )
+    n_legs, n, rate, frame = plan.n_legs, plan.n, plan.rate, plan.frame
     if state is None:
         state = PwmState((0,) * n_legs, (False,) * n_legs, _zero_stats(n_legs))
     elif not isinstance(state, PwmState) or len(state.high_run) != n_legs:
         raise ParameterError("state", type(state).__name__, f"a PwmState for {n_legs} leg(s)")
-
-    codes, dropped, stretched = _apply_min_pulse(codes, steps, unit, min_ticks, action)
-    # leg commands: A follows the codes; B is A's complement (two-level full bridge) or runs
-    # on the mirrored code N - k (three-level)
-    n = arr.size
     seg = 1 + 4 * n_legs
     out = np.empty((n, seg))
     ticks = np.empty((n, seg), dtype=np.int64)
     run = np.array(state.high_run, dtype=np.int64)
     last = np.array(state.last_level, dtype=np.int64)
     counts = np.zeros(3, dtype=np.int64)
-    codes_b = codes if n_legs == 1 or mode == "two-level" else steps - codes
     _kernels.pwm_segments(
-        np.ascontiguousarray(codes, dtype=np.int64),
-        np.ascontiguousarray(codes_b),
+        plan.codes_a,
+        plan.codes_b,
         n_legs,
-        mode == "two-level",  # leg B is leg A's complement in a two-level full bridge
-        carrier == "double-edge",
-        steps,
-        sub,
-        dead,
-        volts,
-        n_legs == 1,
+        plan.invert_b,
+        plan.double_edge,
+        plan.steps,
+        plan.sub,
+        plan.dead,
+        plan.volts,
+        plan.half_bridge,
         run,
         last,
         out,
         ticks,
         counts,
     )
+    dropped, stretched = plan.dropped, plan.stretched
     waveform = PulseWaveform._trusted(out, ticks, frame, rate)
-    lost = int(counts[0])
-    transitions = [int(c) for c in counts[1 : 1 + n_legs]]
     runs = [int(r) for r in run]
     last = [bool(v) for v in last]
+    stats, totals = _pwm_counts(state.totals, n, rate, dropped, stretched, counts, n_legs)
+    return waveform, stats, PwmState(tuple(runs), tuple(last), totals)
+
+
+def _pwm_counts(tot, n, rate, dropped, stretched, counts, n_legs):
+    """The block's :class:`PwmStats` and the running totals, from the kernel's counts.
+
+    ``counts`` holds ``[lost to dead time, transitions of leg A, transitions of leg B]``.
+    """
+    lost = int(counts[0])
+    transitions = [int(c) for c in counts[1 : 1 + n_legs]]
     seconds = n / rate
     per_s = tuple((t / seconds) if n else 0.0 for t in transitions)
     stats = PwmStats(n, dropped, stretched, lost, tuple(transitions), per_s)
-    tot = state.totals
     total_frames = tot.frames + n
     total_trans = tuple(a + b for a, b in zip(tot.transitions, transitions, strict=True))
     total_s = total_frames / rate
@@ -582,7 +662,7 @@ def pwm_waveform(
         total_trans,
         tuple((t / total_s) if total_frames else 0.0 for t in total_trans),
     )
-    return waveform, stats, PwmState(tuple(runs), tuple(last), totals)
+    return stats, totals
 
 
 def _zero_stats(n_legs: int) -> PwmStats:
