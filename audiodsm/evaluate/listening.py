@@ -523,13 +523,13 @@ def make_listening_set(
     key_path = key_path_for(folder)
     if key_path.exists():
         raise OutputError(f"{key_path}: a key already exists; it is never replaced")
-    if folder.exists() and any(folder.iterdir()):
-        if not (replace and (folder / PAGE_NAME).is_file()):
-            raise OutputError(f"{folder}: exists and is not empty (use --replace for an old set)")
     guarded = {Path(p).resolve() for p in [*protect, *inputs]}
     guarded |= {c.listening_path.resolve() for c in cands if c.listening_path is not None}
     if any(folder.resolve() in g.parents for g in guarded):
         raise OutputError(f"{folder}: holds an input; choose another folder")
+    if folder.exists() and any(folder.iterdir()):
+        if not (replace and (folder / PAGE_NAME).is_file()):
+            raise OutputError(f"{folder}: exists and is not empty (use --replace for an old set)")
     renders = Path(renders_dir) if renders_dir else folder.parent / f"{folder.name}.renders"
     folder.parent.mkdir(parents=True, exist_ok=True)
 

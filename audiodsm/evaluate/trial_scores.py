@@ -137,7 +137,8 @@ def _load_json(path, what):
     try:
         return json.loads(text)
     except json.JSONDecodeError as exc:
-        end = "ends early (truncated?)" if exc.pos >= len(text.rstrip()) else "is malformed"
+        cut = exc.pos >= len(text.rstrip()) or not text.rstrip().endswith("}")
+        end = "ends early (truncated?)" if cut else "is malformed"
         raise AnswersError(p, f"the {what} {end}: {exc.msg} at character {exc.pos}") from None
 
 
