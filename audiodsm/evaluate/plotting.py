@@ -299,9 +299,13 @@ def plot_spectrogram(
     if z.shape != (f.size, t.size) or t.size == 0 or f.size < 2:
         raise ParameterError("level_dbfs", z.shape, f"shape ({f.size}, {t.size}), not empty")
     fig, ax = _axes(ax, size=(6.4, 2.6))
-    mesh = ax.pcolormesh(
-        t, f / 1e3, z, shading="nearest", cmap="viridis", vmin=floor_dbfs, vmax=0.0,
-        rasterized=True,
+    # evenly spaced frames and bins (as a short-time spectrum gives them): one image
+    dt = (t[-1] - t[0]) / (t.size - 1) if t.size > 1 else 1.0
+    df = (f[-1] - f[0]) / (f.size - 1)
+    extent = (t[0] - dt / 2, t[-1] + dt / 2, (f[0] - df / 2) / 1e3, (f[-1] + df / 2) / 1e3)
+    mesh = ax.imshow(
+        z, origin="lower", aspect="auto", extent=extent, cmap="viridis", vmin=floor_dbfs,
+        vmax=0.0, interpolation="nearest",
     )  # fmt: skip
     _style(ax, title, "time (s)", "frequency (kHz)")
     ax.grid(False)
