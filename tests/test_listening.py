@@ -277,3 +277,17 @@ def test_spectrogram_plot_draws_and_refuses_bad_shapes():
     assert fig.axes and fig.axes[0].get_title(loc="left") == "t"
     with pytest.raises(ParameterError):
         plot_spectrogram(np.arange(3.0), np.arange(4.0), np.zeros((3, 4)))
+
+
+def test_importing_the_listening_modules_loads_neither_matplotlib_nor_pyloudnorm():
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, audiodsm.evaluate.listening, audiodsm.evaluate.trial_scores, "
+        "audiodsm.measure.loudness, audiodsm.measure.alignment, audiodsm.cli.listening_set, "
+        "audiodsm.cli.score_answers; "
+        "print('matplotlib' in sys.modules, 'pyloudnorm' in sys.modules)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False False"

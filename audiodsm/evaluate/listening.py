@@ -45,7 +45,7 @@ __all__ = [
     "KEY_FORMAT",
     "ANSWERS_FORMAT",
     "PAGE_NAME",
-    "Candidate",
+    "ListeningCandidate",
     "key_path_for",
     "render_listening_file",
     "spectrogram_dbfs",
@@ -66,7 +66,7 @@ _TEMPLATES = Path(__file__).resolve().parent / "templates"
 
 
 @dataclass(frozen=True)
-class Candidate:
+class ListeningCandidate:
     """One thing to compare: a chain profile (rendered on demand) or a listening file.
 
     Attributes
@@ -86,7 +86,7 @@ class Candidate:
     error_path: Path | None = None
 
     @classmethod
-    def from_path(cls, path) -> Candidate:
+    def from_path(cls, path) -> ListeningCandidate:
         """A profile (``.toml``) or a listening file (any audio file)."""
         p = Path(path)
         if p.suffix.lower() == ".toml":
@@ -461,8 +461,8 @@ def make_listening_set(
 
     Parameters
     ----------
-    candidates : sequence of Candidate or path-like
-        Two or more; paths are read with :meth:`Candidate.from_path`.
+    candidates : sequence of ListeningCandidate or path-like
+        Two or more; paths are read with :meth:`ListeningCandidate.from_path`.
     inputs : sequence of path-like
         One or more input files; with listening files as candidates, exactly one.
     folder : path-like
@@ -504,7 +504,10 @@ def make_listening_set(
        22, 1950, p. 675 (the A/B/X paradigm).
     """
     say = say or (lambda _line: None)
-    cands = [c if isinstance(c, Candidate) else Candidate.from_path(c) for c in candidates]
+    cands = [
+        c if isinstance(c, ListeningCandidate) else ListeningCandidate.from_path(c)
+        for c in candidates
+    ]
     if len(cands) < 2:
         raise ParameterError("candidates", len(cands), "two or more profiles or listening files")
     labels = [c.label for c in cands]
