@@ -216,6 +216,10 @@ def test_bad_requests_are_refused(tmp_path, material):
         make_listening_set(
             [material["a"], material["b"]], [material["input"], material["a"]], tmp_path / "s3"
         )
+    renamed = material["a"].with_name("input.wav")
+    renamed.write_bytes(material["a"].read_bytes())
+    with pytest.raises(ParameterError, match="distinct as file names"):
+        make_listening_set([renamed, material["b"]], [material["input"]], tmp_path / "s4")
     with pytest.raises(OutputError, match="holds an input"):
         build(material, material["input"].parent)
 

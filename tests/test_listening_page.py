@@ -75,7 +75,8 @@ def test_page_plays_a_trial_answers_and_saves_without_the_key(browser, listening
     wait_for(browser, f"return audiodsmPage.contextTime() > {t0} + 0.2")
     assert browser.execute_script("return audiodsmPage.playing()") is True
 
-    # answer every trial with "A", then save
+    # answer every trial with "A", then save (offered only when all are answered)
+    assert not by_id("id", "save-answers").is_displayed()
     for _ in range(TRIALS):
         by_id("id", "answer-A").click()
     wait_for(browser, "return !document.getElementById('trials-done').hidden")
@@ -131,6 +132,22 @@ def test_open_comparison_switches_at_the_same_position(browser, listening_set):
     assert browser.execute_script("return audiodsmPage.selected()") == ids[2]
     assert browser.execute_script("return audiodsmPage.playing()") is True
     assert 0.0 <= after - before < 0.5 or after < before  # continued (or wrapped round the loop)
+    # seeking: stopped, the slider sets the position; playing resumes from there
+    browser.find_element("id", "stop").click()
+    p0 = browser.execute_script("return audiodsmPage.position()")
+    target = round(((p0 + 0.5) % 1.0) * 1000)
+    browser.execute_script(
+        f"const p = document.getElementById('position'); p.value = '{target}';"
+        "p.dispatchEvent(new Event('change'));"
+    )
+    assert browser.execute_script("return audiodsmPage.position()") == pytest.approx(
+        target / 1000, abs=0.002
+    )
+    browser.find_element("id", "play").click()
+    wait_for(browser, "return audiodsmPage.playing()")
+    moved = (browser.execute_script("return audiodsmPage.position()") - target / 1000) % 1.0
+    assert moved < 0.3
+    assert browser.execute_script("return audiodsmPage.selected()") == ids[2]
     # spectrogram pictures are shown, one per clip
     imgs = browser.find_elements("css selector", ".pictures img")
     assert len(imgs) == 3

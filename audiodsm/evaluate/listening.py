@@ -24,7 +24,6 @@ Time alignment and loudness live in :mod:`audiodsm.measure.alignment` and
 from __future__ import annotations
 
 import base64
-import hashlib
 import itertools
 import json
 import math
@@ -290,7 +289,7 @@ def _loudness_offset_db(signals, rate_hz) -> float:
 
 
 def _prepare_input(input_path, candidates, renders_dir, max_delay_s, say):
-    """Read one input and its candidates, align them and match their loudness."""
+    """Read one input and its candidates (rendering what is missing) and align them."""
     from audiodsm.io import audio_info, read_audio
     from audiodsm.measure.alignment import find_delay, shift_by_frames
 
@@ -513,6 +512,11 @@ def make_listening_set(
     labels = [c.label for c in cands]
     if len(set(labels)) != len(labels):
         raise ParameterError("candidates", labels, "distinct names (profile names or file stems)")
+    names = ["input"] + [_safe(x) for c in cands for x in (c.label, f"{c.label} error")]
+    if len(set(names)) != len(names):
+        raise ParameterError(
+            "candidates", labels, "names that stay distinct as file names (and not 'input')"
+        )
     inputs = [Path(p) for p in inputs]
     if not inputs:
         raise ParameterError("inputs", 0, "one or more input files")
@@ -650,8 +654,7 @@ def _write_folder(tmp: Path, preps, cands, trials_per_pair, rng, set_id):
         "pairs": [f"{cands[a].label} / {cands[b].label}" for a, b in pairs],
     }
     (tmp / "summary.json").write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
-    digest = hashlib.sha256(json.dumps(trials, sort_keys=True).encode()).hexdigest()
-    return summary, manifest, {"trials": key_trials, "trials_sha256": digest}
+    return summary, manifest, {"trials": key_trials}
 
 
 def _clip_row(tmp, stem, label, kind, y, rate, gain_db, delay, path, wavs, offset_db) -> dict:

@@ -20,6 +20,8 @@
   let view = null; // {names: [...], selected: name}
   let voices = null; // {sources: Map(name -> node), gains: Map(name -> GainNode), t0, offset}
   let positionS = 0;
+  let wantPlaying = false; // Play pressed and not stopped since
+  let playGeneration = 0; // a newer play() or a stop() makes a pending play() give up
   let mode = "open";
   let trialIndex = 0;
   const answers = new Map(); // trial id -> "A" | "B"
@@ -38,16 +40,22 @@
     });
   }
 
-  async function clipBuffer(name, src) {
-    if (buffers.has(name)) return buffers.get(name);
-    const store = window.audiodsmClipData || {};
-    if (!(name in store)) await loadScript(src);
-    const text = window.audiodsmClipData[name];
-    const bytes = Uint8Array.from(atob(text), (c) => c.charCodeAt(0));
-    const buf = await ctx.decodeAudioData(bytes.buffer);
-    delete window.audiodsmClipData[name]; // the decoded buffer is kept; free the text
-    buffers.set(name, buf);
-    return buf;
+  const loading = new Map(); // data name -> Promise of its AudioBuffer
+
+  function clipBuffer(name, src) {
+    if (!loading.has(name)) {
+      loading.set(name, (async () => {
+        const store = window.audiodsmClipData || {};
+        if (!(name in store)) await loadScript(src);
+        const text = window.audiodsmClipData[name];
+        const bytes = Uint8Array.from(atob(text), (c) => c.charCodeAt(0));
+        const buf = await ctx.decodeAudioData(bytes.buffer);
+        delete window.audiodsmClipData[name]; // the decoded buffer is kept; free the text
+        buffers.set(name, buf);
+        return buf;
+      })());
+    }
+    return loading.get(name);
   }
 
   function duration() {
@@ -60,7 +68,7 @@
   function currentPosition() {
     if (!voices) return positionS;
     const d = duration();
-    const p = ctx.currentTime - voices.t0 + voices.offset;
+    const p = Math.max(0, ctx.currentTime - voices.t0) + voices.offset; // 0 until the start
     return d > 0 ? p % d : 0;
   }
 
@@ -79,32 +87,35 @@
   }
 
   async function setView(names, sources, selected) {
-    const wasPlaying = voices !== null;
-    stop();
+    stopVoices();
     view = { names: names, selected: selected, sources: sources };
-    if (wasPlaying) await play();
+    if (wantPlaying) await play();
   }
 
   async function play() {
     if (!unlocked || !view) return;
+    wantPlaying = true;
+    const gen = ++playGeneration;
+    const v = view;
     ensureContext();
     if (ctx.state === "suspended") await ctx.resume();
     setStatus("loading clips...");
-    for (let i = 0; i < view.names.length; i++) await clipBuffer(view.names[i], view.sources[i]);
-    stop();
+    await Promise.all(v.names.map((n, i) => clipBuffer(n, v.sources[i])));
+    if (gen !== playGeneration || v !== view || !wantPlaying) return; // overtaken meanwhile
+    stopVoices();
     const d = duration();
     const offset = d > 0 ? positionS % d : 0;
     const t0 = ctx.currentTime + 0.05;
     const sources = new Map();
     const gains = new Map();
-    for (const n of view.names) {
+    for (const n of v.names) {
       const src = ctx.createBufferSource();
       src.buffer = buffers.get(n);
       src.loop = true;
       src.loopStart = 0;
       src.loopEnd = d;
       const g = ctx.createGain();
-      g.gain.value = n === view.selected ? 1 : 0;
+      g.gain.value = n === v.selected ? 1 : 0;
       src.connect(g).connect(master);
       src.start(t0, offset);
       sources.set(n, src);
@@ -115,13 +126,19 @@
     setStatus("playing");
   }
 
-  function stop() {
+  function stopVoices() {
     if (voices) {
       positionS = currentPosition();
       for (const s of voices.sources.values()) { try { s.stop(); } catch (e) { /* stopped */ } }
       voices = null;
     }
     document.body.dataset.playing = "no";
+  }
+
+  function stop() {
+    wantPlaying = false;
+    playGeneration += 1;
+    stopVoices();
     if (unlocked) setStatus("stopped");
   }
 
@@ -190,6 +207,7 @@
     showProgress();
     if (trialIndex + 1 < manifest.trials.length) {
       trialIndex += 1;
+      stopVoices();
       positionS = 0;
       await trialView();
     }
@@ -247,8 +265,9 @@
   $("play").addEventListener("click", () => { play().catch((e) => setStatus(String(e))); });
   $("stop").addEventListener("click", () => stop());
   $("position").addEventListener("change", async () => {
+    stopVoices();
     positionS = (Number($("position").value) / 1000) * duration();
-    if (voices) await play();
+    if (wantPlaying) await play();
   });
   setInterval(() => {
     const d = duration();
@@ -264,6 +283,7 @@
   if (inputChoice) {
     inputChoice.addEventListener("change", () => {
       document.querySelectorAll(".input-block").forEach((b) => { b.hidden = b.dataset.input !== inputChoice.value; });
+      stopVoices();
       positionS = 0;
       openView();
     });
@@ -278,6 +298,7 @@
     $("mode-trials").classList.toggle("active", m === "trials");
     $("open-view").hidden = m !== "open";
     $("trials-view").hidden = m !== "trials";
+    stopVoices();
     positionS = 0;
     return m === "open" ? openView() : trialView();
   }
@@ -286,7 +307,7 @@
 
   document.addEventListener("keydown", (ev) => {
     if (ev.target && ev.target.tagName === "INPUT" && ev.target.type === "range") return;
-    if (ev.key === " ") { ev.preventDefault(); if (voices) stop(); else play(); return; }
+    if (ev.key === " ") { ev.preventDefault(); if (wantPlaying) stop(); else play(); return; }
     if (mode === "open" && /^[1-9]$/.test(ev.key)) {
       const inp = manifest.inputs[openInputIndex()];
       const c = inp.clips[Number(ev.key) - 1];
