@@ -10,7 +10,7 @@ Loop realization (``audiodsm.design.realize``)
 Modulation (``audiodsm.stages.modulator``)
     Modulator, ModulatorState, max_stable_amplitude, find_stability_limit, StabilityLimit,
     scale_states
-Rate conversion (``audiodsm.stages.upsample``)
+Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
 Output stages (``audiodsm.stages.output_stage``)
@@ -35,11 +35,18 @@ Test stimuli (``audiodsm.signals``)
     dbfs_to_amplitude, amplitude_to_dbfs, rms_to_dbfs, dbfs_to_rms
 Levels and spectra (``audiodsm.measure.spectrum``)
     level_dbfs, power_to_dbfs, averaged_spectrum, accumulate_spectrum, Spectrum
-AES17-practice metrics (``audiodsm.measure.aes17``)
-    fit_sine, thd_plus_noise, thd, sinad_db, enob_bits, dynamic_range, idle_channel_noise,
-    start_residual_meter, update_residual_meter, read_residual_meter,
-    level_linearity, frequency_response, stepped_frequency_response,
-    imd_smpte, imd_difference_frequency, out_of_band_power_dbfs, noise_modulation
+Sine fits (``audiodsm.measure.sine_fit``)
+    fit_sine, SineFit
+Residual meter, block by block (``audiodsm.measure.residual``)
+    start_residual_meter, update_residual_meter, read_residual_meter
+Tone distortion (``audiodsm.measure.tone``)
+    thd_plus_noise, thd, sinad_db, enob_bits
+Noise (``audiodsm.measure.noise``)
+    dynamic_range, idle_channel_noise, out_of_band_power_dbfs, noise_modulation
+Level and frequency response (``audiodsm.measure.response``)
+    level_linearity, frequency_response, stepped_frequency_response
+Intermodulation (``audiodsm.measure.intermod``)
+    imd_smpte, imd_difference_frequency
 Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
@@ -65,6 +72,9 @@ Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
     write_report, render_html, batch_to_dict, batch_to_csv, plot_spectrum,
     plot_thd_n_vs_level, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
     plot_margins, plot_spectrogram
+Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
+``audiodsm.measure.silence``)
+    render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
 Listening by ear (``audiodsm.measure.loudness``, ``audiodsm.measure.alignment``,
 ``audiodsm.evaluate.listening``, ``audiodsm.evaluate.trial_scores``)
     integrated_loudness_lufs, gain_to_loudness_db, find_delay, DelayEstimate, shift_by_frames,
@@ -185,33 +195,33 @@ _PUBLIC = {
     "UpsamplerDesign": "audiodsm.stages.upsample",
     "Upsampler": "audiodsm.stages.upsample",
     "UpsamplerState": "audiodsm.stages.upsample",
-    "design_downsampler": "audiodsm.stages.upsample",
-    "DownsamplerDesign": "audiodsm.stages.upsample",
-    "Downsampler": "audiodsm.stages.upsample",
-    "DownsamplerState": "audiodsm.stages.upsample",
+    "design_downsampler": "audiodsm.stages.downsample",
+    "DownsamplerDesign": "audiodsm.stages.downsample",
+    "Downsampler": "audiodsm.stages.downsample",
+    "DownsamplerState": "audiodsm.stages.downsample",
     "level_dbfs": "audiodsm.measure.spectrum",
     "power_to_dbfs": "audiodsm.measure.spectrum",
     "averaged_spectrum": "audiodsm.measure.spectrum",
     "accumulate_spectrum": "audiodsm.measure.spectrum",
     "Spectrum": "audiodsm.measure.spectrum",
-    "fit_sine": "audiodsm.measure.aes17",
-    "SineFit": "audiodsm.measure.aes17",
-    "thd_plus_noise": "audiodsm.measure.aes17",
-    "thd": "audiodsm.measure.aes17",
-    "sinad_db": "audiodsm.measure.aes17",
-    "enob_bits": "audiodsm.measure.aes17",
-    "dynamic_range": "audiodsm.measure.aes17",
-    "idle_channel_noise": "audiodsm.measure.aes17",
-    "start_residual_meter": "audiodsm.measure.aes17",
-    "update_residual_meter": "audiodsm.measure.aes17",
-    "read_residual_meter": "audiodsm.measure.aes17",
-    "level_linearity": "audiodsm.measure.aes17",
-    "frequency_response": "audiodsm.measure.aes17",
-    "stepped_frequency_response": "audiodsm.measure.aes17",
-    "imd_smpte": "audiodsm.measure.aes17",
-    "imd_difference_frequency": "audiodsm.measure.aes17",
-    "out_of_band_power_dbfs": "audiodsm.measure.aes17",
-    "noise_modulation": "audiodsm.measure.aes17",
+    "fit_sine": "audiodsm.measure.sine_fit",
+    "SineFit": "audiodsm.measure.sine_fit",
+    "thd_plus_noise": "audiodsm.measure.tone",
+    "thd": "audiodsm.measure.tone",
+    "sinad_db": "audiodsm.measure.tone",
+    "enob_bits": "audiodsm.measure.tone",
+    "dynamic_range": "audiodsm.measure.noise",
+    "idle_channel_noise": "audiodsm.measure.noise",
+    "start_residual_meter": "audiodsm.measure.residual",
+    "update_residual_meter": "audiodsm.measure.residual",
+    "read_residual_meter": "audiodsm.measure.residual",
+    "level_linearity": "audiodsm.measure.response",
+    "frequency_response": "audiodsm.measure.response",
+    "stepped_frequency_response": "audiodsm.measure.response",
+    "imd_smpte": "audiodsm.measure.intermod",
+    "imd_difference_frequency": "audiodsm.measure.intermod",
+    "out_of_band_power_dbfs": "audiodsm.measure.noise",
+    "noise_modulation": "audiodsm.measure.noise",
     "load_spec": "audiodsm.spec",
     "parse_spec": "audiodsm.spec",
     "spec_digest": "audiodsm.spec",
@@ -248,6 +258,12 @@ _PUBLIC = {
     "score_answers": "audiodsm.evaluate.trial_scores",
     "binomial_tail_p": "audiodsm.evaluate.trial_scores",
     "PairScore": "audiodsm.evaluate.trial_scores",
+    "render_file": "audiodsm.evaluate.render",
+    "render_files": "audiodsm.evaluate.render",
+    "output_names": "audiodsm.evaluate.render",
+    "analyze_file": "audiodsm.evaluate.analyze",
+    "FileAnalysis": "audiodsm.evaluate.analyze",
+    "SilenceNoiseMeter": "audiodsm.measure.silence",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

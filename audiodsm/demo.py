@@ -74,8 +74,7 @@ def _demo_clips(root: Path, say) -> list:
 
 def _listening_set(root: Path, out: Path, clips, protect, say):
     """Write the demo DAC's listening set (or keep the one already there); its page path."""
-    from audiodsm.cli.listening_set import clip_table
-    from audiodsm.evaluate.listening import PAGE_NAME, key_path_for, make_listening_set
+    from audiodsm.evaluate.listening import PAGE_NAME, key_path_for, make_listening_set, set_table
 
     pair = [root / p for p in LISTENING_PAIR]
     if not all(p.is_file() for p in pair):
@@ -99,7 +98,7 @@ def _listening_set(root: Path, out: Path, clips, protect, say):
     )
     say(f"\n== listening set, demo DAC: spread zeros against zeros at DC "
         f"({time.perf_counter() - t0:.1f} s) ==")  # fmt: skip
-    for line in clip_table(summary):
+    for line in set_table(summary):
         say("  " + line)
     return Path(summary["page"])
 
@@ -137,8 +136,8 @@ def run_demo(
         ``{"reports": {product: {kind: path}}, "listening": [paths], "listening_page": path or
         None, "batches": {product: GradeBatch}, "seconds": float}``.
     """
-    from audiodsm.cli.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.grade import collect_profiles, grade_batch
+    from audiodsm.evaluate.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.report import write_report
     from audiodsm.spec import load_spec
 
@@ -174,7 +173,7 @@ def run_demo(
         )
         batches[product] = batch
         say(f"graded in {time.perf_counter() - t0:.1f} s")
-        from audiodsm.cli.grade import detail_table, summary_table
+        from audiodsm.evaluate.tables import detail_table, summary_table
 
         for line in summary_table(batch):
             say("  " + line)

@@ -24,6 +24,8 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import tomli_w
+
 from audiodsm.errors import ProfileError
 
 __all__ = [
@@ -499,6 +501,34 @@ class ListeningSettings:
         _float_range(15000.0, 40000.0),
         doc="Flat band kept by the listening decimator (Hz).",
     )
+    decimator: str = _key(
+        "half-band",
+        "str",
+        _fmt_choices("half-band", "counting"),
+        _choice("half-band", "counting"),
+        doc="Listening decimator: 'half-band' (the clean cascade) or 'counting' (count the "
+        "stream over counting_length clocks in counting_stages cascaded counters, sinc^K, "
+        "then the clean cascade for any further ratio).",
+    )
+    counting_stages: int = _key(
+        1,
+        "int",
+        "an integer from 1 to 6",
+        _int_range(1, 6),
+        only="counting",
+        only_by="decimator",
+        doc="Cascaded counters K (sinc^K); K >= loop order + 1 keeps folded noise down.",
+    )
+    counting_length: int = _key(
+        64,
+        "int",
+        "a power of two from 2 to 1024",
+        _power_of_two(2, 1024),
+        only="counting",
+        only_by="decimator",
+        doc="Counting window N in modulator clocks (also its decimation ratio); at most the "
+        "modulator rate over the listening rate.",
+    )
 
 
 _SECTIONS = {
@@ -629,14 +659,15 @@ def _parse_section(cls, table, path, section):
         values[name] = value
     settings = cls(**values)
     # keys that belong to another kind of this stage would do nothing: refuse them
-    kind = getattr(settings, "kind", None)
     for name, f in fields.items():
         only = f.metadata.get("only")
+        by = f.metadata.get("only_by", "kind")
+        kind = getattr(settings, by, None)
         if only is not None and name in table and kind != only:
             raise ProfileError(
                 path,
                 f"{section}.{name}",
-                f"applies only when {section}.kind = {only!r}; this profile has kind = {kind!r}",
+                f"applies only when {section}.{by} = {only!r}; this profile has {by} = {kind!r}",
             )
     return settings
 
@@ -833,7 +864,7 @@ _DESIGN_KEYS = ("order", "max_gain", "optimize_zeros")
 def _applies(settings, f) -> bool:
     """Whether field ``f`` does something for these settings (kind-specific keys)."""
     only = f.metadata.get("only")
-    if only is not None and only != getattr(settings, "kind", None):
+    if only is not None and only != getattr(settings, f.metadata.get("only_by", "kind"), None):
         return False
     if isinstance(settings, ModulatorSettings) and settings.explicit_ntf:
         return f.name not in _DESIGN_KEYS
@@ -871,32 +902,9 @@ def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
     return out
 
 
-def _toml_string(text: str) -> str:
-    """A TOML basic string (TOML v1.0.0: escape quote, backslash and control characters)."""
-    out = []
-    for ch in text:
-        code = ord(ch)
-        if ch in '"\\':
-            out.append("\\" + ch)
-        elif code < 0x20 or code == 0x7F:
-            out.append(f"\\u{code:04X}")
-        else:
-            out.append(ch)
-    return '"' + "".join(out) + '"'
-
-
-def _toml_value(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        return repr(value)  # shortest text that round-trips exactly
-    if isinstance(value, str):
-        return _toml_string(value)
-    if isinstance(value, list):
-        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    raise TypeError(f"cannot write {value!r} as TOML")  # pragma: no cover
+def _toml_literal(value) -> str:
+    """One plain value as TOML text, as tomli-w writes it (for the table of keys and defaults)."""
+    return tomli_w.dumps({"v": value}).removeprefix("v = ").removesuffix("\n")
 
 
 def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
@@ -912,7 +920,13 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
     Returns
     -------
     str
-        TOML text ending in a newline.
+        TOML text ending in a newline, written by tomli-w (one key a line, each stage a table,
+        a list one item a line).
+
+    References
+    ----------
+    .. [1] TOML v1.0.0, https://toml.io/en/v1.0.0 (the format tomli-w writes and
+       :mod:`tomllib` reads).
     """
     data = profile_to_dict(profile, full=False)
     if full:
@@ -923,17 +937,13 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
                 for f in dataclasses.fields(cls)
                 if _applies(getattr(profile, section), f)
             }
-    lines = [f"name = {_toml_value(data['name'])}"]
+    document = {"name": data["name"]}
     if data["description"]:
-        lines.append(f"description = {_toml_value(data['description'])}")
+        document["description"] = data["description"]
     for section in _SECTIONS:
-        table = data[section]
-        if not table:
-            continue
-        lines.append("")
-        lines.append(f"[{section}]")
-        lines.extend(f"{k} = {_toml_value(v)}" for k, v in table.items())
-    return "\n".join(lines) + "\n"
+        if data[section]:
+            document[section] = data[section]
+    return tomli_w.dumps(document)
 
 
 def profile_digest(profile: ChainProfile) -> str:
@@ -975,6 +985,6 @@ def schema_rows():
                 f"{section}.{f.name}",
                 f.metadata["kind"],
                 f.metadata["expect"],
-                _toml_value(_plain(default)),
+                _toml_literal(_plain(default)),
                 f.metadata.get("doc", ""),
             )

@@ -14,12 +14,8 @@ import time
 
 import numpy as np
 
-from audiodsm.stages.upsample import (
-    Downsampler,
-    Upsampler,
-    design_downsampler,
-    design_upsampler,
-)
+from audiodsm.stages.downsample import Downsampler, design_downsampler
+from audiodsm.stages.upsample import Upsampler, design_upsampler
 
 RATE = 48000
 OSR = 64

@@ -113,6 +113,28 @@ kind = "nrz"
     assert parse_profile(profile_to_toml(profile)) == profile
 
 
+SHIPPED = sorted(
+    p
+    for p in (Path(__file__).resolve().parents[1] / "profiles").glob("*/*.toml")
+    if p.parent.name != "specs"
+)
+
+
+@pytest.mark.parametrize("path", SHIPPED, ids=[f"{p.parent.name}/{p.name}" for p in SHIPPED])
+def test_shipped_profiles_round_trip_through_the_writer(path):
+    # load(write(p)) == p, compact and full; the written text is also read by Python's own
+    # TOML v1.0.0 parser (tomllib) into a dict that rebuilds the same profile
+    profile = load_profile(path)
+    for full in (False, True):
+        text = profile_to_toml(profile, full=full)
+        assert parse_profile(text) == profile
+        assert profile_from_dict(tomllib.loads(text)) == profile
+
+
+def test_shipped_profiles_are_found():
+    assert len(SHIPPED) >= 5
+
+
 finite = st.floats(allow_nan=False, allow_infinity=False)
 
 

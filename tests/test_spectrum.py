@@ -2,8 +2,11 @@
 
 import math
 
+import librosa
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import signal
 
 from audiodsm.errors import ParameterError
@@ -129,7 +132,6 @@ def test_a_weighted_band_noise_matches_integral_of_librosa_curve(rng):
     # The A-weighted noise of white noise is s^2/(rate/2) * integral of |A(f)|^2 over the
     # band; the curve is taken from librosa.A_weighting (an outside implementation of the
     # IEC 61672-1 formula) and integrated by the trapezoid rule on a 1 Hz grid.
-    librosa = pytest.importorskip("librosa")
     s = 0.01
     x = rng.standard_normal(200_000) * s
     spec = averaged_spectrum(x, rate_hz=RATE, resolution_hz=RATE / 2048)
@@ -183,13 +185,11 @@ def test_spectrum_errors():
 
 def test_any_block_split_gives_the_same_spectrum():
     # property: for random cut points the streamed average is bit-identical to one call
-    hypothesis = pytest.importorskip("hypothesis")
-    st = hypothesis.strategies
     x = np.random.default_rng(11).standard_normal(9000)
     whole = averaged_spectrum(x, rate_hz=RATE, resolution_hz=RATE / 1024)
 
-    @hypothesis.settings(max_examples=30, deadline=None)
-    @hypothesis.given(st.lists(st.integers(0, 9000), max_size=6))
+    @settings(max_examples=30, deadline=None)
+    @given(st.lists(st.integers(0, 9000), max_size=6))
     def check(cuts):
         edges = [0, *sorted(cuts), 9000]
         state = None

@@ -1,11 +1,11 @@
 """Tests of the interpolation chain (audiodsm.stages.upsample: design_upsampler, Upsampler)."""
 
+import librosa
 import numpy as np
 import pytest
 from scipy import signal
 
 from audiodsm.errors import ParameterError
-from audiodsm.stages import _kernels
 from audiodsm.stages.upsample import (
     AUDIO_RATES_HZ,
     OVERSAMPLING_RATIOS,
@@ -20,150 +20,6 @@ PASS_EDGE = 0.4535
 STOP_EDGE = 0.5465
 RIPPLE_DB = 0.005
 ATTEN_DB = 100.0
-
-
-# ---------------------------------------------------------------------------------------------
-# slow twins of the kernels: plain Python, one output at a time, same summation order
-# ---------------------------------------------------------------------------------------------
-
-
-def slow_interpolate_halfband(buf, dense):
-    two_k = dense.size
-    k = two_k // 2
-    n = buf.shape[1] - (two_k - 1)
-    out = np.empty((buf.shape[0], 2 * n))
-    for c in range(buf.shape[0]):
-        for i in range(n):
-            acc = 0.0
-            for m in range(k):
-                acc += dense[m] * (buf[c, i + two_k - 1 - m] + buf[c, i + m])
-            out[c, 2 * i] = acc
-            out[c, 2 * i + 1] = buf[c, i + k]
-    return out
-
-
-def slow_interpolate_polyphase(buf, phases, lengths):
-    ratio, taps = phases.shape
-    n = buf.shape[1] - (taps - 1)
-    out = np.empty((buf.shape[0], ratio * n))
-    for c in range(buf.shape[0]):
-        for i in range(n):
-            for p in range(ratio):
-                acc = 0.0
-                for m in range(lengths[p]):
-                    acc += phases[p, m] * buf[c, i + taps - 1 - m]
-                out[c, ratio * i + p] = acc
-    return out
-
-
-def test_halfband_kernel_matches_slow_twin(rng):
-    dense = rng.standard_normal(10)
-    dense = dense + dense[::-1]
-    buf = rng.standard_normal((2, 9 + 1100))  # crosses the 512-sample chunk boundary twice
-    out = np.empty((2, 2 * 1100))
-    _kernels.interpolate_halfband(buf, dense, out)
-    assert np.array_equal(out, slow_interpolate_halfband(buf, dense))
-
-
-def test_polyphase_kernel_matches_slow_twin(rng):
-    phases = rng.standard_normal((4, 5))
-    lengths = np.array([5, 4, 4, 3])
-    phases[1, 4:] = phases[2, 4:] = phases[3, 3:] = 0.0
-    buf = rng.standard_normal((3, 4 + 700))
-    out = np.empty((3, 4 * 700))
-    _kernels.interpolate_polyphase(buf, phases, lengths, out)
-    assert np.array_equal(out, slow_interpolate_polyphase(buf, phases, lengths))
-
-
-@pytest.mark.parametrize("pratio", [3, 2])  # ratio 2 has its own interleaved store
-def test_cascade_kernel_matches_slow_twins_stage_by_stage(rng, pratio):
-    # half-band (x2), polyphase FIR (x pratio), hold (x2): the fused one-pass kernel must give
-    # the bits of the slow twins run stage after stage, with histories carried in and out,
-    # and across several internal chunks (the output is longer than _INTERP_CHUNK_OUT)
-    dense = rng.standard_normal(6)
-    dense = dense + dense[::-1]
-    phases = rng.standard_normal((pratio, 4))
-    plens = np.array([4, 4, 3][:pratio])
-    phases[-1, 3:] = 0.0
-    plens[-1] = 3
-    kinds = np.array([0, 1, 2])
-    ratios = np.array([2, pratio, 2])
-    taps = np.array([6, 4, 0])
-    tables = np.zeros((3, 3, 6))
-    tables[0, 0, :6] = dense
-    tables[1, :pratio, :4] = phases
-    lengths = np.zeros((3, 3), dtype=np.int64)
-    lengths[1, :pratio] = plens
-    total = 4 * pratio
-    n = _kernels._INTERP_CHUNK_OUT // total * 2 + 37
-    x = rng.standard_normal((2, n))
-    hist0 = rng.standard_normal((2, 5))
-    hist1 = rng.standard_normal((2, 3))
-    held = np.zeros((3, 2, 5))
-    held[0] = hist0
-    held[1, :, :3] = hist1
-    buf0 = np.concatenate([hist0, x], axis=1)
-    y0 = slow_interpolate_halfband(buf0, dense)
-    buf1 = np.concatenate([hist1, y0], axis=1)
-    y1 = slow_interpolate_polyphase(buf1, phases, plens)
-    expected = np.repeat(y1, 2, axis=1)  # a hold repeats each sample
-    out = np.empty((n * total, 2)).T  # written through a transpose, as the Upsampler does
-    rest = np.full((3, 2, 5), np.nan)
-    _kernels.interpolate_cascade(x, kinds, ratios, taps, tables, lengths, held, out, rest)
-    assert np.array_equal(out, expected)
-    assert np.array_equal(rest[0], buf0[:, -5:])
-    assert np.array_equal(rest[1, :, :3], buf1[:, -3:])
-
-
-def test_halfband_interpolator_is_the_textbook_polyphase_fir(rng):
-    # Crochiere & Rabiner (1983) sec. 3.3: interpolation by 2 = zero insertion, then the
-    # FIR at the high rate (gain 2). scipy.signal.upfirdn does exactly that; the polyphase
-    # kernel must agree up to rounding (its sums are paired differently).
-    design = design_upsampler(48000, 16)
-    h = design.halfband_taps[0]
-    g = 2.0 * h[0::2]
-    x = rng.standard_normal(300)
-    buf = np.concatenate([np.zeros(g.size - 1), x])[None, :]
-    out = np.empty((1, 600))
-    _kernels.interpolate_halfband(buf, g, out)
-    ref = signal.upfirdn(2.0 * h, x, up=2)[:600]
-    assert np.max(np.abs(out[0] - ref)) < 1e-13
-
-
-@pytest.mark.parametrize("pass_frac", [PASS_EDGE / 2, STOP_EDGE / 16])
-def test_halfband_designs_are_true_halfbands(pass_frac):
-    # Half-band identities (Vaidyanathan & Nguyen, IEEE Trans. CAS 34(3), 1987): every other
-    # tap is zero except the centre tap 1/2, so H(f) + H(1/2 - f) = 1 for the zero-phase
-    # amplitude; pass and stop errors are equal. Stage 1 (Remez path) and a late stage
-    # (linear-programme path) both.
-    from audiodsm.stages.upsample import _halfband, _halfband_full
-
-    max_error = 10 ** (-103 / 20)
-    h = _halfband_full(_halfband(pass_frac, max_error))
-    centre = h.size // 2
-    offsets = np.arange(h.size) - centre
-    assert h[centre] == 0.5
-    assert np.all(h[(offsets % 2 == 0) & (offsets != 0)] == 0.0)
-    f = np.linspace(0, 0.5, 2001)
-    amp = np.real(signal.freqz(h, worN=f, fs=1.0)[1] * np.exp(2j * np.pi * f * centre))
-    assert np.allclose(amp + amp[::-1], 1.0, atol=1e-12)
-    assert np.max(np.abs(amp[f <= pass_frac] - 1)) <= max_error
-    assert np.max(np.abs(amp[f >= 0.5 - pass_frac])) <= max_error
-
-
-def test_linear_programme_reaches_the_parks_mcclellan_optimum():
-    # The Parks-McClellan optimum of a length (scipy.signal.remez) is the smallest error any
-    # design of that length reaches. The linear programme used for narrow bands, run on a
-    # band where Remez also works, must reach the same error: within 3 %, the size of the
-    # differences both methods' finite frequency grids make.
-    from audiodsm.stages.upsample import _halfband_error, _halfband_minimax
-
-    pass_frac = STOP_EDGE / 4  # stage 2: dense-phase band 0.273 cycles/sample
-    for two_k in (8, 14, 20):
-        ours = _halfband_error(_halfband_minimax(two_k, pass_frac), pass_frac)
-        ref = signal.remez(two_k, [0, 2 * pass_frac], [1.0], fs=1.0)
-        best = _halfband_error(ref, pass_frac)
-        assert ours == pytest.approx(best, rel=0.03), two_k
 
 
 # ---------------------------------------------------------------------------------------------
@@ -299,7 +155,6 @@ def test_passband_agrees_with_soxr_through_librosa(rng):
     # is linear phase and removes its own delay. Its passband ripple is far below ours (from
     # memory: well under 0.001 dB to about 0.45 fs), so the tolerance is our +/-0.005 dB spec
     # plus a little; tones up to 0.44 fs.
-    librosa = pytest.importorskip("librosa")
     rate, osr = 48000, 16
     design = design_upsampler(rate, osr)
     up = Upsampler(design)

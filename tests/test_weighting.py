@@ -15,9 +15,10 @@ from audiodsm.measure.weighting import (
     weighting_filter,
 )
 
-# IEC 61672-1:2013, Table 3: nominal A-weightings (dB) at the nominal one-third-octave
-# frequencies 10 Hz .. 20 kHz, i.e. n = -20 .. 13 in f = 1000 * 10^(n/10). The standard
-# computes them at these exact base-10 frequencies and rounds to 0.1 dB (from memory).
+# One edition throughout this file: IEC 61672-1:2002 (values from memory, not re-checked
+# against a copy of the standard). Table 2 there: nominal A-weightings (dB) at the nominal
+# one-third-octave frequencies 10 Hz .. 20 kHz, i.e. n = -20 .. 13 in f = 1000 * 10^(n/10),
+# computed at these exact base-10 frequencies and rounded to 0.1 dB.
 IEC_A_TABLE = [
     -70.4, -63.4, -56.7, -50.5, -44.7, -39.4, -34.6, -30.2, -26.2, -22.5,
     -19.1, -16.1, -13.4, -10.9, -8.6, -6.6, -4.8, -3.2, -1.9, -0.8,
@@ -26,8 +27,8 @@ IEC_A_TABLE = [
 ]  # fmt: skip
 IEC_EXPONENTS = np.arange(-20, 14)
 
-# IEC 61672-1:2013, Table 3: class-1 acceptance limits (upper, lower) in dB at the same
-# frequencies, from memory. -inf means no lower limit.
+# IEC 61672-1:2002, Table 2: class-1 tolerance limits (upper, lower) in dB at the same
+# frequencies, from memory. INF means no lower limit.
 INF = np.inf
 IEC_CLASS1 = [
     (3.5, INF), (3.0, INF), (2.5, 4.5), (2.5, 2.5), (2.5, 2.0), (2.0, 2.0), (1.5, 1.5),
@@ -36,9 +37,6 @@ IEC_CLASS1 = [
     (1.4, 1.4), (1.6, 1.6), (1.6, 1.6), (1.6, 1.6), (1.6, 1.6), (1.6, 1.6), (2.1, 2.1),
     (2.1, 2.6), (2.1, 3.1), (2.6, 3.6), (3.0, 6.0), (3.5, 17.0), (4.0, INF),
 ]  # fmt: skip
-# These are the 2013 acceptance limits as recalled; the tighter figures listed in
-# ../shared/REFERENCES.md (+/-0.7 dB at 1 kHz, +2.0/-5.0 dB at 12.5 kHz, also from memory) are
-# checked as well.
 
 # ITU-R BS.468-4, Table 1: the weighting curve (dB, 0 dB at 1 kHz) and its tolerance
 # (+, -) in dB, from memory. The tolerances hold with the response set to +12.2 dB at 6.3 kHz.
@@ -80,7 +78,7 @@ def _response_db(sos, freqs, rate):
 def test_a_curve_matches_iec_table_at_exact_base10_frequencies():
     f = 1000.0 * 10.0 ** (IEC_EXPONENTS / 10.0)
     got = a_weighting_db(f)
-    # IEC 61672-1:2013 Table 3 (rounded to 0.1 dB): the exact curve must round to the table,
+    # IEC 61672-1:2002 Table 2 (rounded to 0.1 dB): the exact curve must round to the table,
     # so it lies within half a rounding step (0.05 dB). Add the curve's own offset at 1 kHz
     # (A1000 is rounded to -2.000 dB; the curve reads +0.0003 dB at 1 kHz): at 160 Hz the
     # curve is -13.34996 dB and the table's -13.4 comes from the unrounded normalisation.
@@ -141,12 +139,9 @@ def test_digital_a_filter_within_iec_class1(rate):
     dev = _response_db(weighting_filter("a", rate), f, rate) - a_weighting_db(f)
     upper = np.array([u for u, _ in IEC_CLASS1])
     lower = np.array([lo for _, lo in IEC_CLASS1])
-    # IEC 61672-1:2013 Table 3 class-1 limits (from memory), 10 Hz .. 20 kHz
+    # IEC 61672-1:2002 Table 2 class-1 limits (from memory), 10 Hz .. 20 kHz. The filter's
+    # own design target (0.1 dB from the analytic curve, next test) is far tighter.
     assert np.all(dev <= upper) and np.all(dev >= -lower)
-    # the tighter figures quoted in REFERENCES.md (from memory): +/-0.7 dB at 1 kHz,
-    # +2.0/-5.0 dB at 12.5 kHz, +2.0/-3.0 dB at 10 kHz
-    assert abs(dev[20]) <= 0.7
-    assert -5.0 <= dev[31] <= 2.0 and -3.0 <= dev[30] <= 2.0
 
 
 @pytest.mark.parametrize("kind", ["a", "ccir"])
@@ -283,7 +278,7 @@ def test_apply_weighting_refuses_foreign_state_and_bad_input(rng):
 def test_power_gain_reads_the_iec_table_as_power():
     from audiodsm.measure.weighting import weighting_power_gain
 
-    # IEC 61672-1:2013, table 3 (values from memory, printed to 0.1 dB, hence +-0.05 dB):
+    # IEC 61672-1:2002, Table 2 (values from memory, printed to 0.1 dB, hence +-0.05 dB):
     # A-weighting -19.1 dB at 100 Hz, 0.0 dB at 1 kHz, -2.5 dB at 10 kHz.
     f = np.array([0.0, 100.0, 1000.0, 10000.0])
     gain = weighting_power_gain(f, "a")

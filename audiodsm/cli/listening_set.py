@@ -1,7 +1,8 @@
 """``audiodsm listening-set``: write a folder of aligned, loudness-matched clips with a page.
 
 The job is :func:`audiodsm.evaluate.listening.make_listening_set`; this module parses the
-options, prints the alignment and loudness table and says where the page and the key are.
+options, prints the library's alignment and loudness table and says where the page and the key
+are.
 """
 
 from __future__ import annotations
@@ -11,53 +12,6 @@ import json
 import click
 
 __all__ = ["listening_set"]
-
-#: Printed on stderr every time a set is written.
-PAGE_CAUTION = (
-    "Caution: turn the volume down before the first playback. Test tones and amplified error "
-    "files can be loud and narrow-band; they can damage hearing and tweeters. The page starts "
-    "at a low level and plays nothing by itself."
-)
-
-
-def _f(v, spec=".2f"):
-    return "-" if v is None else format(v, spec)
-
-
-def clip_table(summary: dict) -> list[str]:
-    """Aligned text lines: per input, each clip's delay, gain, loudness and peak after gain."""
-    lines = []
-    for inp in summary["inputs"]:
-        lines.append(
-            f"{inp['input']}: {inp['frames']} frames at {inp['rate_hz']} Hz, loudness matched "
-            f"to {inp['target_loudness_lufs']:.2f} LUFS"
-            + (
-                f" (all lowered {-inp['common_headroom_db']:.2f} dB more to avoid clipping)"
-                if inp["common_headroom_db"]
-                else ""
-            )
-        )
-        head = ["clip", "kind", "delay ms", "corr", "gain dB", "LUFS before", "LUFS", "peak dBFS"]
-        rows = [head]
-        for c in inp["clips"]:
-            rows.append(
-                [
-                    c["label"],
-                    c["kind"],
-                    _f(c["delay_ms"], ".3f"),
-                    _f(c["correlation"], ".4f"),
-                    _f(c["gain_db"]),
-                    _f(c.get("loudness_before_lufs")),
-                    _f(c["loudness_lufs"]),
-                    _f(c["peak_dbfs"]) + (" CLIPS" if c["clipped_samples"] else ""),
-                ]
-            )
-        widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
-        for r in rows:
-            cells = [r[0].ljust(widths[0]), r[1].ljust(widths[1])]
-            cells += [cell.rjust(w) for cell, w in zip(r[2:], widths[2:], strict=True)]
-            lines.append("  " + "  ".join(cells))
-    return lines
 
 
 @click.command("listening-set")
@@ -102,7 +56,7 @@ def listening_set(
     file system: open comparison with seamless switching and spectrograms, and blind A/B/X
     trials whose answers are scored by `audiodsm score-answers`.
     """
-    from audiodsm.evaluate.listening import make_listening_set
+    from audiodsm.evaluate.listening import PAGE_CAUTION, make_listening_set, set_table
 
     click.echo(PAGE_CAUTION, err=True)
     summary = make_listening_set(
@@ -120,7 +74,7 @@ def listening_set(
     if as_json:
         click.echo(json.dumps(summary))
         return
-    for line in clip_table(summary):
+    for line in set_table(summary):
         click.echo(line)
     click.echo(f"{summary['trials']} blind trials over {len(summary['pairs'])} pair(s)")
     click.echo(f"page: {summary['page']}")

@@ -26,14 +26,11 @@ def score_answers(answers_path, key_path, as_json):
     the command says why and exits with status 2.
     """
     from audiodsm.evaluate.trial_scores import score_answers as score
+    from audiodsm.evaluate.trial_scores import scores_table
 
     scores = score(answers_path, key_path)
     if as_json:
         click.echo(json.dumps({"pairs": [s.to_dict() for s in scores]}))
         return
-    width = max(len(s.pair) for s in scores)
-    click.echo(f"{'pair'.ljust(width)}  trials  right  p (one-sided)")
-    for s in scores:
-        click.echo(f"{s.pair.ljust(width)}  {s.trials:6d}  {s.correct:5d}  {s.p_value:.4g}")
-    for s in scores:
-        click.echo(f"{s.pair}: {s.verdict}")
+    for line in scores_table(scores):
+        click.echo(line)

@@ -399,7 +399,7 @@ def _meter(x, rate, frequency_hz, weightings, settle_s):
     out of the sine fits: a fit over a stretch that holds it is biased, and the bias would
     stay in the residual as a tone about 110 dB below the fundamental.
     """
-    from audiodsm.measure.aes17 import (
+    from audiodsm.measure.residual import (
         read_residual_meter,
         start_residual_meter,
         update_residual_meter,
@@ -461,7 +461,7 @@ def _lines(x, rate, *, false_alarm, exclude_hz=()):
 
 def _remove_fundamental(x, rate, settle):
     """The capture after ``settle`` frames with a 3-parameter 997 Hz fit removed."""
-    from audiodsm.measure.aes17 import fit_sine
+    from audiodsm.measure.sine_fit import fit_sine
 
     seg = np.ascontiguousarray(x[settle:])
     return fit_sine(seg, rate_hz=rate, frequency_hz=_TEST_HZ, four_parameter=False).residual
@@ -511,7 +511,7 @@ def _test_dynamic_range(ctx, profile):
     a = a[min(skip, len(a) // 2) :]
     upper = min(plan.out_of_band_upper_hz, fm / 2)
     # One averaged spectrum (Welch, 4-term Blackman-Harris) serves the out-of-band power and
-    # the spectrum curve; its band power is what measure.aes17.out_of_band_power_dbfs reads.
+    # the spectrum curve; its band power is what measure.noise.out_of_band_power_dbfs reads.
     spec = averaged_spectrum(a, rate_hz=fm, resolution_hz=_SPECTRUM_RESOLUTION_HZ)
     out["out_of_band_noise_dbfs"] = spec.band_noise_dbfs(_BAND[1], upper)
     notes.append(
@@ -672,7 +672,7 @@ def _response_frequencies():
 
 
 def _test_response(ctx, profile):
-    from audiodsm.measure.aes17 import frequency_response
+    from audiodsm.measure.response import frequency_response
     from audiodsm.signals import multitone
 
     plan, rate = ctx.plan, ctx.rate
@@ -746,7 +746,7 @@ def _test_images(ctx, profile):
 
 
 def _test_imd(ctx, profile):
-    from audiodsm.measure.aes17 import imd_difference_frequency, imd_smpte
+    from audiodsm.measure.intermod import imd_difference_frequency, imd_smpte
     from audiodsm.signals import twin_tone_difference, twin_tone_smpte
 
     plan, rate = ctx.plan, ctx.rate

@@ -50,6 +50,8 @@ __all__ = [
     "spectrogram_dbfs",
     "answers_check",
     "make_listening_set",
+    "set_table",
+    "PAGE_CAUTION",
 ]
 
 #: Largest loudness difference left between matched clips (LU).
@@ -62,6 +64,13 @@ PAGE_NAME = "listening.html"
 #: Default largest delay searched when aligning a candidate with its input (seconds).
 MAX_DELAY_S = 0.5
 _TEMPLATES = Path(__file__).resolve().parent / "templates"
+
+#: Printed on stderr every time a set is written.
+PAGE_CAUTION = (
+    "Caution: turn the volume down before the first playback. Test tones and amplified error "
+    "files can be loud and narrow-band; they can damage hearing and tweeters. The page starts "
+    "at a low level and plays nothing by itself."
+)
 
 
 @dataclass(frozen=True)
@@ -139,8 +148,7 @@ def render_listening_file(profile, input_path, work_dir, *, rate_hz, error_gain_
     ----------
     .. [1] docs/render.md (the render summary's keys).
     """
-    # TODO(render move): point at audiodsm.evaluate.render once the job moves there.
-    from audiodsm.cli.render import output_names, render_file
+    from audiodsm.evaluate.render import output_names, render_file
     from audiodsm.profile import profile_digest
 
     work = Path(work_dir)
@@ -683,3 +691,53 @@ def _clip_row(tmp, stem, label, kind, y, rate, gain_db, delay, path, wavs, offse
 def _page_clip(row: dict) -> dict:
     keys = ("id", "label", "kind", "file", "gain_db", "delay_ms", "rms_dbfs", "peak_dbfs")
     return {k: row[k] for k in keys} | {"loudness_lufs": row["loudness_lufs"]}
+
+
+def _f(v, spec=".2f"):
+    return "-" if v is None else format(v, spec)
+
+
+def set_table(summary: dict) -> list[str]:
+    """Aligned text lines: per input, each clip's delay, gain, loudness and peak after gain.
+
+    Parameters
+    ----------
+    summary : dict
+        As returned by :func:`make_listening_set`.
+
+    Returns
+    -------
+    list of str
+    """
+    lines = []
+    for inp in summary["inputs"]:
+        lines.append(
+            f"{inp['input']}: {inp['frames']} frames at {inp['rate_hz']} Hz, loudness matched "
+            f"to {inp['target_loudness_lufs']:.2f} LUFS"
+            + (
+                f" (all lowered {-inp['common_headroom_db']:.2f} dB more to avoid clipping)"
+                if inp["common_headroom_db"]
+                else ""
+            )
+        )
+        head = ["clip", "kind", "delay ms", "corr", "gain dB", "LUFS before", "LUFS", "peak dBFS"]
+        rows = [head]
+        for c in inp["clips"]:
+            rows.append(
+                [
+                    c["label"],
+                    c["kind"],
+                    _f(c["delay_ms"], ".3f"),
+                    _f(c["correlation"], ".4f"),
+                    _f(c["gain_db"]),
+                    _f(c.get("loudness_before_lufs")),
+                    _f(c["loudness_lufs"]),
+                    _f(c["peak_dbfs"]) + (" CLIPS" if c["clipped_samples"] else ""),
+                ]
+            )
+        widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
+        for r in rows:
+            cells = [r[0].ljust(widths[0]), r[1].ljust(widths[1])]
+            cells += [cell.rjust(w) for cell, w in zip(r[2:], widths[2:], strict=True)]
+            lines.append("  " + "  ".join(cells))
+    return lines

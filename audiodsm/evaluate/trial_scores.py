@@ -28,6 +28,7 @@ __all__ = [
     "read_key",
     "read_answers",
     "score_answers",
+    "scores_table",
 ]
 
 #: The level below which a pair's result counts as a heard difference (common practice).
@@ -248,3 +249,22 @@ def score_answers(answers_path, key_path) -> list[PairScore]:
         p = binomial_tail_p(n, k)
         out.append(PairScore(pair, n, k, p, p < SIGNIFICANCE, _verdict(n, k, p)))
     return out
+
+
+def scores_table(scores) -> list[str]:
+    """Text lines: a table of trials, right answers and p-value per pair, then the verdicts.
+
+    Parameters
+    ----------
+    scores : sequence of PairScore
+
+    Returns
+    -------
+    list of str
+    """
+    width = max([len("pair")] + [len(s.pair) for s in scores])
+    lines = [f"{'pair'.ljust(width)}  trials  right  p (one-sided)"]
+    for s in scores:
+        lines.append(f"{s.pair.ljust(width)}  {s.trials:6d}  {s.correct:5d}  {s.p_value:.4g}")
+    lines += [f"{s.pair}: {s.verdict}" for s in scores]
+    return lines

@@ -401,14 +401,10 @@ class Chain:
     """
 
     def __init__(self, profile, rate_hz, channels, *, listening_rate_hz=None, threads=None):
+        from audiodsm.stages.downsample import Downsampler, design_downsampler
         from audiodsm.stages.modulator import Modulator
         from audiodsm.stages.reconstruct import semi_digital_fir
-        from audiodsm.stages.upsample import (
-            Downsampler,
-            Upsampler,
-            design_downsampler,
-            design_upsampler,
-        )
+        from audiodsm.stages.upsample import Upsampler, design_upsampler
 
         if not isinstance(profile, ChainProfile):
             raise ParameterError("profile", type(profile).__name__, "a ChainProfile")
@@ -470,12 +466,26 @@ class Chain:
             self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
             self.analog_filter = _analog_filter(profile)
         with _settings_of(profile, "listening"):
-            self.downsampler_design = design_downsampler(
-                self.modulator_rate_hz,
-                self.listening_rate_hz,
-                passband_hz=profile.listening.passband_hz,
-            )
-            self._downsampler = Downsampler(self.downsampler_design)
+            listen = profile.listening
+            if listen.decimator == "counting":  # same interface as the half-band cascade
+                from audiodsm.stages.counting import (
+                    CountingDownsampler,
+                    design_counting_downsampler,
+                )
+
+                self.downsampler_design = design_counting_downsampler(
+                    self.modulator_rate_hz,
+                    self.listening_rate_hz,
+                    length=listen.counting_length,
+                    stages=listen.counting_stages,
+                    passband_hz=listen.passband_hz,
+                )
+                self._downsampler = CountingDownsampler(self.downsampler_design)
+            else:
+                self.downsampler_design = design_downsampler(
+                    self.modulator_rate_hz, self.listening_rate_hz, passband_hz=listen.passband_hz
+                )
+                self._downsampler = Downsampler(self.downsampler_design)
         with _settings_of(profile, "output"):
             self._calibrate()  # runs the output stage on its levels
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
