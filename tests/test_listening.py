@@ -235,6 +235,12 @@ def test_excerpt_and_cli(tmp_path, material):
     assert summary["inputs"][0]["frames"] == round(0.8 * RATE)
     r = CliRunner().invoke(main, [*args, "--out-dir", str(out)])
     assert r.exit_code == 2 and "never replaced" in r.output
+    r = CliRunner().invoke(
+        main, [*args, "--out-dir", str(tmp_path / "json-set"), "--trials", "0", "--json"]
+    )
+    assert r.exit_code == 0, r.output
+    doc = json.loads(r.stdout)
+    assert doc["trials"] == 0 and doc["key"].endswith("json-set.key.json")
 
 
 def test_profiles_are_rendered_then_reused(tmp_path):

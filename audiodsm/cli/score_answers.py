@@ -20,7 +20,9 @@ __all__ = ["score_answers"]
 )
 @click.option("--json", "as_json", is_flag=True, help="Print the scores as JSON.")
 def score_answers(answers_path, key_path, as_json):
-    """Per pair: trials, right answers, exact one-sided binomial p-value and a verdict.
+    """Score the blind-trial ANSWERS saved from a listening page against the set's key.
+
+    Per pair: trials, right answers, the exact one-sided binomial p-value and a verdict.
 
     The answers must belong to the key (same set and trials, unedited, complete); otherwise
     the command says why and exits with status 2.
