@@ -4,12 +4,13 @@ The public names below are loaded on first use, so ``import audiodsm`` stays che
 They follow the signal chain:
 
 Noise-transfer design (``audiodsm.design.ntf``)
-    design_ntf, ntf_from_zeros_poles, optimal_zero_positions, NoiseTransfer
+    NoiseTransfer (NoiseTransfer.designed, NoiseTransfer.from_roots,
+    NoiseTransfer.spread_zero_fractions)
 Loop realization (``audiodsm.design.realize``)
-    realize_ntf, LoopRealization, STRUCTURES
+    LoopRealization (LoopRealization.for_ntf), LinearLoop, STRUCTURES
 Modulation (``audiodsm.stages.modulator``)
-    Modulator, ModulatorState, max_stable_amplitude, find_stability_limit, StabilityLimit,
-    scale_states
+    Modulator (Modulator.probe_stability, Modulator.with_scaled_states), ModulatorState,
+    StabilityProbe
 Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
@@ -53,9 +54,9 @@ Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.meas
     ChannelContent, analyze_blocks, ChannelAnalysis
 Test battery (``audiodsm.evaluate.battery``)
     run_battery, BatteryPlan, BatteryResult, battery_rate_hz
-Design search (``audiodsm.evaluate.search``)
+Design search (``audiodsm.evaluate.search``, ``audiodsm.evaluate.design_job``)
     search_designs, confirm_candidates, predicted_dynamic_range_db, loop_cost, Candidate,
-    Confirmation
+    Confirmation, DesignRequest, DesignOutcome, run_design_job
 Audio files (``audiodsm.io``)
     read_audio, read_audio_span, audio_info, AudioInfo, iter_audio_blocks,
     write_audio_atomic, open_audio_writer
@@ -109,16 +110,13 @@ _PUBLIC = {
     "iter_audio_blocks": "audiodsm.io",
     "write_audio_atomic": "audiodsm.io",
     "open_audio_writer": "audiodsm.io",
-    "design_ntf": "audiodsm.design.ntf",
-    "ntf_from_zeros_poles": "audiodsm.design.ntf",
     "NoiseTransfer": "audiodsm.design.ntf",
-    "optimal_zero_positions": "audiodsm.design.ntf",
-    "realize_ntf": "audiodsm.design.realize",
     "LoopRealization": "audiodsm.design.realize",
+    "LinearLoop": "audiodsm.design.realize",
     "STRUCTURES": "audiodsm.design.realize",
     "Modulator": "audiodsm.stages.modulator",
     "ModulatorState": "audiodsm.stages.modulator",
-    "max_stable_amplitude": "audiodsm.stages.modulator",
+    "StabilityProbe": "audiodsm.stages.modulator",
     "PulseWaveform": "audiodsm.stages.output_stage",
     "pdm_waveform": "audiodsm.stages.output_stage",
     "nrz_waveform": "audiodsm.stages.output_stage",
@@ -145,9 +143,6 @@ _PUBLIC = {
     "RippleReport": "audiodsm.stages.reconstruct",
     "filter_report": "audiodsm.stages.reconstruct",
     "FilterReport": "audiodsm.stages.reconstruct",
-    "find_stability_limit": "audiodsm.stages.modulator",
-    "StabilityLimit": "audiodsm.stages.modulator",
-    "scale_states": "audiodsm.stages.modulator",
     "ChainProfile": "audiodsm.profile",
     "Chain": "audiodsm.stages.chain",
     "ChainResult": "audiodsm.stages.chain",
@@ -162,6 +157,9 @@ _PUBLIC = {
     "loop_cost": "audiodsm.evaluate.search",
     "Candidate": "audiodsm.evaluate.search",
     "Confirmation": "audiodsm.evaluate.search",
+    "DesignRequest": "audiodsm.evaluate.design_job",
+    "DesignOutcome": "audiodsm.evaluate.design_job",
+    "run_design_job": "audiodsm.evaluate.design_job",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
     "profile_to_toml": "audiodsm.profile",

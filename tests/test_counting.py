@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 
-from audiodsm.design.ntf import ntf_from_zeros_poles
+from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.errors import ParameterError, ProfileError
 from audiodsm.measure.sine_fit import fit_sine
 from audiodsm.profile import profile_from_dict
@@ -152,7 +152,7 @@ def test_first_order_stream_counts_its_dc_level(x_dc):
     # first-order analysis: J. C. Candy 1981; R. M. Gray, IEEE Trans. Commun. 37(6), 1989,
     # both in REFERENCES.md.)
     n = 64
-    mod = Modulator(ntf_from_zeros_poles([1.0], [0.0]), levels=2)
+    mod = Modulator(NoiseTransfer.from_roots(zeros=[1.0], poles=[0.0]), levels=2)
     bits, _ = mod.run(np.full(64 * 200, x_dc))
     codes = ((bits + 1.0) / 2.0).astype(np.int64)
     dec = CountingDecimator(n, 1)

@@ -248,11 +248,11 @@ def test_profiles_are_rendered_then_reused(tmp_path):
     src.mkdir()
     inp = write_audio_atomic(src / "bit.wav", programme(seconds=0.6), RATE, subtype="FLOAT")
     profiles = []
-    for name, zeros in (("dc", "false"), ("spread", "true")):
+    for name in ("dc", "spread"):
         p = src / f"{name}.toml"
         p.write_text(
             f'name = "{name}"\n[upsampler]\nosr = 32\n[modulator]\norder = 3\n'
-            f'optimize_zeros = {zeros}\nlevels = 2\n[output]\nkind = "pdm"\n'
+            f'zero_layout = "{name}"\nlevels = 2\n[output]\nkind = "pdm"\n'
         )
         profiles.append(p)
     lines = []

@@ -591,39 +591,38 @@ def _test_dc(ctx, profile, offsets):
 
 def _test_stability(ctx, profile):
     from audiodsm.stages.chain import Chain
-    from audiodsm.stages.modulator import find_stability_limit
 
     plan = ctx.plan
     chain = Chain.from_profile(profile, ctx.rate, 1, listening_rate_hz=ctx.rate, threads=1)
-    limit = find_stability_limit(chain.modulator, osr=chain.osr, samples=plan.stability_samples)
+    limit = chain.modulator.probe_stability(osr=chain.osr, run_samples=plan.stability_samples)
     # the chain scales its input by input_scale before the loop (headroom the calibration
     # divides out again), so an amplitude at the loop is amplitude / input_scale at the input
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
     out = {
-        "msa": float(limit.amplitude) / scale,
-        "msa_modulator": float(limit.amplitude),
+        "msa": float(limit.stable_amplitude) / scale,
+        "msa_modulator": float(limit.stable_amplitude),
         "input_scale": scale,
-        "msa_state_peak": np.asarray(limit.state_peak, dtype=float),
+        "msa_state_peak": np.asarray(limit.state_peaks, dtype=float),
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "notes": [
             f"stability: bisection on a sine near a fifth of the band edge, "
             f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
             "stable = no guard action and in-band SQNR within 6 dB of the linear extrapolation; "
-            f"the loop's own limit {limit.amplitude:.4f} of its full scale, divided by the "
+            f"the loop's own limit {limit.stable_amplitude:.4f} of its full scale, divided by the "
             f"chain's input scale {scale:g} to refer it to the chain input"
         ],
     }
     out["curve_stability"] = {
-        "loop_amplitude": np.array([float(limit.amplitude)]),
+        "loop_amplitude": np.array([float(limit.stable_amplitude)]),
         "input_scale": np.array([scale]),
-        "state_peak": np.asarray(limit.state_peak, dtype=float),
+        "state_peak": np.asarray(limit.state_peaks, dtype=float),
         "sqnr_db": np.array([float(limit.sqnr_db)]),
     }
-    if limit.amplitude > 0:
+    if limit.stable_amplitude > 0:
         n = plan.histogram_samples
         t = np.arange(n)
-        x = limit.amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
+        x = limit.stable_amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
         _, states = chain.modulator.trace_states(x)
         states = np.asarray(states, dtype=float).reshape(n, -1)
         edges, counts = [], []
@@ -637,7 +636,7 @@ def _test_stability(ctx, profile):
             "edges": np.array(edges),
             "counts": np.array(counts),
             "peak": np.max(np.abs(states), axis=0),
-            "amplitude": np.array([limit.amplitude]),
+            "amplitude": np.array([limit.stable_amplitude]),
         }
     return out
 
