@@ -69,6 +69,7 @@ def test_page_plays_a_trial_answers_and_saves_without_the_key(browser, listening
     by_id("id", "play").click()
     wait_for(browser, "return audiodsmPage.playing() && audiodsmPage.contextTime() > 0.3")
     assert browser.execute_script("return audiodsmPage.loadedClips()") >= 3
+    assert by_id("id", "trial-about").text == "A = tone.one, B = tone.two; input: tone.wav"
     by_id("id", "hear-X").click()
     assert browser.execute_script("return audiodsmPage.selected()") == "t01"
     t0 = browser.execute_script("return audiodsmPage.contextTime()")

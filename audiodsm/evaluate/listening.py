@@ -635,7 +635,17 @@ def _write_folder(tmp: Path, preps, cands, trials_per_pair, rng, set_id):
                 _data_script(tid, wavs[a_id if x_is == "A" else b_id]), encoding="ascii"
             )
             pair = f"{cands[ia].label} / {cands[ib].label}"
-            trials.append({"trial": tid, "pair": pair, "input": inp["name"], "a": a_id, "b": b_id})
+            trials.append(
+                {
+                    "trial": tid,
+                    "pair": pair,
+                    "input": inp["name"],
+                    "a": a_id,
+                    "b": b_id,
+                    "a_label": cands[ia].label,
+                    "b_label": cands[ib].label,
+                }
+            )
             key_trials.append({**trials[-1], "x_is": x_is})
     manifest = {
         "set_id": set_id,

@@ -176,7 +176,7 @@
     const n = trialNames(t);
     const sources = ["page/data/" + t.a + ".js", "page/data/" + t.b + ".js", "page/trials/" + t.trial + ".js"];
     $("trial-title").textContent = "Trial " + (trialIndex + 1) + " of " + manifest.trials.length;
-    $("trial-about").textContent = "pair: A = " + t.pair.split(" / ")[0] + ", B = " + t.pair.split(" / ")[1] + "; input: " + t.input;
+    $("trial-about").textContent = "A = " + t.a_label + ", B = " + t.b_label + "; input: " + t.input;
     markTrialButtons("A");
     showProgress();
     return setView([n.A, n.B, n.X], sources, n.A);
