@@ -73,10 +73,15 @@ Grading (``audiodsm.evaluate.grade``)
 Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
     write_report, render_html, batch_to_dict, batch_to_csv, plot_spectrum,
     plot_thd_n_vs_level, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
-    plot_margins
+    plot_margins, plot_spectrogram
 Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
 ``audiodsm.measure.silence``)
     render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
+Listening by ear (``audiodsm.measure.loudness``, ``audiodsm.measure.alignment``,
+``audiodsm.evaluate.listening``, ``audiodsm.evaluate.trial_scores``)
+    integrated_loudness_lufs, gain_to_loudness_db, find_delay, DelayEstimate, shift_by_frames,
+    make_listening_set, ListeningCandidate, spectrogram_dbfs, score_answers, binomial_tail_p,
+    PairScore
 """
 
 from __future__ import annotations
@@ -243,6 +248,18 @@ _PUBLIC = {
     "plot_state_histograms": "audiodsm.evaluate.plotting",
     "plot_frequency_response": "audiodsm.evaluate.plotting",
     "plot_margins": "audiodsm.evaluate.plotting",
+    "plot_spectrogram": "audiodsm.evaluate.plotting",
+    "integrated_loudness_lufs": "audiodsm.measure.loudness",
+    "gain_to_loudness_db": "audiodsm.measure.loudness",
+    "find_delay": "audiodsm.measure.alignment",
+    "DelayEstimate": "audiodsm.measure.alignment",
+    "shift_by_frames": "audiodsm.measure.alignment",
+    "make_listening_set": "audiodsm.evaluate.listening",
+    "ListeningCandidate": "audiodsm.evaluate.listening",
+    "spectrogram_dbfs": "audiodsm.evaluate.listening",
+    "score_answers": "audiodsm.evaluate.trial_scores",
+    "binomial_tail_p": "audiodsm.evaluate.trial_scores",
+    "PairScore": "audiodsm.evaluate.trial_scores",
     "render_file": "audiodsm.evaluate.render",
     "render_files": "audiodsm.evaluate.render",
     "output_names": "audiodsm.evaluate.render",

@@ -13,8 +13,12 @@ Run it as ``python -m audiodsm.demo`` (``make demo``) from a checkout. It reads
   ``audio_demo/make_demo_audio.py``; remade here when missing);
 
 and writes into ``demo_out/`` (git-ignored): ``report/<product>/grades.{html,json,csv}``,
-``listening/<product>/*.listen.wav`` (plus each render's summary JSON) and the battery cache
-``cache/``, so a second run reuses the graded batteries.
+``listening/<product>/*.listen.wav`` (plus each render's summary JSON), the battery cache
+``cache/``, so a second run reuses the graded batteries, and a listening set for the demo DAC
+(``listening_set/dac_chip/listening.html``, its key beside it): the 5th-order single-bit
+candidate with spread NTF zeros against the same loop with every zero at DC
+(``profiles/variants/``), on short excerpts of two demo clips. A set whose key exists is kept
+as it is (keys are never replaced).
 
 To keep the whole demo within about three minutes on two cores, it runs the battery's short
 plan (fewer levels and DC offsets, shorter captures) and says so in its output; ``audiodsm
@@ -30,13 +34,25 @@ import sys
 import time
 from pathlib import Path
 
-__all__ = ["PRODUCTS", "run_demo", "main"]
+__all__ = ["PRODUCTS", "LISTENING_PAIR", "run_demo", "main"]
 
 #: product folder name -> (plain title, spec sheet file name)
 PRODUCTS = {
     "dac_chip": ("demo DAC chip (invented)", "dac_chip.toml"),
     "pocket_amp": ("demo pocket speaker amplifier (invented)", "pocket_amp.toml"),
 }
+
+#: The demo's listening comparison: two profiles that differ in one choice (spread NTF zeros
+#: against every zero at DC), paths relative to the checkout.
+LISTENING_PAIR = (
+    "profiles/dac_chip/pdm5_64x.toml",
+    "profiles/variants/dac_chip_pdm5_64x_dc_zeros.toml",
+)
+#: Demo clips it uses (the quiet ones, where a noise floor can be heard), excerpt length (s)
+#: and blind trials.
+LISTENING_CLIPS = ("quiet_passage.wav", "fade_to_silence.wav")
+LISTENING_EXCERPT_S = 2.0
+LISTENING_TRIALS = 8
 
 
 def _checkout() -> Path:
@@ -54,6 +70,37 @@ def _demo_clips(root: Path, say) -> list:
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     return sorted(module.write_clips(folder))
+
+
+def _listening_set(root: Path, out: Path, clips, protect, say):
+    """Write the demo DAC's listening set (or keep the one already there); its page path."""
+    from audiodsm.evaluate.listening import PAGE_NAME, key_path_for, make_listening_set, set_table
+
+    pair = [root / p for p in LISTENING_PAIR]
+    if not all(p.is_file() for p in pair):
+        say("listening set skipped: " + ", ".join(str(p) for p in pair if not p.is_file()))
+        return None
+    chosen = [c for c in clips if c.name in LISTENING_CLIPS] or list(clips[:1])
+    folder = out / "listening_set" / "dac_chip"
+    if key_path_for(folder).exists():
+        say(f"listening set kept from an earlier run (its key is never replaced; remove {folder} "
+            f"and {key_path_for(folder).name} beside it for a fresh one)")  # fmt: skip
+        return folder / PAGE_NAME
+    t0 = time.perf_counter()
+    summary = make_listening_set(
+        pair,
+        chosen,
+        folder,
+        trials_per_pair=LISTENING_TRIALS,
+        length_s=LISTENING_EXCERPT_S,
+        replace=True,
+        protect=protect,
+    )
+    say(f"\n== listening set, demo DAC: spread zeros against zeros at DC "
+        f"({time.perf_counter() - t0:.1f} s) ==")  # fmt: skip
+    for line in set_table(summary):
+        say("  " + line)
+    return Path(summary["page"])
 
 
 def _quick_plan():
@@ -86,8 +133,8 @@ def run_demo(
     Returns
     -------
     dict
-        ``{"reports": {product: {kind: path}}, "listening": [paths], "batches": {product:
-        GradeBatch}, "seconds": float}``.
+        ``{"reports": {product: {kind: path}}, "listening": [paths], "listening_page": path or
+        None, "batches": {product: GradeBatch}, "seconds": float}``.
     """
     from audiodsm.evaluate.grade import collect_profiles, grade_batch
     from audiodsm.evaluate.render import HEARING_CAUTION, render_file
@@ -150,18 +197,33 @@ def run_demo(
         say(f"rendered {len(clips)} clips x {len(profiles)} profiles in "
             f"{time.perf_counter() - t0:.1f} s")  # fmt: skip
 
+    listening_page = _listening_set(root, out, clips, inputs, say)
+
     seconds = time.perf_counter() - start
     say("\n== where everything went ==")
     for product, files in reports.items():
         say(f"report, {PRODUCTS[product][0]}: {files['html']}")
         say(f"   same grades as JSON and CSV: {files['json'].name}, {files['csv'].name}")
     say(f"listening files ({len(listening)}): {out / 'listening'}/<product>/")
+    if listening_page is not None:
+        from audiodsm.evaluate.listening import key_path_for
+
+        say(f"listening page (open comparison and {LISTENING_TRIALS} blind A/B/X trials), "
+            f"demo DAC: {listening_page}")  # fmt: skip
+        say(f"   its key, beside the set (open it only after the trials): "
+            f"{key_path_for(listening_page.parent)}")  # fmt: skip
     say(f"battery cache (a second run reuses it): {out / 'cache'}")
     say(f"demo material: {root / 'audio_demo'}")
     say("")
     say(HEARING_CAUTION)
     say(f"demo finished in {seconds:.0f} s")
-    return {"reports": reports, "listening": listening, "batches": batches, "seconds": seconds}
+    return {
+        "reports": reports,
+        "listening": listening,
+        "listening_page": listening_page,
+        "batches": batches,
+        "seconds": seconds,
+    }
 
 
 def main(argv=None) -> int:

@@ -107,14 +107,17 @@ def tiny_battery(profile, *, jobs=None, progress=None, seed=0, **options):
 def test_demo_end_to_end_on_a_small_copy(tmp_path):
     # a copy of the checkout's demo layout, cut to one profile per product and short clips
     root = tmp_path / "checkout"
-    for product, keep in (("dac_chip", "pdm2_64x.toml"), ("pocket_amp", "pwm9_bridge_16x.toml")):
+    # (the listening set's pair: pdm5_64x and its zeros-at-DC variant)
+    for product, keep in (("dac_chip", "pdm5_64x.toml"), ("pocket_amp", "pwm9_bridge_16x.toml")):
         (root / "profiles" / product).mkdir(parents=True)
         shutil.copy(ROOT / "profiles" / product / keep, root / "profiles" / product / keep)
     shutil.copytree(ROOT / "profiles" / "specs", root / "profiles" / "specs")
+    shutil.copytree(ROOT / "profiles" / "variants", root / "profiles" / "variants")
     (root / "audio_demo").mkdir()
     from audiodsm.io import write_audio_atomic
 
-    clip = audio.make_clips()["plucked_and_sustained.wav"][: audio.RATE_HZ // 5]
+    # 0.5 s: long enough for a BS.1770 loudness reading (0.4 s gating blocks)
+    clip = audio.make_clips()["plucked_and_sustained.wav"][: audio.RATE_HZ // 2]
     write_audio_atomic(root / "audio_demo" / "short.wav", clip, audio.RATE_HZ)
     from audiodsm.demo import run_demo
 
@@ -130,6 +133,15 @@ def test_demo_end_to_end_on_a_small_copy(tmp_path):
     for path in out["listening"]:
         y, rate = read_audio(path)
         assert rate == audio.RATE_HZ and y.shape[0] == clip.size
-    # the second run takes every battery from the cache
-    again = run_demo(root, jobs=1, full_battery=True, battery=tiny_battery, say=lambda s: None)
+    # the listening set of the demo DAC: its page is printed, its key lies beside the folder
+    page = out["listening_page"]
+    assert page.is_file() and str(page) in text and "blind A/B/X trials" in text
+    key = page.parent.parent / "dac_chip.key.json"
+    assert key.is_file() and str(key) in text
+    key_bytes = key.read_bytes()
+    # the second run takes every battery from the cache and keeps the set and its key
+    lines.clear()
+    again = run_demo(root, jobs=1, full_battery=True, battery=tiny_battery, say=lines.append)
     assert all(g.cached for b in again["batches"].values() for g in b.grades)
+    assert any("listening set kept" in line for line in lines)
+    assert key.read_bytes() == key_bytes

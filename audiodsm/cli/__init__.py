@@ -22,6 +22,8 @@ COMMANDS = {
     "measure": "audiodsm.cli.measure:measure",
     "grade": "audiodsm.cli.grade:grade",
     "design": "audiodsm.cli.design:design",
+    "listening-set": "audiodsm.cli.listening_set:listening_set",
+    "score-answers": "audiodsm.cli.score_answers:score_answers",
 }
 
 

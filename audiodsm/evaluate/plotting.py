@@ -24,6 +24,7 @@ __all__ = [
     "plot_state_histograms",
     "plot_frequency_response",
     "plot_margins",
+    "plot_spectrogram",
 ]
 
 # a plain palette of our own: ink, a blue, an ochre, a grey and a muted red
@@ -268,6 +269,49 @@ def plot_margins(batch, *, ax=None, title="Margin per target"):
     ax.invert_yaxis()
     _style(ax, title, "margin in the target's unit (linear within ±1, logarithmic beyond)", "")
     ax.legend(fontsize=7, frameon=False, loc="best")
+    return fig
+
+
+def plot_spectrogram(
+    times_s, frequency_hz, level_dbfs, *, ax=None, title="Spectrogram", floor_dbfs=-160.0
+):
+    """A spectrogram of a listening clip (level per bin in dBFS against time and frequency).
+
+    Parameters
+    ----------
+    times_s, frequency_hz : array_like
+        Centres of the analysis frames and the bin frequencies.
+    level_dbfs : array_like
+        Shape ``(len(frequency_hz), len(times_s))``, e.g. from
+        :func:`audiodsm.evaluate.listening.spectrogram_dbfs`.
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+    floor_dbfs : float, keyword-only
+        Bottom of the colour scale (the top is 0 dBFS).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    t = np.asarray(times_s, dtype=float)
+    f = np.asarray(frequency_hz, dtype=float)
+    z = np.asarray(level_dbfs, dtype=float)
+    if z.shape != (f.size, t.size) or t.size == 0 or f.size < 2:
+        raise ParameterError("level_dbfs", z.shape, f"shape ({f.size}, {t.size}), not empty")
+    fig, ax = _axes(ax, size=(6.4, 2.6))
+    # evenly spaced frames and bins (as a short-time spectrum gives them): one image
+    dt = (t[-1] - t[0]) / (t.size - 1) if t.size > 1 else 1.0
+    df = (f[-1] - f[0]) / (f.size - 1)
+    extent = (t[0] - dt / 2, t[-1] + dt / 2, (f[0] - df / 2) / 1e3, (f[-1] + df / 2) / 1e3)
+    mesh = ax.imshow(
+        z, origin="lower", aspect="auto", extent=extent, cmap="viridis", vmin=floor_dbfs,
+        vmax=0.0, interpolation="nearest",
+    )  # fmt: skip
+    _style(ax, title, "time (s)", "frequency (kHz)")
+    ax.grid(False)
+    bar = fig.colorbar(mesh, ax=ax, pad=0.01)
+    bar.set_label("dBFS per bin", fontsize=8)
+    bar.ax.tick_params(labelsize=7)
     return fig
 
 
