@@ -5,24 +5,34 @@ from a channel's averaged spectrum and the spread of its short-term levels, whic
 kinds of content it holds, so that the right measurements are made:
 
 ``"tone"``
-    One spectral line carries the band: it stands at least ``dominance_db`` above everything
-    else in the audio band (harmonics and noise together), i.e. THD+N better than
-    ``-dominance_db``, and its level is at least ``min_tone_dbfs`` (a lone line lower than
-    that in an otherwise quiet channel is an idle tone, and the channel counts as silence).
+    One spectral line carries the signal, and its level is at least ``min_tone_dbfs`` (a
+    lone line lower than that in an otherwise quiet channel is an idle tone, and the channel
+    counts as silence). The line qualifies in either of two ways:
+
+    * it stands at least ``dominance_db`` above everything else in the audio band (harmonics
+      and noise together), i.e. THD+N better than ``-dominance_db``: a clean tone; or
+    * the short-term level is steady and the line is the strongest one the line detector of
+      :mod:`audiodsm.measure.idle_tones` finds above the local noise floor at the stated
+      false-alarm rate ``false_alarm`` (default :data:`TONE_FALSE_ALARM`, per spectrum): a
+      tone in strong noise, such as a -60 dBFS tone in the output of a noisy PWM stage.
+      Steady Gaussian noise with no line in it is called a tone with at most that
+      probability.
 ``"twin-tone"``
     Two lines that are not harmonically related (the higher not within two bins of harmonic
     1 to 10 of the lower) carry the band together, standing at least
     ``dominance_db`` above the rest, and the weaker is within ``twin_range_db`` of the
     stronger (SMPTE 4:1 is 12 dB apart, difference-frequency 1:1 is 0 dB).
 ``"silence"``
-    No dominating line, the band level is at most ``silence_dbfs``, and the short-term level
+    No tone, the band level is at most ``silence_dbfs``, and the short-term level
     is steady (the 10th-to-90th percentile spread of the block levels is at most
     ``steady_db``): noise, perhaps with idle tones, and digital zero.
 ``"program"``
     Anything else (music, speech, loud or unsteady noise).
 
-The thresholds are choices of this project, stated here and in the result; they are not
-taken from a standard.
+The detection threshold for a tone in noise follows from the false-alarm rate (the chi-square
+statistics of an averaged spectrum; see :func:`audiodsm.measure.idle_tones.line_threshold`).
+The other thresholds are choices of this project, stated here and in the result; they are
+not taken from a standard.
 """
 
 from __future__ import annotations
@@ -46,6 +56,7 @@ __all__ = [
     "SILENCE_DBFS",
     "MIN_TONE_DBFS",
     "STEADY_DB",
+    "TONE_FALSE_ALARM",
     "ChannelContent",
     "classify_channel",
     "ZERO_LEVEL_DBFS",
@@ -67,6 +78,8 @@ MIN_TONE_DBFS = -100.0
 SILENCE_DBFS = -40.0
 #: Largest 10th-to-90th percentile spread of block levels (dB) that counts as steady.
 STEADY_DB = 6.0
+#: Probability, per spectrum, that steady Gaussian noise with no line in it is called a tone.
+TONE_FALSE_ALARM = 1e-3
 _MAX_HARMONIC = 10
 _FULL_SCALE_SINE_POWER = 0.5
 
@@ -88,6 +101,8 @@ class ChannelContent:
         band, in dB.
     reason : str
         One line saying why, for reports.
+    false_alarm : float
+        The false-alarm rate the tone-in-noise test used (per spectrum).
     """
 
     kind: str
@@ -95,6 +110,7 @@ class ChannelContent:
     band_dbfs: float
     dominance_db: float
     reason: str
+    false_alarm: float = TONE_FALSE_ALARM
 
 
 def _dbfs(power: float) -> float:
@@ -135,6 +151,7 @@ def classify_channel(
     silence_dbfs: float = SILENCE_DBFS,
     steady_db: float = STEADY_DB,
     min_tone_dbfs: float = MIN_TONE_DBFS,
+    false_alarm: float = TONE_FALSE_ALARM,
 ) -> ChannelContent:
     """Decide whether a channel holds a tone, a twin tone, silence or program material.
 
@@ -151,6 +168,10 @@ def classify_channel(
         The band looked at (AES17 audio band by default).
     dominance_db, twin_range_db, silence_dbfs, steady_db, min_tone_dbfs : float, optional
         Thresholds; see the module docstring.
+    false_alarm : float, optional
+        Probability, per spectrum, that steady Gaussian noise without a line is called a
+        tone (the line detector's threshold is derived from it). The spectrum must carry
+        its averaging (``window`` and ``n_averages``) for this test.
 
     Returns
     -------
@@ -169,7 +190,9 @@ def classify_channel(
     total = float(band.sum())
     band_dbfs = _dbfs(total)
     if total <= 0.0:
-        return ChannelContent("silence", (), band_dbfs, 0.0, "digital zero in the band")
+        return ChannelContent(
+            "silence", (), band_dbfs, 0.0, "digital zero in the band", false_alarm
+        )
 
     k1 = int(np.argmax(band))
     p1, f1, a0, a1 = _lobe(power, band, freq, k1, half)
@@ -195,10 +218,16 @@ def classify_channel(
             band_dbfs,
             dom2,
             f"two lines at {f1:.1f} and {f2:.1f} Hz stand {dom2:.1f} dB above the rest",
+            false_alarm,
         )
     if dom1 >= dominance_db and _dbfs(p1) >= min_tone_dbfs:
         return ChannelContent(
-            "tone", (f1,), band_dbfs, dom1, f"a line at {f1:.1f} Hz stands {dom1:.1f} dB above"
+            "tone",
+            (f1,),
+            band_dbfs,
+            dom1,
+            f"a line at {f1:.1f} Hz stands {dom1:.1f} dB above",
+            false_alarm,
         )
 
     spread = 0.0
@@ -208,6 +237,24 @@ def classify_channel(
         if levels.size >= 2:
             p10, p90 = np.percentile(levels, [10.0, 90.0])
             spread = float(p90 - p10)
+    if spread <= steady_db:
+        # a tone in strong steady noise: the strongest line the detector finds at the
+        # stated false-alarm rate
+        found = find_idle_tones(spectrum, false_alarm=false_alarm, band_hz=(lo, hi))
+        if found.tones and found.tones[0].level_dbfs >= min_tone_dbfs:
+            line = found.tones[0]
+            line_power = _FULL_SCALE_SINE_POWER * 10.0 ** (line.level_dbfs / 10.0)
+            dom = _ratio_db(line_power, max(total - line_power, 0.0))
+            return ChannelContent(
+                "tone",
+                (line.frequency_hz,),
+                band_dbfs,
+                dom,
+                f"a line at {line.frequency_hz:.1f} Hz, {line.level_dbfs:.1f} dBFS, stands "
+                f"{line.above_floor_db:.1f} dB above the noise floor (threshold "
+                f"{found.threshold_db:.1f} dB for a false-alarm rate of {false_alarm:g})",
+                false_alarm,
+            )
     if band_dbfs <= silence_dbfs and spread <= steady_db:
         return ChannelContent(
             "silence",
@@ -215,13 +262,14 @@ def classify_channel(
             band_dbfs,
             dom1,
             f"no dominating line; steady band level {band_dbfs:.1f} dBFS",
+            false_alarm,
         )
     why = (
         f"band level {band_dbfs:.1f} dBFS above {silence_dbfs:g} dBFS"
         if band_dbfs > silence_dbfs
         else f"level spread {spread:.1f} dB over {steady_db:g} dB"
     )
-    return ChannelContent("program", (), band_dbfs, dom1, f"no dominating line; {why}")
+    return ChannelContent("program", (), band_dbfs, dom1, f"no dominating line; {why}", false_alarm)
 
 
 # ---------------------------------------------------------------------------------------------
