@@ -40,6 +40,11 @@ KEYS = {
     "dynamic_range_db",
     "dynamic_range_db_a",
     "tones",
+    "peak_dbfs",
+    "over_full_scale",
+    "span_s",
+    "span_source",
+    "notes",
 }
 
 
