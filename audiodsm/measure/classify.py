@@ -803,7 +803,7 @@ def analyze_blocks(
     .. [2] IEEE Std 1057-2017, Standard for Digitizing Waveform Recorders (sine fits).
     """
     rate = float(rate_hz)
-    n_frames = int(n_frames)
+    n_frames = n_total = int(n_frames)
     common: list = []
     offset = 0
     if span_frames is not None:
@@ -829,6 +829,8 @@ def analyze_blocks(
         results = _analyze(
             open_blocks, rate, int(channels), n_frames, read_span, progress, span_frames is None
         )
+    if progress is not None and span_frames is not None:
+        progress(int(n_total) - n_frames)  # the frames outside the span count as done
     out = []
     for r in results:
         notes = list(r.notes) + [n for n in common if n not in r.notes]
