@@ -18,7 +18,7 @@ import time
 
 import numpy as np
 
-from audiodsm.design.ntf import design_ntf
+from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.stages import _kernels
 from audiodsm.stages.modulator import Modulator, _kernel_key
 
@@ -26,7 +26,7 @@ RATE_HZ = 48_000 * 64
 SECONDS = 10.0
 
 CASES = [
-    # name, order, levels, structure, max_gain
+    # name, order, levels, structure, out_of_band_gain
     ("order5-1bit-feedback-osr64", 5, 2, "feedback", 1.5),
     ("order2-1bit-feedback-osr64", 2, 2, "feedback", 1.5),
     ("order5-17level-feedback-osr64", 5, 17, "feedback", 2.5),
@@ -38,8 +38,12 @@ CASES = [
 def run():
     n = int(RATE_HZ * SECONDS)
     x = 10 ** (-6 / 20) * np.sin(2 * np.pi * 997.0 / RATE_HZ * np.arange(n))
-    for name, order, levels, structure, max_gain in CASES:
-        mod = Modulator(design_ntf(order, 64, max_gain=max_gain), structure, levels=levels)
+    for name, order, levels, structure, out_of_band_gain in CASES:
+        mod = Modulator(
+            NoiseTransfer.designed(order, osr=64, out_of_band_gain=out_of_band_gain),
+            structure,
+            levels=levels,
+        )
         mod.run(x[:4096])  # warm-up: compile or load the cached kernel
         best = best_wall = np.inf
         for _ in range(3):

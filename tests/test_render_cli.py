@@ -213,7 +213,7 @@ def test_bad_profile_key_is_one_line(setup):
     assert res.exit_code == 2
     assert res.stderr.strip() == (
         f"audiodsm: error: {prof}: modulator.ordr: unknown key; expected one of: "
-        "order, max_gain, optimize_zeros, zeros, poles, structure, levels, dither_lsb, seed, "
+        "order, out_of_band_gain, zero_layout, zeros, poles, structure, levels, dither_lsb, seed, "
         "input_scale, guard, state_bound, state_scaling, state_peak_bound"
     )
     assert final_files(tmp / "out") == []
@@ -278,7 +278,7 @@ osr = 16
 [modulator]
 order = 2
 levels = 9
-max_gain = 2.0
+out_of_band_gain = 2.0
 [output]
 kind = "pwm"
 pwm_mode = "three-level"
@@ -361,7 +361,9 @@ def test_a_real_ctrl_c_leaves_nothing(setup):
     import time
 
     tmp, prof, _, _ = setup
-    n = 20 * RATE
+    # 60 s of input: the render takes several seconds even on a fast machine, so the signal
+    # always lands while it is under way (sent as soon as the first temporary file exists)
+    n = 60 * RATE
     t = np.arange(n) / RATE
     long_wav = tmp / "src" / "long.wav"
     sf.write(long_wav, 0.5 * np.column_stack([np.sin(2 * np.pi * 440 * t)] * 2), RATE)
@@ -376,8 +378,7 @@ def test_a_real_ctrl_c_leaves_nothing(setup):
         deadline = time.monotonic() + 120
         # wait until the temporary files exist (the render is under way)
         while time.monotonic() < deadline and not (out.exists() and any(out.iterdir())):
-            time.sleep(0.05)
-        time.sleep(0.3)
+            time.sleep(0.01)
         assert proc.poll() is None, "the render finished before it could be interrupted"
         before = sorted(p.name for p in out.iterdir())
         proc.send_signal(signal.SIGINT)
