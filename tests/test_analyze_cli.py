@@ -587,3 +587,30 @@ def test_python_warnings_become_notes(tmp_path, monkeypatch):
     assert zero["notes"] == []
     table = _run(path).stdout
     assert "ch 1 note: fit_sine: the 4-parameter fit did not converge" in table
+
+
+def test_half_second_tone_then_silence_is_measured_where_it_plays(tmp_path):
+    # 0.5 s of a -6.02 dBFS tone, then 2.5 s of digital zero, 24-bit. The frequency fit and
+    # the span stay inside the tone (the fit used to run over tone and silence and warn
+    # that it did not converge); nothing is written to stderr, and no warning escapes.
+    import warnings
+
+    n, on = 3 * RATE, RATE // 2
+    t = np.arange(n) / RATE
+    x = np.where(t < 0.5, 0.5 * np.sin(2 * np.pi * 997.0 * t), 0.0)
+    path = tmp_path / "short_tone.wav"
+    sf.write(str(path), x, RATE, subtype="PCM_24")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = _run("--json", path)
+    assert result.exit_code == 0 and result.stderr == ""
+    (ch,) = _json_lines(result.stdout)[0]["channels"]
+    assert ch["signal"] == "tone" and ch["notes"] == []
+    assert ch["span_s"][0] == 0.0 and 0.45 < ch["span_s"][1] <= on / RATE
+    assert ch["fundamental_hz"] == pytest.approx(997.0, abs=1e-4)
+    assert ch["level_dbfs"] == pytest.approx(20 * np.log10(0.5), abs=1e-3)
+    # 24-bit rounding of a sine of millions of LSBs: close to uniform white quantization
+    # error of LSB^2/12 (Widrow's model; common practice for such a sine), -146.9 dBFS over
+    # the band. Averaged over the silence as well, it would read about 7.8 dB lower.
+    expected = 10 * np.log10(2.0**-46 / 12 * _band_fraction(RATE) / 0.5)
+    assert ch["noise_dbfs"] == pytest.approx(expected, abs=0.5)
