@@ -302,8 +302,11 @@ SURVEY_SPANS = 32
 OVERFLOW_PEAK = 1e100
 #: Length of the residual blocks the settling search reads, in seconds.
 SETTLE_BLOCK_S = 0.01
-#: A residual block more than this above the settled floor counts as not yet settled, in dB.
-SETTLE_MARGIN_DB = 6.0
+#: A residual block more than this above the loudest block of the settled reference stretch
+#: counts as not yet settled, in dB. Measured against the loudest rather than the typical
+#: block, so that a residual whose short-term level swings (hum, low-frequency noise) does
+#: not look unsettled.
+SETTLE_MARGIN_DB = 3.0
 #: How far into a tone, from where it first plays at full level, the settling search looks (s).
 SETTLE_SEARCH_S = 1.0
 #: The figures withheld for a channel whose samples go beyond full scale.
@@ -616,9 +619,10 @@ def _unsettled_frames(x: np.ndarray, freqs, rate: float, block: int, ref: int) -
     ``x`` runs from outside the tone (its outer edge) inwards; its last ``ref`` frames are
     taken as settled. The tone(s) at ``freqs`` (and DC) are fitted by least squares on that
     reference stretch and removed from all of ``x``; the residual is band-limited and cut
-    into blocks of ``block`` frames from the outer edge. The floor is the median block power
-    of the reference stretch; scanning outwards from it, the first block more than
-    :data:`SETTLE_MARGIN_DB` above the floor ends the settled part.
+    into blocks of ``block`` frames from the outer edge, each with its mean removed (slow
+    drift below the band, as in a capture's DC, is not a transient). The limit is the power of the
+    loudest block of the reference stretch; scanning outwards from it, the first block more
+    than :data:`SETTLE_MARGIN_DB` above that ends the settled part.
     """
     n = x.size
     nb = n // block
@@ -634,11 +638,11 @@ def _unsettled_frames(x: np.ndarray, freqs, rate: float, block: int, ref: int) -
     d = np.column_stack(cols)
     coef = np.linalg.lstsq(d[n - ref :], x[n - ref :], rcond=None)[0]
     r = _band_limited(x - d @ coef, rate)
-    p = np.mean(r[: nb * block].reshape(nb, block) ** 2, axis=1)
-    floor = float(np.median(p[nb - ref_blocks :]))
+    p = np.var(r[: nb * block].reshape(nb, block), axis=1)  # mean removed: drift is no transient
+    limit = float(np.max(p[nb - ref_blocks :]))
     tone_power = float(np.sum(coef[1:] ** 2)) / 2.0
-    floor = max(floor, tone_power * _SETTLE_FLOOR_REL, np.finfo(float).tiny)
-    over = np.flatnonzero(p[: nb - ref_blocks] > floor * 10.0 ** (SETTLE_MARGIN_DB / 10.0))
+    limit = max(limit, tone_power * _SETTLE_FLOOR_REL, np.finfo(float).tiny)
+    over = np.flatnonzero(p[: nb - ref_blocks] > limit * 10.0 ** (SETTLE_MARGIN_DB / 10.0))
     return int(over[-1] + 1) * block if over.size else 0
 
 
@@ -785,7 +789,8 @@ def analyze_blocks(
     quarter-second block within 3 dB of the loudest). Near each end of it, the tone is
     fitted on a quarter second well inside and removed, and the residual, band-limited to
     20 kHz, is read in 10 ms blocks outwards; the first block more than
-    :data:`SETTLE_MARGIN_DB` above the inner floor ends the settled part. This skips the
+    :data:`SETTLE_MARGIN_DB` above the loudest block of that quarter second ends the settled
+    part. This skips the
     start and end transients of a rendered or captured tone (and any silence before or
     after it) up to :data:`SETTLE_SEARCH_S` into the tone; longer transients need
     ``span_frames``. When the settled part is too short to measure, the loud stretch is
