@@ -614,3 +614,17 @@ def test_half_second_tone_then_silence_is_measured_where_it_plays(tmp_path):
     # the band. Averaged over the silence as well, it would read about 7.8 dB lower.
     expected = 10 * np.log10(2.0**-46 / 12 * _band_fraction(RATE) / 0.5)
     assert ch["noise_dbfs"] == pytest.approx(expected, abs=0.5)
+
+
+def test_steady_tone_with_hum_and_drift_keeps_its_whole_span():
+    # No transient: a tone with 50 Hz hum at -100 dBFS, a slow random-walk drift and white
+    # noise. Neither the hum (its 10 ms block levels swing) nor the drift (below the band)
+    # may be taken for a transient: the settled span is the whole signal.
+    n = 4 * RATE
+    t = np.arange(n) / RATE
+    g = np.random.default_rng(35)
+    x = 0.5 * np.sin(2 * np.pi * 997.0 * t) + 1e-5 * np.sin(2 * np.pi * 50.0 * t)
+    x = x + np.cumsum(g.normal(0, 1e-8, n)) + g.normal(0, 1e-7, n)
+    (ch,) = analyze_blocks(lambda: iter([x[:, None]]), rate_hz=RATE, channels=1, n_frames=n)
+    assert ch.content.kind == "tone" and ch.span_source == "settled"
+    assert ch.span_s == (0.0, 4.0)
