@@ -40,6 +40,11 @@ KEYS = {
     "dynamic_range_db",
     "dynamic_range_db_a",
     "tones",
+    "peak_dbfs",
+    "over_full_scale",
+    "span_s",
+    "span_source",
+    "notes",
 }
 
 
@@ -411,3 +416,215 @@ def test_pure_float_sine_has_no_lines_and_digital_zero_reads_floor():
     assert zero["signal"] == dc["signal"] == "silence"
     assert zero["noise_dbfs"] == dc["noise_dbfs"] == -400.0
     assert json.loads(json.dumps(zero)) == zero  # finite numbers only: valid JSON
+
+
+# ---------------------------------------------------------------------------------------------
+# The settled span, full scale, overflow, warnings
+# ---------------------------------------------------------------------------------------------
+
+
+def _gated_tone(seed, rate=RATE, seconds=3.0, on_s=0.2, off_s=2.8):
+    """A -1 dBFS 997 Hz tone switched on and off abruptly inside a file, through a 20 kHz
+    low-pass (8th-order elliptic, like a DAC's reconstruction filter: it rings at the
+    switching points), then 24-bit TPDF noise: two uniform variates of +-LSB/2 added without
+    requantizing, white with power LSB^2/6 (Lipshitz, Wannamaker & Vanderkooy 1992)."""
+    from scipy import signal as sig
+
+    n = int(seconds * rate)
+    t = np.arange(n) / rate
+    gate = (t >= on_s) & (t < off_s)
+    x = np.where(gate, 10 ** (-1 / 20) * np.sin(2 * np.pi * 997.0 * (t - on_s)), 0.0)
+    sos = sig.ellip(8, 0.01, 100, 20000.0, fs=rate, output="sos")
+    return sig.sosfilt(sos, x) + _tpdf(n, 2.0**-23, seed)
+
+
+def test_settled_span_skips_start_and_end_transients(tmp_path):
+    # The gated tone rings where it starts and stops, with silence before and after. By
+    # default analyze measures its settled part and reads the THD+N of the clean middle
+    # (the same signal cut to 0.5-2.5 s); measured over the whole file the transients and
+    # the silence change the figure by several dB (the test would see a wrong span).
+    x = _gated_tone(31)
+    whole, middle = tmp_path / "gated.wav", tmp_path / "middle.wav"
+    sf.write(str(whole), x, RATE, subtype="DOUBLE")
+    sf.write(str(middle), x[RATE // 2 : 5 * RATE // 2], RATE, subtype="DOUBLE")
+    (settled,) = _json_lines(_run("--json", whole).stdout)[0]["channels"]
+    (clean,) = _json_lines(_run("--json", middle).stdout)[0]["channels"]
+    (everything,) = _json_lines(_run("--json", "--span", "all", whole).stdout)[0]["channels"]
+    assert settled["span_source"] == "settled" and everything["span_source"] == "given"
+    start, stop = settled["span_s"]
+    assert 0.2 < start < 0.25 and 2.75 < stop < 2.8  # after the onset, before the stop
+    assert everything["span_s"] == [0.0, 3.0]
+    assert settled["thd_n_db"] == pytest.approx(clean["thd_n_db"], abs=0.1)
+    assert settled["thd_db"] == pytest.approx(clean["thd_db"], abs=1.0)
+    assert settled["level_dbfs"] == pytest.approx(clean["level_dbfs"], abs=1e-3)
+    assert everything["thd_n_db"] > clean["thd_n_db"] + 3.0
+    # and both agree with the dither's own level: THD+N = noise / (tone + noise), the
+    # noise LSB^2/6 over the band (LWV 1992), the tone as read (the filter's pass-band
+    # ripple is 0.01 dB)
+    noise_ms = 2.0**-46 / 6 * _band_fraction(RATE)
+    tone_ms = 10 ** (clean["level_dbfs"] / 10) / 2
+    expected = 10 * np.log10(noise_ms / (tone_ms + noise_ms))
+    assert settled["thd_n_db"] == pytest.approx(expected, abs=0.3)
+
+
+def test_given_span_measures_that_stretch_only(tmp_path):
+    x = _gated_tone(32)
+    path, middle = tmp_path / "gated.wav", tmp_path / "middle.wav"
+    sf.write(str(path), x, RATE, subtype="DOUBLE")
+    sf.write(str(middle), x[RATE // 2 : 5 * RATE // 2], RATE, subtype="DOUBLE")
+    (given,) = _json_lines(_run("--json", "--span", "0.5:-0.5", path).stdout)[0]["channels"]
+    (clean,) = _json_lines(_run("--json", "--span", "all", middle).stdout)[0]["channels"]
+    assert given["span_s"] == [0.5, 2.5] and given["span_source"] == "given"
+    # the same frames, measured the same way: the same numbers
+    for key in ("level_dbfs", "thd_n_db", "thd_n_db_a", "noise_dbfs", "thd_db"):
+        assert given[key] == pytest.approx(clean[key], abs=1e-6)
+    table = _run("--span", "0.5:2.5", path).stdout
+    assert "0.500-2.500 given" in table
+    for bad, words in (("2:1", "start before the end"), ("x", "START:END"), ("1:9", "inside")):
+        result = _run("--span", bad, path)
+        assert result.exit_code == 2
+        (line,) = result.stderr.strip().splitlines()
+        assert words in line
+
+
+def test_settled_span_found_when_the_survey_samples_a_long_file():
+    # Longer than 64 s, the survey reads 32 spans; the tone's start and end lie between
+    # them and are found by scanning the unread stretch next to them. 20 s of dither, then
+    # the gated tone from 20 s to 68 s, then 2 s of dither.
+    rate, n = RATE, 70 * RATE
+    x = _tpdf(n, 2.0**-23, 33)
+    t = np.arange(48 * rate) / rate
+    x[20 * rate : 68 * rate] += 0.5 * np.sin(2 * np.pi * 1000.0 * t)
+    reads = []
+
+    def read_span(start, frames):
+        reads.append(frames)
+        return x[start : start + frames, None]
+
+    (ch,) = analyze_blocks(
+        lambda: (x[i : i + 262144, None] for i in range(0, n, 262144)),
+        rate_hz=rate,
+        channels=1,
+        n_frames=n,
+        read_span=read_span,
+    )
+    assert ch.content.kind == "tone" and ch.span_source == "settled"
+    # the abrupt switch is the transient: the span starts within 20 ms of it
+    assert 20.0 <= ch.span_s[0] < 20.02 and 67.98 < ch.span_s[1] <= 68.0
+    assert max(reads) <= 262144  # the scans read in bounded pieces
+    # noise: the 24-bit TPDF noise alone, LSB^2/6 (LWV 1992), over the band
+    expected = 10 * np.log10(2.0**-46 / 6 * _band_fraction(rate) / 0.5)
+    assert ch.noise_dbfs == pytest.approx(expected, abs=0.3)
+
+
+def test_channel_beyond_full_scale_is_flagged(tmp_path):
+    # A float file can hold any number; a tone at +194 dBFS (amplitude 5e9) is not a
+    # signal a converter plays. Its distortion figures are withheld and the reason given;
+    # the channel next to it, at -6.02 dBFS, is measured as usual.
+    n = 2 * RATE
+    t = np.arange(n) / RATE
+    big = 10 ** (194 / 20) * np.sin(2 * np.pi * 997.0 * t)
+    fine = 0.5 * np.sin(2 * np.pi * 997.0 * t) + _tpdf(n, 2.0**-23, 34)
+    path = tmp_path / "huge.wav"
+    sf.write(str(path), np.stack([big, fine], axis=1), RATE, subtype="DOUBLE")
+    result = _run("--json", path)
+    assert result.exit_code == 0
+    over, ok = _json_lines(result.stdout)[0]["channels"]
+    assert over["over_full_scale"] is True and ok["over_full_scale"] is False
+    assert over["peak_dbfs"] == pytest.approx(194.0, abs=0.01)
+    assert over["level_dbfs"] == pytest.approx(194.0, abs=0.01)
+    for key in ("thd_n_db", "thd_n_db_a", "thd_db", "dynamic_range_db"):
+        assert over[key] is None
+    assert any("beyond full scale" in note for note in over["notes"])
+    # the sampled peak of a 997 Hz sine over 2 s comes within 1e-4 dB of its amplitude
+    assert ok["peak_dbfs"] == pytest.approx(20 * np.log10(0.5), abs=1e-3)
+    assert ok["thd_n_db"] is not None and ok["notes"] == []
+    table = _run(path).stdout
+    assert "over FS" in table and "ch 1 note: samples reach +194.00 dBFS" in table
+
+
+@pytest.mark.parametrize("value", [1e300, -1e300, np.inf, np.nan])
+def test_overflowing_float_samples_are_refused_not_silence(tmp_path, value):
+    n = RATE
+    x = 0.5 * np.sin(2 * np.pi * 997.0 * np.arange(n) / RATE)
+    x[1000] = value
+    path = tmp_path / "broken.wav"
+    sf.write(str(path), np.stack([np.zeros(n), x], axis=1), RATE, subtype="DOUBLE")
+    result = _run("--json", path)
+    assert result.exit_code == 2
+    assert result.stdout == ""  # no figures at all, least of all "silence"
+    (line,) = result.stderr.strip().splitlines()
+    assert str(path) in line
+    assert ("overflow" in line and "channel 2" in line) or "NaN or Inf" in line
+
+
+def test_python_warnings_become_notes(tmp_path, monkeypatch):
+    # A fit that does not converge warns (RuntimeWarning); the warning belongs in the
+    # channel's notes, and nothing reaches stderr (no source paths).
+    import warnings
+
+    import audiodsm.measure.classify as classify
+
+    real = classify.fit_sine
+
+    def fit_that_warns(*args, **kwargs):
+        message = "fit_sine: the 4-parameter fit did not converge"
+        warnings.warn(message, RuntimeWarning, stacklevel=2)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(classify, "fit_sine", fit_that_warns)
+    n = 2 * RATE
+    path = tmp_path / "tone.wav"
+    x = 0.5 * np.sin(2 * np.pi * 997.0 * np.arange(n) / RATE)
+    sf.write(str(path), np.stack([x, np.zeros(n)], axis=1), RATE, subtype="PCM_24")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # a warning escaping analyze would fail the test
+        result = _run("--json", "--no-progress", path)
+    assert result.exit_code == 0, result.output
+    assert result.stderr == ""
+    tone, zero = _json_lines(result.stdout)[0]["channels"]
+    assert tone["notes"] == ["fit_sine: the 4-parameter fit did not converge"]
+    assert zero["notes"] == []
+    table = _run(path).stdout
+    assert "ch 1 note: fit_sine: the 4-parameter fit did not converge" in table
+
+
+def test_half_second_tone_then_silence_is_measured_where_it_plays(tmp_path):
+    # 0.5 s of a -6.02 dBFS tone, then 2.5 s of digital zero, 24-bit. The frequency fit and
+    # the span stay inside the tone (the fit used to run over tone and silence and warn
+    # that it did not converge); nothing is written to stderr, and no warning escapes.
+    import warnings
+
+    n, on = 3 * RATE, RATE // 2
+    t = np.arange(n) / RATE
+    x = np.where(t < 0.5, 0.5 * np.sin(2 * np.pi * 997.0 * t), 0.0)
+    path = tmp_path / "short_tone.wav"
+    sf.write(str(path), x, RATE, subtype="PCM_24")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = _run("--json", path)
+    assert result.exit_code == 0 and result.stderr == ""
+    (ch,) = _json_lines(result.stdout)[0]["channels"]
+    assert ch["signal"] == "tone" and ch["notes"] == []
+    assert ch["span_s"][0] == 0.0 and 0.45 < ch["span_s"][1] <= on / RATE
+    assert ch["fundamental_hz"] == pytest.approx(997.0, abs=1e-4)
+    assert ch["level_dbfs"] == pytest.approx(20 * np.log10(0.5), abs=1e-3)
+    # 24-bit rounding of a sine of millions of LSBs: close to uniform white quantization
+    # error of LSB^2/12 (Widrow's model; common practice for such a sine), -146.9 dBFS over
+    # the band. Averaged over the silence as well, it would read about 7.8 dB lower.
+    expected = 10 * np.log10(2.0**-46 / 12 * _band_fraction(RATE) / 0.5)
+    assert ch["noise_dbfs"] == pytest.approx(expected, abs=0.5)
+
+
+def test_steady_tone_with_hum_and_drift_keeps_its_whole_span():
+    # No transient: a tone with 50 Hz hum at -100 dBFS, a slow random-walk drift and white
+    # noise. Neither the hum (its 10 ms block levels swing) nor the drift (below the band)
+    # may be taken for a transient: the settled span is the whole signal.
+    n = 4 * RATE
+    t = np.arange(n) / RATE
+    g = np.random.default_rng(35)
+    x = 0.5 * np.sin(2 * np.pi * 997.0 * t) + 1e-5 * np.sin(2 * np.pi * 50.0 * t)
+    x = x + np.cumsum(g.normal(0, 1e-8, n)) + g.normal(0, 1e-7, n)
+    (ch,) = analyze_blocks(lambda: iter([x[:, None]]), rate_hz=RATE, channels=1, n_frames=n)
+    assert ch.content.kind == "tone" and ch.span_source == "settled"
+    assert ch.span_s == (0.0, 4.0)
