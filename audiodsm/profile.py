@@ -343,7 +343,7 @@ class OutputStageSettings:
     dead_time_ticks: int = _key(
         0,
         "int",
-        "an integer from 0 to 4096 and at most one frame's ticks",
+        "an integer from 0 to 4096 and at most half a frame's ticks",
         _int_range(0, 4096),
         only="pwm",
         doc="Delay of every rising edge, in ticks (counter steps / tick_subdivision).",
@@ -695,7 +695,11 @@ def _pwm_frame_ticks(mod, out) -> int:
 
 
 def _check_pwm_timing(profile: ChainProfile, path: str) -> None:
-    """Dead time fits in one frame, a minimum pulse in half of one (the output stage's range)."""
+    """Dead time and the minimum pulse each fit in half a frame.
+
+    The output stage itself takes a dead time up to a whole frame, but beyond half a frame
+    most pulses vanish and the chain's output collapses; real power stages use a few percent.
+    """
     mod, out = profile.modulator, profile.output
     if out.kind != "pwm":
         return
@@ -705,7 +709,7 @@ def _check_pwm_timing(profile: ChainProfile, path: str) -> None:
         f"{out.tick_subdivision}" + (" x 2 (double-edge)" if out.pwm_carrier != "trailing" else "")
     )
     for name, value, limit, what in (
-        ("dead_time_ticks", out.dead_time_ticks, frame, "the ticks of one frame"),
+        ("dead_time_ticks", out.dead_time_ticks, frame // 2, "half the ticks of one frame"),
         ("min_pulse_ticks", out.min_pulse_ticks, frame // 2, "half the ticks of one frame"),
     ):
         if value > limit:
