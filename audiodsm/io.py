@@ -8,8 +8,16 @@ name in the target folder first and is renamed only when complete
 half-written file under the final name.
 
 Problems with a file raise :class:`~audiodsm.errors.AudioFileError` with a one-line message
-that names the file: missing, unreadable, truncated, empty, NaN/Inf samples, more than
-:data:`MAX_CHANNELS` channels, or a rate below :data:`MIN_RATE_HZ`.
+that names the file: missing, unreadable, truncated (the WAV, RF64, Wave64 and AIFF headers are
+checked against the bytes present), empty, NaN/Inf samples, more than :data:`MAX_CHANNELS`
+channels, or a rate below :data:`MIN_RATE_HZ`.
+
+Outputs: the temporary name records the writer's process id (:func:`create_temp_file`), so a
+later run removes what a killed one left (:func:`remove_stale_temp_files`); files get the
+permissions of the user's umask; a write that fails for want of space, permission or a name
+that fits raises :class:`~audiodsm.errors.StorageError` naming the path and the cause. Helpers
+for choosing output names: :func:`fit_file_name` (shorten with a digest), :func:`same_file`
+(device and inode), :func:`refuse_dangling_symlink`.
 """
 
 from __future__ import annotations
@@ -236,7 +244,7 @@ def audio_info(path) -> AudioInfo:
     Raises
     ------
     AudioFileError
-        Missing, unreadable, truncated (WAV/AIFF header check) or empty file, more than
+        Missing, unreadable, truncated (WAV/RF64/W64/AIFF header check) or empty file, more than
         :data:`MAX_CHANNELS` channels, or a rate below :data:`MIN_RATE_HZ`.
     """
     handle, _ = _open_checked(path)
