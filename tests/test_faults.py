@@ -800,3 +800,34 @@ def test_workers_end_when_the_main_process_is_killed_outright(tmp_path, calls):
         for pid in workers:
             if not _process_gone(pid):
                 os.kill(pid, signal.SIGKILL)
+
+
+def test_report_rewrite_removes_stale_report_temps_only(tmp_path, two_profiles, calls):
+    from audiodsm.evaluate.report import write_report
+
+    pdir, spec = two_profiles
+    batch = grade_batch(collect_profiles([pdir]), parse_spec(SPEC), battery=quick_battery, jobs=1)
+    out = tmp_path / "report"
+    out.mkdir()
+    gone = dead_pid()
+    stale = out / f".grades.html.{gone}-abcd1234.partial"
+    stale.write_text("half a page")
+    stale_folder = tmp_path / f".report.{gone}-abcd1234.partial"
+    stale_folder.mkdir()
+    theirs = out / f".notes.txt.{gone}-abcd1234.partial"  # not a report file: not ours to judge
+    theirs.write_text("x")
+    write_report(batch, out)
+    assert not stale.exists() and not stale_folder.exists() and theirs.exists()
+
+
+def test_a_read_only_cache_folder_warns_and_keeps_the_results(
+    tmp_path, two_profiles, calls, use_quick_battery, monkeypatch
+):
+    pdir, spec = two_profiles
+    cache = tmp_path / "cache"
+    monkeypatch.setattr(GradeCache, "writable", property(lambda self: False))
+    r = run_grade([str(pdir), "--spec", str(spec), "--jobs", "1", "--cache", str(cache)])
+    assert r.exit_code == 1 and "PASS" in r.stdout and "FAIL" in r.stdout
+    (warning,) = r.stderr.strip().splitlines()
+    assert "the cache was not saved" in warning and "not writable" in warning
+    assert list(cache.iterdir()) == []

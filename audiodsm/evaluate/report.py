@@ -427,7 +427,8 @@ def check_report_dir(directory, *, protect=()) -> Path:
         for name in REPORT_FILES.values():
             if any(same_file(d / name, p) for p in protect):
                 raise OutputError(f"{d / name}: is an input of this run; refusing to overwrite it")
-        remove_stale_temp_files(d)
+        for name in REPORT_FILES.values():  # only our own names: the folder may be anyone's
+            remove_stale_temp_files(d, name=name)
     if d.parent.is_dir():
         remove_stale_temp_files(d.parent, name=d.name)
     return d
