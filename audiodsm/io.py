@@ -63,6 +63,7 @@ __all__ = [
     "fit_file_name",
     "same_file",
     "refuse_dangling_symlink",
+    "OutputSet",
 ]
 
 #: The most channels a file may hold.
@@ -731,7 +732,17 @@ class AudioFileWriter:
     ``KeyboardInterrupt``) deletes it.
     """
 
-    def __init__(self, path, *, rate_hz: int, channels: int, subtype: str, overwrite, protect):
+    def __init__(
+        self,
+        path,
+        *,
+        rate_hz: int,
+        channels: int,
+        subtype: str,
+        overwrite,
+        protect,
+        output_set=None,
+    ):
         if isinstance(rate_hz, bool) or not isinstance(rate_hz, int | np.integer) or rate_hz < 1:
             raise ParameterError("rate_hz", rate_hz, "a positive integer rate in Hz")
         if isinstance(channels, bool) or not isinstance(channels, int | np.integer):
@@ -744,6 +755,7 @@ class AudioFileWriter:
         self.subtype = subtype
         self.frames_written = 0
         self._overwrite = overwrite
+        self._output_set = output_set
         self._tmp: str | None = None
         self._handle: sf.SoundFile | None = None
 
@@ -797,6 +809,9 @@ class AudioFileWriter:
                 Path(tmp).unlink(missing_ok=True)
             raise
         if exc_type is None and tmp is not None:
+            if self._output_set is not None:  # renamed with the rest of its set
+                self._output_set.stage(tmp, self.path, overwrite=self._overwrite)
+                return
             if os.path.lexists(self.path) and not self._overwrite:
                 os.unlink(tmp)
                 raise OutputError(f"{self.path}: appeared while writing; not replaced")
@@ -827,6 +842,7 @@ def open_audio_writer(
     subtype: str = "PCM_24",
     overwrite: bool = False,
     protect=(),
+    output_set: OutputSet | None = None,
 ) -> AudioFileWriter:
     """Open a streaming, all-or-nothing audio writer.
 
@@ -845,6 +861,9 @@ def open_audio_writer(
         Replace an existing file. Without it an existing file raises OutputError.
     protect : iterable of path, optional
         Files that must never be replaced (the inputs of a run), even with ``overwrite``.
+    output_set : OutputSet, optional
+        Leave the finished file under its temporary name for the set to rename together with
+        the set's other outputs (:meth:`OutputSet.commit`).
 
     Returns
     -------
@@ -866,6 +885,7 @@ def open_audio_writer(
         subtype=subtype,
         overwrite=overwrite,
         protect=protect,
+        output_set=output_set,
     )
 
 
@@ -877,6 +897,7 @@ def write_audio_atomic(
     subtype: str = "PCM_24",
     overwrite: bool = False,
     protect=(),
+    output_set: OutputSet | None = None,
 ) -> Path:
     """Write a whole signal to a file, atomically.
 
@@ -888,7 +909,7 @@ def write_audio_atomic(
         Shape ``(n,)`` or ``(n, channels)``, full scale ±1.0.
     rate_hz : int
         Sample rate in Hz.
-    subtype, overwrite, protect
+    subtype, overwrite, protect, output_set
         As :func:`open_audio_writer`.
 
     Returns
@@ -904,6 +925,7 @@ def write_audio_atomic(
         subtype=subtype,
         overwrite=overwrite,
         protect=protect,
+        output_set=output_set,
     ) as writer:
         writer.write(x)
     return writer.path
@@ -952,3 +974,134 @@ def replace_text_atomically(path, text: str) -> Path:
         tmp.unlink(missing_ok=True)
         raise
     return p
+
+
+class OutputSet:
+    """Outputs that appear together or not at all (a listening file and its summary, say).
+
+    Files written for the set stay under their hidden temporary names until :meth:`commit`
+    renames them all. A failure before the commit (a full disk while writing the last file,
+    Ctrl-C) leaves none of them under a final name; :meth:`discard` removes the temporary
+    files. If a rename inside the commit fails, the files the commit already put in place are
+    taken back out again (a file they replaced is restored from a hard link kept for the
+    purpose, where the file system allows one), so the set is still all or nothing.
+
+    Use it as a context manager: leaving the block normally commits, leaving it through an
+    exception discards::
+
+        with OutputSet() as outputs:
+            with open_audio_writer(listen, rate_hz=48000, channels=2, output_set=outputs) as w:
+                w.write(block)
+            outputs.add_text(summary, text)
+    """
+
+    def __init__(self):
+        self._staged: list = []  # (temporary file, final name, may replace)
+
+    def stage(self, tmp, final, *, overwrite: bool) -> None:
+        """Take over a finished temporary file, to be renamed to ``final`` on commit."""
+        self._staged.append((Path(tmp), Path(final), bool(overwrite)))
+
+    def add_text(self, path, text: str, *, overwrite: bool = False) -> Path:
+        """Write a UTF-8 text file for the set (no newline translation); return its name.
+
+        Raises
+        ------
+        OutputError
+            The file (or a dangling symlink) exists and ``overwrite`` is False.
+        StorageError
+            The temporary file cannot be written.
+        """
+        p = Path(path)
+        _check_name_fits(p)
+        refuse_dangling_symlink(p, replace=overwrite)
+        if p.exists() and not overwrite:
+            raise OutputError(f"{p}: already exists (pass overwrite=True to replace it)")
+        fd, tmp = create_temp_file(p)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            raise StorageError(p, exc) from None
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
+        self.stage(tmp, p, overwrite=overwrite)
+        return p
+
+    def _backup(self, final: Path) -> Path | None:
+        """A hard link to a file about to be replaced, or None (nothing there, or no links)."""
+        if not final.is_file():
+            return None
+        fd, spare = create_temp_file(final)
+        os.close(fd)
+        spare.unlink()
+        try:
+            os.link(final, spare)
+        except OSError:
+            return None
+        return spare
+
+    def commit(self) -> list:
+        """Rename every staged file to its final name; all of them or none.
+
+        Returns
+        -------
+        list of Path
+            The final names, in the order staged.
+
+        Raises
+        ------
+        OutputError
+            A final name appeared meanwhile and may not be replaced.
+        StorageError
+            A rename failed; nothing of the set is left under a final name.
+        """
+        placed, backups = [], []
+        try:
+            for tmp, final, overwrite in self._staged:
+                if os.path.lexists(final) and not overwrite:
+                    raise OutputError(f"{final}: appeared while writing; not replaced")
+                backups.append(self._backup(final) if overwrite else None)
+                try:
+                    os.replace(tmp, final)
+                except OSError as exc:
+                    raise StorageError(final, exc) from None
+                placed.append(final)
+        except BaseException:
+            for final, spare in zip(placed, backups, strict=False):
+                try:
+                    if spare is not None:
+                        os.replace(spare, final)
+                    else:
+                        final.unlink(missing_ok=True)
+                except OSError:
+                    pass
+            for spare in backups[len(placed) :]:
+                if spare is not None:
+                    spare.unlink(missing_ok=True)
+            self.discard()
+            raise
+        for spare in backups:
+            if spare is not None:
+                spare.unlink(missing_ok=True)
+        self._staged = []
+        return placed
+
+    def discard(self) -> None:
+        """Remove every staged temporary file; nothing appears under a final name."""
+        for tmp, _final, _overwrite in self._staged:
+            tmp.unlink(missing_ok=True)
+        self._staged = []
+
+    def __enter__(self) -> OutputSet:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is None:
+            self.commit()
+        else:
+            self.discard()

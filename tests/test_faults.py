@@ -831,3 +831,67 @@ def test_a_read_only_cache_folder_warns_and_keeps_the_results(
     (warning,) = r.stderr.strip().splitlines()
     assert "the cache was not saved" in warning and "not writable" in warning
     assert list(cache.iterdir()) == []
+
+
+# --------------------------------------------------------------------------------------------
+# a set of outputs: all or nothing (for render's listening file and summary)
+# --------------------------------------------------------------------------------------------
+
+
+def test_an_output_set_appears_whole(tmp_path):
+    from audiodsm.io import OutputSet
+
+    listen, summary = tmp_path / "take.listen.wav", tmp_path / "take.summary.json"
+    with OutputSet() as outputs:
+        write_audio_atomic(listen, np.zeros(100), 48000, output_set=outputs)
+        assert not listen.exists()  # held back until the whole set is written
+        outputs.add_text(summary, "{}\n")
+    assert listen.is_file() and summary.read_text() == "{}\n"
+    assert hidden(tmp_path) == []
+
+
+def test_an_output_set_that_fails_leaves_nothing(tmp_path, monkeypatch):
+    from audiodsm.io import OutputSet
+
+    listen, summary = tmp_path / "take.listen.wav", tmp_path / "take.summary.json"
+
+    # the summary cannot be written (full disk) after the listening file was: neither appears
+    def full(fd, *a, **k):
+        os.close(fd)
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    with pytest.raises(StorageError, match=str(summary)):
+        with OutputSet() as outputs:
+            write_audio_atomic(listen, np.zeros(100), 48000, output_set=outputs)
+            monkeypatch.setattr(os, "fdopen", full)
+            outputs.add_text(summary, "{}\n")
+    monkeypatch.undo()
+    assert os.listdir(tmp_path) == []
+    # a rename that fails inside the commit takes back what it had placed, and restores a
+    # file it replaced
+    listen.write_bytes(b"old take")
+    outputs = OutputSet()
+    write_audio_atomic(listen, np.zeros(100), 48000, output_set=outputs, overwrite=True)
+    outputs.add_text(summary, "{}\n")
+    real_replace = os.replace
+
+    def failing(src, dst):
+        if str(dst) == str(summary):
+            raise OSError(errno.EROFS, os.strerror(errno.EROFS), str(dst))
+        return real_replace(src, dst)
+
+    monkeypatch.setattr(os, "replace", failing)
+    with pytest.raises(StorageError, match=os.strerror(errno.EROFS)):
+        outputs.commit()
+    monkeypatch.undo()
+    assert os.listdir(tmp_path) == [listen.name] and listen.read_bytes() == b"old take"
+
+
+def test_an_output_set_left_by_an_exception_is_discarded(tmp_path):
+    from audiodsm.io import OutputSet
+
+    with pytest.raises(KeyboardInterrupt):
+        with OutputSet() as outputs:
+            outputs.add_text(tmp_path / "a.txt", "x")
+            raise KeyboardInterrupt
+    assert os.listdir(tmp_path) == []
