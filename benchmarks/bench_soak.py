@@ -198,6 +198,7 @@ def run():
     def phase(d):
         return {k: v for k, v in d.items() if k != "result"} | {
             "interrupted": d["result"].get("interrupted"),
+            "stop_signal": d["result"].get("signal"),
             "graded": len(d["result"].get("grades", {})),
         }
 
