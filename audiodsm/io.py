@@ -8,15 +8,28 @@ name in the target folder first and is renamed only when complete
 half-written file under the final name.
 
 Problems with a file raise :class:`~audiodsm.errors.AudioFileError` with a one-line message
-that names the file: missing, unreadable, truncated, empty, NaN/Inf samples, more than
-:data:`MAX_CHANNELS` channels, or a rate below :data:`MIN_RATE_HZ`.
+that names the file: missing, unreadable, truncated (the WAV, RF64, Wave64 and AIFF headers are
+checked against the bytes present), empty, NaN/Inf samples, more than :data:`MAX_CHANNELS`
+channels, or a rate below :data:`MIN_RATE_HZ`.
+
+Outputs: the temporary name records the writer's process id (:func:`create_temp_file`), so a
+later run removes what a killed one left (:func:`remove_stale_temp_files`); files get the
+permissions of the user's umask; a write that fails for want of space, permission or a name
+that fits raises :class:`~audiodsm.errors.StorageError` naming the path and the cause. Helpers
+for choosing output names: :func:`fit_file_name` (shorten with a digest), :func:`same_file`
+(device and inode), :func:`refuse_dangling_symlink`.
 """
 
 from __future__ import annotations
 
+import errno
+import hashlib
 import os
+import re
+import shutil
 import struct
 import tempfile
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -24,7 +37,7 @@ from pathlib import Path
 import numpy as np
 import soundfile as sf
 
-from audiodsm.errors import AudioFileError, OutputError, ParameterError
+from audiodsm.errors import AudioFileError, OutputError, ParameterError, StorageError
 
 __all__ = [
     "MAX_CHANNELS",
@@ -39,6 +52,18 @@ __all__ = [
     "open_audio_writer",
     "AudioFileWriter",
     "replace_text_atomically",
+    "MAX_NAME_BYTES",
+    "MAX_OUTPUT_NAME_BYTES",
+    "TEMP_SUFFIXES",
+    "current_umask",
+    "create_temp_file",
+    "create_temp_folder",
+    "temp_file_owner",
+    "remove_stale_temp_files",
+    "fit_file_name",
+    "same_file",
+    "refuse_dangling_symlink",
+    "OutputSet",
 ]
 
 #: The most channels a file may hold.
@@ -86,20 +111,41 @@ class AudioInfo:
         return self.frames / self.rate_hz
 
 
-def _declared_shortfall(path: Path) -> tuple[int, int] | None:
-    """Compare the data size a WAV or AIFF header declares with the bytes present.
+_W64_RIFF = b"riff\x2e\x91\xcf\x11\xa5\xd6\x28\xdb\x04\xc1\x00\x00"
+_W64_WAVE = b"wave\xf3\xac\xd3\x11\x8c\xd1\x00\xc0\x4f\x8e\xdb\x8a"
+_W64_DATA = b"data\xf3\xac\xd3\x11\x8c\xd1\x00\xc0\x4f\x8e\xdb\x8a"
 
-    libsndfile silently shortens a truncated WAV or AIFF file to the data it finds, so the
-    header is checked here. Returns ``(declared_bytes, present_bytes)`` when the file holds
-    fewer sample bytes than its header declares, else None (also for other containers and
-    for streaming headers that leave the size at 0 or 0xFFFFFFFF).
+
+def _declared_shortfall(path: Path) -> tuple[int, int] | None:
+    """Compare the data size a file's header declares with the bytes present.
+
+    libsndfile silently shortens a truncated WAV, RF64/BW64, Sony Wave64 or AIFF file to the
+    data it finds, so the header is checked here. Returns ``(declared_bytes, present_bytes)``
+    when the file holds fewer sample bytes than its header declares, else None (also for
+    other containers and for streaming headers that leave the size at 0 or 0xFFFFFFFF).
+
+    References
+    ----------
+    .. [1] EBU Tech 3306, "MBWF / RF64: An extended File Format for Audio" (2009): the
+       ``ds64`` chunk holds the 64-bit RIFF size, data size and sample count, in that order,
+       and a ``data`` chunk size of 0xFFFFFFFF defers to it.
+    .. [2] Sony Wave64 (W64): chunks are a 16-byte GUID and a 64-bit little-endian size that
+       counts the 24-byte chunk header, each chunk padded to a multiple of 8 bytes.
     """
     size = path.stat().st_size
     with open(path, "rb") as fh:
-        head = fh.read(12)
+        head = fh.read(40)
         if len(head) < 12:
             return None
-        if head[:4] in (b"RIFF", b"RIFX") and head[8:12] == b"WAVE":
+        if head[:16] == _W64_RIFF and head[24:40] == _W64_WAVE:
+            return _w64_shortfall(fh, size)
+        ds64_data = None
+        if head[:4] in (b"RF64", b"BW64") and head[8:12] == b"WAVE":
+            endian = "<"
+            data_id, extra = b"data", 0
+            if head[12:16] == b"ds64" and len(head) >= 36:
+                (ds64_data,) = struct.unpack("<Q", head[28:36])
+        elif head[:4] in (b"RIFF", b"RIFX") and head[8:12] == b"WAVE":
             endian = "<" if head[:4] == b"RIFF" else ">"
             data_id, extra = b"data", 0
         elif head[:4] == b"FORM" and head[8:12] in (b"AIFF", b"AIFC"):
@@ -115,12 +161,33 @@ def _declared_shortfall(path: Path) -> tuple[int, int] | None:
                 return None
             (length,) = struct.unpack(endian + "I", chunk[4:8])
             if chunk[:4] == data_id:
+                if length == 0xFFFFFFFF and ds64_data is not None:
+                    length = ds64_data
                 if length in (0, 0xFFFFFFFF):
                     return None
                 declared = length - extra
                 present = size - (pos + 8 + extra)
                 return (declared, present) if present < declared else None
             pos += 8 + length + (length & 1)
+    return None
+
+
+def _w64_shortfall(fh, size: int) -> tuple[int, int] | None:
+    """The W64 half of :func:`_declared_shortfall`."""
+    pos = 40
+    while pos + 24 <= size:
+        fh.seek(pos)
+        chunk = fh.read(24)
+        if len(chunk) < 24:
+            return None
+        (length,) = struct.unpack("<Q", chunk[16:24])
+        if length < 24:
+            return None
+        if chunk[:16] == _W64_DATA:
+            declared = length - 24
+            present = size - (pos + 24)
+            return (declared, present) if present < declared else None
+        pos += length + (-length % 8)
     return None
 
 
@@ -178,7 +245,7 @@ def audio_info(path) -> AudioInfo:
     Raises
     ------
     AudioFileError
-        Missing, unreadable, truncated (WAV/AIFF header check) or empty file, more than
+        Missing, unreadable, truncated (WAV/RF64/W64/AIFF header check) or empty file, more than
         :data:`MAX_CHANNELS` channels, or a rate below :data:`MIN_RATE_HZ`.
     """
     handle, _ = _open_checked(path)
@@ -328,6 +395,278 @@ def read_audio(path) -> tuple[np.ndarray, int]:
 
 
 # ---------------------------------------------------------------------------------------------
+# Temporary files, stale clean-up, names that fit, same-file checks
+# ---------------------------------------------------------------------------------------------
+
+#: Suffixes of the hidden temporary files outputs are written to before they are renamed.
+TEMP_SUFFIXES = (".partial", ".part")
+#: The longest file name, in bytes, that common file systems accept (ext4, XFS, APFS, NTFS).
+MAX_NAME_BYTES = 255
+# a temporary name wraps the final one: "." + name + "." + pid (up to 10 digits) + "-" +
+# 8 random characters + ".partial"
+_TEMP_WRAP_BYTES = 1 + 1 + 10 + 1 + 8 + len(".partial")
+#: The longest final output name :func:`fit_file_name` makes, so its temporary twin fits too.
+MAX_OUTPUT_NAME_BYTES = MAX_NAME_BYTES - _TEMP_WRAP_BYTES
+#: Temporary files in the old layout (no owner process in the name) older than this are stale.
+_LEGACY_STALE_S = 24 * 3600.0
+
+# ".<name>.<pid>-<random>.partial" (or ".part"): the owner's process id is in the name
+_TEMP_NAME = re.compile(r"^\.(?P<name>.+)\.(?P<pid>[0-9]{1,10})-[a-z0-9_]{8}(?:\.partial|\.part)$")
+# the layout before the owner was recorded: ".<name>.<random>.partial" and ".partial-<random>.npz"
+_LEGACY_TEMP_NAME = re.compile(
+    r"^(?:\.(?P<name>.+)\.[a-z0-9_]{8}(?:\.partial|\.part)|\.partial-[a-z0-9_]{8}\.npz)$"
+)
+
+
+def current_umask() -> int:
+    """The process's file-creation mask, e.g. ``0o022``.
+
+    Read from ``/proc/self/status`` where there is one (Linux), which leaves the mask alone;
+    elsewhere it is set and put back at once (``os.umask`` has no read-only form).
+    """
+    try:
+        with open("/proc/self/status", encoding="ascii", errors="replace") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _temp_stem(name: str) -> str:
+    """The part of a temporary name that stands for the final name (shortened to fit)."""
+    return fit_file_name(name, max_bytes=MAX_OUTPUT_NAME_BYTES)
+
+
+def create_temp_file(path, *, suffix: str = ".partial") -> tuple[int, Path]:
+    """Create the hidden temporary file an output is written to before its rename.
+
+    The file is ``.<name>.<pid>-<random><suffix>`` in the output's folder: the process id of
+    the writer is part of the name, so a later run can tell a file left by a killed run
+    (:func:`remove_stale_temp_files`) from one still being written. Stale temporary files of
+    the same output are removed first. The file gets the permissions a plain new file gets
+    under the user's umask (0644 under 0022), not ``mkstemp``'s 0600, so the renamed output
+    does too.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The final output name.
+    suffix : str, keyword-only
+        One of :data:`TEMP_SUFFIXES`.
+
+    Returns
+    -------
+    fd : int
+        An open file descriptor (the caller closes it).
+    tmp : Path
+        The temporary file.
+
+    Raises
+    ------
+    StorageError
+        The folder is missing, read-only or full.
+    """
+    if suffix not in TEMP_SUFFIXES:
+        raise ParameterError("suffix", suffix, f"one of {', '.join(TEMP_SUFFIXES)}")
+    p = Path(path)
+    folder = p.parent if str(p.parent) else Path(".")
+    stem = _temp_stem(p.name)
+    remove_stale_temp_files(folder, name=stem)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{stem}.{os.getpid()}-", suffix=suffix, dir=folder)
+    except OSError as exc:
+        raise StorageError(p, exc) from None
+    try:
+        os.fchmod(fd, 0o666 & ~current_umask())
+    except OSError:  # a file system without permissions (FAT): keep what it gives
+        pass
+    return fd, Path(tmp)
+
+
+def create_temp_folder(path) -> Path:
+    """Create the hidden temporary folder a set of outputs is written into before its rename.
+
+    As :func:`create_temp_file`, for a folder: ``.<name>.<pid>-<random>.partial`` beside
+    ``path``, with the permissions of a new folder under the user's umask (0755 under 0022).
+
+    Raises
+    ------
+    StorageError
+        The parent folder is missing, read-only or full.
+    """
+    p = Path(path)
+    parent = p.parent if str(p.parent) else Path(".")
+    stem = _temp_stem(p.name)
+    remove_stale_temp_files(parent, name=stem)
+    try:
+        tmp = Path(
+            tempfile.mkdtemp(prefix=f".{stem}.{os.getpid()}-", suffix=".partial", dir=parent)
+        )
+    except OSError as exc:
+        raise StorageError(p, exc) from None
+    try:
+        os.chmod(tmp, 0o777 & ~current_umask())
+    except OSError:
+        pass
+    return tmp
+
+
+def temp_file_owner(name: str) -> int | None:
+    """The process id recorded in a temporary file's name, or None for any other name."""
+    m = _TEMP_NAME.match(name)
+    return int(m.group("pid")) if m else None
+
+
+def _process_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    if pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # EPERM: alive, owned by someone else
+        return True
+    return True
+
+
+def remove_stale_temp_files(folder, *, name: str | None = None) -> list:
+    """Remove the hidden temporary files in a folder that no live process owns.
+
+    A temporary file whose name records a process id (:func:`create_temp_file`) is stale when
+    that process no longer runs: a run killed before it could clean up left it. Temporary
+    files in the older layout without a process id are stale when untouched for a day. Files
+    of a live process, and every other file, are left alone. Removal is best effort: a file
+    that vanishes meanwhile or cannot be removed is skipped.
+
+    Process ids are those of this machine: a folder shared with another machine over a
+    network may hold temporary files whose owner runs there; they are kept as long as a
+    process with the same id runs here.
+
+    Parameters
+    ----------
+    folder : str or os.PathLike
+    name : str, optional, keyword-only
+        Only the temporary files of this output name.
+
+    Returns
+    -------
+    list of Path
+        What was removed.
+    """
+    removed = []
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    now = time.time()
+    for entry in entries:
+        m = _TEMP_NAME.match(entry.name)
+        if m is not None:
+            if name is not None and m.group("name") != name:
+                continue
+            if _process_alive(int(m.group("pid"))):
+                continue
+        else:
+            legacy = _LEGACY_TEMP_NAME.match(entry.name)
+            if legacy is None or (name is not None and legacy.group("name") != name):
+                continue
+            try:
+                if now - entry.stat(follow_symlinks=False).st_mtime < _LEGACY_STALE_S:
+                    continue
+            except OSError:
+                continue
+        try:
+            if entry.is_dir(follow_symlinks=False):
+                shutil.rmtree(entry.path)
+            else:
+                os.unlink(entry.path)
+        except OSError:
+            continue
+        removed.append(Path(entry.path))
+    return removed
+
+
+def fit_file_name(name: str, *, max_bytes: int = MAX_OUTPUT_NAME_BYTES) -> str:
+    """Shorten a file name that is too long, keeping it unique with a digest.
+
+    A name of at most ``max_bytes`` bytes (UTF-8) comes back unchanged. A longer one keeps
+    its extension and as much of its start as fits, followed by ``-`` and the first 16 hex
+    digits of the SHA-256 of the whole name, so two long names that differ anywhere get
+    different short names, and the same name always gets the same one.
+
+    Parameters
+    ----------
+    name : str
+        A file name (no folder part).
+    max_bytes : int, keyword-only
+        At least 40. Default :data:`MAX_OUTPUT_NAME_BYTES`, which leaves room for the
+        temporary name wrapped around it while it is written.
+
+    Returns
+    -------
+    str
+    """
+    if isinstance(max_bytes, bool) or not isinstance(max_bytes, int) or max_bytes < 40:
+        raise ParameterError("max_bytes", max_bytes, "an integer of at least 40")
+    raw = name.encode("utf-8", "surrogateescape")
+    if len(raw) <= max_bytes:
+        return name
+    digest = hashlib.sha256(raw).hexdigest()[:16]
+    dot = name.rfind(".")
+    ext = name[dot:] if 0 < dot and len(name[dot:].encode("utf-8", "surrogateescape")) <= 12 else ""
+    stem_raw = raw[: len(raw) - len(ext.encode("utf-8", "surrogateescape"))]
+    room = max_bytes - len(ext.encode("utf-8", "surrogateescape")) - 1 - len(digest)
+    stem = stem_raw[:room].decode("utf-8", "ignore")  # never split a character
+    return f"{stem}-{digest}{ext}"
+
+
+def same_file(a, b) -> bool:
+    """True when two paths name the same file or folder (same device and inode).
+
+    Unlike comparing path text, this sees through symlinks, ``..``, hard links and bind
+    mounts. A path that does not exist is the same as nothing.
+    """
+    try:
+        sa, sb = os.stat(a), os.stat(b)
+    except (OSError, ValueError):
+        return False
+    return (sa.st_dev, sa.st_ino) == (sb.st_dev, sb.st_ino)
+
+
+def refuse_dangling_symlink(path, *, replace: bool) -> None:
+    """Refuse to write over a symlink that points nowhere, unless replacing was asked for.
+
+    ``Path.exists`` is False for a dangling symlink, so an "already exists" check lets it
+    through, and the rename that finishes an atomic write would then silently replace the
+    link. This check makes the link count as an existing output.
+
+    Raises
+    ------
+    OutputError
+        ``path`` is a dangling symlink and ``replace`` is False.
+    """
+    p = Path(path)
+    if not replace and p.is_symlink() and not p.exists():
+        raise OutputError(
+            f"{path}: is a symlink to a missing file ({os.readlink(p)}); "
+            "not replaced without permission to replace outputs"
+        )
+
+
+def _check_name_fits(path) -> None:
+    """Refuse a final name longer than the file system takes, before any work is done."""
+    p = Path(path)
+    if len(p.name.encode("utf-8", "surrogateescape")) > MAX_NAME_BYTES:
+        raise StorageError(p, os.strerror(errno.ENAMETOOLONG))
+
+
+# ---------------------------------------------------------------------------------------------
 # Writing
 # ---------------------------------------------------------------------------------------------
 
@@ -348,7 +687,9 @@ def _target(path, subtype: str, overwrite: bool, protect) -> tuple[Path, str]:
     if not folder.is_dir():
         raise OutputError(f"{path}: folder {str(folder)!r} does not exist")
     if not os.access(folder, os.W_OK):
-        raise OutputError(f"{path}: folder {str(folder)!r} is not writable")
+        raise StorageError(path, f"folder {str(folder)!r} is not writable")
+    _check_name_fits(p)
+    refuse_dangling_symlink(p, replace=overwrite)
     if p.exists():
         for other in protect:
             try:
@@ -391,7 +732,17 @@ class AudioFileWriter:
     ``KeyboardInterrupt``) deletes it.
     """
 
-    def __init__(self, path, *, rate_hz: int, channels: int, subtype: str, overwrite, protect):
+    def __init__(
+        self,
+        path,
+        *,
+        rate_hz: int,
+        channels: int,
+        subtype: str,
+        overwrite,
+        protect,
+        output_set=None,
+    ):
         if isinstance(rate_hz, bool) or not isinstance(rate_hz, int | np.integer) or rate_hz < 1:
             raise ParameterError("rate_hz", rate_hz, "a positive integer rate in Hz")
         if isinstance(channels, bool) or not isinstance(channels, int | np.integer):
@@ -404,24 +755,27 @@ class AudioFileWriter:
         self.subtype = subtype
         self.frames_written = 0
         self._overwrite = overwrite
+        self._output_set = output_set
         self._tmp: str | None = None
         self._handle: sf.SoundFile | None = None
 
     def __enter__(self) -> AudioFileWriter:
-        fd, tmp = tempfile.mkstemp(
-            prefix=f".{self.path.name}.", suffix=".partial", dir=self.path.parent or "."
-        )
+        fd, tmp = create_temp_file(self.path)
         os.close(fd)
-        self._tmp = tmp
+        self._tmp = str(tmp)
         try:
             self._handle = sf.SoundFile(
-                tmp,
+                self._tmp,
                 "w",
                 samplerate=self.rate_hz,
                 channels=self.channels,
                 subtype=self.subtype,
                 format=self._container,
             )
+        except (sf.SoundFileError, RuntimeError, OSError) as exc:
+            os.unlink(tmp)
+            self._tmp = None
+            raise StorageError(self.path, _sound_cause(exc)) from None
         except BaseException:
             os.unlink(tmp)
             self._tmp = None
@@ -433,7 +787,11 @@ class AudioFileWriter:
         if self._handle is None:
             raise OutputError(f"{self.path}: writer is not open (use it in a with block)")
         x = _check_block(frames, self.channels, self.subtype)
-        self._handle.write(x)
+        try:
+            self._handle.write(x)
+        except (sf.SoundFileError, RuntimeError, OSError, AssertionError) as exc:
+            # libsndfile reports a full disk as a short write (soundfile asserts on it)
+            raise StorageError(self.path, _sound_cause(exc)) from None
         self.frames_written += x.shape[0]
 
     def __exit__(self, exc_type, exc, tb) -> None:
@@ -441,15 +799,39 @@ class AudioFileWriter:
         self._handle = self._tmp = None
         try:
             if handle is not None:
-                handle.close()
-        finally:
-            if exc_type is None and tmp is not None:
-                if self.path.exists() and not self._overwrite:
-                    os.unlink(tmp)
-                    raise OutputError(f"{self.path}: appeared while writing; not replaced")
-                os.replace(tmp, self.path)
-            elif tmp is not None and os.path.exists(tmp):
+                try:
+                    handle.close()
+                except (sf.SoundFileError, RuntimeError, OSError) as err:
+                    if exc_type is None:
+                        raise StorageError(self.path, _sound_cause(err)) from None
+        except BaseException:
+            if tmp is not None:
+                Path(tmp).unlink(missing_ok=True)
+            raise
+        if exc_type is None and tmp is not None:
+            if self._output_set is not None:  # renamed with the rest of its set
+                self._output_set.stage(tmp, self.path, overwrite=self._overwrite)
+                return
+            if os.path.lexists(self.path) and not self._overwrite:
                 os.unlink(tmp)
+                raise OutputError(f"{self.path}: appeared while writing; not replaced")
+            try:
+                os.replace(tmp, self.path)
+            except OSError as err:
+                Path(tmp).unlink(missing_ok=True)
+                raise StorageError(self.path, err) from None
+        elif tmp is not None:
+            Path(tmp).unlink(missing_ok=True)
+
+
+def _sound_cause(exc) -> str:
+    """Plain words for why libsndfile or the OS refused a write."""
+    if isinstance(exc, OSError) and exc.strerror:
+        return exc.strerror
+    if isinstance(exc, AssertionError):
+        return "short write: the disk may be full"
+    text = str(exc).split(":")[-1].strip()
+    return text or type(exc).__name__
 
 
 def open_audio_writer(
@@ -460,6 +842,7 @@ def open_audio_writer(
     subtype: str = "PCM_24",
     overwrite: bool = False,
     protect=(),
+    output_set: OutputSet | None = None,
 ) -> AudioFileWriter:
     """Open a streaming, all-or-nothing audio writer.
 
@@ -478,6 +861,9 @@ def open_audio_writer(
         Replace an existing file. Without it an existing file raises OutputError.
     protect : iterable of path, optional
         Files that must never be replaced (the inputs of a run), even with ``overwrite``.
+    output_set : OutputSet, optional
+        Leave the finished file under its temporary name for the set to rename together with
+        the set's other outputs (:meth:`OutputSet.commit`).
 
     Returns
     -------
@@ -499,6 +885,7 @@ def open_audio_writer(
         subtype=subtype,
         overwrite=overwrite,
         protect=protect,
+        output_set=output_set,
     )
 
 
@@ -510,6 +897,7 @@ def write_audio_atomic(
     subtype: str = "PCM_24",
     overwrite: bool = False,
     protect=(),
+    output_set: OutputSet | None = None,
 ) -> Path:
     """Write a whole signal to a file, atomically.
 
@@ -521,7 +909,7 @@ def write_audio_atomic(
         Shape ``(n,)`` or ``(n, channels)``, full scale ±1.0.
     rate_hz : int
         Sample rate in Hz.
-    subtype, overwrite, protect
+    subtype, overwrite, protect, output_set
         As :func:`open_audio_writer`.
 
     Returns
@@ -537,6 +925,7 @@ def write_audio_atomic(
         subtype=subtype,
         overwrite=overwrite,
         protect=protect,
+        output_set=output_set,
     ) as writer:
         writer.write(x)
     return writer.path
@@ -559,19 +948,160 @@ def replace_text_atomically(path, text: str) -> Path:
     -------
     Path
 
+    The file gets the permissions of a new file under the user's umask (0644 under 0022).
+    The temporary name records this process's id, so a later run can remove it if this one
+    is killed (:func:`remove_stale_temp_files`).
+
     Raises
     ------
-    OSError
-        The folder is missing or not writable, or the write or rename failed.
+    StorageError
+        (an ``OSError``) The folder is missing or not writable, the disk is full, the name
+        is too long, or the rename failed; the message names the path and the cause.
     """
     p = Path(path)
-    folder = p.parent if str(p.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{p.name}.", suffix=".partial")
+    _check_name_fits(p)
+    fd, tmp = create_temp_file(p)
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
             fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
         os.replace(tmp, p)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise StorageError(p, exc) from None
     except BaseException:
-        Path(tmp).unlink(missing_ok=True)
+        tmp.unlink(missing_ok=True)
         raise
     return p
+
+
+class OutputSet:
+    """Outputs that appear together or not at all (a listening file and its summary, say).
+
+    Files written for the set stay under their hidden temporary names until :meth:`commit`
+    renames them all. A failure before the commit (a full disk while writing the last file,
+    Ctrl-C) leaves none of them under a final name; :meth:`discard` removes the temporary
+    files. If a rename inside the commit fails, the files the commit already put in place are
+    taken back out again (a file they replaced is restored from a hard link kept for the
+    purpose, where the file system allows one), so the set is still all or nothing.
+
+    Use it as a context manager: leaving the block normally commits, leaving it through an
+    exception discards::
+
+        with OutputSet() as outputs:
+            with open_audio_writer(listen, rate_hz=48000, channels=2, output_set=outputs) as w:
+                w.write(block)
+            outputs.add_text(summary, text)
+    """
+
+    def __init__(self):
+        self._staged: list = []  # (temporary file, final name, may replace)
+
+    def stage(self, tmp, final, *, overwrite: bool) -> None:
+        """Take over a finished temporary file, to be renamed to ``final`` on commit."""
+        self._staged.append((Path(tmp), Path(final), bool(overwrite)))
+
+    def add_text(self, path, text: str, *, overwrite: bool = False) -> Path:
+        """Write a UTF-8 text file for the set (no newline translation); return its name.
+
+        Raises
+        ------
+        OutputError
+            The file (or a dangling symlink) exists and ``overwrite`` is False.
+        StorageError
+            The temporary file cannot be written.
+        """
+        p = Path(path)
+        _check_name_fits(p)
+        refuse_dangling_symlink(p, replace=overwrite)
+        if p.exists() and not overwrite:
+            raise OutputError(f"{p}: already exists (pass overwrite=True to replace it)")
+        fd, tmp = create_temp_file(p)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            raise StorageError(p, exc) from None
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
+        self.stage(tmp, p, overwrite=overwrite)
+        return p
+
+    def _backup(self, final: Path) -> Path | None:
+        """A hard link to a file about to be replaced, or None (nothing there, or no links)."""
+        if not final.is_file():
+            return None
+        fd, spare = create_temp_file(final)
+        os.close(fd)
+        spare.unlink()
+        try:
+            os.link(final, spare)
+        except OSError:
+            return None
+        return spare
+
+    def commit(self) -> list:
+        """Rename every staged file to its final name; all of them or none.
+
+        Returns
+        -------
+        list of Path
+            The final names, in the order staged.
+
+        Raises
+        ------
+        OutputError
+            A final name appeared meanwhile and may not be replaced.
+        StorageError
+            A rename failed; nothing of the set is left under a final name.
+        """
+        placed, backups = [], []
+        try:
+            for tmp, final, overwrite in self._staged:
+                if os.path.lexists(final) and not overwrite:
+                    raise OutputError(f"{final}: appeared while writing; not replaced")
+                backups.append(self._backup(final) if overwrite else None)
+                try:
+                    os.replace(tmp, final)
+                except OSError as exc:
+                    raise StorageError(final, exc) from None
+                placed.append(final)
+        except BaseException:
+            for final, spare in zip(placed, backups, strict=False):
+                try:
+                    if spare is not None:
+                        os.replace(spare, final)
+                    else:
+                        final.unlink(missing_ok=True)
+                except OSError:
+                    pass
+            for spare in backups[len(placed) :]:
+                if spare is not None:
+                    spare.unlink(missing_ok=True)
+            self.discard()
+            raise
+        for spare in backups:
+            if spare is not None:
+                spare.unlink(missing_ok=True)
+        self._staged = []
+        return placed
+
+    def discard(self) -> None:
+        """Remove every staged temporary file; nothing appears under a final name."""
+        for tmp, _final, _overwrite in self._staged:
+            tmp.unlink(missing_ok=True)
+        self._staged = []
+
+    def __enter__(self) -> OutputSet:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is None:
+            self.commit()
+        else:
+            self.discard()

@@ -9,7 +9,14 @@ from pathlib import Path
 import click
 
 from audiodsm.cli._options import short_plan_option
-from audiodsm.errors import ParameterError
+from audiodsm.errors import (
+    EXIT_FAILED,
+    EXIT_OK,
+    EXIT_STORAGE,
+    ParameterError,
+    StorageError,
+    exit_code_for_signal,
+)
 
 
 class _Bar:
@@ -83,8 +90,10 @@ def grade(
     graded pass or fail with a margin in the metric's unit (positive = better than the limit),
     and profiles are ranked by their worst margin. With --short the battery runs its short
     plan, as ``audiodsm measure --short`` does (cached apart from full runs). Exit status: 0
-    when every target of every profile passes, 1 when any fails, 2 on bad input, 130 when
-    interrupted (finished results stay cached; run the same command again to resume).
+    when every target of every profile passes, 1 when any fails, 2 on bad input, 3 when the
+    report cannot be written (the grades are still printed), 130 when interrupted by Ctrl-C
+    (143 for SIGTERM, 129 for SIGHUP; finished results stay cached; run the same command again
+    to resume). A cache that cannot be written only gives a warning.
     """
     from audiodsm.evaluate.battery import BatteryPlan
     from audiodsm.evaluate.grade import collect_profiles, default_cache_dir, grade_batch
@@ -120,11 +129,17 @@ def grade(
     finally:
         bar.close()
 
+    for text in batch.warnings:
+        click.echo(f"audiodsm: warning: {text}", err=True)
     written = {}
+    report_failure = None
     if report_dir is not None and batch.grades:
         from audiodsm.evaluate.report import write_report
 
-        written = write_report(batch, report_dir, protect=protect)
+        try:
+            written = write_report(batch, report_dir, protect=protect)
+        except StorageError as exc:  # print the grades first, then say what was not written
+            report_failure = exc
 
     if as_json:
         click.echo(json.dumps(batch_to_dict(batch), indent=2))
@@ -151,5 +166,9 @@ def grade(
             "again to resume",
             err=as_json,  # keep stdout a single JSON document
         )
-        sys.exit(130)
-    sys.exit(0 if batch.passed else 1)
+    if report_failure is not None:
+        click.echo(f"audiodsm: error: {report_failure}; report not written", err=True)
+        sys.exit(EXIT_STORAGE)
+    if batch.interrupted:
+        sys.exit(exit_code_for_signal(batch.stop_signal))
+    sys.exit(EXIT_OK if batch.passed else EXIT_FAILED)

@@ -24,7 +24,7 @@ from pathlib import Path
 
 from audiodsm.errors import OutputError, ParameterError
 from audiodsm.evaluate.search import DEFAULT_LEVELS
-from audiodsm.io import replace_text_atomically
+from audiodsm.io import refuse_dangling_symlink, replace_text_atomically
 from audiodsm.limits import LEVELS_RANGE
 from audiodsm.profile import (
     ChainProfile,
@@ -62,7 +62,10 @@ def write_text_atomic(path, text: str, *, overwrite: bool = False) -> Path:
     Raises
     ------
     OutputError
-        The folder is missing or not writable, or the file exists and ``overwrite`` is False.
+        The folder is missing, or the file (or a dangling symlink) exists and ``overwrite``
+        is False.
+    StorageError
+        The file cannot be written (read-only folder, disk full, name too long).
 
     References
     ----------
@@ -77,10 +80,8 @@ def write_text_atomic(path, text: str, *, overwrite: bool = False) -> Path:
         raise OutputError(f"{p}: already exists (pass --overwrite to replace it)")
     if p.exists() and p.is_dir():
         raise OutputError(f"{p}: is a folder; expected a profile file name")
-    try:
-        replace_text_atomically(p, text)
-    except OSError as exc:
-        raise OutputError(f"{p}: cannot write in {str(folder)!r} ({exc.strerror})") from None
+    refuse_dangling_symlink(p, replace=overwrite)
+    replace_text_atomically(p, text)  # StorageError (exit 3) names the path and the cause
     return p
 
 

@@ -22,7 +22,8 @@ import math
 import multiprocessing
 import os
 import queue as _queue
-import tempfile
+import signal
+import threading
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -30,8 +31,9 @@ from pathlib import Path
 
 import numpy as np
 
-from audiodsm.errors import OutputError, ParameterError, ProfileError
+from audiodsm.errors import ParameterError, ProfileError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
+from audiodsm.io import create_temp_file, remove_stale_temp_files
 from audiodsm.profile import load_profile, profile_digest
 from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target, spec_digest
 
@@ -50,7 +52,7 @@ __all__ = [
 #: Tolerance when matching a target's tone level to a level of the THD+N sweep (dB).
 _LEVEL_MATCH_DB = 0.01
 #: Version of the cache file layout; part of every cache key.
-_CACHE_LAYOUT = 1
+_CACHE_LAYOUT = 2  # 2: entries carry a checksum
 
 
 @dataclass(frozen=True)
@@ -147,9 +149,15 @@ class GradeBatch:
     unfinished : tuple of str
         Sources of profiles not graded because the batch was interrupted.
     interrupted : bool
-        True when Ctrl-C stopped the batch; the finished results are kept (and cached).
+        True when Ctrl-C (or SIGTERM, SIGHUP) stopped the batch; the finished results are
+        kept (and cached).
     cache_dir : str
         Where the battery results are cached ("" when caching is off).
+    warnings : tuple of str
+        Things the caller should tell the user: damaged cache entries that were recomputed,
+        results that could not be saved to the cache.
+    stop_signal : int
+        The signal that stopped the batch (2 for Ctrl-C), 0 when it was not stopped.
     """
 
     spec: SpecSheet
@@ -157,6 +165,8 @@ class GradeBatch:
     unfinished: tuple = ()
     interrupted: bool = False
     cache_dir: str = ""
+    warnings: tuple = ()
+    stop_signal: int = 0
 
     @property
     def passed(self) -> bool:
@@ -302,22 +312,38 @@ class GradeCache:
     """Battery results on disk, one file per (profile, spec, tool version, options) key.
 
     Each entry is a NumPy ``.npz`` file (no pickled objects): the curves as arrays named
-    ``curve/<curve>/<field>`` and a JSON text ``meta`` with the metrics, notes and timing.
+    ``curve/<curve>/<field>``, a JSON text ``meta`` with the metrics, notes and timing, and a
+    ``checksum``: the SHA-256 of ``meta`` and of every array's name, dtype, shape and bytes.
     Entries are written to a temporary file in the cache folder and renamed when complete, so
-    an interrupted write never leaves a half entry; an unreadable entry counts as missing.
+    an interrupted write never leaves a half entry. A damaged entry (unreadable, truncated,
+    bit-flipped, missing or mistyped fields, empty metrics, a folder or an empty file in its
+    place) is reported by :meth:`load_checked` and counts as missing, so it is recomputed.
 
     Parameters
     ----------
     directory : path-like
-        Created when missing.
+        Created when missing. Hidden temporary files left in it by a killed run are removed.
+
+    Raises
+    ------
+    StorageError
+        The folder cannot be created.
     """
 
     def __init__(self, directory):
         self.directory = Path(directory)
+        if self.directory.exists() and not self.directory.is_dir():
+            raise StorageError(self.directory, "is a file, expected a cache folder")
         try:
             self.directory.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
-            raise OutputError(f"{self.directory}: cannot create the cache folder ({exc})") from None
+            raise StorageError(self.directory, exc) from None
+        remove_stale_temp_files(self.directory)
+
+    @property
+    def writable(self) -> bool:
+        """Whether new entries can be stored (the folder is writable by this user)."""
+        return os.access(self.directory, os.W_OK)
 
     @staticmethod
     def key(profile_hash: str, spec_hash: str, version: str, options: str = "") -> str:
@@ -330,30 +356,61 @@ class GradeCache:
         return self.directory / f"{key}.npz"
 
     def load(self, key: str):
-        """The stored entry as ``{"metrics", "curves", "notes", "seconds"}``, or None."""
+        """The stored entry as ``{"metrics", "curves", "notes", "seconds"}``, or None.
+
+        None both when there is no entry and when it is damaged (see :meth:`load_checked`).
+        """
+        return self.load_checked(key)[0]
+
+    def load_checked(self, key: str) -> tuple:
+        """The stored entry and, when it is damaged, what is wrong with it.
+
+        Returns
+        -------
+        entry : dict or None
+            ``{"metrics", "curves", "notes", "seconds"}``; None when missing or damaged.
+        problem : str
+            Empty when the entry is fine or missing; otherwise plain words for the damage.
+        """
         p = self.path(key)
+        if not os.path.lexists(p):
+            return None, ""
+        if p.is_dir():
+            return None, "is a folder, not a cache entry"
         if not p.is_file():
-            return None
+            return None, "is not a regular file"
         try:
+            if p.stat().st_size == 0:
+                return None, "is empty (0 bytes)"
             with np.load(p, allow_pickle=False) as data:
-                meta = json.loads(str(data["meta"]))
-                curves = {}
-                for name in data.files:
-                    if not name.startswith("curve/"):
-                        continue
-                    _, curve, fld = name.split("/", 2)
-                    curves.setdefault(curve, {})[fld] = data[name]
-        except (OSError, ValueError, KeyError, json.JSONDecodeError):
-            return None
-        return {
-            "metrics": meta["metrics"],
-            "curves": curves,
-            "notes": tuple(meta["notes"]),
-            "seconds": float(meta["seconds"]),
-        }
+                names = list(data.files)
+                arrays = {name: data[name] for name in names}
+        except Exception as exc:  # zip, format, I/O and decoding errors alike
+            text = str(exc).splitlines()[0] if str(exc) else ""
+            return None, f"unreadable ({type(exc).__name__}{': ' + text if text else ''})"
+        try:
+            entry = _entry_from_arrays(arrays)
+        except _DamagedEntry as exc:
+            return None, str(exc)
+        return entry, ""
+
+    def discard(self, key: str) -> None:
+        """Remove a damaged entry file (best effort; a folder in its place is left alone)."""
+        p = self.path(key)
+        try:
+            if p.is_symlink() or p.is_file():
+                p.unlink()
+        except OSError:
+            pass
 
     def store(self, key: str, entry: dict) -> Path:
-        """Write an entry atomically; return its file."""
+        """Write an entry atomically; return its file.
+
+        Raises
+        ------
+        StorageError
+            The entry cannot be written (disk full, read-only folder, a folder in its place).
+        """
         arrays = {}
         for curve, fields in entry["curves"].items():
             if not isinstance(fields, dict):
@@ -367,18 +424,85 @@ class GradeCache:
             "notes": [str(n) for n in entry["notes"]],
             "seconds": float(entry["seconds"]),
         }
+        meta_text = json.dumps(meta)
         buf = io.BytesIO()
-        np.savez(buf, meta=np.array(json.dumps(meta)), **arrays)
+        np.savez(
+            buf,
+            meta=np.array(meta_text),
+            checksum=np.array(_entry_checksum(meta_text, arrays)),
+            **arrays,
+        )
         target = self.path(key)
-        fd, tmp = tempfile.mkstemp(dir=self.directory, prefix=".partial-", suffix=".npz")
+        fd, tmp = create_temp_file(target)
         try:
             with os.fdopen(fd, "wb") as fh:
                 fh.write(buf.getvalue())
             os.replace(tmp, target)
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            raise StorageError(target, exc) from None
         except BaseException:
-            Path(tmp).unlink(missing_ok=True)
+            tmp.unlink(missing_ok=True)
             raise
         return target
+
+
+class _DamagedEntry(Exception):
+    """A cache entry's content is not what :meth:`GradeCache.store` writes."""
+
+
+def _entry_checksum(meta_text: str, arrays: dict) -> str:
+    """SHA-256 over the meta text and every curve array's name, dtype, shape and bytes."""
+    h = hashlib.sha256()
+    h.update(meta_text.encode("utf-8"))
+    for name in sorted(arrays):
+        a = np.ascontiguousarray(arrays[name])
+        h.update(json.dumps([name, a.dtype.str, list(a.shape)]).encode("utf-8"))
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _entry_from_arrays(arrays: dict) -> dict:
+    """Check a loaded entry field by field and build the dict :meth:`GradeCache.load` gives."""
+    for name in ("meta", "checksum"):
+        if name not in arrays:
+            raise _DamagedEntry(f"missing field {name!r}")
+        if arrays[name].shape != () or arrays[name].dtype.kind != "U":
+            raise _DamagedEntry(f"field {name!r} is not a text")
+    meta_text = str(arrays["meta"])
+    curves_raw = {k: v for k, v in arrays.items() if k.startswith("curve/")}
+    others = sorted(set(arrays) - set(curves_raw) - {"meta", "checksum"})
+    if others:
+        raise _DamagedEntry(f"unexpected field {others[0]!r}")
+    if str(arrays["checksum"]) != _entry_checksum(meta_text, curves_raw):
+        raise _DamagedEntry("checksum does not match the content (damaged)")
+    try:
+        meta = json.loads(meta_text)
+    except ValueError:
+        raise _DamagedEntry("field 'meta' is not valid JSON") from None
+    if not isinstance(meta, dict):
+        raise _DamagedEntry("field 'meta' is not a table")
+    metrics, notes, seconds = meta.get("metrics"), meta.get("notes"), meta.get("seconds")
+    if not isinstance(metrics, dict) or not metrics:
+        raise _DamagedEntry("holds no metrics")
+    for k, v in metrics.items():
+        if not (v is None or isinstance(v, (bool, int, float, str))):
+            raise _DamagedEntry(f"metric {k!r} has a value of type {type(v).__name__}")
+    if not isinstance(notes, list) or not all(isinstance(n, str) for n in notes):
+        raise _DamagedEntry("field 'notes' is not a list of texts")
+    if isinstance(seconds, bool) or not isinstance(seconds, (int, float)):
+        raise _DamagedEntry("field 'seconds' is not a number")
+    if not (math.isfinite(seconds) and seconds >= 0):
+        raise _DamagedEntry(f"field 'seconds' is {seconds!r}")
+    curves = {}
+    for name, a in curves_raw.items():
+        parts = name.split("/", 2)
+        if len(parts) != 3 or not parts[1] or not parts[2]:
+            raise _DamagedEntry(f"curve field {name!r} is not named curve/<curve>/<field>")
+        if a.dtype.kind not in "biuf":
+            raise _DamagedEntry(f"curve field {name!r} does not hold numbers")
+        curves.setdefault(parts[1], {})[parts[2]] = a
+    return {"metrics": metrics, "curves": curves, "notes": tuple(notes), "seconds": float(seconds)}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -389,8 +513,22 @@ _WORKER_QUEUE = None
 
 
 def _worker_init(q):
+    """Set up a worker process: the progress queue, and an end when the parent ends.
+
+    A worker runs a battery for minutes; when the main process is gone (killed, even by
+    SIGKILL, which it cannot handle) nobody wants the result, so a watcher thread ends the
+    worker as soon as the parent's end of the process sentinel closes.
+    """
     global _WORKER_QUEUE
     _WORKER_QUEUE = q
+    parent = multiprocessing.parent_process()
+    if parent is not None:
+        threading.Thread(target=_end_with_parent, args=(parent,), daemon=True).start()
+
+
+def _end_with_parent(parent):
+    parent.join()  # returns when the parent process has ended
+    os._exit(1)
 
 
 def _run_one(battery, profile, index, jobs, seed, options, report=None):
@@ -462,8 +600,11 @@ def grade_batch(
     Returns
     -------
     GradeBatch
-        Ranked grades. On Ctrl-C the batch stops, keeps what finished (already cached) and
-        returns with ``interrupted=True``.
+        Ranked grades. On Ctrl-C (or a :class:`~audiodsm.errors.StopSignal` for SIGTERM and
+        SIGHUP) the batch stops, ends its worker processes, keeps what finished (already
+        cached) and returns with ``interrupted=True``. A damaged cache entry is recomputed
+        and a result the cache cannot store is kept in memory; both come back as
+        ``warnings``.
 
     Raises
     ------
@@ -491,12 +632,22 @@ def grade_batch(
     keys = [GradeCache.key(d, spec_hash, __version__, option_text) for d in digests]
     outcomes: dict[int, dict] = {}
     cached: set[int] = set()
+    notices: list[str] = []
     if cache is not None and not recompute:
         for i, key in enumerate(keys):
-            entry = cache.load(key)
+            entry, problem = cache.load_checked(key)
             if entry is not None:
                 outcomes[i] = entry
                 cached.add(i)
+            elif problem:
+                notices.append(
+                    f"cache entry {cache.path(key)} for {names[i]} {problem}; recomputing it"
+                )
+                cache.discard(key)
+    unsaved: list[int] = []
+    store_failure: list[str] = []
+    if cache is not None and not cache.writable:
+        store_failure.append(f"{cache.directory}: the cache folder is not writable")
     todo = [i for i in range(len(entries)) if i not in outcomes]
     fractions = {i: 0.0 for i in todo}
 
@@ -509,10 +660,18 @@ def grade_batch(
     def finish(i, outcome):
         outcomes[i] = outcome
         if cache is not None and "failure" not in outcome:
-            cache.store(keys[i], outcome)
+            if store_failure:
+                unsaved.append(i)
+            else:
+                try:
+                    cache.store(keys[i], outcome)
+                except OSError as exc:  # keep the result; say so at the end
+                    store_failure.append(str(exc))
+                    unsaved.append(i)
         tick(i, 1, 1, "done" if "failure" not in outcome else "failed")
 
     interrupted = False
+    stop_signal = 0
     workers = min(jobs, len(todo))
     try:
         if workers <= 1:
@@ -529,8 +688,14 @@ def grade_batch(
                 finish(i, outcome)
         else:
             _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish)
-    except KeyboardInterrupt:
+    except KeyboardInterrupt as exc:
         interrupted = True
+        stop_signal = getattr(exc, "signal_number", int(signal.SIGINT))
+    if unsaved:
+        notices.append(
+            f"the cache was not saved ({store_failure[0]}): {len(unsaved)} result(s) kept "
+            "for this run only"
+        )
 
     grades = []
     for i, (path, _prof) in enumerate(entries):
@@ -568,6 +733,8 @@ def grade_batch(
         unfinished=unfinished,
         interrupted=interrupted,
         cache_dir=str(cache.directory) if cache is not None else "",
+        warnings=tuple(notices),
+        stop_signal=stop_signal,
     )
 
 

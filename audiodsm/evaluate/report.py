@@ -14,7 +14,8 @@
 ``grades.csv``
     One row per profile and target (:data:`CSV_COLUMNS`).
 
-Each file is written to a temporary name in the folder and renamed when complete.
+The report is complete or absent: each file is written to a temporary name and renamed
+only when all three are written (a new folder is renamed into place as a whole).
 """
 
 from __future__ import annotations
@@ -27,14 +28,20 @@ import io
 import json
 import math
 import os
+import shutil
 from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
 
-from audiodsm.errors import AudiodsmError, OutputError
+from audiodsm.errors import AudiodsmError, OutputError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
-from audiodsm.io import replace_text_atomically
+from audiodsm.io import (
+    create_temp_file,
+    create_temp_folder,
+    remove_stale_temp_files,
+    same_file,
+)
 
 __all__ = [
     "CSV_COLUMNS",
@@ -304,14 +311,20 @@ def render_html(batch, *, title=None) -> str:
 
 
 def check_report_dir(directory, *, protect=()) -> Path:
-    """Make sure the report folder exists and that writing it replaces no input.
+    """Check, before any work, that a report can be written into a folder.
+
+    The folder is not created here: :func:`write_report` creates it complete, so a run that
+    fails or is stopped before the report leaves no empty folder behind. Hidden temporary
+    files and folders a killed run left are removed.
 
     Parameters
     ----------
     directory : path-like
-        Created (with parents) when missing.
+        The report folder; it may exist (its report files are replaced) or not (it is
+        created, with parents, by :func:`write_report`).
     protect : sequence of path-like, keyword-only
-        Input files that must never be replaced.
+        Input files that must never be replaced (compared by device and inode, so another
+        path to the same file is caught too).
 
     Returns
     -------
@@ -320,32 +333,96 @@ def check_report_dir(directory, *, protect=()) -> Path:
     Raises
     ------
     OutputError
-        The path is a file, cannot be created, or a report file name is a protected input.
+        The path (or a parent) is a file, or a report file name is a protected input.
+    StorageError
+        The folder, or the nearest existing parent, is not writable.
     """
     d = Path(directory)
     if d.exists() and not d.is_dir():
         raise OutputError(f"{d}: --report must be a folder, and this is a file")
-    try:
-        d.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"{d}: cannot create the report folder ({exc.strerror})") from None
-    if not os.access(d, os.W_OK):
-        raise OutputError(f"{d}: the report folder is not writable")
-    guarded = {Path(p).resolve() for p in protect}
-    for name in REPORT_FILES.values():
-        if (d / name).resolve() in guarded:
-            raise OutputError(f"{d / name}: is an input of this run; refusing to overwrite it")
+    existing = d
+    while not existing.exists():
+        if existing.parent == existing:
+            break
+        existing = existing.parent
+    if not existing.is_dir():
+        raise OutputError(f"{d}: cannot create the report folder ({existing} is a file)")
+    if not os.access(existing, os.W_OK):
+        raise StorageError(d, f"folder {str(existing)!r} is not writable")
+    if d.is_dir():
+        for name in REPORT_FILES.values():
+            if any(same_file(d / name, p) for p in protect):
+                raise OutputError(f"{d / name}: is an input of this run; refusing to overwrite it")
+        for name in REPORT_FILES.values():  # only our own names: the folder may be anyone's
+            remove_stale_temp_files(d, name=name)
+    if d.parent.is_dir():
+        remove_stale_temp_files(d.parent, name=d.name)
     return d
+
+
+def _write_new_report_folder(d: Path, texts: dict) -> None:
+    """Write the report files into a hidden temporary folder and rename it to ``d``."""
+    try:
+        d.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StorageError(d.parent, exc) from None
+    tmp = create_temp_folder(d)
+    try:
+        for kind, text in texts.items():
+            with open(tmp / REPORT_FILES[kind], "w", encoding="utf-8", newline="") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+        os.rename(tmp, d)  # fails if a non-empty d appeared meanwhile: nothing replaced
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise StorageError(d, exc) from None
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def _replace_report_files(d: Path, texts: dict) -> None:
+    """Write every report file to a temporary name first, then rename them all."""
+    temps = {}
+    target = d
+    try:
+        for kind, text in texts.items():
+            target = d / REPORT_FILES[kind]
+            fd, tmp = create_temp_file(target)
+            temps[kind] = tmp
+            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+        for kind in list(temps):
+            target = d / REPORT_FILES[kind]
+            os.replace(temps[kind], target)
+            del temps[kind]
+    except OSError as exc:
+        for tmp in temps.values():
+            tmp.unlink(missing_ok=True)
+        raise StorageError(target, exc) from None
+    except BaseException:
+        for tmp in temps.values():
+            tmp.unlink(missing_ok=True)
+        raise
 
 
 def write_report(batch, directory, *, protect=(), title=None) -> dict:
     """Write ``grades.html``, ``grades.json`` and ``grades.csv`` into a folder.
 
+    The report is complete or absent: a new folder is written under a hidden temporary
+    name beside it and renamed when all three files are in it; in an existing folder all
+    three files are written to temporary names before any of them replaces its old version.
+    On a full disk, a read-only folder or an interruption the temporary files are removed
+    and the old report (if any) stays as it was.
+
     Parameters
     ----------
     batch : GradeBatch
     directory : path-like
-        Created when missing.
+        Created (with parents) when missing.
     protect : sequence of path-like, keyword-only
         Input files never to replace.
     title : str, optional, keyword-only
@@ -360,6 +437,8 @@ def write_report(batch, directory, *, protect=(), title=None) -> dict:
     ------
     OutputError
         See :func:`check_report_dir`.
+    StorageError
+        A file or the folder could not be written (the message names it and the cause).
     """
     d = check_report_dir(directory, protect=protect)
     texts = {
@@ -367,9 +446,8 @@ def write_report(batch, directory, *, protect=(), title=None) -> dict:
         "csv": batch_to_csv(batch),
         "html": render_html(batch, title=title),
     }
-    written = {}
-    for kind in ("json", "csv", "html"):
-        path = d / REPORT_FILES[kind]
-        replace_text_atomically(path, texts[kind])
-        written[kind] = path
-    return written
+    if d.is_dir():
+        _replace_report_files(d, texts)
+    else:
+        _write_new_report_folder(d, texts)
+    return {kind: d / REPORT_FILES[kind] for kind in ("json", "csv", "html")}

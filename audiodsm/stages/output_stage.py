@@ -24,13 +24,13 @@ from __future__ import annotations
 import json
 import math
 import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from audiodsm.errors import AudioFileError, OutputError, ParameterError
+from audiodsm.errors import AudioFileError, OutputError, ParameterError, StorageError
+from audiodsm.io import create_temp_file
 from audiodsm.stages import _kernels
 
 __all__ = [
@@ -684,23 +684,23 @@ class _AtomicFile:
     def __init__(self, path, *, overwrite: bool, mode: str):
         self.path = Path(path)
         folder = self.path.parent if str(self.path.parent) else Path(".")
-        if self.path.exists() and not overwrite:
+        if os.path.lexists(self.path) and not overwrite:
             raise OutputError(f"{self.path}: already exists; pass overwrite=True to replace it")
         if not folder.is_dir():
             raise OutputError(f"{self.path}: folder {str(folder)!r} does not exist")
-        try:
-            fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".part", dir=folder)
-        except OSError as exc:
-            msg = f"{self.path}: cannot write in {str(folder)!r} ({exc.strerror})"
-            raise OutputError(msg) from None
-        self.tmp = Path(tmp)
+        # owner pid in the name, umask permissions; StorageError when the folder is read-only
+        fd, self.tmp = create_temp_file(self.path, suffix=".part")
         self.handle = os.fdopen(fd, mode)
 
     def commit(self):
-        self.handle.flush()
-        os.fsync(self.handle.fileno())
-        self.handle.close()
-        os.replace(self.tmp, self.path)
+        try:
+            self.handle.flush()
+            os.fsync(self.handle.fileno())
+            self.handle.close()
+            os.replace(self.tmp, self.path)
+        except OSError as exc:
+            self.discard()
+            raise StorageError(self.path, exc) from None
 
     def discard(self):
         if not self.handle.closed:

@@ -1,0 +1,37 @@
+"""Stand-in batteries for the fault tests, in a module light enough for worker processes.
+
+Worker processes of ``grade --jobs N`` import the battery by reference, so these live apart
+from the test modules (which import pytest and hypothesis).
+"""
+
+import os
+import time
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+
+
+def quick_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """Readings that follow the loop order; counts its calls in $AUDIODSM_TEST_CALLS."""
+    folder = os.environ.get("AUDIODSM_TEST_CALLS")
+    if folder:
+        Path(folder, f"ran.{profile.name}.{os.getpid()}.{time.monotonic_ns()}").touch()
+    order = profile.modulator.order
+    levels = np.array([0.0, -20.0])
+    return SimpleNamespace(
+        metrics={"dynamic_range_db_a": 95.0 + 5.0 * order, "idle_tone_max_dbfs": -140.0},
+        curves={"thd_n_vs_level": {"level_dbfs": levels, "thd_n_db": -100.0 + 0.0 * levels}},
+        notes=("stand-in",),
+        seconds=0.01,
+    )
+
+
+def waiting_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """Finishes at once for loop order 2; otherwise says it started (with its pid) and waits."""
+    if profile.modulator.order != 2:
+        folder = Path(os.environ["AUDIODSM_TEST_CALLS"])
+        Path(folder, f"started.{profile.name}.{os.getpid()}").touch()
+        while True:
+            time.sleep(0.05)
+    return quick_battery(profile)
