@@ -69,6 +69,7 @@ __all__ = [
     "BatteryResult",
     "battery_rate_hz",
     "run_battery",
+    "validity_table",
 ]
 
 #: Audio rate of the battery when the profile does not set ``listening.rate_hz``.
@@ -173,6 +174,15 @@ _SPECTRUM_RESOLUTION_HZ = 100.0
 _LINE_FLOOR_DBFS = -200.0
 #: A sweep tone more than this far from its level counts as lost (dead zone, limit cycle).
 _LOST_DB = 3.0
+#: A listening output whose peak exceeds full scale by more than this has clipped: a real
+#: converter could not have produced it. (0.1 dB leaves room for the passband ripple of a
+#: full-scale tone's path, a few hundredths of a dB.)
+_CLIP_DB = 0.1
+#: How far below the linear-model noise floor of the loop a noise reading may fall before it
+#: is called impossible. The linear model (white quantization error of power step^2/12 shaped
+#: by the NTF) is accurate to a few dB for single-bit and dithered loops (Schreier & Temes
+#: 2005, ch. 4); 20 dB is a safety factor, not a precision estimate.
+_FLOOR_MARGIN_DB = 20.0
 
 
 @dataclass(frozen=True)
@@ -326,8 +336,8 @@ class BatteryResult:
         Audio rate of the stimuli.
     metrics : dict
         Metric name -> float, int, bool or None (None when a reading does not exist, e.g. the
-        dynamic range of a loop too unstable to pass a -60 dBFS tone); names in
-        :data:`METRIC_UNITS`.
+        dynamic range of a loop too unstable to pass a -60 dBFS tone, and for every invalid
+        reading); names in :data:`METRIC_UNITS`.
     curves : dict
         Curve name -> dict of numpy arrays (see docs/battery.md).
     notes : tuple of str
@@ -337,6 +347,10 @@ class BatteryResult:
     plan : BatteryPlan
     run_seconds : dict
         Test label -> seconds its runs took (summed over runs; they overlap in parallel).
+    invalid : dict
+        Metric name -> why its reading is invalid (the loop overloaded, the tone was lost, the
+        output clipped, the value is impossible, ...). Those metrics read None in
+        ``metrics``; every metric not named here is valid.
     """
 
     profile_name: str
@@ -348,10 +362,22 @@ class BatteryResult:
     seconds: float
     plan: BatteryPlan = field(repr=False)
     run_seconds: dict = field(default_factory=dict, repr=False)
+    invalid: dict = field(default_factory=dict)
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
         return {k: plain_scalar(v) for k, v in self.metrics.items()}
+
+    def validity(self) -> dict:
+        """Metric name -> ``{"valid": bool, "reason": str}`` for every metric measured."""
+        return validity_table(self.metrics, self.invalid)
+
+
+def validity_table(metrics: dict, invalid: dict) -> dict:
+    """Metric name -> ``{"valid": bool, "reason": str}`` (reason empty when valid)."""
+    return {
+        k: {"valid": k not in invalid, "reason": str(invalid.get(k, ""))} for k in metrics
+    }
 
 
 def battery_rate_hz(profile: ChainProfile) -> int:
@@ -389,6 +415,70 @@ def _chain_run(profile, x, *, rate, keep=("listening",)):
         tail = int(round(_TAIL_S * rate))
         res = replace(res, listening=res.listening[: len(res.listening) - tail])
     return res
+
+
+def _run_faults(stats, c, y=None):
+    """Why channel ``c`` of a chain run cannot be read honestly (empty when it can).
+
+    The loop overloaded (its guard acted), or the measured listening output ``y`` is not
+    finite or went beyond full scale by more than ``_CLIP_DB`` (a converter would clip it).
+    """
+    faults = []
+    n = int(stats.overload_count[c])
+    if n:
+        faults.append(f"loop overloaded ({n} guard actions)")
+    if y is not None and len(y):
+        if not np.all(np.isfinite(y)):
+            faults.append("output not finite")
+        else:
+            peak = float(np.max(np.abs(y)))
+            if peak > 10.0 ** (_CLIP_DB / 20.0):
+                faults.append(f"output clipped (peak {_db(peak):+.2f} dB re full scale)")
+    return faults
+
+
+def _tone_came_out(tone_dbfs) -> str:
+    """Plain words for the level a tone came out at, never a level below the numeric floor."""
+    if tone_dbfs is None or not math.isfinite(tone_dbfs) or tone_dbfs < NUMERIC_FLOOR_DBFS:
+        return (
+            "no trace of it at the output (below the simulation's numeric floor of "
+            f"{NUMERIC_FLOOR_DBFS:g} dBFS)"
+        )
+    return f"it came out at {tone_dbfs:.2f} dBFS"
+
+
+def _linear_noise_floor(profile, rate):
+    """The band-limited noise (dBFS per weighting) the loop's linear model allows, or None.
+
+    White quantization error of power ``step**2 / 12`` spread evenly over 0 .. fm/2, shaped
+    by the NTF, integrated over 20 Hz .. 20 kHz with the weighting, referred to the chain
+    input through its input scale. It is a lower bound on the noise of a loop whose
+    quantization error stays busy: a single-bit loop, or a dithered one (dither adds to it).
+    An undithered multi-level loop can idle on one level with almost no error, so it gets no
+    floor (None) and only the numeric floor applies.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
+       ch. 2 and 4 (linear model of the quantizer, in-band noise of the NTF).
+    """
+    from audiodsm.measure.weighting import weighting_power_gain
+    from audiodsm.stages.chain import Chain
+
+    chain = Chain.from_profile(profile, rate, 1, listening_rate_hz=rate, threads=1)
+    mod = chain.modulator
+    if mod.levels > 2 and mod.dither_lsb <= 0.0:
+        return None
+    fm = float(chain.modulator_rate_hz)
+    f = np.linspace(_BAND[0], _BAND[1], 20001)
+    ntf_power = np.abs(chain.ntf.response(f / fm)) ** 2
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    out = {}
+    for w in _WEIGHTINGS:
+        band = float(np.trapezoid(ntf_power * weighting_power_gain(f, w), f))
+        power = mod.step**2 / 12.0 * band / (fm / 2.0) / scale**2
+        out[w] = 10.0 * math.log10(power / 0.5)  # 0 dBFS: a full-scale sine, power 0.5
+    return out
 
 
 def _meter(x, rate, frequency_hz, weightings, settle_s):
