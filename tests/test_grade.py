@@ -200,14 +200,20 @@ def test_batch_ranks_and_caches_then_resumes_without_recomputing(tmp_path, batch
             g1.curves["thd_n_vs_level"]["thd_n_db"], g2.curves["thd_n_vs_level"]["thd_n_db"]
         )
 
-    # a changed spec is a new key: everything runs again
+    # the cache is keyed by what the battery computed from, not by the spec sheet: a changed
+    # limit re-grades every profile from the cache, with no battery call, and the grades
+    # follow the new limit (o3's dynamic range of 110 dB now misses 111 dB)
     spec2 = parse_spec(SPEC.replace("110.0", "111.0"))
-    grade_batch(profiles, spec2, battery=fake_battery, jobs=1, cache_dir=cache)
-    assert len(call_names(calls)) == 6
-    # so is a changed profile (content, not name)
+    regraded = grade_batch(profiles, spec2, battery=fake_battery, jobs=1, cache_dir=cache)
+    assert call_names(calls) == ["o3", "o4", "o5"]
+    assert all(g.cached for g in regraded.grades)
+    o3 = next(g for g in regraded.grades if g.name == "o3")
+    assert o3.lines[0].target.limit == 111.0 and o3.lines[0].margin == -1.0
+    assert not o3.lines[0].passed
+    # a changed profile (content, not name) is a new key: it runs again
     (pdir / "o3.toml").write_text(profile_text("o3", 3) + "seed = 9\n")
     grade_batch(collect_profiles([pdir]), spec2, battery=fake_battery, jobs=1, cache_dir=cache)
-    assert call_names(calls).count("o3") == 3 and len(call_names(calls)) == 7
+    assert call_names(calls).count("o3") == 2 and len(call_names(calls)) == 4
 
 
 def test_interrupted_batch_keeps_finished_results(tmp_path, batch_files, calls):
@@ -291,7 +297,7 @@ def test_same_names_are_told_apart(tmp_path, calls):
 
 def test_cache_ignores_a_damaged_entry(tmp_path):
     cache = GradeCache(tmp_path)
-    key = GradeCache.key("p", "s", "1", "")
+    key = GradeCache.key("p", "1", "")
     assert len(key) == 64
     cache.path(key).write_bytes(b"not a zip file")
     assert cache.load(key) is None
@@ -558,7 +564,9 @@ def test_cli_short_runs_the_short_plan_as_measure_does(tmp_path, batch_files, mo
     args = [str(pdir / "o5.toml"), "--spec", str(spec_path), "--jobs", "1", "--no-cache"]
     assert run_cli(args).exit_code == 0
     assert run_cli([*args, "--short"]).exit_code == 0
-    assert plans == [None, BatteryPlan.quick()]
+    # the plan is always explicit now (the default one unless --short); the spec's -20 dBFS
+    # target is a level both sweeps have, so neither plan gains a level
+    assert plans == [BatteryPlan(), BatteryPlan.quick()]
     for command in ("grade", "measure"):
         help_text = CliRunner().invoke(main, [command, "--help"]).output
         assert "--short" in help_text and "Shorter captures and fewer points" in help_text
