@@ -177,8 +177,11 @@ def test_a_tone_lost_in_a_limit_cycle_is_reported_not_averaged():
     )
     res = run_battery(prof, tests=("level_sweep",), plan=BatteryPlan.quick())
     curve = res.curves["thd_n_vs_level"]
-    off = np.abs(curve["tone_dbfs"] - curve["level_dbfs"]) > 3.0
+    # NaN in tone_dbfs: the tone left no trace at all (below the numeric floor), also lost
+    off = ~(np.abs(curve["tone_dbfs"] - curve["level_dbfs"]) <= 3.0)
     assert off.any()
+    assert all("tone lost" in why for why in curve["invalid_reason"][off])
+    assert np.all(np.isnan(curve["thd_n_db"][off]))
     assert res.metrics["tone_lost_at_dbfs"] == np.max(curve["level_dbfs"][off])
     assert 0.0 <= res.metrics["noise_modulation_db"] < 30.0
     assert any("did not come through" in n for n in res.notes)

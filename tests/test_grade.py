@@ -398,6 +398,7 @@ def blocking_battery(profile, *, jobs=None, progress=None, seed=0, **options):
 _CTRL_C_SCRIPT = """
 import sys
 sys.path.insert(0, {tests!r})
+sys.path.insert(0, {root!r})  # the package of this checkout, not whichever one is installed
 from test_grade import blocking_battery
 from audiodsm.evaluate.grade import collect_profiles, grade_batch
 from audiodsm.spec import parse_spec
@@ -419,7 +420,12 @@ def test_ctrl_c_on_a_parallel_batch_keeps_finished_results(tmp_path, calls):
     cache = tmp_path / "cache"
     script = tmp_path / "run.py"
     script.write_text(
-        _CTRL_C_SCRIPT.format(tests=str(Path(__file__).parent), pdir=str(pdir), cache=str(cache))
+        _CTRL_C_SCRIPT.format(
+            tests=str(Path(__file__).parent),
+            root=str(Path(__file__).parent.parent),
+            pdir=str(pdir),
+            cache=str(cache),
+        )
     )
     proc = subprocess.Popen(
         [sys.executable, str(script)],
