@@ -1214,11 +1214,6 @@ def _assemble(results, tests, plan, profile):
         over = [p["level_dbfs"] for p in pts if p["overload_count"] > 0]
         onset = over[0] if over else None
         metrics["overload_onset_dbfs"] = onset
-        if overload:
-            curves["overload"] = {
-                k: np.array([p[k] for p in pts], dtype=float)
-                for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
-            }
 
     if sweep:
         sweep.sort(key=lambda p: -p["level_dbfs"])
@@ -1301,6 +1296,25 @@ def _assemble(results, tests, plan, profile):
             "(tone and harmonics fitted out, bins near them left out), over the valid levels "
             "from 0 to -90 dBFS at or below the maximum stable amplitude"
         )
+
+    if overload:
+        # levels above the stable amplitude overload by design: their gross distortion is the
+        # point of this curve (it is no reading to grade); a tone that left no trace or an
+        # impossible value shows no number
+        def raw(p, k):
+            tone = p["tone_dbfs"]
+            gone = tone is None or not tone > NUMERIC_FLOOR_DBFS
+            if k == "tone_dbfs":
+                return np.nan if gone else tone
+            if k == "thd_n_db" and (gone or "impossible" in p.get("reason", "")):
+                return np.nan
+            return p[k]
+
+        pts = sorted(sweep + overload, key=lambda p: p["level_dbfs"])
+        curves["overload"] = {
+            k: np.array([raw(p, k) for p in pts], dtype=float)
+            for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
+        }
 
     if dc:
         dc.sort(key=lambda d: d[0])
