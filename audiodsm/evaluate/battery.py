@@ -104,7 +104,7 @@ METRIC_UNITS = {
     "noise_modulation_db": (
         "level_sweep",
         "dB",
-        "spread of the A-weighted noise floor over tone levels",
+        "spread over tone levels of the A-weighted noise between the tone's harmonics",
     ),
     "tone_lost_at_dbfs": (
         "level_sweep",
