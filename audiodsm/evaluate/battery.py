@@ -438,7 +438,7 @@ def _run_faults(stats, c, y=None):
 def _tone_came_out(tone_dbfs) -> str:
     """Plain words for the level a tone came out at, never a level below the numeric floor."""
     if tone_dbfs is None or not math.isfinite(tone_dbfs) or tone_dbfs < NUMERIC_FLOOR_DBFS:
-        return f"no trace of it at the output (below the {NUMERIC_FLOOR_DBFS:g} dBFS numeric floor)"
+        return f"no trace of it at the output, below the {NUMERIC_FLOOR_DBFS:g} dBFS numeric floor"
     return f"it came out at {tone_dbfs:.2f} dBFS"
 
 
