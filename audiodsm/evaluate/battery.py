@@ -667,17 +667,7 @@ def _test_idle(ctx, profile):
     settle = int(round(plan.settle_s * rate))
     faults = "; ".join(_run_faults(res.stats, 0, y[settle:]))
     out = {
-        "invalid": {
-            k: faults
-            for k in (
-                "idle_noise_dbfs",
-                "idle_noise_dbfs_a",
-                "idle_noise_dbfs_ccir",
-                "switching_rate_hz",
-            )  # fmt: skip
-        }
-        if faults
-        else {},
+        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz")} if faults else {},
         "silence_faults": faults,
         "idle_noise_dbfs": r.noise_dbfs["unweighted"],
         "idle_noise_dbfs_a": r.noise_dbfs["a"],
