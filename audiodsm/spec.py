@@ -67,7 +67,7 @@ METRIC_CATALOGUE = {
     "imd_difference_db": ("dB", "difference-frequency intermodulation"),
     "out_of_band_noise_dbfs": ("dBFS", "out-of-band noise after the reconstruction filter"),
     "carrier_ripple_dbfs": ("dBFS", "ripple inside each frame (PWM carrier) after the filter"),
-    "noise_modulation_db": ("dB", "noise modulation spread"),
+    "noise_modulation_db": ("dB", "noise modulation: spread of the noise between the harmonics"),
     "state_peak_max": ("FS", "largest integrator state"),
     "overload_count": ("count", "loop guard actions at or below the stable amplitude"),
     "pwm_dropped_pulses": ("count", "PWM pulses dropped for the minimum width"),

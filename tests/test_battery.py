@@ -4,7 +4,9 @@ Each battery run here uses a short plan or a subset of the tests, to keep the fi
 """
 
 import math
+import re
 from dataclasses import replace
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -178,8 +180,11 @@ def test_a_tone_lost_in_a_limit_cycle_is_reported_not_averaged():
     )
     res = run_battery(prof, tests=("level_sweep",), plan=BatteryPlan.quick())
     curve = res.curves["thd_n_vs_level"]
-    off = np.abs(curve["tone_dbfs"] - curve["level_dbfs"]) > 3.0
+    # NaN in tone_dbfs: the tone left no trace at all (below the numeric floor), also lost
+    off = ~(np.abs(curve["tone_dbfs"] - curve["level_dbfs"]) <= 3.0)
     assert off.any()
+    assert all("tone lost" in why for why in curve["invalid_reason"][off])
+    assert np.all(np.isnan(curve["thd_n_db"][off]))
     assert res.metrics["tone_lost_at_dbfs"] == np.max(curve["level_dbfs"][off])
     assert 0.0 <= res.metrics["noise_modulation_db"] < 30.0
     assert any("did not come through" in n for n in res.notes)
@@ -225,6 +230,11 @@ def test_full_battery_gives_every_metric(full_quick):
     assert {t for _, t, _ in seen} == {len(seen)}
     for name in ("thd_n_vs_level", "idle_tone_map", "frequency_response", "state_histograms"):
         assert name in res.curves
+    # a healthy loop has no invalid reading: the validity checks raise no false alarm
+    assert res.invalid == {}
+    assert all(v == {"valid": True, "reason": ""} for v in res.validity().values())
+    assert set(res.validity()) == expected
+    assert list(res.curves["thd_n_vs_level"]["invalid_reason"]) == [""] * 7
 
 
 def test_full_battery_readings_are_plausible(full_quick):
@@ -392,3 +402,103 @@ def test_a_dithered_idle_output_is_not_floored():
     # the idle noise and the AES17 level of a DC of 1e-4 of full scale (-77 dBFS).
     dc = result.metrics["dc_offset_dbfs"]
     assert NUMERIC_FLOOR_DBFS < dc < 20 * math.log10(1e-4 * math.sqrt(2))
+
+
+UNSTABLE = Path(__file__).parent / "profiles" / "unstable_order8.toml"
+
+
+@pytest.fixture(scope="module")
+def unstable_result():
+    from audiodsm.profile import load_profile
+
+    tests = ("stability", "dynamic_range", "level_sweep", "idle", "dc_sweep")
+    return run_battery(load_profile(UNSTABLE), tests=tests, plan=BatteryPlan.quick(), jobs=2)
+
+
+def test_unstable_loop_readings_are_invalid_with_reasons(unstable_result):
+    # Order 8, out-of-band gain 6, single-bit: far past Lee's rule for single-bit loops (peak
+    # NTF gain about 1.5; common practice, Schreier & Temes 2005, ch. 4). It overloads at
+    # every level and its output holds no trace of the tones. None of its THD+N, dynamic
+    # range, idle-noise or idle-tone readings may be a number, and each says why.
+    res = unstable_result
+    must = [k for k in METRIC_UNITS if k.startswith(("thd_n_", "dynamic_range_", "idle_"))]
+    must += ["noise_modulation_db", "max_stable_amplitude_dbfs", "out_of_band_noise_dbfs"]
+    for k in must:
+        assert res.metrics[k] is None, k
+        assert res.invalid[k], k
+        assert res.validity()[k]["valid"] is False
+    assert "loop overloaded from" in res.invalid["thd_n_db_at_minus1_dbfs"]
+    assert "tone lost at -1 dBFS" in res.invalid["thd_n_db_at_minus1_dbfs"]
+    assert "no stable amplitude" in res.invalid["max_stable_amplitude_dbfs"]
+    # the counts that describe the failure stay readings
+    assert res.metrics["overload_count"] > 0 and "overload_count" not in res.invalid
+    # the THD+N curve carries no number for an invalid point, and every point has a reason
+    curve = res.curves["thd_n_vs_level"]
+    assert np.all(np.isnan(curve["thd_n_db"])) and np.all(np.isnan(curve["thd_n_db_a"]))
+    assert all(curve["invalid_reason"])
+    # a tone sent at -60 dBFS never reads as -313 dBFS: the battery says why instead
+    assert not any(re.search(r"-3[0-9][0-9]\.[0-9]+ dBFS", n) for n in res.notes)
+    assert np.all(np.isnan(curve["tone_dbfs"]))
+    assert any("no trace of it at the output" in n for n in res.notes)
+
+
+def test_tpdf_dithered_chain_has_no_noise_modulation():
+    # Lipshitz, Wannamaker & Vanderkooy, JAES 40(5) 1992: TPDF dither of 2 LSB peak to peak
+    # makes the error power independent of the signal, so the noise between the tone's
+    # harmonics does not move with its level; only the 0.4 s estimates scatter (about 0.1 dB).
+    res = run_battery(_transparent(16), tests=("level_sweep",), plan=BatteryPlan.quick())
+    assert res.metrics["noise_modulation_db"] < 0.5
+    assert res.invalid == {}
+    clear = res.curves["noise_vs_level"]["noise_clear_dbfs_a"]
+    assert np.all(np.isfinite(clear))
+
+
+def test_linear_noise_floor_is_the_undithered_share_of_the_tpdf_error():
+    # The floor the battery holds readings against is the quantizer's own error, Delta^2/12
+    # (Bennett 1948; Widrow & Kollar 2008), shaped by the NTF. With 2 LSB TPDF dither the
+    # total error is Delta^2/4 (Lipshitz et al. 1992), 10 log10(3) = 4.77 dB above it; the
+    # measured idle noise of a dithered 9-level loop must sit there, within 0.5 dB.
+    from audiodsm.evaluate.battery import _linear_noise_floor
+
+    dithered = profile_from_dict(
+        {
+            "name": "dithered-nrz9",
+            "modulator": {"order": 2, "levels": 9, "zero_layout": "dc", "dither_lsb": 1.0},
+            "output": {"kind": "nrz"},
+        }
+    )
+    floor = _linear_noise_floor(Chain.from_profile(dithered, RATE, 1))
+    result = run_battery(dithered, tests=("idle",), plan=BatteryPlan.quick())
+    got = result.metrics["idle_noise_dbfs"] - floor["unweighted"]
+    assert got == pytest.approx(10 * math.log10(3.0), abs=0.5)
+    # an undithered multi-level loop can idle with no error at all: it gets no floor
+    plain = profile_from_dict(
+        {"name": "nrz9", "modulator": {"order": 2, "levels": 9}, "output": {"kind": "nrz"}}
+    )
+    assert _linear_noise_floor(Chain.from_profile(plain, RATE, 1)) is None
+
+
+def test_impossible_thd_n_is_called_so():
+    # A THD+N whose noise lies far under the chain's own floor, or under the simulation's
+    # float64 floor, is not a reading: the sweep point says why.
+    from audiodsm.evaluate.battery import _sweep_reason
+
+    floor = {"unweighted": -110.0, "a": -112.0, "ccir": -108.0}
+    point = {
+        "level_dbfs": -1.0,
+        "tone_dbfs": -1.0,
+        "thd_n_db": -150.0,
+        "thd_n_db_a": -152.0,
+        "noise_dbfs": -151.0,
+        "noise_dbfs_a": -153.0,
+        "overload_count": 0,
+        "faults": [],
+    }
+    assert "impossible" in _sweep_reason(point, None, floor)
+    assert "-110.0 dBFS" in _sweep_reason(point, None, floor)
+    sound = dict(point, thd_n_db=-108.0, noise_dbfs=-109.0, thd_n_db_a=-110.0, noise_dbfs_a=-111.0)
+    assert _sweep_reason(sound, None, floor) == ""
+    silent = dict(sound, noise_dbfs=-320.0)
+    assert "numeric floor" in _sweep_reason(silent, None, None)
+    over = dict(sound, overload_count=5)
+    assert _sweep_reason(over, -12.0, floor) == "loop overloaded from -12 dBFS"

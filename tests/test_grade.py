@@ -22,6 +22,8 @@ from audiodsm.evaluate.grade import (
     collect_profiles,
     grade_batch,
     grade_metrics,
+    normalized_margin,
+    plan_for_spec,
     rank_grades,
 )
 from audiodsm.spec import Target, parse_spec
@@ -200,14 +202,20 @@ def test_batch_ranks_and_caches_then_resumes_without_recomputing(tmp_path, batch
             g1.curves["thd_n_vs_level"]["thd_n_db"], g2.curves["thd_n_vs_level"]["thd_n_db"]
         )
 
-    # a changed spec is a new key: everything runs again
+    # the cache is keyed by what the battery computed from, not by the spec sheet: a changed
+    # limit re-grades every profile from the cache, with no battery call, and the grades
+    # follow the new limit (o3's dynamic range of 110 dB now misses 111 dB)
     spec2 = parse_spec(SPEC.replace("110.0", "111.0"))
-    grade_batch(profiles, spec2, battery=fake_battery, jobs=1, cache_dir=cache)
-    assert len(call_names(calls)) == 6
-    # so is a changed profile (content, not name)
+    regraded = grade_batch(profiles, spec2, battery=fake_battery, jobs=1, cache_dir=cache)
+    assert call_names(calls) == ["o3", "o4", "o5"]
+    assert all(g.cached for g in regraded.grades)
+    o3 = next(g for g in regraded.grades if g.name == "o3")
+    assert o3.lines[0].target.limit == 111.0 and o3.lines[0].margin == -1.0
+    assert not o3.lines[0].passed
+    # a changed profile (content, not name) is a new key: it runs again
     (pdir / "o3.toml").write_text(profile_text("o3", 3) + "seed = 9\n")
     grade_batch(collect_profiles([pdir]), spec2, battery=fake_battery, jobs=1, cache_dir=cache)
-    assert call_names(calls).count("o3") == 3 and len(call_names(calls)) == 7
+    assert call_names(calls).count("o3") == 2 and len(call_names(calls)) == 4
 
 
 def test_interrupted_batch_keeps_finished_results(tmp_path, batch_files, calls):
@@ -291,7 +299,7 @@ def test_same_names_are_told_apart(tmp_path, calls):
 
 def test_cache_ignores_a_damaged_entry(tmp_path):
     cache = GradeCache(tmp_path)
-    key = GradeCache.key("p", "s", "1", "")
+    key = GradeCache.key("p", "1", "")
     assert len(key) == 64
     cache.path(key).write_bytes(b"not a zip file")
     assert cache.load(key) is None
@@ -390,6 +398,7 @@ def blocking_battery(profile, *, jobs=None, progress=None, seed=0, **options):
 _CTRL_C_SCRIPT = """
 import sys
 sys.path.insert(0, {tests!r})
+sys.path.insert(0, {root!r})  # the package of this checkout, not whichever one is installed
 from test_grade import blocking_battery
 from audiodsm.evaluate.grade import collect_profiles, grade_batch
 from audiodsm.spec import parse_spec
@@ -411,7 +420,12 @@ def test_ctrl_c_on_a_parallel_batch_keeps_finished_results(tmp_path, calls):
     cache = tmp_path / "cache"
     script = tmp_path / "run.py"
     script.write_text(
-        _CTRL_C_SCRIPT.format(tests=str(Path(__file__).parent), pdir=str(pdir), cache=str(cache))
+        _CTRL_C_SCRIPT.format(
+            tests=str(Path(__file__).parent),
+            root=str(Path(__file__).parent.parent),
+            pdir=str(pdir),
+            cache=str(cache),
+        )
     )
     proc = subprocess.Popen(
         [sys.executable, str(script)],
@@ -558,7 +572,190 @@ def test_cli_short_runs_the_short_plan_as_measure_does(tmp_path, batch_files, mo
     args = [str(pdir / "o5.toml"), "--spec", str(spec_path), "--jobs", "1", "--no-cache"]
     assert run_cli(args).exit_code == 0
     assert run_cli([*args, "--short"]).exit_code == 0
-    assert plans == [None, BatteryPlan.quick()]
+    # the plan is always explicit now (the default one unless --short); the spec's -20 dBFS
+    # target is a level both sweeps have, so neither plan gains a level
+    assert plans == [BatteryPlan(), BatteryPlan.quick()]
     for command in ("grade", "measure"):
         help_text = CliRunner().invoke(main, [command, "--help"]).output
         assert "--short" in help_text and "Shorter captures and fewer points" in help_text
+
+
+# --------------------------------------------------------------------------------------------
+# validity, normalized ranking, levels a spec asks for
+# --------------------------------------------------------------------------------------------
+
+
+def test_invalid_readings_fail_with_the_reason():
+    spec = parse_spec(SPEC)
+    metrics = {"dynamic_range_db_a": None, "idle_tone_max_dbfs": None}
+    invalid = {
+        "dynamic_range_db_a": "loop overloaded (12 guard actions)",
+        "idle_tone_max_dbfs": "3 of 12 captures searched were not valid",
+    }
+    curves = {
+        "thd_n_vs_level": {
+            "level_dbfs": np.array([0.0, -20.0]),
+            # a number the battery still keeps in an array must not be graded when the point
+            # is invalid: -274 dB would pass any THD+N limit
+            "thd_n_db": np.array([-274.0, -274.0]),
+            "invalid_reason": np.array(["", "loop overloaded from -12 dBFS"]),
+        }
+    }
+    dr, tone, thd = grade_metrics(metrics, curves, spec, invalid)
+    assert not dr.passed and not dr.valid and dr.value is None and dr.margin is None
+    assert dr.reason == "invalid: loop overloaded (12 guard actions)"
+    assert tone.reason.startswith("invalid: 3 of 12") and not tone.passed
+    assert thd.reason == "invalid: loop overloaded from -12 dBFS" and not thd.passed
+    assert not thd.valid
+
+
+def test_ranking_uses_normalized_margins_so_count_targets_do_not_pin_it():
+    # Two passing profiles with an overload-count target (limit 0, margin always 0 when it
+    # passes) and a dynamic-range target: the plain worst margin is 0.00 for both, a false
+    # tie; the normalized margin leaves the count out and ranks by the dynamic range.
+    count = Target("overload_count", "at_most", 0.0)
+    dr = Target("dynamic_range_db_a", "at_least", 110.0)
+
+    def profile(name, dr_value):
+        lines = (
+            TargetGrade(count, 0.0, 0.0, True),
+            TargetGrade(dr, dr_value, dr_value - 110.0, True),
+        )
+        return ProfileGrade(name=name, source="", digest="", lines=lines)
+
+    a, b = profile("a", 112.0), profile("b", 117.0)
+    assert a.worst_margin == b.worst_margin == 0.0
+    assert a.ranking_margin == 2.0 and b.ranking_margin == 7.0
+    assert [g.name for g in rank_grades([a, b])] == ["b", "a"]
+    # Hz and FS margins become the limit-to-reading ratio in dB: 2 MHz allowed, 1 MHz read
+    # is a factor 2 below the limit, 20 log10(2) = 6.02 dB
+    rate = Target("switching_rate_hz", "at_most", 2.0e6)
+    assert normalized_margin(rate, 1.0e6) == pytest.approx(20 * math.log10(2.0))
+    assert normalized_margin(rate, 4.0e6) == pytest.approx(-20 * math.log10(2.0))
+    peak = Target("state_peak_max", "at_least", 0.5)
+    assert normalized_margin(peak, 1.0) == pytest.approx(20 * math.log10(2.0))
+    assert normalized_margin(count, 0.0) is None and normalized_margin(dr, None) is None
+    # a passing profile ranks above a failing one whatever their margins
+    c = ProfileGrade(name="c", source="", digest="", lines=(TargetGrade(dr, 109.0, -1.0, False),))
+    assert [g.name for g in rank_grades([c, a])] == ["a", "c"]
+
+
+def test_spec_levels_missing_from_the_sweep_are_measured():
+    from audiodsm.evaluate.battery import BatteryPlan
+
+    spec = parse_spec(
+        SPEC
+        + '\n[[target]]\nmetric = "thd_n_db_a"\nat_level_dbfs = -37.5\nat_most = -80.0\n'
+        + '\n[[target]]\nmetric = "thd_n_db"\nat_level_dbfs = -45.0\nat_most = -80.0\n'
+    )
+    plan = plan_for_spec(None, spec)
+    assert -37.5 in plan.sweep_levels_dbfs and -45.0 in plan.sweep_levels_dbfs
+    assert plan.sweep_levels_dbfs == tuple(sorted(plan.sweep_levels_dbfs, reverse=True))
+    assert plan.check() == plan
+    # -20 dBFS is in the default sweep already: a spec reading only it leaves the plan as it is
+    assert plan_for_spec(None, parse_spec(SPEC)) == BatteryPlan()
+    quick = BatteryPlan.quick()
+    assert plan_for_spec(quick, spec).sweep_levels_dbfs == tuple(
+        sorted({*quick.sweep_levels_dbfs, -37.5, -45.0}, reverse=True)
+    )
+
+
+def test_grade_passes_the_spec_levels_to_the_battery(tmp_path, monkeypatch):
+    plans = []
+
+    def plan_battery(profile, **kwargs):
+        plans.append(kwargs.get("plan"))
+        out = fake_battery(profile, **kwargs)
+        levels = np.array(kwargs["plan"].sweep_levels_dbfs)
+        out.curves["thd_n_vs_level"] = {"level_dbfs": levels, "thd_n_db": -100.0 + 0 * levels}
+        return out
+
+    monkeypatch.setattr("audiodsm.evaluate.grade._default_battery", lambda: plan_battery)
+    (tmp_path / "p.toml").write_text(profile_text("p", 5))
+    spec = parse_spec('[[target]]\nmetric = "thd_n_db"\nat_level_dbfs = -37.5\nat_most = -90.0\n')
+    out = grade_batch(collect_profiles([tmp_path]), spec, jobs=1)
+    assert -37.5 in plans[0].sweep_levels_dbfs
+    assert out.passed and out.grades[0].lines[0].value == -100.0
+
+
+def test_cache_keeps_the_invalid_readings(tmp_path):
+    cache = GradeCache(tmp_path)
+    key = GradeCache.key("p", "1", "")
+    entry = {
+        "metrics": {"dynamic_range_db": None},
+        "curves": {
+            "thd_n_vs_level": {
+                "level_dbfs": np.array([0.0, -1.0]),
+                "invalid_reason": np.array(["", "tone lost at -1 dBFS"]),
+            }
+        },
+        "notes": (),
+        "seconds": 1.0,
+        "invalid": {"dynamic_range_db": "loop overloaded (3 guard actions)"},
+    }
+    cache.store(key, entry)
+    back = cache.load(key)
+    assert back["invalid"] == entry["invalid"]
+    assert list(back["curves"]["thd_n_vs_level"]["invalid_reason"]) == ["", "tone lost at -1 dBFS"]
+
+
+UNSTABLE = Path(__file__).parent / "profiles" / "unstable_order8.toml"
+
+UNSTABLE_SPEC = """
+name = "what the unstable loop must fail"
+
+[[target]]
+metric = "thd_n_db_at_minus1_dbfs"
+at_most = -90.0
+
+[[target]]
+metric = "thd_n_db_a_at_minus20_dbfs"
+at_most = -90.0
+
+[[target]]
+metric = "thd_n_db"
+at_level_dbfs = -37.5
+at_most = -80.0
+
+[[target]]
+metric = "dynamic_range_db_a"
+at_least = 100.0
+
+[[target]]
+metric = "dynamic_range_db"
+at_least = 100.0
+
+[[target]]
+metric = "idle_tone_max_dbfs"
+at_most = -120.0
+"""
+
+
+def test_unstable_profile_fails_every_target_with_the_reason(tmp_path):
+    # The issue's broken loop (order 8, out-of-band gain 6, single-bit) read THD+N -274 dB at
+    # -1 dBFS and passed. Through the real battery (short plan) and the command, every THD+N,
+    # dynamic-range and idle-tone target now fails, each with the reason shown.
+    spec = tmp_path / "sheet.toml"
+    spec.write_text(UNSTABLE_SPEC)
+    r = run_cli([str(UNSTABLE), "--spec", str(spec), "--short", "--no-cache", "--jobs", "1",
+                 "--json", "--no-progress"])  # fmt: skip
+    assert r.exit_code == 1, r.output
+    data = json.loads(r.stdout)
+    (prof,) = data["profiles"]
+    assert prof["passed"] is False and prof["failed_targets"] == 6
+    for t in prof["targets"]:
+        assert t["passed"] is False and t["valid"] is False and t["value"] is None
+        assert t["reason"].startswith("invalid: ")
+    by = {(t["metric"], t["at_level_dbfs"]): t["reason"] for t in prof["targets"]}
+    assert "loop overloaded from" in by[("thd_n_db_at_minus1_dbfs", None)]
+    assert "tone lost at -37.5 dBFS" in by[("thd_n_db", -37.5)]  # measured at the level asked
+    assert "-60 dBFS tone was lost" in by[("dynamic_range_db_a", None)]
+    assert "captures searched were not valid" in by[("idle_tone_max_dbfs", None)]
+    # the battery printed no good-looking number for them either
+    for k in ("thd_n_db_at_minus1_dbfs", "dynamic_range_db_a", "idle_tone_max_dbfs"):
+        assert prof["metrics"][k] is None
+        assert prof["validity"][k]["valid"] is False
+    # and the table says so
+    r = run_cli([str(UNSTABLE), "--spec", str(spec), "--short", "--no-cache", "--jobs", "1",
+                 "--no-progress"])  # fmt: skip
+    assert "FAIL: invalid: loop overloaded from" in r.output

@@ -36,6 +36,13 @@ def test_json_lines_carry_every_metric(measured):
     assert record["profile"] == "tiny"
     assert record["file"] == str(folder / "tiny.toml")
     assert set(record["metrics"]) == set(METRIC_UNITS)
+    # every reading carries its validity; an invalid one is null with the reason
+    assert set(record["validity"]) == set(METRIC_UNITS)
+    for k, v in record["validity"].items():
+        assert set(v) == {"valid", "reason"}
+        assert v["valid"] is (v["reason"] == "")
+        if not v["valid"]:
+            assert record["metrics"][k] is None
     assert record["rate_hz"] == 48000
     # the command reports what the library measures for the same profile and plan
     lib = run_battery(
@@ -87,3 +94,34 @@ def test_profile_folders_expand_to_their_toml_files(tmp_path):
     empty.mkdir()
     with pytest.raises(ProfileError, match="no \\*.toml"):
         collect_profiles([empty])
+
+
+def test_table_shows_invalid_readings_and_notes():
+    text = metrics_table(
+        ["a", "b"],
+        [{"dynamic_range_db": None, "idle_noise_dbfs": -120.0}, {"dynamic_range_db": 99.0}],
+        [{"dynamic_range_db": "loop overloaded (5 guard actions)"}, {}],
+        [["tone came out too low"], []],
+    )
+    lines = text.splitlines()
+    row = next(ln for ln in lines if ln.startswith("dynamic_range_db "))
+    assert row.split() == ["dynamic_range_db", "dB", "invalid", "[1]", "99.00"]
+    assert "  [1] loop overloaded (5 guard actions)" in lines
+    assert "notes on a:" in lines and "  - tone came out too low" in lines
+    assert "notes on b:" not in lines
+
+
+def test_measure_table_of_an_unstable_profile():
+    # the broken loop: its table shows invalid readings with reasons and the battery's
+    # notes (which say the tone left no trace instead of printing -309 dBFS)
+    from pathlib import Path
+
+    unstable = Path(__file__).parent / "profiles" / "unstable_order8.toml"
+    result = CliRunner().invoke(main, ["measure", str(unstable), "--short", "--no-progress"])
+    assert result.exit_code == 0, result.output
+    out = result.stdout
+    row = next(ln for ln in out.splitlines() if ln.startswith("thd_n_db_at_minus1_dbfs"))
+    assert "invalid [" in row
+    assert "loop overloaded from" in out
+    assert "notes on unstable order 8:" in out
+    assert "no trace of it at the output" in out

@@ -8,6 +8,7 @@ from audiodsm.errors import ParameterError
 from audiodsm.measure.noise import (
     dynamic_range,
     idle_channel_noise,
+    noise_clear_of_harmonics,
     noise_modulation,
     out_of_band_power_dbfs,
 )
@@ -123,3 +124,68 @@ def test_noise_modulation_tpdf_versus_undithered():
         frequency_hz=997.0,
     )
     assert plain.spread_db > 1.0
+
+
+def _white_in_band(n, rms, rng):
+    """White Gaussian noise of the given rms (over 0..rate/2)."""
+    return rms * rng.standard_normal(n)
+
+
+def test_noise_modulation_reads_a_known_noise_change():
+    # A synthetic tone whose added white noise is made 6 dB louder at the top level than at
+    # the others: the reading must be that known 6 dB (within 0.5 dB, the issue's tolerance).
+    # The noise power in the band is sigma^2 * (band / (rate/2)) for white noise (its
+    # definition), so the change in sigma is the change in every band's level.
+    rng = np.random.default_rng(61)
+    n = int(0.5 * RATE)
+    levels = (-1.0, -20.0, -40.0, -60.0)
+    sigma = {-1.0: 2e-5, -20.0: 1e-5, -40.0: 1e-5, -60.0: 1e-5}
+    caps = [
+        _cos(997.0, n, 10 ** (lv / 20), 0.4) + _white_in_band(n, sigma[lv], rng) for lv in levels
+    ]
+    r = noise_modulation(caps, rate_hz=RATE, frequency_hz=997.0, weighting="unweighted")
+    assert r.spread_db == pytest.approx(20 * np.log10(2.0), abs=0.5)
+    # the reading follows the noise: each capture's level is that of its white noise in the
+    # 20 Hz..20 kHz band (sigma^2 * 19980 / 24000), to 0.3 dB
+    for lv, got in zip(levels, r.noise_dbfs, strict=True):
+        expected = power_to_dbfs(sigma[lv] ** 2 * 19980.0 / (RATE / 2))
+        assert got == pytest.approx(expected, abs=0.3)
+    for lv, got in zip(levels, r.tone_dbfs, strict=True):
+        assert got == pytest.approx(lv, abs=0.01)
+
+
+@pytest.mark.parametrize("weighting", ["unweighted", "a"])
+def test_noise_modulation_ignores_harmonics_that_rise_with_level(weighting):
+    # Harmonics 2..7 at -40 dBc at every level rise with the tone (from -41 dBFS at -1 dBFS to
+    # -100 dBFS at -60 dBFS) while the noise stays the same: the reading must stay under
+    # 0.5 dB. The THD+N residual of the same captures moves by tens of dB, which is what the
+    # old definition reported.
+    rng = np.random.default_rng(62)
+    n = int(0.5 * RATE)
+    levels = (-1.0, -20.0, -40.0, -60.0)
+    caps = []
+    for lv in levels:
+        a = 10 ** (lv / 20)
+        x = _cos(997.0, n, a, 0.4)
+        for k in range(2, 8):
+            x = x + _cos(997.0 * k, n, a * 1e-2, 0.3 * k)
+        caps.append(x + _white_in_band(n, 1e-5, rng))
+    r = noise_modulation(caps, rate_hz=RATE, frequency_hz=997.0, weighting=weighting)
+    assert r.spread_db < 0.5
+    # the harmonics themselves are big: at -1 dBFS they sum to about -33 dBFS, far above the
+    # noise, so the THD+N residual (the old reading) moves by tens of dB over these captures
+    from audiodsm.measure.tone import thd_plus_noise
+
+    top, bottom = (
+        thd_plus_noise(c, rate_hz=RATE, frequency_hz=997.0, weighting=weighting).noise_dbfs
+        for c in (caps[0], caps[-1])
+    )
+    assert top - bottom > 30.0
+
+
+def test_noise_clear_of_harmonics_refuses_bad_input():
+    x = _cos(997.0, 24000, 0.5)
+    with pytest.raises(ParameterError, match="frequency_hz"):
+        noise_clear_of_harmonics(x, rate_hz=RATE, frequency_hz=30000.0)
+    with pytest.raises(ParameterError, match="guard_hz"):
+        noise_clear_of_harmonics(x, rate_hz=RATE, frequency_hz=997.0, guard_hz=1000.0)

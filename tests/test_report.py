@@ -269,3 +269,41 @@ def test_page_renders_in_headless_chromium(tmp_path, batch, browser):
     flat = (img[..., :3] * 255).astype(np.uint8).reshape(-1, 3)
     assert len(np.unique(flat[::7], axis=0)) > 200
     Path(tmp_path / "keep").write_text(str(shot))
+
+
+def invalid_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    out = report_battery(profile)
+    out.metrics["dynamic_range_db_a"] = None
+    out.invalid = {"dynamic_range_db_a": "loop overloaded (7 guard actions)"}
+    sweep = out.curves["thd_n_vs_level"]
+    sweep["thd_n_db"] = np.full(len(sweep["level_dbfs"]), -274.0)
+    sweep["invalid_reason"] = np.array(["tone lost <here>"] * len(sweep["level_dbfs"]))
+    return out
+
+
+def test_invalid_readings_show_as_invalid_in_every_file(tmp_path):
+    pdir = tmp_path / "profiles"
+    pdir.mkdir()
+    (pdir / "bad.toml").write_text('name = "bad"\n[modulator]\norder = 5\n')
+    batch = grade_batch(
+        collect_profiles([pdir]), parse_spec(SPEC, path="sheet.toml"), battery=invalid_battery,
+        jobs=1,
+    )  # fmt: skip
+    written = write_report(batch, tmp_path / "report")
+    data = json.loads(written["json"].read_text())
+    (prof,) = data["profiles"]
+    dr, thd = prof["targets"]
+    assert dr["valid"] is False and dr["value"] is None and dr["passed"] is False
+    assert dr["reason"] == "invalid: loop overloaded (7 guard actions)"
+    assert thd["valid"] is False and thd["reason"] == "invalid: tone lost <here>"
+    assert prof["validity"]["dynamic_range_db_a"] == {
+        "valid": False,
+        "reason": "loop overloaded (7 guard actions)",
+    }
+    assert prof["metrics"]["dynamic_range_db_a"] is None
+    rows = list(csv.reader(io.StringIO(written["csv"].read_text())))
+    assert [r[CSV_COLUMNS.index("valid")] for r in rows[1:]] == ["no", "no"]
+    page = written["html"].read_text()
+    assert "invalid <small>(loop overloaded (7 guard actions))</small>" in page
+    assert "invalid: tone lost &lt;here&gt;" in page  # escaped like every other text
+    assert "-274" not in page  # the invalid THD+N never shows as a number

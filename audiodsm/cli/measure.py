@@ -1,10 +1,16 @@
 """``audiodsm measure``: run the test battery on profiles and print their metrics.
 
-The terminal shows one aligned table: a row per metric with its unit, a column per profile.
-With ``--json``, stdout carries only one JSON object per profile, one per line::
+The terminal shows one aligned table: a row per metric with its unit, a column per profile;
+an invalid reading shows as ``invalid [n]`` with its numbered reason under the table, then
+each profile's battery notes. With ``--json``, stdout carries only one JSON object per
+profile, one per line::
 
     {"profile": str, "file": str, "digest": str, "rate_hz": int, "seconds": float,
-     "metrics": {metric name: number | bool | null, ...}, "notes": [str, ...]}
+     "metrics": {metric name: number | bool | null, ...},
+     "validity": {metric name: {"valid": bool, "reason": str}, ...}, "notes": [str, ...]}
+
+An invalid reading is ``null`` in ``metrics`` and ``"valid": false`` with its reason in
+``validity``.
 
 The progress bar goes to stderr, so it never mixes with the JSON.
 """
@@ -81,7 +87,7 @@ def measure(profiles, as_json, jobs, seed, short, no_progress):
 
     loaded = collect_profiles(profiles)  # every file checked before any runs
     plan = BatteryPlan.quick() if short else BatteryPlan()
-    names, rows = [], []
+    names, rows, invalid, notes = [], [], [], []
     for path, prof in loaded:
         bar = _Bar(prof.name, enabled=not no_progress)
         try:
@@ -96,12 +102,15 @@ def measure(profiles, as_json, jobs, seed, short, no_progress):
                 "rate_hz": res.rate_hz,
                 "seconds": round(res.seconds, 3),
                 "metrics": res.json_metrics(),
+                "validity": res.validity(),
                 "notes": list(res.notes),
             }
             click.echo(json.dumps(record))
         else:
             names.append(prof.name)
             rows.append(res.json_metrics())
+            invalid.append(dict(res.invalid))
+            notes.append(list(res.notes))
             click.echo(f"{prof.name}: measured in {res.seconds:.1f} s ({path})", err=True)
     if not as_json:
-        click.echo(metrics_table(names, rows))
+        click.echo(metrics_table(names, rows, invalid, notes))

@@ -69,6 +69,7 @@ __all__ = [
     "BatteryResult",
     "battery_rate_hz",
     "run_battery",
+    "validity_table",
 ]
 
 #: Audio rate of the battery when the profile does not set ``listening.rate_hz``.
@@ -109,7 +110,7 @@ METRIC_UNITS = {
     "noise_modulation_db": (
         "level_sweep",
         "dB",
-        "spread of the A-weighted noise floor over tone levels",
+        "spread over tone levels of the A-weighted noise between the tone's harmonics",
     ),
     "tone_lost_at_dbfs": (
         "level_sweep",
@@ -189,6 +190,15 @@ _SPECTRUM_RESOLUTION_HZ = 100.0
 _LINE_FLOOR_DBFS = -200.0
 #: A sweep tone more than this far from its level counts as lost (dead zone, limit cycle).
 _LOST_DB = 3.0
+#: A listening output whose peak exceeds full scale by more than this has clipped: a real
+#: converter could not have produced it. (0.1 dB leaves room for the passband ripple of a
+#: full-scale tone's path, a few hundredths of a dB.)
+_CLIP_DB = 0.1
+#: How far below the linear-model noise floor of the loop a noise reading may fall before it
+#: is called impossible. The linear model (white quantization error of power step^2/12 shaped
+#: by the NTF) is accurate to a few dB for single-bit and dithered loops (Schreier & Temes
+#: 2005, ch. 4); 20 dB is a safety factor, not a precision estimate.
+_FLOOR_MARGIN_DB = 20.0
 
 
 @dataclass(frozen=True)
@@ -342,8 +352,8 @@ class BatteryResult:
         Audio rate of the stimuli.
     metrics : dict
         Metric name -> float, int, bool or None (None when a reading does not exist, e.g. the
-        dynamic range of a loop too unstable to pass a -60 dBFS tone); names in
-        :data:`METRIC_UNITS`.
+        dynamic range of a loop too unstable to pass a -60 dBFS tone, and for every invalid
+        reading); names in :data:`METRIC_UNITS`.
     curves : dict
         Curve name -> dict of numpy arrays (see docs/battery.md).
     notes : tuple of str
@@ -353,6 +363,10 @@ class BatteryResult:
     plan : BatteryPlan
     run_seconds : dict
         Test label -> seconds its runs took (summed over runs; they overlap in parallel).
+    invalid : dict
+        Metric name -> why its reading is invalid (the loop overloaded, the tone was lost, the
+        output clipped, the value is impossible, ...). Those metrics read None in
+        ``metrics``; every metric not named here is valid.
     """
 
     profile_name: str
@@ -364,10 +378,20 @@ class BatteryResult:
     seconds: float
     plan: BatteryPlan = field(repr=False)
     run_seconds: dict = field(default_factory=dict, repr=False)
+    invalid: dict = field(default_factory=dict)
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
         return {k: plain_scalar(v) for k, v in self.metrics.items()}
+
+    def validity(self) -> dict:
+        """Metric name -> ``{"valid": bool, "reason": str}`` for every metric measured."""
+        return validity_table(self.metrics, self.invalid)
+
+
+def validity_table(metrics: dict, invalid: dict) -> dict:
+    """Metric name -> ``{"valid": bool, "reason": str}`` (reason empty when valid)."""
+    return {k: {"valid": k not in invalid, "reason": str(invalid.get(k, ""))} for k in metrics}
 
 
 def battery_rate_hz(profile: ChainProfile) -> int:
@@ -405,6 +429,65 @@ def _chain_run(profile, x, *, rate, keep=("listening",)):
         tail = int(round(_TAIL_S * rate))
         res = replace(res, listening=res.listening[: len(res.listening) - tail])
     return res
+
+
+def _run_faults(stats, c, y=None):
+    """Why channel ``c`` of a chain run cannot be read honestly (empty when it can).
+
+    The loop overloaded (its guard acted), or the measured listening output ``y`` is not
+    finite or went beyond full scale by more than ``_CLIP_DB`` (a converter would clip it).
+    """
+    faults = []
+    n = int(stats.overload_count[c])
+    if n:
+        faults.append(f"loop overloaded ({n} guard actions)")
+    if y is not None and len(y):
+        if not np.all(np.isfinite(y)):
+            faults.append("output not finite")
+        else:
+            peak = float(np.max(np.abs(y)))
+            if peak > 10.0 ** (_CLIP_DB / 20.0):
+                faults.append(f"output clipped (peak {_db(peak):+.2f} dB re full scale)")
+    return faults
+
+
+def _tone_came_out(tone_dbfs) -> str:
+    """Plain words for the level a tone came out at, never a level below the numeric floor."""
+    if tone_dbfs is None or not math.isfinite(tone_dbfs) or tone_dbfs < NUMERIC_FLOOR_DBFS:
+        return f"no trace of it at the output, below the {NUMERIC_FLOOR_DBFS:g} dBFS numeric floor"
+    return f"it came out at {tone_dbfs:.2f} dBFS"
+
+
+def _linear_noise_floor(chain):
+    """The band-limited noise (dBFS per weighting) the loop's linear model allows, or None.
+
+    White quantization error of power ``step**2 / 12`` spread evenly over 0 .. fm/2, shaped
+    by the NTF, integrated over 20 Hz .. 20 kHz with the weighting, referred to the chain
+    input through its input scale. It is a lower bound on the noise of a loop whose
+    quantization error stays busy: a single-bit loop, or a dithered one (dither adds to it).
+    An undithered multi-level loop can idle on one level with almost no error, so it gets no
+    floor (None) and only the numeric floor applies.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
+       ch. 2 and 4 (linear model of the quantizer, in-band noise of the NTF).
+    """
+    from audiodsm.measure.weighting import weighting_power_gain
+
+    mod = chain.modulator
+    if mod.levels > 2 and mod.dither_lsb <= 0.0:
+        return None
+    fm = float(chain.modulator_rate_hz)
+    f = np.linspace(_BAND[0], _BAND[1], 20001)
+    ntf_power = np.abs(chain.ntf.response(f / fm)) ** 2
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    out = {}
+    for w in _WEIGHTINGS:
+        band = float(np.trapezoid(ntf_power * weighting_power_gain(f, w), f))
+        power = mod.step**2 / 12.0 * band / (fm / 2.0) / scale**2
+        out[w] = 10.0 * math.log10(power / 0.5)  # 0 dBFS: a full-scale sine, power 0.5
+    return out
 
 
 def _meter(x, rate, frequency_hz, weightings, settle_s):
@@ -511,16 +594,23 @@ def _test_dynamic_range(ctx, profile):
         f"dynamic range: -60 dBFS 997 Hz, {plan.tone_s:g} s after {plan.settle_s:g} s "
         f"settling, 20 Hz..20 kHz, fundamental removed by 3-parameter fits over 0.5 s segments"
     ]
+    faults = _run_faults(res.stats, 0, y[int(round(plan.settle_s * rate)) :])
+    dr_names = [f"dynamic_range_db{name}" for name in ("", "_a", "_ccir")]
     if r.fundamental_dbfs is not None and abs(r.fundamental_dbfs + 60.0) <= 1.0:
-        for k, name in zip(_WEIGHTINGS, ("", "_a", "_ccir"), strict=True):
-            out[f"dynamic_range_db{name}"] = -r.noise_dbfs[k]
+        for k, name in zip(_WEIGHTINGS, dr_names, strict=True):
+            out[name] = -r.noise_dbfs[k]
     else:
-        for name in ("", "_a", "_ccir"):
-            out[f"dynamic_range_db{name}"] = None
+        for name in dr_names:
+            out[name] = None
+        faults.append("the -60 dBFS tone was lost: " + _tone_came_out(r.fundamental_dbfs))
         notes.append(
-            f"dynamic range: the -60 dBFS tone came out at {r.fundamental_dbfs:.2f} dBFS "
-            "(not within 1 dB), so no dynamic range is given"
+            "dynamic range: the -60 dBFS tone did not come out within 1 dB ("
+            + _tone_came_out(r.fundamental_dbfs)
+            + "), so no dynamic range is given"
         )
+    out["invalid"] = {k: "; ".join(faults) for k in (*dr_names, "out_of_band_noise_dbfs")}
+    if not faults:
+        out["invalid"] = {}
     fm = res.modulator_rate_hz
     a = res.analog[:, 0]
     skip = int(round((plan.settle_s + res.latency_s) * fm))
@@ -564,8 +654,11 @@ def _test_level_sweep(ctx, profile, levels):
             "tone_dbfs": r.fundamental_dbfs,
             "thd_n_db": r.thd_n_db["unweighted"],
             "thd_n_db_a": r.thd_n_db["a"],
+            "noise_dbfs": r.noise_dbfs["unweighted"],
             "noise_dbfs_a": r.noise_dbfs["a"],
+            "noise_clear_dbfs_a": _clear_noise(y[settle:], rate),
             "overload_count": int(res.stats.overload_count[c]),
+            "faults": _run_faults(res.stats, c, y[settle:]),
         }
         if lv <= -60.0:
             resid = _remove_fundamental(y, rate, settle)
@@ -574,6 +667,17 @@ def _test_level_sweep(ctx, profile, levels):
         points.append(point)
     stats = [(res.stats, c, 10 ** (lv / 20)) for c, lv in enumerate(levels)]
     return {"sweep": points, "stats": stats}
+
+
+def _clear_noise(y, rate):
+    """A-weighted noise between the 997 Hz tone's harmonics (noise modulation), or None."""
+    from audiodsm.measure.noise import noise_clear_of_harmonics
+
+    if not np.all(np.isfinite(y)):
+        return None
+    return noise_clear_of_harmonics(
+        y, rate_hz=rate, frequency_hz=_TEST_HZ, weighting="a"
+    ).noise_dbfs
 
 
 def _test_idle(ctx, profile):
@@ -587,7 +691,10 @@ def _test_idle(ctx, profile):
     # offset of the output stage without dead time, so an offset from dead time (or anything
     # else in the product) stays in; AES17 dBFS of a constant: 20 log10(|dc| sqrt(2))
     dc = float(np.mean(y[settle:]))
+    faults = "; ".join(_run_faults(res.stats, 0, y[settle:]))
     out = {
+        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz")} if faults else {},
+        "silence_faults": faults,
         "dc_offset_dbfs": 20.0 * math.log10(abs(dc) * math.sqrt(2.0)) if dc else -math.inf,
         "idle_noise_dbfs": r.noise_dbfs["unweighted"],
         "idle_noise_dbfs_a": r.noise_dbfs["a"],
@@ -611,7 +718,13 @@ def _test_dc(ctx, profile, offsets):
     found = []
     for c, off in enumerate(offsets):
         y = res.listening[settle:, c]
-        found.append((off, _lines(y - y.mean(), rate, false_alarm=ctx.false_alarm)))
+        found.append(
+            (
+                off,
+                _lines(y - y.mean(), rate, false_alarm=ctx.false_alarm),
+                "; ".join(_run_faults(res.stats, c, y)),
+            )
+        )
     stats = [(res.stats, c, abs(off)) for c, off in enumerate(offsets)]
     return {"dc": found, "stats": stats}
 
@@ -632,6 +745,7 @@ def _test_stability(ctx, profile):
         "msa_state_peak": np.asarray(limit.state_peaks, dtype=float),
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
+        "noise_floor": _linear_noise_floor(chain),
         "notes": [
             f"stability: bisection on a sine near a fifth of the band edge, "
             f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
@@ -714,7 +828,9 @@ def _test_response(ctx, profile):
         lower_hz=_BAND[0],
         upper_hz=_BAND[1],
     )
+    faults = _run_faults(res.stats, 0, res.listening[int(round(plan.settle_s * rate)) :, 0])
     return {
+        "invalid": {"passband_ripple_db": "; ".join(faults)} if faults else {},
         "passband_ripple_db": fr.ripple_db,
         "curve_frequency_response": {
             "frequency_hz": np.array(fr.frequency_hz),
@@ -754,7 +870,11 @@ def _test_images(ctx, profile):
     # an image reading within 3x the rms noise reading is indistinguishable from noise
     limited = bool(img < 3.0 * noise)
     rejection = _db(tone) - _db(max(img, 3.0 * noise) if limited else img)
+    faults = "; ".join(_run_faults(res.stats, 0))
     return {
+        "invalid": {k: faults for k in ("image_rejection_db", "image_rejection_noise_limited")}
+        if faults
+        else {},
         "image_rejection_db": rejection,
         "image_rejection_noise_limited": limited,
         "stats": [(res.stats, 0, 10 ** (level / 20))],
@@ -789,7 +909,14 @@ def _test_imd(ctx, profile):
     smpte = imd_smpte(res.listening[:, 0], rate_hz=rate, settle_s=plan.settle_s)
     diff = imd_difference_frequency(res.listening[:, 1], rate_hz=rate, settle_s=plan.settle_s)
     peak = 10 ** (level / 20)
+    settle = int(round(plan.settle_s * rate))
+    invalid = {}
+    for c, name in enumerate(("imd_smpte_db", "imd_difference_db")):
+        faults = _run_faults(res.stats, c, res.listening[settle:, c])
+        if faults:
+            invalid[name] = "; ".join(faults)
     return {
+        "invalid": invalid,
         "imd_smpte_db": smpte.ratio_db,
         "imd_difference_db": diff.ratio_db,
         "stats": [(res.stats, 0, peak), (res.stats, 1, peak)],
@@ -965,7 +1092,7 @@ def run_battery(
     finally:
         # on an error or Ctrl-C, runs not yet started are dropped; running ones finish
         pool.shutdown(wait=True, cancel_futures=True)
-    metrics, curves, notes = _assemble(results, tests, plan, profile)
+    metrics, curves, notes, invalid = _assemble(results, tests, plan, profile)
     return BatteryResult(
         profile_name=profile.name,
         digest=profile_digest(profile),
@@ -976,6 +1103,7 @@ def run_battery(
         seconds=time.perf_counter() - start,
         plan=plan,
         run_seconds=run_seconds,
+        invalid=invalid,
     )
 
 
@@ -1004,9 +1132,63 @@ def _came_through(point) -> bool:
     return tone is not None and math.isfinite(tone) and abs(tone - point["level_dbfs"]) <= _LOST_DB
 
 
+def _sweep_reason(p, onset, floor):
+    """Why a sweep point's THD+N cannot be read honestly ("" when it can)."""
+    lv = p["level_dbfs"]
+    reasons = []
+    if p["overload_count"] > 0:
+        reasons.append(f"loop overloaded from {onset:g} dBFS")
+    reasons.extend(f for f in p.get("faults", ()) if not f.startswith("loop overloaded"))
+    if not _came_through(p):
+        reasons.append(f"tone lost at {lv:g} dBFS: " + _tone_came_out(p["tone_dbfs"]))
+    if reasons:  # the impossibility checks below are the backstop for a run that looked sound
+        return "; ".join(reasons)
+    for key, noise_key, w in (
+        ("thd_n_db", "noise_dbfs", "unweighted"),
+        ("thd_n_db_a", "noise_dbfs_a", "a"),
+    ):
+        v, noise = p[key], p.get(noise_key)
+        if v is None or not math.isfinite(v):
+            return f"THD+N reading is {v}"
+        if noise is None:
+            continue
+        if noise < NUMERIC_FLOOR_DBFS:
+            return (
+                f"impossible: THD+N {v:.1f} dB at {lv:g} dBFS puts the noise below the "
+                f"simulation's numeric floor ({NUMERIC_FLOOR_DBFS:g} dBFS)"
+            )
+        if floor is not None and noise < floor[w] - _FLOOR_MARGIN_DB:
+            return (
+                f"impossible: THD+N {v:.1f} dB at {lv:g} dBFS puts the noise "
+                f"({noise:.1f} dBFS) more than {_FLOOR_MARGIN_DB:g} dB below the chain's own "
+                f"noise floor ({floor[w]:.1f} dBFS)"
+            )
+    return ""
+
+
+def _chain_noise_floor(linear, metrics, invalid):
+    """The chain's own noise floor per weighting (dBFS), or None when there is none.
+
+    The lower of the loop's linear-model floor (:func:`_linear_noise_floor`) and the valid
+    idle-channel noise reading. A single-bit loop at rest can settle into a pattern with
+    almost no in-band noise (its idle noise then lies well under the linear model), so the
+    measured idle noise lowers the floor; a reading far below even that is impossible.
+    """
+    names = ("idle_noise_dbfs", "idle_noise_dbfs_a", "idle_noise_dbfs_ccir")
+    out = {}
+    for w, name in zip(_WEIGHTINGS, names, strict=True):
+        have = [linear[w]] if linear is not None else []
+        v = metrics.get(name)
+        if v is not None and name not in invalid and math.isfinite(v):
+            have.append(float(v))
+        if have:
+            out[w] = min(have)
+    return out if len(out) == len(_WEIGHTINGS) else None
+
+
 def _assemble(results, tests, plan, profile):
-    """Merge the runs' partial results into metrics, curves and notes."""
-    metrics, curves, notes = {}, {}, []
+    """Merge the runs' partial results into metrics, curves, notes and invalid readings."""
+    metrics, curves, notes, invalid = {}, {}, [], {}
     sweep, overload, dc, lines = [], [], [], []
     stats = []
     msa = None
@@ -1019,17 +1201,20 @@ def _assemble(results, tests, plan, profile):
             if k.startswith("curve_"):
                 curves[k[6:]] = v
         notes.extend(part.get("notes", ()))
+        invalid.update(part.get("invalid", {}))
         sweep.extend(part.get("sweep", ()))
         overload.extend(part.get("overload", ()))
         dc.extend(part.get("dc", ()))
         stats.extend(part.get("stats", ()))
         if "silence_lines" in part:
-            lines.append(("silence", 0.0, part["silence_lines"]))
+            lines.append(("silence", 0.0, part["silence_lines"], part.get("silence_faults", "")))
         if "msa" in part:
             stab = part
             msa = part["msa"]
     msa_amp = msa if msa is not None else 1.0
     msa_db = _db(msa_amp)
+    linear = stab.get("noise_floor") if stab is not None else None
+    floor = _chain_noise_floor(linear, metrics, invalid)
 
     if stab is not None:
         metrics["max_stable_amplitude_dbfs"] = msa_db
@@ -1041,61 +1226,118 @@ def _assemble(results, tests, plan, profile):
                 np.maximum(np.abs(ntf.response(f / fm)), 1e-300)
             )
 
+    onset = None
+    if sweep or overload:
+        pts = sorted(sweep + overload, key=lambda p: p["level_dbfs"])
+        over = [p["level_dbfs"] for p in pts if p["overload_count"] > 0]
+        onset = over[0] if over else None
+        metrics["overload_onset_dbfs"] = onset
+
     if sweep:
         sweep.sort(key=lambda p: -p["level_dbfs"])
+        for p in sweep:
+            p["reason"] = _sweep_reason(p, onset, floor)
         by_level = {p["level_dbfs"]: p for p in sweep}
         for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
             if lv in by_level:
-                metrics[f"thd_n_db_at_{name}_dbfs"] = by_level[lv]["thd_n_db"]
-                metrics[f"thd_n_db_a_at_{name}_dbfs"] = by_level[lv]["thd_n_db_a"]
+                p = by_level[lv]
+                for key in ("thd_n_db", "thd_n_db_a"):
+                    metric = f"{key}_at_{name}_dbfs"
+                    metrics[metric] = p[key]
+                    if p["reason"]:
+                        invalid[metric] = p["reason"]
+
+        def shown(p, key):
+            # a curve never carries a number the battery calls invalid or impossible
+            v = p[key]
+            if v is None or (key.startswith("thd_n") and p["reason"]):
+                return np.nan
+            return np.nan if key == "tone_dbfs" and v < NUMERIC_FLOOR_DBFS else v
+
         curves["thd_n_vs_level"] = {
-            k: np.array([p[k] for p in sweep], dtype=float)
-            for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "thd_n_db_a", "overload_count")
+            k: np.array([shown(p, k) for p in sweep], dtype=float)
+            for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "thd_n_db_a")
         }
+        curves["thd_n_vs_level"]["overload_count"] = np.array(
+            [p["overload_count"] for p in sweep], dtype=float
+        )
+        curves["thd_n_vs_level"]["invalid_reason"] = np.array([p["reason"] for p in sweep])
         # a tone that does not come through (a loop stuck in a limit cycle or dead zone) has
         # no noise floor "under" it: it is reported as lost, not as a noise level
         lost = [p["level_dbfs"] for p in sweep if not _came_through(p)]
         metrics["tone_lost_at_dbfs"] = max(lost) if lost else None
-        floor = [
-            p["noise_dbfs_a"]
+        used = [
+            p
             for p in sweep
             if -90.0 <= p["level_dbfs"] <= 0.0
             and p["level_dbfs"] <= msa_db + 1e-9
-            and _came_through(p)
+            and not p["reason"]
+            and p.get("noise_clear_dbfs_a") is not None
         ]
-        metrics["noise_modulation_db"] = (max(floor) - min(floor)) if len(floor) >= 2 else None
+        clear = [p["noise_clear_dbfs_a"] for p in used]
+        metrics["noise_modulation_db"] = (max(clear) - min(clear)) if len(clear) >= 2 else None
+        if len(clear) < 2:
+            invalid["noise_modulation_db"] = (
+                f"only {len(clear)} valid sweep level(s) from 0 to -90 dBFS at or below the "
+                "maximum stable amplitude; a spread needs two"
+            )
         if lost:
             notes.append(
                 f"level sweep: the 997 Hz tone did not come through within {_LOST_DB:g} dB at "
                 + ", ".join(f"{v:g}" for v in sorted(lost, reverse=True))
                 + " dBFS (left out of the noise modulation)"
             )
+        bad = [p for p in sweep if p["reason"]]
+        if bad:
+            notes.append(
+                "level sweep: THD+N invalid at "
+                + ", ".join(f"{p['level_dbfs']:g}" for p in bad)
+                + f" dBFS (at {bad[0]['level_dbfs']:g} dBFS: {bad[0]['reason']})"
+            )
         curves["noise_vs_level"] = {
             "level_dbfs": np.array([p["level_dbfs"] for p in sweep]),
             "noise_dbfs_a": np.array([p["noise_dbfs_a"] for p in sweep]),
+            "noise_clear_dbfs_a": np.array(
+                [
+                    np.nan if p.get("noise_clear_dbfs_a") is None else p["noise_clear_dbfs_a"]
+                    for p in sweep
+                ]  # fmt: skip
+            ),
         }
         for p in sweep:
             if "lines" in p:
-                lines.append(("tone", p["level_dbfs"], p["lines"]))
+                # a lost tone leaves the idle-tone search under it honest; a run fault does not
+                lines.append(("tone", p["level_dbfs"], p["lines"], "; ".join(p["faults"])))
         notes.append(
             f"THD+N vs level: 997 Hz at {len(sweep)} levels, {plan.sweep_s:g} s each; noise "
-            "modulation over the levels from 0 to -90 dBFS at or below the maximum stable "
-            "amplitude, A-weighted"
+            "modulation: spread of the A-weighted noise read between the tone's harmonics "
+            "(tone and harmonics fitted out, bins near them left out), over the valid levels "
+            "from 0 to -90 dBFS at or below the maximum stable amplitude"
         )
-    if sweep or overload:
+
+    if overload:
+        # levels above the stable amplitude overload by design: their gross distortion is the
+        # point of this curve (it is no reading to grade); a tone that left no trace or an
+        # impossible value shows no number
+        def raw(p, k):
+            tone = p["tone_dbfs"]
+            gone = tone is None or not tone > NUMERIC_FLOOR_DBFS
+            if k == "tone_dbfs":
+                return np.nan if gone else tone
+            if k == "thd_n_db" and (gone or "impossible" in p.get("reason", "")):
+                return np.nan
+            return p[k]
+
         pts = sorted(sweep + overload, key=lambda p: p["level_dbfs"])
-        over = [p["level_dbfs"] for p in pts if p["overload_count"] > 0]
-        metrics["overload_onset_dbfs"] = over[0] if over else None
-        if overload:
-            curves["overload"] = {
-                k: np.array([p[k] for p in pts], dtype=float)
-                for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
-            }
+        curves["overload"] = {
+            k: np.array([raw(p, k) for p in pts], dtype=float)
+            for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
+        }
 
     if dc:
         dc.sort(key=lambda d: d[0])
-        for off, found in dc:
-            lines.append(("dc", off, found))
+        for off, found, faults in dc:
+            lines.append(("dc", off, found, faults))
         curves["idle_tone_map"] = {
             "dc_offset": np.array([d[0] for d in dc]),
             "line_dbfs": np.array([np.nan if d[1][0] is None else d[1][0] for d in dc]),
@@ -1116,6 +1358,16 @@ def _assemble(results, tests, plan, profile):
             f"probability of {plan.false_alarm:g}"
             + ("" if found else "; none found, so idle_tone_max_dbfs is the detection limit")
         )
+        spoilt = [entry for entry in lines if entry[3]]
+        if spoilt:
+            kind, key, _, why = spoilt[0]
+            where = {"silence": "silence", "dc": f"DC offset {key:g}", "tone": f"{key:g} dBFS tone"}
+            reason = (
+                f"{len(spoilt)} of {len(lines)} captures searched were not valid "
+                f"(first: {where[kind]}: {why})"
+            )
+            invalid["idle_tone_max_dbfs"] = reason
+            invalid["idle_tone_count"] = reason
 
     if stab is not None:
         peaks = [np.max(np.asarray(stab["msa_state_peak"], dtype=float), initial=0.0)]
@@ -1147,5 +1399,57 @@ def _assemble(results, tests, plan, profile):
             f"{', '.join(floored)}: the output was digitally silent (below the simulation's "
             f"numeric floor); reported as {NUMERIC_FLOOR_DBFS:g} dBFS"
         )
+    _impossible(metrics, invalid, floor)
+    if stab is not None and not msa_amp > 0.0:
+        why = "the loop has no stable amplitude: it overloads at every amplitude probed"
+        for k in metrics:
+            if k not in _UNSTABLE_STILL_VALID:
+                invalid.setdefault(k, why)
+    for k in invalid:
+        if k in metrics:
+            metrics[k] = None
     ordered = {k: plain_scalar(metrics[k], finite_only=False) for k in METRIC_UNITS if k in metrics}
-    return ordered, curves, notes
+    invalid = {k: invalid[k] for k in ordered if k in invalid}
+    return ordered, curves, notes, invalid
+
+
+#: Readings that describe the failure itself and stay valid when the loop has no stable
+#: amplitude: where the tone was lost, where the guard first acted, the counts.
+_UNSTABLE_STILL_VALID = (
+    "tone_lost_at_dbfs",
+    "overload_onset_dbfs",
+    "overload_count",
+    "pwm_dropped_pulses",
+    "pwm_stretched_pulses",
+)
+
+
+def _impossible(metrics, invalid, floor):
+    """Mark the noise readings the chain cannot produce as invalid.
+
+    Impossible: below the simulation's numeric floor, or more than ``_FLOOR_MARGIN_DB`` below
+    the loop's linear-model noise floor (for a dynamic range: that far above what it allows).
+    """
+    checks = [("out_of_band_noise_dbfs", None, "noise")]
+    checks += [
+        (f"dynamic_range_db{s}", w, "range")
+        for w, s in zip(_WEIGHTINGS, ("", "_a", "_ccir"), strict=True)
+    ]
+    for k, w, kind in checks:
+        v = metrics.get(k)
+        if v is None or k in invalid or not isinstance(v, (int, float)):
+            continue
+        if not math.isfinite(v):
+            invalid[k] = f"reading is {v}"
+            continue
+        noise = -v if kind == "range" else v
+        if noise < NUMERIC_FLOOR_DBFS and k not in _FLOORED_METRICS:
+            invalid[k] = (
+                f"impossible: {noise:.1f} dBFS of noise lies below the simulation's numeric "
+                f"floor ({NUMERIC_FLOOR_DBFS:g} dBFS)"
+            )
+        elif w is not None and floor is not None and noise < floor[w] - _FLOOR_MARGIN_DB:
+            invalid[k] = (
+                f"impossible: the noise ({noise:.1f} dBFS) lies more than {_FLOOR_MARGIN_DB:g} "
+                f"dB below the chain's own noise floor ({floor[w]:.1f} dBFS)"
+            )

@@ -2,10 +2,13 @@
 
 :func:`grade_metrics` compares one profile's battery readings with a spec sheet: for every
 target a pass or fail and a margin in the metric's unit, positive when the reading is better
-than the limit. :func:`grade_batch` runs the test battery on many profiles (in parallel
-processes), grades each, ranks them by their worst margin and keeps every finished battery in
-a cache keyed by (profile content digest, spec digest, tool version, battery options), so a
-repeated or interrupted batch resumes without recomputing.
+than the limit. A reading the battery called invalid (the loop overloaded, the tone was lost,
+the output clipped, the value is impossible) fails its target with the reason. :func:`grade_batch`
+runs the test battery on many profiles (in parallel processes), grades each, ranks them by
+their worst normalized margin (:func:`rank_grades`) and keeps every finished battery in a
+cache keyed by what was computed: (profile content digest, tool version, battery options).
+The spec sheet is applied afterwards, so a repeated or interrupted batch resumes without
+recomputing, and a changed limit re-grades from the cache.
 
 The battery is a parameter: any callable ``battery(profile, *, jobs, progress, seed,
 **options)`` returning an object with ``.metrics`` (dict) and ``.curves`` (dict of dicts of
@@ -35,7 +38,7 @@ from audiodsm.errors import ParameterError, ProfileError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.io import create_temp_file, remove_stale_temp_files
 from audiodsm.profile import load_profile, profile_digest
-from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target, spec_digest
+from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target
 
 __all__ = [
     "TargetGrade",
@@ -45,14 +48,19 @@ __all__ = [
     "default_cache_dir",
     "collect_profiles",
     "grade_metrics",
+    "normalized_margin",
     "rank_grades",
+    "plan_for_spec",
     "grade_batch",
 ]
 
 #: Tolerance when matching a target's tone level to a level of the THD+N sweep (dB).
 _LEVEL_MATCH_DB = 0.01
-#: Version of the cache file layout; part of every cache key.
-_CACHE_LAYOUT = 2  # 2: entries carry a checksum
+#: Version of the cache file layout; part of every cache key. (2: entries carry a checksum;
+#: 3: entries carry the battery's invalid readings and are no longer keyed by the spec sheet.)
+_CACHE_LAYOUT = 3
+#: Units whose margins are compared as they are (dB); see :func:`normalized_margin`.
+_LOG_UNITS = ("dB", "dBFS")
 
 
 @dataclass(frozen=True)
@@ -69,7 +77,8 @@ class TargetGrade:
         better than the limit. None when there is no reading.
     passed : bool
     reason : str
-        Why there is no reading (empty when there is one).
+        Why there is no reading (empty when there is one); ``"invalid: ..."`` when the
+        battery called the reading invalid.
     """
 
     target: Target
@@ -77,6 +86,16 @@ class TargetGrade:
     margin: float | None
     passed: bool
     reason: str = ""
+
+    @property
+    def valid(self) -> bool:
+        """True when there is a reading to grade (not missing, not invalid)."""
+        return self.value is not None
+
+    @property
+    def normalized_margin(self) -> float | None:
+        """The margin on the common scale used for ranking (:func:`normalized_margin`)."""
+        return normalized_margin(self.target, self.value)
 
 
 @dataclass(frozen=True)
@@ -105,6 +124,8 @@ class ProfileGrade:
         True when the battery result came from the cache.
     seconds : float
         Battery wall-clock time (of the original run when cached).
+    invalid : dict
+        Metric name -> why the battery called its reading invalid.
     """
 
     name: str
@@ -117,6 +138,7 @@ class ProfileGrade:
     failure: str = ""
     cached: bool = False
     seconds: float = 0.0
+    invalid: dict = field(default_factory=dict, repr=False)
 
     @property
     def passed(self) -> bool:
@@ -130,6 +152,18 @@ class ProfileGrade:
         if self.failure or any(m is None for m in margins):
             return -math.inf
         return min(margins)
+
+    @property
+    def ranking_margin(self) -> float | None:
+        """The smallest normalized margin (dB); ``-inf`` when any target has no reading.
+
+        None when no target carries a normalized margin (only count targets). See
+        :func:`normalized_margin`.
+        """
+        if self.failure or any(line.margin is None for line in self.lines):
+            return -math.inf
+        margins = [m for m in (line.normalized_margin for line in self.lines) if m is not None]
+        return min(margins) if margins else None
 
     @property
     def failed_count(self) -> int:
@@ -179,7 +213,7 @@ class GradeBatch:
 # ---------------------------------------------------------------------------------------------
 
 
-def _reading(target: Target, metrics: dict, curves: dict):
+def _reading(target: Target, metrics: dict, curves: dict, invalid: dict):
     """The value a target reads, or (None, reason)."""
     if target.metric in CONDITIONAL_METRICS:
         sweep = curves.get("thd_n_vs_level")
@@ -191,8 +225,13 @@ def _reading(target: Target, metrics: dict, curves: dict):
         if hit.size == 0:
             have = ", ".join(f"{v:g}" for v in levels)
             return None, f"level {target.at_level_dbfs:g} dBFS not in the sweep ({have})"
+        reasons = sweep.get("invalid_reason")
+        if reasons is not None and str(np.asarray(reasons)[hit[0]]):
+            return None, "invalid: " + str(np.asarray(reasons)[hit[0]])
         value = float(values[hit[0]])
     else:
+        if target.metric in invalid:
+            return None, "invalid: " + str(invalid[target.metric])
         if target.metric not in metrics:
             return None, "not measured by the battery"
         value = metrics[target.metric]
@@ -204,7 +243,7 @@ def _reading(target: Target, metrics: dict, curves: dict):
     return value, ""
 
 
-def grade_metrics(metrics: dict, curves: dict, spec: SpecSheet) -> tuple:
+def grade_metrics(metrics: dict, curves: dict, spec: SpecSheet, invalid=None) -> tuple:
     """Grade one profile's battery readings against a spec sheet.
 
     Parameters
@@ -212,17 +251,22 @@ def grade_metrics(metrics: dict, curves: dict, spec: SpecSheet) -> tuple:
     metrics : dict
         Metric name -> reading (None when the battery has none).
     curves : dict
-        The battery's curves; ``curves["thd_n_vs_level"]`` serves the conditional metrics.
+        The battery's curves; ``curves["thd_n_vs_level"]`` serves the conditional metrics
+        (its ``invalid_reason`` array, when present, marks invalid sweep points).
     spec : SpecSheet
+    invalid : dict, optional
+        Metric name -> why the battery called the reading invalid.
 
     Returns
     -------
     tuple of TargetGrade
-        One per target, in the sheet's order. A target without a reading fails.
+        One per target, in the sheet's order. A target without a valid reading fails, with
+        the reason (``"invalid: loop overloaded from -12 dBFS"``).
     """
+    invalid = dict(invalid or {})
     out = []
     for target in spec.targets:
-        value, reason = _reading(target, metrics, curves)
+        value, reason = _reading(target, metrics, curves, invalid)
         if value is None:
             out.append(TargetGrade(target, None, None, False, reason))
             continue
@@ -235,13 +279,52 @@ def _failed_lines(spec: SpecSheet, reason: str) -> tuple:
     return tuple(TargetGrade(t, None, None, False, reason) for t in spec.targets)
 
 
-def rank_grades(grades: Sequence[ProfileGrade]) -> tuple:
-    """Order profiles best first: by worst margin (descending), then fewer failed targets, name.
+def normalized_margin(target: Target, value) -> float | None:
+    """A target's margin on the one scale the ranking compares: dB.
 
-    Margins of different targets are in their own units (dB, dBFS, counts); the worst margin
-    is the plain minimum of those numbers, as the spec sheet states them.
+    The rule:
+
+    * dB and dBFS targets: the margin as it is (a level or ratio margin already is dB);
+    * Hz and FS targets: the ratio of limit and reading in dB, ``20 log10(limit / value)``
+      for ``at_most`` and ``20 log10(value / limit)`` for ``at_least`` (a reading of 0 under
+      an upper limit: ``+inf``); a limit of 0 or below gives no normalized margin;
+    * count targets (overloads, dropped pulses): pass or fail only, no normalized margin. A
+      count limit of 0 would otherwise pin every passing profile's worst margin at 0.
+
+    Returns
+    -------
+    float or None
+        None when there is no reading or the target carries no normalized margin.
     """
-    return tuple(sorted(grades, key=lambda g: (-g.worst_margin, g.failed_count, g.name)))
+    if value is None:
+        return None
+    value = float(value)
+    unit = target.unit
+    if unit in _LOG_UNITS:
+        return target.margin(value)
+    if unit == "count" or target.limit <= 0.0:
+        return None
+    if value <= 0.0:
+        return math.inf if target.bound == "at_most" else -math.inf
+    ratio = target.limit / value if target.bound == "at_most" else value / target.limit
+    return 20.0 * math.log10(ratio)
+
+
+def rank_grades(grades: Sequence[ProfileGrade]) -> tuple:
+    """Order profiles best first.
+
+    Passing profiles come first, then the rest; within each group by the worst normalized
+    margin (:attr:`ProfileGrade.ranking_margin`, descending; a profile whose targets are all
+    counts ranks as 0 dB), then by fewer failed targets, then by name. Normalizing
+    (:func:`normalized_margin`) puts every margin in dB, and leaves out the count targets
+    that would pin every passing profile's worst margin at exactly 0, so ties are real ties.
+    """
+
+    def key(g):
+        m = g.ranking_margin
+        return (not g.passed, -(0.0 if m is None else m), g.failed_count, g.name)
+
+    return tuple(sorted(grades, key=key))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -309,7 +392,10 @@ def default_cache_dir() -> Path:
 
 
 class GradeCache:
-    """Battery results on disk, one file per (profile, spec, tool version, options) key.
+    """Battery results on disk, one file per (profile, tool version, options) key.
+
+    The key holds what the battery computed from, and nothing else: the spec sheet is
+    applied to a loaded entry afterwards, so changing a limit re-grades from the cache.
 
     Each entry is a NumPy ``.npz`` file (no pickled objects): the curves as arrays named
     ``curve/<curve>/<field>``, a JSON text ``meta`` with the metrics, notes and timing, and a
@@ -346,9 +432,9 @@ class GradeCache:
         return os.access(self.directory, os.W_OK)
 
     @staticmethod
-    def key(profile_hash: str, spec_hash: str, version: str, options: str = "") -> str:
+    def key(profile_hash: str, version: str, options: str = "") -> str:
         """The entry name for one combination (64 hex digits)."""
-        text = json.dumps([_CACHE_LAYOUT, profile_hash, spec_hash, version, options])
+        text = json.dumps([_CACHE_LAYOUT, profile_hash, version, options])
         return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
     def path(self, key: str) -> Path:
@@ -356,7 +442,7 @@ class GradeCache:
         return self.directory / f"{key}.npz"
 
     def load(self, key: str):
-        """The stored entry as ``{"metrics", "curves", "notes", "seconds"}``, or None.
+        """The stored entry (see :meth:`load_checked`), or None.
 
         None both when there is no entry and when it is damaged (see :meth:`load_checked`).
         """
@@ -368,7 +454,8 @@ class GradeCache:
         Returns
         -------
         entry : dict or None
-            ``{"metrics", "curves", "notes", "seconds"}``; None when missing or damaged.
+            ``{"metrics", "curves", "notes", "seconds", "invalid"}``; None when missing or
+            damaged.
         problem : str
             Empty when the entry is fine or missing; otherwise plain words for the damage.
         """
@@ -423,6 +510,7 @@ class GradeCache:
             "metrics": {k: plain_scalar(v, repr_other=True) for k, v in entry["metrics"].items()},
             "notes": [str(n) for n in entry["notes"]],
             "seconds": float(entry["seconds"]),
+            "invalid": {str(k): str(v) for k, v in entry.get("invalid", {}).items()},
         }
         meta_text = json.dumps(meta)
         buf = io.BytesIO()
@@ -494,15 +582,26 @@ def _entry_from_arrays(arrays: dict) -> dict:
         raise _DamagedEntry("field 'seconds' is not a number")
     if not (math.isfinite(seconds) and seconds >= 0):
         raise _DamagedEntry(f"field 'seconds' is {seconds!r}")
+    invalid = meta.get("invalid", {})
+    if not isinstance(invalid, dict) or not all(
+        isinstance(k, str) and isinstance(v, str) for k, v in invalid.items()
+    ):
+        raise _DamagedEntry("field 'invalid' is not a table of texts")
     curves = {}
     for name, a in curves_raw.items():
         parts = name.split("/", 2)
         if len(parts) != 3 or not parts[1] or not parts[2]:
             raise _DamagedEntry(f"curve field {name!r} is not named curve/<curve>/<field>")
-        if a.dtype.kind not in "biuf":
-            raise _DamagedEntry(f"curve field {name!r} does not hold numbers")
+        if a.dtype.kind not in "biufU":  # numbers, or texts (the reasons of invalid points)
+            raise _DamagedEntry(f"curve field {name!r} does not hold numbers or texts")
         curves.setdefault(parts[1], {})[parts[2]] = a
-    return {"metrics": metrics, "curves": curves, "notes": tuple(notes), "seconds": float(seconds)}
+    return {
+        "metrics": metrics,
+        "curves": curves,
+        "notes": tuple(notes),
+        "seconds": float(seconds),
+        "invalid": dict(invalid),
+    }
 
 
 # ---------------------------------------------------------------------------------------------
@@ -544,17 +643,59 @@ def _run_one(battery, profile, index, jobs, seed, options, report=None):
         metrics = dict(result.metrics)
         curves = {k: dict(v) if isinstance(v, dict) else v for k, v in result.curves.items()}
         notes = tuple(getattr(result, "notes", ()))
+        invalid = dict(getattr(result, "invalid", None) or {})
     except Exception as exc:  # a crash fails this profile only
         text = str(exc).splitlines()[0] if str(exc) else ""
         return {"failure": f"battery crashed: {type(exc).__name__}: {text}".rstrip(": ")}
     seconds = float(getattr(result, "seconds", time.perf_counter() - start))
-    return {"metrics": metrics, "curves": curves, "notes": notes, "seconds": seconds}
+    return {
+        "metrics": metrics,
+        "curves": curves,
+        "notes": notes,
+        "seconds": seconds,
+        "invalid": invalid,
+    }
 
 
 def _default_battery():
     from audiodsm.evaluate.battery import run_battery
 
     return run_battery
+
+
+def plan_for_spec(plan, spec: SpecSheet):
+    """The battery plan with every tone level a spec target reads added to its sweep.
+
+    A target such as ``thd_n_db`` at -37.5 dBFS is measured at -37.5 dBFS rather than
+    failing after the run for want of that level. Levels the sweep has already leave the
+    plan unchanged (and so its cache key).
+
+    Parameters
+    ----------
+    plan : BatteryPlan or None
+        None means the default plan.
+    spec : SpecSheet
+
+    Returns
+    -------
+    BatteryPlan
+    """
+    from dataclasses import replace
+
+    from audiodsm.evaluate.battery import BatteryPlan
+
+    plan = plan if plan is not None else BatteryPlan()
+    have = [float(v) for v in plan.sweep_levels_dbfs]
+    extra = []
+    for t in spec.targets:
+        lv = t.at_level_dbfs
+        if lv is None or any(abs(lv - v) <= _LEVEL_MATCH_DB for v in have + extra):
+            continue
+        extra.append(float(lv))
+    if not extra:
+        return plan
+    levels = tuple(sorted(have + extra, reverse=True))
+    return replace(plan, sweep_levels_dbfs=levels)
 
 
 def grade_batch(
@@ -593,7 +734,9 @@ def grade_batch(
         Passed to the battery.
     battery_options : dict, optional, keyword-only
         Extra keyword arguments of the battery (e.g. a shorter plan); part of the cache key
-        through their ``repr``.
+        through their ``repr``. With the default battery, a THD+N target at a tone level
+        the plan's sweep lacks adds that level to the sweep (:func:`plan_for_spec`), so the
+        battery measures at it.
     progress : callable, optional, keyword-only
         Called as ``progress(fraction_done, label)`` as battery runs finish.
 
@@ -619,17 +762,17 @@ def grade_batch(
         raise ParameterError("jobs", jobs, "an integer from 1 to 256")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ParameterError("seed", seed, "a non-negative integer")
+    options = dict(battery_options or {})
     if battery is None:
         battery = _default_battery()
-    options = dict(battery_options or {})
+        options["plan"] = plan_for_spec(options.get("plan"), spec)
     option_text = repr(sorted(options.items()))
-    spec_hash = spec_digest(spec)
     cache = GradeCache(cache_dir) if cache_dir is not None else None
 
     entries = list(profiles)
     names = _unique_names(entries)
     digests = [profile_digest(prof) for _, prof in entries]
-    keys = [GradeCache.key(d, spec_hash, __version__, option_text) for d in digests]
+    keys = [GradeCache.key(d, __version__, option_text) for d in digests]
     outcomes: dict[int, dict] = {}
     cached: set[int] = set()
     notices: list[str] = []
@@ -718,12 +861,13 @@ def grade_batch(
                 name=names[i],
                 source=str(path),
                 digest=digests[i],
-                lines=grade_metrics(out["metrics"], out["curves"], spec),
+                lines=grade_metrics(out["metrics"], out["curves"], spec, out.get("invalid")),
                 metrics=out["metrics"],
                 curves=out["curves"],
                 notes=tuple(out["notes"]),
                 cached=i in cached,
                 seconds=out["seconds"],
+                invalid=dict(out.get("invalid", {})),
             )
         )
     unfinished = tuple(str(entries[i][0]) for i in range(len(entries)) if i not in outcomes)

@@ -71,6 +71,7 @@ CSV_COLUMNS = (
     "value",
     "margin",
     "passed",
+    "valid",
     "reason",
 )
 
@@ -87,11 +88,14 @@ def batch_to_dict(batch) -> dict:
     dict
         ``{"tool_version", "spec": {...}, "profiles": [...], "interrupted", "unfinished"}``;
         each profile carries ``rank``, ``name``, ``source``, ``digest``, ``passed``,
-        ``worst_margin``, ``failure``, ``cached``, ``seconds``, ``targets`` (one dict per
-        target: metric, at_level_dbfs, bound, limit, unit, value, margin, passed, reason,
-        note), ``metrics`` and ``notes``.
+        ``worst_margin`` (plain minimum, in mixed units), ``ranking_margin_db`` (the worst
+        normalized margin the ranking uses), ``failure``, ``cached``, ``seconds``,
+        ``targets`` (one dict per target: metric, at_level_dbfs, bound, limit, unit, value,
+        margin, passed, valid, reason, note), ``metrics`` (an invalid reading is null),
+        ``validity`` (metric -> ``{"valid": bool, "reason": str}``) and ``notes``.
     """
     from audiodsm import __version__
+    from audiodsm.evaluate.battery import validity_table
 
     spec = batch.spec
     profiles = []
@@ -109,6 +113,7 @@ def batch_to_dict(batch) -> dict:
                     "value": plain_scalar(line.value),
                     "margin": plain_scalar(line.margin),
                     "passed": bool(line.passed),
+                    "valid": bool(line.valid),
                     "reason": line.reason,
                     "note": t.note,
                 }
@@ -121,12 +126,14 @@ def batch_to_dict(batch) -> dict:
                 "digest": g.digest,
                 "passed": g.passed,
                 "worst_margin": plain_scalar(g.worst_margin),
+                "ranking_margin_db": plain_scalar(g.ranking_margin),
                 "failed_targets": g.failed_count,
                 "failure": g.failure,
                 "cached": g.cached,
                 "seconds": plain_scalar(g.seconds),
                 "targets": targets,
                 "metrics": {k: plain_scalar(v) for k, v in g.metrics.items()},
+                "validity": validity_table(g.metrics, g.invalid),
                 "notes": list(g.notes),
             }
         )
@@ -175,6 +182,7 @@ def batch_to_csv(batch) -> str:
                     "" if t["value"] is None else repr(t["value"]),
                     "" if t["margin"] is None else repr(t["margin"]),
                     "pass" if t["passed"] else "fail",
+                    "yes" if t["valid"] else "no",
                     t["reason"],
                 ]
             )

@@ -58,8 +58,13 @@ def _cell(value, unit: str) -> str:
     return str(value)
 
 
-def metrics_table(names: list[str], metric_rows: list[dict]) -> str:
+def metrics_table(
+    names: list[str], metric_rows: list[dict], invalid_rows=None, note_rows=None
+) -> str:
     """An aligned text table: one row per metric (with its unit), one column per profile.
+
+    An invalid reading shows as ``invalid [n]``, never as a number; the numbered reasons
+    follow the table (one number per distinct reason), then each profile's battery notes.
 
     Parameters
     ----------
@@ -67,6 +72,10 @@ def metrics_table(names: list[str], metric_rows: list[dict]) -> str:
         Column titles (profile names).
     metric_rows : list of dict
         One metrics dict per profile, in the order of ``names``.
+    invalid_rows : list of dict, optional
+        One ``{metric: reason}`` dict per profile (:attr:`BatteryResult.invalid`).
+    note_rows : list of sequence of str, optional
+        One list of battery notes per profile.
 
     Returns
     -------
@@ -74,13 +83,37 @@ def metrics_table(names: list[str], metric_rows: list[dict]) -> str:
     """
     from audiodsm.evaluate.battery import METRIC_UNITS
 
+    invalid_rows = invalid_rows or [{} for _ in metric_rows]
     keys = [k for k in METRIC_UNITS if any(k in m for m in metric_rows)]
     header = ["metric", "unit", *names]
     rows = [header]
+    reasons: dict[str, int] = {}
+
+    def cell(m, bad, k, unit):
+        if k in bad:
+            n = reasons.setdefault(str(bad[k]), len(reasons) + 1)
+            return f"invalid [{n}]"
+        return _cell(m.get(k), unit)
+
     for k in keys:
         unit = METRIC_UNITS[k][1]
-        rows.append([k, unit or "-", *(_cell(m.get(k), unit) for m in metric_rows)])
+        rows.append(
+            [
+                k,
+                unit or "-",
+                *(cell(m, bad, k, unit) for m, bad in zip(metric_rows, invalid_rows, strict=True)),
+            ]
+        )
     lines = aligned_lines(rows, right=range(2, len(header)), rule=True)
+    if reasons:
+        lines.append("")
+        lines.append("invalid readings:")
+        lines.extend(f"  [{n}] {text}" for text, n in reasons.items())
+    for name, notes in zip(names, note_rows or [], strict=False):
+        if notes:
+            lines.append("")
+            lines.append(f"notes on {name}:")
+            lines.extend(f"  - {n}" for n in notes)
     return "\n".join(lines)
 
 
@@ -89,7 +122,11 @@ def _fmt(value, spec="+.2f"):
 
 
 def summary_table(batch) -> list:
-    """One line per profile: rank, verdict, worst margin, failed targets, source.
+    """One line per profile: rank, verdict, worst normalized margin, failed targets, source.
+
+    The margin column is :attr:`ProfileGrade.ranking_margin` (dB, see
+    :func:`audiodsm.evaluate.grade.normalized_margin`): "none" when a target has no valid
+    reading, "n/a" when every target is a count.
 
     Parameters
     ----------
@@ -100,15 +137,15 @@ def summary_table(batch) -> list:
     -------
     list of str
     """
-    rows = [("rank", "profile", "verdict", "worst margin", "failed", "from")]
+    rows = [("rank", "profile", "verdict", "worst margin (dB)", "failed", "from")]
     for rank, g in enumerate(batch.grades, 1):
-        worst = g.worst_margin
+        worst = g.ranking_margin
         rows.append(
             (
                 str(rank),
                 g.name,
                 "PASS" if g.passed else "FAIL",
-                "none" if worst == float("-inf") else f"{worst:+.2f}",
+                "n/a" if worst is None else ("none" if worst == float("-inf") else f"{worst:+.2f}"),
                 f"{g.failed_count}/{len(g.lines)}",
                 "cache" if g.cached else ("crashed" if g.failure else "run"),
             )
@@ -138,7 +175,9 @@ def detail_table(batch) -> list:
                     g.name if k == 0 else "",
                     t.label,
                     t.requirement,
-                    _fmt(line.value, ".2f"),
+                    _fmt(line.value, ".2f")
+                    if line.valid or not line.reason.startswith("invalid")
+                    else "invalid",
                     _fmt(line.margin),
                     t.unit,
                     "pass"

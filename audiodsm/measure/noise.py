@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 from audiodsm.errors import ParameterError
 from audiodsm.measure.residual import (
     _check_weighting,
@@ -15,7 +17,7 @@ from audiodsm.measure.residual import (
     start_residual_meter,
     update_residual_meter,
 )
-from audiodsm.measure.spectrum import _as_signal, _check_rate, averaged_spectrum
+from audiodsm.measure.spectrum import _as_signal, _check_rate, averaged_spectrum, power_to_dbfs
 from audiodsm.measure.tone import thd_plus_noise
 
 __all__ = [
@@ -25,6 +27,8 @@ __all__ = [
     "idle_channel_noise",
     "BandPower",
     "out_of_band_power_dbfs",
+    "ClearBandNoise",
+    "noise_clear_of_harmonics",
     "NoiseModulation",
     "noise_modulation",
 ]
@@ -209,15 +213,147 @@ def out_of_band_power_dbfs(x, *, rate_hz, lower_hz=20000.0, upper_hz=None, resol
 
 
 @dataclass(frozen=True)
+class ClearBandNoise:
+    """Noise read in the bands clear of a tone and its harmonics.
+
+    Attributes
+    ----------
+    noise_dbfs : float
+        Weighted noise power of the bins kept, scaled up by the weighted width of the whole
+        band over that of the bins kept: the band's noise if its density between the
+        harmonics holds under them too. The scale depends only on the tone frequency, the
+        band and the resolution, so it cancels from a spread over levels of the same tone.
+    kept_fraction : float
+        Weighted width of the bins kept over that of the whole band (0 .. 1).
+    tone_dbfs : float
+        Level of the tone that was fitted and removed.
+    frequency_hz : float
+    weighting : str
+    resolution_hz : float
+        Bin spacing of the averaged spectrum.
+    guard_hz : float
+        Bins within this distance of the tone or a harmonic were left out.
+    """
+
+    noise_dbfs: float
+    kept_fraction: float
+    tone_dbfs: float
+    frequency_hz: float
+    weighting: str
+    resolution_hz: float
+    guard_hz: float
+
+
+def noise_clear_of_harmonics(
+    x,
+    *,
+    rate_hz,
+    frequency_hz,
+    weighting="a",
+    lower_hz=20.0,
+    upper_hz=20000.0,
+    settle_s=0.0,
+    guard_hz=None,
+):
+    """The noise of a tone capture, read only where the tone and its harmonics are not.
+
+    The tone and every harmonic below half the rate are removed by one joint least-squares
+    fit at their exact frequencies (DC too); the residual's averaged spectrum (Welch, 4-term
+    Blackman-Harris, 8 averages) is then summed, weighted, over the bins of the band that lie
+    farther than ``guard_hz`` from the tone and from every harmonic. So distortion, however
+    strong, does not count as noise, and the reading follows the noise alone.
+
+    Parameters
+    ----------
+    x : array_like
+        One channel holding one tone.
+    rate_hz : float
+    frequency_hz : float
+        The tone's frequency (known exactly, as for a stimulus).
+    weighting : {"unweighted", "a", "ccir"}
+    lower_hz, upper_hz : float
+        The band.
+    settle_s : float
+        Leading time left out.
+    guard_hz : float, optional
+        Half-width of the gap left around the tone and each harmonic. Default: the window's
+        main lobe plus two bins.
+
+    Returns
+    -------
+    ClearBandNoise
+
+    Raises
+    ------
+    ParameterError
+        A bad argument, too short a capture, or a guard that leaves no bin in the band.
+
+    References
+    ----------
+    .. [1] P. D. Welch, IEEE Trans. Audio Electroacoust. AU-15(2), 1967 (averaged spectrum).
+    .. [2] F. J. Harris, Proc. IEEE 66(1), 1978 (Blackman-Harris window, main-lobe width).
+    """
+    from audiodsm.measure.sine_fit import _fit_lines
+    from audiodsm.measure.weighting import weighting_power_gain
+
+    arr = _as_signal(x)
+    rate = _check_rate(rate_hz)
+    kind = _check_weighting(weighting)
+    f0 = float(frequency_hz)
+    if not (0.0 < f0 < rate / 2):
+        raise ParameterError("frequency_hz", frequency_hz, f"a frequency in (0, {rate / 2})")
+    lo, hi = float(lower_hz), float(upper_hz)
+    if not (0.0 <= lo < hi <= rate / 2):
+        raise ParameterError(
+            "lower_hz, upper_hz", (lower_hz, upper_hz), f"0 <= lower < upper <= {rate / 2}"
+        )
+    skip = int(round(float(settle_s) * rate))
+    if not (0 <= skip < len(arr)):
+        raise ParameterError("settle_s", settle_s, "a settling time shorter than the capture")
+    seg = np.ascontiguousarray(arr[skip:], dtype=float)
+    harmonics = f0 * np.arange(1, int((rate / 2) // f0) + 1)
+    harmonics = harmonics[harmonics < rate / 2 * (1 - 1e-9)]
+    amps, dc = _fit_lines(seg, harmonics, rate)
+    t = np.arange(len(seg))
+    model = np.full(len(seg), dc)
+    for f, c in zip(harmonics, amps, strict=True):
+        w = 2.0 * np.pi * f / rate * t
+        model += c.real * np.cos(w) - c.imag * np.sin(w)
+    residual = seg - model
+    spec = averaged_spectrum(residual, rate_hz=rate)
+    guard = (spec.main_lobe_bins + 2) * spec.resolution_hz if guard_hz is None else float(guard_hz)
+    freq = spec.freq_hz
+    in_band = (freq >= lo) & (freq <= hi)
+    near = np.min(np.abs(freq[:, None] - harmonics[None, :]), axis=1) <= guard
+    kept = in_band & ~near
+    gain = weighting_power_gain(freq, kind)
+    width_band = float(np.sum(gain[in_band]))
+    width_kept = float(np.sum(gain[kept]))
+    if width_kept <= 0.0:
+        raise ParameterError("guard_hz", guard, "a guard that leaves bins between the harmonics")
+    power = float(np.sum(spec.power[kept] * gain[kept])) * width_band / width_kept
+    return ClearBandNoise(
+        noise_dbfs=float(power_to_dbfs(power)),
+        kept_fraction=width_kept / width_band,
+        tone_dbfs=float(power_to_dbfs(abs(amps[0]) ** 2 / 2.0)),
+        frequency_hz=f0,
+        weighting=kind,
+        resolution_hz=float(spec.resolution_hz),
+        guard_hz=float(guard),
+    )
+
+
+@dataclass(frozen=True)
 class NoiseModulation:
-    """Noise floor against tone level.
+    """Noise clear of the tone and its harmonics, against tone level.
 
     Attributes
     ----------
     tone_dbfs : tuple of float
         Fitted tone level of each capture.
     noise_dbfs : tuple of float
-        Band-limited, weighted noise with the fundamental removed, per capture.
+        Weighted noise in the bands clear of the tone and its harmonics, per capture
+        (:func:`noise_clear_of_harmonics`).
     spread_db : float
         ``max(noise_dbfs) - min(noise_dbfs)``.
     weighting : str
@@ -237,15 +373,19 @@ def noise_modulation(
     frequency_hz=None,
     upper_hz=20000.0,
     lower_hz=20.0,
-    lead_s=1.0,
-    segment_s=1.0,
     settle_s=0.1,
+    guard_hz=None,
 ):
-    """Noise modulation: the weighted noise floor, fundamental removed, across tone levels.
+    """Noise modulation: how far the noise between a tone's harmonics moves with its level.
 
     Each capture holds the same tone at a different level (for example 0 to -90 dBFS in
-    10 dB steps). Its noise is read as by :func:`thd_plus_noise` (residual after a sine fit,
-    band-limited and weighted); the spread of those noise levels is the result.
+    10 dB steps). In each, the noise is read only in the bands clear of the tone and its
+    harmonics (:func:`noise_clear_of_harmonics`), so a distortion that grows with level does
+    not pass for noise; the spread (largest minus smallest) of those readings is the noise
+    modulation. No standard defines the figure; this follows the common practice of reading
+    the noise floor beside the tone over a range of levels and quoting how much it moves
+    (Lipshitz, Wannamaker & Vanderkooy 1992 show what it measures: signal-dependent error
+    power, which TPDF dither removes).
 
     Parameters
     ----------
@@ -253,9 +393,14 @@ def noise_modulation(
     rate_hz : float
     weighting : {"unweighted", "a", "ccir"}
     frequency_hz : float, optional
-        The tone, when known exactly; otherwise fitted on each capture.
-    upper_hz, lower_hz, lead_s, segment_s, settle_s
-        As in :func:`thd_plus_noise`.
+        The tone, when known exactly; otherwise estimated by a 4-parameter sine fit on the
+        first capture and used for all.
+    upper_hz, lower_hz : float
+        The band.
+    settle_s : float
+        Leading time left out of each capture.
+    guard_hz : float, optional
+        See :func:`noise_clear_of_harmonics`.
 
     Returns
     -------
@@ -267,25 +412,32 @@ def noise_modulation(
        theoretical survey", J. Audio Eng. Soc. 40(5), 1992 (noise modulation and its
        removal by TPDF dither).
     """
+    from audiodsm.measure.sine_fit import fit_sine
+
     caps = list(captures)
     if not caps:
         raise ParameterError("captures", "no captures", "one capture per tone level")
+    rate = _check_rate(rate_hz)
+    if frequency_hz is None:
+        first = _as_signal(caps[0], "captures[0]")
+        skip = int(round(float(settle_s) * rate))
+        frequency_hz = fit_sine(first[skip:], rate_hz=rate).frequency_hz
     tones, noise = [], []
+    kind = _check_weighting(weighting)
     for i, cap in enumerate(caps):
         try:
-            r = thd_plus_noise(
+            r = noise_clear_of_harmonics(
                 cap,
-                rate_hz=rate_hz,
-                weighting=weighting,
-                upper_hz=upper_hz,
-                lower_hz=lower_hz,
+                rate_hz=rate,
                 frequency_hz=frequency_hz,
-                lead_s=lead_s,
-                segment_s=segment_s,
+                weighting=kind,
+                lower_hz=lower_hz,
+                upper_hz=upper_hz,
                 settle_s=settle_s,
+                guard_hz=guard_hz,
             )
         except ParameterError as exc:
             raise ParameterError(f"captures[{i}]", exc.value, exc.expected) from None
-        tones.append(r.fundamental_dbfs)
+        tones.append(r.tone_dbfs)
         noise.append(r.noise_dbfs)
-    return NoiseModulation(tuple(tones), tuple(noise), max(noise) - min(noise), r.weighting)
+    return NoiseModulation(tuple(tones), tuple(noise), max(noise) - min(noise), kind)
