@@ -108,6 +108,12 @@ def loop_any_structure(
         True: zero all states on overload; False: clip them.
     trace : float64 (n, order) or (0, order)
         When it has rows, the states after each sample are written to it.
+
+    Returns
+    -------
+    int
+        Index of the first non-finite input sample, or -1 (the caller raises; the loop has
+        run on, its guard acting there, since a non-finite sample always trips it).
     """
     order = state.shape[0]
     last = order - 1
@@ -118,6 +124,7 @@ def loop_any_structure(
     step = 2.0 / top
     counter = rng[0]
     overloads = counts[0]
+    bad = -1
     x = state.copy()
     for t in range(u.shape[0]):
         ut = u[t]
@@ -165,6 +172,9 @@ def loop_any_structure(
             ok = ok and abs(x[i]) <= state_bound
         if not ok:
             overloads += 1
+            # a non-finite input sample always trips the guard (b[0] * u[t] reaches x[0])
+            if bad < 0 and not math.isfinite(ut):
+                bad = t
             for i in range(order):
                 x[i] = 0.0 if reset else _clamp(x[i], state_bound)
         for i in range(order):
@@ -174,6 +184,7 @@ def loop_any_structure(
     state[:] = x
     rng[0] = counter
     counts[0] = overloads
+    return bad
 
 
 # The specialised loops. Each keeps every state in a local scalar (a loop over a state array
@@ -188,6 +199,10 @@ def loop_any_structure(
 
 STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
 
+#: samples per block of a specialised loop (see loop_kernel_source): small enough that a block
+#: run again with the guard costs little, large enough that the per-block work does not show
+LOOP_BLOCK = 1024
+
 
 def loop_kernel_name(structure, order, lossless, unit_chain, pairs):
     """Name of the specialised kernel for these properties."""
@@ -200,6 +215,15 @@ def loop_kernel_name(structure, order, lossless, unit_chain, pairs):
 
 def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     """Python source of one specialised loop kernel (see loop_kernel).
+
+    The kernel runs its samples in blocks of ``LOOP_BLOCK``. Each block first runs without
+    the guard, keeping each state's largest magnitude over the block (and the quantizer
+    input's, where it is not a state). When those stay within the bounds and the states are
+    finite at the end (a non-finite value never leaves the chain: every update adds the
+    state's own value), the guard would not have acted on any sample of the block, and the
+    block stands. Otherwise the block is run again from its saved start with the guard on
+    every sample, exactly as before. Either way the output is the same, bit for bit; the
+    guard's comparisons just leave the per-sample work.
 
     Parameters
     ----------
@@ -249,11 +273,28 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
         if code == 1:
             add(f"    c{i} = coef[5, {i}]")
     add("    b0 = coef[4, 0]")
+    # a * v for v = copysign(1, w) is a with its sign flipped when w's sign bit is set, which
+    # for a >= 0 is copysign(a, w): exact, and a sign-bit operation instead of a multiply
+    # on the loop's critical path (limit.c's flip)
+    signs = " and ".join(f"(a{i} >= 0.0)" for i in range(n) if has_a(i))
+    add(f"    flip = {signs}")
     for i in range(n):
         add(f"    x{i} = state[{i}]")
         add(f"    p{i} = peaks[{i}]")
     add("    counter = rng[0]")
     add("    overloads = counts[0]")
+    add("    bad = -1")
+    add("    total = u.shape[0]")
+
+    def quantizer_input():
+        if code == 0:
+            return f"x{n - 1}"
+        if code == 1:
+            y = "0.0"
+            for i in range(n):
+                y = f"({y} + c{i} * x{i})"
+            return y
+        return f"u[t] + x{n - 1}"
 
     def base(i):
         own = f"x{i}" if lossless else f"d{i} * x{i}"
@@ -263,80 +304,127 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
             prev = f"x{i - 1}" if unit_chain else f"k{i} * x{i - 1}"
         return f"({own} + {prev})"
 
-    def body(single_bit, dithered):
-        ind = "            "
-        if code == 0:
-            y = f"x{n - 1}"
-        elif code == 1:
-            y = "0.0"
-            for i in range(n):
-                y = f"({y} + c{i} * x{i})"
-        else:
-            y = f"u[t] + x{n - 1}"
-        body_lines = [f"{ind}y = {y}"]
-        if dithered:
-            body_lines += [
-                f"{ind}counter += _GOLDEN",
-                f"{ind}r1 = _unit_from_counter(counter)",
-                f"{ind}counter += _GOLDEN",
-                f"{ind}r2 = _unit_from_counter(counter)",
-                f"{ind}w = y + dither_scale * (r1 - r2)",
-            ]
-        else:
-            body_lines.append(f"{ind}w = y")
+    def update(ind, single_bit, flipped):
+        """The quantizer and the state update, as ``loop_any_structure`` does them."""
+        out = []
         if single_bit:
-            body_lines += [f"{ind}v = math.copysign(1.0, w)", f"{ind}out[t] = v"]
+            out += [f"{ind}v = math.copysign(1.0, w)", f"{ind}out[t] = v"]
         else:
-            body_lines += [
+            out += [
                 f"{ind}q = np.floor(w * half + offset)",
                 f"{ind}q = min(max(q, 0.0), top)",
                 f"{ind}v = q * step - 1.0",
                 f"{ind}out[t] = v",
             ]
         if code == 2:
-            body_lines.append(f"{ind}f = x{n - 1} + (v - y)")
+            out.append(f"{ind}f = x{n - 1} + (v - y)")
         for i in range(n - 1, -1, -1):
             expr = base(i)
             if has_a(i):
                 if code == 2:
                     expr = f"{expr} - a{i} * f"
+                elif single_bit and flipped:
+                    expr = f"{expr} - math.copysign(a{i}, w)"
                 elif single_bit:
                     expr = f"{expr} - a{i} * v"
                 else:
                     expr = f"({expr} + a{i}) - q * s{i}"
             if has_g(i):
                 expr = f"({expr}) - g{i} * n{i + 1}"
-            body_lines.append(f"{ind}n{i} = {expr}")
-        body_lines.append(f"{ind}{xs} = {ns}")
+            out.append(f"{ind}n{i} = {expr}")
+        out.append(f"{ind}{xs} = {ns}")
+        return out
+
+    def dither(ind):
+        return [
+            f"{ind}counter += _GOLDEN",
+            f"{ind}r1 = _unit_from_counter(counter)",
+            f"{ind}counter += _GOLDEN",
+            f"{ind}r2 = _unit_from_counter(counter)",
+            f"{ind}w = y + dither_scale * (r1 - r2)",
+        ]
+
+    def fast_loop(ind, single_bit, dithered, flipped):
+        """One block without the guard: block peaks ``m*`` (and ``my``, the quantizer input)."""
+        out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {quantizer_input()}"]
+        out += dither(ind + "    ") if dithered else [f"{ind}    w = y"]
+        out += update(ind + "    ", single_bit, flipped)
+        out += [f"{ind}    m{i} = max(m{i}, abs(x{i}))" for i in range(n)]
+        if code != 0:
+            out.append(f"{ind}    my = max(my, abs(y))")
+        return out
+
+    def guarded_loop(ind):
+        """One block with the guard on every sample (all four quantizer/dither cases)."""
+        out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {quantizer_input()}"]
+        out.append(f"{ind}    if dither_scale != 0.0:")
+        out += dither(ind + "        ")
+        out += [f"{ind}    else:", f"{ind}        w = y", f"{ind}    if levels == 2:"]
+        out += update(ind + "        ", True, False)
+        out.append(f"{ind}    else:")
+        out += update(ind + "        ", False, False)
         conds = " & ".join(
             ["(abs(y) <= input_bound)"] + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
         )
-        body_lines += [
-            f"{ind}if not ({conds}):",
-            f"{ind}    overloads += 1",
-            f"{ind}    if reset:",
-            f"{ind}        {xs} = " + ", ".join("0.0" for _ in range(n)),
-            f"{ind}    else:",
+        out += [
+            f"{ind}    if not ({conds}):",
+            f"{ind}        overloads += 1",
+            # a non-finite input sample always trips the guard (b0 * u[t] reaches x0)
+            f"{ind}        if bad < 0 and not math.isfinite(u[t]):",
+            f"{ind}            bad = t",
+            f"{ind}        if reset:",
+            f"{ind}            {xs} = " + ", ".join("0.0" for _ in range(n)),
+            f"{ind}        else:",
         ]
-        body_lines += [f"{ind}        x{i} = _clamp(x{i}, state_bound)" for i in range(n)]
-        body_lines += [f"{ind}p{i} = max(p{i}, abs(x{i}))" for i in range(n)]
-        return body_lines
+        out += [f"{ind}            x{i} = _clamp(x{i}, state_bound)" for i in range(n)]
+        out += [f"{ind}    p{i} = max(p{i}, abs(x{i}))" for i in range(n)]
+        return out
 
-    first = True
+    cases = []
     for single_bit in (True, False):
         for dithered in (False, True):
             cond = f"{'levels == 2' if single_bit else 'levels != 2'} and "
             cond += "dither_scale != 0.0" if dithered else "dither_scale == 0.0"
-            add(f"    {'if' if first else 'elif'} {cond}:")
-            first = False
-            add("        for t in range(u.shape[0]):")
-            lines.extend(body(single_bit, dithered))
+            if single_bit and code != 2:
+                cases.append((f"{cond} and flip", single_bit, dithered, True))
+            cases.append((cond, single_bit, dithered, False))
+
+    add("    start = 0")
+    add("    while start < total:")
+    add(f"        stop = min(start + {LOOP_BLOCK}, total)")
+    add(f"        {', '.join(f'o{i}' for i in range(n))} = {xs}")
+    add("        counter_start = counter")
+    add(f"        {', '.join(f'm{i}' for i in range(n))} = " + ", ".join("0.0" for _ in range(n)))
+    if code != 0:
+        add("        my = 0.0")
+    for j, (cond, single_bit, dithered, flipped) in enumerate(cases):
+        add(f"        {'if' if j == 0 else 'elif'} {cond}:")
+        lines.extend(fast_loop("            ", single_bit, dithered, flipped))
+    if code == 0:
+        # y is the last state at the start of each sample: the block's first value, then
+        # the block's updates (the last one conservatively too)
+        y_ok = f"(abs(o{n - 1}) <= input_bound) & (m{n - 1} <= input_bound)"
+    else:
+        y_ok = "(my <= input_bound)"
+    conds = " & ".join(
+        [y_ok]
+        + [f"(m{i} <= state_bound)" for i in range(n)]
+        + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
+    )
+    add(f"        if {conds}:")
+    lines.extend(f"            p{i} = max(p{i}, m{i})" for i in range(n))
+    add("        else:")
+    add(f"            {xs} = {', '.join(f'o{i}' for i in range(n))}")
+    add("            counter = counter_start")
+    lines.extend(guarded_loop("            "))
+    add("        start = stop")
     for i in range(n):
         add(f"    state[{i}] = x{i}")
     for i in range(n):
         add(f"    peaks[{i}] = p{i}")
     add("    rng[0] = counter")
     add("    counts[0] = overloads")
+    add("    return bad")
     return "\n".join(lines) + "\n"
 
 
