@@ -115,7 +115,7 @@ def run():
         def fresh(mod=mod):
             mod.run(x)
 
-        kernel = _kernels.loop_kernel(*_kernel_key(mod.loop))
+        kernel = _kernels.loop_kernel(*_kernel_key(mod.loop)).variant(levels == 2, False)
         loop_out = np.empty(n)
 
         def bare(mod=mod, kernel=kernel, loop_out=loop_out):

@@ -204,16 +204,20 @@ STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
 LOOP_BLOCK = 1024
 
 
-def loop_kernel_name(structure, order, lossless, unit_chain, pairs):
-    """Name of the specialised kernel for these properties."""
+def loop_kernel_name(structure, order, lossless, unit_chain, pairs, variant=None):
+    """Name of the specialised kernel for these properties (and quantizer/dither variant)."""
     kind = structure.replace("-", "_")
     leak = "l" if lossless else "d"
     chain = "u" if unit_chain else "k"
     resonators = "all" if pairs < 0 else pairs
-    return f"{kind}_loop_order{order}_{leak}{chain}_p{resonators}"
+    name = f"{kind}_loop_order{order}_{leak}{chain}_p{resonators}"
+    if variant is not None:
+        single_bit, dithered = variant
+        name += ("_bit" if single_bit else "_levels") + ("_dither" if dithered else "")
+    return name
 
 
-def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
+def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=None):
     """Python source of one specialised loop kernel (see loop_kernel).
 
     The kernel runs its samples in blocks of ``LOOP_BLOCK``. Each block first runs without
@@ -238,6 +242,10 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     pairs : int
         Number of resonator pairs at the head of the chain (upstream integrators 0, 2, ...),
         or -1 to keep the resonator term on every integrator.
+    variant : (bool, bool) or None
+        ``(single_bit, dithered)``: the source of the kernel for only that quantizer (two
+        levels or more) and dither (on or off), the one :func:`loop_kernel` compiles; None
+        gives one function holding every case, chosen at run time.
     """
     n = order
     code = STRUCTURE_CODES[structure]
@@ -252,7 +260,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     def has_a(i):
         return code != 1 or i == 0
 
-    add(f"def {loop_kernel_name(structure, order, lossless, unit_chain, pairs)}(")
+    add(f"def {loop_kernel_name(structure, order, lossless, unit_chain, pairs, variant)}(")
     add("    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound,")
     add("    state_bound, reset,")
     add("):")
@@ -355,14 +363,18 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
         return out
 
     def guarded_loop(ind):
-        """One block with the guard on every sample (all four quantizer/dither cases)."""
+        """One block with the guard on every sample (the variant's case, or all four)."""
         out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {quantizer_input()}"]
-        out.append(f"{ind}    if dither_scale != 0.0:")
-        out += dither(ind + "        ")
-        out += [f"{ind}    else:", f"{ind}        w = y", f"{ind}    if levels == 2:"]
-        out += update(ind + "        ", True, False)
-        out.append(f"{ind}    else:")
-        out += update(ind + "        ", False, False)
+        if variant is None:
+            out.append(f"{ind}    if dither_scale != 0.0:")
+            out += dither(ind + "        ")
+            out += [f"{ind}    else:", f"{ind}        w = y", f"{ind}    if levels == 2:"]
+            out += update(ind + "        ", True, False)
+            out.append(f"{ind}    else:")
+            out += update(ind + "        ", False, False)
+        else:
+            out += dither(ind + "    ") if variant[1] else [f"{ind}    w = y"]
+            out += update(ind + "    ", variant[0], False)
         conds = " & ".join(
             ["(abs(y) <= input_bound)"] + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
         )
@@ -383,10 +395,16 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     cases = []
     for single_bit in (True, False):
         for dithered in (False, True):
+            if variant is not None and variant != (single_bit, dithered):
+                continue
             cond = f"{'levels == 2' if single_bit else 'levels != 2'} and "
             cond += "dither_scale != 0.0" if dithered else "dither_scale == 0.0"
+            if variant is not None:
+                cond = "True"
             if single_bit and code != 2:
-                cases.append((f"{cond} and flip", single_bit, dithered, True))
+                cases.append(
+                    ("flip" if variant else f"{cond} and flip", *(single_bit, dithered), True)
+                )
             cases.append((cond, single_bit, dithered, False))
 
     add("    start = 0")
@@ -398,7 +416,10 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     if code != 0:
         add("        my = 0.0")
     for j, (cond, single_bit, dithered, flipped) in enumerate(cases):
-        add(f"        {'if' if j == 0 else 'elif'} {cond}:")
+        if j == len(cases) - 1 and j > 0:
+            add("        else:")  # the last case needs no test
+        else:
+            add(f"        {'if' if j == 0 else 'elif'} {cond}:")
         lines.extend(fast_loop("            ", single_bit, dithered, flipped))
     if code == 0:
         # y is the last state at the start of each sample: the block's first value, then
@@ -431,24 +452,58 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
 _LOOP_KERNELS = {}
 
 
-def loop_kernel(structure, order, lossless, unit_chain, pairs):
-    """Compiled specialised loop for these properties (built from the template on first use).
+class _LoopKernel:
+    """The specialised loop for one set of properties, one compiled kernel per variant.
 
-    Arguments of the returned function: ``(u, out, coef, state, rng, peaks, counts, levels,
-    dither_scale, input_bound, state_bound, reset)``, as for ``loop_any_structure``.
+    A call runs the variant for the quantizer (two levels or more) and dither (on or off) it
+    is given, compiling that variant (or loading it from numba's on-disk cache) on first use.
+    Only the variants a program uses are ever compiled, each a fraction of the code of one
+    kernel for every case.
+    """
+
+    def __init__(self, key):
+        self.key = key
+        self._variants = {}
+
+    def variant(self, single_bit, dithered):
+        """The compiled kernel for one quantizer and dither case."""
+        which = (bool(single_bit), bool(dithered))
+        kernel = self._variants.get(which)
+        if kernel is None:
+            kernel = _compile_loop_source(*self.key, which)
+            self._variants[which] = kernel
+        return kernel
+
+    def __call__(self, u, out, coef, state, rng, peaks, counts, levels, dither_scale, *bounds):
+        kernel = self.variant(levels == 2, dither_scale != 0.0)
+        return kernel(u, out, coef, state, rng, peaks, counts, levels, dither_scale, *bounds)
+
+
+def _compile_loop_source(structure, order, lossless, unit_chain, pairs, variant):
+    source = loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant)
+    name = loop_kernel_name(structure, order, lossless, unit_chain, pairs, variant)
+    namespace = {}
+    # compiled under this file's name so numba's cache can find (and invalidate) it: the
+    # cache index is keyed by the function's qualified name and this file's time stamp
+    exec(compile(source, __file__, "exec"), globals(), namespace)
+    function = namespace[name]
+    function.__module__ = __name__
+    function.__qualname__ = name
+    return njit(cache=True, nogil=True)(function)
+
+
+def loop_kernel(structure, order, lossless, unit_chain, pairs):
+    """Specialised loop for these properties (each variant built from the template on first use).
+
+    Arguments of the returned callable: ``(u, out, coef, state, rng, peaks, counts, levels,
+    dither_scale, input_bound, state_bound, reset)``, as for ``loop_any_structure``; it returns
+    the index of the first non-finite input sample, or -1. ``.variant(single_bit, dithered)``
+    gives the compiled kernel of one case.
     """
     key = (str(structure), int(order), bool(lossless), bool(unit_chain), int(pairs))
     kernel = _LOOP_KERNELS.get(key)
     if kernel is None:
-        source = loop_kernel_source(*key)
-        name = loop_kernel_name(*key)
-        namespace = {}
-        # compiled under this file's name so numba's cache can find (and invalidate) it
-        exec(compile(source, __file__, "exec"), globals(), namespace)
-        function = namespace[name]
-        function.__module__ = __name__
-        function.__qualname__ = name
-        kernel = njit(cache=True, nogil=True)(function)
+        kernel = _LoopKernel(key)
         _LOOP_KERNELS[key] = kernel
     return kernel
 
