@@ -4,12 +4,13 @@ The public names below are loaded on first use, so ``import audiodsm`` stays che
 They follow the signal chain:
 
 Noise-transfer design (``audiodsm.design.ntf``)
-    design_ntf, ntf_from_zeros_poles, optimal_zero_positions, NoiseTransfer
+    NoiseTransfer (NoiseTransfer.designed, NoiseTransfer.from_roots,
+    NoiseTransfer.spread_zero_fractions)
 Loop realization (``audiodsm.design.realize``)
-    realize_ntf, LoopRealization, STRUCTURES
+    LoopRealization (LoopRealization.for_ntf), LinearLoop, STRUCTURES
 Modulation (``audiodsm.stages.modulator``)
-    Modulator, ModulatorState, max_stable_amplitude, find_stability_limit, StabilityLimit,
-    scale_states
+    Modulator (Modulator.probe_stability, Modulator.with_scaled_states), ModulatorState,
+    StabilityProbe
 Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
@@ -35,20 +36,27 @@ Test stimuli (``audiodsm.signals``)
     dbfs_to_amplitude, amplitude_to_dbfs, rms_to_dbfs, dbfs_to_rms
 Levels and spectra (``audiodsm.measure.spectrum``)
     level_dbfs, power_to_dbfs, averaged_spectrum, accumulate_spectrum, Spectrum
-AES17-practice metrics (``audiodsm.measure.aes17``)
-    fit_sine, thd_plus_noise, thd, sinad_db, enob_bits, dynamic_range, idle_channel_noise,
-    start_residual_meter, update_residual_meter, read_residual_meter,
-    level_linearity, frequency_response, stepped_frequency_response,
-    imd_smpte, imd_difference_frequency, out_of_band_power_dbfs, noise_modulation
+Sine fits (``audiodsm.measure.sine_fit``)
+    fit_sine, SineFit
+Residual meter, block by block (``audiodsm.measure.residual``)
+    start_residual_meter, update_residual_meter, read_residual_meter
+Tone distortion (``audiodsm.measure.tone``)
+    thd_plus_noise, thd, sinad_db, enob_bits
+Noise (``audiodsm.measure.noise``)
+    dynamic_range, idle_channel_noise, out_of_band_power_dbfs, noise_modulation
+Level and frequency response (``audiodsm.measure.response``)
+    level_linearity, frequency_response, stepped_frequency_response
+Intermodulation (``audiodsm.measure.intermod``)
+    imd_smpte, imd_difference_frequency
 Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
     ChannelContent, analyze_blocks, ChannelAnalysis
 Test battery (``audiodsm.evaluate.battery``)
     run_battery, BatteryPlan, BatteryResult, battery_rate_hz
-Design search (``audiodsm.evaluate.search``)
+Design search (``audiodsm.evaluate.search``, ``audiodsm.evaluate.design_job``)
     search_designs, confirm_candidates, predicted_dynamic_range_db, loop_cost, Candidate,
-    Confirmation
+    Confirmation, DesignRequest, DesignOutcome, run_design_job
 Audio files (``audiodsm.io``)
     read_audio, read_audio_span, audio_info, AudioInfo, iter_audio_blocks,
     write_audio_atomic, open_audio_writer
@@ -65,6 +73,9 @@ Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
     write_report, render_html, batch_to_dict, batch_to_csv, plot_spectrum,
     plot_thd_n_vs_level, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
     plot_margins
+Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
+``audiodsm.measure.silence``)
+    render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
 """
 
 from __future__ import annotations
@@ -94,16 +105,13 @@ _PUBLIC = {
     "iter_audio_blocks": "audiodsm.io",
     "write_audio_atomic": "audiodsm.io",
     "open_audio_writer": "audiodsm.io",
-    "design_ntf": "audiodsm.design.ntf",
-    "ntf_from_zeros_poles": "audiodsm.design.ntf",
     "NoiseTransfer": "audiodsm.design.ntf",
-    "optimal_zero_positions": "audiodsm.design.ntf",
-    "realize_ntf": "audiodsm.design.realize",
     "LoopRealization": "audiodsm.design.realize",
+    "LinearLoop": "audiodsm.design.realize",
     "STRUCTURES": "audiodsm.design.realize",
     "Modulator": "audiodsm.stages.modulator",
     "ModulatorState": "audiodsm.stages.modulator",
-    "max_stable_amplitude": "audiodsm.stages.modulator",
+    "StabilityProbe": "audiodsm.stages.modulator",
     "PulseWaveform": "audiodsm.stages.output_stage",
     "pdm_waveform": "audiodsm.stages.output_stage",
     "nrz_waveform": "audiodsm.stages.output_stage",
@@ -130,9 +138,6 @@ _PUBLIC = {
     "RippleReport": "audiodsm.stages.reconstruct",
     "filter_report": "audiodsm.stages.reconstruct",
     "FilterReport": "audiodsm.stages.reconstruct",
-    "find_stability_limit": "audiodsm.stages.modulator",
-    "StabilityLimit": "audiodsm.stages.modulator",
-    "scale_states": "audiodsm.stages.modulator",
     "ChainProfile": "audiodsm.profile",
     "Chain": "audiodsm.stages.chain",
     "ChainResult": "audiodsm.stages.chain",
@@ -147,6 +152,9 @@ _PUBLIC = {
     "loop_cost": "audiodsm.evaluate.search",
     "Candidate": "audiodsm.evaluate.search",
     "Confirmation": "audiodsm.evaluate.search",
+    "DesignRequest": "audiodsm.evaluate.design_job",
+    "DesignOutcome": "audiodsm.evaluate.design_job",
+    "run_design_job": "audiodsm.evaluate.design_job",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
     "profile_to_toml": "audiodsm.profile",
@@ -189,24 +197,24 @@ _PUBLIC = {
     "averaged_spectrum": "audiodsm.measure.spectrum",
     "accumulate_spectrum": "audiodsm.measure.spectrum",
     "Spectrum": "audiodsm.measure.spectrum",
-    "fit_sine": "audiodsm.measure.aes17",
-    "SineFit": "audiodsm.measure.aes17",
-    "thd_plus_noise": "audiodsm.measure.aes17",
-    "thd": "audiodsm.measure.aes17",
-    "sinad_db": "audiodsm.measure.aes17",
-    "enob_bits": "audiodsm.measure.aes17",
-    "dynamic_range": "audiodsm.measure.aes17",
-    "idle_channel_noise": "audiodsm.measure.aes17",
-    "start_residual_meter": "audiodsm.measure.aes17",
-    "update_residual_meter": "audiodsm.measure.aes17",
-    "read_residual_meter": "audiodsm.measure.aes17",
-    "level_linearity": "audiodsm.measure.aes17",
-    "frequency_response": "audiodsm.measure.aes17",
-    "stepped_frequency_response": "audiodsm.measure.aes17",
-    "imd_smpte": "audiodsm.measure.aes17",
-    "imd_difference_frequency": "audiodsm.measure.aes17",
-    "out_of_band_power_dbfs": "audiodsm.measure.aes17",
-    "noise_modulation": "audiodsm.measure.aes17",
+    "fit_sine": "audiodsm.measure.sine_fit",
+    "SineFit": "audiodsm.measure.sine_fit",
+    "thd_plus_noise": "audiodsm.measure.tone",
+    "thd": "audiodsm.measure.tone",
+    "sinad_db": "audiodsm.measure.tone",
+    "enob_bits": "audiodsm.measure.tone",
+    "dynamic_range": "audiodsm.measure.noise",
+    "idle_channel_noise": "audiodsm.measure.noise",
+    "start_residual_meter": "audiodsm.measure.residual",
+    "update_residual_meter": "audiodsm.measure.residual",
+    "read_residual_meter": "audiodsm.measure.residual",
+    "level_linearity": "audiodsm.measure.response",
+    "frequency_response": "audiodsm.measure.response",
+    "stepped_frequency_response": "audiodsm.measure.response",
+    "imd_smpte": "audiodsm.measure.intermod",
+    "imd_difference_frequency": "audiodsm.measure.intermod",
+    "out_of_band_power_dbfs": "audiodsm.measure.noise",
+    "noise_modulation": "audiodsm.measure.noise",
     "load_spec": "audiodsm.spec",
     "parse_spec": "audiodsm.spec",
     "spec_digest": "audiodsm.spec",
@@ -231,6 +239,12 @@ _PUBLIC = {
     "plot_state_histograms": "audiodsm.evaluate.plotting",
     "plot_frequency_response": "audiodsm.evaluate.plotting",
     "plot_margins": "audiodsm.evaluate.plotting",
+    "render_file": "audiodsm.evaluate.render",
+    "render_files": "audiodsm.evaluate.render",
+    "output_names": "audiodsm.evaluate.render",
+    "analyze_file": "audiodsm.evaluate.analyze",
+    "FileAnalysis": "audiodsm.evaluate.analyze",
+    "SilenceNoiseMeter": "audiodsm.measure.silence",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

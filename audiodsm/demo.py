@@ -89,8 +89,8 @@ def run_demo(
         ``{"reports": {product: {kind: path}}, "listening": [paths], "batches": {product:
         GradeBatch}, "seconds": float}``.
     """
-    from audiodsm.cli.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.grade import collect_profiles, grade_batch
+    from audiodsm.evaluate.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.report import write_report
     from audiodsm.spec import load_spec
 
@@ -126,7 +126,7 @@ def run_demo(
         )
         batches[product] = batch
         say(f"graded in {time.perf_counter() - t0:.1f} s")
-        from audiodsm.cli.grade import detail_table, summary_table
+        from audiodsm.evaluate.tables import detail_table, summary_table
 
         for line in summary_table(batch):
             say("  " + line)

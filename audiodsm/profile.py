@@ -24,7 +24,19 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import tomli_w
+
 from audiodsm.errors import ProfileError
+from audiodsm.limits import (
+    AUDIO_RATES_HZ,
+    CUTOFF_HZ_RANGE,
+    FILTER_ORDER_RANGE,
+    LEVELS_RANGE,
+    ORDER_RANGE,
+    OSR_CHOICES,
+    OUT_OF_BAND_GAIN_RANGE,
+    ZERO_LAYOUTS,
+)
 
 __all__ = [
     "AUDIO_RATES_HZ",
@@ -42,9 +54,6 @@ __all__ = [
     "profile_to_toml",
     "profile_digest",
 ]
-
-#: Audio sample rates the chain accepts at its input and writes for listening (Hz).
-AUDIO_RATES_HZ = (44100, 48000, 88200, 96000, 176400, 192000)
 
 #: Version of the digest recipe; bump it when the meaning of a key changes.
 _DIGEST_VERSION = 2  # 2: modulator state scaling (on by default)
@@ -72,6 +81,10 @@ def _int_range(lo, hi):
     return lambda v: lo <= v <= hi
 
 
+def _power_of_two(lo, hi):
+    return lambda v: lo <= v <= hi and v & (v - 1) == 0
+
+
 def _float_range(lo, hi, *, lo_open=False, hi_open=False):
     def check(v):
         above = v > lo if lo_open else v >= lo
@@ -81,8 +94,9 @@ def _float_range(lo, hi, *, lo_open=False, hi_open=False):
     return check
 
 
-def _power_of_two(lo, hi):
-    return lambda v: lo <= v <= hi and v & (v - 1) == 0
+def _short(value: float) -> str:
+    """A number as short as it reads in the documentation: 20000, 1e7."""
+    return f"{value:g}".replace("e+0", "e").replace("e+", "e")
 
 
 def _fmt_choices(*options):
@@ -115,8 +129,8 @@ class UpsamplerSettings:
     osr: int = _key(
         64,
         "int",
-        "a power of two from 16 to 512",
-        _power_of_two(16, 512),
+        f"a power of two from {OSR_CHOICES[0]} to {OSR_CHOICES[-1]}",
+        _choice(*OSR_CHOICES),
         doc="Oversampling ratio: modulator rate = osr x audio rate.",
     )
     final_stage: str = _key(
@@ -160,33 +174,38 @@ class UpsamplerSettings:
 class ModulatorSettings:
     """The noise-shaping loop (``[modulator]``).
 
-    Either the NTF is designed from ``order``, ``max_gain`` and ``optimize_zeros``, or it is
+    Either the NTF is designed from ``order``, ``out_of_band_gain`` and ``zero_layout``, or it is
     given explicitly by ``zeros`` and ``poles`` (both, same count). Complex roots are written as
     ``[re, im]`` pairs and each one needs its conjugate listed too; real roots may be plain
     numbers.
     """
 
     order: int = _key(
-        5, "int", "an integer from 1 to 8", _int_range(1, 8), doc="Loop order of the designed NTF."
+        5,
+        "int",
+        f"an integer from {ORDER_RANGE[0]} to {ORDER_RANGE[1]}",
+        _int_range(*ORDER_RANGE),
+        doc="Loop order of the designed NTF.",
     )
-    max_gain: float = _key(
+    out_of_band_gain: float = _key(
         1.5,
         "float",
-        "a number above 1.0 and at most 8.0",
-        _float_range(1.0, 8.0, lo_open=True),
-        doc="Peak out-of-band NTF gain (Lee's rule: about 1.5 for single-bit loops).",
+        f"a number above {OUT_OF_BAND_GAIN_RANGE[0]} and at most {OUT_OF_BAND_GAIN_RANGE[1]}",
+        _float_range(*OUT_OF_BAND_GAIN_RANGE, lo_open=True),
+        doc="Largest out-of-band NTF gain (Lee's rule: about 1.5 for single-bit loops).",
     )
-    optimize_zeros: bool = _key(
-        True,
-        "bool",
-        "true or false",
-        doc="Spread the NTF zeros over the band (optimal placement) instead of all at DC.",
+    zero_layout: str = _key(
+        "spread",
+        "str",
+        _fmt_choices(*ZERO_LAYOUTS),
+        _choice(*ZERO_LAYOUTS),
+        doc="'spread': NTF zeros at the optimal positions over the band; 'dc': all at DC.",
     )
     zeros: tuple = _key(
         (),
         "roots",
         "a list of numbers or [re, im] pairs",
-        doc="Explicit NTF zeros (z-plane). Empty: design the NTF from order/max_gain.",
+        doc="Explicit NTF zeros (z-plane). Empty: design the NTF from order/out_of_band_gain.",
     )
     poles: tuple = _key(
         (),
@@ -204,8 +223,8 @@ class ModulatorSettings:
     levels: int = _key(
         2,
         "int",
-        "an integer from 2 to 16777216",
-        _int_range(2, 1 << 24),
+        f"an integer from {LEVELS_RANGE[0]} to {LEVELS_RANGE[1]}",
+        _int_range(*LEVELS_RANGE),
         doc="Quantizer levels, evenly spaced in [-1, 1]; 2 is a single-bit loop.",
     )
     dither_lsb: float = _key(
@@ -393,16 +412,16 @@ class ReconstructionSettings:
     filter_order: int = _key(
         3,
         "int",
-        "an integer from 1 to 6",
-        _int_range(1, 6),
+        f"an integer from {FILTER_ORDER_RANGE[0]} to {FILTER_ORDER_RANGE[1]}",
+        _int_range(*FILTER_ORDER_RANGE),
         only="prototype",
         doc="Prototype order.",
     )
     cutoff_hz: float = _key(
         60000.0,
         "float",
-        "a number from 20000 to 1e7",
-        _float_range(20000.0, 1e7),
+        f"a number from {_short(CUTOFF_HZ_RANGE[0])} to {_short(CUTOFF_HZ_RANGE[1])}",
+        _float_range(*CUTOFF_HZ_RANGE),
         only="prototype",
         doc="Prototype corner frequency (Hz).",
     )
@@ -499,6 +518,34 @@ class ListeningSettings:
         _float_range(15000.0, 40000.0),
         doc="Flat band kept by the listening decimator (Hz).",
     )
+    decimator: str = _key(
+        "half-band",
+        "str",
+        _fmt_choices("half-band", "counting"),
+        _choice("half-band", "counting"),
+        doc="Listening decimator: 'half-band' (the clean cascade) or 'counting' (count the "
+        "stream over counting_length clocks in counting_stages cascaded counters, sinc^K, "
+        "then the clean cascade for any further ratio).",
+    )
+    counting_stages: int = _key(
+        1,
+        "int",
+        "an integer from 1 to 6",
+        _int_range(1, 6),
+        only="counting",
+        only_by="decimator",
+        doc="Cascaded counters K (sinc^K); K >= loop order + 1 keeps folded noise down.",
+    )
+    counting_length: int = _key(
+        64,
+        "int",
+        "a power of two from 2 to 1024",
+        _power_of_two(2, 1024),
+        only="counting",
+        only_by="decimator",
+        doc="Counting window N in modulator clocks (also its decimation ratio); at most the "
+        "modulator rate over the listening rate.",
+    )
 
 
 _SECTIONS = {
@@ -583,7 +630,7 @@ def _convert(value, kind, path, key, expect):
             out.append(float(v))
         return tuple(out)
     if kind == "roots":
-        if not isinstance(value, list) or len(value) > 8:
+        if not isinstance(value, list) or len(value) > ORDER_RANGE[1]:
             bad()
         out = []
         for v in value:
@@ -629,14 +676,15 @@ def _parse_section(cls, table, path, section):
         values[name] = value
     settings = cls(**values)
     # keys that belong to another kind of this stage would do nothing: refuse them
-    kind = getattr(settings, "kind", None)
     for name, f in fields.items():
         only = f.metadata.get("only")
+        by = f.metadata.get("only_by", "kind")
+        kind = getattr(settings, by, None)
         if only is not None and name in table and kind != only:
             raise ProfileError(
                 path,
                 f"{section}.{name}",
-                f"applies only when {section}.kind = {only!r}; this profile has kind = {kind!r}",
+                f"applies only when {section}.{by} = {only!r}; this profile has {by} = {kind!r}",
             )
     return settings
 
@@ -827,13 +875,13 @@ def load_profile(path) -> ChainProfile:
 # ---------------------------------------------------------------------------------------------
 
 
-_DESIGN_KEYS = ("order", "max_gain", "optimize_zeros")
+_DESIGN_KEYS = ("order", "out_of_band_gain", "zero_layout")
 
 
 def _applies(settings, f) -> bool:
     """Whether field ``f`` does something for these settings (kind-specific keys)."""
     only = f.metadata.get("only")
-    if only is not None and only != getattr(settings, "kind", None):
+    if only is not None and only != getattr(settings, f.metadata.get("only_by", "kind"), None):
         return False
     if isinstance(settings, ModulatorSettings) and settings.explicit_ntf:
         return f.name not in _DESIGN_KEYS
@@ -871,32 +919,9 @@ def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
     return out
 
 
-def _toml_string(text: str) -> str:
-    """A TOML basic string (TOML v1.0.0: escape quote, backslash and control characters)."""
-    out = []
-    for ch in text:
-        code = ord(ch)
-        if ch in '"\\':
-            out.append("\\" + ch)
-        elif code < 0x20 or code == 0x7F:
-            out.append(f"\\u{code:04X}")
-        else:
-            out.append(ch)
-    return '"' + "".join(out) + '"'
-
-
-def _toml_value(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        return repr(value)  # shortest text that round-trips exactly
-    if isinstance(value, str):
-        return _toml_string(value)
-    if isinstance(value, list):
-        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    raise TypeError(f"cannot write {value!r} as TOML")  # pragma: no cover
+def _toml_literal(value) -> str:
+    """One plain value as TOML text, as tomli-w writes it (for the table of keys and defaults)."""
+    return tomli_w.dumps({"v": value}).removeprefix("v = ").removesuffix("\n")
 
 
 def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
@@ -912,7 +937,13 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
     Returns
     -------
     str
-        TOML text ending in a newline.
+        TOML text ending in a newline, written by tomli-w (one key a line, each stage a table,
+        a list one item a line).
+
+    References
+    ----------
+    .. [1] TOML v1.0.0, https://toml.io/en/v1.0.0 (the format tomli-w writes and
+       :mod:`tomllib` reads).
     """
     data = profile_to_dict(profile, full=False)
     if full:
@@ -923,17 +954,13 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
                 for f in dataclasses.fields(cls)
                 if _applies(getattr(profile, section), f)
             }
-    lines = [f"name = {_toml_value(data['name'])}"]
+    document = {"name": data["name"]}
     if data["description"]:
-        lines.append(f"description = {_toml_value(data['description'])}")
+        document["description"] = data["description"]
     for section in _SECTIONS:
-        table = data[section]
-        if not table:
-            continue
-        lines.append("")
-        lines.append(f"[{section}]")
-        lines.extend(f"{k} = {_toml_value(v)}" for k, v in table.items())
-    return "\n".join(lines) + "\n"
+        if data[section]:
+            document[section] = data[section]
+    return tomli_w.dumps(document)
 
 
 def profile_digest(profile: ChainProfile) -> str:
@@ -975,6 +1002,6 @@ def schema_rows():
                 f"{section}.{f.name}",
                 f.metadata["kind"],
                 f.metadata["expect"],
-                _toml_value(_plain(default)),
+                _toml_literal(_plain(default)),
                 f.metadata.get("doc", ""),
             )

@@ -26,7 +26,7 @@ TARGET_S = 15.0
 
 _CHILD = """
 import json, sys, time, resource
-from audiodsm.cli.analyze import analyze_file
+from audiodsm.evaluate.analyze import analyze_file
 t, c = time.perf_counter(), time.process_time()
 result = analyze_file(sys.argv[1])
 seconds, cpu = time.perf_counter() - t, time.process_time() - c

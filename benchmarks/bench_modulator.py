@@ -6,7 +6,7 @@ loops with the project's own API and run them on the same input:
 
 ``order5-1bit-feedback``
     the NTF of ``feedback5_1bit``: 5th order, zeros at the Legendre-root positions for OSR 64,
-    Butterworth-type poles with out-of-band gain 1.5 (``design_ntf(5, 64, max_gain=1.5)``),
+    Butterworth-type poles with out-of-band gain 1.5 (``NoiseTransfer.designed(5, osr=64)``),
     realized as a feedback loop (two resonator pairs and one integrator, input into the
     first) and its states scaled to peak at 0.5 for this input, as in limit.c. The per-sample
     work is the C loop's: five lossless integrators with chain gains, two resonator taps, five
@@ -44,8 +44,8 @@ from dataclasses import replace
 
 import numpy as np
 
-from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
-from audiodsm.design.realize import realize_ntf
+from audiodsm.design.ntf import NoiseTransfer
+from audiodsm.design.realize import LoopRealization
 from audiodsm.stages import _kernels
 from audiodsm.stages.modulator import Modulator, _kernel_key
 from benchmarks._c_reference import C_RATE_HZ, c_input, c_loop_speeds, sequence_hash, speed_ratio
@@ -73,19 +73,21 @@ CASES = [
 def _modulator(name: str, levels: int, structure: str, x: np.ndarray) -> Modulator:
     """The case's loop, built as the module docstring says."""
     if name.startswith("order2"):
-        loop = realize_ntf(ntf_from_zeros_poles([1.0, 1.0], [0.0, 0.0]), structure)
+        ntf = NoiseTransfer.from_roots(zeros=[1.0, 1.0], poles=[0.0, 0.0])
+        loop = LoopRealization.for_ntf(ntf, structure=structure)
         # the solve gives a = (1, 2), b = 1 to within 2 ulp; limit.c has them exactly, and
         # with the exact values both loops must give the same sequence
         exact = {"feedback": np.array([1.0, 2.0]), "input_gain": np.array([1.0, 0.0])}
         for field, value in exact.items():
             assert np.allclose(getattr(loop, field), value, rtol=1e-15, atol=0)
         return Modulator(replace(loop, **exact), levels=levels)
-    loop = realize_ntf(design_ntf(5, OSR, max_gain=1.5), structure)
+    ntf = NoiseTransfer.designed(5, osr=OSR, out_of_band_gain=1.5)
+    loop = LoopRealization.for_ntf(ntf, structure=structure)
     if structure == "feedback":
         # limit.c: states s1..s4 rescaled to peak near 0.5 for the -6 dBFS sine; the
         # quantizer-facing state keeps its size
         _, st = Modulator(loop, levels=levels).run(x[: 1 << 20])
-        loop = loop.scaled(st.state_peak[0], bound=0.5)
+        loop = loop.rescaled(st.state_peak[0], peak_target=0.5)
     return Modulator(loop, levels=levels)
 
 

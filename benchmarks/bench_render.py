@@ -75,7 +75,7 @@ def _cpu_seconds() -> float:
 
 
 def _speed_case():
-    from audiodsm.cli.render import render_file
+    from audiodsm.evaluate.render import render_file
     from audiodsm.profile import ChainProfile
 
     profile = ChainProfile(name="pdm5-osr64")
@@ -125,7 +125,7 @@ def _speed_case():
 
 def _memory_child(src: str, out: str) -> None:
     """Run in a child process: render, then print the peak resident memory."""
-    from audiodsm.cli.render import render_file
+    from audiodsm.evaluate.render import render_file
     from audiodsm.profile import ChainProfile
 
     started = time.perf_counter()

@@ -307,11 +307,11 @@ def test_streamed_analysis_does_not_depend_on_block_size():
 
 def test_spectral_noise_agrees_with_time_domain_meter():
     # analyze reads noise from the residual's averaged spectrum; the time-domain path
-    # (audiodsm.measure.aes17.thd_plus_noise: fitted fundamental removed, AES17 band-limit
+    # (audiodsm.measure.tone.thd_plus_noise: fitted fundamental removed, AES17 band-limit
     # filter, digital weighting filters) must agree on the same signal. Tolerance 0.1 dB:
     # the filter's transition band above 20 kHz and the class-1 weighting filters against
     # the ideal band and exact curves (bands.band_mask notes 0.1 dB on white noise).
-    from audiodsm.measure.aes17 import thd_plus_noise
+    from audiodsm.measure.tone import thd_plus_noise
 
     n = 3 * RATE
     t = np.arange(n) / RATE

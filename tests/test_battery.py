@@ -84,26 +84,29 @@ def test_transparent_chain_matches_tpdf_dither_theory(transparent_result):
 
 def test_multibit_dynamic_range_agrees_with_linear_model():
     # Schreier & Temes, "Understanding Delta-Sigma Data Converters", 2005, ch. 2/4: white
-    # quantization noise Delta^2/12 shaped by the NTF (NoiseTransfer.predicted_sqnr_db), here
+    # quantization noise Delta^2/12 shaped by the NTF (NoiseTransfer.linear_sqnr_db), here
     # over the 20 kHz measurement band, i.e. an OSR of fm / (2 * 20 kHz). The chain gives the
     # loop input_scale of headroom and calibrates it out, which lowers the dynamic range at the
     # chain input by 20 log10(input_scale). Tolerance 2 dB (the brief's): a multi-bit
     # quantizer's error is close to, but not exactly, white and uniform.
-    from audiodsm.design.ntf import design_ntf
     from audiodsm.stages.chain import Chain
 
     prof = profile_from_dict(
         {
             "name": "nrz17",
-            "modulator": {"order": 4, "levels": 17, "max_gain": 2.5},
+            "modulator": {"order": 4, "levels": 17, "out_of_band_gain": 2.5},
             "output": {"kind": "nrz"},
         }
     )
     res = run_battery(prof, tests=("dynamic_range",), plan=BatteryPlan.quick())
-    ntf = design_ntf(4, 64, max_gain=2.5)
+    from audiodsm.design.ntf import NoiseTransfer
+
+    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5)
     chain = Chain.from_profile(prof, RATE, 1)
     fm = 64 * RATE
-    expected = ntf.predicted_sqnr_db(17, fm / (2 * 20000.0)) + 20 * math.log10(chain.input_scale)
+    expected = ntf.linear_sqnr_db(levels=17, osr=fm / (2 * 20000.0)) + 20 * math.log10(
+        chain.input_scale
+    )
     assert res.metrics["dynamic_range_db"] == pytest.approx(expected, abs=2.0)
 
 
@@ -125,8 +128,8 @@ def test_single_bit_stable_amplitude_drops_with_order(stability_by_order):
     amps = [stability_by_order[k].curves["stability"]["loop_amplitude"][0] for k in (2, 3, 4, 5)]
     assert all(a > b for a, b in zip(amps, amps[1:], strict=False)), amps
     # plausible ranges (from memory of the published simulations, common practice): a
-    # 2nd-order single-bit loop handles most of full scale; a 5th-order loop with a peak gain
-    # of 1.5 saturates somewhere around half to three quarters of full scale
+    # 2nd-order single-bit loop handles most of full scale; a 5th-order loop with an out-of-band
+    # gain of 1.5 saturates somewhere around half to three quarters of full scale
     assert 0.7 <= amps[0] <= 1.0
     assert 0.4 <= amps[-1] <= 0.85
 
@@ -269,7 +272,7 @@ def test_pwm_switching_rate_from_first_principles():
     prof = profile_from_dict(
         {
             "name": "pwm",
-            "modulator": {"order": 3, "levels": 9, "max_gain": 2.0},
+            "modulator": {"order": 3, "levels": 9, "out_of_band_gain": 2.0},
             "output": {"kind": "pwm", "pwm_carrier": "double-edge"},
             "reconstruction": {"kind": "lc"},
         }
@@ -320,7 +323,7 @@ def test_pwm_short_pulses_are_counted():
         prof = profile_from_dict(
             {
                 "name": f"pwm-{act}",
-                "modulator": {"order": 3, "levels": 9, "max_gain": 2.0, "input_scale": 1.0},
+                "modulator": {"order": 3, "levels": 9, "out_of_band_gain": 2.0, "input_scale": 1.0},
                 "output": {
                     "kind": "pwm",
                     "tick_subdivision": 4,
@@ -345,7 +348,7 @@ def test_digitally_silent_idle_output_reports_the_numeric_floor():
     silent = profile_from_dict(
         {
             "name": "silent-nrz9",
-            "modulator": {"order": 2, "levels": 9, "optimize_zeros": False},
+            "modulator": {"order": 2, "levels": 9, "zero_layout": "dc"},
             "output": {"kind": "nrz"},
         }
     )
@@ -363,7 +366,7 @@ def test_a_dithered_idle_output_is_not_floored():
     dithered = profile_from_dict(
         {
             "name": "dithered-nrz9",
-            "modulator": {"order": 2, "levels": 9, "optimize_zeros": False, "dither_lsb": 1.0},
+            "modulator": {"order": 2, "levels": 9, "zero_layout": "dc", "dither_lsb": 1.0},
             "output": {"kind": "nrz"},
         }
     )

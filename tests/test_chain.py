@@ -19,7 +19,7 @@ name = "nrz17-lc"
 [modulator]
 order = 3
 levels = 17
-max_gain = 2.5
+out_of_band_gain = 2.5
 structure = "feedforward"
 [output]
 kind = "nrz"
@@ -41,7 +41,7 @@ osr = 32
 [modulator]
 order = 3
 levels = 9
-max_gain = 2.0
+out_of_band_gain = 2.0
 [output]
 kind = "pwm"
 pwm_mode = "three-level"
@@ -64,7 +64,7 @@ osr = 32
 [modulator]
 order = 2
 levels = 5
-max_gain = 2.0
+out_of_band_gain = 2.0
 [output]
 kind = "pwm"
 pwm_mode = "two-level"
@@ -85,7 +85,7 @@ name = "pwm-dead-time"
 [modulator]
 order = 3
 levels = 9
-max_gain = 2.0
+out_of_band_gain = 2.0
 dither_lsb = 1.0
 [output]
 kind = "pwm"
@@ -239,7 +239,7 @@ def test_error_signal_is_the_shaped_quantization_noise():
 [modulator]
 order = 2
 levels = 17
-max_gain = 2.0
+out_of_band_gain = 2.0
 structure = "feedback"
 [output]
 kind = "nrz"
@@ -296,13 +296,13 @@ def test_pwm_counts_dropped_pulses_and_switching():
 def test_a_setting_a_stage_rejects_names_the_profile_and_section():
     from audiodsm.errors import ProfileError
 
-    # an 8th-order NTF cannot have a peak gain as low as 1.01 (the design library says how low
-    # it can go); the error names the profile and its [modulator] section in one line
-    profile = parse_profile('name = "too-tight"\n[modulator]\norder = 8\nmax_gain = 1.01')
+    # an 8th-order NTF cannot have an out-of-band gain as low as 1.01 (the design library says how
+    # low it can go); the error names the profile and its [modulator] section in one line
+    profile = parse_profile('name = "too-tight"\n[modulator]\norder = 8\nout_of_band_gain = 1.01')
     with pytest.raises(ProfileError) as info:
         Chain.from_profile(profile, RATE, 1)
     assert info.value.key == "modulator"
-    assert str(info.value).startswith("profile 'too-tight': modulator: max_gain=1.01")
+    assert str(info.value).startswith("profile 'too-tight': modulator: out_of_band_gain=1.01")
     assert "\n" not in str(info.value)
 
 
@@ -321,13 +321,13 @@ def test_bad_arguments():
 
 
 def test_automatic_headroom_follows_the_multibit_no_overload_bound():
-    from audiodsm.design.ntf import ntf_from_zeros_poles
-    from audiodsm.stages.chain import auto_input_scale
-
     # NTF = (1 - z^-1)^2: impulse response h = (1, -2, 1), so ||h||_1 = 4. A quantizer of M
     # steps cannot overload while |u| <= M + 2 - ||h||_1 in units of half a step (Schreier &
     # Temes 2005, ch. 4; from memory), i.e. (M + 2 - 4) / M of full scale.
-    ntf = ntf_from_zeros_poles([1.0, 1.0], [0.0, 0.0])
+    from audiodsm.design.ntf import NoiseTransfer
+    from audiodsm.stages.chain import auto_input_scale
+
+    ntf = NoiseTransfer.from_roots(zeros=[1.0, 1.0], poles=[0.0, 0.0])
     for levels in (9, 17, 33):
         m = levels - 1
         assert auto_input_scale(ntf, levels) == pytest.approx((m + 2 - 4) / m, abs=1e-12)
@@ -410,25 +410,25 @@ def test_state_scaling_keeps_the_ntf_and_bounds_the_states(mode):
     ntf = chain.ntf
     grid = np.geomspace(1e-5, 0.5, 200)
     _, expected = signal.freqz_zpk(ntf.zeros, ntf.poles, ntf.gain, worN=2 * np.pi * grid)
-    got = loop.ntf_from_coefficients().response(grid)
+    got = loop.realized_ntf().response(grid)
     assert np.max(np.abs(got / expected - 1)) < 1e-9
     # the simulated peaks at the maximum stable amplitude: within the bound (power-of-two:
     # in (bound/2, bound]; exact: on the bound, up to a few decisions that rounding changes)
-    lim = chain.state_scaling_limit
-    assert 0.3 < lim.amplitude < 1.0
+    lim = chain.state_scaling_probe
+    assert 0.3 < lim.stable_amplitude < 1.0
     if mode == "power-of-two":
-        assert np.all(lim.state_peak <= 1.0) and np.all(lim.state_peak > 0.5)
+        assert np.all(lim.state_peaks <= 1.0) and np.all(lim.state_peaks > 0.5)
     else:
-        np.testing.assert_allclose(lim.state_peak, 1.0, rtol=0.1)
+        np.testing.assert_allclose(lim.state_peaks, 1.0, rtol=0.1)
     # independently re-simulated with the scaled modulator of the chain at that amplitude
-    x = lim.amplitude * np.sin(2 * np.pi * lim.frequency * np.arange(1 << 15))
+    x = lim.stable_amplitude * np.sin(2 * np.pi * lim.test_frequency * np.arange(1 << 15))
     _, states = chain.modulator.trace_states(x)
     assert np.max(np.abs(states)) <= 1.1
 
 
 def test_state_scaling_changes_no_bit_and_no_noise():
     off = Chain.from_profile(_with_modulator(FEEDFORWARD_PDM, state_scaling="off"), RATE, 1)
-    assert off.state_scaling_limit is None and np.all(off.modulator.loop.state_scale == 1.0)
+    assert off.state_scaling_probe is None and np.all(off.modulator.loop.state_scale == 1.0)
     freq = 9 / 8192
     x = 0.5 * np.sin(2 * np.pi * freq * np.arange(1 << 16))
     y_off, _ = off.modulator.run(x)
@@ -462,9 +462,9 @@ def test_state_scaling_is_remembered_and_deterministic():
         fresh.modulator.loop.state_scale, first.modulator.loop.state_scale
     )
     np.testing.assert_array_equal(
-        fresh.state_scaling_limit.state_peak, first.state_scaling_limit.state_peak
+        fresh.state_scaling_probe.state_peaks, first.state_scaling_probe.state_peaks
     )
-    assert np.max(first.state_scaling_limit.state_peak) <= 0.55
+    assert np.max(first.state_scaling_probe.state_peaks) <= 0.55
 
 
 @pytest.mark.parametrize("name", ["pdm2_64x", "pdm5_64x"])
@@ -475,11 +475,11 @@ def test_demo_pdm_profiles_keep_every_state_within_the_bound(name):
 
     path = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / f"{name}.toml"
     chain = Chain.from_profile(load_profile(path), RATE, 1)
-    lim = chain.state_scaling_limit
+    lim = chain.state_scaling_probe
     # single-bit loops scale every state, the quantizer-facing one of a feedback loop too;
     # powers of two put each peak in (bound/2, bound] exactly (no rounding involved)
     bound = chain.profile.modulator.state_peak_bound
-    assert np.all(lim.state_peak <= bound) and np.all(lim.state_peak > bound / 2)
+    assert np.all(lim.state_peaks <= bound) and np.all(lim.state_peaks > bound / 2)
 
 
 def test_power_of_two_scaling_leaves_the_chain_bits_identical():

@@ -6,9 +6,9 @@ import pytest
 from click.testing import CliRunner
 
 from audiodsm.cli import main
-from audiodsm.cli.design import write_text_atomic
-from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
+from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.errors import OutputError, ParameterError
+from audiodsm.evaluate.design_job import write_text_atomic
 from audiodsm.evaluate.search import (
     impulse_l1_norm,
     loop_cost,
@@ -28,7 +28,7 @@ def test_prediction_matches_the_textbook_peak_sqnr(order):
     # The band here is 20 Hz..20 kHz at fm = 128 x 48 kHz, so OSR = fm / 40 kHz = 153.6. The
     # textbook formula takes |1 - e^-jw| ~ w; at this OSR that small-angle error and the
     # missing 0..20 Hz are below 0.01 dB, hence the 0.02 dB tolerance.
-    ntf = ntf_from_zeros_poles([1.0] * order, [0.0] * order)
+    ntf = NoiseTransfer.from_roots(zeros=[1.0] * order, poles=[0.0] * order)
     levels = 17
     fm = 128 * RATE
     osr = fm / 40000.0
@@ -41,12 +41,12 @@ def test_prediction_matches_the_textbook_peak_sqnr(order):
     )
     got = predicted_dynamic_range_db(ntf, levels, modulator_rate_hz=fm)
     assert got == pytest.approx(expected, abs=0.02)
-    # and it is the same number NoiseTransfer.predicted_sqnr_db gives for that band
-    assert got == pytest.approx(ntf.predicted_sqnr_db(levels, osr), abs=0.01)
+    # and it is the same number NoiseTransfer.linear_sqnr_db gives for that band
+    assert got == pytest.approx(ntf.linear_sqnr_db(levels=levels, osr=osr), abs=0.01)
 
 
 def test_prediction_weighting_and_headroom():
-    ntf = design_ntf(5, 64)
+    ntf = NoiseTransfer.designed(5, osr=64)
     fm = 64 * RATE
     base = predicted_dynamic_range_db(ntf, 2, modulator_rate_hz=fm)
     # headroom: noise referred to the input grows by 1/input_scale^2
@@ -70,7 +70,7 @@ def test_prediction_weighting_and_headroom():
 def test_impulse_norm_of_a_pure_difference():
     # (1 - z^-1)^L has binomial impulse response, so ||h||_1 = 2^L (the binomial theorem)
     for order in (1, 2, 4):
-        ntf = ntf_from_zeros_poles([1.0] * order, [0.0] * order)
+        ntf = NoiseTransfer.from_roots(zeros=[1.0] * order, poles=[0.0] * order)
         assert impulse_l1_norm(ntf) == pytest.approx(2.0**order, rel=1e-12)
 
 
@@ -87,9 +87,9 @@ def test_search_returns_the_cheapest_passing_loops_in_cost_order():
         assert c.predicted_dynamic_range_db >= target
         assert c.cost == pytest.approx(loop_cost(c.order, c.levels, modulator_rate_hz=c.osr * RATE))
         if c.levels == 2:
-            assert c.max_gain == 1.5
+            assert c.out_of_band_gain == 1.5
         else:  # Schreier & Temes no-overload bound, with half of full scale to spare
-            ntf = design_ntf(c.order, c.osr, max_gain=c.max_gain)
+            ntf = NoiseTransfer.designed(c.order, osr=c.osr, out_of_band_gain=c.out_of_band_gain)
             m = c.levels - 1
             assert (m + 2 - impulse_l1_norm(ntf)) / m >= 0.5
     # brute force over the same grid: no loop cheaper than the first passes the same rules
@@ -104,7 +104,7 @@ def test_search_returns_the_cheapest_passing_loops_in_cost_order():
                     continue
                 for gain in (1.5,) if levels == 2 else (1.5, 2.0, 3.0):
                     try:
-                        ntf = design_ntf(order, osr, max_gain=gain)
+                        ntf = NoiseTransfer.designed(order, osr=osr, out_of_band_gain=gain)
                     except ParameterError:
                         continue
                     m = levels - 1
@@ -120,18 +120,33 @@ def test_design_writes_a_profile_and_a_summary(tmp_path):
     out = tmp_path / "dac.toml"
     runner = CliRunner()
     result = runner.invoke(
-        main, ["design", str(out), "--order", "4", "--levels", "9", "--max-gain", "2.5", "--json"]
+        main,
+        [
+            "design",
+            str(out),
+            "--order",
+            "4",
+            "--levels",
+            "9",
+            "--out-of-band-gain",
+            "2.5",
+            "--json",
+        ],
     )
     assert result.exit_code == 0, result.output
     record = json.loads(result.stdout.strip().splitlines()[-1])
     prof = load_profile(out)
     assert prof.name == "dac"
-    assert (prof.modulator.order, prof.modulator.levels, prof.modulator.max_gain) == (4, 9, 2.5)
+    assert (prof.modulator.order, prof.modulator.levels, prof.modulator.out_of_band_gain) == (
+        4,
+        9,
+        2.5,
+    )
     assert prof.output.kind == "nrz"
-    ntf = design_ntf(4, 64, max_gain=2.5)
-    assert record["ntf_peak_gain"] == pytest.approx(ntf.peak_gain(), rel=1e-9)
-    assert record["predicted_sqnr_db"] == pytest.approx(
-        ntf.predicted_sqnr_db(9, 64 * RATE / 40000.0), abs=1e-9
+    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5)
+    assert record["ntf_out_of_band_gain"] == pytest.approx(ntf.out_of_band_gain(), rel=1e-9)
+    assert record["linear_sqnr_db"] == pytest.approx(
+        ntf.linear_sqnr_db(levels=9, osr=64 * RATE / 40000.0), abs=1e-9
     )
     assert 0.0 < record["loop_stable_amplitude"] <= 1.0
     # a second run refuses to replace the file; --overwrite replaces it
@@ -142,7 +157,7 @@ def test_design_writes_a_profile_and_a_summary(tmp_path):
     again = runner.invoke(main, ["design", str(out), "--order", "3", "--overwrite"])
     assert again.exit_code == 0, again.output
     assert load_profile(out).modulator.order == 3
-    assert "NTF peak gain" in again.output
+    assert "NTF out-of-band gain" in again.output
     assert [p.name for p in tmp_path.iterdir()] == ["dac.toml"]  # no temporary left over
 
 
@@ -200,3 +215,37 @@ def test_atomic_text_writer(tmp_path):
     with pytest.raises(OutputError, match="does not exist"):
         write_text_atomic(tmp_path / "nope" / "a.toml", "")
     assert sorted(q.name for q in tmp_path.iterdir()) == ["a.toml"]
+
+
+def test_options_and_profile_keys_share_one_set_of_limits():
+    # design --levels used to stop at 1024 while modulator.levels allows 2**24: both now read
+    # audiodsm.limits, so the command accepts exactly what the profile schema accepts
+    from audiodsm.cli.design import design
+    from audiodsm.errors import ProfileError
+    from audiodsm.limits import LEVELS_RANGE, ORDER_RANGE, OUT_OF_BAND_GAIN_RANGE
+    from audiodsm.profile import profile_from_dict
+
+    params = {p.name: p for p in design.params}
+    assert (params["levels"].type.min, params["levels"].type.max) == LEVELS_RANGE
+    assert (params["order"].type.min, params["order"].type.max) == ORDER_RANGE
+    gain = params["out_of_band_gain"].type
+    assert (gain.min, gain.max, gain.min_open) == (*OUT_OF_BAND_GAIN_RANGE, True)
+    top = LEVELS_RANGE[1]
+    prof = profile_from_dict({"modulator": {"levels": top}, "output": {"kind": "nrz"}})
+    assert prof.modulator.levels == top
+    with pytest.raises(ProfileError, match="modulator.levels"):
+        profile_from_dict({"modulator": {"levels": top + 1}, "output": {"kind": "nrz"}})
+    with pytest.raises(ProfileError, match="modulator.out_of_band_gain"):
+        profile_from_dict({"modulator": {"out_of_band_gain": OUT_OF_BAND_GAIN_RANGE[0]}})
+    result = CliRunner().invoke(main, ["design", "x.toml", "--levels", str(top + 1)])
+    assert result.exit_code == 2 and "--levels" in result.output
+
+
+def test_design_job_refuses_pdm_with_many_levels_by_name(tmp_path):
+    from audiodsm.evaluate.design_job import DesignRequest, run_design_job
+
+    request = DesignRequest(tmp_path / "x.toml", levels=5, output_stage="pdm")
+    with pytest.raises(ParameterError) as err:
+        run_design_job(request)
+    assert err.value.name == "output_stage"
+    assert not (tmp_path / "x.toml").exists()

@@ -541,3 +541,24 @@ def test_cli_interrupted_json_stays_one_document(tmp_path, batch_files, calls, m
     data = json.loads(r.stdout)
     assert data["interrupted"] is True and [p["name"] for p in data["profiles"]] == ["o3"]
     assert "interrupted" in r.stderr
+
+
+def test_cli_short_runs_the_short_plan_as_measure_does(tmp_path, batch_files, monkeypatch):
+    # `grade --short` and `measure --short` share one option: the battery's short plan.
+    from audiodsm.evaluate.battery import BatteryPlan
+
+    plans = []
+
+    def plan_battery(profile, **kwargs):
+        plans.append(kwargs.get("plan"))
+        return fake_battery(profile, **kwargs)
+
+    monkeypatch.setattr("audiodsm.evaluate.grade._default_battery", lambda: plan_battery)
+    pdir, spec_path = batch_files
+    args = [str(pdir / "o5.toml"), "--spec", str(spec_path), "--jobs", "1", "--no-cache"]
+    assert run_cli(args).exit_code == 0
+    assert run_cli([*args, "--short"]).exit_code == 0
+    assert plans == [None, BatteryPlan.quick()]
+    for command in ("grade", "measure"):
+        help_text = CliRunner().invoke(main, [command, "--help"]).output
+        assert "--short" in help_text and "Shorter captures and fewer points" in help_text

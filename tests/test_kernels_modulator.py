@@ -5,8 +5,8 @@ import math
 import numpy as np
 import pytest
 
-from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
-from audiodsm.design.realize import STRUCTURES, realize_ntf
+from audiodsm.design.ntf import NoiseTransfer
+from audiodsm.design.realize import STRUCTURES, LoopRealization
 from audiodsm.stages import _kernels
 from audiodsm.stages.modulator import _kernel_key
 
@@ -138,13 +138,20 @@ CASES = [
 def make_loop(order, structure, kind, rng):
     """A realized loop: as designed, scaled (chain gains != 1) or with leaky zeros."""
     if kind == "leaky":
-        zeros = 0.99 * design_ntf(order, 32).zeros
-        ntf = ntf_from_zeros_poles(zeros, design_ntf(order, 32, max_gain=1.7).poles)
-        return realize_ntf(ntf, structure)
-    ntf = design_ntf(order, 32, max_gain=1.5 + 0.2 * (order % 3), optimize_zeros=order % 2 == 0)
-    loop = realize_ntf(ntf, structure)
+        zeros = 0.99 * NoiseTransfer.designed(order, osr=32).zeros
+        ntf = NoiseTransfer.from_roots(
+            zeros=zeros, poles=NoiseTransfer.designed(order, osr=32, out_of_band_gain=1.7).poles
+        )
+        return LoopRealization.for_ntf(ntf, structure=structure)
+    ntf = NoiseTransfer.designed(
+        order,
+        osr=32,
+        out_of_band_gain=1.5 + 0.2 * (order % 3),
+        zero_layout=("spread" if order % 2 == 0 else "dc"),
+    )
+    loop = LoopRealization.for_ntf(ntf, structure=structure)
     if kind == "scaled":
-        loop = loop.scaled(rng.uniform(0.5, 4.0, order))
+        loop = loop.rescaled(rng.uniform(0.5, 4.0, order))
     return loop
 
 
@@ -211,9 +218,13 @@ def test_generator_matches_splitmix64_reference_values():
 
 
 def test_specialised_kernel_is_chosen_for_designed_loops():
-    loop = realize_ntf(design_ntf(5, 64), "feedback")
+    loop = LoopRealization.for_ntf(NoiseTransfer.designed(5, osr=64), structure="feedback")
     assert _kernel_key(loop) == ("feedback", 5, True, True, 2)
-    loop = realize_ntf(design_ntf(4, 64, optimize_zeros=False), "error-feedback")
+    loop = LoopRealization.for_ntf(
+        NoiseTransfer.designed(4, osr=64, zero_layout="dc"), structure="error-feedback"
+    )
     assert _kernel_key(loop) == ("error-feedback", 4, True, True, 0)
-    scaled = realize_ntf(design_ntf(3, 64), "feedforward").scaled([2.0, 3.0, 1.0])
+    scaled = LoopRealization.for_ntf(
+        NoiseTransfer.designed(3, osr=64), structure="feedforward"
+    ).rescaled([2.0, 3.0, 1.0])
     assert _kernel_key(scaled) == ("feedforward", 3, True, False, 1)

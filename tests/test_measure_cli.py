@@ -4,9 +4,10 @@ import pytest
 from click.testing import CliRunner
 
 from audiodsm.cli import main
-from audiodsm.cli.measure import metrics_table, profile_paths
 from audiodsm.errors import ProfileError
 from audiodsm.evaluate.battery import METRIC_UNITS, BatteryPlan, run_battery
+from audiodsm.evaluate.grade import collect_profiles
+from audiodsm.evaluate.tables import metrics_table
 from audiodsm.profile import load_profile
 
 PROFILE = """name = "tiny"
@@ -77,12 +78,12 @@ def test_bad_profile_is_one_line_and_exit_2(tmp_path):
     assert result.exit_code == 2
 
 
-def test_profile_paths_expand_folders(tmp_path):
+def test_profile_folders_expand_to_their_toml_files(tmp_path):
     (tmp_path / "b.toml").write_text(PROFILE)
     (tmp_path / "a.toml").write_text(PROFILE)
     (tmp_path / "notes.txt").write_text("x")
-    assert [p.name for p in profile_paths([tmp_path])] == ["a.toml", "b.toml"]
+    assert [p.name for p, _ in collect_profiles([tmp_path])] == ["a.toml", "b.toml"]
     empty = tmp_path / "empty"
     empty.mkdir()
-    with pytest.raises(ProfileError, match="no .toml"):
-        profile_paths([empty])
+    with pytest.raises(ProfileError, match="no \\*.toml"):
+        collect_profiles([empty])

@@ -6,15 +6,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal
 
-from audiodsm.design.ntf import design_ntf, ntf_from_zeros_poles
-from audiodsm.design.realize import STRUCTURES, realize_ntf
+from audiodsm.design.ntf import NoiseTransfer
+from audiodsm.design.realize import STRUCTURES, LoopRealization
 from audiodsm.errors import ParameterError
 from audiodsm.stages.modulator import (
     Modulator,
     ModulatorState,
-    find_stability_limit,
-    max_stable_amplitude,
-    scale_states,
 )
 
 
@@ -47,7 +44,7 @@ def test_ideal_loop_in_band_noise(order, osr, rng):
     # small-angle approximation (< 0.01 dB).
     levels = 257
     delta = 2.0 / (levels - 1)
-    ntf = ntf_from_zeros_poles(np.ones(order), np.zeros(order))
+    ntf = NoiseTransfer.from_roots(zeros=np.ones(order), poles=np.zeros(order))
     mod = Modulator(ntf, "error-feedback", levels=levels)
     n = 1 << 18
     t = np.arange(n)
@@ -66,7 +63,7 @@ def test_tpdf_dither_adds_twice_the_quantization_noise():
     # the in-band power scales the same way: 10 log10(3) = 4.77 dB more than undithered.
     levels = 65
     delta = 2.0 / (levels - 1)
-    ntf = ntf_from_zeros_poles([1, 1], [0, 0])
+    ntf = NoiseTransfer.from_roots(zeros=[1, 1], poles=[0, 0])
     mod = Modulator(ntf, "error-feedback", levels=levels, dither_lsb=1.0, seed=3)
     n = 1 << 17
     x = 0.3 * np.sin(2 * np.pi * 0.00071 * np.arange(n))
@@ -92,7 +89,7 @@ def test_simulated_noise_spectrum_follows_designed_ntf(structure):
     # within +-1 dB (127 averages x 16 bins: the estimate's spread is about 0.1 dB).
     levels = 33
     delta = 2.0 / (levels - 1)
-    ntf = design_ntf(4, 64, max_gain=2.5, optimize_zeros=True)
+    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5, zero_layout="spread")
     mod = Modulator(ntf, structure, levels=levels, dither_lsb=1.0, seed=11)
     y, st = mod.run(np.zeros(1 << 20))
     assert st.overload_count[0] == 0
@@ -113,7 +110,7 @@ def test_simulated_noise_spectrum_follows_designed_ntf(structure):
 
 @pytest.mark.parametrize("structure", STRUCTURES)
 def test_first_order_single_bit_behaviour(structure, rng):
-    ntf = ntf_from_zeros_poles([1], [0])  # NTF = 1 - z^-1
+    ntf = NoiseTransfer.from_roots(zeros=[1], poles=[0])  # NTF = 1 - z^-1
     mod = Modulator(ntf, structure, levels=2)
     # zero input: the output alternates every clock, the fastest pattern
     y, _ = mod.run(np.zeros(64))
@@ -138,12 +135,12 @@ def test_first_order_single_bit_behaviour(structure, rng):
 def test_lee_rule_stable_at_gain_1_5_and_overloads_at_gain_4():
     n = 1_000_000
     x = 10 ** (-6 / 20) * np.sin(2 * np.pi * 997 / (48000 * 64) * np.arange(n))
-    calm = Modulator(design_ntf(5, 64, max_gain=1.5), "feedback", levels=2)
+    calm = Modulator(NoiseTransfer.designed(5, osr=64, out_of_band_gain=1.5), "feedback", levels=2)
     y, st = calm.run(x)
     assert st.overload_count[0] == 0
     assert np.all(np.abs(y) == 1)
     assert np.max(st.state_peak) < 10  # the states stay small: no runaway
-    wild = Modulator(design_ntf(5, 64, max_gain=4.0), "feedback", levels=2)
+    wild = Modulator(NoiseTransfer.designed(5, osr=64, out_of_band_gain=4.0), "feedback", levels=2)
     y, st = wild.run(x[:200_000])
     assert st.overload_count[0] > 0  # the guard saw it
     assert np.all(np.isfinite(y)) and np.all(np.abs(y) == 1)
@@ -157,7 +154,9 @@ def test_lee_rule_stable_at_gain_1_5_and_overloads_at_gain_4():
 @pytest.mark.parametrize("structure", STRUCTURES)
 @pytest.mark.parametrize(("levels", "dither"), [(2, 0.0), (9, 1.0)])
 def test_blocks_equal_one_call(structure, levels, dither, rng):
-    mod = Modulator(design_ntf(4, 32), structure, levels=levels, dither_lsb=dither, seed=5)
+    mod = Modulator(
+        NoiseTransfer.designed(4, osr=32), structure, levels=levels, dither_lsb=dither, seed=5
+    )
     x = 0.4 * np.sin(np.arange(5000) * 0.01)[:, None] * np.array([1.0, -0.7])
     whole, st_whole = mod.run(x)
     parts, st = [], None
@@ -175,14 +174,16 @@ def test_blocks_equal_one_call(structure, levels, dither, rng):
 
 
 def test_channels_are_independent():
-    mod = Modulator(design_ntf(3, 64), "feedback", levels=3)
+    mod = Modulator(NoiseTransfer.designed(3, osr=64), "feedback", levels=3)
     x = np.stack([0.3 * np.sin(np.arange(3000) * 0.02), 0.1 * np.cos(np.arange(3000) * 0.05)], 1)
     y, st = mod.run(x)
     for c in range(2):
         yc, stc = mod.run(x[:, c])
         np.testing.assert_array_equal(y[:, c], yc)
         np.testing.assert_array_equal(st.integrators[c], stc.integrators[0])
-    dithered = Modulator(design_ntf(3, 64), "feedback", levels=3, dither_lsb=1.0, seed=9)
+    dithered = Modulator(
+        NoiseTransfer.designed(3, osr=64), "feedback", levels=3, dither_lsb=1.0, seed=9
+    )
     y2, _ = dithered.run(x)
     y0, _ = dithered.run(x[:, 0])
     np.testing.assert_array_equal(y2[:, 0], y0)  # channel 0 uses the same stream alone
@@ -191,16 +192,16 @@ def test_channels_are_independent():
 
 def test_same_seed_same_bits_other_seed_other_bits():
     x = 0.2 * np.sin(np.arange(4000) * 0.03)
-    a, _ = Modulator(design_ntf(2, 64), levels=5, dither_lsb=1.0, seed=1).run(x)
-    b, _ = Modulator(design_ntf(2, 64), levels=5, dither_lsb=1.0, seed=1).run(x)
-    c, _ = Modulator(design_ntf(2, 64), levels=5, dither_lsb=1.0, seed=2).run(x)
+    a, _ = Modulator(NoiseTransfer.designed(2, osr=64), levels=5, dither_lsb=1.0, seed=1).run(x)
+    b, _ = Modulator(NoiseTransfer.designed(2, osr=64), levels=5, dither_lsb=1.0, seed=1).run(x)
+    c, _ = Modulator(NoiseTransfer.designed(2, osr=64), levels=5, dither_lsb=1.0, seed=2).run(x)
     np.testing.assert_array_equal(a, b)
     assert not np.array_equal(a, c)
 
 
 @pytest.mark.parametrize("structure", STRUCTURES)
 def test_trace_states_matches_run(structure):
-    mod = Modulator(design_ntf(5, 64), structure, levels=2)
+    mod = Modulator(NoiseTransfer.designed(5, osr=64), structure, levels=2)
     x = 0.3 * np.sin(np.arange(2000) * 0.01)
     y, st = mod.run(x)
     y2, states = mod.trace_states(x)
@@ -213,7 +214,9 @@ def test_trace_states_matches_run(structure):
 @pytest.mark.parametrize("guard", ["reset", "clamp"])
 @pytest.mark.parametrize("structure", STRUCTURES)
 def test_never_nan_on_extreme_finite_input(guard, structure, rng):
-    mod = Modulator(design_ntf(6, 32, max_gain=3.0), structure, levels=2, guard=guard)
+    mod = Modulator(
+        NoiseTransfer.designed(6, osr=32, out_of_band_gain=3.0), structure, levels=2, guard=guard
+    )
     x = np.concatenate([np.full(50, 1e300), rng.uniform(-1, 1, 200) * 1.7e308, np.full(50, -3.0)])
     y, st = mod.run(x)
     assert np.all(np.isfinite(y)) and np.all(np.abs(y) <= 1)
@@ -222,7 +225,12 @@ def test_never_nan_on_extreme_finite_input(guard, structure, rng):
 
 
 def test_clamp_keeps_states_within_bound():
-    mod = Modulator(design_ntf(5, 64, max_gain=4.0), "feedback", guard="clamp", state_bound=3.0)
+    mod = Modulator(
+        NoiseTransfer.designed(5, osr=64, out_of_band_gain=4.0),
+        "feedback",
+        guard="clamp",
+        state_bound=3.0,
+    )
     x = 0.7 * np.sin(np.arange(20000) * 0.003)
     _, states = mod.trace_states(x)
     assert np.max(np.abs(states)) <= 3.0
@@ -230,7 +238,7 @@ def test_clamp_keeps_states_within_bound():
 
 def test_output_levels_are_evenly_spaced():
     for levels in (2, 3, 4, 17, 1024):
-        mod = Modulator(design_ntf(2, 16), "feedforward", levels=levels)
+        mod = Modulator(NoiseTransfer.designed(2, osr=16), "feedforward", levels=levels)
         y, _ = mod.run(0.9 * np.sin(np.arange(20000) * 0.002))
         k = (y + 1) * (levels - 1) / 2
         np.testing.assert_allclose(k, np.round(k), atol=1e-9)
@@ -248,36 +256,38 @@ def test_stability_limit_single_bit_and_multi_bit():
     # loop with the same NTF goes close to full scale. The 0.3..0.9 bracket for a 5th-order,
     # gain-1.5 loop is common practice, not a published figure. The limit found must separate
     # a clean run from a collapsed one: a sine 0.1 above it fails the criterion.
-    ntf = design_ntf(5, 64, max_gain=1.5)
+    ntf = NoiseTransfer.designed(5, osr=64, out_of_band_gain=1.5)
     one_bit = Modulator(ntf, "feedback", levels=2)
-    lim = find_stability_limit(one_bit, osr=64)
-    assert 0.3 < lim.amplitude < 0.9
-    again = find_stability_limit(one_bit, osr=64, samples=32768)
-    assert again.amplitude == lim.amplitude  # deterministic
+    lim = one_bit.probe_stability(osr=64)
+    assert 0.3 < lim.stable_amplitude < 0.9
+    again = one_bit.probe_stability(osr=64, run_samples=32768)
+    assert again.stable_amplitude == lim.stable_amplitude  # deterministic
     n, settle = 32768, 4096
-    x = (lim.amplitude + 0.1) * np.sin(2 * np.pi * lim.frequency * np.arange(n + settle))
+    x = (lim.stable_amplitude + 0.1) * np.sin(
+        2 * np.pi * lim.test_frequency * np.arange(n + settle)
+    )
     y, st = one_bit.run(x)
     from audiodsm.stages.modulator import _in_band_sqnr_db
 
-    sqnr = _in_band_sqnr_db(y[settle:], int(round(lim.frequency * n)), 64)
-    expected = lim.reference_sqnr_db + 20 * np.log10((lim.amplitude + 0.1) / 0.01)
+    sqnr = _in_band_sqnr_db(y[settle:], int(round(lim.test_frequency * n)), 64)
+    expected = lim.reference_sqnr_db + 20 * np.log10((lim.stable_amplitude + 0.1) / 0.01)
     assert st.overload_count[0] > 0 or sqnr < expected - 6
     multi = Modulator(ntf, "feedback", levels=17)
-    assert max_stable_amplitude(multi, osr=64) > 0.9
+    assert multi.probe_stability(osr=64).stable_amplitude > 0.9
 
 
 @pytest.mark.parametrize("structure", STRUCTURES)
 def test_scale_states_bounds_the_states_and_keeps_the_ntf(structure):
-    ntf = design_ntf(5, 64, max_gain=1.5)
+    ntf = NoiseTransfer.designed(5, osr=64, out_of_band_gain=1.5)
     mod = Modulator(ntf, structure, levels=2)
-    scaled, lim = scale_states(mod, osr=64, bound=1.0)
-    peaks = lim.state_peak
+    scaled, lim = mod.with_scaled_states(osr=64, peak_target=1.0)
+    peaks = lim.state_peaks
     scaled_states = peaks if structure == "feedforward" else peaks[:-1]
     # re-simulated after scaling: each scaled state peaks at the bound (rounding changes a few
     # decisions, so allow 10 %)
     np.testing.assert_allclose(scaled_states, 1.0, rtol=0.1)
     grid = np.geomspace(1e-5, 0.5, 300)
-    back = scaled.loop.ntf_from_coefficients().response(grid)
+    back = scaled.loop.realized_ntf().response(grid)
     assert np.max(np.abs(back / ntf.response(grid) - 1)) < 1e-9
 
 
@@ -287,7 +297,7 @@ def test_scale_states_bounds_the_states_and_keeps_the_ntf(structure):
 
 
 def test_bad_input():
-    ntf = design_ntf(3, 64)
+    ntf = NoiseTransfer.designed(3, osr=64)
     with pytest.raises(ParameterError, match="structure"):
         Modulator(ntf, "round-robin")
     for levels in (1, 2**24 + 1, 2.5):
@@ -318,7 +328,7 @@ def test_bad_input():
     with pytest.raises(ParameterError, match="state"):
         mod.run(np.zeros(10), st)
     with pytest.raises(ParameterError, match="osr"):
-        max_stable_amplitude(mod, osr=2)
+        mod.probe_stability(osr=2)
     assert isinstance(st, ModulatorState)
     with pytest.raises(AttributeError):
         st.samples = 3  # frozen value
@@ -326,7 +336,7 @@ def test_bad_input():
 
 
 def test_realization_can_be_passed_in():
-    loop = realize_ntf(design_ntf(4, 64), "feedforward")
+    loop = LoopRealization.for_ntf(NoiseTransfer.designed(4, osr=64), structure="feedforward")
     mod = Modulator(loop, levels=3)
     assert mod.structure == "feedforward" and mod.order == 4
 
@@ -352,7 +362,7 @@ def test_any_finite_input_gives_valid_levels(samples, structure, levels, guard):
     assert np.all(np.isfinite(st_.integrators)) and np.all(np.isfinite(st_.state_peak))
 
 
-_PROPERTY_NTF = design_ntf(4, 32, max_gain=2.0)
+_PROPERTY_NTF = NoiseTransfer.designed(4, osr=32, out_of_band_gain=2.0)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -368,12 +378,14 @@ def test_power_of_two_scaling_gives_the_same_bits(structure, levels, dither, rng
     # rounding of each product and sum of the loop. Hence the scaled loop must compute the
     # unscaled states divided by s exactly, and the quantizer must see exactly the same
     # values: no tolerance at all.
-    ntf = design_ntf(5, 64, max_gain=1.5 if levels == 2 else 3.0)
+    ntf = NoiseTransfer.designed(5, osr=64, out_of_band_gain=1.5 if levels == 2 else 3.0)
     plain = Modulator(ntf, structure, levels=levels, dither_lsb=dither, seed=3)
     peaks = np.array([0.003, 0.07, 2.5, 40.0, 900.0])  # any positive peaks will do
     # a single-bit feedback loop may scale its quantizer-facing state too
     last_too = structure == "feedback" and levels == 2
-    loop = plain.loop.scaled(peaks, bound=1.0, power_of_two=True, quantizer_state=last_too)
+    loop = plain.loop.rescaled(
+        peaks, peak_target=1.0, powers_of_two=True, include_quantizer_state=last_too
+    )
     s = loop.state_scale
     assert (s[-1] != 1.0) == (structure == "feedforward" or last_too)
     assert np.all(np.exp2(np.round(np.log2(s))) == s)  # powers of two
@@ -389,20 +401,22 @@ def test_power_of_two_scaling_gives_the_same_bits(structure, levels, dither, rng
 
 @pytest.mark.parametrize("structure", STRUCTURES)
 def test_power_of_two_scale_states_peaks_between_half_bound_and_bound(structure):
-    ntf = design_ntf(5, 64, max_gain=1.5)
+    ntf = NoiseTransfer.designed(5, osr=64, out_of_band_gain=1.5)
     mod = Modulator(ntf, structure, levels=2)
     bound = 0.75
-    scaled, lim = scale_states(mod, osr=64, bound=bound, power_of_two=True, samples=16384)
+    scaled, lim = mod.with_scaled_states(
+        osr=64, peak_target=bound, powers_of_two=True, run_samples=16384
+    )
     # every state but the error-feedback loop's quantizer-facing one, which the quantizer
     # sizes (a single-bit feedback loop scales its last state too)
-    inner = lim.state_peak if structure != "error-feedback" else lim.state_peak[:-1]
+    inner = lim.state_peaks if structure != "error-feedback" else lim.state_peaks[:-1]
     # rounding s up to the next power of two puts every scaled peak in (bound/2, bound]; the
     # re-simulation is bit-exact (test above), so the bound holds with no tolerance
     assert np.all(inner <= bound) and np.all(inner > bound / 2)
     # and the NTF computed back from the scaled coefficients is the design to 1e-9 (the
-    # contract of realize_ntf)
+    # contract of LoopRealization.for_ntf)
     grid = np.geomspace(1e-5, 0.5, 300)
-    back = scaled.loop.ntf_from_coefficients().response(grid)
+    back = scaled.loop.realized_ntf().response(grid)
     assert np.max(np.abs(back / ntf.response(grid) - 1)) < 1e-9
 
 
@@ -413,7 +427,9 @@ def test_power_of_two_scale_states_peaks_between_half_bound_and_bound(structure)
 
 @pytest.mark.parametrize("shape", [(0,), (0, 1), (0, 3)])
 def test_empty_input_gives_empty_output_and_the_same_state(shape):
-    mod = Modulator(design_ntf(3, 64), "feedforward", levels=5, dither_lsb=1.0, seed=9)
+    mod = Modulator(
+        NoiseTransfer.designed(3, osr=64), "feedforward", levels=5, dither_lsb=1.0, seed=9
+    )
     channels = 1 if len(shape) == 1 else shape[1]
     _, state = mod.run(0.3 * np.ones((100, channels)))
     y, after = mod.run(np.zeros(shape), state)
@@ -429,14 +445,18 @@ def test_empty_input_gives_empty_output_and_the_same_state(shape):
 
 
 def test_scaled_quantizer_state_needs_a_single_bit_feedback_loop():
-    ntf = design_ntf(4, 64)
+    ntf = NoiseTransfer.designed(4, osr=64)
     peaks = np.array([0.5, 0.7, 0.9, 2.0])
-    loop = realize_ntf(ntf, "feedback").scaled(peaks, quantizer_state=True)
+    loop = LoopRealization.for_ntf(ntf, structure="feedback").rescaled(
+        peaks, include_quantizer_state=True
+    )
     assert loop.output_weight[-1] == 2.0
     Modulator(loop, levels=2)  # fine
     with pytest.raises(ParameterError, match="levels"):
         Modulator(loop, levels=3)
-    with pytest.raises(ParameterError, match="quantizer_state"):
-        realize_ntf(ntf, "error-feedback").scaled(peaks, quantizer_state=True)
+    with pytest.raises(ParameterError, match="include_quantizer_state"):
+        LoopRealization.for_ntf(ntf, structure="error-feedback").rescaled(
+            peaks, include_quantizer_state=True
+        )
     # without the option the quantizer-facing state keeps its size
-    assert realize_ntf(ntf, "feedback").scaled(peaks).state_scale[-1] == 1.0
+    assert LoopRealization.for_ntf(ntf, structure="feedback").rescaled(peaks).state_scale[-1] == 1.0

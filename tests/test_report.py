@@ -1,5 +1,6 @@
 import base64
 import csv
+import html
 import io
 import json
 import re
@@ -220,6 +221,22 @@ def test_plots_draw_on_a_given_axes():
     line = axes[4].get_lines()[0]
     np.testing.assert_array_equal(line.get_xdata(), [20.0, 997.0, 20000.0])
     np.testing.assert_array_equal(line.get_ydata(), [-0.01, 0.0, -0.05])
+
+
+def test_page_layout_ships_as_package_data_and_escapes_like_html_escape(batch):
+    # the layout is a Jinja2 template kept in the package; text reaches the page escaped as
+    # Python's html.escape(quote=True) escapes it (the standard library as the reference)
+    from importlib.resources import files
+
+    from audiodsm.evaluate.report import render_html
+
+    folder = files("audiodsm.evaluate").joinpath("templates")
+    assert folder.joinpath("report.html.j2").is_file()
+    assert folder.joinpath("report.css").is_file()
+    title = 'A "quoted" & <odd> title, isn\'t it'
+    page = render_html(batch, title=title)
+    assert f"<title>{html.escape(title, quote=True)}</title>" in page
+    assert f"<h1>{html.escape(title, quote=True)}</h1>" in page
 
 
 def test_importing_the_report_does_not_load_matplotlib():

@@ -1,6 +1,6 @@
 """The aligned text tables shared by the measure, grade and design commands."""
 
-from audiodsm.cli._table import aligned_lines
+from audiodsm.evaluate.tables import aligned_lines
 
 
 def test_columns_align_and_rule_matches_widths():

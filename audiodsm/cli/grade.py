@@ -8,53 +8,8 @@ from pathlib import Path
 
 import click
 
-from audiodsm.cli._table import aligned_lines
+from audiodsm.cli._options import short_plan_option
 from audiodsm.errors import ParameterError
-
-
-def _fmt(value, spec="+.2f"):
-    return "-" if value is None else format(value, spec)
-
-
-def summary_table(batch) -> list:
-    """One line per profile: rank, verdict, worst margin, failed targets, source."""
-    rows = [("rank", "profile", "verdict", "worst margin", "failed", "from")]
-    for rank, g in enumerate(batch.grades, 1):
-        worst = g.worst_margin
-        rows.append(
-            (
-                str(rank),
-                g.name,
-                "PASS" if g.passed else "FAIL",
-                "none" if worst == float("-inf") else f"{worst:+.2f}",
-                f"{g.failed_count}/{len(g.lines)}",
-                "cache" if g.cached else ("crashed" if g.failure else "run"),
-            )
-        )
-    return aligned_lines(rows, right=(0, 3, 4))
-
-
-def detail_table(batch) -> list:
-    """One line per profile and target: requirement, reading, margin, unit, result."""
-    rows = [("rank", "profile", "target", "requirement", "reading", "margin", "unit", "result")]
-    for rank, g in enumerate(batch.grades, 1):
-        for k, line in enumerate(g.lines):
-            t = line.target
-            rows.append(
-                (
-                    str(rank) if k == 0 else "",
-                    g.name if k == 0 else "",
-                    t.label,
-                    t.requirement,
-                    _fmt(line.value, ".2f"),
-                    _fmt(line.margin),
-                    t.unit,
-                    "pass"
-                    if line.passed
-                    else ("FAIL" if not line.reason else "FAIL: " + line.reason),
-                )
-            )
-    return aligned_lines(rows, right=(0, 4, 5))
 
 
 class _Bar:
@@ -107,20 +62,34 @@ class _Bar:
 @click.option("--no-cache", is_flag=True, help="Neither read nor write cached results.")
 @click.option("--recompute", is_flag=True, help="Run every battery again; refresh the cache.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Battery seed.")
+@short_plan_option
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
 def grade(
-    paths, spec_path, jobs, report_dir, as_json, cache_dir, no_cache, recompute, seed, no_progress
+    paths,
+    spec_path,
+    jobs,
+    report_dir,
+    as_json,
+    cache_dir,
+    no_cache,
+    recompute,
+    seed,
+    short,
+    no_progress,
 ):
     """Grade candidate PROFILE files (or folders of them) against a spec sheet.
 
     Every profile's chain goes through the test battery; each target of the spec sheet is
     graded pass or fail with a margin in the metric's unit (positive = better than the limit),
-    and profiles are ranked by their worst margin. Exit status: 0 when every target of every
-    profile passes, 1 when any fails, 2 on bad input, 130 when interrupted (finished results
-    stay cached; run the same command again to resume).
+    and profiles are ranked by their worst margin. With --short the battery runs its short
+    plan, as ``audiodsm measure --short`` does (cached apart from full runs). Exit status: 0
+    when every target of every profile passes, 1 when any fails, 2 on bad input, 130 when
+    interrupted (finished results stay cached; run the same command again to resume).
     """
+    from audiodsm.evaluate.battery import BatteryPlan
     from audiodsm.evaluate.grade import collect_profiles, default_cache_dir, grade_batch
     from audiodsm.evaluate.report import batch_to_dict
+    from audiodsm.evaluate.tables import detail_table, summary_table
     from audiodsm.spec import load_spec
 
     if jobs is not None and not 1 <= jobs <= 256:
@@ -145,6 +114,7 @@ def grade(
             cache_dir=cache,
             recompute=recompute,
             seed=seed,
+            battery_options={"plan": BatteryPlan.quick()} if short else None,
             progress=bar,
         )
     finally:

@@ -12,90 +12,13 @@ The progress bar goes to stderr, so it never mixes with the JSON.
 from __future__ import annotations
 
 import json
-import math
 import sys
-from pathlib import Path
 
 import click
 
-from audiodsm.cli._table import aligned_lines
+from audiodsm.cli._options import short_plan_option
 
-__all__ = ["measure", "profile_paths", "metrics_table"]
-
-
-def profile_paths(arguments) -> list[Path]:
-    """Expand profile arguments: a file stays, a folder gives its ``*.toml`` files (sorted).
-
-    Parameters
-    ----------
-    arguments : iterable of str or Path
-
-    Returns
-    -------
-    list of Path
-
-    Raises
-    ------
-    ProfileError
-        A folder that holds no ``.toml`` file, or a path that does not exist.
-    """
-    from audiodsm.errors import ProfileError
-
-    out = []
-    for arg in arguments:
-        p = Path(arg)
-        if p.is_dir():
-            found = sorted(q for q in p.glob("*.toml") if q.is_file())
-            if not found:
-                raise ProfileError(str(p), "", "the folder holds no .toml profile")
-            out.extend(found)
-        elif p.exists():
-            out.append(p)
-        else:
-            raise ProfileError(str(p), "", "no such file or folder")
-    return out
-
-
-def _cell(value, unit: str) -> str:
-    if value is None:
-        return "-"
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return "-"
-        if unit == "Hz":
-            return f"{value:.0f}"
-        return f"{value:.2f}" if abs(value) < 1e5 else f"{value:.4g}"
-    return str(value)
-
-
-def metrics_table(names: list[str], metric_rows: list[dict]) -> str:
-    """An aligned text table: one row per metric (with its unit), one column per profile.
-
-    Parameters
-    ----------
-    names : list of str
-        Column titles (profile names).
-    metric_rows : list of dict
-        One metrics dict per profile, in the order of ``names``.
-
-    Returns
-    -------
-    str
-    """
-    from audiodsm.evaluate.battery import METRIC_UNITS
-
-    keys = [k for k in METRIC_UNITS if any(k in m for m in metric_rows)]
-    header = ["metric", "unit", *names]
-    rows = [header]
-    for k in keys:
-        unit = METRIC_UNITS[k][1]
-        rows.append([k, unit or "-", *(_cell(m.get(k), unit) for m in metric_rows)])
-    lines = aligned_lines(rows, right=range(2, len(header)), rule=True)
-    return "\n".join(lines)
+__all__ = ["measure"]
 
 
 class _Bar:
@@ -141,11 +64,7 @@ class _Bar:
     show_default=True,
     help="Mixed into every run's dither seed.",
 )
-@click.option(
-    "--short",
-    is_flag=True,
-    help="Shorter captures and fewer points (a preview; coarser resolution).",
-)
+@short_plan_option
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
 def measure(profiles, as_json, jobs, seed, short, no_progress):
     """Run the test battery on each PROFILE (a file, or a folder of .toml files).
@@ -157,10 +76,10 @@ def measure(profiles, as_json, jobs, seed, short, no_progress):
     for PWM stages, pulse counts and switching rate.
     """
     from audiodsm.evaluate.battery import BatteryPlan, run_battery
-    from audiodsm.profile import load_profile
+    from audiodsm.evaluate.grade import collect_profiles
+    from audiodsm.evaluate.tables import metrics_table
 
-    paths = profile_paths(profiles)
-    loaded = [(p, load_profile(p)) for p in paths]  # every file checked before any runs
+    loaded = collect_profiles(profiles)  # every file checked before any runs
     plan = BatteryPlan.quick() if short else BatteryPlan()
     names, rows = [], []
     for path, prof in loaded:

@@ -5,12 +5,12 @@ numerator and denominator are both monic in z and the zpk gain is 1.
 
 Two ways to get one:
 
-- :func:`design_ntf` designs a low-pass-band NTF from an order, an oversampling ratio and a
-  bound on the peak gain (Lee's rule). Zeros sit at DC or at the optimal in-band positions
-  (roots of the Legendre polynomial of the order, scaled to the band edge); the poles are a
-  maximally flat (Butterworth-type) high-pass set whose cutoff is searched so that the peak
-  gain equals the bound.
-- :func:`ntf_from_zeros_poles` checks a user's zeros and poles (causal, stable, real
+- :meth:`NoiseTransfer.designed` designs a low-pass-band NTF from an order, an oversampling
+  ratio and a bound on the out-of-band gain (Lee's rule). Zeros sit at DC or spread over the
+  band at the optimal positions (roots of the Legendre polynomial of the order, scaled to the
+  band edge); the poles are a maximally flat (Butterworth-type) high-pass set whose cutoff is
+  searched so that the largest gain equals the bound.
+- :meth:`NoiseTransfer.from_roots` checks a user's zeros and poles (causal, stable, real
   coefficients, finite) and wraps them.
 
 Frequencies are in cycles per modulator sample (0 .. 0.5) unless a name says otherwise; the
@@ -28,11 +28,14 @@ from numpy.polynomial import legendre
 from scipy import optimize
 
 from audiodsm.errors import ParameterError
+from audiodsm.limits import DESIGN_OSR_RANGE, ORDER_RANGE, ZERO_LAYOUTS
 
-__all__ = ["NoiseTransfer", "design_ntf", "ntf_from_zeros_poles", "optimal_zero_positions"]
+__all__ = ["NoiseTransfer"]
 
-MIN_ORDER, MAX_ORDER = 1, 8
-MIN_OSR, MAX_OSR = 4, 1024
+MIN_ORDER, MAX_ORDER = ORDER_RANGE
+MIN_OSR, MAX_OSR = DESIGN_OSR_RANGE
+_ORDER_EXPECTED = f"an integer from {MIN_ORDER} to {MAX_ORDER}"
+_LAYOUT_EXPECTED = " or ".join(repr(v) for v in ZERO_LAYOUTS)
 
 # Gauss-Legendre nodes used by the in-band quadrature: exact for polynomials of degree
 # 2 * 48 - 1 = 95 on each piece, far above the degree 4 * 8 = 32 of |numerator|^2 in the band.
@@ -50,8 +53,8 @@ _SYMMETRY_RTOL = 1e-9
 class NoiseTransfer:
     """A noise transfer function H(z) = gain * prod(z - zeros) / prod(z - poles).
 
-    Build one with :func:`design_ntf` or :func:`ntf_from_zeros_poles`; constructing it
-    directly skips the checks those functions make.
+    Build one with :meth:`designed` or :meth:`from_roots`; constructing it directly skips
+    the checks those make.
 
     Parameters
     ----------
@@ -61,10 +64,11 @@ class NoiseTransfer:
         The zpk gain; 1.0 for a causal loop (H(inf) = 1).
     osr : float or None
         Oversampling ratio the design was made for (None for a user NTF).
-    max_gain : float or None
-        Requested peak gain of the design (None for a user NTF).
-    optimized : bool or None
-        Whether the design spread its zeros optimally over the band (None for a user NTF).
+    out_of_band_gain_target : float or None
+        Out-of-band gain the design was asked for (None for a user NTF).
+    zero_layout : str or None
+        ``"spread"`` (zeros at the optimal in-band positions) or ``"dc"`` (all at DC) for a
+        design; None for a user NTF.
 
     Notes
     -----
@@ -76,8 +80,8 @@ class NoiseTransfer:
     poles: np.ndarray
     gain: float = 1.0
     osr: float | None = None
-    max_gain: float | None = None
-    optimized: bool | None = None
+    out_of_band_gain_target: float | None = None
+    zero_layout: str | None = None
 
     def __post_init__(self):
         for name in ("zeros", "poles"):
@@ -107,8 +111,8 @@ class NoiseTransfer:
     def _magnitude(self, freq):
         return np.abs(self.response(freq))
 
-    def peak(self, *, refine: bool = True) -> tuple[float, float]:
-        """Peak magnitude of the response over 0..0.5 and the frequency where it occurs.
+    def largest_gain(self, *, refine: bool = True) -> tuple[float, float]:
+        """Largest magnitude of the response over 0..0.5 and the frequency where it occurs.
 
         Parameters
         ----------
@@ -128,6 +132,12 @@ class NoiseTransfer:
         |H| is evaluated on a dense uniform grid plus the pole angles (where sharp
         resonances sit); the few highest local maxima are then refined by a bounded
         Brent search between their grid neighbours to about 1e-12 in frequency.
+
+        References
+        ----------
+        .. [1] R. P. Brent, "Algorithms for Minimization without Derivatives", Prentice-Hall,
+           1973, ch. 5 (the bounded one-dimensional search, as in
+           :func:`scipy.optimize.minimize_scalar`).
         """
         pole_freqs = np.abs(np.angle(self.poles)) / (2 * np.pi)
         grid = np.unique(np.concatenate([_PEAK_GRID, pole_freqs]))
@@ -152,14 +162,21 @@ class NoiseTransfer:
                 best_gain, best_freq = float(-res.fun), float(res.x)
         return best_gain, best_freq
 
-    def peak_gain(self) -> float:
-        """Peak magnitude max |H(e^{jw})| over the whole band 0..0.5 (linear).
+    def out_of_band_gain(self) -> float:
+        """Largest magnitude max |H(e^{jw})| over the whole band 0..0.5 (linear).
 
-        See :meth:`peak` for the method; it also returns the peak frequency.
+        For a noise-shaping NTF this maximum lies out of band; Lee's rule bounds it. See
+        :meth:`largest_gain` for the method; it also returns the frequency.
+
+        References
+        ----------
+        .. [1] K. C.-H. Chao, S. Nadeem, W. L. Lee and C. G. Sodini, "A higher order topology
+           for interpolative modulators for oversampling A/D converters", IEEE Trans. Circuits
+           Syst. 37(3), 1990 (the bound on the NTF's out-of-band gain).
         """
-        return self.peak()[0]
+        return self.largest_gain()[0]
 
-    def in_band_noise_gain(self, osr: float) -> float:
+    def in_band_noise_fraction(self, osr: float) -> float:
         """Fraction of white noise power that the NTF leaves in the band 0..0.5/osr.
 
         Parameters
@@ -211,7 +228,7 @@ class NoiseTransfer:
             total += float(np.sum(half * _GL_WEIGHTS[None, :] * np.abs(self.response(f)) ** 2))
         return total
 
-    def predicted_sqnr_db(self, levels: int, osr: float, amplitude_dbfs: float = 0.0) -> float:
+    def linear_sqnr_db(self, *, levels: int, osr: float, level_dbfs: float = 0.0) -> float:
         """Signal-to-quantization-noise ratio in the band, from the linear white-noise model.
 
         Parameters
@@ -221,14 +238,14 @@ class NoiseTransfer:
             Delta = 2 / (levels - 1).
         osr : float
             Oversampling ratio (>= 1); the band is 0..0.5/osr.
-        amplitude_dbfs : float
-            Sine amplitude in dBFS (<= 0); 0 dBFS is a sine of peak 1.0.
+        level_dbfs : float
+            Sine level in dBFS (<= 0); 0 dBFS is a sine of peak 1.0.
 
         Returns
         -------
         float
             10 log10(signal power / in-band noise power) in dB, with signal power A^2/2 and
-            noise power (Delta^2/12) * :meth:`in_band_noise_gain`.
+            noise power (Delta^2/12) * :meth:`in_band_noise_fraction`.
 
         Notes
         -----
@@ -242,16 +259,16 @@ class NoiseTransfer:
            IEEE Press / Wiley, 2005, ch. 2 and 4 (peak SQNR of an ideal modulator).
         """
         levels = _check_int("levels", levels, low=2, high=None, expected="an integer >= 2")
-        amplitude_dbfs = _check_real(
-            "amplitude_dbfs", amplitude_dbfs, high=0.0, expected="a finite number <= 0"
+        level_dbfs = _check_real(
+            "level_dbfs", level_dbfs, high=0.0, expected="a finite number <= 0"
         )
-        amplitude = 10.0 ** (amplitude_dbfs / 20.0)
+        amplitude = 10.0 ** (level_dbfs / 20.0)
         step = 2.0 / (levels - 1)
-        noise = step**2 / 12.0 * self.in_band_noise_gain(osr)
+        noise = step**2 / 12.0 * self.in_band_noise_fraction(osr)
         return 10.0 * math.log10(0.5 * amplitude**2 / noise)
 
-    def zero_frequencies(self, *, osr: float | None = None) -> np.ndarray:
-        """Frequencies of the zeros on or above the real axis, ascending.
+    def notch_frequencies(self, *, osr: float | None = None) -> np.ndarray:
+        """Frequencies of the zeros (the noise notches) on or above the real axis, ascending.
 
         Parameters
         ----------
@@ -264,6 +281,11 @@ class NoiseTransfer:
         ndarray
             One value per real zero and per conjugate pair, in cycles per sample (or in
             band-edge units when ``osr`` is given).
+
+        References
+        ----------
+        .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+           IEEE Press / Wiley, 2005, ch. 4 (zero positions normalized to the band edge).
         """
         upper = self.zeros[self.zeros.imag >= 0]
         freqs = np.sort(np.abs(np.angle(upper))) / (2 * np.pi)
@@ -279,7 +301,7 @@ class NoiseTransfer:
         -------
         dict
             Keys ``order``, ``zeros``, ``poles``, ``gain`` and, for designed NTFs, ``osr``,
-            ``max_gain``, ``optimized``. :func:`NoiseTransfer.from_dict` reads it back.
+            ``out_of_band_gain_target``, ``zero_layout``. :meth:`from_dict` reads it back.
         """
         out = {
             "order": self.order,
@@ -287,7 +309,7 @@ class NoiseTransfer:
             "poles": [[float(v.real), float(v.imag)] for v in self.poles],
             "gain": self.gain,
         }
-        for key in ("osr", "max_gain", "optimized"):
+        for key in ("osr", "out_of_band_gain_target", "zero_layout"):
             value = getattr(self, key)
             if value is not None:
                 out[key] = value
@@ -302,17 +324,25 @@ class NoiseTransfer:
         data : dict
             Must hold ``zeros`` and ``poles`` (lists of ``[real, imag]`` pairs or of real
             numbers); may hold ``gain``, ``order`` (checked against the pole count), ``osr``,
-            ``max_gain`` and ``optimized``.
+            ``out_of_band_gain_target`` and ``zero_layout``.
 
         Raises
         ------
         ParameterError
             On a missing or unknown key, a malformed value, or an NTF that fails the checks
-            of :func:`ntf_from_zeros_poles`.
+            of :meth:`from_roots`.
         """
         if not isinstance(data, dict):
             raise ParameterError("data", type(data).__name__, "a dict from NoiseTransfer.to_dict")
-        allowed = {"order", "zeros", "poles", "gain", "osr", "max_gain", "optimized"}
+        allowed = {
+            "order",
+            "zeros",
+            "poles",
+            "gain",
+            "osr",
+            "out_of_band_gain_target",
+            "zero_layout",
+        }
         unknown = sorted(set(data) - allowed)
         if unknown:
             raise ParameterError("data", unknown[0], f"keys among {sorted(allowed)}")
@@ -321,21 +351,222 @@ class NoiseTransfer:
                 raise ParameterError(key, None, "a list of [real, imag] pairs (key missing)")
         zeros = _complex_list(data["zeros"], "zeros")
         poles = _complex_list(data["poles"], "poles")
-        ntf = ntf_from_zeros_poles(zeros, poles, gain=data.get("gain", 1.0))
+        ntf = cls.from_roots(zeros=zeros, poles=poles, gain=data.get("gain", 1.0))
         if "order" in data and data["order"] != ntf.order:
             raise ParameterError("order", data["order"], f"{ntf.order}, the number of poles")
         extra = {}
         if data.get("osr") is not None:
             extra["osr"] = _check_real("osr", data["osr"], low=1.0, expected="a number >= 1")
-        if data.get("max_gain") is not None:
-            extra["max_gain"] = _check_real(
-                "max_gain", data["max_gain"], low=1.0, low_open=True, expected="a number > 1"
+        target = data.get("out_of_band_gain_target")
+        if target is not None:
+            extra["out_of_band_gain_target"] = _check_real(
+                "out_of_band_gain_target", target, low=1.0, low_open=True, expected="a number > 1"
             )
-        if data.get("optimized") is not None:
-            if not isinstance(data["optimized"], bool):
-                raise ParameterError("optimized", data["optimized"], "true or false")
-            extra["optimized"] = data["optimized"]
+        layout = data.get("zero_layout")
+        if layout is not None:
+            if layout not in ZERO_LAYOUTS:
+                raise ParameterError("zero_layout", layout, _LAYOUT_EXPECTED)
+            extra["zero_layout"] = layout
         return cls(ntf.zeros, ntf.poles, ntf.gain, **extra)
+
+    # -----------------------------------------------------------------------------------------
+    # constructors
+
+    @classmethod
+    def from_roots(cls, *, zeros, poles, gain: float = 1.0) -> NoiseTransfer:
+        """Check a user-given NTF and wrap it as a :class:`NoiseTransfer`.
+
+        Parameters
+        ----------
+        zeros, poles : array_like of complex, keyword-only
+            Roots in the z-plane, as many zeros as poles (1 to 8 of each). Complex roots must
+            come in conjugate pairs (to 1e-9 relative; they are then made exactly conjugate).
+        gain : float, keyword-only
+            The zpk gain. A causal delta-sigma loop needs NTF(z -> inf) = gain = 1.
+
+        Returns
+        -------
+        NoiseTransfer
+            With ``osr``, ``out_of_band_gain_target`` and ``zero_layout`` left as None.
+
+        Raises
+        ------
+        ParameterError
+            Non-finite or non-1-D roots; unequal counts or an order outside 1..8 (the NTF would
+            not be causal with NTF(inf) = 1, or not realizable here); gain != 1; a pole on or
+            outside the unit circle; roots not in conjugate pairs.
+
+        References
+        ----------
+        .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+           IEEE Press / Wiley, 2005, ch. 4 (realizability: a causal loop has NTF(inf) = 1).
+        """
+        zeros = _as_roots(zeros, "zeros")
+        poles = _as_roots(poles, "poles")
+        if len(poles) < MIN_ORDER or len(poles) > MAX_ORDER:
+            raise ParameterError(
+                "poles", poles.tolist(), f"between {MIN_ORDER} and {MAX_ORDER} poles (the order)"
+            )
+        if len(zeros) != len(poles):
+            raise ParameterError(
+                "zeros",
+                zeros.tolist(),
+                f"exactly {len(poles)} zeros, as many as poles (causal, NTF(inf) = 1)",
+            )
+        gain = _check_real("gain", gain, expected="1.0 (a causal loop has NTF(inf) = 1)")
+        if abs(gain - 1.0) > 1e-12:
+            raise ParameterError("gain", gain, "1.0 (a causal loop has NTF(inf) = 1)")
+        radius = np.abs(poles)
+        if np.any(radius >= 1.0):
+            bad = poles[np.argmax(radius)]
+            raise ParameterError(
+                "poles", complex(bad), "all poles strictly inside the unit circle (|p| < 1)"
+            )
+        zeros = _symmetrize(zeros, "zeros")
+        poles = _symmetrize(poles, "poles")
+        return cls(zeros, poles, 1.0)
+
+    @staticmethod
+    def spread_zero_fractions(order: int) -> np.ndarray:
+        """Optimal in-band NTF zero frequencies for an order, as fractions of the band edge.
+
+        Minimizing the in-band integral of prod(w^2 - w_i^2) over the band (the small-angle
+        form of the in-band noise power) gives the roots of the Legendre polynomial of the
+        order.
+
+        Parameters
+        ----------
+        order : int
+            Loop order, 1..8.
+
+        Returns
+        -------
+        ndarray
+            ceil(order/2) non-negative values in [0, 1), ascending; odd orders include 0 (a
+            zero at DC).
+
+        References
+        ----------
+        .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+           IEEE Press / Wiley, 2005, ch. 4 (optimal NTF zeros).
+        """
+        order = _check_int("order", order, low=MIN_ORDER, high=MAX_ORDER, expected=_ORDER_EXPECTED)
+        roots = legendre.legroots([0] * order + [1])
+        positive = np.sort(roots[roots > 1e-12].real)
+        return np.concatenate([[0.0], positive]) if order % 2 else positive
+
+    @classmethod
+    def designed(
+        cls, order: int, *, osr: float, out_of_band_gain: float = 1.5, zero_layout: str = "spread"
+    ) -> NoiseTransfer:
+        """Design a low-pass-band NTF with a bounded out-of-band gain.
+
+        Parameters
+        ----------
+        order : int
+            Loop order, 1..8.
+        osr : float, keyword-only
+            Oversampling ratio, 4..1024; the signal band is 0..0.5/osr.
+        out_of_band_gain : float, keyword-only
+            Largest gain max |NTF(e^{jw})| of the result (> 1). Lee's rule: about 1.5 for a
+            single-bit quantizer (common practice), larger for multi-bit ones.
+        zero_layout : {"spread", "dc"}, keyword-only
+            Spread the zeros over the band at the optimal positions (``"spread"``, see
+            :meth:`spread_zero_fractions`) or put them all at DC (``"dc"``).
+
+        Returns
+        -------
+        NoiseTransfer
+            Causal (NTF(inf) = 1), with ``osr``, ``out_of_band_gain_target`` and
+            ``zero_layout`` recorded.
+
+        Raises
+        ------
+        ParameterError
+            Order outside 1..8, OSR outside 4..1024, out_of_band_gain <= 1, an unknown
+            zero_layout, or a gain this pole family cannot reach for the order and OSR (the
+            message gives the reachable range).
+
+        Notes
+        -----
+        Zeros: all at z = 1, or at exp(+-j x_i pi/osr) with x_i the roots of the Legendre
+        polynomial of the order (odd orders keep one zero at DC) [1]_.
+
+        Poles: the poles of a digital Butterworth (maximally flat) high-pass of the order,
+        whose pre-warped cutoff t = tan(w_c/2) is searched so that the largest gain equals
+        ``out_of_band_gain`` [2]_. The search scans t downward on a logarithmic grid from a
+        high cutoff (poles near z = -1, large gain) and brackets the first crossing; Brent's
+        method then solves it to about 1e-12 in gain. Starting from the high end picks the
+        branch whose poles lie well outside the band; with spread zeros the largest gain rises
+        again at very low cutoffs (poles close to the in-band zeros).
+
+        References
+        ----------
+        .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+           IEEE Press / Wiley, 2005, ch. 4 (NTF design, optimal zeros).
+        .. [2] K. C.-H. Chao, S. Nadeem, W. L. Lee and C. G. Sodini, "A higher order topology
+           for interpolative modulators for oversampling A/D converters", IEEE Trans. Circuits
+           Syst. 37(3), 1990 (bound on the out-of-band NTF gain).
+        """
+        order = _check_int("order", order, low=MIN_ORDER, high=MAX_ORDER, expected=_ORDER_EXPECTED)
+        osr = _check_real(
+            "osr", osr, low=MIN_OSR, high=MAX_OSR, expected=f"a number from {MIN_OSR} to {MAX_OSR}"
+        )
+        target = _check_real(
+            "out_of_band_gain",
+            out_of_band_gain,
+            low=1.0,
+            low_open=True,
+            expected="a finite number > 1",
+        )
+        if not isinstance(zero_layout, str) or zero_layout not in ZERO_LAYOUTS:
+            raise ParameterError("zero_layout", zero_layout, _LAYOUT_EXPECTED)
+        zeros = _zeros_for(order, osr, zero_layout)
+
+        def excess(log_t, refine=True):
+            ntf = cls(zeros, _butterworth_highpass_poles(order, math.exp(log_t)))
+            return ntf.largest_gain(refine=refine)[0] - target
+
+        # Scan downward with the cheap grid maximum (a lower bound of the largest gain), then
+        # confirm the bracket with refined values before solving.
+        grid = np.linspace(math.log(_T_HIGH), math.log(_T_LOW), _T_STEPS)
+        prev_x, prev_v = grid[0], excess(grid[0])
+        if prev_v < 0:
+            raise ParameterError(
+                "out_of_band_gain",
+                target,
+                f"at most {prev_v + target:.6g} for order {order} with this pole family",
+            )
+        lowest = prev_v
+        refined = False
+        for x in grid[1:]:
+            v = excess(x, refine=refined)
+            if v <= 0 and not refined:
+                v = excess(x)  # confirm with the refined value; keep refining from here on
+                refined = True
+            lowest = min(lowest, v)
+            if v <= 0:
+                if v == 0:
+                    log_t = x
+                else:
+                    log_t = optimize.brentq(excess, x, prev_x, xtol=1e-14, rtol=1e-15, maxiter=200)
+                poles = _canonical(_butterworth_highpass_poles(order, math.exp(log_t)))
+                return cls(
+                    _canonical(zeros),
+                    poles,
+                    1.0,
+                    osr=osr,
+                    out_of_band_gain_target=target,
+                    zero_layout=zero_layout,
+                )
+            prev_x, prev_v = x, v
+        placement = "zeros spread over the band" if zero_layout == "spread" else "zeros at DC"
+        raise ParameterError(
+            "out_of_band_gain",
+            target,
+            f"more than {lowest + target:.6g}, the lowest out-of-band gain reachable for order "
+            f"{order} at OSR {osr:g} with {placement}",
+        )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -428,92 +659,13 @@ def _symmetrize(roots, name):
 
 
 # ---------------------------------------------------------------------------------------------
-# public constructors
+# design helpers
 
 
-def ntf_from_zeros_poles(zeros, poles, gain: float = 1.0) -> NoiseTransfer:
-    """Check a user-given NTF and wrap it as a :class:`NoiseTransfer`.
-
-    Parameters
-    ----------
-    zeros, poles : array_like of complex
-        Roots in the z-plane, as many zeros as poles (1 to 8 of each). Complex roots must come
-        in conjugate pairs (to 1e-9 relative; they are then made exactly conjugate).
-    gain : float
-        The zpk gain. A causal delta-sigma loop needs NTF(z -> inf) = gain = 1.
-
-    Returns
-    -------
-    NoiseTransfer
-        With ``osr``, ``max_gain`` and ``optimized`` left as None.
-
-    Raises
-    ------
-    ParameterError
-        Non-finite or non-1-D roots; unequal counts or an order outside 1..8 (the NTF would
-        not be causal with NTF(inf) = 1, or not realizable here); gain != 1; a pole on or
-        outside the unit circle; roots not in conjugate pairs.
-    """
-    zeros = _as_roots(zeros, "zeros")
-    poles = _as_roots(poles, "poles")
-    if len(poles) < MIN_ORDER or len(poles) > MAX_ORDER:
-        raise ParameterError(
-            "poles", poles.tolist(), f"between {MIN_ORDER} and {MAX_ORDER} poles (the order)"
-        )
-    if len(zeros) != len(poles):
-        raise ParameterError(
-            "zeros",
-            zeros.tolist(),
-            f"exactly {len(poles)} zeros, as many as poles (causal, NTF(inf) = 1)",
-        )
-    gain = _check_real("gain", gain, expected="1.0 (a causal loop has NTF(inf) = 1)")
-    if abs(gain - 1.0) > 1e-12:
-        raise ParameterError("gain", gain, "1.0 (a causal loop has NTF(inf) = 1)")
-    radius = np.abs(poles)
-    if np.any(radius >= 1.0):
-        bad = poles[np.argmax(radius)]
-        raise ParameterError(
-            "poles", complex(bad), "all poles strictly inside the unit circle (|p| < 1)"
-        )
-    zeros = _symmetrize(zeros, "zeros")
-    poles = _symmetrize(poles, "poles")
-    return NoiseTransfer(zeros, poles, 1.0)
-
-
-def optimal_zero_positions(order: int) -> np.ndarray:
-    """Optimal NTF zero frequencies for a given order, in units of the band edge.
-
-    Minimizing the in-band integral of prod(w^2 - w_i^2) over the band (the small-angle form
-    of the in-band noise power) gives the roots of the Legendre polynomial of the order.
-
-    Parameters
-    ----------
-    order : int
-        Loop order, 1..8.
-
-    Returns
-    -------
-    ndarray
-        ceil(order/2) non-negative values in [0, 1), ascending; odd orders include 0 (a zero
-        at DC).
-
-    References
-    ----------
-    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
-       IEEE Press / Wiley, 2005, ch. 4 (optimal NTF zeros).
-    """
-    order = _check_int(
-        "order", order, low=MIN_ORDER, high=MAX_ORDER, expected="an integer from 1 to 8"
-    )
-    roots = legendre.legroots([0] * order + [1])
-    positive = np.sort(roots[roots > 1e-12].real)
-    return np.concatenate([[0.0], positive]) if order % 2 else positive
-
-
-def _zeros_for(order, osr, optimize_zeros):
-    if not optimize_zeros:
+def _zeros_for(order, osr, zero_layout):
+    if zero_layout == "dc":
         return np.ones(order, dtype=complex)
-    pos = optimal_zero_positions(order) * np.pi / osr  # radians per sample
+    pos = NoiseTransfer.spread_zero_fractions(order) * np.pi / osr  # radians per sample
     zeros = []
     for w in pos:
         if w == 0.0:
@@ -541,111 +693,3 @@ def _butterworth_highpass_poles(order, t):
     if order % 2:
         poles.append(complex((t - 1.0) / (-1.0 - t)))  # p = -1 (the real prototype pole)
     return np.array(poles, dtype=complex)
-
-
-def design_ntf(
-    order: int, osr: float, *, max_gain: float = 1.5, optimize_zeros: bool = True
-) -> NoiseTransfer:
-    """Design a low-pass-band NTF with a bounded peak gain.
-
-    Parameters
-    ----------
-    order : int
-        Loop order, 1..8.
-    osr : float
-        Oversampling ratio, 4..1024; the signal band is 0..0.5/osr.
-    max_gain : float
-        Peak gain max |NTF(e^{jw})| of the result (> 1). Lee's rule: about 1.5 for a
-        single-bit quantizer (common practice), larger for multi-bit ones.
-    optimize_zeros : bool
-        Spread the zeros over the band at the optimal positions (True) or put them all at
-        DC (False).
-
-    Returns
-    -------
-    NoiseTransfer
-        Causal (NTF(inf) = 1), with ``osr``, ``max_gain`` and ``optimized`` recorded.
-
-    Raises
-    ------
-    ParameterError
-        Order outside 1..8, OSR outside 4..1024, max_gain <= 1, or a max_gain this pole
-        family cannot reach for the order and OSR (the message gives the reachable range).
-
-    Notes
-    -----
-    Zeros: all at z = 1, or at exp(+-j x_i pi/osr) with x_i the roots of the Legendre
-    polynomial of the order (odd orders keep one zero at DC) [1]_.
-
-    Poles: the poles of a digital Butterworth (maximally flat) high-pass of the order, whose
-    pre-warped cutoff t = tan(w_c/2) is searched so that the peak gain equals ``max_gain``
-    [2]_. The search scans t downward on a logarithmic grid from a high cutoff (poles near
-    z = -1, large gain) and brackets the first crossing; Brent's method then solves it to
-    about 1e-12 in gain. Starting from the high end picks the branch whose poles lie well
-    outside the band; with optimized zeros the peak gain rises again at very low cutoffs
-    (poles close to the in-band zeros).
-
-    References
-    ----------
-    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
-       IEEE Press / Wiley, 2005, ch. 4 (NTF design, optimal zeros).
-    .. [2] K. C.-H. Chao, S. Nadeem, W. L. Lee and C. G. Sodini, "A higher order topology for
-       interpolative modulators for oversampling A/D converters", IEEE Trans. Circuits Syst.
-       37(3), 1990 (peak NTF gain bound).
-    """
-    order = _check_int(
-        "order", order, low=MIN_ORDER, high=MAX_ORDER, expected="an integer from 1 to 8"
-    )
-    osr = _check_real(
-        "osr", osr, low=MIN_OSR, high=MAX_OSR, expected=f"a number from {MIN_OSR} to {MAX_OSR}"
-    )
-    max_gain = _check_real(
-        "max_gain", max_gain, low=1.0, low_open=True, expected="a finite number > 1"
-    )
-    if not isinstance(optimize_zeros, bool | np.bool_):
-        raise ParameterError("optimize_zeros", optimize_zeros, "True or False")
-    zeros = _zeros_for(order, osr, bool(optimize_zeros))
-
-    def excess(log_t, refine=True):
-        ntf = NoiseTransfer(zeros, _butterworth_highpass_poles(order, math.exp(log_t)))
-        return ntf.peak(refine=refine)[0] - max_gain
-
-    # Scan downward with the cheap grid maximum (a lower bound of the peak), then confirm the
-    # bracket with refined peaks before solving.
-    grid = np.linspace(math.log(_T_HIGH), math.log(_T_LOW), _T_STEPS)
-    prev_x, prev_v = grid[0], excess(grid[0])
-    if prev_v < 0:
-        raise ParameterError(
-            "max_gain",
-            max_gain,
-            f"at most {prev_v + max_gain:.6g} for order {order} with this pole family",
-        )
-    lowest = prev_v
-    refined = False
-    for x in grid[1:]:
-        v = excess(x, refine=refined)
-        if v <= 0 and not refined:
-            v = excess(x)  # confirm with the refined peak; keep refining from here on
-            refined = True
-        lowest = min(lowest, v)
-        if v <= 0:
-            if v == 0:
-                log_t = x
-            else:
-                log_t = optimize.brentq(excess, x, prev_x, xtol=1e-14, rtol=1e-15, maxiter=200)
-            poles = _canonical(_butterworth_highpass_poles(order, math.exp(log_t)))
-            return NoiseTransfer(
-                _canonical(zeros),
-                poles,
-                1.0,
-                osr=osr,
-                max_gain=max_gain,
-                optimized=bool(optimize_zeros),
-            )
-        prev_x, prev_v = x, v
-    raise ParameterError(
-        "max_gain",
-        max_gain,
-        f"more than {lowest + max_gain:.6g}, the lowest peak gain reachable for order {order} "
-        f"at OSR {osr:g} with {'optimized zeros' if optimize_zeros else 'zeros at DC'}",
-    )

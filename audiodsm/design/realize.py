@@ -43,58 +43,73 @@ import numpy as np
 from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.errors import ParameterError
 
-__all__ = ["STRUCTURES", "LoopRealization", "StateSpace", "realize_ntf"]
+__all__ = ["STRUCTURES", "LinearLoop", "LoopRealization"]
 
 STRUCTURES = ("feedback", "feedforward", "error-feedback")
 
 
 @dataclass(frozen=True, eq=False)
-class StateSpace:
+class LinearLoop:
     """The linearized loop, quantizer replaced by additive noise ``e``: ``v = y + e``.
 
-    ``x[n+1] = a @ x[n] + b_input * u[n] + b_feedback * v[n]`` and
-    ``y[n] = c @ x[n] + d_input * u[n]``.
+    ``x[n+1] = transition @ x[n] + input_entry * u[n] + feedback_entry * v[n]`` and
+    ``y[n] = quantizer_tap @ x[n] + input_direct * u[n]``.
 
     Attributes
     ----------
-    a : ndarray, shape (n, n)
-        Open-loop state matrix of the loop filter.
-    b_input, b_feedback : ndarray, shape (n,)
+    transition : ndarray, shape (n, n)
+        Open-loop state-transition matrix of the loop filter.
+    input_entry, feedback_entry : ndarray, shape (n,)
         How the input ``u`` and the quantizer output ``v`` enter the states.
-    c : ndarray, shape (n,)
+    quantizer_tap : ndarray, shape (n,)
         Quantizer-input weights on the states.
-    d_input : float
+    input_direct : float
         Direct path from ``u`` to the quantizer input.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+       IEEE Press / Wiley, 2005, ch. 2 and 4 (the linear model: quantizer as additive noise;
+       state-space description of the loop filter).
     """
 
-    a: np.ndarray
-    b_input: np.ndarray
-    b_feedback: np.ndarray
-    c: np.ndarray
-    d_input: float
+    transition: np.ndarray
+    input_entry: np.ndarray
+    feedback_entry: np.ndarray
+    quantizer_tap: np.ndarray
+    input_direct: float
 
-    def closed_loop(self) -> np.ndarray:
-        """State matrix with the loop closed through the quantizer, ``a + b_feedback c^T``."""
-        return self.a + np.outer(self.b_feedback, self.c)
+    def closed_transition(self) -> np.ndarray:
+        """Transition matrix with the loop closed through the quantizer.
+
+        ``transition + feedback_entry quantizer_tap^T``; its eigenvalues are the NTF poles.
+        """
+        return self.transition + np.outer(self.feedback_entry, self.quantizer_tap)
 
     def noise_response(self, freq: np.ndarray) -> np.ndarray:
-        """NTF from ``e`` to ``v``, ``1 + c (zI - A_cl)^-1 b_feedback``, at ``freq``."""
-        return self._response(freq, self.b_feedback, 1.0)
+        """NTF from ``e`` to ``v``, ``1 + c (zI - A_cl)^-1 feedback_entry``, at ``freq``.
+
+        ``c`` is ``quantizer_tap`` and ``A_cl`` the :meth:`closed_transition`.
+        """
+        return self._response(freq, self.feedback_entry, 1.0)
 
     def signal_response(self, freq: np.ndarray) -> np.ndarray:
-        """STF from ``u`` to ``v``, ``c (zI - A_cl)^-1 b_input + d_input``, at ``freq``."""
-        # closing the loop also routes the direct path through the fed-back quantizer output
-        b = self.b_input + self.b_feedback * self.d_input
-        return self._response(freq, b, self.d_input)
+        """STF from ``u`` to ``v``, ``c (zI - A_cl)^-1 b + input_direct``, at ``freq``.
+
+        ``b = input_entry + feedback_entry * input_direct``: closing the loop also routes the
+        direct path through the fed-back quantizer output.
+        """
+        b = self.input_entry + self.feedback_entry * self.input_direct
+        return self._response(freq, b, self.input_direct)
 
     def _response(self, freq, b, direct):
         freq = np.atleast_1d(np.asarray(freq, dtype=float))
-        acl = self.closed_loop()
-        eye = np.eye(len(self.c))
+        acl = self.closed_transition()
+        eye = np.eye(len(self.quantizer_tap))
         out = np.empty(freq.shape, dtype=complex)
         for idx, f in np.ndenumerate(freq):
             z = np.exp(2j * np.pi * f)
-            out[idx] = direct + self.c @ np.linalg.solve(z * eye - acl, b)
+            out[idx] = direct + self.quantizer_tap @ np.linalg.solve(z * eye - acl, b)
         return out
 
 
@@ -145,8 +160,8 @@ class LoopRealization:
         """Number of integrators (the NTF order)."""
         return len(self.leak)
 
-    def state_space(self) -> StateSpace:
-        """The linearized loop (quantizer as additive noise) as a :class:`StateSpace`.
+    def linearized(self) -> LinearLoop:
+        """The linearized loop (quantizer as additive noise) as a :class:`LinearLoop`.
 
         Built by applying the update rule to unit vectors, so it describes exactly the
         arithmetic the kernels perform.
@@ -162,12 +177,12 @@ class LoopRealization:
         else:
             b_feedback = self._step(np.zeros(n), 0.0, 1.0)
             b_input = self._step(np.zeros(n), 1.0, 0.0)
-        return StateSpace(
-            a=a,
-            b_input=b_input,
-            b_feedback=b_feedback,
-            c=self.output_weight.copy(),
-            d_input=float(self.direct_input),
+        return LinearLoop(
+            transition=a,
+            input_entry=b_input,
+            feedback_entry=b_feedback,
+            quantizer_tap=self.output_weight.copy(),
+            input_direct=float(self.direct_input),
         )
 
     def _step(self, x: np.ndarray, u: float, w: float) -> np.ndarray:
@@ -183,7 +198,7 @@ class LoopRealization:
             new[i] = acc
         return new
 
-    def loop_zeros(self) -> np.ndarray:
+    def realized_zeros(self) -> np.ndarray:
         """NTF zeros computed from the integrator and resonator coefficients.
 
         A single integrator has its zero at ``d``; a resonator pair (upstream ``p``, downstream
@@ -210,51 +225,52 @@ class LoopRealization:
                 i += 1
         return np.array(zeros, dtype=complex)
 
-    def ntf_from_coefficients(self) -> NoiseTransfer:
+    def realized_ntf(self) -> NoiseTransfer:
         """The NTF this loop realizes, computed back from its own coefficients.
 
-        Zeros come from :meth:`loop_zeros` (closed form, so zeros at DC stay exactly at
-        ``z = 1``); poles are the eigenvalues of the closed-loop state matrix of
-        :meth:`state_space`.
+        Zeros come from :meth:`realized_zeros` (closed form, so zeros at DC stay exactly at
+        ``z = 1``); poles are the eigenvalues of the closed-loop transition matrix of
+        :meth:`linearized`.
         """
-        acl = self.state_space().closed_loop()
+        acl = self.linearized().closed_transition()
         # eigenvalues of A_cl - I, shifted back: the poles crowd near z = 1, and this keeps
         # their distance to 1 (which sets the in-band gain) accurate
         poles = np.linalg.eigvals(acl - np.eye(self.order)) + 1.0
-        return NoiseTransfer(zeros=self.loop_zeros(), poles=poles.astype(complex))
+        return NoiseTransfer(zeros=self.realized_zeros(), poles=poles.astype(complex))
 
-    def scaled(
+    def rescaled(
         self,
-        peaks,
+        state_peaks,
         *,
-        bound: float = 1.0,
-        power_of_two: bool = False,
-        quantizer_state: bool = False,
+        peak_target: float = 1.0,
+        powers_of_two: bool = False,
+        include_quantizer_state: bool = False,
     ) -> LoopRealization:
-        """Return the loop with each state divided so that its peak becomes ``bound``.
+        """Return the loop with each state divided so that its peak becomes ``peak_target``.
 
-        A diagonal similarity transform ``x_s = x / s`` with ``s = peaks / bound``: the NTF and
-        the STF are unchanged. The state read by the quantizer in the feedback and error-feedback
-        structures (the last one) is not scaled, since the quantizer fixes its size, unless
-        ``quantizer_state`` asks for it in a feedback loop.
+        A diagonal similarity transform ``x_s = x / s`` with ``s = state_peaks / peak_target``:
+        the NTF and the STF are unchanged. The state read by the quantizer in the feedback and
+        error-feedback structures (the last one) is not scaled, since the quantizer fixes its
+        size, unless ``include_quantizer_state`` asks for it in a feedback loop.
 
         Parameters
         ----------
-        peaks : array_like, shape (order,)
+        state_peaks : array_like, shape (order,)
             Observed peak magnitude of every state (as they are in this realization).
-        bound : float, keyword-only
+        peak_target : float, keyword-only
             The peak each state should have after scaling.
-        power_of_two : bool, keyword-only
-            Round every factor up to a power of two, ``s = 2**ceil(log2(peaks / bound))``, so
-            each peak lands in ``(bound/2, bound]``. Multiplying or dividing by a power of two
+        powers_of_two : bool, keyword-only
+            Round every factor up to a power of two,
+            ``s = 2**ceil(log2(state_peaks / peak_target))``, so each peak lands in
+            ``(peak_target/2, peak_target]``. Multiplying or dividing by a power of two
             is exact in binary floating point (barring overflow and subnormals), and it
             commutes with the rounding of every product and sum of the loop, so the scaled
             loop computes exactly the unscaled states divided by ``s``: its output is the same,
             bit for bit. It is also what a fixed-point loop does with shifts. Without it the
-            factors are exact ratios, the peaks land on ``bound``, and rounding differs in the
-            last bits (a single-bit loop's output can then part from the unscaled one when a
-            quantizer input falls within rounding of zero).
-        quantizer_state : bool, keyword-only
+            factors are exact ratios, the peaks land on ``peak_target``, and rounding differs in
+            the last bits (a single-bit loop's output can then part from the unscaled one when
+            a quantizer input falls within rounding of zero).
+        include_quantizer_state : bool, keyword-only
             Scale the quantizer-facing (last) state of a feedback loop too; ``output_weight``
             then carries the factor, so the quantizer input is ``c[-1] * x_s[-1]``. Only a
             single-bit quantizer can run such a loop (its decision is a sign, blind to a
@@ -273,22 +289,26 @@ class LoopRealization:
         operation is the exactly rounded result; scaling by a power of two within range is
         exact, so it commutes with rounding). Clause number from memory.
         """
-        peaks = np.asarray(peaks, dtype=float)
+        peaks = np.asarray(state_peaks, dtype=float)
         if peaks.shape != (self.order,) or not np.all(np.isfinite(peaks)) or np.any(peaks <= 0):
             raise ParameterError(
-                "peaks", peaks.tolist(), f"{self.order} finite positive numbers, one per state"
+                "state_peaks",
+                peaks.tolist(),
+                f"{self.order} finite positive numbers, one per state",
             )
-        if not (np.isfinite(bound) and bound > 0):
-            raise ParameterError("bound", bound, "a finite positive number")
-        if quantizer_state and self.structure == "error-feedback":
+        if not (np.isfinite(peak_target) and peak_target > 0):
+            raise ParameterError("peak_target", peak_target, "a finite positive number")
+        if include_quantizer_state and self.structure == "error-feedback":
             raise ParameterError(
-                "quantizer_state", True, "False for an error-feedback loop (or a feedback loop)"
+                "include_quantizer_state",
+                True,
+                "False for an error-feedback loop (or a feedback loop)",
             )
-        s = peaks / bound
-        if power_of_two:
+        s = peaks / peak_target
+        if powers_of_two:
             s = np.exp2(np.ceil(np.log2(s)))
         if self.structure == "error-feedback" or (
-            self.structure == "feedback" and not quantizer_state
+            self.structure == "feedback" and not include_quantizer_state
         ):
             s[-1] = 1.0
         n = self.order
@@ -307,6 +327,126 @@ class LoopRealization:
             output_weight=self.output_weight * s,
             state_scale=self.state_scale * s,
         )
+
+    @classmethod
+    def for_ntf(cls, ntf: NoiseTransfer, *, structure: str = "feedback") -> LoopRealization:
+        """Compute the coefficients of a loop that realizes ``ntf`` exactly.
+
+        Parameters
+        ----------
+        ntf : NoiseTransfer
+            The noise transfer function (order 1..8, causal, poles inside the unit circle).
+        structure : str, keyword-only
+            One of ``STRUCTURES``: ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
+
+        Returns
+        -------
+        LoopRealization
+            Unscaled coefficients. The signal transfer at DC is exactly 1 (the input gain is solved
+            for it); for ``"error-feedback"`` the signal transfer is 1 at every frequency.
+
+        Notes
+        -----
+        The zeros fix the open-loop blocks: a real zero ``r`` gives an integrator with leak ``r``;
+        a pair ``r exp(+-j theta)`` gives a resonator pair with leak ``r`` and coefficient
+        ``g = 4 r sin^2(theta/2)`` (``= 2 r (1 - cos theta)``, written to keep precision for small
+        ``theta``). Pairs come first in the chain (lowest frequency first) and real zeros last, so
+        that in the feedback structure the quantizer reads a plain integrator. The free
+        coefficients then solve ``charpoly(A + b_feedback c^T) = prod(z - poles)``, matched in
+        powers of ``z - 1``: a square linear system, since a rank-one update changes the
+        determinant affinely.
+
+        References
+        ----------
+        R. Schreier and G. C. Temes, *Understanding Delta-Sigma Data Converters*, IEEE Press /
+        Wiley, 2005, ch. 4 (loop filters with distributed feedback or distributed feedforward and
+        resonators; chapter number from memory). The coefficient solve itself is derived here from
+        the matrix determinant lemma, not taken from the book.
+        """
+        if structure not in STRUCTURES:
+            raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")
+        if not isinstance(ntf, NoiseTransfer):
+            raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer")
+        n = ntf.order
+        if not 1 <= n <= 8 or len(ntf.zeros) != n:
+            raise ParameterError(
+                "ntf.order", n, "an NTF of order 1 to 8 with as many zeros as poles"
+            )
+        if abs(ntf.gain - 1.0) > 1e-12:
+            raise ParameterError("ntf.gain", ntf.gain, "1.0 (a causal loop has NTF(inf) = 1)")
+        poles = np.asarray(ntf.poles, dtype=complex)
+        if np.any(np.abs(poles) >= 1.0):
+            raise ParameterError("ntf.poles", poles.tolist(), "poles inside the unit circle")
+
+        pairs, reals = _group_zeros(ntf.zeros)
+        leak = np.zeros(n)
+        k = np.ones(n)
+        k[0] = 0.0
+        g = np.zeros(n)
+        i = 0
+        for z, _ in pairs:
+            r = abs(z)
+            theta = abs(np.angle(z))
+            leak[i] = leak[i + 1] = r
+            g[i] = 4.0 * r * np.sin(theta / 2.0) ** 2
+            i += 2
+        for r in reals:
+            leak[i] = r
+            i += 1
+
+        zeros_b = np.zeros(n)
+        base = cls(
+            ntf=ntf,
+            structure=structure,
+            leak=leak,
+            chain_gain=k,
+            resonator=g,
+            feedback=zeros_b.copy(),
+            input_gain=zeros_b.copy(),
+            output_weight=zeros_b.copy(),
+            direct_input=1.0 if structure == "error-feedback" else 0.0,
+            state_scale=np.ones(n),
+        )
+        if structure == "feedforward":
+            base = replace(base, feedback=np.eye(n)[0], input_gain=np.eye(n)[0])
+
+            def with_unknowns(vec):
+                return replace(base, output_weight=np.asarray(vec, dtype=float))
+        else:
+            base = replace(base, output_weight=np.eye(n)[n - 1])
+
+            def with_unknowns(vec):
+                return replace(base, feedback=np.asarray(vec, dtype=float))
+
+        # Match in powers of (z - 1) rather than z: the loop's poles and zeros crowd around z = 1,
+        # where the monomial coefficients cancel badly (the in-band gain, set by prod(1 - poles),
+        # would carry a relative error near 1e-7 at order 8).
+        target = np.real(np.poly(poles - 1.0))  # monic in w = z - 1, highest power first
+        eye = np.eye(n)
+
+        radius = float(np.clip(np.max(np.abs(poles - 1.0)), 0.05, 1.0))
+
+        def shifted_charpoly(vec):
+            return _charpoly(with_unknowns(vec).linearized().closed_transition() - eye, radius)
+
+        p0 = shifted_charpoly(np.zeros(n))
+        cols = []
+        for j in range(n):
+            pj = shifted_charpoly(eye[j])
+            cols.append(pj[1:] - p0[1:])
+        unknowns = np.linalg.solve(np.array(cols).T, target[1:] - p0[1:])
+        loop = with_unknowns(unknowns)
+
+        if structure != "error-feedback":
+            if structure == "feedback":
+                loop = replace(loop, input_gain=np.eye(n)[0])
+            stf_dc = loop.linearized().signal_response(np.array([0.0]))[0].real
+            if not np.isfinite(stf_dc) or abs(stf_dc) < 1e-300:
+                raise ParameterError(
+                    "ntf", "signal transfer 0 at DC", "an NTF this loop can realize"
+                )
+            loop = replace(loop, input_gain=loop.input_gain / stf_dc)
+        return loop
 
 
 def _charpoly(m: np.ndarray, radius: float = 1.0) -> np.ndarray:
@@ -340,119 +480,3 @@ def _group_zeros(zeros: np.ndarray) -> tuple[list[tuple[complex, complex]], list
             raise ParameterError("ntf.zeros", zeros.tolist(), "real values or conjugate pairs")
         lower.pop(j)
     return [(z, np.conj(z)) for z in upper], real
-
-
-def realize_ntf(ntf: NoiseTransfer, structure: str = "feedback") -> LoopRealization:
-    """Compute the coefficients of a loop that realizes ``ntf`` exactly.
-
-    Parameters
-    ----------
-    ntf : NoiseTransfer
-        The noise transfer function (order 1..8, causal, poles inside the unit circle).
-    structure : str
-        One of ``STRUCTURES``: ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
-
-    Returns
-    -------
-    LoopRealization
-        Unscaled coefficients. The signal transfer at DC is exactly 1 (the input gain is solved
-        for it); for ``"error-feedback"`` the signal transfer is 1 at every frequency.
-
-    Notes
-    -----
-    The zeros fix the open-loop blocks: a real zero ``r`` gives an integrator with leak ``r``;
-    a pair ``r exp(+-j theta)`` gives a resonator pair with leak ``r`` and coefficient
-    ``g = 4 r sin^2(theta/2)`` (``= 2 r (1 - cos theta)``, written to keep precision for small
-    ``theta``). Pairs come first in the chain (lowest frequency first) and real zeros last, so
-    that in the feedback structure the quantizer reads a plain integrator. The free
-    coefficients then solve ``charpoly(A + b_feedback c^T) = prod(z - poles)``, matched in
-    powers of ``z - 1``: a square linear system, since a rank-one update changes the
-    determinant affinely.
-
-    References
-    ----------
-    R. Schreier and G. C. Temes, *Understanding Delta-Sigma Data Converters*, IEEE Press /
-    Wiley, 2005, ch. 4 (loop filters with distributed feedback or distributed feedforward and
-    resonators; chapter number from memory). The coefficient solve itself is derived here from
-    the matrix determinant lemma, not taken from the book.
-    """
-    if structure not in STRUCTURES:
-        raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")
-    if not isinstance(ntf, NoiseTransfer):
-        raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer")
-    n = ntf.order
-    if not 1 <= n <= 8 or len(ntf.zeros) != n:
-        raise ParameterError("ntf.order", n, "an NTF of order 1 to 8 with as many zeros as poles")
-    if abs(ntf.gain - 1.0) > 1e-12:
-        raise ParameterError("ntf.gain", ntf.gain, "1.0 (a causal loop has NTF(inf) = 1)")
-    poles = np.asarray(ntf.poles, dtype=complex)
-    if np.any(np.abs(poles) >= 1.0):
-        raise ParameterError("ntf.poles", poles.tolist(), "poles inside the unit circle")
-
-    pairs, reals = _group_zeros(ntf.zeros)
-    leak = np.zeros(n)
-    k = np.ones(n)
-    k[0] = 0.0
-    g = np.zeros(n)
-    i = 0
-    for z, _ in pairs:
-        r = abs(z)
-        theta = abs(np.angle(z))
-        leak[i] = leak[i + 1] = r
-        g[i] = 4.0 * r * np.sin(theta / 2.0) ** 2
-        i += 2
-    for r in reals:
-        leak[i] = r
-        i += 1
-
-    zeros_b = np.zeros(n)
-    base = LoopRealization(
-        ntf=ntf,
-        structure=structure,
-        leak=leak,
-        chain_gain=k,
-        resonator=g,
-        feedback=zeros_b.copy(),
-        input_gain=zeros_b.copy(),
-        output_weight=zeros_b.copy(),
-        direct_input=1.0 if structure == "error-feedback" else 0.0,
-        state_scale=np.ones(n),
-    )
-    if structure == "feedforward":
-        base = replace(base, feedback=np.eye(n)[0], input_gain=np.eye(n)[0])
-
-        def with_unknowns(vec):
-            return replace(base, output_weight=np.asarray(vec, dtype=float))
-    else:
-        base = replace(base, output_weight=np.eye(n)[n - 1])
-
-        def with_unknowns(vec):
-            return replace(base, feedback=np.asarray(vec, dtype=float))
-
-    # Match in powers of (z - 1) rather than z: the loop's poles and zeros crowd around z = 1,
-    # where the monomial coefficients cancel badly (the in-band gain, set by prod(1 - poles),
-    # would carry a relative error near 1e-7 at order 8).
-    target = np.real(np.poly(poles - 1.0))  # monic in w = z - 1, highest power first
-    eye = np.eye(n)
-
-    radius = float(np.clip(np.max(np.abs(poles - 1.0)), 0.05, 1.0))
-
-    def shifted_charpoly(vec):
-        return _charpoly(with_unknowns(vec).state_space().closed_loop() - eye, radius)
-
-    p0 = shifted_charpoly(np.zeros(n))
-    cols = []
-    for j in range(n):
-        pj = shifted_charpoly(eye[j])
-        cols.append(pj[1:] - p0[1:])
-    unknowns = np.linalg.solve(np.array(cols).T, target[1:] - p0[1:])
-    loop = with_unknowns(unknowns)
-
-    if structure != "error-feedback":
-        if structure == "feedback":
-            loop = replace(loop, input_gain=np.eye(n)[0])
-        stf_dc = loop.state_space().signal_response(np.array([0.0]))[0].real
-        if not np.isfinite(stf_dc) or abs(stf_dc) < 1e-300:
-            raise ParameterError("ntf", "signal transfer 0 at DC", "an NTF this loop can realize")
-        loop = replace(loop, input_gain=loop.input_gain / stf_dc)
-    return loop

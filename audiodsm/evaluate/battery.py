@@ -399,7 +399,7 @@ def _meter(x, rate, frequency_hz, weightings, settle_s):
     out of the sine fits: a fit over a stretch that holds it is biased, and the bias would
     stay in the residual as a tone about 110 dB below the fundamental.
     """
-    from audiodsm.measure.aes17 import (
+    from audiodsm.measure.residual import (
         read_residual_meter,
         start_residual_meter,
         update_residual_meter,
@@ -461,7 +461,7 @@ def _lines(x, rate, *, false_alarm, exclude_hz=()):
 
 def _remove_fundamental(x, rate, settle):
     """The capture after ``settle`` frames with a 3-parameter 997 Hz fit removed."""
-    from audiodsm.measure.aes17 import fit_sine
+    from audiodsm.measure.sine_fit import fit_sine
 
     seg = np.ascontiguousarray(x[settle:])
     return fit_sine(seg, rate_hz=rate, frequency_hz=_TEST_HZ, four_parameter=False).residual
@@ -511,7 +511,7 @@ def _test_dynamic_range(ctx, profile):
     a = a[min(skip, len(a) // 2) :]
     upper = min(plan.out_of_band_upper_hz, fm / 2)
     # One averaged spectrum (Welch, 4-term Blackman-Harris) serves the out-of-band power and
-    # the spectrum curve; its band power is what measure.aes17.out_of_band_power_dbfs reads.
+    # the spectrum curve; its band power is what measure.noise.out_of_band_power_dbfs reads.
     spec = averaged_spectrum(a, rate_hz=fm, resolution_hz=_SPECTRUM_RESOLUTION_HZ)
     out["out_of_band_noise_dbfs"] = spec.band_noise_dbfs(_BAND[1], upper)
     notes.append(
@@ -591,39 +591,38 @@ def _test_dc(ctx, profile, offsets):
 
 def _test_stability(ctx, profile):
     from audiodsm.stages.chain import Chain
-    from audiodsm.stages.modulator import find_stability_limit
 
     plan = ctx.plan
     chain = Chain.from_profile(profile, ctx.rate, 1, listening_rate_hz=ctx.rate, threads=1)
-    limit = find_stability_limit(chain.modulator, osr=chain.osr, samples=plan.stability_samples)
+    limit = chain.modulator.probe_stability(osr=chain.osr, run_samples=plan.stability_samples)
     # the chain scales its input by input_scale before the loop (headroom the calibration
     # divides out again), so an amplitude at the loop is amplitude / input_scale at the input
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
     out = {
-        "msa": float(limit.amplitude) / scale,
-        "msa_modulator": float(limit.amplitude),
+        "msa": float(limit.stable_amplitude) / scale,
+        "msa_modulator": float(limit.stable_amplitude),
         "input_scale": scale,
-        "msa_state_peak": np.asarray(limit.state_peak, dtype=float),
+        "msa_state_peak": np.asarray(limit.state_peaks, dtype=float),
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "notes": [
             f"stability: bisection on a sine near a fifth of the band edge, "
             f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
             "stable = no guard action and in-band SQNR within 6 dB of the linear extrapolation; "
-            f"the loop's own limit {limit.amplitude:.4f} of its full scale, divided by the "
+            f"the loop's own limit {limit.stable_amplitude:.4f} of its full scale, divided by the "
             f"chain's input scale {scale:g} to refer it to the chain input"
         ],
     }
     out["curve_stability"] = {
-        "loop_amplitude": np.array([float(limit.amplitude)]),
+        "loop_amplitude": np.array([float(limit.stable_amplitude)]),
         "input_scale": np.array([scale]),
-        "state_peak": np.asarray(limit.state_peak, dtype=float),
+        "state_peak": np.asarray(limit.state_peaks, dtype=float),
         "sqnr_db": np.array([float(limit.sqnr_db)]),
     }
-    if limit.amplitude > 0:
+    if limit.stable_amplitude > 0:
         n = plan.histogram_samples
         t = np.arange(n)
-        x = limit.amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
+        x = limit.stable_amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
         _, states = chain.modulator.trace_states(x)
         states = np.asarray(states, dtype=float).reshape(n, -1)
         edges, counts = [], []
@@ -637,7 +636,7 @@ def _test_stability(ctx, profile):
             "edges": np.array(edges),
             "counts": np.array(counts),
             "peak": np.max(np.abs(states), axis=0),
-            "amplitude": np.array([limit.amplitude]),
+            "amplitude": np.array([limit.stable_amplitude]),
         }
     return out
 
@@ -672,7 +671,7 @@ def _response_frequencies():
 
 
 def _test_response(ctx, profile):
-    from audiodsm.measure.aes17 import frequency_response
+    from audiodsm.measure.response import frequency_response
     from audiodsm.signals import multitone
 
     plan, rate = ctx.plan, ctx.rate
@@ -746,7 +745,7 @@ def _test_images(ctx, profile):
 
 
 def _test_imd(ctx, profile):
-    from audiodsm.measure.aes17 import imd_difference_frequency, imd_smpte
+    from audiodsm.measure.intermod import imd_difference_frequency, imd_smpte
     from audiodsm.signals import twin_tone_difference, twin_tone_smpte
 
     plan, rate = ctx.plan, ctx.rate

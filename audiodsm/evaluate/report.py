@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import base64
 import csv
+import functools
 import html
 import io
 import json
@@ -199,49 +200,63 @@ def figure_to_png(fig) -> bytes:
     return buf.getvalue()
 
 
-_CSS = """
-body { font-family: system-ui, sans-serif; color: #222; background: #fbfaf7; margin: 0; }
-main { max-width: 1180px; margin: 0 auto; padding: 1.2em 1.5em 4em; }
-h1 { font-size: 1.5em; margin: 0.2em 0; }
-h2 { font-size: 1.2em; border-bottom: 2px solid #2f5d8a; padding-bottom: 0.2em; margin-top: 2em; }
-h3 { font-size: 1em; margin: 1.2em 0 0.4em; }
-p.meta { color: #555; margin: 0.2em 0; font-size: 0.9em; }
-table { border-collapse: collapse; margin: 0.5em 0 1em; font-size: 0.88em; }
-th, td { border: 1px solid #d6d3cc; padding: 0.25em 0.6em; text-align: left; }
-th { background: #eeebe4; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
-.ok { background: #e4efe6; color: #1f4a2a; }
-.bad { background: #f5e1dc; color: #6e2216; font-weight: 600; }
-.none { color: #888; }
-.plots { display: grid; grid-template-columns: repeat(auto-fill, minmax(520px, 1fr)); gap: 1em; }
-figure { margin: 0; background: #fff; border: 1px solid #e2dfd8; padding: 0.4em; }
-figure img { width: 100%; height: auto; }
-figure.wide { max-width: 820px; }
-figcaption { font-size: 0.85em; color: #444; }
-nav a { margin-right: 1em; }
-ul.notes { font-size: 0.85em; color: #444; }
-"""
+_TEMPLATE = "report.html.j2"
 
 
-def _e(text) -> str:
-    return html.escape(str(text), quote=True)
+def _escape_text(value):
+    """HTML-escape one value printed by the template (``&quot;`` and ``&#x27;`` for quotes).
+
+    Used as the environment's ``finalize``: its Markup result passes autoescaping untouched,
+    so the page spells entities as :func:`html.escape` does.
+    """
+    from markupsafe import Markup
+
+    if isinstance(value, Markup):
+        return value
+    return Markup(html.escape(str(value), quote=True))
 
 
-def _f(v, spec=".2f") -> str:
-    return "&ndash;" if v is None or not math.isfinite(float(v)) else format(float(v), spec)
+def _number(v, spec=".2f"):
+    """A number in ``spec`` format, or an en dash for None, NaN and infinities."""
+    from markupsafe import Markup
+
+    return Markup("&ndash;") if v is None or not math.isfinite(float(v)) else format(float(v), spec)
 
 
-def _anchor(rank) -> str:
-    return f"profile-{rank}"
+def _reading(v):
+    """One battery reading: text, flags and None as they are, numbers to 4 digits."""
+    return v if isinstance(v, (bool, str)) or v is None else _number(v, ".4g")
 
 
-def _img(fig, alt) -> str:
-    data = base64.b64encode(figure_to_png(fig)).decode("ascii")
-    return f'<img alt="{_e(alt)}" src="data:image/png;base64,{data}">'
+@functools.cache
+def _environment():
+    """The Jinja2 environment reading the templates kept beside this module."""
+    import jinja2
+
+    env = jinja2.Environment(
+        loader=jinja2.PackageLoader("audiodsm.evaluate", "templates"),
+        autoescape=True,
+        finalize=_escape_text,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        keep_trailing_newline=True,
+    )
+    env.filters["num"] = _number
+    env.filters["reading"] = _reading
+    return env
+
+
+def _png_base64(fig) -> str:
+    return base64.b64encode(figure_to_png(fig)).decode("ascii")
 
 
 def render_html(batch, *, title=None) -> str:
     """The report page as one HTML string with every image embedded as base64 PNG.
+
+    The page is laid out by the Jinja2 template ``templates/report.html.j2`` (style sheet
+    ``templates/report.css``) beside this module; this function draws the plots and hands the
+    template the batch.
 
     Parameters
     ----------
@@ -258,123 +273,34 @@ def render_html(batch, *, title=None) -> str:
     spec = batch.spec
     title = title or f"Grades against {spec.name}"
     stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
-    parts = [
-        "<!DOCTYPE html>",
-        '<html lang="en"><head><meta charset="utf-8">',
-        f"<title>{_e(title)}</title><style>{_CSS}</style></head><body><main>",
-        f"<h1>{_e(title)}</h1>",
-        f'<p class="meta">spec sheet: {_e(spec.path or spec.name)} &middot; '
-        f"{len(spec.targets)} targets &middot; {len(batch.grades)} profiles &middot; "
-        f"audiodsm {_e(__version__)} &middot; {stamp}</p>",
-    ]
-    if spec.description:
-        parts.append(f'<p class="meta">{_e(spec.description)}</p>')
-    if batch.interrupted:
-        parts.append(
-            f'<p class="bad">The batch was interrupted: {len(batch.unfinished)} profile(s) '
-            "not graded: " + ", ".join(_e(u) for u in batch.unfinished) + "</p>"
-        )
-
-    # overview
-    parts.append('<h2 id="overview">Overview</h2>')
-    parts.append(
-        "<p>Profiles ranked by their worst margin. A margin is in the target's own unit; "
-        "positive means better than the limit.</p>"
-    )
-    parts.append(
-        "<table><tr><th>rank</th><th>profile</th><th>verdict</th><th>worst margin</th>"
-        "<th>targets failed</th><th>source</th></tr>"
-    )
+    margins_png = _png_base64(plotting.plot_margins(batch)) if batch.grades else None
+    sections = []
     for rank, g in enumerate(batch.grades, 1):
-        cls = "ok" if g.passed else "bad"
-        parts.append(
-            f'<tr><td class="num">{rank}</td><td><a href="#{_anchor(rank)}">{_e(g.name)}</a></td>'
-            f'<td class="{cls}">{"pass" if g.passed else "fail"}</td>'
-            f'<td class="num">{_f(g.worst_margin, "+.2f")}</td>'
-            f'<td class="num">{g.failed_count} of {len(g.lines)}</td><td>{_e(g.source)}</td></tr>'
-        )
-    parts.append("</table>")
-
-    parts.append("<h3>Readings against each target</h3>")
-    head = "".join(f"<th>{_e(g.name)}</th>" for g in batch.grades)
-    parts.append(f"<table><tr><th>target</th><th>requirement</th>{head}</tr>")
-    for k, t in enumerate(spec.targets):
-        cells = []
-        for g in batch.grades:
-            line = g.lines[k]
-            if line.value is None:
-                cells.append(f'<td class="bad" title="{_e(line.reason)}">no reading</td>')
-            else:
-                cls = "ok" if line.passed else "bad"
-                cells.append(
-                    f'<td class="num {cls}">{_f(line.value)} '
-                    f"<small>({_f(line.margin, '+.2f')})</small></td>"
-                )
-        parts.append(f"<tr><td>{_e(t.label)}</td><td>{_e(t.requirement)}</td>{''.join(cells)}</tr>")
-    parts.append("</table>")
-    if batch.grades:
-        fig = plotting.plot_margins(batch)
-        parts.append(f"<figure class=\"wide\">{_img(fig, 'margins')}<figcaption>margin per target, "
-                     "per profile (crosses: no reading)</figcaption></figure>")  # fmt: skip
-
-    # one section per profile
-    for rank, g in enumerate(batch.grades, 1):
-        parts.append(f'<h2 id="{_anchor(rank)}">{rank}. {_e(g.name)}</h2>')
-        origin = "from the cache" if g.cached else "run now"
-        parts.append(
-            f'<p class="meta">{_e(g.source)} &middot; digest {_e(g.digest[:12])} &middot; '
-            f"battery {_f(g.seconds, '.1f')} s, {origin} &middot; "
-            '<a href="#overview">back to the overview</a></p>'
-        )
-        if g.failure:
-            parts.append(f'<p class="bad">Not graded: {_e(g.failure)}</p>')
-        parts.append(
-            "<table><tr><th>target</th><th>requirement</th><th>reading</th><th>margin</th>"
-            "<th>unit</th><th>result</th><th>note</th></tr>"
-        )
-        for line in g.lines:
-            t = line.target
-            cls = "ok" if line.passed else "bad"
-            result = (
-                "pass" if line.passed else ("fail" + (f": {line.reason}" if line.reason else ""))
-            )
-            parts.append(
-                f"<tr><td>{_e(t.label)}</td><td>{_e(t.requirement)}</td>"
-                f'<td class="num">{_f(line.value)}</td>'
-                f'<td class="num">{_f(line.margin, "+.2f")}</td>'
-                f'<td>{_e(t.unit)}</td><td class="{cls}">{_e(result)}</td>'
-                f"<td>{_e(t.note)}</td></tr>"
-            )
-        parts.append("</table>")
-        if g.metrics:
-            parts.append("<details><summary>every battery reading</summary><table>")
-            parts.append("<tr><th>metric</th><th>reading</th></tr>")
-            for name, v in g.metrics.items():
-                shown = _e(v) if isinstance(v, (bool, str)) or v is None else _f(v, ".4g")
-                parts.append(f'<tr><td>{_e(name)}</td><td class="num">{shown}</td></tr>')
-            parts.append("</table></details>")
+        plots = None
         if g.curves:
             curves = report_curves(g.curves)
-            parts.append('<div class="plots">')
+            plots = []
             for _name, fn, caption in plotting.PLOTS:
                 try:
                     fig = fn(curves)
                 except AudiodsmError:
-                    parts.append(
-                        f'<figure><p class="none">no {_e(caption)} in this battery result'
-                        "</p></figure>"
-                    )
+                    plots.append({"caption": caption, "png": None})
                     continue
-                parts.append(
-                    f"<figure>{_img(fig, caption)}<figcaption>{_e(caption)}</figcaption></figure>"
-                )
-            parts.append("</div>")
-        if g.notes:
-            parts.append('<h3>Battery notes</h3><ul class="notes">')
-            parts.extend(f"<li>{_e(n)}</li>" for n in g.notes)
-            parts.append("</ul>")
-    parts.append("</main></body></html>")
-    return "\n".join(parts) + "\n"
+                plots.append({"caption": caption, "png": _png_base64(fig)})
+        sections.append({"rank": rank, "grade": g, "plots": plots})
+    return (
+        _environment()
+        .get_template(_TEMPLATE)
+        .render(
+            title=title,
+            stamp=stamp,
+            version=__version__,
+            spec=spec,
+            batch=batch,
+            margins_png=margins_png,
+            sections=sections,
+        )
+    )
 
 
 def check_report_dir(directory, *, protect=()) -> Path:

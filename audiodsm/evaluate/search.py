@@ -12,11 +12,11 @@ loop is its clock rate in MHz times its quantizer levels times its order,
 levels for the number of DAC elements or PWM counter steps, order for the number of
 integrators and coefficients.
 
-The search enumerates order, OSR, levels and peak NTF gain, designs each NTF with
-:func:`~audiodsm.design.ntf.design_ntf`, keeps the combinations predicted to meet the target,
-and ranks them by cost. Single-bit loops are held to the peak gain of Lee's rule (1.5, common
-practice), and high-order single-bit loops are known to fall short of the linear model, which
-is why the best few are confirmed by simulation (:func:`confirm_candidates`).
+The search enumerates order, OSR, levels and out-of-band NTF gain, designs each NTF with
+:meth:`~audiodsm.design.ntf.NoiseTransfer.designed`, keeps the combinations predicted to meet
+the target, and ranks them by cost. Single-bit loops are held to the out-of-band gain of Lee's
+rule (1.5, common practice), and high-order single-bit loops are known to fall short of the
+linear model, which is why the best few are confirmed by simulation (:func:`confirm_candidates`).
 """
 
 from __future__ import annotations
@@ -28,6 +28,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from audiodsm.errors import ParameterError
+from audiodsm.limits import ORDER_RANGE, OSR_CHOICES, TARGET_DYNAMIC_RANGE_DB
 from audiodsm.profile import ChainProfile
 
 __all__ = [
@@ -46,8 +47,8 @@ __all__ = [
 AUDIO_BAND_HZ = (20.0, 20000.0)
 
 #: Search grid defaults.
-DEFAULT_ORDERS = tuple(range(1, 9))
-DEFAULT_OSRS = (16, 32, 64, 128, 256, 512)
+DEFAULT_ORDERS = tuple(range(ORDER_RANGE[0], ORDER_RANGE[1] + 1))
+DEFAULT_OSRS = OSR_CHOICES
 DEFAULT_LEVELS = (2, 3, 5, 9, 17, 33)
 DEFAULT_MULTIBIT_GAINS = (1.5, 2.0, 3.0)
 #: Lee's rule, common practice for single-bit loops.
@@ -67,17 +68,17 @@ class Candidate:
     Attributes
     ----------
     order, osr, levels : int
-    max_gain : float
-        Peak NTF gain it was designed for.
+    out_of_band_gain : float
+        Out-of-band NTF gain it was designed for.
     modulator_rate_hz : float
     input_scale : float
         Loop input for a full-scale chain input (the chain's automatic headroom).
     predicted_dynamic_range_db : float
         Linear-model dynamic range referred to the chain input, with the search's weighting.
-    predicted_sqnr_db : float
+    linear_sqnr_db : float
         Linear-model peak SQNR of the loop itself (0 dBFS sine at the loop, 20 kHz band).
-    peak_gain : float
-        Achieved peak NTF gain.
+    achieved_out_of_band_gain : float
+        Out-of-band NTF gain the design reached.
     cost : float
         ``modulator_rate_MHz * levels * order``.
     """
@@ -85,12 +86,12 @@ class Candidate:
     order: int
     osr: int
     levels: int
-    max_gain: float
+    out_of_band_gain: float
     modulator_rate_hz: float
     input_scale: float
     predicted_dynamic_range_db: float
-    predicted_sqnr_db: float
-    peak_gain: float
+    linear_sqnr_db: float
+    achieved_out_of_band_gain: float
     cost: float
 
 
@@ -180,7 +181,7 @@ def _input_scale(ntf, levels):
 
 
 def candidate_profile(base: ChainProfile, candidate: Candidate, *, name=None) -> ChainProfile:
-    """The base profile with the candidate's order, OSR, levels and peak gain.
+    """The base profile with the candidate's order, OSR, levels and out-of-band gain.
 
     Parameters
     ----------
@@ -198,14 +199,14 @@ def candidate_profile(base: ChainProfile, candidate: Candidate, *, name=None) ->
         base.modulator,
         order=candidate.order,
         levels=candidate.levels,
-        max_gain=candidate.max_gain,
+        out_of_band_gain=candidate.out_of_band_gain,
         zeros=(),
         poles=(),
     )
     up = replace(base.upsampler, osr=candidate.osr)
     label = name or (
         f"order{candidate.order}-osr{candidate.osr}-{candidate.levels}level"
-        f"-gain{candidate.max_gain:g}"
+        f"-gain{candidate.out_of_band_gain:g}"
     )
     return replace(base, name=label, modulator=mod, upsampler=up)
 
@@ -253,7 +254,7 @@ def search_designs(
     osrs: Sequence[int] = DEFAULT_OSRS,
     levels: Sequence[int] = DEFAULT_LEVELS,
     gains: Sequence[float] = DEFAULT_MULTIBIT_GAINS,
-    optimize_zeros: bool = True,
+    zero_layout: str = "spread",
     margin_db: float = 0.0,
     limit: int = 10,
 ) -> list[Candidate]:
@@ -261,7 +262,7 @@ def search_designs(
 
     The grid is walked in order of cost, designing each NTF only when its turn comes, until
     ``limit`` loops meet the target. A multi-bit loop must also pass the no-overload test
-    ``(M + 2 - ||h||_1) / M >= 0.5``; a single-bit loop is held to a peak NTF gain of 1.5
+    ``(M + 2 - ||h||_1) / M >= 0.5``; a single-bit loop is held to an out-of-band NTF gain of 1.5
     (Lee's rule, common practice) and left to the simulation to confirm.
 
     Parameters
@@ -274,8 +275,10 @@ def search_designs(
     orders, osrs, levels : sequences of int, keyword-only
         The grid.
     gains : sequence of float, keyword-only
-        Peak NTF gains tried for multi-bit loops (single-bit loops use 1.5).
-    optimize_zeros : bool, keyword-only
+        Out-of-band NTF gains tried for multi-bit loops (single-bit loops use 1.5).
+    zero_layout : {"spread", "dc"}, keyword-only
+        Where the designed NTFs put their zeros (see
+        :meth:`~audiodsm.design.ntf.NoiseTransfer.designed`).
     margin_db : float, keyword-only
         Extra prediction margin demanded above the target.
     limit : int, keyword-only
@@ -291,12 +294,13 @@ def search_designs(
     .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
        IEEE/Wiley 2005, ch. 4 (NTF design; multi-bit stability criterion).
     .. [2] K. C.-H. Chao, S. Nadeem, W. L. Lee and C. G. Sodini, IEEE Trans. Circuits Syst.
-       37(3), 1990 (peak NTF gain of single-bit loops).
+       37(3), 1990 (out-of-band NTF gain of single-bit loops).
     """
-    from audiodsm.design.ntf import design_ntf
+    from audiodsm.design.ntf import NoiseTransfer
 
-    if not math.isfinite(target_db) or not 20.0 <= target_db <= 250.0:
-        raise ParameterError("target_db", target_db, "a dynamic range from 20 to 250 dB")
+    low, high = TARGET_DYNAMIC_RANGE_DB
+    if not math.isfinite(target_db) or not low <= target_db <= high:
+        raise ParameterError("target_db", target_db, f"a dynamic range from {low:g} to {high:g} dB")
     if weighting not in _DR_KEY:
         raise ParameterError("weighting", weighting, "one of " + ", ".join(_DR_KEY))
     grid = set()
@@ -320,7 +324,12 @@ def search_designs(
         key = (order, osr, g)
         if key not in designs:
             try:
-                designs[key] = design_ntf(order, osr, max_gain=g, optimize_zeros=optimize_zeros)
+                designs[key] = NoiseTransfer.designed(
+                    order,
+                    osr=osr,
+                    out_of_band_gain=g,
+                    zero_layout=zero_layout,
+                )
             except ParameterError:
                 designs[key] = None  # this gain is out of reach for the order and OSR
         ntf = designs[key]
@@ -338,12 +347,12 @@ def search_designs(
                 order=order,
                 osr=osr,
                 levels=lv,
-                max_gain=g,
+                out_of_band_gain=g,
                 modulator_rate_hz=fm,
                 input_scale=scale,
                 predicted_dynamic_range_db=dr,
-                predicted_sqnr_db=ntf.predicted_sqnr_db(lv, fm / (2.0 * AUDIO_BAND_HZ[1])),
-                peak_gain=float(ntf.peak_gain()),
+                linear_sqnr_db=ntf.linear_sqnr_db(levels=lv, osr=fm / (2.0 * AUDIO_BAND_HZ[1])),
+                achieved_out_of_band_gain=float(ntf.out_of_band_gain()),
                 cost=loop_cost(order, lv, modulator_rate_hz=fm),
             )
         )

@@ -194,7 +194,7 @@ def loop_any_structure(
 # kernel per (structure, order, leak, chain gain, pairs) is written from the template below on
 # first use and compiled with numba's on-disk cache (keyed to this file, so editing the template
 # recompiles). Each computes exactly what loop_any_structure computes for its structure. The
-# feedforward kernels assume, as realize_ntf builds them, that only the first integrator
+# feedforward kernels assume, as LoopRealization.for_ntf builds them, that only the first integrator
 # receives the quantizer output.
 
 STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}

@@ -211,9 +211,9 @@ class ChainResult:
 
 def _build_ntf(mod):
     """The NTF a profile gives by its zeros and poles (checked by the design library)."""
-    from audiodsm.design.ntf import ntf_from_zeros_poles
+    from audiodsm.design.ntf import NoiseTransfer
 
-    return ntf_from_zeros_poles(np.array(mod.zeros), np.array(mod.poles))
+    return NoiseTransfer.from_roots(zeros=np.array(mod.zeros), poles=np.array(mod.poles))
 
 
 @contextlib.contextmanager
@@ -226,11 +226,13 @@ def _settings_of(profile: ChainProfile, section: str):
 
 
 @functools.lru_cache(maxsize=64)
-def _designed_ntf(order, osr, max_gain, optimize_zeros):
-    """design_ntf, remembered: a battery builds the same chain many times."""
-    from audiodsm.design.ntf import design_ntf
+def _designed_ntf(order, osr, out_of_band_gain, zero_layout):
+    """NoiseTransfer.designed, remembered: a battery builds the same chain many times."""
+    from audiodsm.design.ntf import NoiseTransfer
 
-    return design_ntf(order, osr, max_gain=max_gain, optimize_zeros=optimize_zeros)
+    return NoiseTransfer.designed(
+        order, osr=osr, out_of_band_gain=out_of_band_gain, zero_layout=zero_layout
+    )
 
 
 _SCALED_LOOPS: dict = {}
@@ -241,9 +243,9 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
     """The loop the chain runs: ``ntf`` realized, its states scaled as the profile asks.
 
     Scaling simulates (a stability search and one check run, see
-    :func:`~audiodsm.stages.modulator.scale_states`), so results are remembered per process,
-    keyed by the NTF's values and every setting that enters the simulation; the runs are
-    deterministic, so a remembered result equals a fresh one. The search runs the unscaled
+    :meth:`~audiodsm.stages.modulator.Modulator.with_scaled_states`), so results are remembered
+    per process, keyed by the NTF's values and every setting that enters the simulation; the
+    runs are deterministic, so a remembered result equals a fresh one. The search runs the unscaled
     loop with the modulator's default guard bounds (the profile's ``state_bound`` is meant for
     the scaled states). A loop with no stable amplitude at all is left unscaled.
 
@@ -251,11 +253,11 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
     -------
     loop : LoopRealization or NoiseTransfer
         What to build the chain's Modulator from (the NTF itself when scaling is off).
-    limit : StabilityLimit or None
+    probe : StabilityProbe or None
         The scaled loop's simulated state peaks at the maximum stable amplitude (None when
         scaling is off; amplitude 0 when no stable amplitude was found).
     """
-    from audiodsm.stages.modulator import Modulator, StabilityLimit, scale_states
+    from audiodsm.stages.modulator import Modulator, StabilityProbe
 
     if mode == "off":
         return ntf, None
@@ -273,12 +275,12 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
         return hit
     unscaled = Modulator(ntf, **mod_kwargs)
     try:
-        scaled, limit = scale_states(
-            unscaled, osr=osr, bound=bound, power_of_two=(mode == "power-of-two")
+        scaled, probe = unscaled.with_scaled_states(
+            osr=osr, peak_target=bound, powers_of_two=(mode == "power-of-two")
         )
-        result = (scaled.loop, limit)
+        result = (scaled.loop, probe)
     except ParameterError:  # no stable amplitude: nothing to scale for
-        result = (unscaled.loop, StabilityLimit(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0))
+        result = (unscaled.loop, StabilityProbe(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0))
     if len(_SCALED_LOOPS) >= _SCALED_LOOPS_MAX:
         _SCALED_LOOPS.pop(next(iter(_SCALED_LOOPS)))
     _SCALED_LOOPS[key] = result
@@ -390,7 +392,7 @@ class Chain:
     input_scale : float
         Modulator input for a full-scale input sample (fraction of the quantizer's full
         scale): the profile's ``modulator.input_scale``, or :func:`auto_input_scale`.
-    state_scaling_limit : StabilityLimit or None
+    state_scaling_probe : StabilityProbe or None
         With ``modulator.state_scaling`` on: the maximum stable amplitude found for the loop
         and the simulated peak of each scaled state there (None when scaling is off).
     block_frames : int
@@ -441,7 +443,7 @@ class Chain:
             if mod.explicit_ntf:
                 self.ntf = _build_ntf(mod)
             else:
-                self.ntf = _designed_ntf(mod.order, self.osr, mod.max_gain, mod.optimize_zeros)
+                self.ntf = _designed_ntf(mod.order, self.osr, mod.out_of_band_gain, mod.zero_layout)
             mod_kwargs = {
                 "structure": mod.structure,
                 "levels": mod.levels,
@@ -449,14 +451,14 @@ class Chain:
                 "seed": mod.seed,
                 "guard": mod.guard,
             }
-            loop, self.state_scaling_limit = _scaled_loop(
+            loop, self.state_scaling_probe = _scaled_loop(
                 self.ntf, mod_kwargs, self.osr, mod.state_scaling, mod.state_peak_bound
             )
             if mod.state_bound:
                 mod_kwargs["state_bound"] = mod.state_bound
             self.modulator = Modulator(loop, **mod_kwargs)
             self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
-            self._loop_space = self.modulator.loop.state_space()
+            self._loop_space = self.modulator.loop.linearized()
             self._stf = _stf_filter(self._loop_space)
 
         with _settings_of(profile, "output"):
@@ -466,12 +468,26 @@ class Chain:
             self.fir = semi_digital_fir(np.asarray(taps, dtype=float)) if taps else None
             self.analog_filter = _analog_filter(profile)
         with _settings_of(profile, "listening"):
-            self.downsampler_design = design_downsampler(
-                self.modulator_rate_hz,
-                self.listening_rate_hz,
-                passband_hz=profile.listening.passband_hz,
-            )
-            self._downsampler = Downsampler(self.downsampler_design)
+            listen = profile.listening
+            if listen.decimator == "counting":  # same interface as the half-band cascade
+                from audiodsm.stages.counting import (
+                    CountingDownsampler,
+                    design_counting_downsampler,
+                )
+
+                self.downsampler_design = design_counting_downsampler(
+                    self.modulator_rate_hz,
+                    self.listening_rate_hz,
+                    length=listen.counting_length,
+                    stages=listen.counting_stages,
+                    passband_hz=listen.passband_hz,
+                )
+                self._downsampler = CountingDownsampler(self.downsampler_design)
+            else:
+                self.downsampler_design = design_downsampler(
+                    self.modulator_rate_hz, self.listening_rate_hz, passband_hz=listen.passband_hz
+                )
+                self._downsampler = Downsampler(self.downsampler_design)
         with _settings_of(profile, "output"):
             self._calibrate()  # runs the output stage on its levels
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
@@ -955,19 +971,22 @@ def auto_input_scale(ntf, levels: int) -> float:
     return float(min(1.0, bound)) if bound >= 0.5 else 0.5
 
 
-def _stf_filter(space):
+def _stf_filter(linear):
     """The loop's linearized signal transfer as ``(num, den)`` for lfilter; None if it is 1.
 
-    From the closed-loop state space ``x+ = A_cl x + B u``, ``v = c x + d u`` with
-    ``A_cl = a + b_fb c^T`` and ``B = b_in + b_fb d`` (quantizer as additive noise).
+    From the closed-loop state space ``x+ = A_cl x + B u``, ``v = c x + d u`` of the
+    :class:`~audiodsm.design.realize.LinearLoop` (quantizer as additive noise), with
+    ``A_cl`` its closed transition, ``B = input_entry + feedback_entry d``, ``c`` the
+    quantizer tap and ``d`` the direct input path.
     """
     from scipy.signal import ss2tf
 
-    a_cl = space.closed_loop()
-    b = space.b_input + space.b_feedback * space.d_input
-    if not np.any(b) and space.d_input == 1.0:
+    a_cl = linear.closed_transition()
+    direct = linear.input_direct
+    b = linear.input_entry + linear.feedback_entry * direct
+    if not np.any(b) and direct == 1.0:
         return None  # error feedback: the signal goes straight through
-    num, den = ss2tf(a_cl, b[:, None], space.c[None, :], np.array([[space.d_input]]))
+    num, den = ss2tf(a_cl, b[:, None], linear.quantizer_tap[None, :], np.array([[direct]]))
     return np.asarray(num[0], dtype=float), np.asarray(den, dtype=float)
 
 

@@ -1,9 +1,9 @@
 """The delta-sigma modulator stage: a realized loop, its quantizer, dither and overload guard.
 
 :class:`Modulator` runs the compiled loops of :mod:`audiodsm.stages._kernels` over audio at the
-modulator rate, block by block with explicit state. :func:`max_stable_amplitude` and
-:func:`find_stability_limit` search the largest input sine the loop handles, and
-:func:`scale_states` rescales the integrators for it.
+modulator rate, block by block with explicit state. :meth:`Modulator.probe_stability` searches
+the largest input sine the loop handles, and :meth:`Modulator.with_scaled_states` rescales the
+integrators for it.
 """
 
 from __future__ import annotations
@@ -16,18 +16,16 @@ import numpy as np
 from scipy.signal import windows
 
 from audiodsm.design.ntf import NoiseTransfer
-from audiodsm.design.realize import STRUCTURES, LoopRealization, realize_ntf
+from audiodsm.design.realize import STRUCTURES, LoopRealization
 from audiodsm.errors import ParameterError
+from audiodsm.limits import LEVELS_RANGE
 from audiodsm.stages import _kernels
 
 __all__ = [
     "GUARD_ACTIONS",
     "Modulator",
     "ModulatorState",
-    "StabilityLimit",
-    "find_stability_limit",
-    "max_stable_amplitude",
-    "scale_states",
+    "StabilityProbe",
 ]
 
 GUARD_ACTIONS = ("reset", "clamp")
@@ -79,7 +77,7 @@ def _kernel_key(loop: LoopRealization) -> tuple[str, int, bool, bool, int] | Non
     upstream = np.flatnonzero(loop.resonator[: n - 1] != 0.0)
     pairs = len(upstream)
     if not np.array_equal(upstream, np.arange(0, 2 * pairs, 2)):
-        pairs = -1  # not the layout realize_ntf makes: keep every resonator term
+        pairs = -1  # not the layout LoopRealization.for_ntf makes: keep every resonator term
     return loop.structure, n, lossless, unit_chain, pairs
 
 
@@ -160,13 +158,14 @@ class Modulator:
         elif isinstance(ntf, NoiseTransfer):
             if structure not in STRUCTURES:
                 raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")
-            loop = realize_ntf(ntf, structure)
+            loop = LoopRealization.for_ntf(ntf, structure=structure)
         else:
             raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer or LoopRealization")
+        lowest, highest = LEVELS_RANGE
         if isinstance(levels, bool) or not isinstance(levels, int | np.integer):
-            raise ParameterError("levels", levels, "an integer from 2 to 16777216")
-        if not 2 <= levels <= 1 << 24:
-            raise ParameterError("levels", levels, "an integer from 2 to 16777216")
+            raise ParameterError("levels", levels, f"an integer from {lowest} to {highest}")
+        if not lowest <= levels <= highest:
+            raise ParameterError("levels", levels, f"an integer from {lowest} to {highest}")
         if not (np.isfinite(dither_lsb) and dither_lsb >= 0):
             raise ParameterError("dither_lsb", dither_lsb, "a finite number >= 0")
         if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
@@ -177,9 +176,9 @@ class Modulator:
             if not (np.isfinite(value) and value > 0):
                 raise ParameterError(name, value, "a finite number > 0")
         # A single-bit feedback loop may have its quantizer-facing state scaled too
-        # (LoopRealization.scaled(quantizer_state=True)): the kernels read that state as the
-        # quantizer input, so the quantizer sees y / g (g = c[-1]); a sign decision does not
-        # mind, and the dither and the input bound are divided by g to match.
+        # (LoopRealization.rescaled(include_quantizer_state=True)): the kernels read that state
+        # as the quantizer input, so the quantizer sees y / g (g = c[-1]); a sign decision does
+        # not mind, and the dither and the input bound are divided by g to match.
         self._quantizer_gain = 1.0
         if loop.structure == "feedback" and loop.output_weight[-1] != 1.0:
             if levels != 2:
@@ -425,30 +424,202 @@ class Modulator:
         states = traces[0] if np.ndim(x) == 1 else np.stack(traces, axis=1)
         return y, states
 
+    def probe_stability(
+        self,
+        *,
+        osr: float,
+        run_samples: int = 32768,
+        noise_rise_db: float = 6.0,
+        reference_level_dbfs: float = -40.0,
+        amplitude_step: float = 0.002,
+    ) -> StabilityProbe:
+        """Search the largest stable input sine amplitude of this loop by bisection.
+
+        Criterion: an amplitude ``A`` is stable when a run of ``run_samples`` samples (after a
+        settling run of ``run_samples/8``) of a sine at ``A`` has no overload (the guard never
+        acted) and its in-band SQNR is no more than ``noise_rise_db`` below the SQNR expected
+        from the reference run, ``SQNR_ref + 20 log10(A / A_ref)`` (the in-band noise has not
+        risen by more than ``noise_rise_db``). The test tone lies on an exact FFT bin near a
+        fifth of the band edge ``0.5/osr``. The runs are deterministic (dither, if any, comes
+        from the modulator's seed).
+
+        Parameters
+        ----------
+        osr : float, keyword-only
+            Oversampling ratio; the band is 0..0.5/osr cycles per sample.
+        run_samples : int, keyword-only
+            Samples analysed per run (a power of two is fastest).
+        noise_rise_db : float, keyword-only
+            Allowed rise of in-band noise over the reference.
+        reference_level_dbfs : float, keyword-only
+            Level of the reference run.
+        amplitude_step : float, keyword-only
+            Bisection stops when the bracket is narrower than this (fraction of full scale).
+
+        Returns
+        -------
+        StabilityProbe
+            The amplitude, the state peaks there, and the SQNRs.
+
+        References
+        ----------
+        .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+           IEEE Press / Wiley, 2005, ch. 4 (maximum stable amplitude found by simulation;
+           chapter number from memory). The criterion and its thresholds here are this
+           project's own choice.
+        """
+        if not (np.isfinite(osr) and osr >= 4):
+            raise ParameterError("osr", osr, "a number >= 4")
+        if not (isinstance(run_samples, int | np.integer) and run_samples >= 1024):
+            raise ParameterError("run_samples", run_samples, "an integer >= 1024")
+        edge_bin = run_samples * 0.5 / osr
+        if edge_bin < 20:
+            raise ParameterError(
+                "run_samples", run_samples, f"at least {int(np.ceil(40 * osr))} for osr={osr}"
+            )
+        freq_bin = max(int(round(edge_bin / 5)) | 1, 9)
+        settle = run_samples // 8
+        ref_amp = 10 ** (reference_level_dbfs / 20)
+        ref_sqnr, _ = _probe(self, ref_amp, freq_bin, run_samples, settle, osr)
+
+        def judge(amp):
+            sqnr, st = _probe(self, amp, freq_bin, run_samples, settle, osr)
+            expected = ref_sqnr + 20 * np.log10(amp / ref_amp)
+            ok = int(st.overload_count[0]) == 0 and sqnr >= expected - noise_rise_db
+            return ok, sqnr, st
+
+        lo, hi = ref_amp, 1.0
+        ok_hi, sqnr_hi, st_hi = judge(hi)
+        if ok_hi:
+            best = (hi, sqnr_hi, st_hi)
+        else:
+            ok_lo, sqnr_lo, st_lo = judge(lo)
+            if not ok_lo:
+                return StabilityProbe(
+                    0.0, np.zeros(self.order), sqnr_lo, ref_sqnr, freq_bin / run_samples
+                )
+            best = (lo, sqnr_lo, st_lo)
+            while hi - lo > amplitude_step:
+                mid = 0.5 * (lo + hi)
+                ok, sqnr, st = judge(mid)
+                if ok:
+                    lo, best = mid, (mid, sqnr, st)
+                else:
+                    hi = mid
+        amp, sqnr, st = best
+        return StabilityProbe(
+            stable_amplitude=float(amp),
+            state_peaks=np.array(st.state_peak[0]),
+            sqnr_db=float(sqnr),
+            reference_sqnr_db=float(ref_sqnr),
+            test_frequency=freq_bin / run_samples,
+        )
+
+    def with_scaled_states(
+        self,
+        *,
+        osr: float,
+        peak_target: float = 1.0,
+        powers_of_two: bool = False,
+        **probe_options,
+    ) -> tuple[Modulator, StabilityProbe]:
+        """A copy of the modulator with its integrators rescaled to peak at ``peak_target``.
+
+        The stable amplitude is found on this loop (:meth:`probe_stability`); its state peaks
+        there give the diagonal similarity transform (:meth:`LoopRealization.rescaled`), which
+        leaves the NTF unchanged. The scaled loop is then run again at the same amplitude and
+        its peaks reported.
+
+        With ``powers_of_two`` every factor is a power of two: the scaled loop's output is then
+        bit-identical to the unscaled loop's, and each scaled state peaks in
+        ``(peak_target/2, peak_target]``.
+
+        Parameters
+        ----------
+        osr : float, keyword-only
+            Oversampling ratio for the stability search.
+        peak_target : float, keyword-only
+            Target peak of each state.
+        powers_of_two : bool, keyword-only
+            Round the factors up to powers of two (see :meth:`LoopRealization.rescaled`).
+        **probe_options
+            Passed on to :meth:`probe_stability`.
+
+        Returns
+        -------
+        scaled : Modulator
+            Same settings, scaled loop.
+        probe : StabilityProbe
+            For the scaled loop at the amplitude found: ``state_peaks`` are the simulated peaks
+            after scaling (close to ``peak_target``). The quantizer-facing state keeps its own
+            size in error-feedback loops and in multi-level feedback loops, where the quantizer
+            fixes it; a single-bit feedback loop has it scaled too (its sign decision does not
+            mind).
+
+        References
+        ----------
+        .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+           IEEE Press / Wiley, 2005, ch. 4 (dynamic-range scaling of the loop states; chapter
+           number from memory).
+        """
+        probe = self.probe_stability(osr=osr, **probe_options)
+        if probe.stable_amplitude <= 0:
+            raise ParameterError("modulator", repr(self), "a loop stable for some input")
+        peaks = np.where(probe.state_peaks > 0, probe.state_peaks, 1.0)
+        single_bit_feedback = self.structure == "feedback" and self.levels == 2
+        loop = self.loop.rescaled(
+            peaks,
+            peak_target=peak_target,
+            powers_of_two=powers_of_two,
+            include_quantizer_state=single_bit_feedback,
+        )
+        scaled = Modulator(
+            loop,
+            levels=self.levels,
+            dither_lsb=self.dither_lsb,
+            seed=self.seed,
+            guard=self.guard,
+            state_bound=self.state_bound,
+            input_bound=self.input_bound,
+        )
+        run_samples = probe_options.get("run_samples", 32768)
+        freq_bin = int(round(probe.test_frequency * run_samples))
+        sqnr, st = _probe(
+            scaled, probe.stable_amplitude, freq_bin, run_samples, run_samples // 8, osr
+        )
+        after = StabilityProbe(
+            stable_amplitude=probe.stable_amplitude,
+            state_peaks=np.array(st.state_peak[0]),
+            sqnr_db=sqnr,
+            reference_sqnr_db=probe.reference_sqnr_db,
+            test_frequency=probe.test_frequency,
+        )
+        return scaled, after
+
 
 @dataclass(frozen=True)
-class StabilityLimit:
-    """Result of :func:`find_stability_limit`.
+class StabilityProbe:
+    """Result of :meth:`Modulator.probe_stability`.
 
     Attributes
     ----------
-    amplitude : float
-        Largest sine amplitude (fraction of full scale) judged stable.
-    state_peak : ndarray, shape (order,)
+    stable_amplitude : float
+        Largest sine amplitude (fraction of full scale) judged stable; 0 when none is.
+    state_peaks : ndarray, shape (order,)
         Peak |state| of each integrator in the run at that amplitude.
     sqnr_db : float
         In-band SQNR at that amplitude.
     reference_sqnr_db : float
         In-band SQNR at the small reference amplitude.
-    frequency : float
+    test_frequency : float
         Test frequency in cycles per modulator sample.
     """
 
-    amplitude: float
-    state_peak: np.ndarray
+    stable_amplitude: float
+    state_peaks: np.ndarray
     sqnr_db: float
     reference_sqnr_db: float
-    frequency: float
+    test_frequency: float
 
 
 def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
@@ -475,183 +646,3 @@ def _probe(modulator: Modulator, amplitude: float, freq_bin: int, n: int, settle
     y, st = modulator.run(x)
     sqnr = _in_band_sqnr_db(y[settle:], freq_bin, osr)
     return sqnr, st
-
-
-def find_stability_limit(
-    modulator: Modulator,
-    *,
-    osr: float,
-    samples: int = 32768,
-    collapse_db: float = 6.0,
-    reference_dbfs: float = -40.0,
-    resolution: float = 0.002,
-) -> StabilityLimit:
-    """Search the largest stable input sine amplitude of a modulator by bisection.
-
-    Criterion: an amplitude ``A`` is stable when a run of ``samples`` samples (after a settling
-    run of ``samples/8``) of a sine at ``A`` has no overload (the guard never acted) and its
-    in-band SQNR is no more than ``collapse_db`` below the SQNR expected from the reference
-    run, ``SQNR_ref + 20 log10(A / A_ref)`` (the in-band noise has not risen by more than
-    ``collapse_db``). The test tone lies on an exact FFT bin near a fifth of the band edge
-    ``0.5/osr``. The runs are deterministic (dither, if any, comes from the modulator's seed).
-
-    Parameters
-    ----------
-    modulator : Modulator
-        The loop to test (its guard bounds define an overload).
-    osr : float, keyword-only
-        Oversampling ratio; the band is 0..0.5/osr cycles per sample.
-    samples : int
-        Samples analysed per run (a power of two is fastest).
-    collapse_db : float
-        Allowed rise of in-band noise over the reference.
-    reference_dbfs : float
-        Level of the reference run.
-    resolution : float
-        Bisection stops when the bracket is narrower than this (fraction of full scale).
-
-    Returns
-    -------
-    StabilityLimit
-        The amplitude, the state peaks there, and the SQNRs.
-
-    References
-    ----------
-    R. Schreier and G. C. Temes, *Understanding Delta-Sigma Data Converters*, 2005, ch. 4
-    (maximum stable amplitude found by simulation; chapter number from memory). The criterion
-    and its thresholds here are this project's own choice.
-    """
-    if not (np.isfinite(osr) and osr >= 4):
-        raise ParameterError("osr", osr, "a number >= 4")
-    if not (isinstance(samples, int | np.integer) and samples >= 1024):
-        raise ParameterError("samples", samples, "an integer >= 1024")
-    edge_bin = samples * 0.5 / osr
-    if edge_bin < 20:
-        raise ParameterError("samples", samples, f"at least {int(np.ceil(40 * osr))} for osr={osr}")
-    freq_bin = max(int(round(edge_bin / 5)) | 1, 9)
-    settle = samples // 8
-    ref_amp = 10 ** (reference_dbfs / 20)
-    ref_sqnr, _ = _probe(modulator, ref_amp, freq_bin, samples, settle, osr)
-
-    def judge(amp):
-        sqnr, st = _probe(modulator, amp, freq_bin, samples, settle, osr)
-        expected = ref_sqnr + 20 * np.log10(amp / ref_amp)
-        ok = int(st.overload_count[0]) == 0 and sqnr >= expected - collapse_db
-        return ok, sqnr, st
-
-    lo, hi = ref_amp, 1.0
-    ok_hi, sqnr_hi, st_hi = judge(hi)
-    if ok_hi:
-        best = (hi, sqnr_hi, st_hi)
-    else:
-        ok_lo, sqnr_lo, st_lo = judge(lo)
-        if not ok_lo:
-            return StabilityLimit(
-                0.0, np.zeros(modulator.order), sqnr_lo, ref_sqnr, freq_bin / samples
-            )
-        best = (lo, sqnr_lo, st_lo)
-        while hi - lo > resolution:
-            mid = 0.5 * (lo + hi)
-            ok, sqnr, st = judge(mid)
-            if ok:
-                lo, best = mid, (mid, sqnr, st)
-            else:
-                hi = mid
-    amp, sqnr, st = best
-    return StabilityLimit(
-        amplitude=float(amp),
-        state_peak=np.array(st.state_peak[0]),
-        sqnr_db=float(sqnr),
-        reference_sqnr_db=float(ref_sqnr),
-        frequency=freq_bin / samples,
-    )
-
-
-def max_stable_amplitude(modulator: Modulator, *, osr: float, **options) -> float:
-    """Largest stable sine amplitude (fraction of full scale); see :func:`find_stability_limit`.
-
-    Parameters
-    ----------
-    modulator : Modulator
-        The loop to test.
-    osr : float, keyword-only
-        Oversampling ratio.
-    **options
-        Passed on to :func:`find_stability_limit` (``samples``, ``collapse_db``, ...).
-
-    Returns
-    -------
-    float
-        The amplitude.
-    """
-    return find_stability_limit(modulator, osr=osr, **options).amplitude
-
-
-def scale_states(
-    modulator: Modulator,
-    *,
-    osr: float,
-    bound: float = 1.0,
-    power_of_two: bool = False,
-    **options,
-) -> tuple[Modulator, StabilityLimit]:
-    """Rescale the loop's integrators so each peaks at ``bound`` at the maximum stable amplitude.
-
-    The stability limit is found on ``modulator``; its state peaks there give the diagonal
-    similarity transform (:meth:`LoopRealization.scaled`), which leaves the NTF unchanged. The
-    scaled loop is then run again at the same amplitude and its peaks reported.
-
-    With ``power_of_two`` every factor is a power of two: the scaled loop's output is then
-    bit-identical to the unscaled loop's, and each scaled state peaks in ``(bound/2, bound]``.
-
-    Parameters
-    ----------
-    modulator : Modulator
-        The loop to scale.
-    osr : float, keyword-only
-        Oversampling ratio for the stability search.
-    bound : float, keyword-only
-        Target peak of each state.
-    power_of_two : bool, keyword-only
-        Round the factors up to powers of two (see :meth:`LoopRealization.scaled`).
-    **options
-        Passed on to :func:`find_stability_limit`.
-
-    Returns
-    -------
-    scaled : Modulator
-        Same settings, scaled loop.
-    limit : StabilityLimit
-        For the scaled loop at the amplitude found: ``state_peak`` are the simulated peaks
-        after scaling (close to ``bound``). The quantizer-facing state keeps its own size in
-        error-feedback loops and in multi-level feedback loops, where the quantizer fixes it;
-        a single-bit feedback loop has it scaled too (its sign decision does not mind).
-    """
-    limit = find_stability_limit(modulator, osr=osr, **options)
-    if limit.amplitude <= 0:
-        raise ParameterError("modulator", repr(modulator), "a loop stable for some input")
-    peaks = np.where(limit.state_peak > 0, limit.state_peak, 1.0)
-    single_bit_feedback = modulator.structure == "feedback" and modulator.levels == 2
-    loop = modulator.loop.scaled(
-        peaks, bound=bound, power_of_two=power_of_two, quantizer_state=single_bit_feedback
-    )
-    scaled = Modulator(
-        loop,
-        levels=modulator.levels,
-        dither_lsb=modulator.dither_lsb,
-        seed=modulator.seed,
-        guard=modulator.guard,
-        state_bound=modulator.state_bound,
-        input_bound=modulator.input_bound,
-    )
-    samples = options.get("samples", 32768)
-    freq_bin = int(round(limit.frequency * samples))
-    sqnr, st = _probe(scaled, limit.amplitude, freq_bin, samples, samples // 8, osr)
-    after = StabilityLimit(
-        amplitude=limit.amplitude,
-        state_peak=np.array(st.state_peak[0]),
-        sqnr_db=sqnr,
-        reference_sqnr_db=limit.reference_sqnr_db,
-        frequency=limit.frequency,
-    )
-    return scaled, after

@@ -644,7 +644,8 @@ class PackedBitsWriter:
     """Write a single-bit stream as packed bytes plus a JSON sidecar, block by block.
 
     Layout (our own, see docs/outputs.md): samples are interleaved by channel (sample 0 of
-    channel 0, sample 0 of channel 1, ..., sample 1 of channel 0, ...); each value is one bit,
+    channel 1, sample 0 of channel 2, ..., sample 1 of channel 1, ...; channels numbered from 1,
+    as everywhere people read them); each value is one bit,
     1 for +1.0 and 0 for -1.0; bits fill each byte from the most significant bit down
     (``np.packbits(..., bitorder="big")``); the last byte is padded with 0 bits. The sidecar
     ``<path>.json`` holds the rate, channel count, bit order, level mapping and sample count.
@@ -707,7 +708,7 @@ class PackedBitsWriter:
             "rate_hz": self.rate_hz,
             "channels": self.channels,
             "samples_per_channel": self._samples,
-            "channel_order": "interleaved, channel 0 first within each sample",
+            "channel_order": "interleaved, channel 1 first within each sample",
             "bit_order": "most significant bit first within each byte",
             "level_of_bit_1": 1.0,
             "level_of_bit_0": -1.0,
@@ -804,7 +805,7 @@ def read_packed_bits(path) -> tuple[np.ndarray, dict]:
 class CodeTextWriter:
     """Write level codes as text, one word per line, for HDL test benches.
 
-    Each line is one sample clock: for every channel (channel 0 leftmost) the level code
+    Each line is one sample clock: for every channel (channel 1 leftmost) the level code
     ``k`` (0 for -1.0 ... ``levels - 1`` for +1.0) in binary with ``ceil(log2(levels))``
     digits, most significant digit first, channels concatenated without separators. For a
     single-bit stereo stream a line is two characters, e.g. ``10``. No header: a line holds
