@@ -474,6 +474,10 @@ class _LoopKernel:
             self._variants[which] = kernel
         return kernel
 
+    def has_variant(self, single_bit, dithered):
+        """Whether that variant is compiled or loaded in this process already."""
+        return (bool(single_bit), bool(dithered)) in self._variants
+
     def __call__(self, u, out, coef, state, rng, peaks, counts, levels, dither_scale, *bounds):
         kernel = self.variant(levels == 2, dither_scale != 0.0)
         return kernel(u, out, coef, state, rng, peaks, counts, levels, dither_scale, *bounds)

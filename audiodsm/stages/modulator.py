@@ -29,6 +29,8 @@ __all__ = [
 ]
 
 GUARD_ACTIONS = ("reset", "clamp")
+#: runs shorter than this (samples per channel) may use a more general kernel (see __init__)
+_SHORT_RUN = 1 << 16
 _GOLDEN = 0x9E3779B97F4A7C15
 _MASK = (1 << 64) - 1
 
@@ -211,6 +213,13 @@ class Modulator:
 
         key = _kernel_key(loop)
         self._fast_kernel = None if key is None else _kernels.loop_kernel(*key)
+        # An unscaled loop's kernel leaves out the chain gains (all exactly 1); the kernel
+        # that multiplies by them computes the same numbers (x * 1.0 == x), so short runs
+        # (the stability search's, before the chain runs the scaled loop with that kernel)
+        # take it unless this loop's own is already loaded: one compile instead of two.
+        self._general_kernel = None
+        if key is not None and key[3]:
+            self._general_kernel = _kernels.loop_kernel(key[0], key[1], key[2], False, key[4])
 
     @property
     def structure(self) -> str:
@@ -293,7 +302,12 @@ class Modulator:
         counts = np.array([count], dtype=np.int64)
         scalars = self._kernel_scalars()
         if trace is None and self._fast_kernel is not None:
-            bad = self._fast_kernel(u, out, self._coef, st, rng, peaks, counts, *scalars)
+            kernel = self._fast_kernel
+            if len(u) < _SHORT_RUN and self._general_kernel is not None:
+                variant = (self.levels == 2, scalars[1] != 0.0)
+                if not kernel.has_variant(*variant):
+                    kernel = self._general_kernel
+            bad = kernel(u, out, self._coef, st, rng, peaks, counts, *scalars)
         else:
             bad = _kernels.loop_any_structure(
                 u,
