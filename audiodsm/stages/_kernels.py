@@ -10,6 +10,7 @@ tests. The rate converters' loops live apart, in :mod:`audiodsm.stages._rate_ker
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 from numba import njit
@@ -464,14 +465,18 @@ class _LoopKernel:
     def __init__(self, key):
         self.key = key
         self._variants = {}
+        self._lock = threading.Lock()  # channels in threads: build each variant once
 
     def variant(self, single_bit, dithered):
         """The compiled kernel for one quantizer and dither case."""
         which = (bool(single_bit), bool(dithered))
         kernel = self._variants.get(which)
         if kernel is None:
-            kernel = _compile_loop_source(*self.key, which)
-            self._variants[which] = kernel
+            with self._lock:
+                kernel = self._variants.get(which)
+                if kernel is None:
+                    kernel = _compile_loop_source(*self.key, which)
+                    self._variants[which] = kernel
         return kernel
 
     def has_variant(self, single_bit, dithered):
