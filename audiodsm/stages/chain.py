@@ -241,12 +241,18 @@ def _settings_of(profile: ChainProfile, section: str):
 
 @functools.lru_cache(maxsize=64)
 def _designed_ntf(order, osr, out_of_band_gain, zero_layout):
-    """NoiseTransfer.designed, remembered: a battery builds the same chain many times."""
+    """NoiseTransfer.designed, remembered in this process and on disk (stages/loop_cache.py)."""
     from audiodsm.design.ntf import NoiseTransfer
+    from audiodsm.stages import loop_cache
 
-    return NoiseTransfer.designed(
-        order, osr=osr, out_of_band_gain=out_of_band_gain, zero_layout=zero_layout
-    )
+    key = (int(order), float(osr), float(out_of_band_gain), str(zero_layout))
+    ntf = loop_cache.load("ntf", key)
+    if not isinstance(ntf, NoiseTransfer):
+        ntf = NoiseTransfer.designed(
+            order, osr=osr, out_of_band_gain=out_of_band_gain, zero_layout=zero_layout
+        )
+        loop_cache.store("ntf", key, ntf)
+    return ntf
 
 
 _SCALED_LOOPS: dict = {}
@@ -258,8 +264,9 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
 
     Scaling simulates (a stability search and one check run, see
     :meth:`~audiodsm.stages.modulator.Modulator.with_scaled_states`), so results are remembered
-    per process, keyed by the NTF's values and every setting that enters the simulation; the
-    runs are deterministic, so a remembered result equals a fresh one. The search runs the unscaled
+    per process and on disk (:mod:`audiodsm.stages.loop_cache`), keyed by the NTF's values and
+    every setting that enters the simulation; the runs are deterministic, so a remembered
+    result equals a fresh one. The search runs the unscaled
     loop with the modulator's default guard bounds (the profile's ``state_bound`` is meant for
     the scaled states). A loop with no stable amplitude at all is left unscaled.
 
@@ -271,6 +278,7 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
         The scaled loop's simulated state peaks at the maximum stable amplitude (None when
         scaling is off; amplitude 0 when no stable amplitude was found).
     """
+    from audiodsm.stages import loop_cache
     from audiodsm.stages.modulator import Modulator, StabilityProbe
 
     if mode == "off":
@@ -287,14 +295,18 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
     hit = _SCALED_LOOPS.get(key)
     if hit is not None:
         return hit
-    unscaled = Modulator(ntf, **mod_kwargs)
-    try:
-        scaled, probe = unscaled.with_scaled_states(
-            osr=osr, peak_target=bound, powers_of_two=(mode == "power-of-two")
-        )
-        result = (scaled.loop, probe)
-    except ParameterError:  # no stable amplitude: nothing to scale for
-        result = (unscaled.loop, StabilityProbe(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0))
+    result = loop_cache.load("scaled-loop", key)
+    if not (isinstance(result, tuple) and isinstance(result[1], StabilityProbe)):
+        unscaled = Modulator(ntf, **mod_kwargs)
+        try:
+            scaled, probe = unscaled.with_scaled_states(
+                osr=osr, peak_target=bound, powers_of_two=(mode == "power-of-two")
+            )
+            result = (scaled.loop, probe)
+        except ParameterError:  # no stable amplitude: nothing to scale for
+            zero = StabilityProbe(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0)
+            result = (unscaled.loop, zero)
+        loop_cache.store("scaled-loop", key, result)
     if len(_SCALED_LOOPS) >= _SCALED_LOOPS_MAX:
         _SCALED_LOOPS.pop(next(iter(_SCALED_LOOPS)))
     _SCALED_LOOPS[key] = result
