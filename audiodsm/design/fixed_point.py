@@ -38,6 +38,7 @@ import numpy as np
 from audiodsm.errors import ParameterError
 
 __all__ = [
+    "COEFFICIENT_ROWS",
     "OVERFLOW_RULES",
     "ROUNDING_RULES",
     "FixedPointFormat",
