@@ -43,12 +43,15 @@ __all__ = [
     "ROUNDING_RULES",
     "FixedPointFormat",
     "NodeFormat",
+    "NodeNoiseGains",
     "coefficient_integers",
     "csd_digits",
     "csd_nonzero_count",
     "csd_value",
+    "node_noise_gains",
     "quantize_coefficients",
     "round_to_csd",
+    "rounding_noise_power",
 ]
 
 ROUNDING_RULES = ("truncate", "round-half-up", "convergent")
@@ -331,3 +334,120 @@ def quantize_coefficients(loop, *, fraction_bits: int, max_digits: int = 0):
     scale = 2.0**-fraction_bits
     changes = {row: np.array(ints[row], dtype=float) * scale for row in COEFFICIENT_ROWS}
     return replace(loop, **changes)
+
+
+# ---------------------------------------------------------------------------------------------
+# What each rounding node adds at the output (the linear model)
+# ---------------------------------------------------------------------------------------------
+
+
+def _linear_step(loop, x, u, w, node=-1, error=0.0):
+    """One update of the feedback loop in float, optionally adding ``error`` at state ``node``.
+
+    Mirrors the operation order of the integer kernel: the error lands on the new value of
+    state ``node`` before the states upstream read it through their resonator term.
+    """
+    d, k, g, a, b = loop.leak, loop.chain_gain, loop.resonator, loop.feedback, loop.input_gain
+    n = len(d)
+    new = np.array(x, dtype=float)
+    for i in range(n - 1, -1, -1):
+        prev = k[i] * x[i - 1] if i > 0 else b[0] * u
+        acc = d[i] * x[i] + prev - a[i] * w
+        if i + 1 < n:
+            acc = acc - g[i] * new[i + 1]
+        if i == node:
+            acc = acc + error
+        new[i] = acc
+    return new
+
+
+@dataclass(frozen=True)
+class NodeNoiseGains:
+    """How an error made at each node reaches the loop output, in the linear model.
+
+    Attributes
+    ----------
+    names : tuple of str
+        ``"input"``, ``"state 1"`` ... ``"state n"``.
+    in_band_power_gain : ndarray
+        ``2 * integral_0^(0.5/osr) |H(f)|^2 df`` (f in cycles per sample): a white error of
+        variance ``s2`` at the node adds ``s2 * gain`` of output power in the band 0..0.5/osr.
+    dc_gain : ndarray
+        ``H(0)``: a mean ``m`` at the node adds a DC of ``m * H(0)`` at the output.
+    """
+
+    names: tuple
+    in_band_power_gain: np.ndarray
+    dc_gain: np.ndarray
+
+
+def node_noise_gains(loop, *, osr: float, points: int = 4097) -> NodeNoiseGains:
+    """Transfer from each node's rounding error to the output, integrated over the band.
+
+    Parameters
+    ----------
+    loop : LoopRealization
+        A feedback loop (usually with its coefficients quantized).
+    osr : float, keyword-only
+        Oversampling ratio: the band is 0..0.5/osr cycles per sample.
+    points : int, keyword-only
+        Frequency points of the integration (Simpson's rule; odd).
+
+    Returns
+    -------
+    NodeNoiseGains
+
+    Notes
+    -----
+    The quantizer is the additive-noise model ``v = c x + e`` (``c`` = ``output_weight``), as
+    for the realized NTF. An error ``eps`` at state ``j`` enters the state update as the
+    vector ``p_j`` (one step of the update rule with only ``eps = 1`` present: it lands on
+    ``x[j]`` and, through the resonator term, on the state upstream of a resonator pair); the
+    input's error enters like the input. ``H(z) = c (zI - A_cl)^-1 p``.
+
+    References
+    ----------
+    .. [1] B. Widrow and I. Kollár, *Quantization Noise*, Cambridge University Press, 2008
+       (a rounding as an additive white error, independent of the signal).
+    """
+    if not (np.isfinite(osr) and osr >= 1):
+        raise ParameterError("osr", osr, "a number >= 1")
+    n = loop.order
+    zero = np.zeros(n)
+    a_open = np.column_stack([_linear_step(loop, np.eye(n)[j], 0.0, 0.0) for j in range(n)])
+    b_feedback = _linear_step(loop, zero, 0.0, 1.0)
+    c = np.asarray(loop.output_weight, dtype=float)
+    a_cl = a_open + np.outer(b_feedback, c)
+    entries = [_linear_step(loop, zero, 1.0, 0.0)]
+    entries += [_linear_step(loop, zero, 0.0, 0.0, node=j, error=1.0) for j in range(n)]
+    p = np.column_stack(entries)
+    freqs = np.linspace(0.0, 0.5 / osr, points | 1)
+    eye = np.eye(n)
+    resp = np.empty((len(freqs), p.shape[1]), dtype=complex)
+    for i, f in enumerate(freqs):
+        z = np.exp(2j * np.pi * f)
+        resp[i] = c @ np.linalg.solve(z * eye - a_cl, p)
+    from scipy.integrate import simpson
+
+    power = 2.0 * simpson(np.abs(resp) ** 2, x=freqs, axis=0)
+    names = ("input",) + tuple(f"state {j + 1}" for j in range(n))
+    return NodeNoiseGains(names, power, resp[0].real.copy())
+
+
+def rounding_noise_power(step: float, rule: str, power_gain: float, dc_gain: float) -> float:
+    """In-band output power a rounding node adds, by the classic model.
+
+    A white error of power ``step**2 / 12`` times the node's in-band power gain, plus, for
+    truncation, the output DC its mean of minus half a step makes, ``(step/2 * H(0))**2``.
+
+    References
+    ----------
+    .. [1] B. Widrow and I. Kollár, *Quantization Noise*, Cambridge University Press, 2008
+       (uniform quantization error: variance step^2/12; truncation: mean -step/2).
+    """
+    if rule not in ROUNDING_RULES:
+        raise ParameterError("rounding", rule, f"one of {', '.join(ROUNDING_RULES)}")
+    white = step**2 / 12.0 * power_gain
+    if rule == "truncate":
+        white += (0.5 * step * dc_gain) ** 2
+    return float(white)
