@@ -39,6 +39,12 @@ from audiodsm.errors import ParameterError
 
 __all__ = [
     "COEFFICIENT_ROWS",
+    "CoefficientReport",
+    "NodePlan",
+    "WordLengthPlan",
+    "coefficient_report",
+    "plan_word_lengths",
+    "smallest_coefficient_bits",
     "OVERFLOW_RULES",
     "ROUNDING_RULES",
     "FixedPointFormat",
@@ -451,3 +457,388 @@ def rounding_noise_power(step: float, rule: str, power_gain: float, dc_gain: flo
     if rule == "truncate":
         white += (0.5 * step * dc_gain) ** 2
     return float(white)
+
+
+# ---------------------------------------------------------------------------------------------
+# The word-length plan
+# ---------------------------------------------------------------------------------------------
+
+_FULL_SCALE_SINE_POWER = 0.5  # mean square of a 0 dBFS sine (AES17): levels in dBFS below
+
+
+def _dbfs(power: float) -> float:
+    return float(10.0 * np.log10(max(power, 1e-300) / _FULL_SCALE_SINE_POWER))
+
+
+def _realized_ntf(loop):
+    """The NTF computed back from a loop's own coefficients (the one design-layer call here)."""
+    return loop.ntf_from_coefficients()
+
+
+def _in_band_power_gain(response, osr: float, points: int = 4097) -> float:
+    """``2 * integral_0^(0.5/osr) |H(f)|^2 df`` of a response function (Simpson's rule)."""
+    from scipy.integrate import simpson
+
+    f = np.linspace(0.0, 0.5 / osr, points | 1)
+    return float(2.0 * simpson(np.abs(response(f)) ** 2, x=f))
+
+
+def _largest_gain(response, points: int = 8193) -> float:
+    f = np.linspace(0.0, 0.5, points)
+    return float(np.max(np.abs(response(f))))
+
+
+@dataclass(frozen=True)
+class CoefficientReport:
+    """What quantizing the coefficients did to the loop.
+
+    Attributes
+    ----------
+    fraction_bits, digits : int
+        The coefficient format (``digits`` 0: no CSD limit).
+    largest_error : float
+        Largest |quantized - exact| over all coefficients.
+    zeros, poles : ndarray
+        The realized NTF's zeros and poles.
+    zero_shift, pole_shift : float
+        Largest distance a zero / pole moved from the design (roots paired to minimise the
+        total distance).
+    largest_gain, design_largest_gain : float
+        Largest |NTF| over frequency, realized and designed.
+    in_band_noise_change_db : float
+        Change of the NTF's in-band power gain (realized over designed), dB.
+    adders : int
+        Adders a shift-add realization of all coefficients needs (non-zero CSD digits - 1,
+        summed over the coefficients that are not 0 or a power of two).
+    """
+
+    fraction_bits: int
+    digits: int
+    largest_error: float
+    zeros: np.ndarray
+    poles: np.ndarray
+    zero_shift: float
+    pole_shift: float
+    largest_gain: float
+    design_largest_gain: float
+    in_band_noise_change_db: float
+    adders: int
+
+    @property
+    def poles_inside(self) -> bool:
+        """True when every realized pole is inside the unit circle."""
+        return bool(np.all(np.abs(self.poles) < 1.0))
+
+
+def _largest_move(moved, design) -> float:
+    """Largest distance between paired roots, paired to minimise the total distance."""
+    from scipy.optimize import linear_sum_assignment
+
+    moved = np.asarray(moved, dtype=complex)
+    design = np.asarray(design, dtype=complex)
+    cost = np.abs(moved[:, None] - design[None, :])
+    rows, cols = linear_sum_assignment(cost)
+    return float(cost[rows, cols].max()) if len(rows) else 0.0
+
+
+def coefficient_report(loop, *, osr: float, fraction_bits: int, digits: int = 0):
+    """Quantize ``loop``'s coefficients and compare the realized NTF with the design.
+
+    Parameters
+    ----------
+    loop : LoopRealization
+        The exact (float) feedback loop.
+    osr : float, keyword-only
+        Oversampling ratio (for the in-band noise change).
+    fraction_bits, digits : int, keyword-only
+        The coefficient format.
+
+    Returns
+    -------
+    CoefficientReport
+    """
+    quantized = quantize_coefficients(loop, fraction_bits=fraction_bits, max_digits=digits)
+    design = _realized_ntf(loop)
+    realized = _realized_ntf(quantized)
+    errors = [
+        np.max(np.abs(np.asarray(getattr(quantized, r)) - np.asarray(getattr(loop, r))))
+        for r in COEFFICIENT_ROWS
+    ]
+    ints = coefficient_integers(loop, fraction_bits=fraction_bits, max_digits=digits)
+    adders = sum(max(csd_nonzero_count(c) - 1, 0) for row in ints.values() for c in row)
+    g_design = _in_band_power_gain(design.response, osr)
+    g_real = _in_band_power_gain(realized.response, osr)
+    return CoefficientReport(
+        fraction_bits=int(fraction_bits),
+        digits=int(digits),
+        largest_error=float(max(errors)),
+        zeros=np.asarray(realized.zeros, dtype=complex),
+        poles=np.asarray(realized.poles, dtype=complex),
+        zero_shift=_largest_move(realized.zeros, design.zeros),
+        pole_shift=_largest_move(realized.poles, design.poles),
+        largest_gain=_largest_gain(realized.response),
+        design_largest_gain=_largest_gain(design.response),
+        in_band_noise_change_db=float(10 * np.log10(g_real / g_design)),
+        adders=int(adders),
+    )
+
+
+def smallest_coefficient_bits(
+    loop, *, osr: float, digits: int = 0, noise_change_db: float = 0.1, gain_change: float = 0.02
+) -> CoefficientReport:
+    """The fewest coefficient fractional bits (4 to 32) that leave the NTF nearly as designed.
+
+    Accepted when the realized poles are inside the unit circle, the in-band noise gain moved
+    by at most ``noise_change_db`` and the largest NTF gain by at most the fraction
+    ``gain_change`` (this project's thresholds).
+    """
+    report = None
+    for bits in range(4, 33):
+        report = coefficient_report(loop, osr=osr, fraction_bits=bits, digits=digits)
+        if (
+            report.poles_inside
+            and abs(report.in_band_noise_change_db) <= noise_change_db
+            and abs(report.largest_gain / report.design_largest_gain - 1) <= gain_change
+        ):
+            return report
+    raise ParameterError(
+        "coefficient_digits",
+        digits,
+        "more CSD digits (or 0 for no limit): even 32 fractional bits do not keep the NTF",
+    )
+
+
+@dataclass(frozen=True)
+class NodePlan:
+    """One row of the plan.
+
+    Attributes
+    ----------
+    name : str
+        ``"input"`` or ``"state j"``.
+    peak : float
+        Peak |value| seen in the float run (full-scale units).
+    integer_bits, fraction_bits : int
+        The planned word (sign bit not counted).
+    rounding : str
+        The node's rounding rule.
+    added_noise_dbfs : float
+        In-band noise this node's rounding adds at the output, by the classic model.
+    """
+
+    name: str
+    peak: float
+    integer_bits: int
+    fraction_bits: int
+    rounding: str
+    added_noise_dbfs: float
+
+    @property
+    def word_bits(self) -> int:
+        """Sign + integer + fraction."""
+        return 1 + self.integer_bits + self.fraction_bits
+
+
+@dataclass(frozen=True)
+class WordLengthPlan:
+    """Word lengths of every node and the coefficient format, with the noise they add.
+
+    Attributes
+    ----------
+    format : FixedPointFormat
+        The planned loop format.
+    nodes : tuple of NodePlan
+        Input first, then the states.
+    loop_noise_dbfs : float
+        In-band noise of the float loop (its own quantization noise).
+    added_noise_dbfs : float
+        Sum of what all rounding nodes add in band (classic model).
+    budget_db, margin_db : float
+        The planning targets: added noise this far under the loop's; range this far over the
+        observed peaks.
+    coefficients : CoefficientReport
+        What coefficient quantization did to the NTF.
+    """
+
+    format: FixedPointFormat
+    nodes: tuple
+    loop_noise_dbfs: float
+    added_noise_dbfs: float
+    budget_db: float
+    margin_db: float
+    coefficients: CoefficientReport
+
+    def table(self) -> str:
+        """The plan as an aligned text table: node, range, bits, added in-band noise."""
+        head = ("node", "peak", "range", "word", "int", "frac", "rounding", "added dBFS")
+        rows = [head]
+        for node in self.nodes:
+            rows.append(
+                (
+                    node.name,
+                    f"{node.peak:.4g}",
+                    f"±{2.0**node.integer_bits:g}",
+                    str(node.word_bits),
+                    str(node.integer_bits),
+                    str(node.fraction_bits),
+                    node.rounding,
+                    f"{node.added_noise_dbfs:.1f}",
+                )
+            )
+        widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
+        lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)) for r in rows]
+        c = self.coefficients
+        digits = f", at most {c.digits} CSD digits" if c.digits else ""
+        lines += [
+            "",
+            f"loop noise in band {self.loop_noise_dbfs:.1f} dBFS; rounding adds "
+            f"{self.added_noise_dbfs:.1f} dBFS (budget: {self.budget_db:g} dB under)",
+            f"coefficients: {c.fraction_bits} fractional bits{digits}, {c.adders} adders; "
+            f"poles moved {c.pole_shift:.2e}, zeros moved {c.zero_shift:.2e}; largest NTF gain "
+            f"{c.largest_gain:.3f} (design {c.design_largest_gain:.3f}); in-band noise "
+            f"{c.in_band_noise_change_db:+.3f} dB",
+        ]
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        """Plain data (for JSON)."""
+        c = self.coefficients
+        return {
+            "loop_noise_dbfs": self.loop_noise_dbfs,
+            "added_noise_dbfs": self.added_noise_dbfs,
+            "budget_db": self.budget_db,
+            "margin_db": self.margin_db,
+            "nodes": [
+                {
+                    "node": n.name,
+                    "peak": n.peak,
+                    "integer_bits": n.integer_bits,
+                    "fraction_bits": n.fraction_bits,
+                    "word_bits": n.word_bits,
+                    "rounding": n.rounding,
+                    "added_noise_dbfs": n.added_noise_dbfs,
+                }
+                for n in self.nodes
+            ],
+            "coefficients": {
+                "fraction_bits": c.fraction_bits,
+                "csd_digits": c.digits,
+                "adders": c.adders,
+                "largest_error": c.largest_error,
+                "pole_shift": c.pole_shift,
+                "zero_shift": c.zero_shift,
+                "largest_ntf_gain": c.largest_gain,
+                "design_largest_ntf_gain": c.design_largest_gain,
+                "in_band_noise_change_db": c.in_band_noise_change_db,
+                "realized_poles": [[p.real, p.imag] for p in c.poles],
+                "realized_zeros": [[z.real, z.imag] for z in c.zeros],
+            },
+        }
+
+
+def _fraction_bits_for(share: float, rule: str, gain: float, dc: float, floor: int) -> int:
+    """Fewest fractional bits whose rounding adds at most ``share`` of in-band power."""
+    per_step2 = gain / 12.0 + (0.25 * dc * dc if rule == "truncate" else 0.0)
+    if per_step2 <= 0:
+        return floor
+    step = np.sqrt(share / per_step2)
+    return int(min(max(np.ceil(-np.log2(step)), floor), 48))
+
+
+def plan_word_lengths(
+    loop,
+    *,
+    osr: float,
+    state_peaks,
+    loop_noise_power: float,
+    budget_db: float = 20.0,
+    margin_db: float = 6.0,
+    rounding: str = "round-half-up",
+    overflow: str = "saturate",
+    coefficient_fraction_bits: int = 0,
+    coefficient_digits: int = 0,
+    min_fraction_bits: int = 8,
+) -> WordLengthPlan:
+    """Plan the word of every node from a float run and a noise budget.
+
+    Parameters
+    ----------
+    loop : LoopRealization
+        The exact feedback loop (state-scaled as the chain runs it).
+    osr : float, keyword-only
+        Oversampling ratio.
+    state_peaks : array_like, shape (order,)
+        Peak |state| of the float loop on a sine at its maximum stable amplitude.
+    loop_noise_power : float
+        In-band noise power of the float loop (full-scale units squared).
+    budget_db : float, keyword-only
+        All rounding nodes together add at most the loop's noise minus this many dB; each of
+        the ``order + 1`` nodes gets an equal share.
+    margin_db : float, keyword-only
+        Range above the observed peaks (6 dB: twice the peak).
+    rounding, overflow : str, keyword-only
+        Rules for every node.
+    coefficient_fraction_bits : int, keyword-only
+        0: the fewest that keep the NTF (:func:`smallest_coefficient_bits`).
+    coefficient_digits : int, keyword-only
+        CSD digit limit per coefficient (0: none).
+    min_fraction_bits : int, keyword-only
+        No node gets fewer (keeps each rounding's error busy enough for the white model).
+
+    Returns
+    -------
+    WordLengthPlan
+
+    References
+    ----------
+    .. [1] B. Widrow and I. Kollár, *Quantization Noise*, Cambridge University Press, 2008
+       (each rounding's added noise, see :func:`rounding_noise_power`).
+    """
+    peaks = np.asarray(state_peaks, dtype=float)
+    if peaks.shape != (loop.order,) or not np.all(np.isfinite(peaks)) or np.any(peaks <= 0):
+        raise ParameterError("state_peaks", peaks.tolist(), f"{loop.order} positive numbers")
+    if not (np.isfinite(loop_noise_power) and loop_noise_power > 0):
+        raise ParameterError("loop_noise_power", loop_noise_power, "a positive number")
+    if rounding not in ROUNDING_RULES:
+        raise ParameterError("rounding", rounding, f"one of {', '.join(ROUNDING_RULES)}")
+    if overflow not in OVERFLOW_RULES:
+        raise ParameterError("overflow", overflow, f"one of {', '.join(OVERFLOW_RULES)}")
+    if coefficient_fraction_bits:
+        report = coefficient_report(
+            loop, osr=osr, fraction_bits=coefficient_fraction_bits, digits=coefficient_digits
+        )
+    else:
+        report = smallest_coefficient_bits(loop, osr=osr, digits=coefficient_digits)
+    quantized = quantize_coefficients(
+        loop, fraction_bits=report.fraction_bits, max_digits=report.digits
+    )
+    gains = node_noise_gains(quantized, osr=osr)
+    share = loop_noise_power * 10 ** (-budget_db / 10) / len(gains.names)
+    margin = 10 ** (margin_db / 20)
+    nodes = []
+    all_peaks = np.r_[1.0, peaks]  # the input word holds full scale
+    for j, name in enumerate(gains.names):
+        g, dc = gains.in_band_power_gain[j], gains.dc_gain[j]
+        frac = _fraction_bits_for(share, rounding, g, dc, min_fraction_bits)
+        integer = 0 if j == 0 else max(int(np.floor(np.log2(all_peaks[j] * margin))) + 1, 0)
+        added = rounding_noise_power(2.0**-frac, rounding, g, dc)
+        nodes.append(NodePlan(name, float(all_peaks[j]), integer, frac, rounding, _dbfs(added)))
+    states = tuple(
+        NodeFormat(n.name, n.integer_bits, n.fraction_bits, rounding, overflow) for n in nodes[1:]
+    )
+    fmt = FixedPointFormat(
+        input=NodeFormat("input", 0, nodes[0].fraction_bits, rounding, "saturate"),
+        states=states,
+        coefficient_fraction_bits=report.fraction_bits,
+        coefficient_digits=report.digits,
+    )
+    total = sum(10 ** (n.added_noise_dbfs / 10) * _FULL_SCALE_SINE_POWER for n in nodes)
+    return WordLengthPlan(
+        format=fmt,
+        nodes=tuple(nodes),
+        loop_noise_dbfs=_dbfs(loop_noise_power),
+        added_noise_dbfs=_dbfs(total),
+        budget_db=float(budget_db),
+        margin_db=float(margin_db),
+        coefficients=report,
+    )

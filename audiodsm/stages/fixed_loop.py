@@ -22,7 +22,13 @@ from audiodsm.design.fixed_point import (
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _fixed_kernels
 
-__all__ = ["FixedLoopState", "FixedPointModulator", "quantize_words"]
+__all__ = [
+    "FixedLoopState",
+    "FixedPointModulator",
+    "format_from_settings",
+    "in_band_noise_power",
+    "quantize_words",
+]
 
 _ROUNDING_CODES = {"truncate": 0, "round-half-up": 1, "convergent": 2}
 _OVERFLOW_CODES = {"saturate": 0, "wrap": 1}
@@ -326,3 +332,42 @@ def in_band_noise_power(y, *, osr: float, tone_bin: int | None = None) -> float:
         side = np.r_[band[max(lo - 2 * half, 0) : lo], band[hi : hi + 2 * half]]
         band[lo:hi] = side.mean()
     return float(band.sum())
+
+
+def format_from_settings(settings) -> FixedPointFormat:
+    """The loop format a profile's ``[fixed_point]`` section describes.
+
+    Parameters
+    ----------
+    settings : FixedPointSettings
+        An active section (``state_integer_bits`` given).
+
+    Returns
+    -------
+    FixedPointFormat
+    """
+    from audiodsm.design.fixed_point import NodeFormat
+
+    n = len(settings.state_integer_bits)
+    rounding = settings.state_rounding or ("round-half-up",) * n
+    overflow = settings.state_overflow or ("saturate",) * n
+    states = tuple(
+        NodeFormat(f"state {i + 1}", ib, fb, r, o)
+        for i, (ib, fb, r, o) in enumerate(
+            zip(
+                settings.state_integer_bits,
+                settings.state_fraction_bits,
+                rounding,
+                overflow,
+                strict=True,
+            )
+        )
+    )
+    return FixedPointFormat(
+        input=NodeFormat(
+            "input", 0, settings.input_fraction_bits, settings.input_rounding, "saturate"
+        ),
+        states=states,
+        coefficient_fraction_bits=settings.coefficient_fraction_bits,
+        coefficient_digits=settings.coefficient_digits,
+    )
