@@ -22,6 +22,8 @@ COMMANDS = {
     "measure": "audiodsm.cli.measure:measure",
     "grade": "audiodsm.cli.grade:grade",
     "design": "audiodsm.cli.design:design",
+    "plan": "audiodsm.cli.handoff:plan",
+    "handoff": "audiodsm.cli.handoff:handoff",
 }
 
 

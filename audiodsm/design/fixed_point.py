@@ -566,8 +566,10 @@ def coefficient_report(loop, *, osr: float, fraction_bits: int, digits: int = 0)
     ]
     ints = coefficient_integers(loop, fraction_bits=fraction_bits, max_digits=digits)
     adders = sum(max(csd_nonzero_count(c) - 1, 0) for row in ints.values() for c in row)
-    g_design = _in_band_power_gain(design.response, osr)
-    g_real = _in_band_power_gain(realized.response, osr)
+    with np.errstate(divide="ignore", invalid="ignore"):  # a pole may land on the circle
+        g_design = _in_band_power_gain(design.response, osr)
+        g_real = _in_band_power_gain(realized.response, osr)
+        largest, design_largest = _largest_gain(realized.response), _largest_gain(design.response)
     return CoefficientReport(
         fraction_bits=int(fraction_bits),
         digits=int(digits),
@@ -576,8 +578,8 @@ def coefficient_report(loop, *, osr: float, fraction_bits: int, digits: int = 0)
         poles=np.asarray(realized.poles, dtype=complex),
         zero_shift=_largest_move(realized.zeros, design.zeros),
         pole_shift=_largest_move(realized.poles, design.poles),
-        largest_gain=_largest_gain(realized.response),
-        design_largest_gain=_largest_gain(design.response),
+        largest_gain=largest,
+        design_largest_gain=design_largest,
         in_band_noise_change_db=float(10 * np.log10(g_real / g_design)),
         adders=int(adders),
     )

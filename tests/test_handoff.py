@@ -1,0 +1,203 @@
+"""Tests of the fixed-point plan, the [fixed_point] checks and the handoff folder."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from audiodsm.cli import main
+from audiodsm.errors import ProfileError
+from audiodsm.hardware.handoff import (
+    check_fixed_point,
+    plan_profile,
+    profile_with_plan,
+    write_handoff,
+)
+from audiodsm.profile import parse_profile, profile_to_toml
+from audiodsm.stages.fixed_loop import (
+    FixedPointModulator,
+    format_from_settings,
+    in_band_noise_power,
+)
+
+BASE = 'name = "t3"\n[upsampler]\nosr = 64\n[modulator]\norder = 3\nstructure = "feedback"\n'
+
+
+def _with_section(extra_modulator="", _structure="feedback", **keys):
+    lines = [f"{k} = {json.dumps(v)}" for k, v in keys.items()]
+    base = BASE.replace('"feedback"', json.dumps(_structure))
+    return parse_profile(base + extra_modulator + "[fixed_point]\n" + "\n".join(lines) + "\n")
+
+
+@pytest.fixture(scope="module")
+def planned():
+    profile = parse_profile(BASE)
+    plan, facts, stable = plan_profile(profile, budget_db=20.0)
+    return profile, plan, facts, stable
+
+
+def test_plan_keeps_its_noise_budget_in_simulation(planned):
+    # The plan promises: all roundings together 20 dB under the loop's own in-band noise, and
+    # coefficients that change the NTF's in-band gain by <= 0.1 dB. So the planned
+    # fixed-point loop's in-band noise must be the float loop's within a few tenths of a dB
+    # (0.5 dB allows for the two chaotic runs' estimates, 2**20 samples each).
+    profile, plan, facts, stable = planned
+    assert plan.added_noise_dbfs <= plan.loop_noise_dbfs - plan.budget_db + 1e-9
+    assert abs(plan.coefficients.in_band_noise_change_db) <= 0.1
+    assert stable > 0.9 * facts.stable_amplitude
+    n = 1 << 20
+    tone_bin = int(n / facts.osr / 2 * 0.6) | 1
+    x = 0.5 * facts.stable_amplitude * np.sin(2 * np.pi * tone_bin / n * np.arange(n))
+    fx = FixedPointModulator(facts.loop, plan.format, facts.levels)
+    y_fixed, st = fx.run(x)
+    assert st.overflow_count.sum() == 0
+    from audiodsm.stages.modulator import Modulator
+
+    y_float, _ = Modulator(facts.loop, levels=facts.levels).run(x)
+    fixed = in_band_noise_power(y_fixed, osr=facts.osr, tone_bin=tone_bin)
+    flt = in_band_noise_power(y_float, osr=facts.osr, tone_bin=tone_bin)
+    assert abs(10 * np.log10(fixed / flt)) < 0.5
+    # range: every state holds its float peak with the margin
+    for node, peak in zip(plan.format.states, facts.state_peaks, strict=True):
+        assert node.largest >= peak * 10 ** (plan.margin_db / 20) - node.step
+    text = plan.table()
+    assert "state 3" in text and "added dBFS" in text
+
+
+def test_plan_round_trips_through_the_profile(planned):
+    profile, plan, _, _ = planned
+    written = profile_with_plan(profile, plan)
+    again = parse_profile(profile_to_toml(written))
+    assert again == written
+    assert format_from_settings(again.fixed_point) == plan.format
+
+
+def test_too_few_integer_bits_are_refused_naming_the_state():
+    # unscaled, the third state of this loop peaks near 2 at the maximum stable amplitude
+    profile = _with_section(
+        'state_scaling = "off"\n',
+        state_integer_bits=[1, 1, 1],
+        state_fraction_bits=[20, 20, 20],
+    )
+    with pytest.raises(ProfileError, match=r"state 3 needs at least 2 integer bits"):
+        check_fixed_point(profile)
+
+
+def test_unstable_coefficients_are_refused_with_what_works():
+    profile = _with_section(
+        state_integer_bits=[1, 1, 1], state_fraction_bits=[20, 20, 20], coefficient_fraction_bits=2
+    )
+    with pytest.raises(ProfileError, match=r"coefficient_fraction_bits.*at least \d+ bits"):
+        check_fixed_point(profile)
+
+
+@pytest.mark.parametrize(
+    ("keys", "key"),
+    [
+        ({"state_integer_bits": [1, 1, 1], "state_fraction_bits": [9, 9, 9],
+          "state_rounding": ["nearest", "truncate", "truncate"]}, "fixed_point.state_rounding"),
+        ({"state_integer_bits": [1, 1, 1], "state_fraction_bits": [9, 9, 9],
+          "state_overflow": ["clip", "wrap", "wrap"]}, "fixed_point.state_overflow"),
+        ({"state_integer_bits": [1, 1], "state_fraction_bits": [9, 9]},
+         "fixed_point.state_integer_bits"),
+        ({"input_fraction_bits": 20}, "fixed_point.input_fraction_bits"),
+    ],
+)  # fmt: skip
+def test_bad_sections_are_refused_by_the_profile_reader(keys, key):
+    with pytest.raises(ProfileError, match=key.replace(".", r"\.")):
+        _with_section(**keys)
+
+
+def test_fixed_point_needs_a_plain_feedback_loop():
+    keys = {"state_integer_bits": [1, 1, 1], "state_fraction_bits": [9, 9, 9]}
+    with pytest.raises(ProfileError, match="modulator.structure"):
+        _with_section("", **keys, _structure="feedforward")
+    with pytest.raises(ProfileError, match="modulator.levels"):
+        _with_section("levels = 16\n", **keys)
+
+
+def _read_hex(path, bits):
+    words = [int(line, 16) for line in path.read_text().split()]
+    return np.array([w - (1 << bits) if w >> (bits - 1) else w for w in words], dtype=np.int64)
+
+
+def test_handoff_folder_holds_consistent_vectors_and_is_replaced_whole(planned, tmp_path):
+    profile, plan, facts, _ = planned
+    prof = profile_with_plan(profile, plan)
+    target = tmp_path / "out"
+    summary = write_handoff(prof, target, vector_samples=4096)
+    names = sorted(p.name for p in target.rglob("*") if p.is_file())
+    assert "README.md" in names and "coefficients.json" in names and "format.json" in names
+    assert "noise_shaper_loop.v" in names
+    fmt = json.loads((target / "format.json").read_text())
+    in_bits = fmt["input"]["word_bits"]
+    assert fmt["input"]["binary_point"] == plan.format.input.fraction_bits
+    coefs = json.loads((target / "coefficients.json").read_text())
+    fx = FixedPointModulator(facts.loop, plan.format, facts.levels)
+    for row, entries in coefs["rows"].items():
+        assert [e["integer"] for e in entries] == fx.coefficients[row]
+    ins = sorted(target.glob("vectors/*_in.hex"))
+    assert len(ins) == 5
+    for path in ins:
+        words = _read_hex(path, in_bits)
+        assert len(words) == 4096
+        out_path = path.with_name(path.name.replace("_in.hex", "_out.hex"))
+        q = np.array([int(v, 16) for v in out_path.read_text().split()])
+        np.testing.assert_array_equal(fx.run_words(words)[0], q)
+    loud = _read_hex(target / "vectors/tone_997hz_m1dbfs_in.hex", in_bits)
+    assert np.abs(loud).max() > 2 ** (in_bits - 3)  # the tone is really there
+    readme = (target / "README.md").read_text()
+    assert f"{facts.rate_hz * facts.osr} Hz" in readme and "$readmemh" in readme
+    assert summary.in_band_noise_dbfs < -80
+    # a failing second write leaves the first folder as it was and no temporary behind
+    before = sorted(p.name for p in tmp_path.iterdir())
+
+    def broken(fx):
+        raise RuntimeError("generator failed")
+
+    from audiodsm.hardware import rtl
+
+    original = rtl.verilog_text
+    rtl.verilog_text = broken
+    try:
+        with pytest.raises(RuntimeError):
+            write_handoff(prof, target, vector_samples=2048)
+    finally:
+        rtl.verilog_text = original
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+    assert len(_read_hex(ins[0], in_bits)) == 4096
+    # a successful second write replaces it whole
+    write_handoff(prof, target, vector_samples=2048)
+    assert len(_read_hex(ins[0], in_bits)) == 2048
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+def test_cli_plan_and_handoff(tmp_path):
+    src = tmp_path / "p.toml"
+    src.write_text(BASE)
+    runner = CliRunner()
+    res = runner.invoke(main, ["plan", str(src), "--output", str(tmp_path / "q.toml")])
+    assert res.exit_code == 0, res.output
+    assert "state 3" in res.output and "added dBFS" in res.output
+    res = runner.invoke(main, ["handoff", str(tmp_path / "q.toml"), str(tmp_path / "h")])
+    assert res.exit_code == 0, res.output
+    assert (tmp_path / "h" / "rtl" / "noise_shaper_loop.v").exists()
+    # bad input: one line, exit 2
+    res = runner.invoke(main, ["handoff", str(src), str(tmp_path / "h2")])
+    assert res.exit_code == 2
+    assert "fixed_point.state_integer_bits" in res.output
+    assert len(res.output.strip().splitlines()) == 1
+    assert not (tmp_path / "h2").exists()
+    bad = tmp_path / "bad.toml"
+    bad.write_text(
+        BASE
+        + "[fixed_point]\nstate_integer_bits = [1, 1, 1]\nstate_fraction_bits = [9, 9, 9]\n"
+        + 'state_rounding = ["nearest", "truncate", "truncate"]\n'
+    )
+    res = runner.invoke(main, ["handoff", str(bad), str(tmp_path / "h3")])
+    assert res.exit_code == 2 and "fixed_point.state_rounding" in res.output
+    res = runner.invoke(main, ["plan", str(src), "--rounding", "nearest"])
+    assert res.exit_code == 2
