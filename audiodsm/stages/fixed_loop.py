@@ -86,12 +86,20 @@ class FixedLoopState:
         Samples on which each state's overflow rule acted.
     samples : int
         Samples processed so far.
+    state_peak : ndarray, shape (order,)
+        ``peak_words`` as values (word times the state's step), as a float loop reports them.
     """
 
     words: np.ndarray
     peak_words: np.ndarray
     overflow_count: np.ndarray
     samples: int = 0
+    state_peak: np.ndarray | None = None
+
+    @property
+    def overload_count(self) -> int:
+        """All overflow events so far, summed over the states (the chain's overload tally)."""
+        return int(np.sum(self.overflow_count))
 
 
 class FixedPointModulator:
@@ -214,7 +222,9 @@ class FixedPointModulator:
     def initial_state(self) -> FixedLoopState:
         """All state words zero."""
         zeros = np.zeros(self.order, dtype=np.int64)
-        return FixedLoopState(_readonly(zeros), _readonly(zeros), _readonly(zeros), 0)
+        return FixedLoopState(
+            _readonly(zeros), _readonly(zeros), _readonly(zeros), 0, _readonly(np.zeros(self.order))
+        )
 
     def input_words(self, x) -> np.ndarray:
         """Full-scale float input -> input words (the input node's rules)."""
@@ -264,8 +274,13 @@ class FixedPointModulator:
         _fixed_kernels.fixed_feedback_loop(
             u, out, self._coef, self._shifts, self._rules, st, peaks, counts, self._quantizer
         )
+        steps = np.array([node.step for node in self.format.states])
         new = FixedLoopState(
-            _readonly(st), _readonly(peaks), _readonly(counts), state.samples + len(u)
+            _readonly(st),
+            _readonly(peaks),
+            _readonly(counts),
+            state.samples + len(u),
+            _readonly(peaks * steps),
         )
         return out, new
 
@@ -283,8 +298,7 @@ class FixedPointModulator:
 
     def state_peaks(self, state: FixedLoopState) -> np.ndarray:
         """Peak |state| so far as values (word times step)."""
-        steps = np.array([s.step for s in self.format.states])
-        return np.asarray(state.peak_words, dtype=float) * steps
+        return np.array(state.state_peak, dtype=float)
 
 
 def in_band_noise_power(y, *, osr: float, tone_bin: int | None = None) -> float:
