@@ -13,8 +13,10 @@ Run it as ``python -m audiodsm.demo`` (``make demo``) from a checkout. It reads
   ``audio_demo/make_demo_audio.py``; remade here when missing);
 
 and writes into ``demo_out/`` (git-ignored): ``report/<product>/grades.{html,json,csv}``,
-``listening/<product>/*.listen.wav`` (plus each render's summary JSON) and the battery cache
-``cache/``, so a second run reuses the graded batteries.
+``listening/<product>/*.listen.wav`` (plus each render's summary JSON), for every candidate
+with a ``[fixed_point]`` section its hardware handoff folder ``handoff/<product>/<profile>/``
+(see docs/fixed_point.md), and the battery cache ``cache/``, so a second run reuses the graded
+batteries.
 
 To keep the whole demo within about three minutes on two cores, it runs the battery's short
 plan (fewer levels and DC offsets, shorter captures) and says so in its output; ``audiodsm
@@ -87,11 +89,12 @@ def run_demo(
     -------
     dict
         ``{"reports": {product: {kind: path}}, "listening": [paths], "batches": {product:
-        GradeBatch}, "seconds": float}``.
+        GradeBatch}, "handoffs": [folders], "seconds": float}``.
     """
     from audiodsm.evaluate.grade import collect_profiles, grade_batch
     from audiodsm.evaluate.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.report import write_report
+    from audiodsm.hardware.handoff import write_handoff
     from audiodsm.spec import load_spec
 
     start = time.perf_counter()
@@ -107,7 +110,7 @@ def run_demo(
         )
     clips = _demo_clips(root, say)
     inputs = [*clips]
-    reports, listening, batches = {}, [], {}
+    reports, listening, batches, handoffs = {}, [], {}, []
     for product, (title, spec_name) in PRODUCTS.items():
         spec_path = root / "profiles" / "specs" / spec_name
         spec = load_spec(spec_path)
@@ -149,6 +152,12 @@ def run_demo(
                 listening.append(Path(summary["outputs"]["listening"]))
         say(f"rendered {len(clips)} clips x {len(profiles)} profiles in "
             f"{time.perf_counter() - t0:.1f} s")  # fmt: skip
+        for path, prof in profiles:
+            if prof.fixed_point.active:  # the loop handed to RTL: write its folder
+                folder = out / "handoff" / product / Path(path).stem
+                summary = write_handoff(prof, folder)
+                handoffs.append(summary.folder)
+                say(f"hardware handoff of {prof.name}: {len(summary.files)} files")
 
     seconds = time.perf_counter() - start
     say("\n== where everything went ==")
@@ -156,12 +165,20 @@ def run_demo(
         say(f"report, {PRODUCTS[product][0]}: {files['html']}")
         say(f"   same grades as JSON and CSV: {files['json'].name}, {files['csv'].name}")
     say(f"listening files ({len(listening)}): {out / 'listening'}/<product>/")
+    for folder in handoffs:
+        say(f"hardware handoff (formats, coefficients, test vectors, Verilog): {folder}")
     say(f"battery cache (a second run reuses it): {out / 'cache'}")
     say(f"demo material: {root / 'audio_demo'}")
     say("")
     say(HEARING_CAUTION)
     say(f"demo finished in {seconds:.0f} s")
-    return {"reports": reports, "listening": listening, "batches": batches, "seconds": seconds}
+    return {
+        "reports": reports,
+        "listening": listening,
+        "batches": batches,
+        "handoffs": handoffs,
+        "seconds": seconds,
+    }
 
 
 def main(argv=None) -> int:

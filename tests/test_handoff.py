@@ -221,3 +221,16 @@ def test_chain_runs_the_fixed_point_loop_bit_for_bit(planned):
     np.testing.assert_array_equal(got, expected)
     float_out, _ = chain.modulator.run(np.asarray(xu, dtype=float))
     assert np.any(float_out != expected)  # and it is not the float loop's
+
+
+def test_shipped_fixed_point_section_is_the_planners_own():
+    # the demo DAC's fixed-point candidate carries exactly what `audiodsm plan --rounding
+    # convergent` proposes for its loop
+    from pathlib import Path
+
+    from audiodsm.profile import load_profile
+
+    path = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "pdm5_fixed_64x.toml"
+    shipped = load_profile(path)
+    plan, _, _ = plan_profile(shipped, rounding="convergent")
+    assert profile_with_plan(shipped, plan) == shipped
