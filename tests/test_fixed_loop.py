@@ -119,6 +119,30 @@ def test_kernel_equals_exact_twin(levels):
     assert [int(v / s) for v, s in zip(x_twin, steps, strict=True)] == list(st.words)
 
 
+@pytest.mark.parametrize("levels", [2, 17])
+def test_specialised_kernel_equals_the_generic_loop(levels):
+    # run_words uses the loop written out for its format; the generic array-indexed loop
+    # (the one the exact twin above reads like) must give the same words and state
+    from audiodsm.stages import _fixed_kernels
+
+    fx = FixedPointModulator(_loop(5), _mixed_format(5), levels)
+    x = 0.8 * np.sin(2 * np.pi * 0.0037 * np.arange(5000))
+    words = fx.input_words(x)
+    q, st = fx.run_words(words)
+    out = np.empty(len(words), dtype=np.int64)
+    state = np.zeros(5, dtype=np.int64)
+    peaks = np.zeros(5, dtype=np.int64)
+    counts = np.zeros(5, dtype=np.int64)
+    _fixed_kernels.fixed_feedback_loop(
+        words, out, fx._coef, fx._shifts, fx._rules, state, peaks, counts, fx._quantizer
+    )
+    np.testing.assert_array_equal(out, q)
+    np.testing.assert_array_equal(state, st.words)
+    np.testing.assert_array_equal(peaks, st.peak_words)
+    np.testing.assert_array_equal(counts, st.overflow_count)
+    assert counts.sum() > 0  # the wrap and saturate branches ran
+
+
 def test_overflow_rules_act_like_their_twin():
     loop = _loop(3)
     fmt = FixedPointFormat.uniform(3, integer_bits=0, fraction_bits=10, overflow="wrap")
@@ -153,6 +177,23 @@ def test_input_words_follow_the_rules():
     node = NodeFormat("input", 0, 2, "convergent", "wrap")
     # 0.375*4 = 1.5 -> 2 (even); -1.5 -> -2; 0.5 -> 0; 2.5 -> 2; 20 wraps in 3 bits to -4
     np.testing.assert_array_equal(quantize_words(x, node), [2, -2, 0, 2, -4, -4])
+
+
+@pytest.mark.parametrize("rule", ["truncate", "round-half-up", "convergent"])
+@pytest.mark.parametrize("overflow", ["saturate", "wrap"])
+def test_input_words_equal_a_numpy_twin(rule, overflow):
+    node = NodeFormat("input", 0, 6, rule, overflow)
+    rng = np.random.default_rng(5)
+    # random values, exact ties and out-of-range values
+    x = np.r_[rng.uniform(-1.5, 1.5, 4000), np.arange(-130, 130) / 128.0 + 1 / 256.0]
+    s = x * 64.0
+    words = {"truncate": np.floor(s), "round-half-up": np.floor(s + 0.5), "convergent": np.round(s)}
+    w = words[rule]  # numpy's round is half to even
+    if overflow == "saturate":  # a 7-bit word: sign, no integer bits, 6 fractional bits
+        w = np.clip(w, -64, 63)
+    else:
+        w = (w.astype(np.int64) + 64) % 128 - 64
+    np.testing.assert_array_equal(quantize_words(x, node), w.astype(np.int64))
 
 
 def test_refusals():

@@ -56,20 +56,17 @@ def quantize_words(x, node) -> np.ndarray:
     ndarray of int64
         ``X`` with ``X * node.step`` the fixed-point value.
     """
-    scaled = np.asarray(x, dtype=np.float64) * 2.0**node.fraction_bits  # exact (power of two)
-    if node.rounding == "truncate":
-        words = np.floor(scaled)
-    elif node.rounding == "round-half-up":
-        words = np.floor(scaled + 0.5)
-    else:
-        words = np.round(scaled)  # numpy rounds ties to even: convergent
-    hi = 2.0 ** (node.word_bits - 1) - 1
-    lo = -hi - 1
-    if node.overflow == "saturate":
-        words = np.clip(words, lo, hi)
-        return words.astype(np.int64)
-    w = words.astype(np.int64)
-    return ((w - int(lo)) & ((1 << node.word_bits) - 1)) + int(lo)
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    out = np.empty(x.shape, dtype=np.int64)
+    _fixed_kernels.float_to_words(
+        x.reshape(-1),
+        out.reshape(-1),
+        2.0**node.fraction_bits,
+        _ROUNDING_CODES[node.rounding],
+        node.word_bits,
+        node.overflow == "wrap",
+    )
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -167,6 +164,16 @@ class FixedPointModulator:
         self._quantizer = np.array(
             [m, fmt.states[-1].fraction_bits, self.output_fraction_bits], dtype=np.int64
         )
+        resonators = tuple(bool(self._coef[2, i] != 0) for i in range(self.order - 1)) + (False,)
+        self._kernel_key = (
+            self.order,
+            resonators,
+            m,
+            int(fmt.states[-1].fraction_bits),
+            tuple(tuple(int(v) for v in row) for row in self._shifts),
+            tuple(tuple(int(v) for v in row) for row in self._rules),
+        )
+        self._kernel = None  # compiled on first run
 
     def _plan_shifts(self):
         """Alignment shifts per node, and a check that every intermediate fits in int64."""
@@ -263,6 +270,9 @@ class FixedPointModulator:
         hi = (1 << (node.word_bits - 1)) - 1
         if len(u) and (u.max() > hi or u.min() < -hi - 1):
             raise ParameterError("words", "a word outside the input word", f"-{hi + 1}..{hi}")
+        return self._run_checked_words(u, state)
+
+    def _run_checked_words(self, u, state):
         if state is None:
             state = self.initial_state()
         elif not isinstance(state, FixedLoopState) or state.words.shape != (self.order,):
@@ -271,7 +281,9 @@ class FixedPointModulator:
         peaks = np.array(state.peak_words, dtype=np.int64)
         counts = np.array(state.overflow_count, dtype=np.int64)
         out = np.empty(len(u), dtype=np.int64)
-        _fixed_kernels.fixed_feedback_loop(
+        if self._kernel is None:
+            self._kernel = _fixed_kernels.fixed_loop_kernel(self._kernel_key)
+        self._kernel(
             u, out, self._coef, self._shifts, self._rules, st, peaks, counts, self._quantizer
         )
         steps = np.array([node.step for node in self.format.states])
@@ -289,7 +301,7 @@ class FixedPointModulator:
 
         The input is first fitted to the input word (:meth:`input_words`).
         """
-        q, new = self.run_words(self.input_words(x), state)
+        q, new = self._run_checked_words(self.input_words(x), state)  # words fit by making
         return self.levels_from_indices(q), new
 
     def process(self, x, state: FixedLoopState | None = None):
