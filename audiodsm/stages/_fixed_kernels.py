@@ -202,12 +202,8 @@ def fixed_loop_kernel_source(key):
     add("    for t in range(u.shape[0]):")
     ind = "        "
     if m == 0:
-        add(f"{ind}if x{n - 1} >= 0:")
-        add(f"{ind}    q = 1")
-        add(f"{ind}    v = 1")
-        add(f"{ind}else:")
-        add(f"{ind}    q = 0")
-        add(f"{ind}    v = -1")
+        add(f"{ind}q = 1 + (x{n - 1} >> 63)")  # 1 when the state is >= 0, else 0
+        add(f"{ind}v = 2 * q - 1")
     else:
         add(f"{ind}q = ((x{n - 1} << {m}) + {(1 << (m + f_last)) + (1 << f_last)}) >> {f_last + 1}")
         add(f"{ind}if q < 0:")
@@ -236,10 +232,9 @@ def fixed_loop_kernel_source(key):
         elif rule == 1:
             add(f"{ind}val = (acc + {1 << (r - 1)}) >> {r}")
         else:
-            add(f"{ind}val = acc >> {r}")
-            add(f"{ind}rem = acc - (val << {r})")
-            add(f"{ind}if rem > {1 << (r - 1)} or (rem == {1 << (r - 1)} and (val & 1) == 1):")
-            add(f"{ind}    val += 1")
+            # ties to even without a branch: adding half a step less one, plus the kept
+            # part's lowest bit, carries into the kept part exactly when the rule rounds up
+            add(f"{ind}val = (acc + {(1 << (r - 1)) - 1} + ((acc >> {r}) & 1)) >> {r}")
         hi = (1 << (rules[2][i] - 1)) - 1
         lo = -hi - 1
         add(f"{ind}if val > {hi} or val < {lo}:")
@@ -249,10 +244,7 @@ def fixed_loop_kernel_source(key):
         else:
             add(f"{ind}    val = {hi} if val > {hi} else {lo}")
         add(f"{ind}n{i} = val")
-        add(f"{ind}if val > p{i}:")
-        add(f"{ind}    p{i} = val")
-        add(f"{ind}elif -val > p{i}:")
-        add(f"{ind}    p{i} = -val")
+        add(f"{ind}p{i} = max(p{i}, abs(val))")
     add(ind + ", ".join(f"x{i}" for i in range(n)) + " = " + ", ".join(f"n{i}" for i in range(n)))
     for i in range(n):
         add(f"    state[{i}] = x{i}")
