@@ -156,16 +156,19 @@ def test_overflow_rules_act_like_their_twin():
 
 def test_block_runs_equal_one_run():
     fx = FixedPointModulator(_loop(5), FixedPointFormat.uniform(5), 17)
-    x = 0.5 * np.sin(2 * np.pi * 0.0021 * np.arange(20000))
+    # 80000 samples: run() itself works in chunks of 32768, so both sides cross chunk edges
+    x = 0.5 * np.sin(2 * np.pi * 0.0021 * np.arange(80000))
     y, st = fx.run(x)
     parts, s = [], None
-    for a, b in [(0, 1), (1, 777), (777, 777), (777, 12001), (12001, 20000)]:
+    for a, b in [(0, 1), (1, 777), (777, 777), (777, 40001), (40001, 80000)]:
         yy, s = fx.run(x[a:b], s)
         parts.append(yy)
     np.testing.assert_array_equal(np.concatenate(parts), y)
     np.testing.assert_array_equal(s.words, st.words)
     np.testing.assert_array_equal(s.peak_words, st.peak_words)
-    assert s.samples == 20000
+    assert s.samples == 80000
+    q, _ = fx.run_words(fx.input_words(x))  # and run() is run_words on the input words
+    np.testing.assert_array_equal(fx.levels_from_indices(q), y)
 
 
 def test_input_words_follow_the_rules():
