@@ -97,10 +97,10 @@ def test_shipped_profile_rtl_matches_its_test_vectors(profile):
     # the acceptance check: every shipped profile with a [fixed_point] section, its
     # generated design simulated on the handoff's own input vector (>= 20,000 clocks) gives
     # the handoff's expected output vector bit for bit
-    from audiodsm.hardware.handoff import check_fixed_point, test_vectors
+    from audiodsm.hardware.handoff import check_fixed_point, stimulus_vectors
 
     fx, facts = check_fixed_point(profile)
-    vectors = dict((name, (w, q)) for name, w, q in test_vectors(fx, facts, samples=20480))
+    vectors = dict((name, (w, q)) for name, w, q in stimulus_vectors(fx, facts, samples=20480))
     words, expected = vectors["tone_997hz_m1dbfs"]
     assert len(words) >= 20000 and np.abs(words).max() > 0
     np.testing.assert_array_equal(simulate_words(fx, words), expected)

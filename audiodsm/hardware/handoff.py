@@ -42,10 +42,12 @@ __all__ = [
     "FloatLoopFacts",
     "HandoffSummary",
     "check_fixed_point",
+    "float_loop_facts",
+    "hex_lines",
     "plan_profile",
     "profile_with_plan",
     "settings_from_plan",
-    "test_vectors",
+    "stimulus_vectors",
     "write_handoff",
 ]
 
@@ -384,7 +386,7 @@ def _stimuli(rate_hz: int, audio_samples: int):
     return [(name, np.asarray(x, dtype=float)[:audio_samples]) for name, x in out]
 
 
-def test_vectors(fx: FixedPointModulator, facts: FloatLoopFacts, *, samples: int):
+def stimulus_vectors(fx: FixedPointModulator, facts: FloatLoopFacts, *, samples: int):
     """Input words and output level indices of the fixed-point loop on the battery's stimuli.
 
     Each stimulus is scaled by the chain's input scale, upsampled by the chain's upsampler,
@@ -534,7 +536,7 @@ def _readme(profile, fx, facts, vectors, summary_noise, files) -> str:
         "| `format.json` | word format of every node, quantizer output format |",
         "| `coefficients.json` | every coefficient: integer, binary point, value, CSD digits |",
         "| `plan.json` | coefficient effects on the NTF and the in-band noise check |",
-        f"| `rtl/{MODULE_NAME}.v` | the generated loop (Verilog-2001, one sample per clock) |",
+        f"| `rtl/{MODULE_NAME}.v` | the generated loop (Verilog, one sample per clock) |",
     ]
     for name, _, _ in vectors:
         lines.append(
@@ -614,7 +616,7 @@ def write_handoff(
     if vector_samples < 1024:
         raise ParameterError("vector_samples", vector_samples, "an integer >= 1024")
     fx, facts = check_fixed_point(profile, rate_hz=rate_hz)
-    vectors = test_vectors(fx, facts, samples=int(vector_samples))
+    vectors = stimulus_vectors(fx, facts, samples=int(vector_samples))
     x, tone_bin = _noise_tone(facts.osr, _NOISE_RUN_SAMPLES, 0.5 * facts.stable_amplitude)
     y, _ = fx.run(x)
     fixed_noise = in_band_noise_power(y, osr=facts.osr, tone_bin=tone_bin)

@@ -114,8 +114,8 @@ class FeedbackLoopCircuit(_elaboratable_base()):
 
         fx = self.fx
         fmt = fx.format
-        shifts = fx._shifts
-        coef = fx._coef
+        shifts = fx.alignment_shifts
+        coef = fx.coefficient_table
         m = fx.m
         n = fmt.order
         mod = Module()

@@ -223,6 +223,20 @@ class FixedPointModulator:
         return self.loop.order
 
     @property
+    def coefficient_table(self) -> np.ndarray:
+        """Coefficient integers, shape (5, order), rows ``COEFFICIENT_ROWS`` (a copy)."""
+        return self._coef.copy()
+
+    @property
+    def alignment_shifts(self) -> np.ndarray:
+        """The alignment shifts of every state update, shape (5, order) (a copy).
+
+        Rows: left shifts of the leak, chain (or input), feedback and resonator products,
+        then the right shift to the state's binary point; one column per state.
+        """
+        return self._shifts.copy()
+
+    @property
     def step(self) -> float:
         """Quantizer step in full-scale units."""
         return 2.0 / (self.levels - 1)
