@@ -420,19 +420,10 @@ def node_noise_gains(loop, *, osr: float, points: int = 4097) -> NodeNoiseGains:
         raise ParameterError("osr", osr, "a number >= 1")
     n = loop.order
     zero = np.zeros(n)
-    a_open = np.column_stack([_linear_step(loop, np.eye(n)[j], 0.0, 0.0) for j in range(n)])
-    b_feedback = _linear_step(loop, zero, 0.0, 1.0)
-    c = np.asarray(loop.output_weight, dtype=float)
-    a_cl = a_open + np.outer(b_feedback, c)
     entries = [_linear_step(loop, zero, 1.0, 0.0)]
     entries += [_linear_step(loop, zero, 0.0, 0.0, node=j, error=1.0) for j in range(n)]
-    p = np.column_stack(entries)
     freqs = np.linspace(0.0, 0.5 / osr, points | 1)
-    eye = np.eye(n)
-    resp = np.empty((len(freqs), p.shape[1]), dtype=complex)
-    for i, f in enumerate(freqs):
-        z = np.exp(2j * np.pi * f)
-        resp[i] = c @ np.linalg.solve(z * eye - a_cl, p)
+    resp = _responses(loop, np.column_stack(entries), freqs)
     from scipy.integrate import simpson
 
     power = 2.0 * simpson(np.abs(resp) ** 2, x=freqs, axis=0)
@@ -440,22 +431,30 @@ def node_noise_gains(loop, *, osr: float, points: int = 4097) -> NodeNoiseGains:
     return NodeNoiseGains(names, power, resp[0].real.copy())
 
 
-def _input_response(loop, freqs) -> np.ndarray:
-    """Signal transfer (input to output) of the linearized feedback loop at ``freqs``."""
+def _responses(loop, entries, freqs) -> np.ndarray:
+    """``c (zI - A_cl)^-1 p`` for every column ``p`` of ``entries`` at ``freqs``.
+
+    Infinite where a pole sits on the unit circle at that frequency.
+    """
     n = loop.order
     zero = np.zeros(n)
     a_open = np.column_stack([_linear_step(loop, np.eye(n)[j], 0.0, 0.0) for j in range(n)])
     c = np.asarray(loop.output_weight, dtype=float)
     a_cl = a_open + np.outer(_linear_step(loop, zero, 0.0, 1.0), c)
-    b = _linear_step(loop, zero, 1.0, 0.0)
     eye = np.eye(n)
-    out = np.empty(len(freqs), dtype=complex)
+    out = np.empty((len(freqs), entries.shape[1]), dtype=complex)
     for i, f in enumerate(freqs):
         try:
-            out[i] = c @ np.linalg.solve(np.exp(2j * np.pi * f) * eye - a_cl, b)
-        except np.linalg.LinAlgError:  # a pole on the circle at this frequency
+            out[i] = c @ np.linalg.solve(np.exp(2j * np.pi * f) * eye - a_cl, entries)
+        except np.linalg.LinAlgError:
             out[i] = np.inf
     return out
+
+
+def _input_response(loop, freqs) -> np.ndarray:
+    """Signal transfer (input to output) of the linearized feedback loop at ``freqs``."""
+    entry = _linear_step(loop, np.zeros(loop.order), 1.0, 0.0)
+    return _responses(loop, entry[:, None], freqs)[:, 0]
 
 
 def rounding_noise_power(step: float, rule: str, power_gain: float, dc_gain: float) -> float:
