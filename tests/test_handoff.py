@@ -42,24 +42,27 @@ def planned():
 def test_plan_keeps_its_noise_budget_in_simulation(planned):
     # The plan promises: all roundings together 20 dB under the loop's own in-band noise, and
     # coefficients that change the NTF's in-band gain by <= 0.1 dB. So the planned
-    # fixed-point loop's in-band noise must be the float loop's within a few tenths of a dB
-    # (0.5 dB allows for the two chaotic runs' estimates, 2**20 samples each).
+    # fixed-point loop's in-band noise must be the float loop's within a few tenths of a dB.
+    # Single runs of the two (chaotic, soon decorrelated) loops scatter by about +-0.25 dB
+    # here, so the powers of four tones (2**20 samples each) are summed: 0.3 dB.
     profile, plan, facts, stable = planned
     assert plan.added_noise_dbfs <= plan.loop_noise_dbfs - plan.budget_db + 1e-9
     assert abs(plan.coefficients.in_band_noise_change_db) <= 0.1
     assert stable > 0.9 * facts.stable_amplitude
-    n = 1 << 20
-    tone_bin = int(n / facts.osr / 2 * 0.6) | 1
-    x = 0.5 * facts.stable_amplitude * np.sin(2 * np.pi * tone_bin / n * np.arange(n))
-    fx = FixedPointModulator(facts.loop, plan.format, facts.levels)
-    y_fixed, st = fx.run(x)
-    assert st.overflow_count.sum() == 0
     from audiodsm.stages.modulator import Modulator
 
-    y_float, _ = Modulator(facts.loop, levels=facts.levels).run(x)
-    fixed = in_band_noise_power(y_fixed, osr=facts.osr, tone_bin=tone_bin)
-    flt = in_band_noise_power(y_float, osr=facts.osr, tone_bin=tone_bin)
-    assert abs(10 * np.log10(fixed / flt)) < 0.5
+    n = 1 << 20
+    fx = FixedPointModulator(facts.loop, plan.format, facts.levels)
+    flt = Modulator(facts.loop, levels=facts.levels)
+    fixed_sum = float_sum = 0.0
+    for fraction in (0.55, 0.6, 0.7, 0.8):  # of the band edge: harmonics fall out of band
+        tone_bin = int(n / facts.osr / 2 * fraction) | 1
+        x = 0.5 * facts.stable_amplitude * np.sin(2 * np.pi * tone_bin / n * np.arange(n))
+        y_fixed, st = fx.run(x)
+        assert st.overflow_count.sum() == 0
+        fixed_sum += in_band_noise_power(y_fixed, osr=facts.osr, tone_bin=tone_bin)
+        float_sum += in_band_noise_power(flt.run(x)[0], osr=facts.osr, tone_bin=tone_bin)
+    assert abs(10 * np.log10(fixed_sum / float_sum)) < 0.3
     # range: every state holds its float peak with the margin
     for node, peak in zip(plan.format.states, facts.state_peaks, strict=True):
         assert node.largest >= peak * 10 ** (plan.margin_db / 20) - node.step
