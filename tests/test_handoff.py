@@ -9,7 +9,7 @@ import pytest
 from click.testing import CliRunner
 
 from audiodsm.cli import main
-from audiodsm.errors import ProfileError
+from audiodsm.errors import OutputError, ProfileError
 from audiodsm.hardware.handoff import (
     check_fixed_point,
     plan_profile,
@@ -172,6 +172,15 @@ def test_handoff_folder_holds_consistent_vectors_and_is_replaced_whole(planned, 
         rtl.verilog_text = original
     assert sorted(p.name for p in tmp_path.iterdir()) == before
     assert len(_read_hex(ins[0], in_bits)) == 4096
+    # a folder that is not a handoff folder is never replaced
+    other = tmp_path / "keep"
+    other.mkdir()
+    (other / "notes.txt").write_text("mine")
+    with pytest.raises(OutputError, match="not a handoff folder"):
+        write_handoff(prof, other, vector_samples=2048)
+    assert (other / "notes.txt").read_text() == "mine"
+    other.joinpath("notes.txt").unlink()
+    other.rmdir()
     # a successful second write replaces it whole
     write_handoff(prof, target, vector_samples=2048)
     assert len(_read_hex(ins[0], in_bits)) == 2048

@@ -55,6 +55,7 @@ __all__ = [
 DEFAULT_VECTOR_SAMPLES = 32768
 _DEFAULT_RATE_HZ = 48000
 _NOISE_RUN_SAMPLES = 1 << 18
+_MARKER = "format.json"  # a folder holding it is taken as an earlier handoff folder
 
 
 # ---------------------------------------------------------------------------------------------
@@ -576,6 +577,19 @@ def _write_text(folder: Path, rel: str, text: str, files: list) -> None:
     files.append(rel)
 
 
+def _check_target(target: Path) -> None:
+    """Refuse to replace anything but an empty folder or an earlier handoff folder."""
+    if not target.exists():
+        return
+    if not target.is_dir():
+        raise OutputError(f"{target}: exists and is not a folder; choose a new folder name")
+    if any(target.iterdir()) and not (target / _MARKER).is_file():
+        raise OutputError(
+            f"{target}: exists and is not a handoff folder (no {_MARKER}); it would be "
+            "replaced whole, so choose a new or empty folder"
+        )
+
+
 def write_handoff(
     profile: ChainProfile,
     folder,
@@ -586,7 +600,9 @@ def write_handoff(
     """Write the handoff folder of a profile with a ``[fixed_point]`` section.
 
     The folder is built under a temporary name beside ``folder`` and renamed into place when
-    complete, so it is never half written; an existing folder of that name is replaced.
+    complete, so it is never half written. An existing folder of that name is replaced whole
+    when it is empty or an earlier handoff folder (it holds ``format.json``); any other
+    existing path is refused.
 
     Parameters
     ----------
@@ -631,6 +647,7 @@ def write_handoff(
         digits=fx.format.coefficient_digits,
     )
     target = Path(folder)
+    _check_target(target)
     parent = target.parent if str(target.parent) else Path(".")
     try:
         parent.mkdir(parents=True, exist_ok=True)
