@@ -75,6 +75,11 @@ Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
 Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
 ``audiodsm.measure.silence``)
     render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
+Fixed point and the hardware handoff (``audiodsm.design.fixed_point``,
+``audiodsm.stages.fixed_loop``, ``audiodsm.hardware.handoff``, ``audiodsm.hardware.rtl``)
+    NodeFormat, FixedPointFormat, csd_digits, round_to_csd, quantize_coefficients,
+    node_noise_gains, plan_word_lengths, WordLengthPlan, FixedPointModulator, plan_profile,
+    check_fixed_point, write_handoff, verilog_text, simulate_words
 """
 
 from __future__ import annotations
@@ -247,6 +252,20 @@ _PUBLIC = {
     "analyze_file": "audiodsm.evaluate.analyze",
     "FileAnalysis": "audiodsm.evaluate.analyze",
     "SilenceNoiseMeter": "audiodsm.measure.silence",
+    "NodeFormat": "audiodsm.design.fixed_point",
+    "FixedPointFormat": "audiodsm.design.fixed_point",
+    "csd_digits": "audiodsm.design.fixed_point",
+    "round_to_csd": "audiodsm.design.fixed_point",
+    "quantize_coefficients": "audiodsm.design.fixed_point",
+    "node_noise_gains": "audiodsm.design.fixed_point",
+    "plan_word_lengths": "audiodsm.design.fixed_point",
+    "WordLengthPlan": "audiodsm.design.fixed_point",
+    "FixedPointModulator": "audiodsm.stages.fixed_loop",
+    "plan_profile": "audiodsm.hardware.handoff",
+    "check_fixed_point": "audiodsm.hardware.handoff",
+    "write_handoff": "audiodsm.hardware.handoff",
+    "verilog_text": "audiodsm.hardware.rtl",
+    "simulate_words": "audiodsm.hardware.rtl",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]
