@@ -187,8 +187,8 @@ def test_input_words_follow_the_rules():
 def test_input_words_equal_a_numpy_twin(rule, overflow):
     node = NodeFormat("input", 0, 6, rule, overflow)
     rng = np.random.default_rng(5)
-    # random values, exact ties and out-of-range values
-    x = np.r_[rng.uniform(-1.5, 1.5, 4000), np.arange(-130, 130) / 128.0 + 1 / 256.0]
+    # random values, exact ties (k + 1/2 steps, both signs) and out-of-range values
+    x = np.r_[rng.uniform(-1.5, 1.5, 4000), np.arange(-70, 70) / 64.0 + 1 / 128.0]
     s = x * 64.0
     words = {"truncate": np.floor(s), "round-half-up": np.floor(s + 0.5), "convergent": np.round(s)}
     w = words[rule]  # numpy's round is half to even
@@ -196,6 +196,7 @@ def test_input_words_equal_a_numpy_twin(rule, overflow):
         w = np.clip(w, -64, 63)
     else:
         w = (w.astype(np.int64) + 64) % 128 - 64
+    assert np.count_nonzero(s % 1.0 == 0.5) >= 100  # the ties are there
     np.testing.assert_array_equal(quantize_words(x, node), w.astype(np.int64))
 
 
