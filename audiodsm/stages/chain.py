@@ -519,7 +519,20 @@ class Chain:
                 mod_kwargs["state_bound"] = mod.state_bound
             self.modulator = Modulator(loop, **mod_kwargs)
             self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
-            self._loop_space = self.modulator.loop.linearized()
+            # [fixed_point]: the signal path runs the bit-true integer loop built from the
+            # same (scaled) realization; self.modulator stays the float reference
+            self.fixed_loop = None
+            signal_loop = self.modulator.loop
+        if profile.fixed_point.active:
+            with _settings_of(profile, "fixed_point"):
+                from audiodsm.stages.fixed_loop import FixedPointModulator, format_from_settings
+
+                self.fixed_loop = FixedPointModulator(
+                    self.modulator.loop, format_from_settings(profile.fixed_point), mod.levels
+                )
+                signal_loop = self.fixed_loop.quantized_loop
+        with _settings_of(profile, "modulator"):
+            self._loop_space = signal_loop.linearized()
             self._stf = _stf_filter(self._loop_space)
 
         with _settings_of(profile, "reconstruction"):
@@ -735,7 +748,7 @@ class Chain:
             x = x * self.input_scale  # at the audio rate: the upsampler is linear
         xu, up_s = self._upsampler.process(x, st.upsampler)
         t1 = clock()
-        y, mod_s = self.modulator.run(xu, st.modulator)
+        y, mod_s = (self.fixed_loop or self.modulator).run(xu, st.modulator)
         t2 = clock()
         ripple = [] if "analog" in keep else None
         if self._pwm_dead_time is not None:  # output stage and filter in one loop
