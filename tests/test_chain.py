@@ -338,6 +338,15 @@ def test_automatic_headroom_follows_the_multibit_no_overload_bound():
     assert auto_input_scale(ntf, 5) == 0.5  # (4 + 2 - 4) / 4 = 0.5 exactly
     assert auto_input_scale(ntf, 4) == 0.5  # (3 + 2 - 4) / 3 < 0.5
     assert auto_input_scale(ntf, 2) == 0.5
+    # Dither of peak D steps enters where the quantization error does and is shaped by the NTF
+    # alike, so the same worst-case sum gives |u| <= M + 2 - ||h||_1 (1 + 2 D) (derived from
+    # the rule above): with D = 0.25 the bound of 33 levels drops from 30/32 to 28/32.
+    from audiodsm.stages.chain import no_overload_input_bound
+
+    assert no_overload_input_bound(ntf, 33, 0.25) == pytest.approx((32 + 2 - 6) / 32, abs=1e-12)
+    assert auto_input_scale(ntf, 33, 0.25) == pytest.approx(28 / 32, abs=1e-12)
+    assert auto_input_scale(ntf, 9, 1.0) == 0.5  # (8 + 2 - 12) / 8 < 0.5: no guarantee
+    assert no_overload_input_bound(ntf, 2) == -math.inf  # a single bit has no such bound
     # an explicit value in the profile wins, and the calibration divides it out
     profile = parse_profile("[modulator]\ninput_scale = 0.3")
     chain = Chain.from_profile(profile, RATE, 1)

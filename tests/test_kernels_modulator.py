@@ -84,6 +84,8 @@ def twin(u, coef, state, counter, peaks, count, structure, levels, dscale, ib, s
         if not ok:
             count += 1
             x = [0.0] * n if reset else [clamp(v_, sb) for v_ in x]
+        elif levels != 2 and abs(w) > 1.0 + 0.5 * step:
+            count += 1  # the multi-level quantizer clipped: more than half a step past +-1
         peaks = [max(p, abs(v_)) for p, v_ in zip(peaks, x, strict=True)]
         trace.append(list(x))
     return np.array(out), np.array(x), counter, np.array(peaks), count, np.array(trace)

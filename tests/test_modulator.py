@@ -498,3 +498,33 @@ def test_non_finite_sample_is_found_in_any_block_and_channel():
         mod.run(x[:, 1].copy())
     with pytest.raises(ParameterError, match="frame 250001"):
         mod.trace_states(x[:, 1].copy())
+
+
+# ---------------------------------------------------------------------------------------------
+# Quantizer overload of multi-level loops (Schreier & Temes 2005, ch. 4; from memory)
+# ---------------------------------------------------------------------------------------------
+
+
+def test_clipping_multi_level_quantizer_counts_overloads():
+    # A 17-level quantizer whose input lies more than half a step beyond +-1 clips: its error
+    # exceeds half a step, the overload of the no-overload rule. A sine driven past full
+    # scale must count such samples even though the loop (its guard bounds far away) survives;
+    # at the no-overload bound (||h||_1 rule, dither included) no sample may count.
+    from audiodsm.stages.chain import no_overload_input_bound
+
+    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=1.5)
+    n = 1 << 16
+    t = np.arange(n)
+    for structure in STRUCTURES:
+        for dither in (0.0, 1.0):
+            mod = Modulator(ntf, structure, levels=17, dither_lsb=dither, seed=5)
+            y, st = mod.run(1.2 * np.sin(2 * np.pi * 0.0011 * t))
+            assert st.overload_count[0] > 0, (structure, dither)
+            bound = no_overload_input_bound(ntf, 17, dither)
+            assert bound > 0.3
+            _, st = mod.run(bound * np.sin(2 * np.pi * 0.0011 * t))
+            assert st.overload_count[0] == 0, (structure, dither)
+    # a two-level quantizer never clips: a stable single-bit loop counts nothing
+    one_bit = Modulator(NoiseTransfer.designed(2, osr=64), "feedback", levels=2)
+    _, st = one_bit.run(0.5 * np.sin(2 * np.pi * 0.0011 * t))
+    assert st.overload_count[0] == 0

@@ -283,6 +283,22 @@ def test_linear_sqnr_scales_with_level_and_levels():
     )
 
 
+def test_linear_sqnr_counts_the_dither_power():
+    # Lipshitz, Wannamaker & Vanderkooy, JAES 40(5) 1992: TPDF dither of 2 LSB peak-to-peak
+    # (peak 1 LSB) has power Delta^2/6; added to the quantizer's Delta^2/12 the error power
+    # triples, so a 17-level loop with it is predicted 10 log10(3) = 4.771 dB worse. A peak of
+    # D LSB has power (D Delta)^2/6: half an LSB adds Delta^2/24, 10 log10(1.5) = 1.761 dB.
+    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.0)
+    plain = ntf.linear_sqnr_db(levels=17, osr=64)
+    dithered = ntf.linear_sqnr_db(levels=17, osr=64, dither_lsb=1.0)
+    assert plain - dithered == pytest.approx(10 * math.log10(3.0), abs=1e-9)
+    assert plain - dithered == pytest.approx(4.8, abs=0.05)  # the rounded figure
+    half = ntf.linear_sqnr_db(levels=17, osr=64, dither_lsb=0.5)
+    assert plain - half == pytest.approx(10 * math.log10(1.5), abs=1e-9)
+    with pytest.raises(ParameterError, match="dither_lsb"):
+        ntf.linear_sqnr_db(levels=17, osr=64, dither_lsb=-1.0)
+
+
 # --------------------------------------------------------------------------------------------
 # NoiseTransfer.designed
 

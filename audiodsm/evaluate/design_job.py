@@ -249,10 +249,19 @@ def design_summary(profile: ChainProfile, *, weighting: str, run_samples: int) -
         "modulator_rate_hz": fm,
         "ntf_out_of_band_gain": float(ntf.out_of_band_gain()),
         "linear_sqnr_db": float(
-            ntf.linear_sqnr_db(levels=mod.levels, osr=fm / (2 * AUDIO_BAND_HZ[1]))
+            ntf.linear_sqnr_db(
+                levels=mod.levels,
+                osr=fm / (2 * AUDIO_BAND_HZ[1]),
+                dither_lsb=mod.dither_lsb,
+            )
         ),
         "predicted_dynamic_range_db": predicted_dynamic_range_db(
-            ntf, mod.levels, modulator_rate_hz=fm, input_scale=scale, weighting=weighting
+            ntf,
+            mod.levels,
+            modulator_rate_hz=fm,
+            input_scale=scale,
+            dither_lsb=mod.dither_lsb,
+            weighting=weighting,
         ),
         "weighting": weighting,
         "input_scale": scale,
@@ -346,6 +355,8 @@ def run_design_job(
         gains=[request.out_of_band_gain] if request.out_of_band_gain else DEFAULT_MULTIBIT_GAINS,
         zero_layout=request.zero_layout,
         limit=request.confirm_count,
+        # the profiles written carry the default dither: predict what they will run
+        dither_lsb=ChainProfile().modulator.dither_lsb,
     )
     if not candidates:
         return DesignOutcome(

@@ -117,6 +117,7 @@ def predicted_dynamic_range_db(
     *,
     modulator_rate_hz: float,
     input_scale: float = 1.0,
+    dither_lsb: float = 0.0,
     weighting: str = "unweighted",
     band_hz=AUDIO_BAND_HZ,
     points: int = 4001,
@@ -132,6 +133,10 @@ def predicted_dynamic_range_db(
     input_scale : float, keyword-only
         Loop input for a full-scale chain input; the noise referred to the chain input is the
         loop's noise divided by it.
+    dither_lsb : float, keyword-only
+        Peak of the loop's TPDF dither in quantizer steps: it adds ``(D Delta)^2 / 6`` to the
+        quantizer's ``Delta^2 / 12`` and is shaped by the NTF alike (Lipshitz, Wannamaker &
+        Vanderkooy, JAES 40(5), 1992).
     weighting : {"unweighted", "a", "ccir"}, keyword-only
     band_hz : (float, float), keyword-only
         Measurement band.
@@ -161,6 +166,8 @@ def predicted_dynamic_range_db(
         )
     if not (0.0 < input_scale <= 1.0):
         raise ParameterError("input_scale", input_scale, "a number in (0, 1]")
+    if not (math.isfinite(dither_lsb) and dither_lsb >= 0.0):
+        raise ParameterError("dither_lsb", dither_lsb, "a finite number >= 0")
     lo, hi = band_hz
     logf = np.linspace(math.log(lo), math.log(hi), points)
     f = np.exp(logf)
@@ -170,14 +177,14 @@ def predicted_dynamic_range_db(
     # integrate over f on a log grid: df = f dlogf
     gain = float(simpson(mag2 * f, x=logf)) * 2.0 / modulator_rate_hz
     step = 2.0 / (levels - 1)
-    noise = step**2 / 12.0 * gain / input_scale**2
+    noise = (step**2 / 12.0 + (dither_lsb * step) ** 2 / 6.0) * gain / input_scale**2
     return 10.0 * math.log10(0.5 / noise)
 
 
-def _input_scale(ntf, levels):
+def _input_scale(ntf, levels, dither_lsb=0.0):
     from audiodsm.stages.chain import auto_input_scale
 
-    return float(auto_input_scale(ntf, levels))
+    return float(auto_input_scale(ntf, levels, dither_lsb))
 
 
 def candidate_profile(base: ChainProfile, candidate: Candidate, *, name=None) -> ChainProfile:
@@ -232,17 +239,20 @@ def impulse_l1_norm(ntf, *, samples: int = 1 << 14) -> float:
     return float(np.abs(lfilter(b, a, impulse)).sum())
 
 
-def _guaranteed_stable(ntf, levels) -> bool:
-    """Multi-bit no-overload test: ``(M + 2 - ||h||_1) / M >= 0.5`` (M = levels - 1).
+def _guaranteed_stable(ntf, levels, dither_lsb=0.0) -> bool:
+    """Multi-bit no-overload test: the input bound, dither subtracted, is >= 0.5 of full scale.
 
     Schreier & Temes 2005, ch. 4: a loop with M + 1 levels never overloads while
-    ``max|u| <= M + 2 - ||h||_1`` (step 2). Demanding at least half of full scale matches the
-    chain's automatic input scale. Single-bit loops have no such guarantee (always False).
+    ``max|u| <= M + 2 - ||h||_1`` (step 2); a dither of peak D steps, shaped by the NTF, takes
+    ``2 D ||h||_1`` more (:func:`~audiodsm.stages.chain.no_overload_input_bound`). Demanding at
+    least half of full scale matches the chain's automatic input scale. Single-bit loops have
+    no such guarantee (always False).
     """
-    m = levels - 1
-    if m < 2:
+    from audiodsm.stages.chain import no_overload_input_bound
+
+    if levels - 1 < 2:
         return False
-    return (m + 2 - impulse_l1_norm(ntf)) / m >= 0.5
+    return no_overload_input_bound(ntf, levels, dither_lsb) >= 0.5
 
 
 def search_designs(
@@ -257,6 +267,7 @@ def search_designs(
     zero_layout: str = "spread",
     margin_db: float = 0.0,
     limit: int = 10,
+    dither_lsb: float = 0.0,
 ) -> list[Candidate]:
     """The cheapest loops on the grid predicted to meet a dynamic-range target.
 
@@ -283,6 +294,9 @@ def search_designs(
         Extra prediction margin demanded above the target.
     limit : int, keyword-only
         How many passing loops to return at most.
+    dither_lsb : float, keyword-only
+        TPDF dither peak (quantizer steps) of the loops: it enters the predictions' noise
+        power and takes headroom from the no-overload test.
 
     Returns
     -------
@@ -333,12 +347,17 @@ def search_designs(
             except ParameterError:
                 designs[key] = None  # this gain is out of reach for the order and OSR
         ntf = designs[key]
-        if ntf is None or (lv > 2 and not _guaranteed_stable(ntf, lv)):
+        if ntf is None or (lv > 2 and not _guaranteed_stable(ntf, lv, dither_lsb)):
             continue
         fm = float(osr) * float(rate_hz)
-        scale = _input_scale(ntf, lv)
+        scale = _input_scale(ntf, lv, dither_lsb)
         dr = predicted_dynamic_range_db(
-            ntf, lv, modulator_rate_hz=fm, input_scale=scale, weighting=weighting
+            ntf,
+            lv,
+            modulator_rate_hz=fm,
+            input_scale=scale,
+            dither_lsb=dither_lsb,
+            weighting=weighting,
         )
         if dr < target_db + margin_db:
             continue
@@ -351,7 +370,9 @@ def search_designs(
                 modulator_rate_hz=fm,
                 input_scale=scale,
                 predicted_dynamic_range_db=dr,
-                linear_sqnr_db=ntf.linear_sqnr_db(levels=lv, osr=fm / (2.0 * AUDIO_BAND_HZ[1])),
+                linear_sqnr_db=ntf.linear_sqnr_db(
+                    levels=lv, osr=fm / (2.0 * AUDIO_BAND_HZ[1]), dither_lsb=dither_lsb
+                ),
                 achieved_out_of_band_gain=float(ntf.out_of_band_gain()),
                 cost=loop_cost(order, lv, modulator_rate_hz=fm),
             )

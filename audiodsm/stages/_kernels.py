@@ -31,6 +31,9 @@ from numba import njit
 # Guard: after each update, a sample is an overload when |y| > input_bound or any
 # |x[i]| > state_bound (or a value is not finite); then all states are zeroed (reset) or
 # each is clipped to +-state_bound (non-finite -> 0). Peaks are taken after the guard.
+# Quantizer overload (counted, the guard does not act): a multi-level quantizer whose input w
+# (dither included) lies more than half a step beyond its outermost level, |w| > 1 + step/2,
+# clips, and that sample counts as an overload too. A two-level quantizer never clips.
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -123,6 +126,7 @@ def loop_any_structure(
     half = 0.5 * top
     offset = half + 0.5
     step = 2.0 / top
+    clip_level = 1.0 + 0.5 * step
     counter = rng[0]
     overloads = counts[0]
     bad = -1
@@ -178,6 +182,8 @@ def loop_any_structure(
                 bad = t
             for i in range(order):
                 x[i] = 0.0 if reset else _clamp(x[i], state_bound)
+        elif levels != 2 and abs(w) > clip_level:
+            overloads += 1
         for i in range(order):
             peaks[i] = max(peaks[i], abs(x[i]))
             if tracing:
@@ -269,6 +275,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     add("    half = 0.5 * top")
     add("    offset = half + 0.5")
     add("    step = 2.0 / top")
+    add("    clip_level = 1.0 + 0.5 * step")
     for i in range(n):
         if not lossless:
             add(f"    d{i} = coef[0, {i}]")
@@ -361,6 +368,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
         out += [f"{ind}    m{i} = max(m{i}, abs(x{i}))" for i in range(n)]
         if code != 0:
             out.append(f"{ind}    my = max(my, abs(y))")
+        if not single_bit:
+            out.append(f"{ind}    mw = max(mw, abs(w))")
         return out
 
     def guarded_loop(ind):
@@ -390,6 +399,11 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
             f"{ind}        else:",
         ]
         out += [f"{ind}            x{i} = _clamp(x{i}, state_bound)" for i in range(n)]
+        if variant is None:
+            out += [f"{ind}    elif levels != 2 and abs(w) > clip_level:"]
+            out += [f"{ind}        overloads += 1"]
+        elif not variant[0]:
+            out += [f"{ind}    elif abs(w) > clip_level:", f"{ind}        overloads += 1"]
         out += [f"{ind}    p{i} = max(p{i}, abs(x{i}))" for i in range(n)]
         return out
 
@@ -416,6 +430,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     add(f"        {', '.join(f'm{i}' for i in range(n))} = " + ", ".join("0.0" for _ in range(n)))
     if code != 0:
         add("        my = 0.0")
+    add("        mw = 0.0")
     for j, (cond, single_bit, dithered, flipped) in enumerate(cases):
         if j == len(cases) - 1 and j > 0:
             add("        else:")  # the last case needs no test
@@ -429,7 +444,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     else:
         y_ok = "(my <= input_bound)"
     conds = " & ".join(
-        [y_ok]
+        [y_ok, "(mw <= clip_level)"]
         + [f"(m{i} <= state_bound)" for i in range(n)]
         + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
     )

@@ -55,6 +55,7 @@ __all__ = [
     "ChainStats",
     "ChainResult",
     "auto_input_scale",
+    "no_overload_input_bound",
     "run_chain",
 ]
 
@@ -518,7 +519,9 @@ class Chain:
             if mod.state_bound:
                 mod_kwargs["state_bound"] = mod.state_bound
             self.modulator = Modulator(loop, **mod_kwargs)
-            self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
+            self.input_scale = mod.input_scale or auto_input_scale(
+                self.ntf, mod.levels, mod.dither_lsb
+            )
             # [fixed_point]: the signal path runs the bit-true integer loop built from the
             # same (scaled) realization; self.modulator stays the float reference
             self.fixed_loop = None
@@ -1049,22 +1052,31 @@ class _ChannelState(NamedTuple):
     ideal_downsampler: object = None
 
 
-def auto_input_scale(ntf, levels: int) -> float:
-    """The modulator input scale a profile gets when it leaves ``input_scale`` at 0.
+def no_overload_input_bound(ntf, levels: int, dither_lsb: float = 0.0) -> float:
+    """Largest input amplitude for which a multi-level quantizer can never overload.
 
     Parameters
     ----------
     ntf : NoiseTransfer
     levels : int
-        Quantizer levels.
+        Quantizer levels, ``M = levels - 1`` steps.
+    dither_lsb : float
+        Peak of the TPDF dither added before the quantizer, in quantizer steps (LSB).
 
     Returns
     -------
     float
-        For a multi-bit loop, the input bound below which the quantizer can never overload,
-        ``(M + 2 - ||h||_1) / M`` in full-scale units (``M = levels - 1`` steps, ``h`` the
-        NTF's impulse response), when it is at least 0.5 (capped at 1.0); otherwise 0.5, the
-        common practice for single-bit audio loops (about 6 dB of headroom).
+        In full-scale units (may be 0 or negative: no guarantee at all; ``-inf`` for a
+        single-bit loop, which has none). In units of half a step (step 2, levels at the odd
+        integers up to +-M) the quantizer input is ``w = u + (h - 1) * q + h * d`` for a loop
+        with unity STF, where ``q`` is the quantization error (``|q| <= 1`` while the
+        quantizer does not overload) and ``d`` the dither (``|d| <= 2 dither_lsb``): the
+        dither enters the loop where the quantization error does, so the NTF shapes it too.
+        No overload (``|w| <= M + 1``) is then guaranteed while
+        ``|u| <= M + 2 - ||h||_1 (1 + 2 dither_lsb)``; divided by ``M`` for full scale. With
+        no dither this is the rule of [1]_; the dither term follows from the same worst-case
+        sum (a dither of +-1 LSB spends ``2 ||h||_1`` half-steps of the headroom, at least its
+        own peak of 1 LSB).
 
     References
     ----------
@@ -1076,12 +1088,40 @@ def auto_input_scale(ntf, levels: int) -> float:
 
     m = levels - 1
     if m < 2:
-        return 0.5
+        return -math.inf
     b, a = ntf.polynomials()
     impulse = np.zeros(1 << 14)
     impulse[0] = 1.0
     h1 = float(np.abs(lfilter(b, a, impulse)).sum())
-    bound = (m + 2 - h1) / m
+    return (m + 2 - h1 * (1.0 + 2.0 * float(dither_lsb))) / m
+
+
+def auto_input_scale(ntf, levels: int, dither_lsb: float = 0.0) -> float:
+    """The modulator input scale a profile gets when it leaves ``input_scale`` at 0.
+
+    Parameters
+    ----------
+    ntf : NoiseTransfer
+    levels : int
+        Quantizer levels.
+    dither_lsb : float
+        The modulator's TPDF dither peak in quantizer steps; it uses up headroom.
+
+    Returns
+    -------
+    float
+        For a multi-bit loop, :func:`no_overload_input_bound` (the dither subtracted) when it
+        is at least 0.5 (capped at 1.0); otherwise 0.5, the common practice for single-bit
+        audio loops (about 6 dB of headroom). Below 0.5 nothing is guaranteed: the battery's
+        stability search (which counts quantizer clipping as overload) says how far the loop
+        really goes.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+       IEEE/Wiley 2005, ch. 4 (stability of multi-bit modulators; from memory).
+    """
+    bound = no_overload_input_bound(ntf, levels, dither_lsb)
     return float(min(1.0, bound)) if bound >= 0.5 else 0.5
 
 

@@ -94,7 +94,10 @@ class ModulatorState:
     rng_counter : ndarray of uint64, shape (channels,)
         Counter of each channel's dither generator.
     overload_count : ndarray of int64, shape (channels,)
-        Samples so far on which the guard acted.
+        Overload samples so far: those on which the guard acted, and (multi-level quantizers)
+        those on which the quantizer clipped, its input (dither included) more than half a
+        step beyond the outermost level. This is the one definition of an overload that the
+        stability search and the battery's overload onset share.
     state_peak : ndarray, shape (channels, order)
         Largest |state| seen so far (after the guard).
     samples : int
@@ -141,7 +144,15 @@ class Modulator:
     Notes
     -----
     ``run`` returns the quantizer output in full-scale units. The guard checks every sample;
-    ``ModulatorState.overload_count`` counts the samples it acted on.
+    ``ModulatorState.overload_count`` counts the samples it acted on, and the samples on which
+    a multi-level quantizer clipped (its input more than half a step past +-1, so the
+    quantization error exceeds half a step: the overload of the no-overload rule in [1]_). A
+    two-level quantizer never clips.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
+       IEEE Press / Wiley, 2005, ch. 4 (multi-bit no-overload condition; from memory).
     """
 
     def __init__(
