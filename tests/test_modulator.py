@@ -253,25 +253,29 @@ def test_output_levels_are_evenly_spaced():
 def test_stability_limit_single_bit_and_multi_bit():
     # Schreier & Temes 2005, ch. 4 (chapter from memory): a high-order single-bit loop cannot
     # take a full-scale input (its maximum stable amplitude is well below 1), while a multi-bit
-    # loop with the same NTF goes close to full scale. The 0.3..0.9 bracket for a 5th-order,
-    # gain-1.5 loop is common practice, not a published figure. The limit found must separate
-    # a clean run from a collapsed one: a sine 0.1 above it fails the criterion.
+    # loop with the same NTF goes close to full scale. The search runs 2**20 samples at three
+    # in-band frequencies (a tenth, about half and nine tenths of the band edge). The limit
+    # found must separate clean runs from failing ones: at it every frequency passes; a sine
+    # 0.05 above it fails the criterion at some frequency (runs of the same length).
+    from audiodsm.stages.modulator import _in_band_sqnr_db
+
     ntf = NoiseTransfer.designed(5, osr=64, out_of_band_gain=1.5)
     one_bit = Modulator(ntf, "feedback", levels=2)
     lim = one_bit.probe_stability(osr=64)
-    assert 0.3 < lim.stable_amplitude < 0.9
-    again = one_bit.probe_stability(osr=64, run_samples=32768)
-    assert again.stable_amplitude == lim.stable_amplitude  # deterministic
-    n, settle = 32768, 4096
-    x = (lim.stable_amplitude + 0.1) * np.sin(
-        2 * np.pi * lim.test_frequency * np.arange(n + settle)
-    )
-    y, st = one_bit.run(x)
-    from audiodsm.stages.modulator import _in_band_sqnr_db
-
-    sqnr = _in_band_sqnr_db(y[settle:], int(round(lim.test_frequency * n)), 64)
-    expected = lim.reference_sqnr_db + 20 * np.log10((lim.stable_amplitude + 0.1) / 0.01)
-    assert st.overload_count[0] > 0 or sqnr < expected - 6
+    band_edge = 0.5 / 64
+    fractions = sorted(f / band_edge for f in lim.test_frequencies)
+    assert len(fractions) == 3
+    assert fractions[0] < 0.15 and 0.4 < fractions[1] < 0.5 and fractions[2] > 0.85
+    again = Modulator(ntf, "feedback", levels=2).probe_stability(osr=64)
+    assert again.stable_amplitude == lim.stable_amplitude  # repeatable
+    n, settle = 1 << 20, 1 << 17
+    t = np.arange(n + settle)
+    failed = False
+    for f in lim.test_frequencies:
+        y, st = one_bit.run((lim.stable_amplitude + 0.05) * np.sin(2 * np.pi * f * t))
+        sqnr = _in_band_sqnr_db(y[settle:], int(round(f * n)), 64)
+        failed |= bool(st.overload_count[0] > 0 or sqnr < lim.sqnr_db - 6)
+    assert failed
     multi = Modulator(ntf, "feedback", levels=17)
     assert multi.probe_stability(osr=64).stable_amplitude > 0.9
 

@@ -120,7 +120,8 @@ METRIC_UNITS = {
     "overload_onset_dbfs": (
         "level_sweep",
         "dBFS",
-        "lowest 997 Hz tone level at which the loop guard acted (none: null)",
+        "lowest 997 Hz tone level at which the loop overloaded: its guard acted or a "
+        "multi-level quantizer clipped (none: null)",
     ),
     "idle_noise_dbfs": ("idle", "dBFS", "idle-channel noise, unweighted"),
     "idle_noise_dbfs_a": ("idle", "dBFS", "idle-channel noise, A-weighted"),
@@ -241,7 +242,8 @@ class BatteryPlan:
     out_of_band_upper_hz : float
         Upper edge of the out-of-band noise band (capped at half the modulator rate).
     stability_samples : int
-        Modulator samples per probe of the stability search.
+        Modulator samples per run of the stability search (at least 2**20 for the battery's
+        own plans; see :meth:`~audiodsm.stages.modulator.Modulator.probe_stability`).
     overload_steps_db : tuple of float
         Levels above the maximum stable amplitude (dB) probed through the whole chain.
     histogram_samples : int
@@ -269,7 +271,7 @@ class BatteryPlan:
     composite_level_dbfs: float = -6.0
     imd_s: float = 1.0
     out_of_band_upper_hz: float = 500000.0
-    stability_samples: int = 32768
+    stability_samples: int = 1 << 20
     overload_steps_db: tuple = (0.5, 1.0, 2.0, 3.0, 6.0)
     histogram_samples: int = 1 << 17
     histogram_bins: int = 64
@@ -288,7 +290,7 @@ class BatteryPlan:
             response_s=0.4,
             image_s=0.3,
             imd_s=0.4,
-            stability_samples=16384,
+            stability_samples=1 << 20,  # long runs even in a preview: see probe_stability
             overload_steps_db=(1.0, 3.0),
             histogram_samples=1 << 15,
         )
@@ -734,10 +736,23 @@ def _test_stability(ctx, profile):
 
     plan = ctx.plan
     chain = Chain.from_profile(profile, ctx.rate, 1, listening_rate_hz=ctx.rate, threads=1)
-    limit = chain.modulator.probe_stability(osr=chain.osr, run_samples=plan.stability_samples)
+    from audiodsm.stages.modulator import STABILITY_RUN_SAMPLES
+
+    scaling = getattr(chain, "state_scaling_probe", None)
+    if (
+        scaling is not None
+        and scaling.stable_amplitude > 0
+        and plan.stability_samples == STABILITY_RUN_SAMPLES
+    ):
+        # the search the state scaling was built from (same loop, same long runs; its state
+        # peaks are the scaled loop's): one result for both
+        limit = scaling
+    else:
+        limit = chain.modulator.probe_stability(osr=chain.osr, run_samples=plan.stability_samples)
     # the chain scales its input by input_scale before the loop (headroom the calibration
     # divides out again), so an amplitude at the loop is amplitude / input_scale at the input
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    freqs = ", ".join(f"{f * chain.modulator_rate_hz:.0f}" for f in limit.test_frequencies)
     out = {
         "msa": float(limit.stable_amplitude) / scale,
         "msa_modulator": float(limit.stable_amplitude),
@@ -747,9 +762,10 @@ def _test_stability(ctx, profile):
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "noise_floor": _linear_noise_floor(chain),
         "notes": [
-            f"stability: bisection on a sine near a fifth of the band edge, "
-            f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
-            "stable = no guard action and in-band SQNR within 6 dB of the linear extrapolation; "
+            f"stability: slow ramps then fixed-level runs of {plan.stability_samples} modulator "
+            f"samples at {freqs} Hz, each run with its own dither seed, the lowest limit kept; "
+            "stable = no overload (guard action or multi-level quantizer clipping) and in-band "
+            "SQNR within 6 dB of the linear extrapolation; "
             f"the loop's own limit {limit.stable_amplitude:.4f} of its full scale, divided by the "
             f"chain's input scale {scale:g} to refer it to the chain input"
         ],
@@ -1232,6 +1248,24 @@ def _assemble(results, tests, plan, profile):
         over = [p["level_dbfs"] for p in pts if p["overload_count"] > 0]
         onset = over[0] if over else None
         metrics["overload_onset_dbfs"] = onset
+        # One definition of overload for both metrics (ModulatorState.overload_count: the
+        # guard acted or a multi-level quantizer clipped). The stable amplitude is the highest
+        # level at which no run overloaded: a swept tone that overloaded caps it below its
+        # level, at the highest swept level that did not (docs/battery.md).
+        if stab is not None and onset is not None and msa_db >= onset:
+            clean = [p["level_dbfs"] for p in pts if p["level_dbfs"] < onset]
+            notes.append(
+                f"stability: the search found {msa_db:.2f} dBFS, but the level sweep overloaded "
+                f"from {onset:g} dBFS; the maximum stable amplitude is capped below that"
+            )
+            if clean:
+                msa_db = max(clean)
+                msa_amp = 10.0 ** (msa_db / 20.0)
+                metrics["max_stable_amplitude_dbfs"] = msa_db
+            else:
+                invalid["max_stable_amplitude_dbfs"] = (
+                    f"the loop overloaded at every swept level from {onset:g} dBFS"
+                )
 
     if sweep:
         sweep.sort(key=lambda p: -p["level_dbfs"])

@@ -320,6 +320,7 @@ def run_design_job(
         confirm_candidates,
         search_designs,
     )
+    from audiodsm.stages.modulator import STABILITY_RUN_SAMPLES
 
     path = Path(request.path)
     if path.exists() and not request.overwrite:
@@ -334,7 +335,9 @@ def run_design_job(
 
     if request.target_db is None:
         prof = _profile_for(request, name, loop)
-        summary = design_summary(prof, weighting=request.weighting, run_samples=16384)
+        summary = design_summary(
+            prof, weighting=request.weighting, run_samples=STABILITY_RUN_SAMPLES
+        )
         written = write_text_atomic(path, profile_to_toml(prof), overwrite=request.overwrite)
         return DesignOutcome(written, {"file": str(written), **summary}, summary=summary)
 

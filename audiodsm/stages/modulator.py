@@ -8,11 +8,15 @@ integrators for it.
 
 from __future__ import annotations
 
+import functools
+import hashlib
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
+import scipy.fft
 from scipy.signal import windows
 
 from audiodsm.design.ntf import NoiseTransfer
@@ -25,6 +29,8 @@ __all__ = [
     "GUARD_ACTIONS",
     "Modulator",
     "ModulatorState",
+    "STABILITY_BAND_FRACTIONS",
+    "STABILITY_RUN_SAMPLES",
     "StabilityProbe",
 ]
 
@@ -33,6 +39,10 @@ GUARD_ACTIONS = ("reset", "clamp")
 _SHORT_RUN = 1 << 16
 _GOLDEN = 0x9E3779B97F4A7C15
 _MASK = (1 << 64) - 1
+STABILITY_RUN_SAMPLES = 1 << 20  # samples per run of the stability search
+STABILITY_BAND_FRACTIONS = (0.1, 0.45, 0.9)  # its test frequencies, fractions of the band edge
+_PROBES: dict = {}  # stability searches done in this process, by loop and settings
+_PROBES_MAX = 64
 
 
 _POOLS: dict[int, ThreadPoolExecutor] = {}
@@ -453,45 +463,69 @@ class Modulator:
         self,
         *,
         osr: float,
-        run_samples: int = 32768,
+        run_samples: int = STABILITY_RUN_SAMPLES,
         noise_rise_db: float = 6.0,
         reference_level_dbfs: float = -40.0,
         amplitude_step: float = 0.002,
+        band_fractions: tuple[float, ...] = STABILITY_BAND_FRACTIONS,
     ) -> StabilityProbe:
-        """Search the largest stable input sine amplitude of this loop by bisection.
+        """Search the largest input sine amplitude the loop handles at every test frequency.
 
-        Criterion: an amplitude ``A`` is stable when a run of ``run_samples`` samples (after a
-        settling run of ``run_samples/8``) of a sine at ``A`` has no overload (the guard never
-        acted) and its in-band SQNR is no more than ``noise_rise_db`` below the SQNR expected
-        from the reference run, ``SQNR_ref + 20 log10(A / A_ref)`` (the in-band noise has not
-        risen by more than ``noise_rise_db``). The test tone lies on an exact FFT bin near a
-        fifth of the band edge ``0.5/osr``. The runs are deterministic (dither, if any, comes
-        from the modulator's seed).
+        An amplitude ``A`` is stable when, at each test frequency, a run of ``run_samples``
+        samples (after ``run_samples/8`` settling samples at the same amplitude) has no
+        overload (``ModulatorState.overload_count`` stays 0: the guard never acted and a
+        multi-level quantizer never clipped) and its in-band SQNR is no more than
+        ``noise_rise_db`` below ``SQNR_ref + 20 log10(A / A_ref)`` (the in-band noise has not
+        risen by more than that over the reference run at ``reference_level_dbfs``).
+
+        The search does not assume stability is monotonic in amplitude (high-order single-bit
+        instability is statistical and frequency dependent [1]_):
+
+        1. A slow ramp per test frequency: a sine whose level rises evenly in dB from
+           ``reference_level_dbfs`` to 0 dBFS over ``run_samples`` samples (about 0.08 dB per
+           2**11 samples at the default length). The level at the start of the first piece
+           of 2**11 samples (``run_samples/512`` for other lengths) with an overload is that
+           frequency's first failure; the lowest over the frequencies is the first candidate.
+        2. Fixed-amplitude runs at the candidate, all frequencies, each run with its own
+           dither stream. If any fails, the candidate drops by ``amplitude_step`` times 1, 2,
+           4, ... until all pass; then the gap up to the last failure is walked upward in
+           steps of at most ``amplitude_step`` (16 at most) and the last amplitude before the
+           first failure is the result. The lowest failure found anywhere bounds the result.
+
+        The test frequencies lie on exact FFT bins at ``band_fractions`` of the band edge
+        ``0.5/osr`` (by default a tenth, about half, and nine tenths: near the band edge).
+        The dither seed differs from run to run (derived from the modulator's seed, so the
+        search is repeatable). Results are remembered by loop (coefficients, quantizer,
+        dither, seed, guard) and search settings, in this process and on disk
+        (:mod:`audiodsm.stages.loop_cache`).
 
         Parameters
         ----------
         osr : float, keyword-only
             Oversampling ratio; the band is 0..0.5/osr cycles per sample.
         run_samples : int, keyword-only
-            Samples analysed per run (a power of two is fastest).
+            Samples analysed per run (a power of two is fastest); default 2**20.
         noise_rise_db : float, keyword-only
             Allowed rise of in-band noise over the reference.
         reference_level_dbfs : float, keyword-only
-            Level of the reference run.
+            Level of the reference runs and the start of the ramps.
         amplitude_step : float, keyword-only
-            Bisection stops when the bracket is narrower than this (fraction of full scale).
+            Resolution of the fixed-amplitude search (fraction of full scale).
+        band_fractions : tuple of float, keyword-only
+            Test frequencies as fractions of the band edge, each in (0, 1).
 
         Returns
         -------
         StabilityProbe
-            The amplitude, the state peaks there, and the SQNRs.
+            The amplitude; the largest state peaks over the test frequencies there; the SQNRs
+            at the frequency that limited the search.
 
         References
         ----------
         .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters",
-           IEEE Press / Wiley, 2005, ch. 4 (maximum stable amplitude found by simulation;
-           chapter number from memory). The criterion and its thresholds here are this
-           project's own choice.
+           IEEE Press / Wiley, 2005, ch. 4 (maximum stable amplitude found by simulation, with
+           long runs or a slowly rising input; chapter number from memory). The criterion and
+           its thresholds here are this project's own choice.
         """
         if not (np.isfinite(osr) and osr >= 4):
             raise ParameterError("osr", osr, "a number >= 4")
@@ -502,42 +536,58 @@ class Modulator:
             raise ParameterError(
                 "run_samples", run_samples, f"at least {int(np.ceil(40 * osr))} for osr={osr}"
             )
-        freq_bin = max(int(round(edge_bin / 5)) | 1, 9)
-        settle = run_samples // 8
-        ref_amp = 10 ** (reference_level_dbfs / 20)
-        ref_sqnr, _ = _probe(self, ref_amp, freq_bin, run_samples, settle, osr)
+        fractions = tuple(float(f) for f in band_fractions)
+        if not fractions or not all(0.0 < f < 1.0 for f in fractions):
+            raise ParameterError("band_fractions", band_fractions, "fractions in (0, 1)")
+        if not (np.isfinite(amplitude_step) and 0 < amplitude_step < 0.5):
+            raise ParameterError("amplitude_step", amplitude_step, "a number in (0, 0.5)")
+        settings = (
+            float(osr),
+            int(run_samples),
+            float(noise_rise_db),
+            float(reference_level_dbfs),
+            float(amplitude_step),
+            fractions,
+        )
+        key = (self._identity(), settings)
+        hit = _PROBES.get(key)
+        if hit is None:
+            from audiodsm.stages import loop_cache
 
-        def judge(amp):
-            sqnr, st = _probe(self, amp, freq_bin, run_samples, settle, osr)
-            expected = ref_sqnr + 20 * np.log10(amp / ref_amp)
-            ok = int(st.overload_count[0]) == 0 and sqnr >= expected - noise_rise_db
-            return ok, sqnr, st
+            hit = loop_cache.load("stability-probe", key)
+            if not isinstance(hit, StabilityProbe):
+                hit = _StabilitySearch(self, *settings).result()
+                loop_cache.store("stability-probe", key, hit)
+            if len(_PROBES) >= _PROBES_MAX:
+                _PROBES.pop(next(iter(_PROBES)))
+            _PROBES[key] = hit
+        return hit
 
-        lo, hi = ref_amp, 1.0
-        ok_hi, sqnr_hi, st_hi = judge(hi)
-        if ok_hi:
-            best = (hi, sqnr_hi, st_hi)
-        else:
-            ok_lo, sqnr_lo, st_lo = judge(lo)
-            if not ok_lo:
-                return StabilityProbe(
-                    0.0, np.zeros(self.order), sqnr_lo, ref_sqnr, freq_bin / run_samples
-                )
-            best = (lo, sqnr_lo, st_lo)
-            while hi - lo > amplitude_step:
-                mid = 0.5 * (lo + hi)
-                ok, sqnr, st = judge(mid)
-                if ok:
-                    lo, best = mid, (mid, sqnr, st)
-                else:
-                    hi = mid
-        amp, sqnr, st = best
-        return StabilityProbe(
-            stable_amplitude=float(amp),
-            state_peaks=np.array(st.state_peak[0]),
-            sqnr_db=float(sqnr),
-            reference_sqnr_db=float(ref_sqnr),
-            test_frequency=freq_bin / run_samples,
+    def _identity(self) -> tuple:
+        """What decides this loop's behaviour, as a key with the same repr in every process."""
+        digest = hashlib.sha256(np.ascontiguousarray(self._coef).tobytes()).hexdigest()
+        return (
+            digest,
+            self.structure,
+            self.levels,
+            self.dither_lsb,
+            self.seed,
+            self.guard,
+            self.state_bound,
+            self.input_bound,
+            self._quantizer_gain,
+        )
+
+    def _reseeded(self, seed: int) -> Modulator:
+        """The same loop and settings with another dither seed."""
+        return Modulator(
+            self.loop,
+            levels=self.levels,
+            dither_lsb=self.dither_lsb,
+            seed=seed,
+            guard=self.guard,
+            state_bound=self.state_bound,
+            input_bound=self.input_bound,
         )
 
     def with_scaled_states(
@@ -607,17 +657,16 @@ class Modulator:
             state_bound=self.state_bound,
             input_bound=self.input_bound,
         )
-        run_samples = probe_options.get("run_samples", 32768)
-        freq_bin = int(round(probe.test_frequency * run_samples))
-        sqnr, st = _probe(
-            scaled, probe.stable_amplitude, freq_bin, run_samples, run_samples // 8, osr
-        )
+        # the scaled loop at the same amplitude, every test frequency, the search's settings
+        search = _StabilitySearch.for_options(scaled, osr, probe_options)
+        runs = search.runs_at(probe.stable_amplitude)
         after = StabilityProbe(
             stable_amplitude=probe.stable_amplitude,
-            state_peaks=np.array(st.state_peak[0]),
-            sqnr_db=sqnr,
+            state_peaks=np.max([r.peaks for r in runs], axis=0),
+            sqnr_db=min(r.sqnr_db for r in runs),
             reference_sqnr_db=probe.reference_sqnr_db,
             test_frequency=probe.test_frequency,
+            test_frequencies=probe.test_frequencies,
         )
         return scaled, after
 
@@ -631,13 +680,16 @@ class StabilityProbe:
     stable_amplitude : float
         Largest sine amplitude (fraction of full scale) judged stable; 0 when none is.
     state_peaks : ndarray, shape (order,)
-        Peak |state| of each integrator in the run at that amplitude.
+        Peak |state| of each integrator, the largest over the runs at that amplitude.
     sqnr_db : float
-        In-band SQNR at that amplitude.
+        In-band SQNR at that amplitude at ``test_frequency``.
     reference_sqnr_db : float
-        In-band SQNR at the small reference amplitude.
+        In-band SQNR at the small reference amplitude at ``test_frequency``.
     test_frequency : float
-        Test frequency in cycles per modulator sample.
+        The test frequency that limited the search (the least SQNR margin at the result),
+        in cycles per modulator sample.
+    test_frequencies : tuple of float
+        All test frequencies of the search, cycles per modulator sample.
     """
 
     stable_amplitude: float
@@ -645,6 +697,15 @@ class StabilityProbe:
     sqnr_db: float
     reference_sqnr_db: float
     test_frequency: float
+    test_frequencies: tuple = ()
+
+
+@functools.lru_cache(maxsize=4)
+def _analysis_window(n: int) -> np.ndarray:
+    """The 4-term Blackman-Harris window of ``n`` samples (periodic), made once per length."""
+    w = windows.blackmanharris(n, sym=False)
+    w.setflags(write=False)
+    return w
 
 
 def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
@@ -654,8 +715,7 @@ def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
     ``bin_index +- 4``; DC bins 0..3 are excluded from the noise.
     """
     n = len(y)
-    win = windows.blackmanharris(n, sym=False)
-    spec = np.abs(np.fft.rfft(y * win)) ** 2
+    spec = np.abs(scipy.fft.rfft(y * _analysis_window(n))) ** 2
     edge = int(np.floor(n * 0.5 / osr))
     tone = slice(bin_index - 4, bin_index + 5)
     signal = spec[tone].sum()
@@ -664,10 +724,166 @@ def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
     return float(10 * np.log10(signal / noise))
 
 
-def _probe(modulator: Modulator, amplitude: float, freq_bin: int, n: int, settle: int, osr):
-    total = n + settle
-    t = np.arange(total)
-    x = amplitude * np.sin(2 * np.pi * freq_bin * t / n)
-    y, st = modulator.run(x)
-    sqnr = _in_band_sqnr_db(y[settle:], freq_bin, osr)
-    return sqnr, st
+class _Run(NamedTuple):
+    """One fixed-amplitude run of the stability search at one frequency."""
+
+    ok: bool
+    sqnr_db: float
+    margin_db: float
+    overloads: int
+    peaks: np.ndarray
+
+
+class _StabilitySearch:
+    """The search behind :meth:`Modulator.probe_stability` (see there for the method)."""
+
+    def __init__(self, modulator, osr, run_samples, noise_rise_db, reference_dbfs, step, fractions):
+        self.modulator = modulator
+        self.osr = float(osr)
+        self.n = int(run_samples)
+        self.settle = self.n // 8
+        self.rise = float(noise_rise_db)
+        self.reference_dbfs = float(reference_dbfs)
+        self.ref_amp = 10.0 ** (reference_dbfs / 20.0)
+        self.step = float(step)
+        edge = int(np.floor(self.n * 0.5 / self.osr))
+        bins = set()
+        for f in fractions:
+            b = max(int(round(f * self.n * 0.5 / self.osr)) | 1, 9)
+            b = min(b, edge - 5)  # the tone's bins (+-4) stay inside the band
+            bins.add(b if b % 2 else b - 1)
+        self.bins = sorted(bins)
+        self.ref_sqnr = None
+        self._attempt = 0
+
+    @classmethod
+    def for_options(cls, modulator, osr, options):
+        """A search with :meth:`Modulator.probe_stability`'s defaults for options not given."""
+        defaults = {
+            "run_samples": STABILITY_RUN_SAMPLES,
+            "noise_rise_db": 6.0,
+            "reference_level_dbfs": -40.0,
+            "amplitude_step": 0.002,
+            "band_fractions": STABILITY_BAND_FRACTIONS,
+        }
+        unknown = set(options) - set(defaults)
+        if unknown:
+            raise ParameterError("probe option", sorted(unknown)[0], ", ".join(defaults))
+        o = {**defaults, **options}
+        return cls(
+            modulator,
+            osr,
+            o["run_samples"],
+            o["noise_rise_db"],
+            o["reference_level_dbfs"],
+            o["amplitude_step"],
+            tuple(o["band_fractions"]),
+        )
+
+    def _next_modulator(self):
+        """The loop with the next dither seed of this search (each run its own stream)."""
+        self._attempt += 1
+        seed = _splitmix(self.modulator.seed * 0x100000001 + 0x5EED * self._attempt) >> 2
+        return self.modulator._reseeded(int(seed))
+
+    def runs_at(self, amplitude):
+        """Fixed-amplitude runs at every test frequency (one channel each, in parallel)."""
+        total = self.n + self.settle
+        t = np.arange(total)
+        mods = [self._next_modulator() for _ in self.bins]
+
+        def one(c):
+            x = amplitude * np.sin(2 * np.pi * self.bins[c] * t / self.n)
+            y, st = mods[c].run(x)
+            sqnr = _in_band_sqnr_db(y[self.settle :], self.bins[c], self.osr)
+            return sqnr, int(st.overload_count[0]), np.array(st.state_peak[0])
+
+        results = list(_thread_pool().map(one, range(len(self.bins))))
+        out = []
+        for c, (value, overloads, peaks) in enumerate(results):
+            if self.ref_sqnr is None:
+                margin = 0.0
+            else:
+                expected = self.ref_sqnr[c] + 20 * np.log10(amplitude / self.ref_amp)
+                margin = value - (expected - self.rise)
+            out.append(_Run(overloads == 0 and margin >= 0.0, value, margin, overloads, peaks))
+        return out
+
+    def ramp_limits(self):
+        """Per frequency, the level at which a slowly rising sine first overloads (or 1.0)."""
+        n = self.n
+        piece = max(n // 512, 256)
+        rise_db = -self.reference_dbfs
+        limits = [None] * len(self.bins)
+        state = None
+        mod = self._next_modulator()
+        w = 2 * np.pi * np.asarray(self.bins, dtype=float) / n
+        for start in range(0, n, piece):
+            t = np.arange(start, min(n, start + piece))
+            envelope = self.ref_amp * 10.0 ** (rise_db * t / n / 20.0)
+            _, state = mod.run(envelope[:, None] * np.sin(w[None, :] * t[:, None]), state)
+            for c in range(len(self.bins)):
+                if limits[c] is None and state.overload_count[c] > 0:
+                    limits[c] = float(envelope[0])
+            if all(v is not None for v in limits):
+                break
+        return [1.0 if v is None else min(v, 1.0) for v in limits]
+
+    def result(self) -> StabilityProbe:
+        freqs = tuple(b / self.n for b in self.bins)
+        ref = self.runs_at(self.ref_amp)
+        self.ref_sqnr = [r.sqnr_db for r in ref]
+        if any(r.overloads for r in ref):
+            worst = int(np.argmin([r.sqnr_db for r in ref]))
+            return StabilityProbe(
+                0.0,
+                np.zeros(self.modulator.order),
+                ref[worst].sqnr_db,
+                ref[worst].sqnr_db,
+                freqs[worst],
+                freqs,
+            )
+        candidate = min(self.ramp_limits())
+        runs = self.runs_at(candidate)
+        best, best_runs = None, None
+        if all(r.ok for r in runs):
+            best, best_runs = candidate, runs
+        else:
+            failed = candidate
+            k = 0
+            while best is None:
+                a = max(candidate - self.step * 2**k, self.ref_amp)
+                runs = self.runs_at(a)
+                if all(r.ok for r in runs):
+                    best, best_runs = a, runs
+                elif a <= self.ref_amp:
+                    worst = int(np.argmin([r.margin_db for r in runs]))
+                    return StabilityProbe(
+                        0.0,
+                        np.zeros(self.modulator.order),
+                        runs[worst].sqnr_db,
+                        self.ref_sqnr[worst],
+                        freqs[worst],
+                        freqs,
+                    )
+                else:
+                    failed = a
+                    k += 1
+            # walk up from the passing amplitude towards the lowest failure found
+            gap = failed - best
+            count = min(16, int(np.ceil(gap / self.step - 1e-9)))
+            for i in range(1, count):
+                a = best + gap * i / count
+                runs = self.runs_at(a)
+                if not all(r.ok for r in runs):
+                    break
+                best, best_runs = a, runs
+        worst = int(np.argmin([r.margin_db for r in best_runs]))
+        return StabilityProbe(
+            stable_amplitude=float(best),
+            state_peaks=np.max([r.peaks for r in best_runs], axis=0),
+            sqnr_db=float(best_runs[worst].sqnr_db),
+            reference_sqnr_db=float(self.ref_sqnr[worst]),
+            test_frequency=freqs[worst],
+            test_frequencies=freqs,
+        )
