@@ -129,11 +129,18 @@ def test_single_bit_stable_amplitude_drops_with_order(stability_by_order):
     # rises. The loop's own amplitude (fraction of its full scale) is compared.
     amps = [stability_by_order[k].curves["stability"]["loop_amplitude"][0] for k in (2, 3, 4, 5)]
     assert all(a > b for a, b in zip(amps, amps[1:], strict=False)), amps
-    # plausible ranges (from memory of the published simulations, common practice): a
-    # 2nd-order single-bit loop handles most of full scale; a 5th-order loop with an out-of-band
-    # gain of 1.5 saturates somewhere around half to three quarters of full scale
-    assert 0.7 <= amps[0] <= 1.0
-    assert 0.4 <= amps[-1] <= 0.85
+    # Against the figure of maximum stable amplitude vs out-of-band gain (Schreier & Temes
+    # 2005, ch. 4, after Schreier 1993, IEEE TCAS-II 40(8); readings FROM MEMORY, not checked
+    # against the printed figure): at ||H||_inf = 1.5 the 5th-order curve reads about -4 dBFS
+    # and the 2nd-order loop is stable to within about 1 dB of full scale. The tolerance is
+    # the 1.5 dB of reading the figure from memory; the search itself is repeatable (seeded
+    # dither, fixed frequencies), so the width is the reference's, not the simulation's.
+    # The chain scales its states by powers of two: the loop's bits, so its limit, are the
+    # unscaled loop's.
+    msa_db = [20 * math.log10(a) for a in amps]
+    assert msa_db[-1] == pytest.approx(-4.0, abs=1.5), msa_db
+    assert msa_db[0] == pytest.approx(-1.0, abs=1.0), msa_db
+    assert amps[0] <= 1.0
 
 
 def test_stable_amplitude_metric_refers_to_the_chain_input(stability_by_order):

@@ -85,8 +85,13 @@ def test_simulated_noise_spectrum_follows_designed_ntf(structure):
     # Delta^2/4 (Lipshitz et al. 1992), so the output PSD is |NTF|^2 * Delta^2/4 / 0.5
     # (one-sided, per cycle/sample). The Welch PSD (Kaiser beta 20: sidelobes far below the
     # -130 dB the NTF reaches in band) is averaged over groups of >= 16 bins and compared with
-    # |NTF|^2 averaged over the same bins, from 1/8 of the band edge (OSR 64) to Nyquist:
-    # within +-1 dB (127 averages x 16 bins: the estimate's spread is about 0.1 dB).
+    # |NTF|^2 averaged over the same bins, from 1/8 of the band edge (OSR 64) to Nyquist.
+    # Scatter: an average of K independent periodogram values (chi-squared, 2 degrees of
+    # freedom each) has a relative spread of 1/sqrt(K) (Welch 1967, IEEE Trans. Audio
+    # Electroacoust. 15(2)); a group of B bins over S segments holds K = S B / ENBW of them
+    # (ENBW of the window in bins: neighbouring bins are correlated). Each group must lie within
+    # 5 of its own standard deviations (0.8 dB for the 16-bin groups, 0.12 dB for the widest),
+    # and the mean over the groups, which no scatter of single groups excuses, within 0.1 dB.
     levels = 33
     delta = 2.0 / (levels - 1)
     ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5, zero_layout="spread")
@@ -98,9 +103,16 @@ def test_simulated_noise_spectrum_follows_designed_ntf(structure):
     model = np.abs(ntf.response(f)) ** 2 * delta**2 / 4 / 0.5
     edges = np.unique(np.r_[np.arange(16, 128, 16), np.geomspace(128, nper // 2, 20).astype(int)])
     assert f[edges[0]] < 0.5 / 64 / 4  # the check starts well inside the band
+    w = signal.get_window(("kaiser", 20.0), nper)
+    enbw_bins = nper * np.sum(w**2) / np.sum(w) ** 2
+    segments = (len(y) - nper) // (nper // 2) + 1
+    ratios = []
     for lo, hi in zip(edges[:-1], edges[1:], strict=True):
         ratio_db = 10 * np.log10(psd[lo:hi].mean() / model[lo:hi].mean())
-        assert abs(ratio_db) < 1.0, (f[lo], ratio_db)
+        sigma_db = 10 / np.log(10) / np.sqrt(segments * (hi - lo) / enbw_bins)
+        assert abs(ratio_db) < 5 * sigma_db, (f[lo], ratio_db, sigma_db)
+        ratios.append(ratio_db)
+    assert abs(np.mean(ratios)) < 0.1, ratios
 
 
 # ---------------------------------------------------------------------------------------------
@@ -532,3 +544,30 @@ def test_clipping_multi_level_quantizer_counts_overloads():
     one_bit = Modulator(NoiseTransfer.designed(2, osr=64), "feedback", levels=2)
     _, st = one_bit.run(0.5 * np.sin(2 * np.pi * 0.0011 * t))
     assert st.overload_count[0] == 0
+
+
+# ---------------------------------------------------------------------------------------------
+# Maximum stable amplitude against out-of-band gain (Schreier 1993; Schreier & Temes 2005)
+# ---------------------------------------------------------------------------------------------
+
+# Approximate readings of the 5th-order curve of the figure of maximum stable amplitude
+# against the out-of-band NTF gain ||H||_inf in R. Schreier and G. C. Temes, "Understanding
+# Delta-Sigma Data Converters", 2005, ch. 4 (after R. Schreier, "An empirical study of
+# high-order single-bit delta-sigma modulators", IEEE TCAS-II 40(8), 1993). The values, the
+# figure and the chapter are FROM MEMORY and were not checked against the printed figure; the
+# 1.7 reading, on the steep part of the curve, is the least certain. The curve is independent
+# of the OSR in the paper (NTFs designed for each gain); dBFS of a sine of peak 1.
+_MSA_FROM_MEMORY_DBFS = {1.3: -2.0, 1.5: -4.0, 1.7: -9.0}
+
+
+def test_single_bit_stable_amplitude_follows_the_published_trend_with_out_of_band_gain():
+    # Each point within 1.5 dB of the published curve, and the amplitude falls as the gain
+    # rises (the trend the figure shows for every order).
+    found = {}
+    for gain, expected_dbfs in _MSA_FROM_MEMORY_DBFS.items():
+        ntf = NoiseTransfer.designed(5, osr=64, out_of_band_gain=gain)
+        probe = Modulator(ntf, "feedback", levels=2).probe_stability(osr=64)
+        found[gain] = 20 * np.log10(probe.stable_amplitude)
+        assert found[gain] == pytest.approx(expected_dbfs, abs=1.5), found
+    gains = sorted(found)
+    assert all(found[a] > found[b] for a, b in zip(gains, gains[1:], strict=False)), found
