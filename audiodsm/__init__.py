@@ -23,7 +23,7 @@ Reconstruction (``audiodsm.stages.reconstruct``)
     filter_waveform, filter_waveform_ticks, filter_waveform_power, FilterState,
     filter_pwm_with_dead_time, DeadTimeState, out_of_band_ripple, waveform_ripple,
     RippleReport, filter_report, FilterReport
-Chain (``audiodsm.stages.chain``)
+Chain (``audiodsm.stages.chain``, ``audiodsm.stages.chain_records``)
     Chain, ChainResult, run_chain
 Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
@@ -149,7 +149,7 @@ _PUBLIC = {
     "FilterReport": "audiodsm.stages.reconstruct",
     "ChainProfile": "audiodsm.profile",
     "Chain": "audiodsm.stages.chain",
-    "ChainResult": "audiodsm.stages.chain",
+    "ChainResult": "audiodsm.stages.chain_records",
     "run_chain": "audiodsm.stages.chain",
     "run_battery": "audiodsm.evaluate.battery",
     "BatteryPlan": "audiodsm.evaluate.battery",
