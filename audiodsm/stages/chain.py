@@ -127,8 +127,8 @@ class Chain:
 
     def __init__(self, profile, rate_hz, channels, *, listening_rate_hz=None, threads=None):
         from audiodsm.stages.downsample import Downsampler, design_downsampler
+        from audiodsm.stages.filter_design import semi_digital_fir
         from audiodsm.stages.modulator import Modulator
-        from audiodsm.stages.reconstruct import semi_digital_fir
         from audiodsm.stages.upsample import Upsampler, design_upsampler
 
         if not isinstance(profile, ChainProfile):

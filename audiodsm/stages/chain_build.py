@@ -186,7 +186,7 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
 
 
 def _analog_filter(profile: ChainProfile):
-    from audiodsm.stages import reconstruct as rec_mod
+    from audiodsm.stages import filter_design as rec_mod
 
     rec = profile.reconstruction
     if rec.kind == "prototype":
