@@ -18,12 +18,12 @@ Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
     level_codes, PackedBitsWriter, write_packed_bits, read_packed_bits,
     CodeTextWriter, write_code_text, read_code_text
-Reconstruction (``audiodsm.stages.reconstruct``)
+Reconstruction (``audiodsm.stages.filter_design``, ``audiodsm.stages.reconstruct``)
     AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
     filter_waveform, filter_waveform_ticks, filter_waveform_power, FilterState,
     filter_pwm_with_dead_time, DeadTimeState, out_of_band_ripple, waveform_ripple,
     RippleReport, filter_report, FilterReport
-Chain (``audiodsm.stages.chain``)
+Chain (``audiodsm.stages.chain``, ``audiodsm.stages.chain_records``)
     Chain, ChainResult, run_chain
 Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
@@ -136,11 +136,11 @@ _PUBLIC = {
     "CodeTextWriter": "audiodsm.stages.output_stage",
     "write_code_text": "audiodsm.stages.output_stage",
     "read_code_text": "audiodsm.stages.output_stage",
-    "AnalogFilter": "audiodsm.stages.reconstruct",
-    "analog_prototype": "audiodsm.stages.reconstruct",
-    "lc_filter": "audiodsm.stages.reconstruct",
-    "SemiDigitalFir": "audiodsm.stages.reconstruct",
-    "semi_digital_fir": "audiodsm.stages.reconstruct",
+    "AnalogFilter": "audiodsm.stages.filter_design",
+    "analog_prototype": "audiodsm.stages.filter_design",
+    "lc_filter": "audiodsm.stages.filter_design",
+    "SemiDigitalFir": "audiodsm.stages.filter_design",
+    "semi_digital_fir": "audiodsm.stages.filter_design",
     "filter_waveform": "audiodsm.stages.reconstruct",
     "filter_waveform_ticks": "audiodsm.stages.reconstruct",
     "filter_waveform_power": "audiodsm.stages.reconstruct",
@@ -154,7 +154,7 @@ _PUBLIC = {
     "FilterReport": "audiodsm.stages.reconstruct",
     "ChainProfile": "audiodsm.profile",
     "Chain": "audiodsm.stages.chain",
-    "ChainResult": "audiodsm.stages.chain",
+    "ChainResult": "audiodsm.stages.chain_records",
     "run_chain": "audiodsm.stages.chain",
     "run_battery": "audiodsm.evaluate.battery",
     "BatteryPlan": "audiodsm.evaluate.battery",
