@@ -63,7 +63,7 @@ Audio files (``audiodsm.io``)
     write_audio_atomic, open_audio_writer
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
-Chain profiles (``audiodsm.profile``)
+Chain profiles (``audiodsm.profile``, ``audiodsm.profile_text``)
     ChainProfile, load_profile, parse_profile, profile_to_toml, profile_digest
 Spec sheets (``audiodsm.spec``)
     load_spec, parse_spec, spec_digest, SpecSheet, Target, METRIC_CATALOGUE
@@ -166,8 +166,8 @@ _PUBLIC = {
     "run_design_job": "audiodsm.evaluate.design_job",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
-    "profile_to_toml": "audiodsm.profile",
-    "profile_digest": "audiodsm.profile",
+    "profile_to_toml": "audiodsm.profile_text",
+    "profile_digest": "audiodsm.profile_text",
     "a_weighting_db": "audiodsm.measure.weighting",
     "bs468_weighting_db": "audiodsm.measure.weighting",
     "ccir_weighting_db": "audiodsm.measure.weighting",
