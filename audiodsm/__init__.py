@@ -49,7 +49,8 @@ Level and frequency response (``audiodsm.measure.response``)
     level_linearity, frequency_response, stepped_frequency_response
 Intermodulation (``audiodsm.measure.intermod``)
     imd_smpte, imd_difference_frequency
-Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
+Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``,
+``audiodsm.measure.channel_analysis``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
     ChannelContent, analyze_blocks, ChannelAnalysis
@@ -102,8 +103,8 @@ _PUBLIC = {
     "LineSpectrumState": "audiodsm.measure.idle_tones",
     "classify_channel": "audiodsm.measure.classify",
     "ChannelContent": "audiodsm.measure.classify",
-    "analyze_blocks": "audiodsm.measure.classify",
-    "ChannelAnalysis": "audiodsm.measure.classify",
+    "analyze_blocks": "audiodsm.measure.channel_analysis",
+    "ChannelAnalysis": "audiodsm.measure.channel_analysis",
     "read_audio": "audiodsm.io",
     "read_audio_span": "audiodsm.io",
     "audio_info": "audiodsm.io",
