@@ -526,7 +526,7 @@ def test_clipping_multi_level_quantizer_counts_overloads():
     # exceeds half a step, the overload of the no-overload rule. A sine driven past full
     # scale must count such samples even though the loop (its guard bounds far away) survives;
     # at the no-overload bound (||h||_1 rule, dither included) no sample may count.
-    from audiodsm.stages.chain import no_overload_input_bound
+    from audiodsm.stages.chain_build import no_overload_input_bound
 
     ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=1.5)
     n = 1 << 16

@@ -182,7 +182,7 @@ def predicted_dynamic_range_db(
 
 
 def _input_scale(ntf, levels, dither_lsb=0.0):
-    from audiodsm.stages.chain import auto_input_scale
+    from audiodsm.stages.chain_build import auto_input_scale
 
     return float(auto_input_scale(ntf, levels, dither_lsb))
 
@@ -244,11 +244,11 @@ def _guaranteed_stable(ntf, levels, dither_lsb=0.0) -> bool:
 
     Schreier & Temes 2005, ch. 4: a loop with M + 1 levels never overloads while
     ``max|u| <= M + 2 - ||h||_1`` (step 2); a dither of peak D steps, shaped by the NTF, takes
-    ``2 D ||h||_1`` more (:func:`~audiodsm.stages.chain.no_overload_input_bound`). Demanding at
-    least half of full scale matches the chain's automatic input scale. Single-bit loops have
-    no such guarantee (always False).
+    ``2 D ||h||_1`` more (:func:`~audiodsm.stages.chain_build.no_overload_input_bound`).
+    Demanding at least half of full scale matches the chain's automatic input scale. Single-bit
+    loops have no such guarantee (always False).
     """
-    from audiodsm.stages.chain import no_overload_input_bound
+    from audiodsm.stages.chain_build import no_overload_input_bound
 
     if levels - 1 < 2:
         return False
