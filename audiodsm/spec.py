@@ -69,7 +69,7 @@ METRIC_CATALOGUE = {
     "carrier_ripple_dbfs": ("dBFS", "ripple inside each frame (PWM carrier) after the filter"),
     "noise_modulation_db": ("dB", "noise modulation: spread of the noise between the harmonics"),
     "state_peak_max": ("FS", "largest integrator state"),
-    "overload_count": ("count", "loop guard actions at or below the stable amplitude"),
+    "overload_count": ("count", "loop overload samples at or below the stable amplitude"),
     "pwm_dropped_pulses": ("count", "PWM pulses dropped for the minimum width"),
     "pwm_stretched_pulses": ("count", "PWM pulses stretched to the minimum width"),
     "switching_rate_hz": ("Hz", "output level changes per second at idle"),

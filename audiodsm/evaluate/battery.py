@@ -179,7 +179,8 @@ METRIC_UNITS = {
     "overload_count": (
         "",
         "",
-        "loop guard actions in runs at or below the maximum stable amplitude",
+        "overload samples (guard actions, multi-level quantizer clipping) in runs at or below "
+        "the maximum stable amplitude",
     ),
     "pwm_dropped_pulses": ("", "", "PWM pulses dropped for the minimum width (PWM only)"),
     "pwm_stretched_pulses": ("", "", "PWM pulses stretched to the minimum width (PWM only)"),

@@ -82,7 +82,9 @@ def _run_faults(stats, c, y=None):
     faults = []
     n = int(stats.overload_count[c])
     if n:
-        faults.append(f"loop overloaded ({n} guard actions)")
+        faults.append(
+            f"loop overloaded ({n} overload samples: guard actions or quantizer clipping)"
+        )
     if y is not None and len(y):
         if not np.all(np.isfinite(y)):
             faults.append("output not finite")
