@@ -476,7 +476,9 @@ class Modulator:
         overload (``ModulatorState.overload_count`` stays 0: the guard never acted and a
         multi-level quantizer never clipped) and its in-band SQNR is no more than
         ``noise_rise_db`` below ``SQNR_ref + 20 log10(A / A_ref)`` (the in-band noise has not
-        risen by more than that over the reference run at ``reference_level_dbfs``).
+        risen by more than that over the reference runs at ``reference_level_dbfs``;
+        ``SQNR_ref`` is the lowest of their SQNRs, i.e. the largest in-band noise: at low levels
+        a loop's noise can be patterned and differ from one test frequency to another).
 
         The search does not assume stability is monotonic in amplitude (high-order single-bit
         instability is statistical and frequency dependent [1]_):
@@ -832,7 +834,10 @@ class _StabilitySearch:
     def result(self) -> StabilityProbe:
         freqs = tuple(b / self.n for b in self.bins)
         ref = self.runs_at(self.ref_amp)
-        self.ref_sqnr = [r.sqnr_db for r in ref]
+        # one reference for all frequencies: the largest in-band noise of the reference runs
+        # (at low levels a loop's noise can be patterned and differ from one tone to another;
+        # a quiet pattern at one frequency must not make every louder level look like a rise)
+        self.ref_sqnr = [min(r.sqnr_db for r in ref)] * len(ref)
         if any(r.overloads for r in ref):
             worst = int(np.argmin([r.sqnr_db for r in ref]))
             return StabilityProbe(
@@ -870,10 +875,10 @@ class _StabilitySearch:
                     failed = a
                     k += 1
             # walk up from the passing amplitude towards the lowest failure found
-            gap = failed - best
+            base, gap = best, failed - best
             count = min(16, int(np.ceil(gap / self.step - 1e-9)))
             for i in range(1, count):
-                a = best + gap * i / count
+                a = base + gap * i / count
                 runs = self.runs_at(a)
                 if not all(r.ok for r in runs):
                     break
