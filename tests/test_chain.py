@@ -80,6 +80,9 @@ kind = "lc"
 """
 )
 
+# dither 0.25 LSB: with 1 LSB this 9-level loop (||h||_1 = 3.79) has no no-overload bound
+# (8 + 2 - 3.79 * 3 < 0) and its quantizer clips on a -1 dBFS tone; with 0.25 LSB the bound,
+# (8 + 2 - 3.79 * 1.5) / 8 = 0.54, is the chain's input scale and nothing clips
 PWM_DEAD_TIME = parse_profile(
     """
 name = "pwm-dead-time"
@@ -87,7 +90,7 @@ name = "pwm-dead-time"
 order = 3
 levels = 9
 out_of_band_gain = 2.0
-dither_lsb = 1.0
+dither_lsb = 0.25
 [output]
 kind = "pwm"
 pwm_carrier = "trailing"
