@@ -18,12 +18,12 @@ Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
     level_codes, PackedBitsWriter, write_packed_bits, read_packed_bits,
     CodeTextWriter, write_code_text, read_code_text
-Reconstruction (``audiodsm.stages.reconstruct``)
+Reconstruction (``audiodsm.stages.filter_design``, ``audiodsm.stages.reconstruct``)
     AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
     filter_waveform, filter_waveform_ticks, filter_waveform_power, FilterState,
     filter_pwm_with_dead_time, DeadTimeState, out_of_band_ripple, waveform_ripple,
     RippleReport, filter_report, FilterReport
-Chain (``audiodsm.stages.chain``)
+Chain (``audiodsm.stages.chain``, ``audiodsm.stages.chain_records``)
     Chain, ChainResult, run_chain
 Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
@@ -82,6 +82,11 @@ Listening by ear (``audiodsm.measure.loudness``, ``audiodsm.measure.alignment``,
     integrated_loudness_lufs, gain_to_loudness_db, find_delay, DelayEstimate, shift_by_frames,
     make_listening_set, ListeningCandidate, spectrogram_dbfs, score_answers, binomial_tail_p,
     PairScore
+Fixed point and the hardware handoff (``audiodsm.design.fixed_point``,
+``audiodsm.stages.fixed_loop``, ``audiodsm.hardware.handoff``, ``audiodsm.hardware.rtl``)
+    NodeFormat, FixedPointFormat, csd_digits, round_to_csd, quantize_coefficients,
+    node_noise_gains, plan_word_lengths, WordLengthPlan, FixedPointModulator, plan_profile,
+    check_fixed_point, write_handoff, verilog_text, simulate_words
 """
 
 from __future__ import annotations
@@ -131,11 +136,11 @@ _PUBLIC = {
     "CodeTextWriter": "audiodsm.stages.output_stage",
     "write_code_text": "audiodsm.stages.output_stage",
     "read_code_text": "audiodsm.stages.output_stage",
-    "AnalogFilter": "audiodsm.stages.reconstruct",
-    "analog_prototype": "audiodsm.stages.reconstruct",
-    "lc_filter": "audiodsm.stages.reconstruct",
-    "SemiDigitalFir": "audiodsm.stages.reconstruct",
-    "semi_digital_fir": "audiodsm.stages.reconstruct",
+    "AnalogFilter": "audiodsm.stages.filter_design",
+    "analog_prototype": "audiodsm.stages.filter_design",
+    "lc_filter": "audiodsm.stages.filter_design",
+    "SemiDigitalFir": "audiodsm.stages.filter_design",
+    "semi_digital_fir": "audiodsm.stages.filter_design",
     "filter_waveform": "audiodsm.stages.reconstruct",
     "filter_waveform_ticks": "audiodsm.stages.reconstruct",
     "filter_waveform_power": "audiodsm.stages.reconstruct",
@@ -149,7 +154,7 @@ _PUBLIC = {
     "FilterReport": "audiodsm.stages.reconstruct",
     "ChainProfile": "audiodsm.profile",
     "Chain": "audiodsm.stages.chain",
-    "ChainResult": "audiodsm.stages.chain",
+    "ChainResult": "audiodsm.stages.chain_records",
     "run_chain": "audiodsm.stages.chain",
     "run_battery": "audiodsm.evaluate.battery",
     "BatteryPlan": "audiodsm.evaluate.battery",
@@ -266,6 +271,20 @@ _PUBLIC = {
     "analyze_file": "audiodsm.evaluate.analyze",
     "FileAnalysis": "audiodsm.evaluate.analyze",
     "SilenceNoiseMeter": "audiodsm.measure.silence",
+    "NodeFormat": "audiodsm.design.fixed_point",
+    "FixedPointFormat": "audiodsm.design.fixed_point",
+    "csd_digits": "audiodsm.design.fixed_point",
+    "round_to_csd": "audiodsm.design.fixed_point",
+    "quantize_coefficients": "audiodsm.design.fixed_point",
+    "node_noise_gains": "audiodsm.design.fixed_point",
+    "plan_word_lengths": "audiodsm.design.fixed_point",
+    "WordLengthPlan": "audiodsm.design.fixed_point",
+    "FixedPointModulator": "audiodsm.stages.fixed_loop",
+    "plan_profile": "audiodsm.hardware.handoff",
+    "check_fixed_point": "audiodsm.hardware.handoff",
+    "write_handoff": "audiodsm.hardware.handoff",
+    "verilog_text": "audiodsm.hardware.rtl",
+    "simulate_words": "audiodsm.hardware.rtl",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

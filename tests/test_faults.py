@@ -22,6 +22,7 @@ import pytest
 import soundfile as sf
 from click.testing import CliRunner
 from fault_batteries import quick_battery
+from subprocess_helpers import interruptible
 
 from audiodsm.cli import main
 from audiodsm.errors import (
@@ -35,19 +36,17 @@ from audiodsm.errors import (
     exit_code_for_signal,
 )
 from audiodsm.evaluate.grade import GradeCache, collect_profiles, grade_batch
-from audiodsm.io import (
+from audiodsm.io import open_audio_writer, read_audio, write_audio_atomic
+from audiodsm.io_files import (
     MAX_NAME_BYTES,
     MAX_OUTPUT_NAME_BYTES,
     create_temp_file,
     fit_file_name,
-    open_audio_writer,
-    read_audio,
     refuse_dangling_symlink,
     remove_stale_temp_files,
     replace_text_atomically,
     same_file,
     temp_file_owner,
-    write_audio_atomic,
 )
 from audiodsm.profile import parse_profile
 from audiodsm.spec import parse_spec
@@ -295,7 +294,7 @@ def full_disk(monkeypatch, module, *, when=lambda dst: True):
 
 
 def test_text_write_on_a_full_disk_names_path_and_cause(tmp_path, monkeypatch):
-    import audiodsm.io as aio
+    import audiodsm.io_files as aio
 
     full_disk(monkeypatch, aio)
     target = tmp_path / "notes.txt"
@@ -694,6 +693,7 @@ def test_a_stop_signal_removes_the_temporary_file(tmp_path, sig):
         env=_env(),
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
+        preexec_fn=interruptible,
         text=True,
     )
     try:
@@ -757,6 +757,7 @@ def _start_grade(tmp_path, calls):
         env=_env(),
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
+        preexec_fn=interruptible,
         text=True,
         start_new_session=True,  # signals go to the main process only, as `kill PID` sends
     )
@@ -844,7 +845,7 @@ def test_a_read_only_cache_folder_warns_and_keeps_the_results(
 
 
 def test_an_output_set_appears_whole(tmp_path):
-    from audiodsm.io import OutputSet
+    from audiodsm.io_files import OutputSet
 
     listen, summary = tmp_path / "take.listen.wav", tmp_path / "take.summary.json"
     with OutputSet() as outputs:
@@ -856,7 +857,7 @@ def test_an_output_set_appears_whole(tmp_path):
 
 
 def test_an_output_set_that_fails_leaves_nothing(tmp_path, monkeypatch):
-    from audiodsm.io import OutputSet
+    from audiodsm.io_files import OutputSet
 
     listen, summary = tmp_path / "take.listen.wav", tmp_path / "take.summary.json"
 
@@ -893,7 +894,7 @@ def test_an_output_set_that_fails_leaves_nothing(tmp_path, monkeypatch):
 
 
 def test_an_output_set_left_by_an_exception_is_discarded(tmp_path):
-    from audiodsm.io import OutputSet
+    from audiodsm.io_files import OutputSet
 
     with pytest.raises(KeyboardInterrupt):
         with OutputSet() as outputs:

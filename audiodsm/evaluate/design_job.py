@@ -24,7 +24,7 @@ from pathlib import Path
 
 from audiodsm.errors import OutputError, ParameterError
 from audiodsm.evaluate.search import DEFAULT_LEVELS
-from audiodsm.io import refuse_dangling_symlink, replace_text_atomically
+from audiodsm.io_files import refuse_dangling_symlink, replace_text_atomically
 from audiodsm.limits import LEVELS_RANGE
 from audiodsm.profile import (
     ChainProfile,

@@ -36,7 +36,7 @@ import numpy as np
 
 from audiodsm.errors import ParameterError, ProfileError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
-from audiodsm.io import create_temp_file, remove_stale_temp_files
+from audiodsm.io_files import create_temp_file, remove_stale_temp_files
 from audiodsm.profile import load_profile, profile_digest
 from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target
 

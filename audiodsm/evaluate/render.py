@@ -302,7 +302,7 @@ def render_file(
 
 
 def _write_json_atomic(path: Path, data: dict, *, overwrite: bool) -> None:
-    from audiodsm.io import replace_text_atomically
+    from audiodsm.io_files import replace_text_atomically
 
     if path.exists() and not overwrite:
         raise OutputError(f"{path}: already exists (use --replace to replace it)")
