@@ -49,7 +49,8 @@ Level and frequency response (``audiodsm.measure.response``)
     level_linearity, frequency_response, stepped_frequency_response
 Intermodulation (``audiodsm.measure.intermod``)
     imd_smpte, imd_difference_frequency
-Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
+Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``,
+``audiodsm.measure.channel_analysis``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
     ChannelContent, analyze_blocks, ChannelAnalysis
@@ -63,7 +64,7 @@ Audio files (``audiodsm.io``)
     write_audio_atomic, open_audio_writer
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
-Chain profiles (``audiodsm.profile``)
+Chain profiles (``audiodsm.profile``, ``audiodsm.profile_text``)
     ChainProfile, load_profile, parse_profile, profile_to_toml, profile_digest
 Spec sheets (``audiodsm.spec``)
     load_spec, parse_spec, spec_digest, SpecSheet, Target, METRIC_CATALOGUE
@@ -107,8 +108,8 @@ _PUBLIC = {
     "LineSpectrumState": "audiodsm.measure.idle_tones",
     "classify_channel": "audiodsm.measure.classify",
     "ChannelContent": "audiodsm.measure.classify",
-    "analyze_blocks": "audiodsm.measure.classify",
-    "ChannelAnalysis": "audiodsm.measure.classify",
+    "analyze_blocks": "audiodsm.measure.channel_analysis",
+    "ChannelAnalysis": "audiodsm.measure.channel_analysis",
     "read_audio": "audiodsm.io",
     "read_audio_span": "audiodsm.io",
     "audio_info": "audiodsm.io",
@@ -171,8 +172,8 @@ _PUBLIC = {
     "run_design_job": "audiodsm.evaluate.design_job",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
-    "profile_to_toml": "audiodsm.profile",
-    "profile_digest": "audiodsm.profile",
+    "profile_to_toml": "audiodsm.profile_text",
+    "profile_digest": "audiodsm.profile_text",
     "a_weighting_db": "audiodsm.measure.weighting",
     "bs468_weighting_db": "audiodsm.measure.weighting",
     "ccir_weighting_db": "audiodsm.measure.weighting",

@@ -14,12 +14,12 @@ import pytest
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate.battery import (
     METRIC_UNITS,
-    NUMERIC_FLOOR_DBFS,
     TEST_NAMES,
     BatteryPlan,
     battery_rate_hz,
     run_battery,
 )
+from audiodsm.evaluate.battery_runs import NUMERIC_FLOOR_DBFS
 from audiodsm.profile import ChainProfile, profile_from_dict
 from audiodsm.stages.chain import Chain
 

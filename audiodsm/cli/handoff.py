@@ -79,7 +79,8 @@ def plan(
     from audiodsm.errors import OutputError
     from audiodsm.hardware.handoff import plan_profile, profile_with_plan
     from audiodsm.io_files import replace_text_atomically
-    from audiodsm.profile import load_profile, profile_to_toml
+    from audiodsm.profile import load_profile
+    from audiodsm.profile_text import profile_to_toml
 
     prof = load_profile(profile)
     result, facts, stable = plan_profile(

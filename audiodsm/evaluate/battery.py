@@ -76,7 +76,8 @@ from audiodsm.evaluate.battery_runs import (
     _test_stability,
     _tone_came_out,
 )
-from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile, profile_digest
+from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile
+from audiodsm.profile_text import profile_digest
 
 __all__ = [
     "DEFAULT_RATE_HZ",
@@ -340,7 +341,7 @@ class BatteryResult:
     ----------
     profile_name : str
     digest : str
-        :func:`~audiodsm.profile.profile_digest` of the profile measured.
+        :func:`~audiodsm.profile_text.profile_digest` of the profile measured.
     rate_hz : int
         Audio rate of the stimuli.
     metrics : dict

@@ -143,7 +143,8 @@ def render_file(
         final name.
     """
     from audiodsm.io import audio_info, iter_audio_blocks, open_audio_writer
-    from audiodsm.profile import AUDIO_RATES_HZ, profile_digest
+    from audiodsm.profile import AUDIO_RATES_HZ
+    from audiodsm.profile_text import profile_digest
     from audiodsm.stages.chain import Chain
     from audiodsm.stages.output_stage import CodeTextWriter, PackedBitsWriter
 
