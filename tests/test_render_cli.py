@@ -139,7 +139,7 @@ def test_render_end_to_end(setup):
     assert ch0["overload_samples"] == 0
     # the quiet passage is long enough: an A-weighted noise level is reported. An undithered
     # single-bit loop fed zeros is not white noise: it settles into patterns whose power sits
-    # near half the loop rate (channel 2, silent throughout, reads no in-band noise at all), so
+    # near half the loop rate (a channel silent from the start reads no in-band noise at all), so
     # the physics sets only an upper bound: the linear model with the single-bit quantizer's
     # effective noise, 1 / ||NTF||^2 (the +-1 output has unit power; S&T 2005 ch. 2 linear
     # model), raised by the chain's 6 dB input headroom (-63.7 dBFS(A)). This loop reads
