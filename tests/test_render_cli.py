@@ -170,11 +170,12 @@ def test_silence_noise_of_a_dithered_multi_bit_chain_follows_the_linear_model(tm
     # A 9-level loop with 1 LSB (peak) TPDF dither at the quantizer: the total quantizer error
     # is white with power step^2/12 + step^2/6 = step^2/4, step = 2/8 (Lipshitz, Wannamaker &
     # Vanderkooy, JAES 40(5) 1992), shaped by the NTF (S&T 2005 ch. 2). The chain scales its
-    # input by the no-overload bound (M + 2 - ||h||_1) / M (S&T ch. 4) and calibrates it back
-    # out, raising the noise by as much. The reading scatters by ~0.02 dB over the ~1.3 s
+    # input by its automatic input scale (the no-overload bound of S&T ch. 4 with the dither
+    # subtracted, or 0.5 when that bound guarantees less) and calibrates it back out, raising
+    # the noise by as much. The reading scatters by ~0.02 dB over the ~1.3 s
     # measured (the shaped noise is mostly 5-20 kHz, many degrees of freedom); the listening
     # chain's filters are flat in band to far less: 0.15 dB.
-    from audiodsm.stages.chain import auto_input_scale
+    from audiodsm.stages.chain_build import auto_input_scale
 
     prof = tmp_path / "dac.toml"
     prof.write_text(
@@ -194,7 +195,7 @@ def test_silence_noise_of_a_dithered_multi_bit_chain_follows_the_linear_model(tm
     expected = _linear_model_silence_dbfs_a(
         PROFILE_NTF,
         noise_power=step**2 / 4,
-        input_scale=auto_input_scale(PROFILE_NTF, 9),
+        input_scale=auto_input_scale(PROFILE_NTF, 9, 1.0),
     )
     assert summary["silent_seconds"] >= 1.0
     assert summary["channels"][0]["silence_noise_dbfs_a"] == pytest.approx(expected, abs=0.15)
