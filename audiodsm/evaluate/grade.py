@@ -48,6 +48,7 @@ __all__ = [
     "rank_grades",
     "plan_for_spec",
     "grade_batch",
+    "measure_on_cluster",
 ]
 
 #: Tolerance when matching a target's tone level to a level of the THD+N sweep (dB).
@@ -903,3 +904,74 @@ def _run_on_cluster(
         progress=report,
         say=say,
     )
+
+
+def _measure_task(profile, threads, seed, plan):
+    from audiodsm.evaluate.battery import run_battery
+
+    return run_battery(profile, jobs=threads, progress=None, seed=seed, plan=plan)
+
+
+def measure_on_cluster(
+    profiles: Sequence,
+    *,
+    plan=None,
+    jobs: int | None = None,
+    seed: int = 0,
+    scheduler: str | None = None,
+    progress: Callable[[float, str], None] | None = None,
+    say: Callable[[str], None] | None = None,
+) -> list:
+    """Run the battery on several profiles as cluster tasks (``audiodsm measure``).
+
+    Parameters
+    ----------
+    profiles : sequence of (path, ChainProfile)
+    plan : BatteryPlan, optional, keyword-only
+    jobs : int, optional, keyword-only
+        Cores of the local cluster (default: all); ``min(jobs, profiles)`` worker processes,
+        each battery with ``jobs // workers`` threads. Ignored with ``scheduler``.
+    seed : int, keyword-only
+    scheduler : str or None, keyword-only
+        An existing Dask scheduler (``tcp://host:port``); None starts a local cluster.
+    progress, say : callable, optional, keyword-only
+        As for :func:`grade_batch`.
+
+    Returns
+    -------
+    list
+        Per profile, in the order given: its ``BatteryResult``, or a one-line text saying why
+        the battery failed (the other profiles are still measured).
+
+    Raises
+    ------
+    ClusterError
+        The scheduler cannot take the batch (before any battery runs).
+    """
+    from audiodsm.evaluate.cluster import run_tasks
+
+    entries = list(profiles)
+    jobs = jobs or os.cpu_count() or 1
+    workers = max(1, min(jobs, len(entries)))
+    threads = 1 if scheduler else max(1, jobs // workers)
+    out: list = [None] * len(entries)
+
+    def on_result(i, status, value):
+        out[i] = value if status == "ok" else f"battery failed: {value}"
+
+    def report(done, total, per_minute, alive):
+        if progress is not None:
+            progress(done / total, f"{done}/{total} batteries, {per_minute:.1f}/min, "
+                     f"{alive} workers")  # fmt: skip
+
+    calls = [(prof, threads, seed, plan) for _, prof in entries]
+    run_tasks(
+        _measure_task,
+        calls,
+        workers=workers,
+        scheduler=scheduler,
+        on_result=on_result,
+        progress=report,
+        say=say,
+    )
+    return out
