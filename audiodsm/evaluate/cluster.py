@@ -13,6 +13,10 @@ This is the only module that imports Dask (``dask.distributed``). Batch work (``
 * Each worker loads the compiled loops once, when it joins (:class:`LoopWarmUp`, a worker
   plugin): it imports the battery and runs a short loop, so the on-disk numba cache is read
   before the first task instead of inside it.
+* Workers of the local cluster inherit this process's environment unchanged (Dask would set
+  the BLAS and OpenMP thread counts to 1, which changes numpy's results in the last bits), so
+  a batch on the local cluster equals a serial one bit for bit. Remote workers give the same
+  bits when they run with the same libraries and thread settings.
 * Tasks carry the callable (by reference), the profile and the plan; never signal arrays.
   Results come back to the caller, which owns the cache. A task never raises on the worker:
   an exception becomes a failure naming its type and message, so the rest of the batch goes
@@ -183,7 +187,14 @@ def _open(scheduler: str | None, workers: int):
             reason = " ".join(str(exc).split())[:160] or type(exc).__name__
             raise ClusterError(f"scheduler {scheduler} cannot be reached ({reason})") from None
         return None, client
-    with dask.config.set({"distributed.scheduler.allowed-failures": ALLOWED_FAILURES}):
+    # Dask starts workers with OMP/MKL/OPENBLAS_NUM_THREADS=1; numpy's results then differ
+    # from this process's in the last bits, so the workers inherit this process's environment
+    # as it is, and a batch on the local cluster equals a serial one bit for bit.
+    settings = {
+        "distributed.scheduler.allowed-failures": ALLOWED_FAILURES,
+        "distributed.nanny.pre-spawn-environ": {},
+    }
+    with dask.config.set(settings):
         cluster = LocalCluster(
             n_workers=workers,
             threads_per_worker=1,
