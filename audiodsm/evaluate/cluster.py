@@ -37,6 +37,7 @@ import hashlib
 import logging
 import os
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -194,13 +195,15 @@ def _open(scheduler: str | None, workers: int):
         "distributed.scheduler.allowed-failures": ALLOWED_FAILURES,
         "distributed.nanny.pre-spawn-environ": {},
     }
-    with dask.config.set(settings):
+    with dask.config.set(settings), warnings.catch_warnings():
+        # "Port 8787 is already in use": Dask then picks a free port, which we print
+        warnings.filterwarnings("ignore", message="Port .* is already in use")
         cluster = LocalCluster(
             n_workers=workers,
             threads_per_worker=1,
             processes=True,
             host="127.0.0.1",
-            dashboard_address="127.0.0.1:0" if _has_dashboard_library() else None,
+            dashboard_address="127.0.0.1:8787" if _has_dashboard_library() else None,
             silence_logs=logging.CRITICAL,
             timeout=_LOCAL_START_TIMEOUT_S,
         )
