@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import hashlib
 import logging
-import os
 import time
 import warnings
 from collections.abc import Callable, Sequence
@@ -49,7 +48,6 @@ from distributed.diagnostics.plugin import WorkerPlugin
 from audiodsm.errors import ClusterError
 
 __all__ = [
-    "SCHEDULER_VARIABLE",
     "ALLOWED_FAILURES",
     "ClusterInfo",
     "LoopWarmUp",
@@ -59,8 +57,6 @@ __all__ = [
     "run_tasks",
 ]
 
-#: Environment variable naming an existing scheduler (``tcp://host:port``).
-SCHEDULER_VARIABLE = "AUDIODSM_SCHEDULER"
 #: Times a task may lose its worker before it fails, on a local cluster (Dask's default is
 #: 3; each loss costs a worker restart with its warm-up).
 ALLOWED_FAILURES = 2
@@ -352,8 +348,3 @@ def _dashboard(client) -> str:
         return ""
     services = client.scheduler_info().get("services", {})
     return link if "dashboard" in services else ""
-
-
-def default_scheduler() -> str | None:
-    """The scheduler named by ``$AUDIODSM_SCHEDULER``, or None."""
-    return os.environ.get(SCHEDULER_VARIABLE) or None
