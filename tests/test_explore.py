@@ -129,3 +129,19 @@ def test_explore_prunes_grades_writes_the_front_and_resumes(tmp_path, monkeypatc
     again = explore_space(space, spec, battery=quick_battery, jobs=1, cache_dir=tmp_path / "c")
     assert len(list(calls.iterdir())) == ran  # every battery came from the cache
     assert again.front == out.front
+
+
+def test_cli_writes_the_front_and_the_report(tmp_path, monkeypatch):
+    monkeypatch.setattr("audiodsm.evaluate.grade._default_battery", lambda: quick_battery)
+    path = write_space(tmp_path, "[vary]\norder = [3, 4, 5]\nlevels = [2]\n")
+    sheet = tmp_path / "s.toml"
+    sheet.write_text(SHEET)
+    out = tmp_path / "o"
+    r = CliRunner().invoke(
+        main,
+        ["explore", str(path), str(sheet), "--out", str(out), "--jobs", "1",
+         "--cache", str(tmp_path / "c"), "--no-progress"],
+    )  # fmt: skip
+    assert r.exit_code == 0, r.output
+    assert "3 candidates" in r.output and "on the front" in r.output
+    assert (out / "exploration.html").is_file() and list((out / "front").glob("*.toml"))
