@@ -134,7 +134,8 @@ def test_a_worker_lost_mid_batch_is_retried_with_the_same_grades(tmp_path, calls
     same_results(serial, out)
 
 
-def test_unreachable_scheduler_is_one_line_exit_2(tmp_path):
+def test_unreachable_scheduler_is_one_line_exit_2(tmp_path, monkeypatch):
+    monkeypatch.setattr("audiodsm.evaluate.cluster._CONNECT_TIMEOUT_S", 2.0)  # Dask retries
     folder = write_profiles(tmp_path / "p", SIX[:1])
     with pytest.raises(ClusterError, match="cannot be reached"):
         grade_batch(
