@@ -480,6 +480,27 @@ def test_a_read_only_output_folder_is_a_storage_error(setup):
     assert final_files(out) == []
 
 
+def test_a_full_disk_while_rendering_is_a_storage_error(setup):
+    # a real full disk: a 64 KiB file system for the output folder; the 24-bit listening file
+    # of the 1.25 s stereo input needs 360 kB
+    tmp, prof, wav, _ = setup
+    out = tmp / "small"
+    out.mkdir()
+    q = shlex.quote(str(out))
+    res = in_mount_namespace(
+        f"mount -t tmpfs -o size=64k tmpfs {q} && "
+        + render_command(str(prof), str(wav), "--out-dir", str(out), "--no-progress")
+        + f" ; code=$? ; ls -A {q} ; exit $code",
+        tmp,
+    )
+    assert res.returncode == 3, res.stderr
+    lines = res.stderr.strip().splitlines()
+    listen = out / "take one.test-dac.listen.wav"
+    assert lines == [f"audiodsm: error: {listen}: cannot write ({os.strerror(28)})"]  # ENOSPC
+    assert "Traceback" not in res.stderr
+    assert res.stdout == ""  # the small file system was left empty: no temporary file either
+
+
 @pytest.mark.skipif(os.geteuid() == 0, reason="root can write into a folder without write bits")
 def test_unwritable_output_folder(setup):
     tmp, prof, wav, _ = setup

@@ -471,6 +471,15 @@ def distinct_inputs(inputs) -> tuple[list, list]:
 _NOT_A_FOLDER_ERRNOS = {errno.ENOTDIR, errno.EEXIST, errno.ELOOP}
 
 
+def _why_not_writable(folder) -> int:
+    """The errno of a folder ``os.access`` says cannot be written: read-only file system or not."""
+    try:
+        read_only = bool(os.statvfs(folder).f_flag & os.ST_RDONLY)
+    except (OSError, AttributeError):  # no statvfs (Windows)
+        read_only = False
+    return errno.EROFS if read_only else errno.EACCES
+
+
 def prepare_output_folder(out_dir, inputs, *, made=None) -> Path:
     """Create the output folder of a render and check that the inputs can go into it.
 
@@ -503,7 +512,7 @@ def prepare_output_folder(out_dir, inputs, *, made=None) -> Path:
         The folder cannot be created or written: read-only, no permission, disk full.
     """
     from audiodsm.errors import StorageError
-    from audiodsm.io import create_temp_file, remove_stale_temp_files, same_file
+    from audiodsm.io import remove_stale_temp_files, same_file
 
     out = Path(out_dir)
     distinct, _ = distinct_inputs(inputs)
@@ -536,13 +545,8 @@ def prepare_output_folder(out_dir, inputs, *, made=None) -> Path:
             raise OutputError(
                 f"{name}: the output folder holds this input; choose another --out-dir"
             )
-    # try a write rather than ask os.access: a read-only mount refuses even root
-    try:
-        fd, tmp = create_temp_file(out / "write-check")
-    except StorageError as exc:
-        raise StorageError(out, exc.cause) from None
-    os.close(fd)
-    tmp.unlink(missing_ok=True)
+    if not os.access(out, os.W_OK | os.X_OK):  # a read-only mount refuses even root here
+        raise StorageError(out, os.strerror(_why_not_writable(out)))
     remove_stale_temp_files(out)
     return out
 
