@@ -122,6 +122,14 @@ def render(
     exit_code = EXIT_OK
     try:
         out = prepare_output_folder(out_dir, inputs, made=made)
+        from audiodsm.stages.loop_cache import compiled_loops_missing
+
+        if compiled_loops_missing():
+            click.echo(
+                "audiodsm: compiling loops, once (the first run of a fresh checkout takes about "
+                "15 s longer; later runs load them)",
+                err=True,
+            )
         for _name, outcome in render_files(
             inputs,
             profile,
@@ -159,14 +167,6 @@ def _cautions(gain_db) -> None:
     from audiodsm.evaluate.render import HEARING_CAUTION
 
     click.echo(HEARING_CAUTION, err=True)
-    from audiodsm.stages.loop_cache import compiled_loops_missing
-
-    if compiled_loops_missing():
-        click.echo(
-            "audiodsm: compiling loops, once (the first run of a fresh checkout takes about "
-            "15 s longer; later runs load them)",
-            err=True,
-        )
     if gain_db is not None:
         click.echo(
             f"Caution: error-only files are amplified by {gain_db:g} dB; a loud passage in them "
