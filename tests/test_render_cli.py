@@ -517,7 +517,7 @@ def test_unwritable_output_folder(setup):
 
 
 def test_long_profile_and_input_names_are_shortened_with_a_digest(setup):
-    from audiodsm.io import MAX_OUTPUT_NAME_BYTES
+    from audiodsm.io_files import MAX_OUTPUT_NAME_BYTES
 
     tmp, prof, wav, x = setup
     long_name = "p" * 300

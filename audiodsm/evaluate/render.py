@@ -10,13 +10,13 @@ For each input file :func:`render_file` writes, into the output folder:
   (PDM) or ``<stem>.<profile>.codes.txt`` (NRZ / PWM level codes, one word per line);
 - ``<stem>.<profile>.summary.json``: the per-file summary (channels numbered from 1).
 
-The outputs of one input are one set (:class:`audiodsm.io.OutputSet`): each file is written
-under a temporary name, and all of them are renamed together once the summary is written, so a
-failure or Ctrl-C at any point (a full disk while writing the summary included) leaves nothing
-under a final name. Existing outputs, dangling symlinks among them, are kept unless asked to
-replace them. Names too long for the file system are shortened with a digest
-(:func:`audiodsm.io.fit_file_name`). :func:`render_files` renders several inputs into one folder
-(``audiodsm render``), each distinct file once (:func:`distinct_inputs`);
+The outputs of one input are one set (:class:`audiodsm.io_files.OutputSet`): each file is
+written under a temporary name, and all of them are renamed together once the summary is
+written, so a failure or Ctrl-C at any point (a full disk while writing the summary included)
+leaves nothing under a final name. Existing outputs, dangling symlinks among them, are kept
+unless asked to replace them. Names too long for the file system are shortened with a digest
+(:func:`audiodsm.io_files.fit_file_name`). :func:`render_files` renders several inputs into one
+folder (``audiodsm render``), each distinct file once (:func:`distinct_inputs`);
 :func:`prepare_output_folder` checks that folder first, comparing folders by device and inode.
 """
 
@@ -92,10 +92,10 @@ def output_names(input_path, profile, out_dir, *, error_gain_db=None, stream=Fal
     The names share the base ``<input stem>.<profile name>``. A base too long for every name
     built on it to fit the file system (with room for the temporary name wrapped around it
     while it is written) keeps its start and gets ``-`` and 16 hex digits of the SHA-256 of
-    the whole base (:func:`audiodsm.io.fit_file_name`), so long names that differ anywhere
+    the whole base (:func:`audiodsm.io_files.fit_file_name`), so long names that differ anywhere
     stay apart and the same input and profile always get the same names.
     """
-    from audiodsm.io import MAX_OUTPUT_NAME_BYTES, fit_file_name
+    from audiodsm.io_files import MAX_OUTPUT_NAME_BYTES, fit_file_name
 
     base = f"{Path(input_path).stem}.{_safe(profile.name)}"
     base = fit_file_name(base, max_bytes=MAX_OUTPUT_NAME_BYTES - _ROLE_SUFFIX_BYTES)
@@ -168,15 +168,10 @@ def render_file(
         file and the cause. Nothing of this input is left under a final name, so a rerun
         starts clean.
     """
-    from audiodsm.io import (
-        OutputSet,
-        audio_info,
-        iter_audio_blocks,
-        open_audio_writer,
-        refuse_dangling_symlink,
-        same_file,
-    )
-    from audiodsm.profile import AUDIO_RATES_HZ, profile_digest
+    from audiodsm.io import audio_info, iter_audio_blocks, open_audio_writer
+    from audiodsm.io_files import OutputSet, refuse_dangling_symlink, same_file
+    from audiodsm.profile import AUDIO_RATES_HZ
+    from audiodsm.profile_text import profile_digest
     from audiodsm.stages.chain import Chain
     from audiodsm.stages.output_stage import CodeTextWriter, PackedBitsWriter
 
@@ -434,7 +429,7 @@ def distinct_inputs(inputs) -> tuple[list, list]:
     The same file given twice, by the same path or another (``./a.wav`` and ``a.wav``, a
     symlink, a bind mount), is rendered once: a second render would only find the first one's
     outputs in its way. Files are compared by device and inode
-    (:func:`audiodsm.io.same_file`); paths that do not exist, by their absolute text.
+    (:func:`audiodsm.io_files.same_file`); paths that do not exist, by their absolute text.
 
     Parameters
     ----------
@@ -447,7 +442,7 @@ def distinct_inputs(inputs) -> tuple[list, list]:
     repeats : list of (input, earlier input)
         Each input left out, with the earlier mention of the same file.
     """
-    from audiodsm.io import same_file
+    from audiodsm.io_files import same_file
 
     distinct, repeats = [], []
     for name in inputs:
@@ -484,7 +479,7 @@ def prepare_output_folder(out_dir, inputs, *, made=None) -> Path:
     """Create the output folder of a render and check that the inputs can go into it.
 
     Temporary files that a killed earlier run left in the folder (their writer no longer
-    runs) are removed (:func:`audiodsm.io.remove_stale_temp_files`).
+    runs) are removed (:func:`audiodsm.io_files.remove_stale_temp_files`).
 
     Parameters
     ----------
@@ -512,7 +507,7 @@ def prepare_output_folder(out_dir, inputs, *, made=None) -> Path:
         The folder cannot be created or written: read-only, no permission, disk full.
     """
     from audiodsm.errors import StorageError
-    from audiodsm.io import remove_stale_temp_files, same_file
+    from audiodsm.io_files import remove_stale_temp_files, same_file
 
     out = Path(out_dir)
     distinct, _ = distinct_inputs(inputs)

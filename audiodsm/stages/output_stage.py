@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from audiodsm.errors import AudioFileError, OutputError, ParameterError, StorageError
-from audiodsm.io import create_temp_file
+from audiodsm.io_files import create_temp_file
 from audiodsm.stages import _kernels
 
 __all__ = [
@@ -681,7 +681,7 @@ _LAYOUT_VERSION = 1
 class _AtomicFile:
     """A file written under a temporary name in the target folder, renamed on commit.
 
-    With an ``output_set`` (:class:`audiodsm.io.OutputSet`) the commit hands the finished
+    With an ``output_set`` (:class:`audiodsm.io_files.OutputSet`) the commit hands the finished
     temporary file to the set, which renames it together with the set's other files.
     """
 
@@ -752,7 +752,7 @@ class PackedBitsWriter:
         Channel count.
     overwrite : bool
         Replace existing files instead of refusing.
-    output_set : audiodsm.io.OutputSet, optional
+    output_set : audiodsm.io_files.OutputSet, optional
         Leave both finished files for the set to rename together with its other outputs.
     """
 
@@ -925,7 +925,7 @@ class CodeTextWriter:
         Channel count.
     overwrite : bool
         Replace an existing file instead of refusing.
-    output_set : audiodsm.io.OutputSet, optional
+    output_set : audiodsm.io_files.OutputSet, optional
         Leave the finished file for the set to rename together with its other outputs.
     """
 
