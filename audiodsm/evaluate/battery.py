@@ -32,6 +32,10 @@ The tests
 ``frequency_response``
     A Schroeder-phase multitone on the 1/3-octave centres from 20 Hz to 20 kHz plus 997 Hz:
     the response of the whole chain relative to 997 Hz and its peak-to-peak ripple.
+``thd_n_vs_frequency``
+    Tones on the 1/3-octave centres from 20 Hz to 20 kHz (997 Hz in place of 1 kHz) at
+    -1 and -20 dBFS: THD+N against frequency (a PWM stage's distortion grows with the tone
+    frequency, which 997 Hz alone understates) and its worst value over frequency.
 ``images``
     An in-band tone at ``image_tone_hz``; its image at ``rate - image_tone_hz`` is read on the
     reconstructed output at the modulator rate (AES17 practice for DAC images).
@@ -83,6 +87,7 @@ TEST_NAMES = (
     "dc_sweep",
     "stability",
     "frequency_response",
+    "thd_n_vs_frequency",
     "images",
     "intermodulation",
 )
@@ -148,6 +153,16 @@ METRIC_UNITS = {
         "frequency_response",
         "dB",
         "peak-to-peak response of the whole chain, 20 Hz .. 20 kHz",
+    ),
+    "thd_n_db_worst_over_frequency_at_minus1_dbfs": (
+        "thd_n_vs_frequency",
+        "dB",
+        "highest THD+N of a -1 dBFS tone over the 1/3-octave centres, 20 Hz .. 20 kHz",
+    ),
+    "thd_n_db_worst_over_frequency_at_minus20_dbfs": (
+        "thd_n_vs_frequency",
+        "dB",
+        "highest THD+N of a -20 dBFS tone over the 1/3-octave centres, 20 Hz .. 20 kHz",
     ),
     "image_rejection_db": ("images", "dB", "in-band tone over its image at rate - f"),
     "image_rejection_noise_limited": (
@@ -230,6 +245,10 @@ class BatteryPlan:
         The frequency-response multitone.
     response_level_dbfs : float
         Peak level of the multitone.
+    frequency_sweep_levels_dbfs : tuple of float
+        Tone levels of the THD+N-against-frequency sweep; -1 and -20 dBFS give its metrics.
+    frequency_sweep_s : float
+        Each tone of that sweep (short: the 1/3-octave centres make 31 tones per level).
     image_tone_hz : float
         In-band tone of the image test.
     image_s : float
@@ -264,6 +283,8 @@ class BatteryPlan:
     dc_s: float = 0.4
     response_s: float = 0.5
     response_level_dbfs: float = -6.0
+    frequency_sweep_levels_dbfs: tuple = (-1.0, -20.0)
+    frequency_sweep_s: float = 0.2
     image_tone_hz: float = 17000.0
     image_s: float = 0.5
     composite_level_dbfs: float = -6.0
@@ -286,6 +307,7 @@ class BatteryPlan:
             dc_offsets=4,
             dc_s=0.4,
             response_s=0.4,
+            frequency_sweep_s=0.15,
             image_s=0.3,
             imd_s=0.4,
             stability_samples=16384,
@@ -307,7 +329,7 @@ class BatteryPlan:
                     f"at least {_MIN_SEARCH_S} s (the idle-tone search needs 12 Hz bins "
                     "averaged 8 times)",
                 )
-        for name in ("image_s", "imd_s"):
+        for name in ("image_s", "imd_s", "frequency_sweep_s"):
             v = getattr(self, name)
             if not (math.isfinite(v) and 0.05 <= v <= 60.0):
                 raise ParameterError(f"plan.{name}", v, "a duration from 0.05 to 60 s")
@@ -316,6 +338,14 @@ class BatteryPlan:
         ):
             raise ParameterError(
                 "plan.sweep_levels_dbfs", self.sweep_levels_dbfs, "levels from -160 to 0 dBFS"
+            )
+        if not self.frequency_sweep_levels_dbfs or any(
+            not (-160.0 <= float(v) <= 0.0) for v in self.frequency_sweep_levels_dbfs
+        ):
+            raise ParameterError(
+                "plan.frequency_sweep_levels_dbfs",
+                self.frequency_sweep_levels_dbfs,
+                "levels from -160 to 0 dBFS",
             )
         lo, hi = self.dc_range
         if not (0.0 < lo <= hi < 1.0) or not (0 <= self.dc_offsets <= 400):
@@ -845,6 +875,35 @@ def _test_response(ctx, profile):
     }
 
 
+def _test_frequency_sweep(ctx, profile, tones):
+    """THD+N of single tones ``tones`` [(level_dbfs, frequency_hz), ...], one channel each."""
+    from audiodsm.signals import sine
+
+    plan, rate = ctx.plan, ctx.rate
+    seconds = plan.settle_s + plan.frequency_sweep_s + _TAIL_S
+    x = np.stack([sine(f, lv, rate_hz=rate, duration_s=seconds) for lv, f in tones], axis=1)
+    res = _chain_run(profile, x, rate=rate)
+    settle = int(round(plan.settle_s * rate))
+    points = []
+    for c, (lv, f) in enumerate(tones):
+        y = res.listening[:, c]
+        r = _meter(y, rate, f, ("unweighted",), plan.settle_s)
+        faults = _run_faults(res.stats, c, y[settle:])
+        tone = r.fundamental_dbfs
+        if tone is None or not math.isfinite(tone) or abs(tone - lv) > _LOST_DB:
+            faults.append(f"{f:g} Hz tone at {lv:g} dBFS lost: " + _tone_came_out(tone))
+        # the ratio is taken to the fitted tone, not to the band-limited total the meter's
+        # thd_n_db uses: the band's 20 Hz edge takes 3 dB off a 20 Hz tone (AES17 band
+        # filter), which would read as 3 dB more THD+N at the bottom of the sweep
+        ok = tone is not None and math.isfinite(tone)
+        points.append(
+            {"level_dbfs": lv, "frequency_hz": f, "reason": "; ".join(faults),
+             "thd_n_db": r.noise_dbfs["unweighted"] - tone if ok else None}
+        )  # fmt: skip
+    stats = [(res.stats, c, 10 ** (lv / 20)) for c, (lv, _) in enumerate(tones)]
+    return {"frequency_sweep": points, "stats": stats}
+
+
 def _test_images(ctx, profile):
     from audiodsm.signals import sine
 
@@ -1045,6 +1104,14 @@ def run_battery(
         runs.append(("DC offsets", _test_dc, (part,)))
     if "frequency_response" in tests:
         runs.append(("frequency response", _test_response, ()))
+    if "thd_n_vs_frequency" in tests:
+        tones = [
+            (float(lv), f)
+            for lv in sorted({float(v) for v in plan.frequency_sweep_levels_dbfs}, reverse=True)
+            for f in _response_frequencies()
+        ]
+        for part in _chunks(tones, 8):
+            runs.append(("THD+N vs frequency", _test_frequency_sweep, (part,)))
     if "images" in tests:
         runs.append(("images", _test_images, ()))
     if "intermodulation" in tests:
@@ -1189,7 +1256,7 @@ def _chain_noise_floor(linear, metrics, invalid):
 def _assemble(results, tests, plan, profile):
     """Merge the runs' partial results into metrics, curves, notes and invalid readings."""
     metrics, curves, notes, invalid = {}, {}, [], {}
-    sweep, overload, dc, lines = [], [], [], []
+    sweep, overload, dc, lines, fsweep = [], [], [], [], []
     stats = []
     msa = None
     stab = None
@@ -1205,6 +1272,7 @@ def _assemble(results, tests, plan, profile):
         sweep.extend(part.get("sweep", ()))
         overload.extend(part.get("overload", ()))
         dc.extend(part.get("dc", ()))
+        fsweep.extend(part.get("frequency_sweep", ()))
         stats.extend(part.get("stats", ()))
         if "silence_lines" in part:
             lines.append(("silence", 0.0, part["silence_lines"], part.get("silence_faults", "")))
@@ -1334,6 +1402,9 @@ def _assemble(results, tests, plan, profile):
             for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
         }
 
+    if fsweep:
+        _assemble_frequency_sweep(fsweep, metrics, curves, notes, invalid, plan)
+
     if dc:
         dc.sort(key=lambda d: d[0])
         for off, found, faults in dc:
@@ -1411,6 +1482,41 @@ def _assemble(results, tests, plan, profile):
     ordered = {k: plain_scalar(metrics[k], finite_only=False) for k in METRIC_UNITS if k in metrics}
     invalid = {k: invalid[k] for k in ordered if k in invalid}
     return ordered, curves, notes, invalid
+
+
+def _assemble_frequency_sweep(points, metrics, curves, notes, invalid, plan):
+    """THD+N against frequency: the curve (levels x frequencies) and the worst per level."""
+    levels = sorted({p["level_dbfs"] for p in points}, reverse=True)
+    freqs = sorted({p["frequency_hz"] for p in points})
+    grid = np.full((len(levels), len(freqs)), np.nan)
+    reasons = np.full((len(levels), len(freqs)), "", dtype=object)
+    for p in points:
+        i, j = levels.index(p["level_dbfs"]), freqs.index(p["frequency_hz"])
+        reasons[i, j] = p["reason"]
+        v = p["thd_n_db"]
+        if not p["reason"] and v is not None and math.isfinite(v):
+            grid[i, j] = v  # a curve never carries a reading the battery calls invalid
+    curves["thd_n_vs_frequency"] = {
+        "frequency_hz": np.array(freqs),
+        "level_dbfs": np.array(levels),
+        "thd_n_db": grid,
+        "invalid_reason": reasons.astype(str),
+    }
+    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
+        if lv not in levels:
+            continue
+        i = levels.index(lv)
+        metric = f"thd_n_db_worst_over_frequency_at_{name}_dbfs"
+        bad = [(freqs[j], reasons[i, j]) for j in range(len(freqs)) if reasons[i, j]]
+        metrics[metric] = float(np.nanmax(grid[i])) if np.isfinite(grid[i]).any() else None
+        if bad:
+            invalid[metric] = f"{len(bad)} of {len(freqs)} tones invalid (first: {bad[0][1]})"
+    notes.append(
+        f"THD+N vs frequency: {len(freqs)} tones (1/3-octave centres, 20 Hz..20 kHz) at "
+        + ", ".join(f"{v:g}" for v in levels)
+        + f" dBFS, {plan.frequency_sweep_s:g} s each after {plan.settle_s:g} s settling, "
+        "fundamental removed by a 3-parameter fit, 20 Hz..20 kHz"
+    )
 
 
 #: Readings that describe the failure itself and stay valid when the loop has no stable
