@@ -529,3 +529,36 @@ def test_thd_n_against_frequency_of_a_transparent_chain_is_flat():
     assert m["thd_n_db_worst_over_frequency_at_minus1_dbfs"] == pytest.approx(grid[0].max())
     assert m["thd_n_db_worst_over_frequency_at_minus20_dbfs"] == pytest.approx(grid[1].max())
     assert res.invalid == {}
+
+
+def test_predicted_noise_density_matches_the_simulated_one():
+    # The linear model (Schreier & Temes 2005, ch. 2): quantizer error of power Delta^2/12
+    # plus TPDF dither of power (A Delta)^2/6 (Lipshitz, Wannamaker & Vanderkooy 1992), both
+    # white over 0..fm/2 and shaped by |NTF|^2. A 17-level dithered loop's error is close to
+    # that model, so the density the battery predicts must equal the simulated density within
+    # 1 dB wherever the quantization noise dominates: above the audio band, here in
+    # 1/3-octave bands (power averaged over each band's bins) from 40 kHz to 0.9 fm/2.
+    prof = profile_from_dict(
+        {
+            "name": "nrz17-dithered",
+            "modulator": {"order": 4, "levels": 17, "out_of_band_gain": 2.5, "dither_lsb": 1.0},
+            "output": {"kind": "nrz"},
+            "reconstruction": {"kind": "none"},
+        }
+    )
+    res = run_battery(prof, tests=("dynamic_range", "stability"), plan=BatteryPlan.quick())
+    c = res.curves["spectrum"]
+    f = c["frequency_hz"]
+    sim = 10.0 ** (c["density_dbfs_per_hz"] / 10.0)
+    pred = 10.0 ** (c["predicted_density_dbfs_per_hz"] / 10.0)
+    edges = 40000.0 * 2.0 ** (np.arange(0, 40) / 3.0)
+    edges = edges[edges <= 0.9 * 64 * RATE / 2]
+    assert len(edges) > 15
+    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+        sel = (f >= lo) & (f < hi)
+        ratio_db = 10.0 * math.log10(sim[sel].mean() / pred[sel].mean())
+        assert abs(ratio_db) <= 1.0, (lo, ratio_db)
+    # the audio-band view has fine bins at the audio rate and the prediction stops at 20 kHz
+    a = res.curves["audio_spectrum"]
+    assert a["resolution_hz"][0] <= 12.0 and a["frequency_hz"][-1] == pytest.approx(RATE / 2)
+    assert np.isnan(a["predicted_density_dbfs_per_hz"][a["frequency_hz"] > 20000.0]).all()

@@ -201,6 +201,8 @@ _FLOORED_METRICS = (
 )
 #: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
 _SPECTRUM_RESOLUTION_HZ = 100.0
+#: Bin spacing wanted for the audio-band spectrum at the audio rate.
+_AUDIO_RESOLUTION_HZ = 6.0
 #: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
 _LINE_FLOOR_DBFS = -200.0
 #: A sweep tone more than this far from its level counts as lost (dead zone, limit cycle).
@@ -520,6 +522,49 @@ def _linear_noise_floor(chain):
     return out
 
 
+def _predicted_noise_density(chain):
+    """The output noise density the loop's linear model predicts, as a function of Hz.
+
+    Returns ``density(freq_hz)``: power per Hz (full-scale units squared per Hz, one-sided,
+    referred to the chain input like every reading). The quantizer error is white with power
+    ``step**2 / 12``, the TPDF dither (peak ``dither_lsb`` steps, the sum of two uniform
+    variables) adds ``(dither_lsb * step)**2 / 6``; both enter at the quantizer and leave
+    through ``|NTF|**2``, spread over 0 .. fm/2. The semi-digital FIR and the analog filter
+    shape it relative to their gain at 997 Hz (the calibration divides that out), and the
+    chain's input scale refers it to the input. Output-stage effects (PWM) are not modelled.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
+       ch. 2 (linear model: white error of power step^2/12 shaped by |NTF|^2).
+    .. [2] S. P. Lipshitz, R. A. Wannamaker and J. Vanderkooy, "Quantization and Dither: A
+       Theoretical Survey", J. Audio Eng. Soc. 40(5), 1992 (TPDF dither power).
+    """
+    mod = chain.modulator
+    fm = float(chain.modulator_rate_hz)
+    step = float(mod.step)
+    power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    ntf, fir, analog = chain.ntf, getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
+
+    def shaping(f):
+        g = np.ones_like(f)
+        if fir is not None:
+            g = g * np.abs(fir.response(f, frame_rate_hz=fm)) ** 2
+        if analog is not None:
+            g = g * np.abs(analog.response(f)) ** 2
+        return g
+
+    ref = float(shaping(np.array([_TEST_HZ]))[0])
+
+    def density(freq_hz):
+        f = np.asarray(freq_hz, dtype=float)
+        ntf_power = np.abs(ntf.response(f / fm)) ** 2
+        return power * ntf_power / (fm / 2.0) * shaping(f) / ref / scale**2
+
+    return density
+
+
 def _meter(x, rate, frequency_hz, weightings, settle_s):
     """Band-limited residual readings (fundamental removed when ``frequency_hz`` is set).
 
@@ -612,7 +657,7 @@ def _coherent_amplitudes(y, bins):
 
 
 def _test_dynamic_range(ctx, profile):
-    from audiodsm.measure.spectrum import averaged_spectrum
+    from audiodsm.measure.spectrum import averaged_spectrum, power_to_dbfs
 
     plan, rate = ctx.plan, ctx.rate
     x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
@@ -663,7 +708,18 @@ def _test_dynamic_range(ctx, profile):
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
         "level_dbfs": spec.bins_dbfs(),
+        "density_dbfs_per_hz": power_to_dbfs(spec.power / spec.resolution_hz),
         "resolution_hz": np.array([spec.resolution_hz]),
+    }
+    # the audio band in fine bins, from the listening output (the -60 dBFS tone stays in)
+    fine = averaged_spectrum(
+        y[int(round(plan.settle_s * rate)) :], rate_hz=rate, resolution_hz=_AUDIO_RESOLUTION_HZ
+    )
+    out["curve_audio_spectrum"] = {
+        "frequency_hz": fine.freq_hz,
+        "level_dbfs": fine.bins_dbfs(),
+        "density_dbfs_per_hz": power_to_dbfs(fine.power / fine.resolution_hz),
+        "resolution_hz": np.array([fine.resolution_hz]),
     }
     out["notes"] = notes
     return out
@@ -776,6 +832,7 @@ def _test_stability(ctx, profile):
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "noise_floor": _linear_noise_floor(chain),
+        "noise_density": _predicted_noise_density(chain),
         "notes": [
             f"stability: bisection on a sine near a fifth of the band edge, "
             f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
@@ -1293,6 +1350,15 @@ def _assemble(results, tests, plan, profile):
             curves["spectrum"]["ntf_gain_db"] = 20.0 * np.log10(
                 np.maximum(np.abs(ntf.response(f / fm)), 1e-300)
             )
+        density = stab.get("noise_density")
+        for name in ("spectrum", "audio_spectrum"):
+            if density is not None and name in curves:
+                with np.errstate(divide="ignore"):
+                    f = curves[name]["frequency_hz"]
+                    pred = 10.0 * np.log10(np.maximum(density(f), 1e-300) / 0.5)
+                    if name == "audio_spectrum":  # the listening decimator's edge: no model
+                        pred = np.where(f <= _BAND[1], pred, np.nan)
+                    curves[name]["predicted_density_dbfs_per_hz"] = pred
 
     onset = None
     if sweep or overload:
