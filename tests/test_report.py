@@ -49,7 +49,7 @@ def full_curves(order):
     levels = np.array([0.0, -1.0, -20.0, -40.0, -60.0, -80.0, -100.0])
     offs = np.geomspace(1e-6, 1e-2, 4)
     edges = np.tile(np.linspace(-1.0, 1.0, 17), (order, 1))
-    return {
+    curves = {
         "spectrum": {
             "frequency_hz": f,
             "level_dbfs": -150.0 + 20.0 * np.log10(1.0 + f / 2e4),
@@ -65,12 +65,37 @@ def full_curves(order):
             "line_dbfs": np.array([np.nan, -140.0, np.nan, -150.0, np.nan, -145.0, np.nan, -139]),
             "detection_limit_dbfs": np.full(8, -155.0),
         },
-        "state_histograms": {"edges": edges, "counts": np.ones((order, 16))},
+        "state_histograms": {
+            "edges": edges,
+            "counts": np.ones((order, 16)),
+            "state_bound": np.array([1e6]),
+        },
         "frequency_response": {
             "frequency_hz": np.array([20.0, 997.0, 20000.0]),
             "gain_db": np.array([-0.01, 0.0, -0.05]),
         },
     }
+    fa = np.linspace(0.0, 24000.0, 4097)
+    curves["spectrum"]["density_dbfs_per_hz"] = -180.0 + 20.0 * np.log10(1.0 + f / 2e4)
+    curves["spectrum"]["predicted_density_dbfs_per_hz"] = -181.0 + 20.0 * np.log10(1.0 + f / 2e4)
+    curves["spectrum"]["out_of_band_hz"] = np.array([20000.0, 500000.0])
+    curves["audio_spectrum"] = {
+        "frequency_hz": fa,
+        "density_dbfs_per_hz": np.full(fa.size, -170.0 - order),
+        "predicted_density_dbfs_per_hz": np.where(fa <= 20000.0, -171.0 - order, np.nan),
+        "resolution_hz": np.array([5.86]),
+    }
+    ft = np.array([20.0, 100.0, 997.0, 10000.0, 20000.0])
+    curves["thd_n_vs_frequency"] = {
+        "frequency_hz": ft,
+        "level_dbfs": np.array([-1.0, -20.0]),
+        "thd_n_db": np.array([-110.0 + 0.0 * ft - order, -95.0 + 0.0 * ft - order]),
+        "invalid_reason": np.array([[""] * 5, [""] * 5]),
+    }
+    curves["idle_tone_map"]["line_hz"] = np.array(
+        [np.nan, 1234.0, np.nan, 50.0, np.nan, 7000.0, np.nan, 15000.0]
+    )
+    return curves
 
 
 def report_battery(profile, *, jobs=None, progress=None, seed=0, **options):
@@ -112,8 +137,8 @@ def test_report_files_and_embedded_images(tmp_path, batch):
     assert sorted(p.name for p in out.iterdir()) == sorted(REPORT_FILES.values())  # no leftovers
     page = (out / "grades.html").read_text()
     images = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
-    # the overview chart, then five plots for each of the two profiles that ran
-    assert len(images) == 1 + 5 * 2
+    # the overview chart, the plots of every profile together, then each profile's plots
+    assert len(images) == 1 + len(plotting.OVERLAYS) + len(plotting.PLOTS) * 2
     for b64 in images:
         w, h = png_size(base64.b64decode(b64, validate=True))
         assert w >= 300 and h >= 150
@@ -213,11 +238,11 @@ def test_plots_draw_on_a_given_axes():
     from matplotlib.figure import Figure
 
     fig = Figure()
-    axes = fig.subplots(1, 5)
+    axes = fig.subplots(1, len(plotting.PLOTS))
     for ax, (_name, fn, _cap) in zip(axes, plotting.PLOTS, strict=True):
         assert fn(full_curves(3), ax=ax) is fig
     # the data drawn is the data given (plots compute nothing)
-    line = axes[4].get_lines()[0]
+    line = axes[-1].get_lines()[0]
     np.testing.assert_array_equal(line.get_xdata(), [20.0, 997.0, 20000.0])
     np.testing.assert_array_equal(line.get_ydata(), [-0.01, 0.0, -0.05])
 

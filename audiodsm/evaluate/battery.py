@@ -625,12 +625,15 @@ def _lines(x, rate, *, false_alarm, exclude_hz=()):
     band = (res.freq_hz >= _BAND[0]) & (res.freq_hz <= _BAND[1])
     t_lin = 10.0 ** (res.threshold_db / 10.0)
     floor = 10.0 ** (res.floor_dbfs[band] / 10.0)
-    limit = 10.0 * math.log10(float(np.max((t_lin - 1.0) * floor * enbw_bins)))
-    limit = max(limit, _LINE_FLOOR_DBFS)
+    reportable = (t_lin - 1.0) * floor * enbw_bins
+    limit = max(10.0 * math.log10(float(np.max(reportable))), _LINE_FLOOR_DBFS)
+    # the weakest line the detector reports where the floor is lowest: no found line is
+    # weaker than this (the plots draw it, so a found line never sits under its limit)
+    weakest = max(10.0 * math.log10(float(np.min(reportable))), _LINE_FLOOR_DBFS)
     if kept:
         best = max(kept, key=lambda t: t.level_dbfs)
-        return best.level_dbfs, best.frequency_hz, limit
-    return None, None, limit
+        return best.level_dbfs, best.frequency_hz, limit, weakest
+    return None, None, limit, weakest
 
 
 def _remove_fundamental(x, rate, settle):
@@ -710,6 +713,7 @@ def _test_dynamic_range(ctx, profile):
         "level_dbfs": spec.bins_dbfs(),
         "density_dbfs_per_hz": power_to_dbfs(spec.power / spec.resolution_hz),
         "resolution_hz": np.array([spec.resolution_hz]),
+        "out_of_band_hz": np.array([_BAND[1], upper]),
     }
     # the audio band in fine bins, from the listening output (the -60 dBFS tone stays in)
     fine = averaged_spectrum(
@@ -865,6 +869,7 @@ def _test_stability(ctx, profile):
             "counts": np.array(counts),
             "peak": np.max(np.abs(states), axis=0),
             "amplitude": np.array([limit.stable_amplitude]),
+            "state_bound": np.array([float(chain.modulator.state_bound)]),
         }
     return out
 
@@ -1480,6 +1485,7 @@ def _assemble(results, tests, plan, profile):
             "line_dbfs": np.array([np.nan if d[1][0] is None else d[1][0] for d in dc]),
             "line_hz": np.array([np.nan if d[1][1] is None else d[1][1] for d in dc]),
             "detection_limit_dbfs": np.array([d[1][2] for d in dc]),
+            "weakest_detectable_dbfs": np.array([d[1][3] for d in dc]),
         }
         notes.append(
             f"idle tones: {len(dc)} DC offsets from {plan.dc_range[0]:g} to "
