@@ -119,12 +119,14 @@ def _graded(graded, *metrics):
     return [g for g in graded or () if g.target.metric in metrics]
 
 
-def _verdict(g) -> str:
+def _verdict(g, level_dbfs=None) -> str:
     """A target's limit and verdict in words, e.g. ``"limit <= -90 dB: pass"``."""
     t = g.target
     sign = ">=" if t.bound == "at_least" else "<="
     unit = f" {t.unit}" if t.unit else ""
-    where = f" at {t.at_level_dbfs:g} dBFS" if t.at_level_dbfs is not None else ""
+    if level_dbfs is None:
+        level_dbfs = t.at_level_dbfs
+    where = f" at {level_dbfs:g} dBFS" if level_dbfs is not None else ""
     if g.passed:
         word = "pass"
     else:
@@ -349,9 +351,10 @@ def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level", graded=
         lv = fixed if fixed is not None else g.target.at_level_dbfs
         if lv is None:
             continue
-        ls = "--" if "_a" in g.target.metric else (0, (5, 3))
-        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0), ls=ls,
-                    label=("A-wtd " if "_a" in g.target.metric else "") + _verdict(g))  # fmt: skip
+        weighted = _THD_N_LEVEL_METRICS[g.target.metric][0] == "thd_n_db_a"
+        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0),
+                    ls="--" if weighted else (0, (5, 3)),
+                    label=("A-wtd " if weighted else "") + _verdict(g, lv))  # fmt: skip
         _verdict_marker(ax, g, lv, g.value)
     _style(ax, title, "tone level (dBFS)", "THD+N (dB)")
     ax.legend(fontsize=7, frameon=False)
@@ -540,7 +543,7 @@ def plot_frequency_response(curves, *, ax=None, title="Frequency response", grad
     for g in _graded(graded, "passband_ripple_db"):
         mid = 0.5 * (np.nanmax(gain) + np.nanmin(gain)) if np.isfinite(gain).any() else 0.0
         half = 0.5 * g.target.limit
-        _limit_line(ax, g, y=mid + half, label="ripple " + _verdict(g) + " (band of that width)")
+        _limit_line(ax, g, y=mid + half, label="band of the ripple " + _verdict(g))
         _limit_line(ax, g, y=mid - half, label=None)
     _style(ax, title, "frequency (Hz)", "gain re 997 Hz (dB)")
     ax.legend(fontsize=7, frameon=False)
@@ -619,7 +622,7 @@ def plot_overlay(kind, profiles, *, ax=None, title=None):
         ax.set_xlim(0.0, 24.0)
         ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
     _style(ax, title or default_title, xlabel, ylabel)
-    ax.legend(fontsize=7, frameon=False, loc="best")
+    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     return fig
 
 
