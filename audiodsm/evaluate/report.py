@@ -37,6 +37,7 @@ import numpy as np
 from audiodsm.errors import AudiodsmError, OutputError, ParameterError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.io_files import (
+    OutputSet,
     create_temp_file,
     create_temp_folder,
     remove_stale_temp_files,
@@ -52,6 +53,7 @@ __all__ = [
     "curve_to_csv",
     "overlay_to_csv",
     "figure_to_png",
+    "write_profile_plots",
     "render_html",
     "check_report_dir",
     "write_report",
@@ -602,3 +604,74 @@ def write_report(batch, directory, *, protect=(), title=None) -> dict:
     else:
         _write_new_report_folder(d, texts)
     return {kind: d / REPORT_FILES[kind] for kind in ("json", "csv", "html")}
+
+
+#: File formats :func:`write_profile_plots` writes each plot in.
+PLOT_FORMATS = ("png", "svg")
+
+
+def write_profile_plots(curves: dict, folder, *, stem: str) -> list:
+    """Write one profile's report plots into a folder, as PNG and SVG files.
+
+    The plots are those of a report section (:data:`audiodsm.evaluate.plotting.PLOTS`), drawn
+    without spec limits; a curve the battery did not give is skipped. Files are named
+    ``<stem>-<curve>.png`` and ``.svg`` (e.g. ``pdm5-thd_n_vs_frequency.svg``) and replace
+    files of the same name. They appear together or not at all
+    (:class:`audiodsm.io_files.OutputSet`).
+
+    Parameters
+    ----------
+    curves : dict
+        A battery's curves (:attr:`BatteryResult.curves`).
+    folder : path-like
+        Created (with parents) when missing.
+    stem : str
+        Start of every file name (a profile name; characters other than letters, digits,
+        ``-``, ``_`` and ``.`` become ``-``).
+
+    Returns
+    -------
+    list of Path
+        The files written, in plot order.
+
+    Raises
+    ------
+    OutputError
+        ``folder`` is a file.
+    StorageError
+        A file could not be written (nothing of this profile is left under a final name).
+    """
+    from audiodsm.evaluate import plotting
+
+    d = Path(folder)
+    if d.exists() and not d.is_dir():
+        raise OutputError(f"{d}: the plot folder is a file")
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StorageError(d, exc) from None
+    curves = report_curves(curves)
+    base = _file_stem(stem)
+    with OutputSet() as outputs:
+        for name, fn, _caption in plotting.PLOTS:
+            try:
+                fig = fn(curves)
+            except AudiodsmError:
+                continue
+            for fmt in PLOT_FORMATS:
+                target = d / f"{base}-{name}.{fmt}"
+                fd, tmp = create_temp_file(target)
+                try:
+                    with os.fdopen(fd, "wb") as fh:
+                        fig.savefig(fh, format=fmt, dpi=100)
+                        fh.flush()
+                        os.fsync(fh.fileno())
+                except OSError as exc:
+                    tmp.unlink(missing_ok=True)
+                    raise StorageError(target, exc) from None
+                except BaseException:
+                    tmp.unlink(missing_ok=True)
+                    raise
+                outputs.stage(tmp, target, overwrite=True)
+        written = outputs.commit()
+    return [Path(p) for p in written]
