@@ -3,12 +3,13 @@
 :func:`write_report` writes three files into a folder:
 
 ``grades.html``
-    An overview (profiles ranked by worst margin, a target-by-profile matrix of readings and
-    margins, a chart of the margins), then one section per profile: its readings against the
-    spec sheet, every battery metric, the battery's notes and five plots (output spectrum with
-    the designed NTF and the A-weighting curve, THD+N against level, idle-tone map, integrator
-    state histograms, frequency response). The plots are embedded as base64 PNG, so the page
-    is a single file that opens anywhere.
+    An overview (profiles ranked by worst margin, each in its plot colour, a target-by-profile
+    matrix of readings and margins, a chart of the margins), the plots of every profile
+    together (THD+N against level and frequency, audio-band noise density), then one section
+    per profile: its readings against the spec sheet, every battery metric, the battery's
+    notes and the plots of :data:`audiodsm.evaluate.plotting.PLOTS` with the spec limits
+    drawn (docs/report.md). The plots are embedded as base64 PNG and each one's data as a
+    base64 CSV download, so the page is a single file that opens anywhere.
 ``grades.json``
     :func:`batch_to_dict` of the batch.
 ``grades.csv``
