@@ -280,7 +280,7 @@ class BatteryPlan:
     response_s: float = 0.5
     response_level_dbfs: float = -6.0
     frequency_sweep_levels_dbfs: tuple = (-1.0, -20.0)
-    frequency_sweep_s: float = 0.2
+    frequency_sweep_s: float = 0.1
     image_tone_hz: float = 17000.0
     image_s: float = 0.5
     composite_level_dbfs: float = -6.0
@@ -303,7 +303,7 @@ class BatteryPlan:
             dc_offsets=4,
             dc_s=0.4,
             response_s=0.4,
-            frequency_sweep_s=0.15,
+            frequency_sweep_s=0.1,
             image_s=0.3,
             imd_s=0.4,
             stability_samples=16384,
