@@ -466,8 +466,9 @@ def plot_idle_tone_map(curves, *, ax=None, title="Idle tones against DC offset",
 def plot_state_histograms(curves, *, ax=None, title="Integrator states", graded=()):
     """Histograms of the loop's integrator states at the maximum stable amplitude.
 
-    The axis is fitted to the occupied bins; the guard's state bound (where the loop is
-    reset or clamped) is marked when it lies near the data, else named in the legend.
+    The axis is fitted to the central 99.9 % of each state's samples (rarer excursions are
+    named in the legend with their reach); the guard's state bound (where the loop is reset or
+    clamped) is marked when it lies near the data, else named in the legend.
 
     Parameters
     ----------
@@ -488,6 +489,7 @@ def plot_state_histograms(curves, *, ax=None, title="Integrator states", graded=
     edges = np.atleast_2d(np.asarray(c["edges"], dtype=float))
     counts = np.atleast_2d(np.asarray(c["counts"], dtype=float))
     lo, hi = np.inf, -np.inf
+    reach = 0.0
     for k in range(counts.shape[0]):
         total = counts[k].sum()
         share = counts[k] / total if total > 0 else counts[k]
@@ -495,9 +497,16 @@ def plot_state_histograms(curves, *, ax=None, title="Integrator states", graded=
         ax.stairs(share, edges[k], color=st["color"], ls=st["ls"], lw=1.1, label=f"state {k + 1}")
         used = np.flatnonzero(counts[k] > 0)
         if used.size:
-            lo, hi = min(lo, edges[k][used[0]]), max(hi, edges[k][used[-1] + 1])
+            reach = max(reach, abs(edges[k][used[0]]), abs(edges[k][used[-1] + 1]))
+            # the axis holds the central 99.9 % of each state's samples
+            cum = np.cumsum(counts[k]) / total
+            first = int(np.searchsorted(cum, 0.0005))
+            last = int(np.searchsorted(cum, 0.9995))
+            lo, hi = min(lo, edges[k][first]), max(hi, edges[k][min(last, cum.size - 1) + 1])
     if np.isfinite(lo):
         span = max(abs(lo), abs(hi)) * 1.1
+        if reach > span:
+            ax.plot([], [], " ", label=f"rare excursions to \u00b1{reach:.3g}, beyond the axis")
         limits = [g.target.limit for g in _graded(graded, "state_peak_max")]
         span = max([span, *(1.05 * v for v in limits)])
         ax.set_xlim(-span, span)
