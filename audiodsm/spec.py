@@ -56,6 +56,14 @@ METRIC_CATALOGUE = {
     "thd_n_db_a_at_minus1_dbfs": ("dB", "THD+N at -1 dBFS, A-weighted"),
     "thd_n_db_at_minus20_dbfs": ("dB", "THD+N at -20 dBFS"),
     "thd_n_db_a_at_minus20_dbfs": ("dB", "THD+N at -20 dBFS, A-weighted"),
+    "thd_n_db_worst_over_frequency_at_minus1_dbfs": (
+        "dB",
+        "worst THD+N over frequency (20 Hz to 20 kHz), -1 dBFS tones",
+    ),
+    "thd_n_db_worst_over_frequency_at_minus20_dbfs": (
+        "dB",
+        "worst THD+N over frequency (20 Hz to 20 kHz), -20 dBFS tones",
+    ),
     "idle_noise_dbfs": ("dBFS", "idle-channel noise, unweighted"),
     "idle_noise_dbfs_a": ("dBFS", "idle-channel noise, A-weighted"),
     "idle_noise_dbfs_ccir": ("dBFS", "idle-channel noise, CCIR-RMS weighted"),
