@@ -42,7 +42,7 @@ from typing import NamedTuple
 import numpy as np
 
 from audiodsm.errors import ParameterError, ProfileError
-from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile
+from audiodsm.profile import AUDIO_RATES_HZ, ChainProfile, ImpairmentSettings
 
 __all__ = [
     "KEEP_CHOICES",
@@ -332,6 +332,9 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
         return pdm
     if out.kind == "nrz":
         lsb = 2.0 * volts / (levels - 1)
+        imp = profile.impairments
+        if imp.element_mismatch > 0.0 or imp.element_selection != "thermometer":
+            return _unit_element_fn(profile, frame_rate_hz, lsb)
 
         def nrz(y, state):
             wf = out_mod.nrz_waveform(y, levels=levels, frame_rate_hz=frame_rate_hz, lsb_volts=lsb)
@@ -358,6 +361,28 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
         return wf, (stats.dropped_pulses, stats.stretched_pulses), state
 
     return pwm
+
+
+def _unit_element_fn(profile: ChainProfile, frame_rate_hz: float, lsb_volts: float):
+    """The NRZ stage built from unit elements with mismatch and an element-selection logic."""
+    from audiodsm.stages import output_stage as out_mod
+    from audiodsm.stages.elements import UnitElements
+
+    imp, levels = profile.impairments, profile.modulator.levels
+    elements = UnitElements(
+        levels, imp.element_selection, mismatch=imp.element_mismatch, seed=imp.part_seed
+    )
+
+    def nrz_elements(y, state):
+        codes = out_mod.level_codes(y, levels=levels)
+        centred, state = elements.process(codes, state)
+        ones = np.ones((y.size, 1), dtype=np.int64)
+        wf = out_mod.PulseWaveform._trusted(
+            (centred * lsb_volts).reshape(-1, 1), ones, 1, frame_rate_hz
+        )
+        return wf, (0, 0), state
+
+    return nrz_elements
 
 
 def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
@@ -553,6 +578,10 @@ class Chain:
             else:
                 plain = profile
             self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
+            # the calibration reads the ideal stage: the impairments' errors stay in the output
+            self._ideal_stage = _output_waveform_fn(
+                replace(plain, impairments=ImpairmentSettings()), float(self.modulator_rate_hz)
+            )
         with _settings_of(profile, "listening"):
             listen = profile.listening
             if listen.decimator == "counting":  # same interface as the half-band cascade
@@ -623,7 +652,7 @@ class Chain:
         # no dead time (see __init__): the error dead time makes depends on the load current,
         # it is the product's offset and distortion, and the measurements must show it.
         hold = 4
-        wf, _, _ = self._waveform(np.repeat(probe, hold), None)
+        wf, _, _ = self._ideal_stage(np.repeat(probe, hold), None)
         means = _mean_level(wf)[hold - 1 :: hold]
         # least-squares line through (level, mean output): slope = volts per full-scale unit.
         # With five or more levels the two end levels are left out: a minimum pulse width can
