@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from scipy.signal import welch
 
 from audiodsm.cli import main
 from audiodsm.errors import ProfileError
@@ -91,3 +92,45 @@ def test_chain_mismatch_shaping_lowers_in_band_error():
 def test_impairment_settings_default_is_ideal():
     assert not ImpairmentSettings().active
     assert ImpairmentSettings(jitter_rms_s=1e-12).active
+
+
+def _band_power(x, rate_hz, band_hz):
+    freqs, psd = welch(x, fs=rate_hz, nperseg=1 << 13)
+    return float(np.sum(psd[freqs <= band_hz]) * (freqs[1] - freqs[0]))
+
+
+def test_white_analog_noise_adds_its_band_power():
+    # white noise of one-sided density D adds D^2 B in a band B (definition of a spectral
+    # density); referred to full scale through the chain's calibrated gain (volts per unit)
+    rate, band, density_nv = 48000, 20000.0, 2000.0
+    profile = load_profile(NRZ17)
+    x = _tone(1 << 16, rate, level=0.1)
+    quiet = Chain.from_profile(profile, rate, 1)
+    noisy = Chain.from_profile(_with(profile, noise_density_nv=density_nv, part_seed=3), rate, 1)
+    skip = 4096  # past the filters' start-up
+    base = _band_power(quiet.process(x, keep=("error",))[0].error[skip:, 0], rate, band)
+    got = _band_power(noisy.process(x, keep=("error",))[0].error[skip:, 0], rate, band) - base
+    want = (density_nv * 1e-9) ** 2 * band / noisy.gain**2
+    assert abs(10 * np.log10(got / want)) <= 0.1, (got, want)
+
+
+def test_jitter_keeps_the_error_path_aligned_and_streams():
+    # the jitter stage runs a frame behind; the ideal path is delayed alike, so a negligible
+    # jitter leaves the error path as it was (a misaligned frame would show the signal's
+    # first difference, 0.5 * 2 pi 997 / 3.072e6 ~ 1e-3; the delay of the error itself by one
+    # modulator frame moves it by about 2 pi 20e3 / 3.072e6 of its ~1e-6 size)
+    profile = load_profile(NRZ17)
+    x = _tone(8000, 48000)
+    ref = Chain.from_profile(profile, 48000, 1).process(x, keep=("error",))[0].error
+    chain = Chain.from_profile(_with(profile, jitter_rms_s=1e-18), 48000, 1)
+    whole = chain.process(x, keep=("error", "listening"))[0]
+    assert np.max(np.abs(whole.error[2000:] - ref[2000:])) < 1e-6
+    first, st = chain.process(x[:3001], keep=("listening",))
+    second, _ = chain.process(x[3001:], st, keep=("listening",))
+    assert np.array_equal(np.concatenate([first.listening, second.listening]), whole.listening)
+
+
+def test_chain_refuses_jitter_beyond_half_a_frame():
+    profile = _with(load_profile(NRZ17), jitter_rms_s=5e-7)
+    with pytest.raises(ProfileError, match="half the output period"):
+        Chain.from_profile(profile, 48000, 1)

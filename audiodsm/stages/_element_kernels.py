@@ -142,3 +142,33 @@ def select_vector_shaped(codes, half, errors, past, out):
             past[0, i] += 1.0
             acc += errors[i]
         out[n] = (k - half) + (acc - 0.5 * total)
+
+
+@njit(cache=True, nogil=True)
+def jittered_frame_means(levels, shifts, held, out):
+    """Exact frame means of a one-segment-per-frame waveform whose edges are displaced.
+
+    The edge at the start of frame ``n`` (from ``levels[n-1]`` to ``levels[n]``) moves by
+    ``shifts[n]`` frames (positive: later; ``|shift| <= 1/2``). A late edge leaves the first
+    ``shift`` of frame ``n`` at the old level; an early one puts the last ``-shift`` of frame
+    ``n - 1`` at the new level. Either way the area moved is ``-(levels[n] - levels[n-1]) *
+    shift``: it changes the mean of frame ``n`` (late) or ``n - 1`` (early). Frame ``n - 1``
+    is finished only when edge ``n`` is known, so the output runs one frame behind:
+    ``out[n]`` is the mean of frame ``n - 1``. ``held`` = (level of the frame held back, its
+    mean so far); updated in place.
+    """
+    prev = held[0]
+    pending = held[1]
+    for n in range(levels.size):
+        level = levels[n]
+        moved = -(level - prev) * shifts[n]
+        mean = level
+        if shifts[n] > 0.0:
+            mean += moved
+        else:
+            pending += moved
+        out[n] = pending
+        pending = mean
+        prev = level
+    held[0] = prev
+    held[1] = pending

@@ -385,6 +385,31 @@ def _unit_element_fn(profile: ChainProfile, frame_rate_hz: float, lsb_volts: flo
     return nrz_elements
 
 
+def _edge_jitter_and_noise(profile: ChainProfile, frame_rate_hz: float):
+    """The [impairments] section's edge jitter (PDM, NRZ) and analog noise stages, or None."""
+    from audiodsm.stages.analog_noise import AnalogNoise
+    from audiodsm.stages.jitter import EdgeJitter
+
+    imp = profile.impairments
+    jitter = noise = None
+    if imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0:
+        jitter = EdgeJitter(
+            frame_rate_hz,
+            rms_s=imp.jitter_rms_s,
+            sine_peak_s=imp.jitter_sine_peak_s,
+            sine_hz=imp.jitter_sine_hz,
+            seed=imp.part_seed,
+        )
+    if imp.noise_density_nv > 0.0:
+        noise = AnalogNoise(
+            frame_rate_hz,
+            density_v=imp.noise_density_nv * 1e-9,
+            corner_hz=imp.noise_corner_hz,
+            seed=imp.part_seed,
+        )
+    return jitter, noise
+
+
 def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
     """PWM with load-current-dependent dead time and the LC filter, in one loop.
 
@@ -605,6 +630,10 @@ class Chain:
                 self._downsampler = Downsampler(self.downsampler_design)
         with _settings_of(profile, "output"):
             self._calibrate()  # runs the output stage on its levels
+        with _settings_of(profile, "impairments"):
+            self._jitter, self._noise = _edge_jitter_and_noise(profile, self.modulator_rate_hz)
+        if self._jitter is not None:  # an early edge changes the frame before it
+            self.latency_s += 1.0 / self.modulator_rate_hz
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
         n_threads = threads if threads is not None else min(self.channels, os.cpu_count() or 1)
         self._threads = max(1, int(n_threads))
@@ -771,6 +800,8 @@ class Chain:
         return merged, st
 
     def _channel_piece(self, x, st, keep):
+        from audiodsm.stages.output_stage import PulseWaveform
+
         clock = time.perf_counter
         t0 = clock()
         if self.input_scale != 1.0:
@@ -797,8 +828,16 @@ class Chain:
         else:
             switches = 0
         t3 = clock()
+        jit_s = st.jitter
+        if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
+            means, jit_s = self._jitter.process(wf.levels[:, 0], jit_s)
+            wf = PulseWaveform._trusted(means.reshape(-1, 1), wf.ticks, 1, wf.frame_rate_hz)
         if wf is not None:
             analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
+        noise_s = st.noise
+        if self._noise is not None:  # output-referred: added after the filter
+            noise, noise_s = self._noise.process(analog.size, noise_s)
+            analog = analog + noise
         t4 = clock()
         # the decimator is linear: calibrate after it, on 1/OSR as many samples
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
@@ -806,8 +845,17 @@ class Chain:
         t5 = clock()
         error = None
         new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
+        new = new._replace(jitter=jit_s, noise=noise_s)
         if "error" in keep:
             ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
+            if self._jitter is not None:  # the same one-frame delay as the jittered output
+                held = st.ideal_held if st.ideal_held is not None else 0.0
+                levels = ideal_wf.levels[:, 0]
+                new = new._replace(ideal_held=float(levels[-1]) if levels.size else held)
+                delayed = np.concatenate(([held], levels[:-1])).reshape(-1, 1)
+                ideal_wf = PulseWaveform._trusted(
+                    delayed, ideal_wf.ticks, 1, ideal_wf.frame_rate_hz
+                )
             ideal, ifir_s, ifilt_s = self._reconstruct(ideal_wf, st.ideal_fir, st.ideal_analog)
             ideal_raw, idown_s = self._downsampler.process(
                 ideal, st.ideal_downsampler, check_finite=False
@@ -1076,6 +1124,9 @@ class _ChannelState(NamedTuple):
     ideal_fir: object = None
     ideal_analog: object = None
     ideal_downsampler: object = None
+    jitter: object = None  # [impairments]: edge jitter, analog noise, the ideal path's delay
+    noise: object = None
+    ideal_held: float | None = None
 
 
 def auto_input_scale(ntf, levels: int) -> float:
