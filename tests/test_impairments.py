@@ -12,7 +12,8 @@ from scipy.signal import welch
 
 from audiodsm.cli import main
 from audiodsm.errors import ProfileError
-from audiodsm.profile import ImpairmentSettings, load_profile, parse_profile, profile_digest
+from audiodsm.profile import ImpairmentSettings, load_profile, parse_profile
+from audiodsm.profile_text import profile_digest
 from audiodsm.stages.chain import Chain
 
 ROOT = Path(__file__).resolve().parents[1]
