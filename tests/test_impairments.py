@@ -135,3 +135,37 @@ def test_chain_refuses_jitter_beyond_half_a_frame():
     profile = _with(load_profile(NRZ17), jitter_rms_s=5e-7)
     with pytest.raises(ProfileError, match="half the output period"):
         Chain.from_profile(profile, 48000, 1)
+
+
+@pytest.fixture(scope="module")
+def jitter_readings():
+    from audiodsm.evaluate.battery import BatteryPlan, run_battery
+
+    out = {}
+    for name in ("nrz17_64x", "pdm2_64x"):
+        profile = load_profile(ROOT / "profiles" / "dac_chip" / f"{name}.toml")
+        res = run_battery(profile, tests=("dynamic_range",), plan=BatteryPlan.quick())
+        out[name] = (profile, res.metrics["jitter_noise_dbfs_at_1ps"])
+    return out
+
+
+def test_battery_jitter_reading_predicts_the_jittered_chain(jitter_readings):
+    # the battery's reading (textbook estimate from the mean squared step, Schreier & Temes
+    # 2005) against the chain with 100 ps rms white jitter on its edges: the added in-band
+    # noise (error path, 20 Hz..20 kHz) is the reading + 20 log10(100), within 1 dB
+    profile, reading = jitter_readings["nrz17_64x"]
+    rate, sigma = 48000, 100e-12
+    x = _tone(1 << 16, rate, level=1e-3)
+    quiet = Chain.from_profile(profile, rate, 1)
+    jittery = Chain.from_profile(_with(profile, jitter_rms_s=sigma, part_seed=2), rate, 1)
+    skip = 4096
+    base = _band_power(quiet.process(x, keep=("error",))[0].error[skip:, 0], rate, 20000.0)
+    noisy = _band_power(jittery.process(x, keep=("error",))[0].error[skip:, 0], rate, 20000.0)
+    got_dbfs = 10 * np.log10((noisy - base) / 0.5)
+    assert abs(got_dbfs - (reading + 20 * np.log10(sigma / 1e-12))) <= 1.0, (got_dbfs, reading)
+
+
+def test_single_bit_stream_reads_more_jitter_sensitive(jitter_readings):
+    # a single-bit stream steps by 2 full scale, a 17-level loop by a few eighths: its jitter
+    # noise is lower by their mean squared step ratio (Schreier & Temes 2005)
+    assert jitter_readings["pdm2_64x"][1] > jitter_readings["nrz17_64x"][1] + 15.0
