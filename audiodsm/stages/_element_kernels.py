@@ -127,12 +127,24 @@ def select_vector_shaped(codes, half, errors, past, out):
     for i in range(n_el):
         total += errors[i]
     target = np.empty(n_el)
+    ranked = np.arange(n_el)
     for n in range(codes.size):
         k = codes[n]
         share = k / n_el
         for i in range(n_el):
             target[i] = share - 2.0 * past[0, i] + past[1, i]
-        ranked = np.argsort(-target, kind="mergesort")
+        # insertion sort by (target descending, index ascending), starting from the last
+        # sample's order: the targets move little from one sample to the next, so few moves
+        for j in range(1, n_el):
+            item = ranked[j]
+            t = target[item]
+            m = j - 1
+            while m >= 0 and (
+                target[ranked[m]] < t or (target[ranked[m]] == t and ranked[m] > item)
+            ):
+                ranked[m + 1] = ranked[m]
+                m -= 1
+            ranked[m + 1] = item
         acc = 0.0
         for i in range(n_el):
             past[1, i] = past[0, i]
@@ -145,11 +157,13 @@ def select_vector_shaped(codes, half, errors, past, out):
 
 
 @njit(cache=True, nogil=True)
-def jittered_frame_means(levels, shifts, held, out):
+def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out):
     """Exact frame means of a one-segment-per-frame waveform whose edges are displaced.
 
     The edge at the start of frame ``n`` (from ``levels[n-1]`` to ``levels[n]``) moves by
-    ``shifts[n]`` frames (positive: later; ``|shift| <= 1/2``). A late edge leaves the first
+    ``shifts[n] + sine_peak * sin(2 pi ((start + n) sine_ratio mod 1))`` frames (positive:
+    later), clipped to ``[-1/2, 1/2]``; ``start`` is the index of the block's first edge.
+    A late edge leaves the first
     ``shift`` of frame ``n`` at the old level; an early one puts the last ``-shift`` of frame
     ``n - 1`` at the new level. Either way the area moved is ``-(levels[n] - levels[n-1]) *
     shift``: it changes the mean of frame ``n`` (late) or ``n - 1`` (early). Frame ``n - 1``
@@ -161,9 +175,14 @@ def jittered_frame_means(levels, shifts, held, out):
     pending = held[1]
     for n in range(levels.size):
         level = levels[n]
-        moved = -(level - prev) * shifts[n]
+        shift = shifts[n]
+        if sine_peak != 0.0:
+            cycles = ((start + n) * sine_ratio) % 1.0  # exact enough: indices below 2**53
+            shift += sine_peak * np.sin(2.0 * np.pi * cycles)
+        shift = min(max(shift, -0.5), 0.5)
+        moved = -(level - prev) * shift
         mean = level
-        if shifts[n] > 0.0:
+        if shift > 0.0:
             mean += moved
         else:
             pending += moved

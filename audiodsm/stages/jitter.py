@@ -94,16 +94,21 @@ class EdgeJitter:
         return JitterState(frames=0, held=held, generator=gen.bit_generator.state)
 
     def shifts(self, start: int, count: int, generator) -> np.ndarray:
-        """Displacements of edges ``start .. start+count-1`` in frames (clipped to ±1/2)."""
-        shift = np.zeros(count)
-        if self.rms_s > 0.0:
-            shift += (self.rms_s * self.frame_rate_hz) * generator.standard_normal(count)
+        """Displacements of edges ``start .. start+count-1`` in frames (clipped to ±1/2).
+
+        What :meth:`process` applies (it adds the sine inside its compiled loop).
+        """
+        shift = self._random_shifts(count, generator)
         if self.sine_peak_s > 0.0:
-            ratio = self.sine_hz / self.frame_rate_hz
             n = np.arange(start, start + count, dtype=np.float64)
-            cycles = np.mod(n * ratio, 1.0)  # exact enough: n below 2**53
+            cycles = np.mod(n * (self.sine_hz / self.frame_rate_hz), 1.0)
             shift += (self.sine_peak_s * self.frame_rate_hz) * np.sin(2.0 * np.pi * cycles)
         return np.clip(shift, -0.5, 0.5)
+
+    def _random_shifts(self, count, generator):
+        if self.rms_s > 0.0:
+            return (self.rms_s * self.frame_rate_hz) * generator.standard_normal(count)
+        return np.zeros(count)
 
     def process(self, levels, state=None):
         """Frame means of the jittered output, one frame behind.
@@ -125,10 +130,12 @@ class EdgeJitter:
         levels = np.ascontiguousarray(levels, dtype=np.float64)
         gen = np.random.Generator(np.random.PCG64())
         gen.bit_generator.state = st.generator
-        shift = self.shifts(st.frames, levels.size, gen)
+        shift = self._random_shifts(levels.size, gen)
         held = np.array(st.held, dtype=np.float64)
         out = np.empty(levels.size)
-        _k.jittered_frame_means(levels, shift, held, out)
+        peak = self.sine_peak_s * self.frame_rate_hz
+        ratio = self.sine_hz / self.frame_rate_hz
+        _k.jittered_frame_means(levels, shift, st.frames, peak, ratio, held, out)
         new = JitterState(
             frames=st.frames + levels.size,
             held=(float(held[0]), float(held[1])),
