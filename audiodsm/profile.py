@@ -692,6 +692,22 @@ class ImpairmentSettings:
         doc="1/f corner of the analog noise, in Hz (0 = white only).",
     )
 
+    supply_ripple: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 0.99 (relative to the supply)",
+        _float_range(0.0, 0.99),
+        doc="Relative amplitude m of the sinusoidal ripple on the PWM stage's supply "
+        "(open loop: the output is the duty cycle times the supply; PWM).",
+    )
+    supply_ripple_hz: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e5 (Hz)",
+        _float_range(0.0, 1e5),
+        doc="Frequency of the supply ripple, in Hz.",
+    )
+
     @property
     def active(self) -> bool:
         """True when any key differs from the ideal converter."""
@@ -933,6 +949,26 @@ def _check_impairments(profile: ChainProfile, path: str) -> None:
             path,
             f"impairments.{key}",
             "got 0; expected jitter_sine_peak_s and jitter_sine_hz to be given together",
+        )
+    if imp.supply_ripple > 0.0 and kind != "pwm":
+        raise ProfileError(
+            path,
+            "impairments.supply_ripple",
+            f"applies only to a class-D stage (output.kind = 'pwm'); this profile has {kind!r}",
+        )
+    if imp.supply_ripple > 0.0 and profile.output.dead_time_ticks > 0:
+        raise ProfileError(
+            path,
+            "impairments.supply_ripple",
+            "got a ripple with output.dead_time_ticks > 0; expected no dead time (the "
+            "dead-time loop does not model the supply yet)",
+        )
+    if (imp.supply_ripple > 0.0) != (imp.supply_ripple_hz > 0.0):
+        key = "supply_ripple_hz" if imp.supply_ripple > 0.0 else "supply_ripple"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "got 0; expected supply_ripple and supply_ripple_hz to be given together",
         )
     if imp.noise_corner_hz > 0.0 and imp.noise_density_nv == 0.0:
         raise ProfileError(

@@ -245,6 +245,10 @@ class Chain:
             self._calibrate()  # runs the output stage on its levels
         with _settings_of(profile, "impairments"):
             self._jitter, self._noise = _edge_jitter_and_noise(profile, self.modulator_rate_hz)
+        imp = profile.impairments
+        self._supply_ripple = None
+        if imp.supply_ripple > 0.0:
+            self._supply_ripple = {"ripple": imp.supply_ripple, "ripple_hz": imp.supply_ripple_hz}
         if self._jitter is not None:  # an early edge changes the frame before it
             self.latency_s += 1.0 / self.modulator_rate_hz
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
@@ -441,6 +445,12 @@ class Chain:
         else:
             switches = 0
         t3 = clock()
+        supply_s = st.supply_frames
+        if self._supply_ripple is not None:  # open loop: levels times the rippling supply
+            from audiodsm.stages.supply import apply_supply_ripple
+
+            wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)
+            supply_s = (supply_s or 0) + y.size
         jit_s = st.jitter
         if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
             means, jit_s = self._jitter.process(wf.levels[:, 0], jit_s)
@@ -458,7 +468,7 @@ class Chain:
         t5 = clock()
         error = None
         new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
-        new = new._replace(jitter=jit_s, noise=noise_s)
+        new = new._replace(jitter=jit_s, noise=noise_s, supply_frames=supply_s)
         if "error" in keep:
             ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
             if self._jitter is not None:  # the same one-frame delay as the jittered output
@@ -740,6 +750,7 @@ class _ChannelState(NamedTuple):
     jitter: object = None  # [impairments]: edge jitter, analog noise, the ideal path's delay
     noise: object = None
     ideal_held: float | None = None
+    supply_frames: int | None = None  # frames since the start (the supply ripple's time)
 
 
 _POOLS: dict[tuple[int, int], ThreadPoolExecutor] = {}
