@@ -82,6 +82,7 @@ METRIC_CATALOGUE = {
     "pwm_stretched_pulses": ("count", "PWM pulses stretched to the minimum width"),
     "switching_rate_hz": ("Hz", "output level changes per second at idle"),
     "dc_offset_dbfs": ("dBFS", "DC at the output during silence"),
+    "jitter_noise_dbfs_at_1ps": ("dBFS", "in-band noise 1 ps rms of clock jitter adds"),
     # read from the THD+N-versus-level sweep at the level the target names
     "thd_n_db": ("dB", "THD+N at the stated tone level"),
     "thd_n_db_a": ("dB", "THD+N at the stated tone level, A-weighted"),

@@ -130,6 +130,12 @@ METRIC_UNITS = {
         "rms of the output's ripple inside each modulator frame (the PWM carrier after the "
         "filter), which the frame-rate output cannot carry",
     ),
+    "jitter_noise_dbfs_at_1ps": (
+        "dynamic_range",
+        "dBFS",
+        "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
+        "step (PDM and NRZ; scales as 20 log10 of the jitter)",
+    ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
     "thd_n_db_at_minus20_dbfs": ("level_sweep", "dB", "THD+N at -20 dBFS"),
@@ -619,6 +625,7 @@ _SCALARS = (
     "dynamic_range_db_ccir",
     "out_of_band_noise_dbfs",
     "carrier_ripple_dbfs",
+    "jitter_noise_dbfs_at_1ps",
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",

@@ -278,7 +278,7 @@ def _test_dynamic_range(ctx, profile):
 
     plan, rate = ctx.plan, ctx.rate
     x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
-    res = _chain_run(profile, x, rate=rate, keep=("listening", "analog"))
+    res = _chain_run(profile, x, rate=rate, keep=("listening", "analog", "modulator"))
     y = res.listening[:, 0]
     r = _meter(y, rate, _TEST_HZ, _WEIGHTINGS, plan.settle_s)
     out = {"stats": [(res.stats, 0, 10 ** (-60 / 20))]}
@@ -322,6 +322,10 @@ def _test_dynamic_range(ctx, profile):
         "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
         "whole run"
     )
+    jitter, why = _jitter_sensitivity(profile, res, rate, plan.settle_s)
+    out["jitter_noise_dbfs_at_1ps"] = jitter
+    if why:
+        out["invalid"] = {**out["invalid"], "jitter_noise_dbfs_at_1ps": why}
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
         "level_dbfs": spec.bins_dbfs(),
@@ -341,6 +345,33 @@ def _test_dynamic_range(ctx, profile):
     }
     out["notes"] = notes
     return out
+
+
+def _jitter_sensitivity(profile, res, rate, settle_s):
+    """The in-band noise 1 ps rms of white jitter on the output edges would add (dBFS).
+
+    Textbook estimate (Schreier & Temes 2005, clock jitter of continuous-time DACs; Cherry &
+    Snelgrove 1999; checked against the jitter stage in tests/test_jitter.py): ``(sigma
+    f_m)^2 E[(y[n] - y[n-1])^2]`` spread evenly over the Nyquist band, ``2 B / f_m`` of it in
+    the band ``B``; referred to the listening full scale through the chain's calibration.
+    PWM is left out: its edges sit inside the frames (not modelled yet).
+
+    Returns
+    -------
+    (float or None, str)
+        The level, and why it is missing (empty when it is not).
+    """
+    if profile.output.kind == "pwm":
+        return None, "PWM edges are not in the jitter model"
+    from audiodsm.stages.chain import Chain
+
+    chain = Chain.from_profile(profile, rate, 1, threads=1)
+    fm = res.modulator_rate_hz
+    m = res.modulator[:, 0]
+    m = m[min(int(round(settle_s * fm)), m.size // 2) :]
+    steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
+    power = (1e-12 * fm) ** 2 * float(np.mean(steps * steps)) * 2.0 * _BAND[1] / fm
+    return (10.0 * math.log10(power / 0.5) if power > 0 else -math.inf), ""
 
 
 def _test_level_sweep(ctx, profile, levels):
