@@ -40,12 +40,13 @@ from typing import NamedTuple
 import numpy as np
 
 from audiodsm.errors import ParameterError
-from audiodsm.profile import ChainProfile
+from audiodsm.profile import ChainProfile, ImpairmentSettings
 from audiodsm.stages.chain_build import (
     _analog_filter,
     _build_ntf,
     _check_rate,
     _designed_ntf,
+    _edge_jitter_and_noise,
     _mean_level,
     _output_waveform_fn,
     _pwm_dead_time_fn,
@@ -217,6 +218,10 @@ class Chain:
             else:
                 plain = profile
             self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
+            # the calibration reads the ideal stage: the impairments' errors stay in the output
+            self._ideal_stage = _output_waveform_fn(
+                replace(plain, impairments=ImpairmentSettings()), float(self.modulator_rate_hz)
+            )
         with _settings_of(profile, "listening"):
             listen = profile.listening
             if listen.decimator == "counting":  # same interface as the half-band cascade
@@ -240,6 +245,14 @@ class Chain:
                 self._downsampler = Downsampler(self.downsampler_design)
         with _settings_of(profile, "output"):
             self._calibrate()  # runs the output stage on its levels
+        with _settings_of(profile, "impairments"):
+            self._jitter, self._noise = _edge_jitter_and_noise(profile, self.modulator_rate_hz)
+        imp = profile.impairments
+        self._supply_ripple = None
+        if imp.supply_ripple > 0.0:
+            self._supply_ripple = {"ripple": imp.supply_ripple, "ripple_hz": imp.supply_ripple_hz}
+        if self._jitter is not None:  # an early edge changes the frame before it
+            self.latency_s += 1.0 / self.modulator_rate_hz
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
         n_threads = threads if threads is not None else min(self.channels, os.cpu_count() or 1)
         self._threads = max(1, int(n_threads))
@@ -287,7 +300,7 @@ class Chain:
         # no dead time (see __init__): the error dead time makes depends on the load current,
         # it is the product's offset and distortion, and the measurements must show it.
         hold = 4
-        wf, _, _ = self._waveform(np.repeat(probe, hold), None)
+        wf, _, _ = self._ideal_stage(np.repeat(probe, hold), None)
         means = _mean_level(wf)[hold - 1 :: hold]
         # least-squares line through (level, mean output): slope = volts per full-scale unit.
         # With five or more levels the two end levels are left out: a minimum pulse width can
@@ -406,6 +419,8 @@ class Chain:
         return merged, st
 
     def _channel_piece(self, x, st, keep):
+        from audiodsm.stages.output_stage import PulseWaveform
+
         clock = time.perf_counter
         t0 = clock()
         if self.input_scale != 1.0:
@@ -432,8 +447,22 @@ class Chain:
         else:
             switches = 0
         t3 = clock()
+        supply_s = st.supply_frames
+        if self._supply_ripple is not None:  # open loop: levels times the rippling supply
+            from audiodsm.stages.supply import apply_supply_ripple
+
+            wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)
+            supply_s = (supply_s or 0) + y.size
+        jit_s = st.jitter
+        if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
+            means, jit_s = self._jitter.process(wf.levels[:, 0], jit_s)
+            wf = PulseWaveform._trusted(means.reshape(-1, 1), wf.ticks, 1, wf.frame_rate_hz)
         if wf is not None:
             analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
+        noise_s = st.noise
+        if self._noise is not None:  # output-referred: added after the filter
+            noise, noise_s = self._noise.process(analog.size, noise_s)
+            analog = analog + noise
         t4 = clock()
         # the decimator is linear: calibrate after it, on 1/OSR as many samples
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
@@ -441,8 +470,17 @@ class Chain:
         t5 = clock()
         error = None
         new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
+        new = new._replace(jitter=jit_s, noise=noise_s, supply_frames=supply_s)
         if "error" in keep:
             ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
+            if self._jitter is not None:  # the same one-frame delay as the jittered output
+                held = st.ideal_held if st.ideal_held is not None else 0.0
+                levels = ideal_wf.levels[:, 0]
+                new = new._replace(ideal_held=float(levels[-1]) if levels.size else held)
+                delayed = np.concatenate(([held], levels[:-1])).reshape(-1, 1)
+                ideal_wf = PulseWaveform._trusted(
+                    delayed, ideal_wf.ticks, 1, ideal_wf.frame_rate_hz
+                )
             ideal, ifir_s, ifilt_s = self._reconstruct(ideal_wf, st.ideal_fir, st.ideal_analog)
             ideal_raw, idown_s = self._downsampler.process(
                 ideal, st.ideal_downsampler, check_finite=False
@@ -711,6 +749,10 @@ class _ChannelState(NamedTuple):
     ideal_fir: object = None
     ideal_analog: object = None
     ideal_downsampler: object = None
+    jitter: object = None  # [impairments]: edge jitter, analog noise, the ideal path's delay
+    noise: object = None
+    ideal_held: float | None = None
+    supply_frames: int | None = None  # frames since the start (the supply ripple's time)
 
 
 _POOLS: dict[tuple[int, int], ThreadPoolExecutor] = {}
