@@ -275,11 +275,16 @@ def predicted_range_with_dither_db(profile, *, weighting: str = "unweighted") ->
         zero_layout=mod.zero_layout,
     )
     rate = battery_rate_hz(profile) * profile.upsampler.osr
-    scale = min(1.0, _input_scale(ntf, mod.levels))
-    dr = predicted_dynamic_range_db(
-        ntf, mod.levels, modulator_rate_hz=rate, input_scale=scale, weighting=weighting
+    # the chain's own input scale (the dither takes headroom from the no-overload bound)
+    scale = min(1.0, _input_scale(ntf, mod.levels, mod.dither_lsb))
+    return predicted_dynamic_range_db(
+        ntf,
+        mod.levels,
+        modulator_rate_hz=rate,
+        input_scale=scale,
+        dither_lsb=mod.dither_lsb,
+        weighting=weighting,
     )
-    return dr - 10.0 * math.log10(1.0 + 2.0 * mod.dither_lsb**2)
 
 
 def cost_proxy(profile) -> float:
