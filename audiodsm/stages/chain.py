@@ -64,6 +64,7 @@ __all__ = [
     "STAGE_NAMES",
     "Chain",
     "run_chain",
+    "release_worker_threads",
 ]
 
 #: What :func:`run_chain` can keep: the listening output, the modulator output, the
@@ -769,6 +770,22 @@ def _pool(workers: int) -> ThreadPoolExecutor:
             max_workers=workers, thread_name_prefix="audiodsm-chain"
         )
     return pool
+
+
+def release_worker_threads() -> None:
+    """Tell every shared worker thread of the chain and the modulator to end; do not wait.
+
+    The shared pools live as long as the process. When Ctrl-C lands while a pool is starting a
+    thread, Python's exit can miss that thread and wait for it forever (the thread is started
+    before the pool records it). A command ends by calling this: every pool queues its stop
+    marker, so each idle thread, recorded or not, ends, and the next use builds new pools.
+    """
+    from audiodsm.stages import modulator
+
+    for pools in (_POOLS, modulator._POOLS):
+        for pool in list(pools.values()):
+            pool.shutdown(wait=False, cancel_futures=True)
+        pools.clear()
 
 
 def _check_keep(keep) -> tuple:
