@@ -481,7 +481,7 @@ def test_linear_noise_floor_is_the_undithered_share_of_the_tpdf_error():
 def test_impossible_thd_n_is_called_so():
     # A THD+N whose noise lies far under the chain's own floor, or under the simulation's
     # float64 floor, is not a reading: the sweep point says why.
-    from audiodsm.evaluate.battery import _sweep_reason
+    from audiodsm.evaluate.battery_assembly import _sweep_reason
 
     floor = {"unweighted": -110.0, "a": -112.0, "ccir": -108.0}
     point = {
