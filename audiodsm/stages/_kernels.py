@@ -97,7 +97,8 @@ def loop_any_structure(
     counts : int64 (1,)
         Running count of overload samples, updated in place.
     structure : int
-        0 feedback, 1 feedforward, 2 error feedback.
+        0 feedback, 1 feedforward, 2 error feedback, 3 feedforward with the input fed straight
+        to the quantizer too (``y = u + sum(c * x)``).
     levels : int
         Quantizer levels, 2 to 2**24 (16777216).
     dither_scale : float
@@ -123,8 +124,8 @@ def loop_any_structure(
         ut = u[t]
         if structure == 0:
             y = x[last]
-        elif structure == 1:
-            y = 0.0
+        elif structure == 1 or structure == 3:
+            y = ut if structure == 3 else 0.0
             for i in range(order):
                 y = y + coef[5, i] * x[i]
         else:
@@ -186,7 +187,7 @@ def loop_any_structure(
 # feedforward kernels assume, as LoopRealization.for_ntf builds them, that only the first integrator
 # receives the quantizer output.
 
-STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
+STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2, "feedforward-feed-in": 3}
 
 
 def loop_kernel_name(structure, order, lossless, unit_chain, pairs):
@@ -204,7 +205,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     Parameters
     ----------
     structure : str
-        ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
+        ``"feedback"``, ``"feedforward"``, ``"error-feedback"`` or ``"feedforward-feed-in"``
+        (feedforward with the input fed straight to the quantizer too).
     order : int
         1..8.
     lossless : bool
@@ -217,6 +219,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     """
     n = order
     code = STRUCTURE_CODES[structure]
+    feed_in = code == 3
+    code = 1 if feed_in else code  # the same loop as feedforward but for the quantizer input
     lines = []
     add = lines.append
     xs = ", ".join(f"x{i}" for i in range(n))
@@ -268,7 +272,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
         if code == 0:
             y = f"x{n - 1}"
         elif code == 1:
-            y = "0.0"
+            y = "u[t]" if feed_in else "0.0"
             for i in range(n):
                 y = f"({y} + c{i} * x{i})"
         else:

@@ -151,11 +151,14 @@ class ChainState:
         Running counts.
     to_skip : int
         Listening samples still to drop at the start (latency alignment, :meth:`Chain.stream`).
+    requantizer : RequantizerState or None
+        The source requantization's dither state (``input.requantize = "tpdf"``).
     """
 
     channels: tuple
     stats: ChainStats
     to_skip: int = 0
+    requantizer: object = None
 
 
 @dataclass(frozen=True)
@@ -240,13 +243,28 @@ def _settings_of(profile: ChainProfile, section: str):
 
 
 @functools.lru_cache(maxsize=64)
-def _designed_ntf(order, osr, out_of_band_gain, zero_layout):
+def _designed_ntf(order, osr, out_of_band_gain, zero_layout, zero_band_edge=None):
     """NoiseTransfer.designed, remembered: a battery builds the same chain many times."""
     from audiodsm.design.ntf import NoiseTransfer
 
     return NoiseTransfer.designed(
-        order, osr=osr, out_of_band_gain=out_of_band_gain, zero_layout=zero_layout
+        order,
+        osr=osr,
+        out_of_band_gain=out_of_band_gain,
+        zero_layout=zero_layout,
+        zero_band_edge=zero_band_edge,
     )
+
+
+def _zero_band_edge(edge_hz, rate_hz, modulator_rate_hz):
+    """The spread zeros' band edge in cycles per modulator sample (None: the whole audio band).
+
+    The profile's edge is capped at half the input rate; at the cap the design's own default
+    (0.5/osr) is used, so such a chain designs exactly what it did before the key existed.
+    """
+    if edge_hz >= 0.5 * rate_hz:
+        return None
+    return float(edge_hz) / float(modulator_rate_hz)
 
 
 _SCALED_LOOPS: dict = {}
@@ -474,6 +492,13 @@ class Chain:
         self.modulator_rate_hz = self.rate_hz * self.osr
         self.block_frames = max(1, MAX_BLOCK_MODULATOR_SAMPLES // self.osr)
         self.piece_frames = max(1, CACHE_PIECE_MODULATOR_SAMPLES // self.osr)
+        self.requantizer = None  # the source's word length (input.requantize = "tpdf")
+        if profile.input.requantize == "tpdf":
+            from audiodsm.stages.source_word import SourceRequantizer
+
+            self.requantizer = SourceRequantizer(
+                profile.input.source_bits, seed=profile.input.dither_seed
+            )
 
         with _settings_of(profile, "upsampler"):
             self.upsampler_design = design_upsampler(
@@ -492,7 +517,13 @@ class Chain:
             if mod.explicit_ntf:
                 self.ntf = _build_ntf(mod)
             else:
-                self.ntf = _designed_ntf(mod.order, self.osr, mod.out_of_band_gain, mod.zero_layout)
+                self.ntf = _designed_ntf(
+                    mod.order,
+                    self.osr,
+                    mod.out_of_band_gain,
+                    mod.zero_layout,
+                    _zero_band_edge(mod.zero_band_edge_hz, self.rate_hz, self.modulator_rate_hz),
+                )
             mod_kwargs = {
                 "structure": mod.structure,
                 "levels": mod.levels,
@@ -500,6 +531,8 @@ class Chain:
                 "seed": mod.seed,
                 "guard": mod.guard,
             }
+            if mod.input_feed_in:
+                mod_kwargs["input_feed_in"] = True
             loop, self.state_scaling_probe = _scaled_loop(
                 self.ntf, mod_kwargs, self.osr, mod.state_scaling, mod.state_peak_bound
             )
@@ -856,6 +889,9 @@ class Chain:
                     "samples within ±1.0 (the profile sets input.over_full_scale = 'refuse')",
                 )
             x = np.clip(x, -1.0, 1.0)
+        if self.requantizer is not None and x.shape[0]:
+            x, rq_state = self.requantizer.process(x, state.requantizer)
+            state = replace(state, requantizer=rq_state)
         if x.shape[0] == 0:  # nothing to do: every requested output is empty
             empty = np.zeros((0, self.channels))
             block = ChainBlock(**{k: (empty if k in keep else None) for k in KEEP_CHOICES})
