@@ -82,6 +82,11 @@ Listening by ear (``audiodsm.measure.loudness``, ``audiodsm.measure.alignment``,
     integrated_loudness_lufs, gain_to_loudness_db, find_delay, DelayEstimate, shift_by_frames,
     make_listening_set, ListeningCandidate, spectrogram_dbfs, score_answers, binomial_tail_p,
     PairScore
+Fixed point and the hardware handoff (``audiodsm.design.fixed_point``,
+``audiodsm.stages.fixed_loop``, ``audiodsm.hardware.handoff``, ``audiodsm.hardware.rtl``)
+    NodeFormat, FixedPointFormat, csd_digits, round_to_csd, quantize_coefficients,
+    node_noise_gains, plan_word_lengths, WordLengthPlan, FixedPointModulator, plan_profile,
+    check_fixed_point, write_handoff, verilog_text, simulate_words
 """
 
 from __future__ import annotations
@@ -266,6 +271,20 @@ _PUBLIC = {
     "analyze_file": "audiodsm.evaluate.analyze",
     "FileAnalysis": "audiodsm.evaluate.analyze",
     "SilenceNoiseMeter": "audiodsm.measure.silence",
+    "NodeFormat": "audiodsm.design.fixed_point",
+    "FixedPointFormat": "audiodsm.design.fixed_point",
+    "csd_digits": "audiodsm.design.fixed_point",
+    "round_to_csd": "audiodsm.design.fixed_point",
+    "quantize_coefficients": "audiodsm.design.fixed_point",
+    "node_noise_gains": "audiodsm.design.fixed_point",
+    "plan_word_lengths": "audiodsm.design.fixed_point",
+    "WordLengthPlan": "audiodsm.design.fixed_point",
+    "FixedPointModulator": "audiodsm.stages.fixed_loop",
+    "plan_profile": "audiodsm.hardware.handoff",
+    "check_fixed_point": "audiodsm.hardware.handoff",
+    "write_handoff": "audiodsm.hardware.handoff",
+    "verilog_text": "audiodsm.hardware.rtl",
+    "simulate_words": "audiodsm.hardware.rtl",
 }
 
 __all__ = ["__version__", *sorted(_PUBLIC)]

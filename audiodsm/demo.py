@@ -13,8 +13,10 @@ Run it as ``python -m audiodsm.demo`` (``make demo``) from a checkout. It reads
   ``audio_demo/make_demo_audio.py``; remade here when missing);
 
 and writes into ``demo_out/`` (git-ignored): ``report/<product>/grades.{html,json,csv}``,
-``listening/<product>/*.listen.wav`` (plus each render's summary JSON), the battery cache
-``cache/``, so a second run reuses the graded batteries, and a listening set for the demo DAC
+``listening/<product>/*.listen.wav`` (plus each render's summary JSON), for every candidate
+with a ``[fixed_point]`` section its hardware handoff folder ``handoff/<product>/<profile>/``
+(see docs/fixed_point.md), the battery cache ``cache/``, so a second run reuses the graded
+batteries, and a listening set for the demo DAC
 (``listening_set/dac_chip/listening.html``, its key beside it): the 5th-order single-bit
 candidate with spread NTF zeros against the same loop with every zero at DC
 (``profiles/variants/``), on short excerpts of two demo clips. A set whose key exists is kept
@@ -134,11 +136,12 @@ def run_demo(
     -------
     dict
         ``{"reports": {product: {kind: path}}, "listening": [paths], "listening_page": path or
-        None, "batches": {product: GradeBatch}, "seconds": float}``.
+        None, "batches": {product: GradeBatch}, "handoffs": [folders], "seconds": float}``.
     """
     from audiodsm.evaluate.grade import collect_profiles, grade_batch
     from audiodsm.evaluate.render import HEARING_CAUTION, render_file
     from audiodsm.evaluate.report import write_report
+    from audiodsm.hardware.handoff import write_handoff
     from audiodsm.spec import load_spec
 
     start = time.perf_counter()
@@ -154,7 +157,7 @@ def run_demo(
         )
     clips = _demo_clips(root, say)
     inputs = [*clips]
-    reports, listening, batches = {}, [], {}
+    reports, listening, batches, handoffs = {}, [], {}, []
     for product, (title, spec_name) in PRODUCTS.items():
         spec_path = root / "profiles" / "specs" / spec_name
         spec = load_spec(spec_path)
@@ -196,6 +199,12 @@ def run_demo(
                 listening.append(Path(summary["outputs"]["listening"]))
         say(f"rendered {len(clips)} clips x {len(profiles)} profiles in "
             f"{time.perf_counter() - t0:.1f} s")  # fmt: skip
+        for path, prof in profiles:
+            if prof.fixed_point.active:  # the loop handed to RTL: write its folder
+                folder = out / "handoff" / product / Path(path).stem
+                summary = write_handoff(prof, folder)
+                handoffs.append(summary.folder)
+                say(f"hardware handoff of {prof.name}: {len(summary.files)} files")
 
     listening_page = _listening_set(root, out, clips, inputs, say)
 
@@ -205,6 +214,8 @@ def run_demo(
         say(f"report, {PRODUCTS[product][0]}: {files['html']}")
         say(f"   same grades as JSON and CSV: {files['json'].name}, {files['csv'].name}")
     say(f"listening files ({len(listening)}): {out / 'listening'}/<product>/")
+    for folder in handoffs:
+        say(f"hardware handoff (formats, coefficients, test vectors, Verilog): {folder}")
     if listening_page is not None:
         from audiodsm.evaluate.listening import key_path_for
 
@@ -222,6 +233,7 @@ def run_demo(
         "listening": listening,
         "listening_page": listening_page,
         "batches": batches,
+        "handoffs": handoffs,
         "seconds": seconds,
     }
 

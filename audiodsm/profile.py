@@ -47,6 +47,7 @@ __all__ = [
     "OutputStageSettings",
     "ReconstructionSettings",
     "ListeningSettings",
+    "FixedPointSettings",
     "load_profile",
     "parse_profile",
     "profile_from_dict",
@@ -592,6 +593,85 @@ class ListeningSettings:
     )
 
 
+_ROUNDING = ("truncate", "round-half-up", "convergent")
+_OVERFLOW = ("saturate", "wrap")
+
+
+@dataclass(frozen=True)
+class FixedPointSettings:
+    """The loop as the hardware computes it (``[fixed_point]``; see docs/fixed_point.md).
+
+    The section is off while ``state_integer_bits`` is empty; every other key then needs it.
+    The lists have one entry per integrator state, from the input side. ``audiodsm plan``
+    writes this section from a float run and a noise budget.
+    """
+
+    state_integer_bits: tuple = _key(
+        (),
+        "ints",
+        "a list of integers from 0 to 24, one per state (empty = floating point)",
+        lambda v: all(0 <= i <= 24 for i in v),
+        doc="Bits left of the binary point of each state word, sign not counted.",
+    )
+    state_fraction_bits: tuple = _key(
+        (),
+        "ints",
+        "a list of integers from 0 to 48, one per state",
+        lambda v: all(0 <= i <= 48 for i in v),
+        doc="Bits right of the binary point of each state word.",
+    )
+    state_rounding: tuple = _key(
+        (),
+        "strs",
+        "a list of 'truncate', 'round-half-up' or 'convergent', one per state (empty = all "
+        "'round-half-up')",
+        lambda v: all(r in _ROUNDING for r in v),
+        doc="How each state update drops its surplus fractional bits.",
+    )
+    state_overflow: tuple = _key(
+        (),
+        "strs",
+        "a list of 'saturate' or 'wrap', one per state (empty = all 'saturate')",
+        lambda v: all(r in _OVERFLOW for r in v),
+        doc="What each state word does with a value outside its range.",
+    )
+    input_fraction_bits: int = _key(
+        23,
+        "int",
+        "an integer from 1 to 40",
+        _int_range(1, 40),
+        doc="Fractional bits of the modulator's input word (one sign bit, no integer bits: "
+        "full scale ±1).",
+    )
+    input_rounding: str = _key(
+        "round-half-up",
+        "str",
+        _fmt_choices(*_ROUNDING),
+        _choice(*_ROUNDING),
+        doc="How the float input is rounded into the input word.",
+    )
+    coefficient_fraction_bits: int = _key(
+        20,
+        "int",
+        "an integer from 2 to 40",
+        _int_range(2, 40),
+        doc="Fractional bits shared by every loop coefficient.",
+    )
+    coefficient_digits: int = _key(
+        0,
+        "int",
+        "an integer from 0 (no limit) to 16",
+        _int_range(0, 16),
+        doc="At most this many non-zero canonic signed digits per coefficient (shift-add "
+        "multipliers); 0 = plain rounding.",
+    )
+
+    @property
+    def active(self) -> bool:
+        """True when the profile asks for the fixed-point loop."""
+        return bool(self.state_integer_bits)
+
+
 _SECTIONS = {
     "input": InputSettings,
     "upsampler": UpsamplerSettings,
@@ -599,6 +679,7 @@ _SECTIONS = {
     "output": OutputStageSettings,
     "reconstruction": ReconstructionSettings,
     "listening": ListeningSettings,
+    "fixed_point": FixedPointSettings,
 }
 
 
@@ -618,6 +699,7 @@ class ChainProfile:
     output: OutputStageSettings = field(default_factory=OutputStageSettings)
     reconstruction: ReconstructionSettings = field(default_factory=ReconstructionSettings)
     listening: ListeningSettings = field(default_factory=ListeningSettings)
+    fixed_point: FixedPointSettings = field(default_factory=FixedPointSettings)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -673,6 +755,15 @@ def _convert(value, kind, path, key, expect):
                 bad()
             out.append(float(v))
         return tuple(out)
+    if kind in ("ints", "strs"):
+        if not isinstance(value, list) or len(value) > 8:
+            bad()
+        for v in value:
+            if kind == "ints" and (isinstance(v, bool) or not isinstance(v, int)):
+                bad()
+            if kind == "strs" and not isinstance(v, str):
+                bad()
+        return tuple(value)
     if kind == "roots":
         if not isinstance(value, list) or len(value) > ORDER_RANGE[1]:
             bad()
@@ -891,6 +982,51 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
     _check_pwm_timing(profile, path)
 
 
+def _check_fixed_point(profile: ChainProfile, table: dict, path: str) -> None:
+    """Rules of the [fixed_point] section that involve the modulator."""
+    fp, mod = profile.fixed_point, profile.modulator
+    if not fp.active:
+        for key in table:
+            if key != "state_integer_bits":
+                raise ProfileError(
+                    path,
+                    f"fixed_point.{key}",
+                    "applies only with fixed_point.state_integer_bits (one entry per state)",
+                )
+        return
+    order = len(mod.zeros) if mod.explicit_ntf else mod.order
+    for key in ("state_integer_bits", "state_fraction_bits", "state_rounding", "state_overflow"):
+        got = len(getattr(fp, key))
+        if got != order and (got or key in ("state_integer_bits", "state_fraction_bits")):
+            raise ProfileError(
+                path,
+                f"fixed_point.{key}",
+                f"got {got} entries; expected {order}, one per state of the order-{order} loop",
+            )
+    if mod.structure != "feedback":
+        raise ProfileError(
+            path,
+            "modulator.structure",
+            f"got {mod.structure!r} with a [fixed_point] section; expected 'feedback' (the "
+            "fixed-point loop is the feedback structure)",
+        )
+    if mod.dither_lsb != 0.0:
+        raise ProfileError(
+            path,
+            "modulator.dither_lsb",
+            f"got {mod.dither_lsb!r} with a [fixed_point] section; expected 0 (the "
+            "fixed-point loop has no dither)",
+        )
+    m = (mod.levels - 1).bit_length() - 1
+    if mod.levels != 2 and (mod.levels - 1 != 1 << m or m > 16):
+        raise ProfileError(
+            path,
+            "modulator.levels",
+            f"got {mod.levels} with a [fixed_point] section; expected 2 or 2**m + 1 "
+            "(3, 5, 9, 17, ...), levels on a binary grid",
+        )
+
+
 def profile_from_dict(data: dict, *, source: str = "<profile>") -> ChainProfile:
     """Build a validated :class:`ChainProfile` from a nested dict (the parsed TOML).
 
@@ -933,6 +1069,7 @@ def profile_from_dict(data: dict, *, source: str = "<profile>") -> ChainProfile:
             values[section] = _parse_section(cls, data[section], source, section)
     profile = ChainProfile(**values)
     _check_whole(profile, source)
+    _check_fixed_point(profile, data.get("fixed_point", {}), source)
     modulator_table = data.get("modulator", {})
     if profile.modulator.explicit_ntf:
         for key in _DESIGN_KEYS:
@@ -1040,6 +1177,8 @@ def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
     out = {"name": profile.name, "description": profile.description}
     for section, cls in _SECTIONS.items():
         settings = getattr(profile, section)
+        if section == "fixed_point" and not settings.active:
+            continue  # off: nothing in it may differ from its defaults (see _check_fixed_point)
         table = {}
         for f in dataclasses.fields(cls):
             value = getattr(settings, f.name)
@@ -1081,6 +1220,8 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
     if full:
         complete = profile_to_dict(profile, full=True)
         for section, cls in _SECTIONS.items():
+            if section not in complete:
+                continue
             data[section] = {
                 f.name: complete[section][f.name]
                 for f in dataclasses.fields(cls)
@@ -1090,7 +1231,7 @@ def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
     if data["description"]:
         document["description"] = data["description"]
     for section in _SECTIONS:
-        if data[section]:
+        if data.get(section):
             document[section] = data[section]
     return tomli_w.dumps(document)
 

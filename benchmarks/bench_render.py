@@ -6,7 +6,12 @@ Cases
     60 s of synthesized stereo 48 kHz program through the default profile (5th-order single-bit
     PDM loop at OSR 64, 3rd-order Butterworth reconstruction) with a 24-bit listening file
     written, as ``audiodsm render`` does it. Reports the time per stage (summed over the two
-    channels, which run in parallel threads) and the real-time factor. Target: >= 10x.
+    channels, which run in parallel threads), the real-time factor, and ``ratio_to_c``: the
+    wall time over the C reference loop's time for the same number of modulator samples
+    (``feedback5_1bit`` of ``shared/perf/limit.c``, run in the same benchmark run, see
+    :mod:`benchmarks._c_reference`). Target (issue 12): <= 2.0 with both cores busy.
+    ``cpu_ratio_to_c`` is the CPU time spread over the two cores, over the C loop's CPU time:
+    the steadier figure on a busy machine.
 ``render_memory``
     A 10-minute stereo 96 kHz 24-bit input at OSR 64, rendered in a child process that reports
     its peak resident memory (``ru_maxrss``). Target: < 400 MB.
@@ -28,6 +33,10 @@ from pathlib import Path
 
 import numpy as np
 
+from benchmarks._c_reference import C_RATE_HZ, c_loop_speeds, cpu_loop_seconds, time_ratio
+
+C_SAMPLES = C_RATE_HZ * 10  # the C reference's run, shared with the modulator benchmark
+TARGET_RATIO_TO_C = 2.0
 SPEED_SECONDS = float(os.environ.get("AUDIODSM_BENCH_RENDER_SECONDS", "60"))
 MEMORY_SECONDS = float(os.environ.get("AUDIODSM_BENCH_MEMORY_SECONDS", "600"))
 
@@ -71,6 +80,7 @@ def _speed_case():
 
     profile = ChainProfile(name="pdm5-osr64")
     rate = 48000
+    c_loop_speeds(C_SAMPLES)  # the C reference runs before the render, not during it
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         warm = tmp / "warm.wav"
@@ -85,6 +95,11 @@ def _speed_case():
         elapsed = time.perf_counter() - started
         cpu = _cpu_seconds() - cpu_before
     cores = min(2, os.cpu_count() or 1)
+    modulator_samples = int(SPEED_SECONDS * rate) * profile.upsampler.osr * 2
+    versus_c = time_ratio("feedback5_1bit", modulator_samples, elapsed, samples=C_SAMPLES)
+    c_cpu = cpu_loop_seconds("feedback5_1bit", modulator_samples, samples=C_SAMPLES)
+    if c_cpu is not None:
+        versus_c["cpu_ratio_to_c"] = round(cpu / cores / c_cpu, 3)
     return {
         "case": "render_speed",
         "profile": "5th-order single-bit PDM, OSR 64, 3rd-order Butterworth 60 kHz",
@@ -94,6 +109,9 @@ def _speed_case():
         "elapsed_s": round(elapsed, 3),
         "realtime_factor": round(SPEED_SECONDS / elapsed, 2),
         "target_realtime_factor": 10.0,
+        "modulator_samples": modulator_samples,
+        **versus_c,
+        "target": TARGET_RATIO_TO_C,
         "stage_seconds_summed_over_channels": summary["stage_seconds"],
         "cpu_s": round(cpu, 3),
         # on a shared machine the wall time includes waiting for a core; audio seconds per

@@ -111,6 +111,8 @@ def test_demo_end_to_end_on_a_small_copy(tmp_path):
     for product, keep in (("dac_chip", "pdm5_64x.toml"), ("pocket_amp", "pwm9_bridge_16x.toml")):
         (root / "profiles" / product).mkdir(parents=True)
         shutil.copy(ROOT / "profiles" / product / keep, root / "profiles" / product / keep)
+    fixed = "pdm5_fixed_64x.toml"  # the candidate with a [fixed_point] section
+    shutil.copy(ROOT / "profiles" / "dac_chip" / fixed, root / "profiles" / "dac_chip" / fixed)
     shutil.copytree(ROOT / "profiles" / "specs", root / "profiles" / "specs")
     shutil.copytree(ROOT / "profiles" / "variants", root / "profiles" / "variants")
     (root / "audio_demo").mkdir()
@@ -129,7 +131,12 @@ def test_demo_end_to_end_on_a_small_copy(tmp_path):
         page = root / "demo_out" / "report" / product / "grades.html"
         assert page.is_file() and str(page) in text
         assert "data:image/png;base64," in page.read_text()
-    assert len(out["listening"]) == 2
+    assert len(out["listening"]) == 3
+    # the fixed-point candidate's hardware handoff folder is written and named in the output
+    (folder,) = out["handoffs"]
+    assert folder == root / "demo_out" / "handoff" / "dac_chip" / "pdm5_fixed_64x"
+    assert (folder / "README.md").is_file() and (folder / "rtl" / "noise_shaper_loop.v").is_file()
+    assert str(folder) in text
     for path in out["listening"]:
         y, rate = read_audio(path)
         assert rate == audio.RATE_HZ and y.shape[0] == clip.size

@@ -22,6 +22,7 @@ import pytest
 import soundfile as sf
 from click.testing import CliRunner
 from fault_batteries import quick_battery
+from subprocess_helpers import interruptible
 
 from audiodsm.cli import main
 from audiodsm.errors import (
@@ -694,6 +695,7 @@ def test_a_stop_signal_removes_the_temporary_file(tmp_path, sig):
         env=_env(),
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
+        preexec_fn=interruptible,
         text=True,
     )
     try:
@@ -757,6 +759,7 @@ def _start_grade(tmp_path, calls):
         env=_env(),
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
+        preexec_fn=interruptible,
         text=True,
         start_new_session=True,  # signals go to the main process only, as `kill PID` sends
     )

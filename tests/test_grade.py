@@ -12,6 +12,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from subprocess_helpers import interruptible
 
 from audiodsm.cli import main
 from audiodsm.errors import ParameterError, ProfileError
@@ -431,6 +432,7 @@ def test_ctrl_c_on_a_parallel_batch_keeps_finished_results(tmp_path, calls):
         [sys.executable, str(script)],
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
+        preexec_fn=interruptible,
         text=True,
         start_new_session=True,
     )

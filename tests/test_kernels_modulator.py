@@ -1,5 +1,6 @@
 """Modulator kernels against their slow pure-Python twin, operation for operation."""
 
+import dataclasses
 import math
 
 import numpy as np
@@ -228,6 +229,133 @@ def test_specialised_kernel_is_chosen_for_designed_loops():
         NoiseTransfer.designed(3, osr=64), structure="feedforward"
     ).rescaled([2.0, 3.0, 1.0])
     assert _kernel_key(scaled) == ("feedforward", 3, True, False, 1)
+
+
+# The specialised kernels run their samples in blocks of LOOP_BLOCK: a block first runs
+# without the guard and is run again with it when its peaks say the guard would have acted.
+# Over several blocks, with a burst that overloads in the middle one only, the result must
+# still be the twin's, bit for bit, for every quantizer and dither variant and structure.
+@pytest.mark.parametrize("structure", STRUCTURES)
+@pytest.mark.parametrize(("levels", "dither"), [(2, 0.0), (2, 0.5), (9, 0.0), (9, 1.0)])
+def test_blocks_with_an_overload_in_one_equal_the_twin(structure, levels, dither, rng):
+    loop = make_loop(4, structure, "scaled", rng)
+    block = _kernels.LOOP_BLOCK
+    n = 3 * block + 77
+    u = 0.3 * np.sin(np.arange(n) * 0.01)
+    u[block + 200 : block + 260] = 40.0  # far beyond full scale: the guard must act here
+    dscale = dither * 2.0 / (levels - 1)
+    start = np.zeros(4)
+    expected = twin(
+        u,
+        coefficients(loop),
+        start,
+        12345,
+        np.zeros(4),
+        0,
+        CODES[structure],
+        levels,
+        dscale,
+        8.0,
+        1e6,
+        True,
+    )
+    got = run_kernel(_kernel_key(loop), loop, u, levels, dscale, 8.0, 1e6, True, start)
+    assert expected[4] > 0  # the burst did trip the guard
+    np.testing.assert_array_equal(got[0], expected[0])
+    np.testing.assert_array_equal(got[1], expected[1])
+    assert got[2] == expected[2]
+    np.testing.assert_array_equal(got[3], expected[3])
+    assert got[4] == expected[4]
+
+
+@pytest.mark.parametrize("structure", STRUCTURES)
+def test_kernels_report_the_first_non_finite_input_sample(structure, rng):
+    loop = make_loop(3, structure, "designed", rng)
+    n = 2 * _kernels.LOOP_BLOCK + 5
+    u = 0.1 * np.ones(n)
+    u[1500] = np.inf
+    u[1700] = np.nan
+    coef = coefficients(loop)
+    args = (2, 0.0, 8.0, 1e6, True)
+    fast = _kernels.loop_kernel(*_kernel_key(loop))
+    bad = fast(
+        u,
+        np.empty(n),
+        coef,
+        np.zeros(3),
+        np.zeros(1, np.uint64),
+        np.zeros(3),
+        np.zeros(1, np.int64),
+        *args,
+    )
+    generic = _kernels.loop_any_structure(
+        u,
+        np.empty(n),
+        coef,
+        np.zeros(3),
+        np.zeros(1, np.uint64),
+        np.zeros(3),
+        np.zeros(1, np.int64),
+        CODES[structure],
+        *args,
+        np.empty((0, 3)),
+    )
+    assert bad == generic == 1500
+    clean = fast(
+        0.1 * np.ones(n),
+        np.empty(n),
+        coef,
+        np.zeros(3),
+        np.zeros(1, np.uint64),
+        np.zeros(3),
+        np.zeros(1, np.int64),
+        *args,
+    )
+    assert clean == -1
+
+
+def test_general_chain_kernel_gives_the_unit_chain_kernels_numbers(rng):
+    # x * 1.0 == x exactly (IEEE 754), so the kernel that multiplies by the chain gains gives
+    # an unscaled loop's numbers too (the modulator uses it for short runs)
+    loop = make_loop(5, "feedback", "designed", rng)
+    key = _kernel_key(loop)
+    assert key[3]  # unit chain
+    u = 0.5 * np.sin(np.arange(5000) * 0.003) + 0.01 * rng.standard_normal(5000)
+    for levels, dither in [(2, 0.0), (2, 0.4), (5, 0.0)]:
+        dscale = dither * 2.0 / (levels - 1)
+        unit = run_kernel(key, loop, u, levels, dscale, 8.0, 1e6, True, np.zeros(5))
+        general = (key[0], key[1], key[2], False, key[4])
+        got = run_kernel(general, loop, u, levels, dscale, 8.0, 1e6, True, np.zeros(5))
+        for a, b in zip(unit[:5], got[:5], strict=True):
+            np.testing.assert_array_equal(a, b)
+
+
+def test_second_order_loop_equals_the_c_reference_loop():
+    # The 2nd-order single-bit loop of the project's C speed reference (shared/perf/limit.c,
+    # feedback2_1bit), transcribed as written there: two integrators, NTF (1 - z^-1)^2,
+    # a = (1, 2), unit gains, v = +1 when s2 >= 0 else -1, the update as a branch.
+    n = 3000
+    w = 2.0 * 3.141592653589793 * 1000.0 / 3072000.0
+    u = [0.5 * math.sin(w * i) for i in range(n)]
+    s1 = s2 = 0.0
+    expected = []
+    for ui in u:
+        t2 = s2 + 1.0 * s1
+        t1 = s1 + ui
+        if s2 >= 0.0:
+            expected.append(1.0)
+            s2, s1 = t2 - 2.0, t1 - 1.0
+        else:
+            expected.append(-1.0)
+            s2, s1 = t2 + 2.0, t1 + 1.0
+    ntf = NoiseTransfer.from_roots(zeros=[1.0, 1.0], poles=[0.0, 0.0])
+    loop = LoopRealization.for_ntf(ntf, structure="feedback")
+    np.testing.assert_allclose(loop.feedback, [1.0, 2.0], rtol=1e-15)
+    np.testing.assert_allclose(loop.input_gain, [1.0, 0.0], rtol=1e-15)
+    exact = dataclasses.replace(loop, feedback=np.array([1.0, 2.0]), input_gain=np.eye(2)[0])
+    got = run_kernel(_kernel_key(exact), exact, np.array(u), 2, 0.0, 8.0, 1e6, True, [0.0, 0.0])
+    np.testing.assert_array_equal(got[0], expected)
+    np.testing.assert_array_equal(got[1], [s1, s2])
 
 
 @pytest.mark.parametrize(("order", "kind"), [(1, "designed"), (2, "designed"), (5, "scaled")])

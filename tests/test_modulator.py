@@ -460,3 +460,41 @@ def test_scaled_quantizer_state_needs_a_single_bit_feedback_loop():
         )
     # without the option the quantizer-facing state keeps its size
     assert LoopRealization.for_ntf(ntf, structure="feedback").rescaled(peaks).state_scale[-1] == 1.0
+
+
+@pytest.mark.parametrize("shape", [(5000,), (5000, 2)])
+def test_run_into_a_given_buffer(shape, rng):
+    mod = Modulator(NoiseTransfer.designed(4, osr=64), levels=3, dither_lsb=0.5)
+    x = 0.4 * rng.standard_normal(shape)
+    y, st = mod.run(x)
+    buf = np.full(shape, 7.0)
+    y2, st2 = mod.run(x, out=buf)
+    assert y2 is buf
+    np.testing.assert_array_equal(y2, y)
+    np.testing.assert_array_equal(st2.integrators, st.integrators)
+    # a strided view is written too
+    wide = np.zeros((shape[0], 2 * (shape[1] if len(shape) == 2 else 1)))
+    view = wide[:, ::2] if len(shape) == 2 else wide[:, 0]
+    y3, _ = mod.run(x, out=view)
+    assert y3 is view
+    np.testing.assert_array_equal(view, y)
+    for bad in (np.empty(shape, dtype=np.float32), np.empty((shape[0] + 1, *shape[1:])), [0.0]):
+        with pytest.raises(ParameterError, match="out"):
+            mod.run(x, out=bad)
+    frozen = np.empty(shape)
+    frozen.setflags(write=False)
+    with pytest.raises(ParameterError, match="out"):
+        mod.run(x, out=frozen)
+
+
+def test_non_finite_sample_is_found_in_any_block_and_channel():
+    mod = Modulator(NoiseTransfer.designed(5, osr=64))
+    x = np.zeros((300_000, 2))
+    x[250_001, 1] = np.nan
+    x[260_000, 0] = np.inf
+    with pytest.raises(ParameterError, match="frame 260000"):  # channel 0 is reported first
+        mod.run(x)
+    with pytest.raises(ParameterError, match="frame 250001"):
+        mod.run(x[:, 1].copy())
+    with pytest.raises(ParameterError, match="frame 250001"):
+        mod.trace_states(x[:, 1].copy())

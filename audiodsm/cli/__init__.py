@@ -40,6 +40,8 @@ COMMANDS = {
     "design": "audiodsm.cli.design:design",
     "listening-set": "audiodsm.cli.listening_set:listening_set",
     "score-answers": "audiodsm.cli.score_answers:score_answers",
+    "plan": "audiodsm.cli.handoff:plan",
+    "handoff": "audiodsm.cli.handoff:handoff",
 }
 
 #: Signals that stop a command the way Ctrl-C does (clean-up first, then exit 128 + number).

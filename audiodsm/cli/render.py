@@ -111,6 +111,14 @@ def render(
     gain_db = chosen_error_gain_db(profile, error_file=error_file, error_gain_db=error_gain)
     out = prepare_output_folder(out_dir, inputs)
     click.echo(HEARING_CAUTION, err=True)
+    from audiodsm.stages.loop_cache import compiled_loops_missing
+
+    if compiled_loops_missing():
+        click.echo(
+            "audiodsm: compiling loops, once (the first run of a fresh checkout takes about "
+            "15 s longer; later runs load them)",
+            err=True,
+        )
     if gain_db is not None:
         click.echo(
             f"Caution: error-only files are amplified by {gain_db:g} dB; a loud passage in them "

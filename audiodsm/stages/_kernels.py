@@ -10,6 +10,7 @@ tests. The rate converters' loops live apart, in :mod:`audiodsm.stages._rate_ker
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 from numba import njit
@@ -109,6 +110,12 @@ def loop_any_structure(
         True: zero all states on overload; False: clip them.
     trace : float64 (n, order) or (0, order)
         When it has rows, the states after each sample are written to it.
+
+    Returns
+    -------
+    int
+        Index of the first non-finite input sample, or -1 (the caller raises; the loop has
+        run on, its guard acting there, since a non-finite sample always trips it).
     """
     order = state.shape[0]
     last = order - 1
@@ -119,6 +126,7 @@ def loop_any_structure(
     step = 2.0 / top
     counter = rng[0]
     overloads = counts[0]
+    bad = -1
     x = state.copy()
     for t in range(u.shape[0]):
         ut = u[t]
@@ -166,6 +174,9 @@ def loop_any_structure(
             ok = ok and abs(x[i]) <= state_bound
         if not ok:
             overloads += 1
+            # a non-finite input sample always trips the guard (b[0] * u[t] reaches x[0])
+            if bad < 0 and not math.isfinite(ut):
+                bad = t
             for i in range(order):
                 x[i] = 0.0 if reset else _clamp(x[i], state_bound)
         for i in range(order):
@@ -175,6 +186,7 @@ def loop_any_structure(
     state[:] = x
     rng[0] = counter
     counts[0] = overloads
+    return bad
 
 
 # The specialised loops. Each keeps every state in a local scalar (a loop over a state array
@@ -189,18 +201,35 @@ def loop_any_structure(
 
 STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2, "feedforward-feed-in": 3}
 
+#: samples per block of a specialised loop (see loop_kernel_source): small enough that a block
+#: run again with the guard costs little, large enough that the per-block work does not show
+LOOP_BLOCK = 1024
 
-def loop_kernel_name(structure, order, lossless, unit_chain, pairs):
-    """Name of the specialised kernel for these properties."""
+
+def loop_kernel_name(structure, order, lossless, unit_chain, pairs, variant=None):
+    """Name of the specialised kernel for these properties (and quantizer/dither variant)."""
     kind = structure.replace("-", "_")
     leak = "l" if lossless else "d"
     chain = "u" if unit_chain else "k"
     resonators = "all" if pairs < 0 else pairs
-    return f"{kind}_loop_order{order}_{leak}{chain}_p{resonators}"
+    name = f"{kind}_loop_order{order}_{leak}{chain}_p{resonators}"
+    if variant is not None:
+        single_bit, dithered = variant
+        name += ("_bit" if single_bit else "_levels") + ("_dither" if dithered else "")
+    return name
 
 
-def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
+def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=None):
     """Python source of one specialised loop kernel (see loop_kernel).
+
+    The kernel runs its samples in blocks of ``LOOP_BLOCK``. Each block first runs without
+    the guard, keeping each state's largest magnitude over the block (and the quantizer
+    input's, where it is not a state). When those stay within the bounds and the states are
+    finite at the end (a non-finite value never leaves the chain: every update adds the
+    state's own value), the guard would not have acted on any sample of the block, and the
+    block stands. Otherwise the block is run again from its saved start with the guard on
+    every sample, exactly as before. Either way the output is the same, bit for bit; the
+    guard's comparisons just leave the per-sample work.
 
     Parameters
     ----------
@@ -216,11 +245,15 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     pairs : int
         Number of resonator pairs at the head of the chain (upstream integrators 0, 2, ...),
         or -1 to keep the resonator term on every integrator.
+    variant : (bool, bool) or None
+        ``(single_bit, dithered)``: the source of the kernel for only that quantizer (two
+        levels or more) and dither (on or off), the one :func:`loop_kernel` compiles; None
+        gives one function holding every case, chosen at run time.
     """
     n = order
     code = STRUCTURE_CODES[structure]
     feed_in = code == 3
-    code = 1 if feed_in else code  # the same loop as feedforward but for the quantizer input
+    code = 1 if feed_in else code  # feedforward but for the input at the quantizer
     lines = []
     add = lines.append
     xs = ", ".join(f"x{i}" for i in range(n))
@@ -232,7 +265,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
     def has_a(i):
         return code != 1 or i == 0
 
-    add(f"def {loop_kernel_name(structure, order, lossless, unit_chain, pairs)}(")
+    add(f"def {loop_kernel_name(structure, order, lossless, unit_chain, pairs, variant)}(")
     add("    u, out, coef, state, rng, peaks, counts, levels, dither_scale, input_bound,")
     add("    state_bound, reset,")
     add("):")
@@ -253,11 +286,28 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
         if code == 1:
             add(f"    c{i} = coef[5, {i}]")
     add("    b0 = coef[4, 0]")
+    # a * v for v = copysign(1, w) is a with its sign flipped when w's sign bit is set, which
+    # for a >= 0 is copysign(a, w): exact, and a sign-bit operation instead of a multiply
+    # on the loop's critical path (limit.c's flip)
+    signs = " and ".join(f"(a{i} >= 0.0)" for i in range(n) if has_a(i))
+    add(f"    flip = {signs}")
     for i in range(n):
         add(f"    x{i} = state[{i}]")
         add(f"    p{i} = peaks[{i}]")
     add("    counter = rng[0]")
     add("    overloads = counts[0]")
+    add("    bad = -1")
+    add("    total = u.shape[0]")
+
+    def quantizer_input():
+        if code == 0:
+            return f"x{n - 1}"
+        if code == 1:
+            y = "u[t]" if feed_in else "0.0"
+            for i in range(n):
+                y = f"({y} + c{i} * x{i})"
+            return y
+        return f"u[t] + x{n - 1}"
 
     def base(i):
         own = f"x{i}" if lossless else f"d{i} * x{i}"
@@ -267,104 +317,206 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs):
             prev = f"x{i - 1}" if unit_chain else f"k{i} * x{i - 1}"
         return f"({own} + {prev})"
 
-    def body(single_bit, dithered):
-        ind = "            "
-        if code == 0:
-            y = f"x{n - 1}"
-        elif code == 1:
-            y = "u[t]" if feed_in else "0.0"
-            for i in range(n):
-                y = f"({y} + c{i} * x{i})"
-        else:
-            y = f"u[t] + x{n - 1}"
-        body_lines = [f"{ind}y = {y}"]
-        if dithered:
-            body_lines += [
-                f"{ind}counter += _GOLDEN",
-                f"{ind}r1 = _unit_from_counter(counter)",
-                f"{ind}counter += _GOLDEN",
-                f"{ind}r2 = _unit_from_counter(counter)",
-                f"{ind}w = y + dither_scale * (r1 - r2)",
-            ]
-        else:
-            body_lines.append(f"{ind}w = y")
+    def update(ind, single_bit, flipped):
+        """The quantizer and the state update, as ``loop_any_structure`` does them."""
+        out = []
         if single_bit:
-            body_lines += [f"{ind}v = math.copysign(1.0, w)", f"{ind}out[t] = v"]
+            out += [f"{ind}v = math.copysign(1.0, w)", f"{ind}out[t] = v"]
         else:
-            body_lines += [
+            out += [
                 f"{ind}q = np.floor(w * half + offset)",
                 f"{ind}q = min(max(q, 0.0), top)",
                 f"{ind}v = q * step - 1.0",
                 f"{ind}out[t] = v",
             ]
         if code == 2:
-            body_lines.append(f"{ind}f = x{n - 1} + (v - y)")
+            out.append(f"{ind}f = x{n - 1} + (v - y)")
         for i in range(n - 1, -1, -1):
             expr = base(i)
             if has_a(i):
                 if code == 2:
                     expr = f"{expr} - a{i} * f"
+                elif single_bit and flipped:
+                    expr = f"{expr} - math.copysign(a{i}, w)"
                 elif single_bit:
                     expr = f"{expr} - a{i} * v"
                 else:
                     expr = f"({expr} + a{i}) - q * s{i}"
             if has_g(i):
                 expr = f"({expr}) - g{i} * n{i + 1}"
-            body_lines.append(f"{ind}n{i} = {expr}")
-        body_lines.append(f"{ind}{xs} = {ns}")
+            out.append(f"{ind}n{i} = {expr}")
+        out.append(f"{ind}{xs} = {ns}")
+        return out
+
+    def dither(ind):
+        return [
+            f"{ind}counter += _GOLDEN",
+            f"{ind}r1 = _unit_from_counter(counter)",
+            f"{ind}counter += _GOLDEN",
+            f"{ind}r2 = _unit_from_counter(counter)",
+            f"{ind}w = y + dither_scale * (r1 - r2)",
+        ]
+
+    def fast_loop(ind, single_bit, dithered, flipped):
+        """One block without the guard: block peaks ``m*`` (and ``my``, the quantizer input)."""
+        out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {quantizer_input()}"]
+        out += dither(ind + "    ") if dithered else [f"{ind}    w = y"]
+        out += update(ind + "    ", single_bit, flipped)
+        out += [f"{ind}    m{i} = max(m{i}, abs(x{i}))" for i in range(n)]
+        if code != 0:
+            out.append(f"{ind}    my = max(my, abs(y))")
+        return out
+
+    def guarded_loop(ind):
+        """One block with the guard on every sample (the variant's case, or all four)."""
+        out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {quantizer_input()}"]
+        if variant is None:
+            out.append(f"{ind}    if dither_scale != 0.0:")
+            out += dither(ind + "        ")
+            out += [f"{ind}    else:", f"{ind}        w = y", f"{ind}    if levels == 2:"]
+            out += update(ind + "        ", True, False)
+            out.append(f"{ind}    else:")
+            out += update(ind + "        ", False, False)
+        else:
+            out += dither(ind + "    ") if variant[1] else [f"{ind}    w = y"]
+            out += update(ind + "    ", variant[0], False)
         conds = " & ".join(
             ["(abs(y) <= input_bound)"] + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
         )
-        body_lines += [
-            f"{ind}if not ({conds}):",
-            f"{ind}    overloads += 1",
-            f"{ind}    if reset:",
-            f"{ind}        {xs} = " + ", ".join("0.0" for _ in range(n)),
-            f"{ind}    else:",
+        out += [
+            f"{ind}    if not ({conds}):",
+            f"{ind}        overloads += 1",
+            # a non-finite input sample always trips the guard (b0 * u[t] reaches x0)
+            f"{ind}        if bad < 0 and not math.isfinite(u[t]):",
+            f"{ind}            bad = t",
+            f"{ind}        if reset:",
+            f"{ind}            {xs} = " + ", ".join("0.0" for _ in range(n)),
+            f"{ind}        else:",
         ]
-        body_lines += [f"{ind}        x{i} = _clamp(x{i}, state_bound)" for i in range(n)]
-        body_lines += [f"{ind}p{i} = max(p{i}, abs(x{i}))" for i in range(n)]
-        return body_lines
+        out += [f"{ind}            x{i} = _clamp(x{i}, state_bound)" for i in range(n)]
+        out += [f"{ind}    p{i} = max(p{i}, abs(x{i}))" for i in range(n)]
+        return out
 
-    first = True
+    cases = []
     for single_bit in (True, False):
         for dithered in (False, True):
+            if variant is not None and variant != (single_bit, dithered):
+                continue
             cond = f"{'levels == 2' if single_bit else 'levels != 2'} and "
             cond += "dither_scale != 0.0" if dithered else "dither_scale == 0.0"
-            add(f"    {'if' if first else 'elif'} {cond}:")
-            first = False
-            add("        for t in range(u.shape[0]):")
-            lines.extend(body(single_bit, dithered))
+            if variant is not None:
+                cond = "True"
+            if single_bit and code != 2:
+                cases.append(
+                    ("flip" if variant else f"{cond} and flip", *(single_bit, dithered), True)
+                )
+            cases.append((cond, single_bit, dithered, False))
+
+    add("    start = 0")
+    add("    while start < total:")
+    add(f"        stop = min(start + {LOOP_BLOCK}, total)")
+    add(f"        {', '.join(f'o{i}' for i in range(n))} = {xs}")
+    add("        counter_start = counter")
+    add(f"        {', '.join(f'm{i}' for i in range(n))} = " + ", ".join("0.0" for _ in range(n)))
+    if code != 0:
+        add("        my = 0.0")
+    for j, (cond, single_bit, dithered, flipped) in enumerate(cases):
+        if j == len(cases) - 1 and j > 0:
+            add("        else:")  # the last case needs no test
+        else:
+            add(f"        {'if' if j == 0 else 'elif'} {cond}:")
+        lines.extend(fast_loop("            ", single_bit, dithered, flipped))
+    if code == 0:
+        # y is the last state at the start of each sample: the block's first value, then
+        # the block's updates (the last one conservatively too)
+        y_ok = f"(abs(o{n - 1}) <= input_bound) & (m{n - 1} <= input_bound)"
+    else:
+        y_ok = "(my <= input_bound)"
+    conds = " & ".join(
+        [y_ok]
+        + [f"(m{i} <= state_bound)" for i in range(n)]
+        + [f"(abs(x{i}) <= state_bound)" for i in range(n)]
+    )
+    add(f"        if {conds}:")
+    lines.extend(f"            p{i} = max(p{i}, m{i})" for i in range(n))
+    add("        else:")
+    add(f"            {xs} = {', '.join(f'o{i}' for i in range(n))}")
+    add("            counter = counter_start")
+    lines.extend(guarded_loop("            "))
+    add("        start = stop")
     for i in range(n):
         add(f"    state[{i}] = x{i}")
     for i in range(n):
         add(f"    peaks[{i}] = p{i}")
     add("    rng[0] = counter")
     add("    counts[0] = overloads")
+    add("    return bad")
     return "\n".join(lines) + "\n"
 
 
 _LOOP_KERNELS = {}
 
 
-def loop_kernel(structure, order, lossless, unit_chain, pairs):
-    """Compiled specialised loop for these properties (built from the template on first use).
+class _LoopKernel:
+    """The specialised loop for one set of properties, one compiled kernel per variant.
 
-    Arguments of the returned function: ``(u, out, coef, state, rng, peaks, counts, levels,
-    dither_scale, input_bound, state_bound, reset)``, as for ``loop_any_structure``.
+    A call runs the variant for the quantizer (two levels or more) and dither (on or off) it
+    is given, compiling that variant (or loading it from numba's on-disk cache) on first use.
+    Only the variants a program uses are ever compiled, each a fraction of the code of one
+    kernel for every case.
+    """
+
+    def __init__(self, key):
+        self.key = key
+        self._variants = {}
+        self._lock = threading.Lock()  # channels in threads: build each variant once
+
+    def variant(self, single_bit, dithered):
+        """The compiled kernel for one quantizer and dither case."""
+        which = (bool(single_bit), bool(dithered))
+        kernel = self._variants.get(which)
+        if kernel is None:
+            with self._lock:
+                kernel = self._variants.get(which)
+                if kernel is None:
+                    kernel = _compile_loop_source(*self.key, which)
+                    self._variants[which] = kernel
+        return kernel
+
+    def has_variant(self, single_bit, dithered):
+        """Whether that variant is compiled or loaded in this process already."""
+        return (bool(single_bit), bool(dithered)) in self._variants
+
+    def __call__(self, u, out, coef, state, rng, peaks, counts, levels, dither_scale, *bounds):
+        kernel = self.variant(levels == 2, dither_scale != 0.0)
+        return kernel(u, out, coef, state, rng, peaks, counts, levels, dither_scale, *bounds)
+
+
+def _compile_loop_source(structure, order, lossless, unit_chain, pairs, variant):
+    source = loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant)
+    name = loop_kernel_name(structure, order, lossless, unit_chain, pairs, variant)
+    namespace = {}
+    # compiled under this file's name so numba's cache can find (and invalidate) it: the
+    # cache index is keyed by the function's qualified name and this file's time stamp
+    exec(compile(source, __file__, "exec"), globals(), namespace)
+    function = namespace[name]
+    function.__module__ = __name__
+    function.__qualname__ = name
+    return njit(cache=True, nogil=True)(function)
+
+
+def loop_kernel(structure, order, lossless, unit_chain, pairs):
+    """Specialised loop for these properties (each variant built from the template on first use).
+
+    Arguments of the returned callable: ``(u, out, coef, state, rng, peaks, counts, levels,
+    dither_scale, input_bound, state_bound, reset)``, as for ``loop_any_structure``; it returns
+    the index of the first non-finite input sample, or -1. ``.variant(single_bit, dithered)``
+    gives the compiled kernel of one case.
     """
     key = (str(structure), int(order), bool(lossless), bool(unit_chain), int(pairs))
     kernel = _LOOP_KERNELS.get(key)
     if kernel is None:
-        source = loop_kernel_source(*key)
-        name = loop_kernel_name(*key)
-        namespace = {}
-        # compiled under this file's name so numba's cache can find (and invalidate) it
-        exec(compile(source, __file__, "exec"), globals(), namespace)
-        function = namespace[name]
-        function.__module__ = __name__
-        function.__qualname__ = name
-        kernel = njit(cache=True, nogil=True)(function)
+        kernel = _LoopKernel(key)
         _LOOP_KERNELS[key] = kernel
     return kernel
 

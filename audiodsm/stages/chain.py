@@ -244,16 +244,24 @@ def _settings_of(profile: ChainProfile, section: str):
 
 @functools.lru_cache(maxsize=64)
 def _designed_ntf(order, osr, out_of_band_gain, zero_layout, zero_band_edge=None):
-    """NoiseTransfer.designed, remembered: a battery builds the same chain many times."""
+    """NoiseTransfer.designed, remembered in this process and on disk (stages/loop_cache.py)."""
     from audiodsm.design.ntf import NoiseTransfer
+    from audiodsm.stages import loop_cache
 
-    return NoiseTransfer.designed(
-        order,
-        osr=osr,
-        out_of_band_gain=out_of_band_gain,
-        zero_layout=zero_layout,
-        zero_band_edge=zero_band_edge,
-    )
+    key = (int(order), float(osr), float(out_of_band_gain), str(zero_layout))
+    if zero_band_edge is not None:
+        key += (float(zero_band_edge),)
+    ntf = loop_cache.load("ntf", key)
+    if not isinstance(ntf, NoiseTransfer):
+        ntf = NoiseTransfer.designed(
+            order,
+            osr=osr,
+            out_of_band_gain=out_of_band_gain,
+            zero_layout=zero_layout,
+            zero_band_edge=zero_band_edge,
+        )
+        loop_cache.store("ntf", key, ntf)
+    return ntf
 
 
 def _zero_band_edge(edge_hz, rate_hz, modulator_rate_hz):
@@ -276,8 +284,9 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
 
     Scaling simulates (a stability search and one check run, see
     :meth:`~audiodsm.stages.modulator.Modulator.with_scaled_states`), so results are remembered
-    per process, keyed by the NTF's values and every setting that enters the simulation; the
-    runs are deterministic, so a remembered result equals a fresh one. The search runs the unscaled
+    per process and on disk (:mod:`audiodsm.stages.loop_cache`), keyed by the NTF's values and
+    every setting that enters the simulation; the runs are deterministic, so a remembered
+    result equals a fresh one. The search runs the unscaled
     loop with the modulator's default guard bounds (the profile's ``state_bound`` is meant for
     the scaled states). A loop with no stable amplitude at all is left unscaled.
 
@@ -289,6 +298,7 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
         The scaled loop's simulated state peaks at the maximum stable amplitude (None when
         scaling is off; amplitude 0 when no stable amplitude was found).
     """
+    from audiodsm.stages import loop_cache
     from audiodsm.stages.modulator import Modulator, StabilityProbe
 
     if mode == "off":
@@ -305,14 +315,18 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
     hit = _SCALED_LOOPS.get(key)
     if hit is not None:
         return hit
-    unscaled = Modulator(ntf, **mod_kwargs)
-    try:
-        scaled, probe = unscaled.with_scaled_states(
-            osr=osr, peak_target=bound, powers_of_two=(mode == "power-of-two")
-        )
-        result = (scaled.loop, probe)
-    except ParameterError:  # no stable amplitude: nothing to scale for
-        result = (unscaled.loop, StabilityProbe(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0))
+    result = loop_cache.load("scaled-loop", key)
+    if not (isinstance(result, tuple) and isinstance(result[1], StabilityProbe)):
+        unscaled = Modulator(ntf, **mod_kwargs)
+        try:
+            scaled, probe = unscaled.with_scaled_states(
+                osr=osr, peak_target=bound, powers_of_two=(mode == "power-of-two")
+            )
+            result = (scaled.loop, probe)
+        except ParameterError:  # no stable amplitude: nothing to scale for
+            zero = StabilityProbe(0.0, np.zeros(unscaled.order), 0.0, 0.0, 0.0)
+            result = (unscaled.loop, zero)
+        loop_cache.store("scaled-loop", key, result)
     if len(_SCALED_LOOPS) >= _SCALED_LOOPS_MAX:
         _SCALED_LOOPS.pop(next(iter(_SCALED_LOOPS)))
     _SCALED_LOOPS[key] = result
@@ -540,7 +554,20 @@ class Chain:
                 mod_kwargs["state_bound"] = mod.state_bound
             self.modulator = Modulator(loop, **mod_kwargs)
             self.input_scale = mod.input_scale or auto_input_scale(self.ntf, mod.levels)
-            self._loop_space = self.modulator.loop.linearized()
+            # [fixed_point]: the signal path runs the bit-true integer loop built from the
+            # same (scaled) realization; self.modulator stays the float reference
+            self.fixed_loop = None
+            signal_loop = self.modulator.loop
+        if profile.fixed_point.active:
+            with _settings_of(profile, "fixed_point"):
+                from audiodsm.stages.fixed_loop import FixedPointModulator, format_from_settings
+
+                self.fixed_loop = FixedPointModulator(
+                    self.modulator.loop, format_from_settings(profile.fixed_point), mod.levels
+                )
+                signal_loop = self.fixed_loop.quantized_loop
+        with _settings_of(profile, "modulator"):
+            self._loop_space = signal_loop.linearized()
             self._stf = _stf_filter(self._loop_space)
 
         with _settings_of(profile, "reconstruction"):
@@ -756,7 +783,7 @@ class Chain:
             x = x * self.input_scale  # at the audio rate: the upsampler is linear
         xu, up_s = self._upsampler.process(x, st.upsampler)
         t1 = clock()
-        y, mod_s = self.modulator.run(xu, st.modulator)
+        y, mod_s = (self.fixed_loop or self.modulator).run(xu, st.modulator)
         t2 = clock()
         ripple = [] if "analog" in keep else None
         if self._pwm_dead_time is not None:  # output stage and filter in one loop

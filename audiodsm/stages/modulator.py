@@ -29,11 +29,12 @@ __all__ = [
 ]
 
 GUARD_ACTIONS = ("reset", "clamp")
+#: runs shorter than this (samples per channel) may use a more general kernel (see __init__)
+_SHORT_RUN = 1 << 16
 _GOLDEN = 0x9E3779B97F4A7C15
 _MASK = (1 << 64) - 1
 
 
-_CHUNK = 1 << 15  # samples per kernel call inside one run
 _POOLS: dict[int, ThreadPoolExecutor] = {}
 
 
@@ -225,6 +226,13 @@ class Modulator:
 
         key = _kernel_key(loop)
         self._fast_kernel = None if key is None else _kernels.loop_kernel(*key)
+        # An unscaled loop's kernel leaves out the chain gains (all exactly 1); the kernel
+        # that multiplies by them computes the same numbers (x * 1.0 == x), so short runs
+        # (the stability search's, before the chain runs the scaled loop with that kernel)
+        # take it unless this loop's own is already loaded: one compile instead of two.
+        self._general_kernel = None
+        if key is not None and key[3]:
+            self._general_kernel = _kernels.loop_kernel(key[0], key[1], key[2], False, key[4])
 
     @property
     def structure(self) -> str:
@@ -283,58 +291,82 @@ class Modulator:
             )
         return x, x2, state
 
-    def _run_channel(self, u, state_row, counter, peak_row, count, trace):
-        out = np.empty(len(u))
-        st = np.array(state_row, dtype=np.float64)
-        rng = np.array([counter], dtype=np.uint64)
-        peaks = np.array(peak_row, dtype=np.float64)
-        counts = np.array([count], dtype=np.int64)
-        u = np.ascontiguousarray(u, dtype=np.float64)
+    def _kernel_scalars(self) -> tuple:
+        """The scalar arguments every loop kernel takes after its arrays, in order."""
         g = self._quantizer_gain
-        args = (
+        return (
             self.levels,
             self.dither_lsb * self.step / g,
             self.input_bound / g,
             self.state_bound,
+            self.guard == "reset",
         )
-        reset = self.guard == "reset"
-        no_trace = np.empty((0, self.order))
-        # Chunks small enough to stay in cache: each is checked for non-finite samples and then
-        # run, so the check costs little. Streaming makes the chunking invisible in the result.
-        for start in range(0, len(u), _CHUNK):
-            stop = min(len(u), start + _CHUNK)
-            seg = u[start:stop]
-            if not np.isfinite(seg).all():
-                bad = start + int(np.flatnonzero(~np.isfinite(seg))[0])
-                raise ParameterError("x", f"non-finite sample at frame {bad}", "finite samples")
-            if trace is None and self._fast_kernel is not None:
-                self._fast_kernel(
-                    seg, out[start:stop], self._coef, st, rng, peaks, counts, *args, reset
-                )
-            else:
-                _kernels.loop_any_structure(
-                    seg,
-                    out[start:stop],
-                    self._coef,
-                    st,
-                    rng,
-                    peaks,
-                    counts,
-                    _kernels.STRUCTURE_CODES[_kernel_structure(self.loop)],
-                    *args,
-                    reset,
-                    no_trace if trace is None else trace[start:stop],
-                )
-        return out, st, rng[0], peaks, counts[0]
 
-    def _process(self, x, state, want_trace):
+    def _run_channel(self, u, out, state_row, counter, peak_row, count, trace):
+        """One channel through one kernel call; returns (state, counter, peaks, count, bad).
+
+        ``u`` and ``out`` are contiguous float64 of the same length. The kernels run any
+        length in one call (they block the samples themselves) and report the first
+        non-finite input sample (``bad``, -1 when there is none).
+        """
+        st = np.array(state_row, dtype=np.float64)
+        rng = np.array([counter], dtype=np.uint64)
+        peaks = np.array(peak_row, dtype=np.float64)
+        counts = np.array([count], dtype=np.int64)
+        scalars = self._kernel_scalars()
+        if trace is None and self._fast_kernel is not None:
+            kernel = self._fast_kernel
+            if len(u) < _SHORT_RUN and self._general_kernel is not None:
+                variant = (self.levels == 2, scalars[1] != 0.0)
+                if not kernel.has_variant(*variant):
+                    kernel = self._general_kernel
+            bad = kernel(u, out, self._coef, st, rng, peaks, counts, *scalars)
+        else:
+            bad = _kernels.loop_any_structure(
+                u,
+                out,
+                self._coef,
+                st,
+                rng,
+                peaks,
+                counts,
+                _kernels.STRUCTURE_CODES[_kernel_structure(self.loop)],
+                *scalars,
+                np.empty((0, self.order)) if trace is None else trace,
+            )
+        return st, rng[0], peaks, counts[0], int(bad)
+
+    def _check_out(self, out, shape):
+        if not isinstance(out, np.ndarray):
+            raise ParameterError("out", type(out).__name__, "a float64 array or None")
+        if out.shape != shape or out.dtype != np.float64 or not out.flags.writeable:
+            raise ParameterError(
+                "out",
+                f"{out.dtype} array of shape {out.shape}",
+                f"a writeable float64 array of shape {shape}",
+            )
+        return out
+
+    def _process(self, x, state, want_trace, out=None):
         x, x2, state = self._check(x, state)
         n, channels = x2.shape
+        if out is not None:
+            out = self._check_out(out, x.shape)
         traces = [np.empty((n, self.order)) if want_trace else None for _ in range(channels)]
+        if x.ndim == 1:
+            # one channel: straight into the caller's buffer (or a fresh one), no copies
+            u = np.ascontiguousarray(x2[:, 0])
+            y = out if out is not None and out.flags.c_contiguous else np.empty(n)
+            outs = [y]
+        else:
+            y = out if out is not None else np.empty((n, channels))
+            outs = [np.empty(n) for _ in range(channels)]
 
         def one(c):
+            u_c = u if x.ndim == 1 else np.ascontiguousarray(x2[:, c])
             return self._run_channel(
-                x2[:, c],
+                u_c,
+                outs[c],
                 state.integrators[c],
                 state.rng_counter[c],
                 state.state_peak[c],
@@ -346,22 +378,28 @@ class Modulator:
             results = list(_thread_pool().map(one, range(channels)))
         else:
             results = [one(c) for c in range(channels)]
+        for r in results:
+            if r[4] >= 0:
+                raise ParameterError("x", f"non-finite sample at frame {r[4]}", "finite samples")
         if x.ndim == 1:
-            y = results[0][0]
+            if y is not out and out is not None:
+                out[...] = y
+                y = out
         else:
-            y = np.empty((n, channels))
-            for c, r in enumerate(results):
-                y[:, c] = r[0]
+            for c in range(channels):
+                y[:, c] = outs[c]
         new_state = ModulatorState(
-            integrators=_readonly(np.array([r[1] for r in results])),
-            rng_counter=_readonly(np.array([r[2] for r in results], dtype=np.uint64)),
-            state_peak=_readonly(np.array([r[3] for r in results])),
-            overload_count=_readonly(np.array([r[4] for r in results], dtype=np.int64)),
+            integrators=_readonly(np.array([r[0] for r in results])),
+            rng_counter=_readonly(np.array([r[1] for r in results], dtype=np.uint64)),
+            state_peak=_readonly(np.array([r[2] for r in results])),
+            overload_count=_readonly(np.array([r[3] for r in results], dtype=np.int64)),
             samples=state.samples + n,
         )
         return y, new_state, traces
 
-    def run(self, x, state: ModulatorState | None = None) -> tuple[np.ndarray, ModulatorState]:
+    def run(
+        self, x, state: ModulatorState | None = None, *, out: np.ndarray | None = None
+    ) -> tuple[np.ndarray, ModulatorState]:
         """Modulate ``x`` (full-scale units at the modulator rate).
 
         Parameters
@@ -371,16 +409,28 @@ class Modulator:
             Zero frames are allowed: the output is empty and the state comes back unchanged.
         state : ModulatorState or None
             The state returned by the previous call, or None to start from rest.
+        out : ndarray or None, keyword-only
+            A writeable float64 array of the shape of ``x`` to write the output into (and
+            return), instead of a new one: a caller running many blocks saves the allocation
+            and the first touch of fresh memory. On a ParameterError for a non-finite input
+            sample its contents are undefined.
 
         Returns
         -------
         y : ndarray, same shape as ``x``
-            Quantizer output, values in ``-1 + step * k``, ``k = 0 .. levels-1``.
+            Quantizer output, values in ``-1 + step * k``, ``k = 0 .. levels-1`` (``out``
+            itself when given).
         state : ModulatorState
             The state after the last sample. Running ``x`` in blocks and passing the state on
             gives the same ``y``, bit for bit, as one call.
+
+        Raises
+        ------
+        ParameterError
+            For a non-finite input sample (the message names the first one's frame), a
+            state of the wrong shape, or an ``out`` of the wrong shape or type.
         """
-        y, new_state, _ = self._process(x, state, False)
+        y, new_state, _ = self._process(x, state, False, out)
         return y, new_state
 
     def process(self, x, state: ModulatorState | None = None):
