@@ -18,12 +18,12 @@ Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
     level_codes, PackedBitsWriter, write_packed_bits, read_packed_bits,
     CodeTextWriter, write_code_text, read_code_text
-Reconstruction (``audiodsm.stages.reconstruct``)
+Reconstruction (``audiodsm.stages.filter_design``, ``audiodsm.stages.reconstruct``)
     AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
     filter_waveform, filter_waveform_ticks, filter_waveform_power, FilterState,
     filter_pwm_with_dead_time, DeadTimeState, out_of_band_ripple, waveform_ripple,
     RippleReport, filter_report, FilterReport
-Chain (``audiodsm.stages.chain``)
+Chain (``audiodsm.stages.chain``, ``audiodsm.stages.chain_records``)
     Chain, ChainResult, run_chain
 Measurement (``audiodsm.measure``)
     a_weighting_db, ccir_weighting_db, weighting_filter, band_limit,
@@ -49,7 +49,8 @@ Level and frequency response (``audiodsm.measure.response``)
     level_linearity, frequency_response, stepped_frequency_response
 Intermodulation (``audiodsm.measure.intermod``)
     imd_smpte, imd_difference_frequency
-Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``)
+Idle tones and channel content (``audiodsm.measure.idle_tones``, ``audiodsm.measure.classify``,
+``audiodsm.measure.channel_analysis``)
     find_idle_tones, IdleToneResult, SpectralLine, line_threshold, welch_degrees_of_freedom,
     line_spectrum, accumulate_line_spectrum, LineSpectrumState, classify_channel,
     ChannelContent, analyze_blocks, ChannelAnalysis
@@ -63,7 +64,7 @@ Audio files (``audiodsm.io``)
     write_audio_atomic, open_audio_writer
 Files and profiles
     read_audio, write_audio_atomic, load_profile, load_spec
-Chain profiles (``audiodsm.profile``)
+Chain profiles (``audiodsm.profile``, ``audiodsm.profile_text``)
     ChainProfile, load_profile, parse_profile, profile_to_toml, profile_digest
 Spec sheets (``audiodsm.spec``)
     load_spec, parse_spec, spec_digest, SpecSheet, Target, METRIC_CATALOGUE
@@ -107,8 +108,8 @@ _PUBLIC = {
     "LineSpectrumState": "audiodsm.measure.idle_tones",
     "classify_channel": "audiodsm.measure.classify",
     "ChannelContent": "audiodsm.measure.classify",
-    "analyze_blocks": "audiodsm.measure.classify",
-    "ChannelAnalysis": "audiodsm.measure.classify",
+    "analyze_blocks": "audiodsm.measure.channel_analysis",
+    "ChannelAnalysis": "audiodsm.measure.channel_analysis",
     "read_audio": "audiodsm.io",
     "read_audio_span": "audiodsm.io",
     "audio_info": "audiodsm.io",
@@ -136,11 +137,11 @@ _PUBLIC = {
     "CodeTextWriter": "audiodsm.stages.output_stage",
     "write_code_text": "audiodsm.stages.output_stage",
     "read_code_text": "audiodsm.stages.output_stage",
-    "AnalogFilter": "audiodsm.stages.reconstruct",
-    "analog_prototype": "audiodsm.stages.reconstruct",
-    "lc_filter": "audiodsm.stages.reconstruct",
-    "SemiDigitalFir": "audiodsm.stages.reconstruct",
-    "semi_digital_fir": "audiodsm.stages.reconstruct",
+    "AnalogFilter": "audiodsm.stages.filter_design",
+    "analog_prototype": "audiodsm.stages.filter_design",
+    "lc_filter": "audiodsm.stages.filter_design",
+    "SemiDigitalFir": "audiodsm.stages.filter_design",
+    "semi_digital_fir": "audiodsm.stages.filter_design",
     "filter_waveform": "audiodsm.stages.reconstruct",
     "filter_waveform_ticks": "audiodsm.stages.reconstruct",
     "filter_waveform_power": "audiodsm.stages.reconstruct",
@@ -154,7 +155,7 @@ _PUBLIC = {
     "FilterReport": "audiodsm.stages.reconstruct",
     "ChainProfile": "audiodsm.profile",
     "Chain": "audiodsm.stages.chain",
-    "ChainResult": "audiodsm.stages.chain",
+    "ChainResult": "audiodsm.stages.chain_records",
     "run_chain": "audiodsm.stages.chain",
     "run_battery": "audiodsm.evaluate.battery",
     "BatteryPlan": "audiodsm.evaluate.battery",
@@ -171,8 +172,8 @@ _PUBLIC = {
     "run_design_job": "audiodsm.evaluate.design_job",
     "load_profile": "audiodsm.profile",
     "parse_profile": "audiodsm.profile",
-    "profile_to_toml": "audiodsm.profile",
-    "profile_digest": "audiodsm.profile",
+    "profile_to_toml": "audiodsm.profile_text",
+    "profile_digest": "audiodsm.profile_text",
     "a_weighting_db": "audiodsm.measure.weighting",
     "bs468_weighting_db": "audiodsm.measure.weighting",
     "ccir_weighting_db": "audiodsm.measure.weighting",

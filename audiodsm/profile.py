@@ -17,14 +17,10 @@ dotted key, the value received and what is allowed.
 from __future__ import annotations
 
 import dataclasses
-import hashlib
-import json
 import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-
-import tomli_w
 
 from audiodsm.errors import ProfileError
 from audiodsm.limits import (
@@ -37,6 +33,7 @@ from audiodsm.limits import (
     OUT_OF_BAND_GAIN_RANGE,
     ZERO_LAYOUTS,
 )
+from audiodsm.profile_checks import _check_whole
 
 __all__ = [
     "AUDIO_RATES_HZ",
@@ -51,13 +48,7 @@ __all__ = [
     "load_profile",
     "parse_profile",
     "profile_from_dict",
-    "profile_to_dict",
-    "profile_to_toml",
-    "profile_digest",
 ]
-
-#: Version of the digest recipe; bump it when the meaning of a key changes.
-_DIGEST_VERSION = 2  # 2: modulator state scaling (on by default)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -824,164 +815,6 @@ def _parse_section(cls, table, path, section):
     return settings
 
 
-#: The farthest an explicit NTF zero may lie from the z-plane's origin. Zeros belong on or
-#: near the unit circle (in band); one at radius r lifts the NTF's gain near Nyquist by about
-#: (1 + r) / 2, so beyond 10 no loop is stable, and far beyond it the arithmetic overflows.
-ZERO_RADIUS_MAX = 10.0
-#: The largest sum of |taps| a semi-digital FIR may have: the filter adds tap x level terms,
-#: and this leaves room below the float64 limit (about 1.8e308) for levels in volts.
-FIR_ABS_SUM_MAX = 1e300
-#: The smallest |sum of taps| relative to the sum of |taps|: the chain divides by the sum to
-#: calibrate its gain, so a sum that cancels to nothing would blow the output up.
-FIR_SUM_RATIO_MIN = 1e-12
-
-
-def _check_roots_fit(path: str, key: str, roots) -> None:
-    """Refuse NTF zeros so far out that the loop's arithmetic would overflow."""
-    for r in roots:
-        if not abs(r) <= ZERO_RADIUS_MAX:  # abs() of a huge complex is inf
-            raise ProfileError(
-                path,
-                key,
-                f"got a root of magnitude {abs(r):.6g}; expected roots within radius "
-                f"{ZERO_RADIUS_MAX:g} of the origin (NTF zeros lie on or near the unit circle)",
-            )
-
-
-def _check_taps_fit(path: str, key: str, taps) -> None:
-    """Refuse FIR taps whose sums overflow or cancel (the chain divides by their sum)."""
-    try:
-        abs_sum = math.fsum(abs(t) for t in taps)
-        total = math.fsum(taps)
-    except OverflowError:
-        abs_sum = total = math.inf
-    if not abs_sum <= FIR_ABS_SUM_MAX:
-        raise ProfileError(
-            path,
-            key,
-            f"got taps whose absolute values sum to {abs_sum:.6g}; expected at most "
-            f"{FIR_ABS_SUM_MAX:g} (larger sums overflow)",
-        )
-    if total != 0.0 and abs(total) < FIR_SUM_RATIO_MIN * abs_sum:  # 0: refused below
-        raise ProfileError(
-            path,
-            key,
-            f"got taps summing to {total:.6g} against {abs_sum:.6g} in absolute value; expected "
-            f"a sum of at least {FIR_SUM_RATIO_MIN:g} of that (the gain is set by the sum)",
-        )
-
-
-def _pwm_frame_ticks(mod, out) -> int:
-    """Ticks in one PWM frame: counter steps x tick_subdivision, doubled for double-edge."""
-    steps = out.counter_steps or (mod.levels - 1)
-    return steps * out.tick_subdivision * (1 if out.pwm_carrier == "trailing" else 2)
-
-
-def _check_pwm_timing(profile: ChainProfile, path: str) -> None:
-    """Dead time and the minimum pulse each fit in half a frame.
-
-    The output stage itself takes a dead time up to a whole frame, but beyond half a frame
-    most pulses vanish and the chain's output collapses; real power stages use a few percent.
-    """
-    mod, out = profile.modulator, profile.output
-    if out.kind != "pwm":
-        return
-    frame = _pwm_frame_ticks(mod, out)
-    how = (
-        f"counter steps {out.counter_steps or mod.levels - 1} x tick_subdivision "
-        f"{out.tick_subdivision}" + (" x 2 (double-edge)" if out.pwm_carrier != "trailing" else "")
-    )
-    for name, value, limit, what in (
-        ("dead_time_ticks", out.dead_time_ticks, frame // 2, "half the ticks of one frame"),
-        ("min_pulse_ticks", out.min_pulse_ticks, frame // 2, "half the ticks of one frame"),
-    ):
-        if value > limit:
-            raise ProfileError(
-                path, f"output.{name}", f"got {value}; expected at most {limit}, {what} ({how})"
-            )
-
-
-def _check_whole(profile: ChainProfile, path: str) -> None:
-    """Rules that involve more than one key."""
-    mod, out, rec = profile.modulator, profile.output, profile.reconstruction
-    _check_roots_fit(path, "modulator.zeros", mod.zeros)
-    _check_taps_fit(path, "reconstruction.fir_taps", rec.fir_taps)
-    if bool(mod.zeros) != bool(mod.poles):
-        key = "modulator.poles" if mod.zeros else "modulator.zeros"
-        raise ProfileError(
-            path, key, "got an empty list; expected zeros and poles to be given together"
-        )
-    if mod.zeros:
-        if len(mod.zeros) != len(mod.poles):
-            raise ProfileError(
-                path,
-                "modulator.poles",
-                f"got {len(mod.poles)} poles for {len(mod.zeros)} zeros; expected the same count",
-            )
-        for key, roots in (("modulator.zeros", mod.zeros), ("modulator.poles", mod.poles)):
-            for r in roots:
-                if r.imag != 0.0 and not any(
-                    abs(s - r.conjugate()) <= 1e-12 * max(1.0, abs(r)) for s in roots
-                ):
-                    raise ProfileError(
-                        path,
-                        key,
-                        f"got [{r.real!r}, {r.imag!r}] without its conjugate; "
-                        "expected complex roots in conjugate pairs",
-                    )
-        if any(abs(p) >= 1.0 for p in mod.poles):
-            raise ProfileError(
-                path,
-                "modulator.poles",
-                "got a pole on or outside the unit circle; expected |pole| < 1",
-            )
-    if out.kind == "pdm" and mod.levels != 2:
-        raise ProfileError(
-            path,
-            "modulator.levels",
-            f"got {mod.levels} with output.kind = 'pdm'; expected 2 (PDM is a single-bit stream)",
-        )
-    if out.kind == "pwm" and mod.levels - 1 > 65536:
-        raise ProfileError(
-            path,
-            "modulator.levels",
-            f"got {mod.levels} with output.kind = 'pwm'; expected at most 65537 (the PWM "
-            "counter steps, a multiple of levels - 1, are at most 65536)",
-        )
-    if out.kind == "pwm" and out.pwm_mode == "three-level" and out.pwm_bridge != "full":
-        raise ProfileError(
-            path,
-            "output.pwm_bridge",
-            f"got {out.pwm_bridge!r} with three-level PWM; expected 'full' (both legs switch)",
-        )
-    if out.kind == "pwm" and out.counter_steps and out.counter_steps % (mod.levels - 1):
-        raise ProfileError(
-            path,
-            "output.counter_steps",
-            f"got {out.counter_steps}; expected a multiple of modulator.levels - 1 = "
-            f"{mod.levels - 1} (every level an exact pulse width)",
-        )
-    if out.kind == "pwm" and out.dead_time_ticks > 0 and rec.kind != "lc":
-        raise ProfileError(
-            path,
-            "output.dead_time_ticks",
-            f"got {out.dead_time_ticks} with reconstruction.kind = {rec.kind!r}; dead time needs "
-            "reconstruction.kind = 'lc' (the leg voltage in a dead interval follows the "
-            "inductor current)",
-        )
-    if rec.fir_taps and out.kind == "pwm":
-        raise ProfileError(
-            path,
-            "reconstruction.fir_taps",
-            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
-        )
-    if rec.fir_taps and sum(rec.fir_taps) == 0.0:
-        raise ProfileError(
-            path, "reconstruction.fir_taps", "got taps summing to 0; expected a non-zero sum"
-        )
-    _check_pwm_timing(profile, path)
-
-
 def _check_fixed_point(profile: ChainProfile, table: dict, path: str) -> None:
     """Rules of the [fixed_point] section that involve the modulator."""
     fp, mod = profile.fixed_point, profile.modulator
@@ -1139,142 +972,5 @@ def load_profile(path) -> ChainProfile:
     return parse_profile(text, source=str(p), default_name=p.stem)
 
 
-# ---------------------------------------------------------------------------------------------
-# Writing and hashing
-# ---------------------------------------------------------------------------------------------
-
-
+#: The modulator keys of an NTF design (they do nothing when explicit zeros and poles are given).
 _DESIGN_KEYS = ("order", "out_of_band_gain", "zero_layout", "zero_band_edge_hz")
-
-
-def _applies(settings, f) -> bool:
-    """Whether field ``f`` does something for these settings (kind-specific keys)."""
-    only = f.metadata.get("only")
-    if only is not None and only != getattr(settings, f.metadata.get("only_by", "kind"), None):
-        return False
-    if isinstance(settings, ModulatorSettings) and settings.explicit_ntf:
-        return f.name not in _DESIGN_KEYS
-    return True
-
-
-def _plain(value):
-    """A JSON/TOML-friendly form of one field value."""
-    if isinstance(value, tuple):
-        return [[v.real, v.imag] if isinstance(v, complex) else v for v in value]
-    return value
-
-
-def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
-    """The profile as a nested dict of plain values (the inverse of :func:`profile_from_dict`).
-
-    Parameters
-    ----------
-    profile : ChainProfile
-    full : bool, keyword-only
-        True lists every key; False leaves out keys at their default and keys that do not
-        apply to the stage's kind (the compact form :func:`profile_to_toml` writes).
-    """
-    out = {"name": profile.name, "description": profile.description}
-    for section, cls in _SECTIONS.items():
-        settings = getattr(profile, section)
-        if section == "fixed_point" and not settings.active:
-            continue  # off: nothing in it may differ from its defaults (see _check_fixed_point)
-        table = {}
-        for f in dataclasses.fields(cls):
-            value = getattr(settings, f.name)
-            default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
-            if not full and (value == default or not _applies(settings, f)):
-                continue
-            table[f.name] = _plain(value)
-        out[section] = table
-    return out
-
-
-def _toml_literal(value) -> str:
-    """One plain value as TOML text, as tomli-w writes it (for the table of keys and defaults)."""
-    return tomli_w.dumps({"v": value}).removeprefix("v = ").removesuffix("\n")
-
-
-def profile_to_toml(profile: ChainProfile, *, full: bool = False) -> str:
-    """Write a profile as TOML text that :func:`parse_profile` reads back to an equal profile.
-
-    Parameters
-    ----------
-    profile : ChainProfile
-    full : bool, keyword-only
-        False (default) writes only the keys that differ from their defaults; True writes
-        every key that applies to the chosen kinds.
-
-    Returns
-    -------
-    str
-        TOML text ending in a newline, written by tomli-w (one key a line, each stage a table,
-        a list one item a line).
-
-    References
-    ----------
-    .. [1] TOML v1.0.0, https://toml.io/en/v1.0.0 (the format tomli-w writes and
-       :mod:`tomllib` reads).
-    """
-    data = profile_to_dict(profile, full=False)
-    if full:
-        complete = profile_to_dict(profile, full=True)
-        for section, cls in _SECTIONS.items():
-            if section not in complete:
-                continue
-            data[section] = {
-                f.name: complete[section][f.name]
-                for f in dataclasses.fields(cls)
-                if _applies(getattr(profile, section), f)
-            }
-    document = {"name": data["name"]}
-    if data["description"]:
-        document["description"] = data["description"]
-    for section in _SECTIONS:
-        if data.get(section):
-            document[section] = data[section]
-    return tomli_w.dumps(document)
-
-
-def profile_digest(profile: ChainProfile) -> str:
-    """A stable hash of everything in the profile that changes a result.
-
-    The name and description are left out: two profiles that differ only in their labels
-    describe the same chain and hash equal. Every other key is included at its effective value
-    (defaults written out), so a profile file and the same chain written more compactly hash
-    equal too. Floats enter by their exact ``repr``.
-
-    Parameters
-    ----------
-    profile : ChainProfile
-
-    Returns
-    -------
-    str
-        64 lowercase hex digits (SHA-256).
-    """
-    data = profile_to_dict(profile, full=True)
-    del data["name"], data["description"]
-    data["digest_version"] = _DIGEST_VERSION
-    text = json.dumps(data, sort_keys=True, separators=(",", ":"), default=repr)
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
-
-
-def schema_rows():
-    """Every profile key with its type, allowed values and default (for the documentation).
-
-    Yields
-    ------
-    tuple of str
-        ``(dotted_key, kind, expect, default_text, doc)``.
-    """
-    for section, cls in _SECTIONS.items():
-        for f in dataclasses.fields(cls):
-            default = f.default if f.default is not dataclasses.MISSING else f.default_factory()
-            yield (
-                f"{section}.{f.name}",
-                f.metadata["kind"],
-                f.metadata["expect"],
-                _toml_literal(_plain(default)),
-                f.metadata.get("doc", ""),
-            )

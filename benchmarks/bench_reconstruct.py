@@ -9,13 +9,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from audiodsm.stages.filter_design import analog_prototype, lc_filter
 from audiodsm.stages.output_stage import pdm_waveform, pwm_waveform
-from audiodsm.stages.reconstruct import (
-    analog_prototype,
-    filter_pwm_with_dead_time,
-    filter_waveform,
-    lc_filter,
-)
+from audiodsm.stages.reconstruct import filter_pwm_with_dead_time, filter_waveform
 from benchmarks._timing import best_seconds
 
 RATE = 3.072e6

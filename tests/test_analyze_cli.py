@@ -23,7 +23,7 @@ import soundfile as sf
 from click.testing import CliRunner
 
 from audiodsm.cli import main
-from audiodsm.measure.classify import analyze_blocks
+from audiodsm.measure.channel_analysis import analyze_blocks
 
 RATE = 48000
 KEYS = {
@@ -563,16 +563,16 @@ def test_python_warnings_become_notes(tmp_path, monkeypatch):
     # channel's notes, and nothing reaches stderr (no source paths).
     import warnings
 
-    import audiodsm.measure.classify as classify
+    import audiodsm.measure.channel_analysis as channel_analysis
 
-    real = classify.fit_sine
+    real = channel_analysis.fit_sine
 
     def fit_that_warns(*args, **kwargs):
         message = "fit_sine: the 4-parameter fit did not converge"
         warnings.warn(message, RuntimeWarning, stacklevel=2)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(classify, "fit_sine", fit_that_warns)
+    monkeypatch.setattr(channel_analysis, "fit_sine", fit_that_warns)
     n = 2 * RATE
     path = tmp_path / "tone.wav"
     x = 0.5 * np.sin(2 * np.pi * 997.0 * np.arange(n) / RATE)

@@ -14,12 +14,12 @@ import pytest
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate.battery import (
     METRIC_UNITS,
-    NUMERIC_FLOOR_DBFS,
     TEST_NAMES,
     BatteryPlan,
     battery_rate_hz,
     run_battery,
 )
+from audiodsm.evaluate.battery_runs import NUMERIC_FLOOR_DBFS
 from audiodsm.profile import ChainProfile, profile_from_dict
 from audiodsm.stages.chain import Chain
 
@@ -462,7 +462,7 @@ def test_linear_noise_floor_is_the_undithered_share_of_the_tpdf_error():
     # (Bennett 1948; Widrow & Kollar 2008), shaped by the NTF. With 2 LSB TPDF dither the
     # total error is Delta^2/4 (Lipshitz et al. 1992), 10 log10(3) = 4.77 dB above it; the
     # measured idle noise of a dithered 9-level loop must sit there, within 0.5 dB.
-    from audiodsm.evaluate.battery import _linear_noise_floor
+    from audiodsm.evaluate.battery_runs import _linear_noise_floor
 
     dithered = profile_from_dict(
         {

@@ -333,7 +333,7 @@ def test_automatic_headroom_follows_the_multibit_no_overload_bound():
     # steps cannot overload while |u| <= M + 2 - ||h||_1 in units of half a step (Schreier &
     # Temes 2005, ch. 4; from memory), i.e. (M + 2 - 4) / M of full scale.
     from audiodsm.design.ntf import NoiseTransfer
-    from audiodsm.stages.chain import auto_input_scale
+    from audiodsm.stages.chain_build import auto_input_scale
 
     ntf = NoiseTransfer.from_roots(zeros=[1.0, 1.0], poles=[0.0, 0.0])
     for levels in (9, 17, 33):
@@ -457,13 +457,13 @@ def test_state_scaling_changes_no_bit_and_no_noise():
 
 
 def test_state_scaling_is_remembered_and_deterministic():
-    from audiodsm.stages import chain as chain_mod
+    from audiodsm.stages import chain_build
 
     profile = _with_modulator(FEEDFORWARD_PDM, state_scaling="exact", state_peak_bound=0.5)
     first = Chain.from_profile(profile, RATE, 1)
     again = Chain.from_profile(profile, RATE, 2)
     assert again.modulator.loop is first.modulator.loop  # remembered, not re-simulated
-    chain_mod._SCALED_LOOPS.clear()
+    chain_build._SCALED_LOOPS.clear()
     fresh = Chain.from_profile(profile, RATE, 1)
     assert fresh.modulator.loop is not first.modulator.loop
     np.testing.assert_array_equal(

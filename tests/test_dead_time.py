@@ -8,13 +8,9 @@ import scipy.integrate
 import scipy.linalg
 
 from audiodsm.errors import ParameterError
+from audiodsm.stages.filter_design import analog_prototype, lc_filter
 from audiodsm.stages.output_stage import pwm_waveform
-from audiodsm.stages.reconstruct import (
-    analog_prototype,
-    filter_pwm_with_dead_time,
-    filter_waveform,
-    lc_filter,
-)
+from audiodsm.stages.reconstruct import filter_pwm_with_dead_time, filter_waveform
 
 CASES = {
     "half trailing": dict(mode="two-level", carrier="trailing", bridge="half"),

@@ -93,7 +93,7 @@ def test_search_returns_the_cheapest_passing_loops_in_cost_order():
             m = c.levels - 1
             assert (m + 2 - impulse_l1_norm(ntf)) / m >= 0.5
     # brute force over the same grid: no loop cheaper than the first passes the same rules
-    from audiodsm.stages.chain import auto_input_scale
+    from audiodsm.stages.chain_build import auto_input_scale
 
     first = found[0]
     for order in (2, 3, 4, 5):

@@ -36,19 +36,17 @@ from audiodsm.errors import (
     exit_code_for_signal,
 )
 from audiodsm.evaluate.grade import GradeCache, collect_profiles, grade_batch
-from audiodsm.io import (
+from audiodsm.io import open_audio_writer, read_audio, write_audio_atomic
+from audiodsm.io_files import (
     MAX_NAME_BYTES,
     MAX_OUTPUT_NAME_BYTES,
     create_temp_file,
     fit_file_name,
-    open_audio_writer,
-    read_audio,
     refuse_dangling_symlink,
     remove_stale_temp_files,
     replace_text_atomically,
     same_file,
     temp_file_owner,
-    write_audio_atomic,
 )
 from audiodsm.profile import parse_profile
 from audiodsm.spec import parse_spec
@@ -296,7 +294,7 @@ def full_disk(monkeypatch, module, *, when=lambda dst: True):
 
 
 def test_text_write_on_a_full_disk_names_path_and_cause(tmp_path, monkeypatch):
-    import audiodsm.io as aio
+    import audiodsm.io_files as aio
 
     full_disk(monkeypatch, aio)
     target = tmp_path / "notes.txt"
@@ -847,7 +845,7 @@ def test_a_read_only_cache_folder_warns_and_keeps_the_results(
 
 
 def test_an_output_set_appears_whole(tmp_path):
-    from audiodsm.io import OutputSet
+    from audiodsm.io_files import OutputSet
 
     listen, summary = tmp_path / "take.listen.wav", tmp_path / "take.summary.json"
     with OutputSet() as outputs:
@@ -859,7 +857,7 @@ def test_an_output_set_appears_whole(tmp_path):
 
 
 def test_an_output_set_that_fails_leaves_nothing(tmp_path, monkeypatch):
-    from audiodsm.io import OutputSet
+    from audiodsm.io_files import OutputSet
 
     listen, summary = tmp_path / "take.listen.wav", tmp_path / "take.summary.json"
 
@@ -896,7 +894,7 @@ def test_an_output_set_that_fails_leaves_nothing(tmp_path, monkeypatch):
 
 
 def test_an_output_set_left_by_an_exception_is_discarded(tmp_path):
-    from audiodsm.io import OutputSet
+    from audiodsm.io_files import OutputSet
 
     with pytest.raises(KeyboardInterrupt):
         with OutputSet() as outputs:

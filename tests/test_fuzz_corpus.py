@@ -40,7 +40,7 @@ from hypothesis import strategies as st
 from audiodsm.cli import main
 from audiodsm.errors import EXIT_FAILED, EXIT_OK, EXIT_STORAGE, EXIT_USAGE, ProfileError
 from audiodsm.evaluate.grade import GradeCache
-from audiodsm.io import TEMP_SUFFIXES
+from audiodsm.io_files import TEMP_SUFFIXES
 from audiodsm.profile import _SECTIONS, load_profile
 
 ROOT = Path(__file__).resolve().parents[1]

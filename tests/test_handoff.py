@@ -16,7 +16,8 @@ from audiodsm.hardware.handoff import (
     profile_with_plan,
     write_handoff,
 )
-from audiodsm.profile import parse_profile, profile_to_toml
+from audiodsm.profile import parse_profile
+from audiodsm.profile_text import profile_to_toml
 from audiodsm.stages.fixed_loop import (
     FixedPointModulator,
     format_from_settings,

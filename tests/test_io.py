@@ -326,7 +326,7 @@ def test_streaming_writer_renames_only_on_success(tmp_path, rng):
 
 
 def test_text_is_replaced_whole_or_not_at_all(tmp_path):
-    from audiodsm.io import replace_text_atomically
+    from audiodsm.io_files import replace_text_atomically
 
     target = tmp_path / "notes.csv"
     assert replace_text_atomically(target, "a,b\r\n1,2\r\n") == target

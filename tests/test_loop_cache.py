@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from audiodsm.profile import ChainProfile
-from audiodsm.stages import chain as chain_mod
+from audiodsm.stages import chain_build as chain_mod
 from audiodsm.stages import loop_cache
 from audiodsm.stages.chain import Chain
 from audiodsm.stages.modulator import Modulator

@@ -10,16 +10,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from audiodsm.errors import ProfileError
-from audiodsm.profile import (
-    ChainProfile,
-    load_profile,
-    parse_profile,
-    profile_digest,
-    profile_from_dict,
-    profile_to_dict,
-    profile_to_toml,
-    schema_rows,
-)
+from audiodsm.profile import ChainProfile, load_profile, parse_profile, profile_from_dict
+from audiodsm.profile_text import profile_digest, profile_to_dict, profile_to_toml, schema_rows
 
 DOCS = Path(__file__).resolve().parents[1] / "docs" / "profiles.md"
 README = Path(__file__).resolve().parents[1] / "README.md"

@@ -153,7 +153,8 @@ def test_filtered_frame_means_carry_the_bessel_baseband_harmonics(frames_per_per
     f_c - h f onto h f. A 6th-order Butterworth at f_c / 4 takes the sidebands down by more
     than 70 dB, so the boxcar's residual alias of them (about h f / f_c of what is left) is far
     below the harmonics checked."""
-    from audiodsm.stages.reconstruct import analog_prototype, filter_waveform
+    from audiodsm.stages.filter_design import analog_prototype
+    from audiodsm.stages.reconstruct import filter_waveform
 
     f0 = 997.0
     fc = f0 * frames_per_period

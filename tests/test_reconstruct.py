@@ -9,17 +9,19 @@ import scipy.signal as ss
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _kernels
 from audiodsm.stages import reconstruct as rec
-from audiodsm.stages.output_stage import PulseWaveform, nrz_waveform, pdm_waveform, pwm_waveform
-from audiodsm.stages.reconstruct import (
+from audiodsm.stages.filter_design import (
     AnalogFilter,
     analog_prototype,
+    lc_filter,
+    semi_digital_fir,
+)
+from audiodsm.stages.output_stage import PulseWaveform, nrz_waveform, pdm_waveform, pwm_waveform
+from audiodsm.stages.reconstruct import (
     filter_report,
     filter_waveform,
     filter_waveform_power,
     filter_waveform_ticks,
-    lc_filter,
     out_of_band_ripple,
-    semi_digital_fir,
     waveform_ripple,
 )
 

@@ -78,8 +78,9 @@ def plan(
     """Plan the fixed-point words of PROFILE's loop from a float run and a noise budget."""
     from audiodsm.errors import OutputError
     from audiodsm.hardware.handoff import plan_profile, profile_with_plan
-    from audiodsm.io import replace_text_atomically
-    from audiodsm.profile import load_profile, profile_to_toml
+    from audiodsm.io_files import replace_text_atomically
+    from audiodsm.profile import load_profile
+    from audiodsm.profile_text import profile_to_toml
 
     prof = load_profile(profile)
     result, facts, stable = plan_profile(

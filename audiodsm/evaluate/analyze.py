@@ -17,7 +17,11 @@ import numpy as np
 
 from audiodsm.errors import AudioFileError, ParameterError
 from audiodsm.io import audio_info, iter_audio_blocks, read_audio_span
-from audiodsm.measure.classify import OVERFLOW_PEAK, WITHHELD_OVER_FULL_SCALE, analyze_blocks
+from audiodsm.measure.channel_analysis import (
+    OVERFLOW_PEAK,
+    WITHHELD_OVER_FULL_SCALE,
+    analyze_blocks,
+)
 
 __all__ = ["FileAnalysis", "analyze_file", "format_table", "parse_span", "BLOCK_FRAMES"]
 

@@ -24,14 +24,10 @@ from pathlib import Path
 
 from audiodsm.errors import OutputError, ParameterError
 from audiodsm.evaluate.search import DEFAULT_LEVELS
-from audiodsm.io import refuse_dangling_symlink, replace_text_atomically
+from audiodsm.io_files import refuse_dangling_symlink, replace_text_atomically
 from audiodsm.limits import LEVELS_RANGE
-from audiodsm.profile import (
-    ChainProfile,
-    ReconstructionSettings,
-    profile_from_dict,
-    profile_to_toml,
-)
+from audiodsm.profile import ChainProfile, ReconstructionSettings, profile_from_dict
+from audiodsm.profile_text import profile_to_toml
 
 __all__ = [
     "DesignOutcome",

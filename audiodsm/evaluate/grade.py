@@ -36,8 +36,9 @@ import numpy as np
 
 from audiodsm.errors import ParameterError, ProfileError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
-from audiodsm.io import create_temp_file, remove_stale_temp_files
-from audiodsm.profile import load_profile, profile_digest
+from audiodsm.io_files import create_temp_file, remove_stale_temp_files
+from audiodsm.profile import load_profile
+from audiodsm.profile_text import profile_digest
 from audiodsm.spec import CONDITIONAL_METRICS, SpecSheet, Target
 
 __all__ = [
@@ -109,7 +110,7 @@ class ProfileGrade:
     source : str
         The profile file.
     digest : str
-        :func:`~audiodsm.profile.profile_digest` of the profile.
+        :func:`~audiodsm.profile_text.profile_digest` of the profile.
     lines : tuple of TargetGrade
         One per target, in the spec sheet's order.
     metrics : dict

@@ -149,7 +149,7 @@ def render_listening_file(profile, input_path, work_dir, *, rate_hz, error_gain_
     .. [1] docs/render.md (the render summary's keys).
     """
     from audiodsm.evaluate.render import output_names, render_file
-    from audiodsm.profile import profile_digest
+    from audiodsm.profile_text import profile_digest
 
     work = Path(work_dir)
     work.mkdir(parents=True, exist_ok=True)

@@ -143,7 +143,8 @@ def render_file(
         final name.
     """
     from audiodsm.io import audio_info, iter_audio_blocks, open_audio_writer
-    from audiodsm.profile import AUDIO_RATES_HZ, profile_digest
+    from audiodsm.profile import AUDIO_RATES_HZ
+    from audiodsm.profile_text import profile_digest
     from audiodsm.stages.chain import Chain
     from audiodsm.stages.output_stage import CodeTextWriter, PackedBitsWriter
 
@@ -302,7 +303,7 @@ def render_file(
 
 
 def _write_json_atomic(path: Path, data: dict, *, overwrite: bool) -> None:
-    from audiodsm.io import replace_text_atomically
+    from audiodsm.io_files import replace_text_atomically
 
     if path.exists() and not overwrite:
         raise OutputError(f"{path}: already exists (use --replace to replace it)")

@@ -36,7 +36,7 @@ import numpy as np
 
 from audiodsm.errors import AudiodsmError, OutputError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
-from audiodsm.io import (
+from audiodsm.io_files import (
     create_temp_file,
     create_temp_folder,
     remove_stale_temp_files,

@@ -175,7 +175,7 @@ def predicted_dynamic_range_db(
 
 
 def _input_scale(ntf, levels):
-    from audiodsm.stages.chain import auto_input_scale
+    from audiodsm.stages.chain_build import auto_input_scale
 
     return float(auto_input_scale(ntf, levels))
 

@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from audiodsm.errors import AudioFileError, OutputError, ParameterError, StorageError
-from audiodsm.io import create_temp_file
+from audiodsm.io_files import create_temp_file
 from audiodsm.stages import _kernels
 
 __all__ = [

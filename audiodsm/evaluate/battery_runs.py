@@ -1,0 +1,569 @@
+"""The battery's measurement runs: one function per test, and the helpers they share.
+
+Each ``_test_*`` function synthesizes its stimuli at the battery's audio rate, runs them through
+the profile's whole chain (:func:`audiodsm.stages.chain.run_chain`) and measures the output with
+:mod:`audiodsm.measure`, returning a dict of partial results.
+:func:`audiodsm.evaluate.battery.run_battery` schedules them on worker threads and assembles
+their results; the docstring of :mod:`audiodsm.evaluate.battery` describes what each test
+measures.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import numpy as np
+
+_TEST_HZ = 997.0
+_BAND = (20.0, 20000.0)
+_WEIGHTINGS = ("unweighted", "a", "ccir")
+#: Extra stimulus after each measured stretch, cut off again (see _chain_run).
+_TAIL_S = 0.05
+# The simulation carries float64 numbers, whose rounding noise on a full-scale signal lies near
+# 20 log10(2**-53) = -319 dB. A noise reading below this floor says only that the output was
+# digitally silent (e.g. an undithered multi-level loop idling on its zero level), so the battery
+# reports the floor and says so in the notes instead of a number of no physical meaning.
+NUMERIC_FLOOR_DBFS = -300.0
+_FLOORED_METRICS = (
+    "idle_noise_dbfs",
+    "idle_noise_dbfs_a",
+    "idle_noise_dbfs_ccir",
+    "dc_offset_dbfs",
+)
+#: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
+_SPECTRUM_RESOLUTION_HZ = 100.0
+#: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
+_LINE_FLOOR_DBFS = -200.0
+#: A listening output whose peak exceeds full scale by more than this has clipped: a real
+#: converter could not have produced it. (0.1 dB leaves room for the passband ripple of a
+#: full-scale tone's path, a few hundredths of a dB.)
+_CLIP_DB = 0.1
+
+
+# ---------------------------------------------------------------------------------------------
+# Small helpers
+# ---------------------------------------------------------------------------------------------
+
+
+def _db(x: float) -> float:
+    return 20.0 * math.log10(x) if x > 0 else -math.inf
+
+
+def _run_seed(profile_seed: int, seed: int, index: int) -> int:
+    """An independent dither seed for run ``index`` (numpy SeedSequence mixing)."""
+    ss = np.random.SeedSequence([int(profile_seed), int(seed), int(index)])
+    return int(ss.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1))
+
+
+def _chain_run(profile, x, *, rate, keep=("listening",)):
+    """Run ``x`` ((n,) or (n, channels)) through the chain with one thread per call.
+
+    The caller's stimulus already runs ``_TAIL_S`` longer than the stretch to measure: the
+    chain's linear-phase filters see past the end of the input, so its last milliseconds
+    would carry the transient of the stimulus stopping. The listening output is returned
+    without that tail.
+    """
+    from audiodsm.stages.chain import run_chain
+
+    res = run_chain(profile, x, rate_hz=rate, keep=keep, listening_rate_hz=rate, threads=1)
+    if res.listening is not None:
+        tail = int(round(_TAIL_S * rate))
+        res = replace(res, listening=res.listening[: len(res.listening) - tail])
+    return res
+
+
+def _run_faults(stats, c, y=None):
+    """Why channel ``c`` of a chain run cannot be read honestly (empty when it can).
+
+    The loop overloaded (its guard acted), or the measured listening output ``y`` is not
+    finite or went beyond full scale by more than ``_CLIP_DB`` (a converter would clip it).
+    """
+    faults = []
+    n = int(stats.overload_count[c])
+    if n:
+        faults.append(f"loop overloaded ({n} guard actions)")
+    if y is not None and len(y):
+        if not np.all(np.isfinite(y)):
+            faults.append("output not finite")
+        else:
+            peak = float(np.max(np.abs(y)))
+            if peak > 10.0 ** (_CLIP_DB / 20.0):
+                faults.append(f"output clipped (peak {_db(peak):+.2f} dB re full scale)")
+    return faults
+
+
+def _tone_came_out(tone_dbfs) -> str:
+    """Plain words for the level a tone came out at, never a level below the numeric floor."""
+    if tone_dbfs is None or not math.isfinite(tone_dbfs) or tone_dbfs < NUMERIC_FLOOR_DBFS:
+        return f"no trace of it at the output, below the {NUMERIC_FLOOR_DBFS:g} dBFS numeric floor"
+    return f"it came out at {tone_dbfs:.2f} dBFS"
+
+
+def _linear_noise_floor(chain):
+    """The band-limited noise (dBFS per weighting) the loop's linear model allows, or None.
+
+    White quantization error of power ``step**2 / 12`` spread evenly over 0 .. fm/2, shaped
+    by the NTF, integrated over 20 Hz .. 20 kHz with the weighting, referred to the chain
+    input through its input scale. It is a lower bound on the noise of a loop whose
+    quantization error stays busy: a single-bit loop, or a dithered one (dither adds to it).
+    An undithered multi-level loop can idle on one level with almost no error, so it gets no
+    floor (None) and only the numeric floor applies.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
+       ch. 2 and 4 (linear model of the quantizer, in-band noise of the NTF).
+    """
+    from audiodsm.measure.weighting import weighting_power_gain
+
+    mod = chain.modulator
+    if mod.levels > 2 and mod.dither_lsb <= 0.0:
+        return None
+    fm = float(chain.modulator_rate_hz)
+    f = np.linspace(_BAND[0], _BAND[1], 20001)
+    ntf_power = np.abs(chain.ntf.response(f / fm)) ** 2
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    out = {}
+    for w in _WEIGHTINGS:
+        band = float(np.trapezoid(ntf_power * weighting_power_gain(f, w), f))
+        power = mod.step**2 / 12.0 * band / (fm / 2.0) / scale**2
+        out[w] = 10.0 * math.log10(power / 0.5)  # 0 dBFS: a full-scale sine, power 0.5
+    return out
+
+
+def _meter(x, rate, frequency_hz, weightings, settle_s):
+    """Band-limited residual readings (fundamental removed when ``frequency_hz`` is set).
+
+    The first half of the settling time is cut off before the meter sees the signal, and the
+    meter's own settling skips the second half. The cut keeps the stimulus's start transient
+    out of the sine fits: a fit over a stretch that holds it is biased, and the bias would
+    stay in the residual as a tone about 110 dB below the fundamental.
+    """
+    from audiodsm.measure.residual import (
+        read_residual_meter,
+        start_residual_meter,
+        update_residual_meter,
+    )
+
+    cut = int(round(0.5 * settle_s * rate))
+    x = x[cut:]
+    settle_s = settle_s - cut / rate
+    st = start_residual_meter(
+        rate_hz=rate,
+        frequency_hz=frequency_hz,
+        weightings=weightings,
+        upper_hz=_BAND[1],
+        lower_hz=_BAND[0],
+        segment_s=0.5,
+        settle_s=settle_s,
+    )
+    return read_residual_meter(update_residual_meter(np.ascontiguousarray(x), st))
+
+
+def _tone(level_dbfs, rate, seconds):
+    from audiodsm.signals import sine
+
+    return sine(_TEST_HZ, level_dbfs, rate_hz=rate, duration_s=seconds)
+
+
+def _lines(x, rate, *, false_alarm, exclude_hz=()):
+    """Idle-tone search on one capture: (strongest line level or None, its Hz, limit dBFS).
+
+    Lines within three main lobes of a frequency in ``exclude_hz`` (the test tone's harmonics)
+    are not idle tones and are left out, and so are lines below ``_LINE_FLOOR_DBFS`` (patterns
+    of float64 rounding in an output that is digitally silent). The detection limit is the
+    weakest line the detector would report anywhere in the band, about (threshold - 1) x local
+    floor x ENBW in bins, and no lower than that floor.
+    """
+    from audiodsm.measure.idle_tones import find_idle_tones, line_spectrum
+
+    spec = line_spectrum(x, rate_hz=rate)
+    res = find_idle_tones(spec, false_alarm=false_alarm, band_hz=_BAND)
+    bin_hz = float(spec.freq_hz[1] - spec.freq_hz[0])
+    enbw_bins = float(spec.enbw_hz) / bin_hz
+    guard = 3.0 * max(enbw_bins, 2.0) * bin_hz
+    kept = [
+        t
+        for t in res.tones
+        if t.level_dbfs > _LINE_FLOOR_DBFS
+        and not any(abs(t.frequency_hz - f) <= guard for f in exclude_hz)
+    ]
+    band = (res.freq_hz >= _BAND[0]) & (res.freq_hz <= _BAND[1])
+    t_lin = 10.0 ** (res.threshold_db / 10.0)
+    floor = 10.0 ** (res.floor_dbfs[band] / 10.0)
+    limit = 10.0 * math.log10(float(np.max((t_lin - 1.0) * floor * enbw_bins)))
+    limit = max(limit, _LINE_FLOOR_DBFS)
+    if kept:
+        best = max(kept, key=lambda t: t.level_dbfs)
+        return best.level_dbfs, best.frequency_hz, limit
+    return None, None, limit
+
+
+def _remove_fundamental(x, rate, settle):
+    """The capture after ``settle`` frames with a 3-parameter 997 Hz fit removed."""
+    from audiodsm.measure.sine_fit import fit_sine
+
+    seg = np.ascontiguousarray(x[settle:])
+    return fit_sine(seg, rate_hz=rate, frequency_hz=_TEST_HZ, four_parameter=False).residual
+
+
+def _coherent_amplitudes(y, bins):
+    """Sine amplitudes at exact DFT bins of ``y`` (rectangular window, coherent sampling).
+
+    With a whole number of cycles in the record, the DFT bin of a sine holds exactly its
+    amplitude times ``len(y)/2``; it equals a least-squares sine fit at that frequency.
+    """
+    spec = np.fft.rfft(y - y.mean())
+    return 2.0 * np.abs(spec[np.asarray(bins)]) / len(y)
+
+
+# ---------------------------------------------------------------------------------------------
+# The tests. Each returns a dict of partial results; they run in worker threads.
+# ---------------------------------------------------------------------------------------------
+
+
+def _test_dynamic_range(ctx, profile):
+    from audiodsm.measure.spectrum import averaged_spectrum
+
+    plan, rate = ctx.plan, ctx.rate
+    x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
+    res = _chain_run(profile, x, rate=rate, keep=("listening", "analog"))
+    y = res.listening[:, 0]
+    r = _meter(y, rate, _TEST_HZ, _WEIGHTINGS, plan.settle_s)
+    out = {"stats": [(res.stats, 0, 10 ** (-60 / 20))]}
+    notes = [
+        f"dynamic range: -60 dBFS 997 Hz, {plan.tone_s:g} s after {plan.settle_s:g} s "
+        f"settling, 20 Hz..20 kHz, fundamental removed by 3-parameter fits over 0.5 s segments"
+    ]
+    faults = _run_faults(res.stats, 0, y[int(round(plan.settle_s * rate)) :])
+    dr_names = [f"dynamic_range_db{name}" for name in ("", "_a", "_ccir")]
+    if r.fundamental_dbfs is not None and abs(r.fundamental_dbfs + 60.0) <= 1.0:
+        for k, name in zip(_WEIGHTINGS, dr_names, strict=True):
+            out[name] = -r.noise_dbfs[k]
+    else:
+        for name in dr_names:
+            out[name] = None
+        faults.append("the -60 dBFS tone was lost: " + _tone_came_out(r.fundamental_dbfs))
+        notes.append(
+            "dynamic range: the -60 dBFS tone did not come out within 1 dB ("
+            + _tone_came_out(r.fundamental_dbfs)
+            + "), so no dynamic range is given"
+        )
+    out["invalid"] = {k: "; ".join(faults) for k in (*dr_names, "out_of_band_noise_dbfs")}
+    if not faults:
+        out["invalid"] = {}
+    fm = res.modulator_rate_hz
+    a = res.analog[:, 0]
+    skip = int(round((plan.settle_s + res.latency_s) * fm))
+    a = a[min(skip, len(a) // 2) :]
+    upper = min(plan.out_of_band_upper_hz, fm / 2)
+    # One averaged spectrum (Welch, 4-term Blackman-Harris) serves the out-of-band power and
+    # the spectrum curve; its band power is what measure.noise.out_of_band_power_dbfs reads.
+    spec = averaged_spectrum(a, rate_hz=fm, resolution_hz=_SPECTRUM_RESOLUTION_HZ)
+    out["out_of_band_noise_dbfs"] = spec.band_noise_dbfs(_BAND[1], upper)
+    # the ripple inside the frames (above the frame rate: a PWM carrier and its sidebands),
+    # exact from the filter's mean square over every frame, in full-scale units
+    ripple = float(res.stats.ripple_rms()[0]) / res.gain
+    out["carrier_ripple_dbfs"] = _db(ripple * math.sqrt(2.0)) if ripple > 0 else -math.inf
+    notes.append(
+        f"out-of-band noise: reconstructed output at {fm / 1e6:g} MHz during the -60 dBFS "
+        f"tone, {_BAND[1] / 1e3:g} kHz..{upper / 1e3:g} kHz, {spec.resolution_hz:.0f} Hz bins; "
+        "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
+        "whole run"
+    )
+    out["curve_spectrum"] = {
+        "frequency_hz": spec.freq_hz,
+        "level_dbfs": spec.bins_dbfs(),
+        "resolution_hz": np.array([spec.resolution_hz]),
+    }
+    out["notes"] = notes
+    return out
+
+
+def _test_level_sweep(ctx, profile, levels):
+    plan, rate = ctx.plan, ctx.rate
+    seconds = plan.settle_s + plan.sweep_s + _TAIL_S
+    x = np.stack([_tone(lv, rate, seconds) for lv in levels], axis=1)
+    res = _chain_run(profile, x, rate=rate)
+    settle = int(round(plan.settle_s * rate))
+    points = []
+    for c, lv in enumerate(levels):
+        y = res.listening[:, c]
+        r = _meter(y, rate, _TEST_HZ, ("unweighted", "a"), plan.settle_s)
+        point = {
+            "level_dbfs": lv,
+            "tone_dbfs": r.fundamental_dbfs,
+            "thd_n_db": r.thd_n_db["unweighted"],
+            "thd_n_db_a": r.thd_n_db["a"],
+            "noise_dbfs": r.noise_dbfs["unweighted"],
+            "noise_dbfs_a": r.noise_dbfs["a"],
+            "noise_clear_dbfs_a": _clear_noise(y[settle:], rate),
+            "overload_count": int(res.stats.overload_count[c]),
+            "faults": _run_faults(res.stats, c, y[settle:]),
+        }
+        if lv <= -60.0:
+            resid = _remove_fundamental(y, rate, settle)
+            harmonics = [k * _TEST_HZ for k in range(1, 21)]
+            point["lines"] = _lines(resid, rate, false_alarm=ctx.false_alarm, exclude_hz=harmonics)
+        points.append(point)
+    stats = [(res.stats, c, 10 ** (lv / 20)) for c, lv in enumerate(levels)]
+    return {"sweep": points, "stats": stats}
+
+
+def _clear_noise(y, rate):
+    """A-weighted noise between the 997 Hz tone's harmonics (noise modulation), or None."""
+    from audiodsm.measure.noise import noise_clear_of_harmonics
+
+    if not np.all(np.isfinite(y)):
+        return None
+    return noise_clear_of_harmonics(
+        y, rate_hz=rate, frequency_hz=_TEST_HZ, weighting="a"
+    ).noise_dbfs
+
+
+def _test_idle(ctx, profile):
+    plan, rate = ctx.plan, ctx.rate
+    n = int(round((plan.settle_s + plan.silence_s + _TAIL_S) * rate))
+    res = _chain_run(profile, np.zeros(n), rate=rate)
+    y = res.listening[:, 0]
+    r = _meter(y, rate, None, _WEIGHTINGS, plan.settle_s)
+    settle = int(round(plan.settle_s * rate))
+    # the DC the output really carries: the chain's calibration removes only the static
+    # offset of the output stage without dead time, so an offset from dead time (or anything
+    # else in the product) stays in; AES17 dBFS of a constant: 20 log10(|dc| sqrt(2))
+    dc = float(np.mean(y[settle:]))
+    faults = "; ".join(_run_faults(res.stats, 0, y[settle:]))
+    out = {
+        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz")} if faults else {},
+        "silence_faults": faults,
+        "dc_offset_dbfs": 20.0 * math.log10(abs(dc) * math.sqrt(2.0)) if dc else -math.inf,
+        "idle_noise_dbfs": r.noise_dbfs["unweighted"],
+        "idle_noise_dbfs_a": r.noise_dbfs["a"],
+        "idle_noise_dbfs_ccir": r.noise_dbfs["ccir"],
+        "switching_rate_hz": float(res.stats.switching_rate_hz(rate)[0]),
+        "silence_lines": _lines(y[settle:], rate, false_alarm=ctx.false_alarm),
+        "stats": [(res.stats, 0, 0.0)],
+        "notes": [
+            f"idle: {plan.silence_s:g} s of digital silence after {plan.settle_s:g} s settling"
+        ],
+    }
+    return out
+
+
+def _test_dc(ctx, profile, offsets):
+    plan, rate = ctx.plan, ctx.rate
+    n = int(round((plan.settle_s + plan.dc_s + _TAIL_S) * rate))
+    x = np.ones((n, len(offsets))) * np.asarray(offsets)[None, :]
+    res = _chain_run(profile, x, rate=rate)
+    settle = int(round(plan.settle_s * rate))
+    found = []
+    for c, off in enumerate(offsets):
+        y = res.listening[settle:, c]
+        found.append(
+            (
+                off,
+                _lines(y - y.mean(), rate, false_alarm=ctx.false_alarm),
+                "; ".join(_run_faults(res.stats, c, y)),
+            )
+        )
+    stats = [(res.stats, c, abs(off)) for c, off in enumerate(offsets)]
+    return {"dc": found, "stats": stats}
+
+
+def _test_stability(ctx, profile):
+    from audiodsm.stages.chain import Chain
+
+    plan = ctx.plan
+    chain = Chain.from_profile(profile, ctx.rate, 1, listening_rate_hz=ctx.rate, threads=1)
+    limit = chain.modulator.probe_stability(osr=chain.osr, run_samples=plan.stability_samples)
+    # the chain scales its input by input_scale before the loop (headroom the calibration
+    # divides out again), so an amplitude at the loop is amplitude / input_scale at the input
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    out = {
+        "msa": float(limit.stable_amplitude) / scale,
+        "msa_modulator": float(limit.stable_amplitude),
+        "input_scale": scale,
+        "msa_state_peak": np.asarray(limit.state_peaks, dtype=float),
+        "ntf": chain.ntf,
+        "modulator_rate_hz": float(chain.modulator_rate_hz),
+        "noise_floor": _linear_noise_floor(chain),
+        "notes": [
+            f"stability: bisection on a sine near a fifth of the band edge, "
+            f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
+            "stable = no guard action and in-band SQNR within 6 dB of the linear extrapolation; "
+            f"the loop's own limit {limit.stable_amplitude:.4f} of its full scale, divided by the "
+            f"chain's input scale {scale:g} to refer it to the chain input"
+        ],
+    }
+    out["curve_stability"] = {
+        "loop_amplitude": np.array([float(limit.stable_amplitude)]),
+        "input_scale": np.array([scale]),
+        "state_peak": np.asarray(limit.state_peaks, dtype=float),
+        "sqnr_db": np.array([float(limit.sqnr_db)]),
+    }
+    if limit.stable_amplitude > 0:
+        n = plan.histogram_samples
+        t = np.arange(n)
+        x = limit.stable_amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
+        _, states = chain.modulator.trace_states(x)
+        states = np.asarray(states, dtype=float).reshape(n, -1)
+        edges, counts = [], []
+        for k in range(states.shape[1]):
+            top = float(np.max(np.abs(states[:, k]))) or 1.0
+            e = np.linspace(-top, top, plan.histogram_bins + 1)
+            h, _ = np.histogram(states[:, k], bins=e)
+            edges.append(e)
+            counts.append(h)
+        out["curve_state_histograms"] = {
+            "edges": np.array(edges),
+            "counts": np.array(counts),
+            "peak": np.max(np.abs(states), axis=0),
+            "amplitude": np.array([limit.stable_amplitude]),
+        }
+    return out
+
+
+def _test_overload(ctx, profile, levels):
+    plan, rate = ctx.plan, ctx.rate
+    if not levels:
+        return {"overload": []}
+    seconds = plan.settle_s + plan.sweep_s + _TAIL_S
+    x = np.stack([_tone(lv, rate, seconds) for lv in levels], axis=1)
+    res = _chain_run(profile, x, rate=rate)
+    points = []
+    for c, lv in enumerate(levels):
+        r = _meter(res.listening[:, c], rate, _TEST_HZ, ("unweighted",), plan.settle_s)
+        points.append(
+            {
+                "level_dbfs": lv,
+                "tone_dbfs": r.fundamental_dbfs,
+                "thd_n_db": r.thd_n_db["unweighted"],
+                "overload_count": int(res.stats.overload_count[c]),
+            }
+        )
+    stats = [(res.stats, c, 10 ** (lv / 20)) for c, lv in enumerate(levels)]
+    return {"overload": points, "stats": stats, "probe_stats": True}
+
+
+def _response_frequencies():
+    """1/3-octave centres 20 Hz .. 20 kHz (exact base-10, IEC 61260-1) plus 997 Hz."""
+    # 1 kHz itself gives way to the 997 Hz reference, 3 Hz away
+    centres = [1000.0 * 10.0 ** (k / 10.0) for k in range(-17, 14) if k != 0]
+    return sorted({*(round(f, 6) for f in centres), _TEST_HZ, 20000.0})
+
+
+def _test_response(ctx, profile):
+    from audiodsm.measure.response import frequency_response
+    from audiodsm.signals import multitone
+
+    plan, rate = ctx.plan, ctx.rate
+    freqs = _response_frequencies()
+    seconds = plan.settle_s + plan.response_s + _TAIL_S
+    x = multitone(freqs, plan.response_level_dbfs, rate_hz=rate, duration_s=seconds)
+    res = _chain_run(profile, x, rate=rate)
+    fr = frequency_response(
+        res.listening[:, 0],
+        rate_hz=rate,
+        frequencies_hz=freqs,
+        settle_s=plan.settle_s,
+        lower_hz=_BAND[0],
+        upper_hz=_BAND[1],
+    )
+    faults = _run_faults(res.stats, 0, res.listening[int(round(plan.settle_s * rate)) :, 0])
+    return {
+        "invalid": {"passband_ripple_db": "; ".join(faults)} if faults else {},
+        "passband_ripple_db": fr.ripple_db,
+        "curve_frequency_response": {
+            "frequency_hz": np.array(fr.frequency_hz),
+            "gain_db": np.array(fr.gain_db),
+        },
+        "stats": [(res.stats, 0, 10 ** (plan.response_level_dbfs / 20))],
+        "notes": [
+            f"frequency response: {len(freqs)}-tone Schroeder multitone at "
+            f"{plan.response_level_dbfs:g} dBFS peak, {plan.response_s:g} s, joint "
+            "least-squares fit of every tone, relative to 997 Hz"
+        ],
+    }
+
+
+def _test_images(ctx, profile):
+    from audiodsm.signals import sine
+
+    plan, rate = ctx.plan, ctx.rate
+    f = float(plan.image_tone_hz)
+    level = plan.composite_level_dbfs
+    x = sine(f, level, rate_hz=rate, duration_s=plan.settle_s + plan.image_s + _TAIL_S)
+    res = _chain_run(profile, x, rate=rate, keep=("analog",))
+    fm = res.modulator_rate_hz
+    a = res.analog[:, 0]
+    skip = int(round((plan.settle_s + res.latency_s) * fm))
+    a = a[min(skip, len(a) // 2) :]
+    image = rate - f
+    # a record holding whole cycles of the tone and of its image: both on exact DFT bins
+    cycle = int(round(fm)) // math.gcd(int(round(fm)), int(f), int(image))
+    a = a[: (len(a) // cycle) * cycle]
+    span = len(a) / fm
+    k_tone, k_image = int(round(f * span)), int(round(image * span))
+    # noise readings on bins beside the image: uncorrelated with it and with each other
+    neighbours = [k_image + d for d in (-9, -7, -5, 5, 7, 9)]
+    amps = _coherent_amplitudes(a, [k_tone, k_image, *neighbours])
+    tone, img, noise = amps[0], amps[1], float(np.sqrt(np.mean(amps[2:] ** 2)))
+    # an image reading within 3x the rms noise reading is indistinguishable from noise
+    limited = bool(img < 3.0 * noise)
+    rejection = _db(tone) - _db(max(img, 3.0 * noise) if limited else img)
+    faults = "; ".join(_run_faults(res.stats, 0))
+    return {
+        "invalid": {k: faults for k in ("image_rejection_db", "image_rejection_noise_limited")}
+        if faults
+        else {},
+        "image_rejection_db": rejection,
+        "image_rejection_noise_limited": limited,
+        "stats": [(res.stats, 0, 10 ** (level / 20))],
+        "notes": [
+            f"images: {f:g} Hz at {level:g} dBFS, image at {image:g} Hz read on the "
+            f"reconstructed output at {fm / 1e6:g} MHz over {span:.2f} s (fit bandwidth "
+            f"{1 / span:.1f} Hz)"
+            + (
+                "; the image lies below the noise, so the rejection is a lower bound"
+                if limited
+                else ""
+            )  # fmt: skip
+        ],
+    }
+
+
+def _test_imd(ctx, profile):
+    from audiodsm.measure.intermod import imd_difference_frequency, imd_smpte
+    from audiodsm.signals import twin_tone_difference, twin_tone_smpte
+
+    plan, rate = ctx.plan, ctx.rate
+    level = plan.composite_level_dbfs
+    seconds = plan.settle_s + plan.imd_s + _TAIL_S
+    x = np.stack(
+        [
+            twin_tone_smpte(level, rate_hz=rate, duration_s=seconds),
+            twin_tone_difference(level, rate_hz=rate, duration_s=seconds),
+        ],
+        axis=1,
+    )
+    res = _chain_run(profile, x, rate=rate)
+    smpte = imd_smpte(res.listening[:, 0], rate_hz=rate, settle_s=plan.settle_s)
+    diff = imd_difference_frequency(res.listening[:, 1], rate_hz=rate, settle_s=plan.settle_s)
+    peak = 10 ** (level / 20)
+    settle = int(round(plan.settle_s * rate))
+    invalid = {}
+    for c, name in enumerate(("imd_smpte_db", "imd_difference_db")):
+        faults = _run_faults(res.stats, c, res.listening[settle:, c])
+        if faults:
+            invalid[name] = "; ".join(faults)
+    return {
+        "invalid": invalid,
+        "imd_smpte_db": smpte.ratio_db,
+        "imd_difference_db": diff.ratio_db,
+        "stats": [(res.stats, 0, peak), (res.stats, 1, peak)],
+        "notes": [
+            f"intermodulation: twin tones at {level:g} dBFS combined peak, {plan.imd_s:g} s; "
+            + smpte.convention
+        ],
+    }
