@@ -214,8 +214,9 @@ def test_bad_profile_key_is_one_line(setup):
     assert res.exit_code == 2
     assert res.stderr.strip() == (
         f"audiodsm: error: {prof}: modulator.ordr: unknown key; expected one of: "
-        "order, out_of_band_gain, zero_layout, zeros, poles, structure, levels, dither_lsb, seed, "
-        "input_scale, guard, state_bound, state_scaling, state_peak_bound"
+        "order, out_of_band_gain, zero_layout, zero_band_edge_hz, zeros, poles, structure, "
+        "input_feed_in, levels, dither_lsb, seed, input_scale, guard, state_bound, "
+        "state_scaling, state_peak_bound"
     )
     assert final_files(tmp / "out") == []
 
