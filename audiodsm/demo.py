@@ -173,6 +173,7 @@ def run_demo(
             cache_dir=out / "cache",
             battery_options=options,
             progress=None,
+            say=say,  # with jobs > 1: the local cluster it runs on (and its dashboard)
         )
         batches[product] = batch
         say(f"graded in {time.perf_counter() - t0:.1f} s")

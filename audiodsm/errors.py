@@ -30,6 +30,7 @@ __all__ = [
     "ParameterError",
     "ProfileError",
     "AudioFileError",
+    "ClusterError",
     "OutputError",
     "StorageError",
     "StopSignal",
@@ -110,6 +111,14 @@ class AudioFileError(AudiodsmError, ValueError):
         self.path = str(path)
         self.message = message
         super().__init__(f"{self.path}: {message}")
+
+
+class ClusterError(AudiodsmError):
+    """The compute cluster cannot take the batch; the command line exits :data:`EXIT_USAGE`.
+
+    Its scheduler cannot be reached, it has no workers, or its workers run another version of
+    audiodsm (checked before any work is sent).
+    """
 
 
 class OutputError(AudiodsmError):

@@ -35,3 +35,26 @@ def waiting_battery(profile, *, jobs=None, progress=None, seed=0, **options):
         while True:
             time.sleep(0.05)
     return quick_battery(profile)
+
+
+def short_real_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """The real battery on its short plan, cut to the dynamic-range test (a few seconds)."""
+    from audiodsm.evaluate.battery import BatteryPlan, run_battery
+
+    options = dict(options)
+    options.setdefault("plan", BatteryPlan.quick())
+    options.setdefault("tests", ("dynamic_range",))
+    return run_battery(profile, jobs=jobs, progress=progress, seed=seed, **options)
+
+
+def worker_killing_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """Ends its worker process the first time it runs profile "k3"; otherwise the real battery.
+
+    The marker file in $AUDIODSM_TEST_CALLS says it has already killed once, so the
+    scheduler's retry on another worker runs the battery to the end.
+    """
+    marker = Path(os.environ["AUDIODSM_TEST_CALLS"], "killed.once")
+    if profile.name == "k3" and not marker.exists():
+        marker.touch()
+        os._exit(9)
+    return short_real_battery(profile, jobs=jobs, progress=progress, seed=seed, **options)

@@ -87,3 +87,67 @@ def test_multitone_stimulus_gives_the_filter_response():
     np.testing.assert_allclose(r.gain_db, expected, atol=1e-6)
     assert r.ripple_db == pytest.approx(np.ptp(expected), abs=1e-6)
     assert 0.3 < r.ripple_db < 0.6  # Chebyshev ripple 0.5 dB, sampled at these tones
+
+
+# --- the 1/3-octave band-pass of level_linearity vs IEC 61260-1 ---------------------------------
+
+# IEC 61260-1:2014, base-10 system: octave ratio G = 10^(3/10); band edges of a 1/b-octave
+# filter at f_m G^(+-1/(2b)). Table 1 there (FROM MEMORY, not re-checked against a copy): the
+# class-1 limits (min, max) on relative attenuation, in dB, at the octave-band breakpoints
+# G^x; for a 1/b-octave filter the breakpoint x sits at the normalized frequency
+#   Omega_H = 1 + (G^(1/(2b)) - 1) / (G^(1/2) - 1) * (G^x - 1),  Omega_L = 1 / Omega_H.
+# (The 1995 edition's class-1 limits are a little tighter: 17.5 / 42.5 / 62 / 75 dB beyond the
+# band; the filter meets those too.)
+G10 = 10.0**0.3
+IEC61260_CLASS1 = [  # (x, min dB, max dB)
+    (0.0, -0.4, 0.4),
+    (1 / 8, -0.4, 0.5),
+    (1 / 4, -0.4, 0.7),
+    (3 / 8, -0.4, 1.4),
+    (1 / 2, 1.2, 5.3),
+    (1.0, 16.6, math.inf),
+    (2.0, 40.5, math.inf),
+    (3.0, 60.0, math.inf),
+    (4.0, 70.0, math.inf),
+]
+
+
+def _normalized_upper(x, b=3):
+    return 1 + (G10 ** (1 / (2 * b)) - 1) / (G10**0.5 - 1) * (G10**x - 1)
+
+
+@pytest.mark.parametrize("rate", [44100.0, RATE, 96000.0, 192000.0])
+@pytest.mark.parametrize("centre", [997.0, 4000.0])
+def test_third_octave_filter_meets_iec_61260_class_1(rate, centre):
+    from audiodsm.measure.response import _third_octave_sos
+
+    sos = _third_octave_sos(centre, rate)
+
+    def attenuation_db(freqs):
+        # relative attenuation re the mid-band (scipy.signal.sosfreqz)
+        _, h = signal.sosfreqz(sos, worN=np.concatenate([[centre], freqs]), fs=rate)
+        return 20 * np.log10(np.abs(h[0]) / np.abs(h[1:]))
+
+    for x, low, high in IEC61260_CLASS1:
+        omega = _normalized_upper(x)
+        freqs = np.array([centre / omega, centre * omega])
+        freqs = freqs[freqs < rate / 2]
+        att = attenuation_db(freqs)
+        assert np.all(att >= low) and np.all(att <= high), (x, att)
+    # base-10 band edges: a Butterworth band-pass designed on the edges is 3.0103 dB down at
+    # exactly f_m G^(+-1/6), G = 10^(3/10) (bilinear pre-warping keeps the edges exact); the
+    # base-2 edges 2^(+-1/6) would miss that by ~0.02 dB.
+    edges = centre * np.array([G10 ** (-1 / 6), G10 ** (1 / 6)])
+    _, h = signal.sosfreqz(sos, worN=edges, fs=rate)
+    np.testing.assert_allclose(-20 * np.log10(np.abs(h)), 10 * math.log10(2), atol=1e-4)
+
+
+def test_level_linearity_reads_a_tone_off_centre_through_the_class_1_band():
+    # The same filter as used by level_linearity: a 0 dBFS tone one octave-band breakpoint
+    # (x = 1) above the 997 Hz centre reads at least IEC 61260-1 class 1's 16.6 dB down
+    # (from memory, see above), and a tone at the centre reads 0 dBFS (to 0.01 dB).
+    f_hi = 997.0 * _normalized_upper(1.0)
+    caps = [_cos(997.0, int(RATE), 1.0), _cos(f_hi, int(RATE), 1.0)]
+    r = level_linearity(caps, rate_hz=RATE, levels_dbfs=[0.0, -1.0])
+    assert r.measured_dbfs[0] == pytest.approx(0.0, abs=0.01)
+    assert r.measured_dbfs[1] <= -16.6

@@ -37,6 +37,7 @@ COMMANDS = {
     "render": "audiodsm.cli.render:render",
     "measure": "audiodsm.cli.measure:measure",
     "grade": "audiodsm.cli.grade:grade",
+    "explore": "audiodsm.cli.explore:explore",
     "design": "audiodsm.cli.design:design",
     "listening-set": "audiodsm.cli.listening_set:listening_set",
     "score-answers": "audiodsm.cli.score_answers:score_answers",

@@ -11,3 +11,14 @@ short_plan_option = click.option(
     is_flag=True,
     help="Shorter captures and fewer points (a preview; coarser resolution).",
 )
+
+#: ``--scheduler tcp://host:port``: run the batteries on an existing Dask scheduler's workers
+#: (``$AUDIODSM_SCHEDULER`` when the option is absent), for ``grade``, ``measure``, ``explore``.
+scheduler_option = click.option(
+    "--scheduler",
+    envvar="AUDIODSM_SCHEDULER",
+    default=None,
+    metavar="tcp://HOST:PORT",
+    help="Run the batteries on this Dask scheduler's workers instead of a local cluster "
+    "(default: $AUDIODSM_SCHEDULER).",
+)

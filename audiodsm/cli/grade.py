@@ -8,7 +8,7 @@ from pathlib import Path
 
 import click
 
-from audiodsm.cli._options import short_plan_option
+from audiodsm.cli._options import scheduler_option, short_plan_option
 from audiodsm.errors import (
     EXIT_FAILED,
     EXIT_OK,
@@ -70,6 +70,7 @@ class _Bar:
 @click.option("--recompute", is_flag=True, help="Run every battery again; refresh the cache.")
 @click.option("--seed", type=int, default=0, show_default=True, help="Battery seed.")
 @short_plan_option
+@scheduler_option
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
 def grade(
     paths,
@@ -82,6 +83,7 @@ def grade(
     recompute,
     seed,
     short,
+    scheduler,
     no_progress,
 ):
     """Grade candidate PROFILE files (or folders of them) against a spec sheet.
@@ -89,9 +91,12 @@ def grade(
     Every profile's chain goes through the test battery; each target of the spec sheet is
     graded pass or fail with a margin in the metric's unit (positive = better than the limit),
     and profiles are ranked by their worst margin. With --short the battery runs its short
-    plan, as ``audiodsm measure --short`` does (cached apart from full runs). Exit status: 0
-    when every target of every profile passes, 1 when any fails, 2 on bad input, 3 when the
-    report cannot be written (the grades are still printed), 130 when interrupted by Ctrl-C
+    plan, as ``audiodsm measure --short`` does (cached apart from full runs). With --jobs
+    above 1 the batteries run on a local Dask cluster that starts and stops by itself; with
+    --scheduler (or $AUDIODSM_SCHEDULER) on that scheduler's workers. Exit status: 0
+    when every target of every profile passes, 1 when any fails, 2 on bad input or a --scheduler
+    that cannot take the batch, 3 when the report cannot be written (the grades are still
+    printed), 130 when interrupted by Ctrl-C
     (143 for SIGTERM, 129 for SIGHUP; finished results stay cached; run the same command again
     to resume). A cache that cannot be written only gives a warning.
     """
@@ -125,6 +130,8 @@ def grade(
             seed=seed,
             battery_options={"plan": BatteryPlan.quick()} if short else None,
             progress=bar,
+            scheduler=scheduler,
+            say=None if as_json else lambda text: click.echo(f"audiodsm: {text}", err=True),
         )
     finally:
         bar.close()

@@ -22,7 +22,8 @@ import sys
 
 import click
 
-from audiodsm.cli._options import short_plan_option
+from audiodsm.cli._options import scheduler_option, short_plan_option
+from audiodsm.errors import EXIT_FAILED
 
 __all__ = ["measure"]
 
@@ -71,8 +72,9 @@ class _Bar:
     help="Mixed into every run's dither seed.",
 )
 @short_plan_option
+@scheduler_option
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
-def measure(profiles, as_json, jobs, seed, short, no_progress):
+def measure(profiles, as_json, jobs, seed, short, scheduler, no_progress):
     """Run the test battery on each PROFILE (a file, or a folder of .toml files).
 
     Each profile's chain is driven with AES17-practice stimuli (997 Hz tones, silence, small
@@ -80,20 +82,37 @@ def measure(profiles, as_json, jobs, seed, short, no_progress):
     measured: dynamic range, THD+N, idle noise and idle tones, maximum stable amplitude,
     frequency response, images, IMD, out-of-band noise, noise modulation, state peaks and,
     for PWM stages, pulse counts and switching rate.
+
+    Several profiles run as tasks on a local Dask cluster of worker processes (or on
+    --scheduler's workers); a profile whose battery fails is reported with the cause, the
+    others are still measured, and the exit status is then 1.
     """
     from audiodsm.evaluate.battery import BatteryPlan, run_battery
-    from audiodsm.evaluate.grade import collect_profiles
+    from audiodsm.evaluate.grade import collect_profiles, measure_on_cluster
     from audiodsm.evaluate.tables import metrics_table
 
     loaded = collect_profiles(profiles)  # every file checked before any runs
     plan = BatteryPlan.quick() if short else BatteryPlan()
     names, rows, invalid, notes = [], [], [], []
-    for path, prof in loaded:
-        bar = _Bar(prof.name, enabled=not no_progress)
-        try:
-            res = run_battery(prof, jobs=jobs, progress=bar, seed=seed, plan=plan)
-        finally:
-            bar.close()
+    failed = False
+    if len(loaded) > 1 and (scheduler or (jobs or 2) > 1):
+        say = None if as_json else (lambda text: click.echo(f"audiodsm: {text}", err=True))
+        results = measure_on_cluster(
+            loaded, plan=plan, jobs=jobs, seed=seed, scheduler=scheduler, say=say
+        )
+    else:
+        results = [None] * len(loaded)
+    for (path, prof), res in zip(loaded, results, strict=True):
+        if res is None:
+            bar = _Bar(prof.name, enabled=not no_progress)
+            try:
+                res = run_battery(prof, jobs=jobs, progress=bar, seed=seed, plan=plan)
+            finally:
+                bar.close()
+        if isinstance(res, str):
+            click.echo(f"audiodsm: {prof.name} ({path}): {res}", err=True)
+            failed = True
+            continue
         if as_json:
             record = {
                 "profile": prof.name,
@@ -114,3 +133,5 @@ def measure(profiles, as_json, jobs, seed, short, no_progress):
             click.echo(f"{prof.name}: measured in {res.seconds:.1f} s ({path})", err=True)
     if not as_json:
         click.echo(metrics_table(names, rows, invalid, notes))
+    if failed:
+        sys.exit(EXIT_FAILED)

@@ -17,16 +17,12 @@ arrays) works; the default is :func:`audiodsm.evaluate.battery.run_battery`.
 
 from __future__ import annotations
 
-import concurrent.futures as _cf
 import hashlib
 import io
 import json
 import math
-import multiprocessing
 import os
-import queue as _queue
 import signal
-import threading
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -53,6 +49,7 @@ __all__ = [
     "rank_grades",
     "plan_for_spec",
     "grade_batch",
+    "measure_on_cluster",
 ]
 
 #: Tolerance when matching a target's tone level to a level of the THD+N sweep (dB).
@@ -609,35 +606,12 @@ def _entry_from_arrays(arrays: dict) -> dict:
 # Running the battery (in this process or in worker processes)
 # ---------------------------------------------------------------------------------------------
 
-_WORKER_QUEUE = None
-
-
-def _worker_init(q):
-    """Set up a worker process: the progress queue, and an end when the parent ends.
-
-    A worker runs a battery for minutes; when the main process is gone (killed, even by
-    SIGKILL, which it cannot handle) nobody wants the result, so a watcher thread ends the
-    worker as soon as the parent's end of the process sentinel closes.
-    """
-    global _WORKER_QUEUE
-    _WORKER_QUEUE = q
-    parent = multiprocessing.parent_process()
-    if parent is not None:
-        threading.Thread(target=_end_with_parent, args=(parent,), daemon=True).start()
-
-
-def _end_with_parent(parent):
-    parent.join()  # returns when the parent process has ended
-    os._exit(1)
-
 
 def _run_one(battery, profile, index, jobs, seed, options, report=None):
-    """Run the battery on one profile; never raises an ordinary exception."""
-    if report is None and _WORKER_QUEUE is not None:
+    """Run the battery on one profile; never raises an ordinary exception.
 
-        def report(done, total, label):
-            _WORKER_QUEUE.put((index, done, total, label))
-
+    Runs in this process (serial batches) and as the task of a cluster worker.
+    """
     start = time.perf_counter()
     try:
         result = battery(profile, jobs=jobs, progress=report, seed=seed, **options)
@@ -710,6 +684,8 @@ def grade_batch(
     seed: int = 0,
     battery_options: dict | None = None,
     progress: Callable[[float, str], None] | None = None,
+    scheduler: str | None = None,
+    say: Callable[[str], None] | None = None,
 ) -> GradeBatch:
     """Run the battery on every profile, grade each against the spec sheet, rank them.
 
@@ -721,12 +697,13 @@ def grade_batch(
     battery : callable, optional, keyword-only
         ``battery(profile, *, jobs, progress, seed, **battery_options)`` returning an object
         with ``.metrics`` and ``.curves`` (and optionally ``.notes``, ``.seconds``). Default:
-        :func:`audiodsm.evaluate.battery.run_battery`. With more than one worker process it
-        must be a module-level function (it is sent to the workers by reference).
+        :func:`audiodsm.evaluate.battery.run_battery`. On a cluster it must be a
+        module-level function (it is sent to the workers by reference).
     jobs : int, optional, keyword-only
-        Cores to use (default: all). Profiles run in ``min(jobs, profiles to run)`` worker
-        processes, each battery with ``jobs // workers`` threads; ``jobs=1`` runs in this
-        process.
+        Cores to use (default: all). With more than one, the batteries run as tasks on a
+        local Dask cluster (:mod:`audiodsm.evaluate.cluster`) of ``min(jobs, profiles to
+        run)`` worker processes on 127.0.0.1, each battery with ``jobs // workers`` threads;
+        the cluster stops when the batch ends. ``jobs=1`` runs in this process.
     cache_dir : path-like or None, keyword-only
         Cache folder; None turns caching off.
     recompute : bool, keyword-only
@@ -739,7 +716,13 @@ def grade_batch(
         the plan's sweep lacks adds that level to the sweep (:func:`plan_for_spec`), so the
         battery measures at it.
     progress : callable, optional, keyword-only
-        Called as ``progress(fraction_done, label)`` as battery runs finish.
+        Called as ``progress(fraction_done, label)`` as battery runs finish. On a cluster
+        the label reads ``"3/24 batteries, 5.2/min, 2 workers"``.
+    scheduler : str or None, keyword-only
+        ``tcp://host:port`` of an existing Dask scheduler: the batteries run on its workers
+        (one thread each) instead of a local cluster, whatever ``jobs`` says.
+    say : callable, optional, keyword-only
+        Receives one-line notices of a cluster run (where it runs, the dashboard address).
 
     Returns
     -------
@@ -754,6 +737,9 @@ def grade_batch(
     ------
     ParameterError
         A bad ``jobs`` or ``seed``.
+    ClusterError
+        Before any battery runs: the scheduler cannot be reached, has no workers, or its
+        workers run another version of audiodsm.
     """
     from audiodsm import __version__
 
@@ -812,13 +798,20 @@ def grade_batch(
                 except OSError as exc:  # keep the result; say so at the end
                     store_failure.append(str(exc))
                     unsaved.append(i)
-        tick(i, 1, 1, "done" if "failure" not in outcome else "failed")
+        if not on_cluster:  # a cluster batch reports tasks done of total itself
+            tick(i, 1, 1, "done" if "failure" not in outcome else "failed")
 
     interrupted = False
     stop_signal = 0
     workers = min(jobs, len(todo))
+    on_cluster = bool(todo) and (bool(scheduler) or workers > 1)
     try:
-        if workers <= 1:
+        if on_cluster:
+            _run_on_cluster(
+                battery, entries, todo, workers, jobs, seed, options, scheduler, progress,
+                say, finish, names,
+            )  # fmt: skip
+        else:
             for i in todo:
                 outcome = _run_one(
                     battery,
@@ -830,8 +823,6 @@ def grade_batch(
                     report=lambda d, t, lab, i=i: tick(i, d, t, lab),
                 )
                 finish(i, outcome)
-        else:
-            _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish)
     except KeyboardInterrupt as exc:
         interrupted = True
         stop_signal = getattr(exc, "signal_number", int(signal.SIGINT))
@@ -883,63 +874,105 @@ def grade_batch(
     )
 
 
-def _run_pool(battery, entries, todo, workers, jobs, seed, options, tick, finish):
-    """Run the batteries in worker processes; results are handed to ``finish`` as they come.
+def _run_on_cluster(
+    battery, entries, todo, workers, jobs, seed, options, scheduler, progress, say, finish, names
+):
+    """Run the batteries of ``todo`` as cluster tasks; ``finish`` gets each outcome here."""
+    from audiodsm.evaluate.cluster import run_tasks
 
-    A worker process that dies outright (a crash of the interpreter, not an exception) breaks
-    the pool and every profile still in it. Those profiles are then run again one at a time,
-    each in a fresh single-worker pool, so only the profile that kills its process is graded
-    failed.
-    """
-    ctx = multiprocessing.get_context("spawn")
-    q = ctx.Queue()
-    threads = max(1, jobs // workers)
-    broken = _pool_pass(battery, entries, todo, workers, threads, seed, options, tick, finish,
-                        ctx, q)  # fmt: skip
-    for i in broken:
-        again = _pool_pass(battery, entries, [i], 1, threads, seed, options, tick, finish, ctx, q)
-        if again:
-            finish(i, {"failure": "worker process ended unexpectedly (the battery crashed it)"})
-    q.close()
+    threads = 1 if scheduler else max(1, jobs // workers)
+    calls = [(battery, entries[i][1], i, threads, seed, options) for i in todo]
 
+    def on_result(k, status, value):
+        i = todo[k]
+        if status == "failed":  # the task itself failed (e.g. the battery not importable)
+            value = {"failure": f"battery failed on a worker: {value}"}
+        elif status == "lost":
+            value = {"failure": value}
+        finish(i, value)
 
-def _pool_pass(battery, entries, todo, workers, threads, seed, options, tick, finish, ctx, q):
-    """One pool over ``todo``; returns the profiles lost to a broken pool (not finished)."""
-    pool = _cf.ProcessPoolExecutor(
-        max_workers=workers, mp_context=ctx, initializer=_worker_init, initargs=(q,)
+    def report(done, total, per_minute, alive):
+        if progress is not None:
+            progress(done / total, f"{done}/{total} batteries, {per_minute:.1f}/min, "
+                     f"{alive} workers")  # fmt: skip
+
+    run_tasks(
+        _run_one,
+        calls,
+        workers=workers,
+        scheduler=scheduler,
+        on_result=on_result,
+        progress=report,
+        say=say,
     )
-    pending, broken = {}, []
-    try:
-        for i in todo:
-            fut = pool.submit(_run_one, battery, entries[i][1], i, threads, seed, options)
-            pending[fut] = i
-        while pending:
-            done, _ = _cf.wait(pending, timeout=0.25, return_when=_cf.FIRST_COMPLETED)
-            _drain(q, tick)
-            for fut in done:
-                i = pending.pop(fut)
-                try:
-                    outcome = fut.result()
-                except _cf.process.BrokenProcessPool:
-                    broken.append(i)
-                    continue
-                finish(i, outcome)
-        _drain(q, tick)
-    except BaseException:
-        for fut in pending:
-            fut.cancel()
-        for proc in list((getattr(pool, "_processes", None) or {}).values()):
-            proc.terminate()
-        pool.shutdown(wait=True, cancel_futures=True)
-        raise
-    pool.shutdown(wait=True)
-    return broken
 
 
-def _drain(q, tick):
-    while True:
-        try:
-            i, done, total, label = q.get_nowait()
-        except _queue.Empty:
-            return
-        tick(i, done, total, label)
+def _measure_task(profile, threads, seed, plan):
+    from audiodsm.evaluate.battery import run_battery
+
+    return run_battery(profile, jobs=threads, progress=None, seed=seed, plan=plan)
+
+
+def measure_on_cluster(
+    profiles: Sequence,
+    *,
+    plan=None,
+    jobs: int | None = None,
+    seed: int = 0,
+    scheduler: str | None = None,
+    progress: Callable[[float, str], None] | None = None,
+    say: Callable[[str], None] | None = None,
+) -> list:
+    """Run the battery on several profiles as cluster tasks (``audiodsm measure``).
+
+    Parameters
+    ----------
+    profiles : sequence of (path, ChainProfile)
+    plan : BatteryPlan, optional, keyword-only
+    jobs : int, optional, keyword-only
+        Cores of the local cluster (default: all); ``min(jobs, profiles)`` worker processes,
+        each battery with ``jobs // workers`` threads. Ignored with ``scheduler``.
+    seed : int, keyword-only
+    scheduler : str or None, keyword-only
+        An existing Dask scheduler (``tcp://host:port``); None starts a local cluster.
+    progress, say : callable, optional, keyword-only
+        As for :func:`grade_batch`.
+
+    Returns
+    -------
+    list
+        Per profile, in the order given: its ``BatteryResult``, or a one-line text saying why
+        the battery failed (the other profiles are still measured).
+
+    Raises
+    ------
+    ClusterError
+        The scheduler cannot take the batch (before any battery runs).
+    """
+    from audiodsm.evaluate.cluster import run_tasks
+
+    entries = list(profiles)
+    jobs = jobs or os.cpu_count() or 1
+    workers = max(1, min(jobs, len(entries)))
+    threads = 1 if scheduler else max(1, jobs // workers)
+    out: list = [None] * len(entries)
+
+    def on_result(i, status, value):
+        out[i] = value if status == "ok" else f"battery failed: {value}"
+
+    def report(done, total, per_minute, alive):
+        if progress is not None:
+            progress(done / total, f"{done}/{total} batteries, {per_minute:.1f}/min, "
+                     f"{alive} workers")  # fmt: skip
+
+    calls = [(prof, threads, seed, plan) for _, prof in entries]
+    run_tasks(
+        _measure_task,
+        calls,
+        workers=workers,
+        scheduler=scheduler,
+        on_result=on_result,
+        progress=report,
+        say=say,
+    )
+    return out

@@ -25,6 +25,7 @@ __all__ = [
     "plot_frequency_response",
     "plot_margins",
     "plot_spectrogram",
+    "plot_cost_against_margin",
 ]
 
 # a plain palette of our own: ink, a blue, an ochre, a grey and a muted red
@@ -323,3 +324,39 @@ PLOTS = (
     ("state_histograms", plot_state_histograms, "integrator state histograms"),
     ("frequency_response", plot_frequency_response, "frequency response"),
 )
+
+
+def plot_cost_against_margin(points, front, *, ax=None, title="Cost against worst margin"):
+    """Every graded candidate of an exploration: cost against worst margin, front highlighted.
+
+    Parameters
+    ----------
+    points : sequence of (float, float, str)
+        ``(cost, worst margin in dB, profile name)``; a margin of ``-inf`` (no reading) is
+        drawn as a cross at the bottom edge.
+    front : collection of str
+        Names of the profiles on the front: drawn larger, joined by a line and labelled.
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    fig, ax = _axes(ax, size=(7.6, 4.6))
+    finite = [m for _, m, _ in points if np.isfinite(m)]
+    floor = (min(finite) if finite else 0.0) - 3.0
+    for cost, margin, name in points:
+        if not np.isfinite(margin):
+            ax.plot(cost, floor, "x", color=_RED, ms=5)
+        elif name not in front:
+            ax.plot(cost, margin, "o", color=_GREY, ms=4, alpha=0.7)
+    chosen = sorted((c, m, n) for c, m, n in points if n in front and np.isfinite(m))
+    if chosen:
+        ax.plot([c for c, _, _ in chosen], [m for _, m, _ in chosen], "-o", color=_BLUE, ms=6)
+        for c, m, n in chosen:
+            ax.annotate(n, (c, m), textcoords="offset points", xytext=(4, 4), fontsize=7)
+    ax.axhline(0.0, color=_INK, lw=0.8)
+    ax.set_xscale("log")
+    _style(ax, title, "cost: clock MHz x levels x order (+ PWM edges, MHz)", "worst margin (dB)")
+    return fig

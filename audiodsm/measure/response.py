@@ -38,13 +38,25 @@ AES17_TEST_HZ = 997.0
 # ---------------------------------------------------------------------------------------------
 
 
+#: Octave frequency ratio of IEC 61260-1:2014 (base-10 system): G = 10**(3/10).
+_OCTAVE_RATIO_BASE10 = 10.0**0.3
+
+
 def _third_octave_sos(centre_hz, rate):
     """Design the 1/3-octave band-pass around ``centre_hz``.
 
-    Sixth-order Butterworth (3rd-order prototype) with base-2 band edges ``f * 2**(±1/6)``
-    (IEC 61260-1 band edges; the order is common practice).
+    Sixth-order Butterworth (3rd-order prototype) with base-10 band edges
+    ``f * G**(±1/6)``, ``G = 10**(3/10)`` (IEC 61260-1:2014, which prefers the base-10
+    system); the order is common practice. It meets the standard's class-1 limits on relative
+    attenuation (checked in tests/test_response.py).
+
+    References
+    ----------
+    .. [1] IEC 61260-1:2014, Electroacoustics - Octave-band and fractional-octave-band
+       filters - Part 1: Specifications, octave ratio and band edges (from memory).
     """
-    lo, hi = centre_hz * 2.0 ** (-1.0 / 6.0), centre_hz * 2.0 ** (1.0 / 6.0)
+    edge = _OCTAVE_RATIO_BASE10 ** (1.0 / 6.0)
+    lo, hi = centre_hz / edge, centre_hz * edge
     if hi >= rate / 2:
         raise ParameterError("frequency_hz", centre_hz, f"a 1/3-octave band below {rate / 2:g} Hz")
     return _sig.butter(3, [lo, hi], btype="bandpass", output="sos", fs=rate)
@@ -111,7 +123,8 @@ def level_linearity(
     ----------
     .. [1] AES17-2015, level-dependent gain (gain linearity) measured through a 1/3-octave
        band-pass at the test frequency (from memory).
-    .. [2] IEC 61260-1:2014, fractional-octave band edges ``f * G**(±1/6)`` (base-2 used here).
+    .. [2] IEC 61260-1:2014, fractional-octave band edges ``f * G**(±1/6)`` with the base-10
+       octave ratio ``G = 10**(3/10)``.
     """
     rate = _check_rate(rate_hz)
     freq = _check_frequency(frequency_hz, rate)

@@ -1,0 +1,89 @@
+"""Cluster benchmark: a batch of 24 short-plan batteries on one and on two Dask workers.
+
+Case ``cluster_scaling``: 24 profiles (copies of the shipped demo DAC loops, renamed) run the
+battery's short plan as tasks of a local cluster (:mod:`audiodsm.evaluate.cluster`) with one
+worker process, then with two. Reported per run: cluster start-up (processes up and the
+version check done), worker warm-up (the slowest worker's imports and first compiled loop),
+the batch itself (first task sent to last result back) and the whole wall time; then the
+speed-up of two workers over one on the batch and on the wall time. Target: a batch speed-up
+of at least 1.8 on two otherwise idle cores. Not run by ``make test``; takes a few minutes.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import replace
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+PROFILES = int(os.environ.get("AUDIODSM_BENCH_CLUSTER_PROFILES", "24"))
+
+
+def _profiles():
+    from audiodsm.evaluate.grade import collect_profiles
+
+    shipped = collect_profiles([ROOT / "profiles" / "dac_chip"])
+    out = []
+    for k in range(PROFILES):
+        _, prof = shipped[k % len(shipped)]
+        out.append(replace(prof, name=f"copy {k} of {prof.name}"))
+    return out
+
+
+def _batch(profiles, workers):
+    from audiodsm.evaluate.battery import BatteryPlan
+    from audiodsm.evaluate.cluster import run_tasks
+    from audiodsm.evaluate.grade import _run_one
+
+    plan = BatteryPlan.quick()
+    marks = {}
+    failures = []
+    battery = _default()
+    calls = [(battery, p, i, 1, 0, {"plan": plan}) for i, p in enumerate(profiles)]
+
+    def on_result(i, status, value):
+        if status != "ok" or "failure" in value:
+            failures.append(i)
+
+    t0 = time.perf_counter()
+    info = run_tasks(
+        _run_one,
+        calls,
+        workers=workers,
+        on_result=on_result,
+        say=lambda text: marks.setdefault("sent", time.perf_counter()),
+    )
+    end = time.perf_counter()
+    return {
+        "workers": workers,
+        "start_up_s": round(info.start_s, 2),
+        "warm_up_s": round(info.warm_up_s, 2),
+        "batch_s": round(end - marks["sent"], 2),
+        "wall_s": round(end - t0, 2),
+        "failed": len(failures),
+    }
+
+
+def _default():
+    from audiodsm.evaluate.grade import _default_battery
+
+    return _default_battery()
+
+
+def run():
+    profiles = _profiles()
+    one = _batch(profiles, 1)
+    two = _batch(profiles, 2)
+    yield {
+        "case": "cluster_scaling",
+        "plan": "quick",
+        "profiles": PROFILES,
+        "one_worker": one,
+        "two_workers": two,
+        "batch_speedup": round(one["batch_s"] / two["batch_s"], 3),
+        "wall_speedup": round(one["wall_s"] / two["wall_s"], 3),
+        "batteries_per_minute_two_workers": round(60 * PROFILES / two["batch_s"], 1),
+        "target_batch_speedup_min": 1.8,
+        "load_average_1min": round(os.getloadavg()[0], 2),
+    }
