@@ -634,7 +634,8 @@ def test_band_edge_zeros_give_the_published_improvement_over_20khz(order):
     )
     pole_term = 20 * math.log10(abs(opt.polynomials()[1].sum() / dc.polynomials()[1].sum()))
     assert got_db == pytest.approx(_legendre_improvement_db(order) + pole_term, abs=0.02)
-    assert got_db == pytest.approx(SNT_OPTIMAL_ZEROS[order][1], abs=TABLE_DB_TOL)
+    # the book table as a rounded value, as in the table test above
+    assert abs(got_db - SNT_OPTIMAL_ZEROS[order][1]) < TABLE_DB_STEP.get(order, 1.0)
     # ... and the zeros placed for 48 kHz (the old default) leave far more noise in 20 kHz.
     wide = NoiseTransfer.designed(order, osr=osr)
     assert wide.in_band_noise_fraction(band_osr) > 10 * opt.in_band_noise_fraction(band_osr)
