@@ -72,9 +72,10 @@ Grading (``audiodsm.evaluate.grade``)
     grade_batch, grade_metrics, rank_grades, collect_profiles, GradeBatch, ProfileGrade,
     TargetGrade, GradeCache
 Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
-    write_report, render_html, batch_to_dict, batch_to_csv, plot_spectrum,
-    plot_thd_n_vs_level, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
-    plot_margins, plot_spectrogram
+    write_report, render_html, batch_to_dict, batch_to_csv, curve_to_csv, write_profile_plots,
+    plot_spectrum, plot_noise_density, plot_audio_band_density, plot_thd_n_vs_level,
+    plot_thd_n_vs_frequency, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
+    plot_overlay, series_style, plot_margins, plot_spectrogram
 Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
 ``audiodsm.measure.silence``)
     render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
@@ -248,7 +249,14 @@ _PUBLIC = {
     "render_html": "audiodsm.evaluate.report",
     "batch_to_dict": "audiodsm.evaluate.report",
     "batch_to_csv": "audiodsm.evaluate.report",
+    "curve_to_csv": "audiodsm.evaluate.report",
+    "write_profile_plots": "audiodsm.evaluate.report",
     "plot_spectrum": "audiodsm.evaluate.plotting",
+    "plot_noise_density": "audiodsm.evaluate.plotting",
+    "plot_audio_band_density": "audiodsm.evaluate.plotting",
+    "plot_thd_n_vs_frequency": "audiodsm.evaluate.plotting",
+    "plot_overlay": "audiodsm.evaluate.plotting",
+    "series_style": "audiodsm.evaluate.plotting",
     "plot_thd_n_vs_level": "audiodsm.evaluate.plotting",
     "plot_idle_tone_map": "audiodsm.evaluate.plotting",
     "plot_state_histograms": "audiodsm.evaluate.plotting",

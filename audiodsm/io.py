@@ -19,6 +19,7 @@ written together live in :mod:`audiodsm.io_files`; the audio writers here are bu
 
 from __future__ import annotations
 
+import errno
 import os
 import struct
 from collections.abc import Iterator
@@ -487,7 +488,7 @@ class AudioFileWriter:
         except (sf.SoundFileError, RuntimeError, OSError) as exc:
             os.unlink(tmp)
             self._tmp = None
-            raise StorageError(self.path, _sound_cause(exc)) from None
+            raise StorageError(self.path, _sound_cause(exc, self.path)) from None
         except BaseException:
             os.unlink(tmp)
             self._tmp = None
@@ -503,7 +504,7 @@ class AudioFileWriter:
             self._handle.write(x)
         except (sf.SoundFileError, RuntimeError, OSError, AssertionError) as exc:
             # libsndfile reports a full disk as a short write (soundfile asserts on it)
-            raise StorageError(self.path, _sound_cause(exc)) from None
+            raise StorageError(self.path, _sound_cause(exc, self.path)) from None
         self.frames_written += x.shape[0]
 
     def __exit__(self, exc_type, exc, tb) -> None:
@@ -515,7 +516,7 @@ class AudioFileWriter:
                     handle.close()
                 except (sf.SoundFileError, RuntimeError, OSError) as err:
                     if exc_type is None:
-                        raise StorageError(self.path, _sound_cause(err)) from None
+                        raise StorageError(self.path, _sound_cause(err, self.path)) from None
         except BaseException:
             if tmp is not None:
                 Path(tmp).unlink(missing_ok=True)
@@ -536,14 +537,29 @@ class AudioFileWriter:
             Path(tmp).unlink(missing_ok=True)
 
 
-def _sound_cause(exc) -> str:
-    """Plain words for why libsndfile or the OS refused a write."""
+def _sound_cause(exc, path=None) -> str:
+    """Plain words for why libsndfile or the OS refused a write to ``path``.
+
+    libsndfile reports a failed system call (a full disk, say) only as "System error."; when
+    the file's folder has no free space left, the cause is said in the OS's words instead.
+    """
     if isinstance(exc, OSError) and exc.strerror:
         return exc.strerror
+    if path is not None and _no_space_left(path):
+        return os.strerror(errno.ENOSPC)
     if isinstance(exc, AssertionError):
         return "short write: the disk may be full"
     text = str(exc).split(":")[-1].strip()
     return text or type(exc).__name__
+
+
+def _no_space_left(path) -> bool:
+    """True when the file system holding ``path``'s folder has no block left for a user."""
+    folder = Path(path).parent if str(Path(path).parent) else Path(".")
+    try:
+        return os.statvfs(folder).f_bavail == 0
+    except (OSError, AttributeError):  # no statvfs (Windows): nothing more to say
+        return False
 
 
 def open_audio_writer(

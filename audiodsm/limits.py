@@ -13,6 +13,8 @@ __all__ = [
     "AUDIO_RATES_HZ",
     "CUTOFF_HZ_RANGE",
     "DESIGN_OSR_RANGE",
+    "ELEMENT_MISMATCH_RANGE",
+    "ELEMENT_SELECTIONS",
     "FILTER_ORDER_RANGE",
     "LEVELS_RANGE",
     "ORDER_RANGE",
@@ -52,3 +54,15 @@ CUTOFF_HZ_RANGE = (20000.0, 1e7)
 
 #: Dynamic-range targets the design search accepts (dB).
 TARGET_DYNAMIC_RANGE_DB = (20.0, 250.0)
+
+#: Element-selection methods of a multi-level DAC's unit elements (stages/elements.py).
+ELEMENT_SELECTIONS = (
+    "thermometer",
+    "random",
+    "data-weighted",
+    "bidirectional-weighted",
+    "vector-second-order",
+)
+
+#: Relative standard deviation of one unit element's weight (0.1 = 10 %).
+ELEMENT_MISMATCH_RANGE = (0.0, 0.1)

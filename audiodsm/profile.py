@@ -26,6 +26,8 @@ from audiodsm.errors import ProfileError
 from audiodsm.limits import (
     AUDIO_RATES_HZ,
     CUTOFF_HZ_RANGE,
+    ELEMENT_MISMATCH_RANGE,
+    ELEMENT_SELECTIONS,
     FILTER_ORDER_RANGE,
     LEVELS_RANGE,
     ORDER_RANGE,
@@ -45,6 +47,7 @@ __all__ = [
     "ReconstructionSettings",
     "ListeningSettings",
     "FixedPointSettings",
+    "ImpairmentSettings",
     "load_profile",
     "parse_profile",
     "profile_from_dict",
@@ -663,6 +666,97 @@ class FixedPointSettings:
         return bool(self.state_integer_bits)
 
 
+@dataclass(frozen=True)
+class ImpairmentSettings:
+    """How the built converter departs from the ideal one (``[impairments]``).
+
+    See docs/impairments.md. Every key at its default is the ideal converter. The element
+    keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the jitter keys to PDM
+    and NRZ outputs, the analog noise to every output.
+    """
+
+    element_mismatch: float = _key(
+        0.0,
+        "float",
+        f"a number from {_short(ELEMENT_MISMATCH_RANGE[0])} to {_short(ELEMENT_MISMATCH_RANGE[1])}",
+        _float_range(*ELEMENT_MISMATCH_RANGE),
+        doc="Relative standard deviation of one unit element's weight (0.001 = 0.1 %; NRZ).",
+    )
+    element_selection: str = _key(
+        "thermometer",
+        "str",
+        _fmt_choices(*ELEMENT_SELECTIONS),
+        _choice(*ELEMENT_SELECTIONS),
+        doc="Which unit elements a code turns on: fixed (thermometer), random, or "
+        "mismatch-shaping (NRZ).",
+    )
+    part_seed: int = _key(
+        0,
+        "int",
+        "an integer from 0 to 2147483647",
+        _int_range(0, 2**31 - 1),
+        doc="The part: seeds the element weights, the random selection, the random jitter "
+        "and the analog noise.",
+    )
+    jitter_rms_s: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e-6 (seconds)",
+        _float_range(0.0, 1e-6),
+        doc="Standard deviation of the random (white Gaussian) displacement of every output "
+        "edge, in seconds (PDM, NRZ).",
+    )
+    jitter_sine_peak_s: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e-6 (seconds)",
+        _float_range(0.0, 1e-6),
+        doc="Peak displacement of the output edges by sinusoidal jitter, in seconds (PDM, NRZ).",
+    )
+    jitter_sine_hz: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e8 (Hz)",
+        _float_range(0.0, 1e8),
+        doc="Frequency of the sinusoidal jitter, in Hz.",
+    )
+    noise_density_nv: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e6 (nV/sqrt(Hz))",
+        _float_range(0.0, 1e6),
+        doc="Output-referred white noise density of the analog side, in nV/sqrt(Hz).",
+    )
+    noise_corner_hz: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e5 (Hz)",
+        _float_range(0.0, 1e5),
+        doc="1/f corner of the analog noise, in Hz (0 = white only).",
+    )
+
+    supply_ripple: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 0.99 (relative to the supply)",
+        _float_range(0.0, 0.99),
+        doc="Relative amplitude m of the sinusoidal ripple on the PWM stage's supply "
+        "(open loop: the output is the duty cycle times the supply; PWM).",
+    )
+    supply_ripple_hz: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e5 (Hz)",
+        _float_range(0.0, 1e5),
+        doc="Frequency of the supply ripple, in Hz.",
+    )
+
+    @property
+    def active(self) -> bool:
+        """True when any key differs from the ideal converter."""
+        return self != ImpairmentSettings()
+
+
 _SECTIONS = {
     "input": InputSettings,
     "upsampler": UpsamplerSettings,
@@ -671,6 +765,7 @@ _SECTIONS = {
     "reconstruction": ReconstructionSettings,
     "listening": ListeningSettings,
     "fixed_point": FixedPointSettings,
+    "impairments": ImpairmentSettings,
 }
 
 
@@ -691,6 +786,7 @@ class ChainProfile:
     reconstruction: ReconstructionSettings = field(default_factory=ReconstructionSettings)
     listening: ListeningSettings = field(default_factory=ListeningSettings)
     fixed_point: FixedPointSettings = field(default_factory=FixedPointSettings)
+    impairments: ImpairmentSettings = field(default_factory=ImpairmentSettings)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -860,6 +956,71 @@ def _check_fixed_point(profile: ChainProfile, table: dict, path: str) -> None:
         )
 
 
+#: Most levels a DAC built from unit elements may have (stages/elements.py: MAX_ELEMENTS + 1).
+_MAX_ELEMENT_LEVELS = 1025
+
+
+def _check_impairments(profile: ChainProfile, path: str) -> None:
+    """Rules of the [impairments] section that involve the output stage."""
+    imp, kind = profile.impairments, profile.output.kind
+    element = imp.element_mismatch > 0.0 or imp.element_selection != "thermometer"
+    if element and kind != "nrz":
+        key = "element_mismatch" if imp.element_mismatch > 0.0 else "element_selection"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            f"applies only to unit elements (output.kind = 'nrz'); this profile has {kind!r}",
+        )
+    if element and profile.modulator.levels > _MAX_ELEMENT_LEVELS:
+        raise ProfileError(
+            path,
+            "modulator.levels",
+            f"got {profile.modulator.levels} with unit-element impairments; expected 3 to "
+            f"{_MAX_ELEMENT_LEVELS} (one element per step)",
+        )
+    jitter = imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0
+    if jitter and kind == "pwm":
+        key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
+        )
+    if (imp.jitter_sine_peak_s > 0.0) != (imp.jitter_sine_hz > 0.0):
+        key = "jitter_sine_hz" if imp.jitter_sine_peak_s > 0.0 else "jitter_sine_peak_s"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "got 0; expected jitter_sine_peak_s and jitter_sine_hz to be given together",
+        )
+    if imp.supply_ripple > 0.0 and kind != "pwm":
+        raise ProfileError(
+            path,
+            "impairments.supply_ripple",
+            f"applies only to a class-D stage (output.kind = 'pwm'); this profile has {kind!r}",
+        )
+    if imp.supply_ripple > 0.0 and profile.output.dead_time_ticks > 0:
+        raise ProfileError(
+            path,
+            "impairments.supply_ripple",
+            "got a ripple with output.dead_time_ticks > 0; expected no dead time (the "
+            "dead-time loop does not model the supply yet)",
+        )
+    if (imp.supply_ripple > 0.0) != (imp.supply_ripple_hz > 0.0):
+        key = "supply_ripple_hz" if imp.supply_ripple > 0.0 else "supply_ripple"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "got 0; expected supply_ripple and supply_ripple_hz to be given together",
+        )
+    if imp.noise_corner_hz > 0.0 and imp.noise_density_nv == 0.0:
+        raise ProfileError(
+            path,
+            "impairments.noise_corner_hz",
+            f"got {imp.noise_corner_hz!r} with no noise; expected impairments.noise_density_nv",
+        )
+
+
 def profile_from_dict(data: dict, *, source: str = "<profile>") -> ChainProfile:
     """Build a validated :class:`ChainProfile` from a nested dict (the parsed TOML).
 
@@ -903,6 +1064,7 @@ def profile_from_dict(data: dict, *, source: str = "<profile>") -> ChainProfile:
     profile = ChainProfile(**values)
     _check_whole(profile, source)
     _check_fixed_point(profile, data.get("fixed_point", {}), source)
+    _check_impairments(profile, source)
     modulator_table = data.get("modulator", {})
     if profile.modulator.explicit_ntf:
         for key in _DESIGN_KEYS:

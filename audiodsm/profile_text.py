@@ -59,7 +59,7 @@ def profile_to_dict(profile: ChainProfile, *, full: bool = True) -> dict:
     out = {"name": profile.name, "description": profile.description}
     for section, cls in _SECTIONS.items():
         settings = getattr(profile, section)
-        if section == "fixed_point" and not settings.active:
+        if section in ("fixed_point", "impairments") and not settings.active:
             continue  # off: nothing in it may differ from its defaults (see _check_fixed_point)
         table = {}
         for f in dataclasses.fields(cls):

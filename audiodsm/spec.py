@@ -56,6 +56,14 @@ METRIC_CATALOGUE = {
     "thd_n_db_a_at_minus1_dbfs": ("dB", "THD+N at -1 dBFS, A-weighted"),
     "thd_n_db_at_minus20_dbfs": ("dB", "THD+N at -20 dBFS"),
     "thd_n_db_a_at_minus20_dbfs": ("dB", "THD+N at -20 dBFS, A-weighted"),
+    "thd_n_db_worst_over_frequency_at_minus1_dbfs": (
+        "dB",
+        "worst THD+N over frequency (20 Hz to 20 kHz), -1 dBFS tones",
+    ),
+    "thd_n_db_worst_over_frequency_at_minus20_dbfs": (
+        "dB",
+        "worst THD+N over frequency (20 Hz to 20 kHz), -20 dBFS tones",
+    ),
     "idle_noise_dbfs": ("dBFS", "idle-channel noise, unweighted"),
     "idle_noise_dbfs_a": ("dBFS", "idle-channel noise, A-weighted"),
     "idle_noise_dbfs_ccir": ("dBFS", "idle-channel noise, CCIR-RMS weighted"),
@@ -74,6 +82,7 @@ METRIC_CATALOGUE = {
     "pwm_stretched_pulses": ("count", "PWM pulses stretched to the minimum width"),
     "switching_rate_hz": ("Hz", "output level changes per second at idle"),
     "dc_offset_dbfs": ("dBFS", "DC at the output during silence"),
+    "jitter_noise_dbfs_at_1ps": ("dBFS", "in-band noise 1 ps rms of clock jitter adds"),
     # read from the THD+N-versus-level sweep at the level the target names
     "thd_n_db": ("dB", "THD+N at the stated tone level"),
     "thd_n_db_a": ("dB", "THD+N at the stated tone level, A-weighted"),

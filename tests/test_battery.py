@@ -415,7 +415,7 @@ UNSTABLE = Path(__file__).parent / "profiles" / "unstable_order8.toml"
 def unstable_result():
     from audiodsm.profile import load_profile
 
-    tests = ("stability", "dynamic_range", "level_sweep", "idle", "dc_sweep")
+    tests = ("stability", "dynamic_range", "level_sweep", "idle", "dc_sweep", "thd_n_vs_frequency")
     return run_battery(load_profile(UNSTABLE), tests=tests, plan=BatteryPlan.quick(), jobs=2)
 
 
@@ -506,3 +506,63 @@ def test_impossible_thd_n_is_called_so():
     assert "numeric floor" in _sweep_reason(silent, None, None)
     over = dict(sound, overload_count=5)
     assert _sweep_reason(over, -12.0, floor) == "loop overloaded from -12 dBFS"
+
+
+def test_thd_n_against_frequency_of_a_transparent_chain_is_flat():
+    # A 24-bit TPDF-dithered quantizer without noise shaping adds white noise that does not
+    # depend on the signal (Lipshitz, Wannamaker & Vanderkooy 1992, TPDF dither makes the
+    # error's first two moments signal-independent), so THD+N is the same at every frequency
+    # to within the scatter of the noise reading (1.5 s of 20 kHz-wide noise: about 0.02 dB
+    # rms). Before the ratio was taken to the fitted tone, the band's 20 Hz edge read 3 dB
+    # high at 20 Hz.
+    plan = replace(BatteryPlan.quick(), frequency_sweep_s=1.5)
+    res = run_battery(_transparent(24), tests=("thd_n_vs_frequency",), plan=plan, jobs=2)
+    curve = res.curves["thd_n_vs_frequency"]
+    f = curve["frequency_hz"]
+    # 1/3-octave steps (IEC 61260-1 base-10 centres) from 20 Hz to 20 kHz
+    assert f[0] == pytest.approx(20.0, rel=0.01) and f[-1] == pytest.approx(20000.0)
+    assert len(f) >= 31 and np.all(np.diff(np.log10(f)) <= 0.102)  # 997 Hz for 1 kHz
+    assert list(curve["level_dbfs"]) == [-1.0, -20.0]
+    grid = curve["thd_n_db"]
+    assert np.isfinite(grid).all()
+    for row in grid:
+        assert np.max(np.abs(row - row.mean())) <= 0.1
+    # same noise under both tones: the ratio differs by the 19 dB between the levels
+    assert grid[1].mean() - grid[0].mean() == pytest.approx(19.0, abs=0.05)
+    m = res.metrics
+    assert m["thd_n_db_worst_over_frequency_at_minus1_dbfs"] == pytest.approx(grid[0].max())
+    assert m["thd_n_db_worst_over_frequency_at_minus20_dbfs"] == pytest.approx(grid[1].max())
+    assert res.invalid == {}
+
+
+def test_predicted_noise_density_matches_the_simulated_one():
+    # The linear model (Schreier & Temes 2005, ch. 2): quantizer error of power Delta^2/12
+    # plus TPDF dither of power (A Delta)^2/6 (Lipshitz, Wannamaker & Vanderkooy 1992), both
+    # white over 0..fm/2 and shaped by |NTF|^2. A 17-level dithered loop's error is close to
+    # that model, so the density the battery predicts must equal the simulated density within
+    # 1 dB wherever the quantization noise dominates: above the audio band, here in
+    # 1/3-octave bands (power averaged over each band's bins) from 40 kHz to 0.9 fm/2.
+    prof = profile_from_dict(
+        {
+            "name": "nrz17-dithered",
+            "modulator": {"order": 4, "levels": 17, "out_of_band_gain": 2.5, "dither_lsb": 1.0},
+            "output": {"kind": "nrz"},
+            "reconstruction": {"kind": "none"},
+        }
+    )
+    res = run_battery(prof, tests=("dynamic_range", "stability"), plan=BatteryPlan.quick())
+    c = res.curves["spectrum"]
+    f = c["frequency_hz"]
+    sim = 10.0 ** (c["density_dbfs_per_hz"] / 10.0)
+    pred = 10.0 ** (c["predicted_density_dbfs_per_hz"] / 10.0)
+    edges = 40000.0 * 2.0 ** (np.arange(0, 40) / 3.0)
+    edges = edges[edges <= 0.9 * 64 * RATE / 2]
+    assert len(edges) > 15
+    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+        sel = (f >= lo) & (f < hi)
+        ratio_db = 10.0 * math.log10(sim[sel].mean() / pred[sel].mean())
+        assert abs(ratio_db) <= 1.0, (lo, ratio_db)
+    # the audio-band view has fine bins at the audio rate and the prediction stops at 20 kHz
+    a = res.curves["audio_spectrum"]
+    assert a["resolution_hz"][0] <= 12.0 and a["frequency_hz"][-1] == pytest.approx(RATE / 2)
+    assert np.isnan(a["predicted_density_dbfs_per_hz"][a["frequency_hz"] > 20000.0]).all()

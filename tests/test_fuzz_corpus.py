@@ -44,7 +44,9 @@ from audiodsm.io_files import TEMP_SUFFIXES
 from audiodsm.profile import _SECTIONS, load_profile
 
 ROOT = Path(__file__).resolve().parents[1]
-SHIPPED_PROFILES = sorted(p for p in (ROOT / "profiles").rglob("*.toml") if "specs" not in p.parts)
+SHIPPED_PROFILES = sorted(
+    p for p in (ROOT / "profiles").rglob("*.toml") if not {"specs", "spaces"} & set(p.parts)
+)
 SHIPPED_SPECS = sorted((ROOT / "profiles" / "specs").glob("*.toml"))
 
 GOOD_PROFILE = 'name = "fuzz"\n[modulator]\norder = 4\n'

@@ -493,7 +493,8 @@ def test_real_battery_on_a_shipped_profile(tmp_path):
     assert by_name[g.name].cached and by_name[g.name].lines == g.lines
     assert not any(x.cached for x in again.grades if x.name != g.name)
     page = write_report(batch, tmp_path / "r")["html"].read_text()
-    assert page.count("data:image/png;base64,") == 1 + 2  # overview, spectrum, THD+N sweep
+    # overview, the two noise-density views (whole band, audio band), THD+N sweep
+    assert page.count("data:image/png;base64,") == 1 + 3
 
 
 def test_cli_report_and_no_cache(tmp_path, batch_files, calls, use_fake_battery, monkeypatch):

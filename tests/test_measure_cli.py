@@ -23,7 +23,11 @@ def measured(tmp_path_factory):
     folder = tmp_path_factory.mktemp("profiles")
     (folder / "tiny.toml").write_text(PROFILE)
     runner = CliRunner()
-    result = runner.invoke(main, ["measure", str(folder), "--json", "--short", "--jobs", "2"])
+    plots = folder / "plots" / "tiny"  # created with its parents
+    result = runner.invoke(
+        main,
+        ["measure", str(folder), "--json", "--short", "--jobs", "2", "--save-plots", str(plots)],
+    )
     return folder, result
 
 
@@ -125,3 +129,26 @@ def test_measure_table_of_an_unstable_profile():
     assert "loop overloaded from" in out
     assert "notes on unstable order 8:" in out
     assert "no trace of it at the output" in out
+
+
+def test_plots_are_saved_as_png_and_svg(measured):
+    import xml.etree.ElementTree as ET
+
+    from audiodsm.evaluate import plotting
+
+    folder, result = measured
+    assert result.exit_code == 0, result.output
+    plots = folder / "plots" / "tiny"
+    names = sorted(p.name for p in plots.iterdir())
+    # every report plot in both formats, nothing else (no temporary files left)
+    expected = sorted(
+        f"tiny-{name}.{fmt}" for name, _, _ in plotting.PLOTS for fmt in ("png", "svg")
+    )
+    assert names == expected
+    for name, _, _ in plotting.PLOTS:
+        # PNG signature (ISO/IEC 15948:2004 sec. 5.2); SVG is XML with an <svg> root (W3C SVG 1.1)
+        assert (plots / f"tiny-{name}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        root = ET.parse(plots / f"tiny-{name}.svg").getroot()
+        assert root.tag == "{http://www.w3.org/2000/svg}svg"
+    # stdout stays JSON only: the plot message goes to stderr
+    assert all(ln.startswith("{") for ln in result.stdout.splitlines() if ln.strip())

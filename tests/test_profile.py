@@ -108,7 +108,7 @@ kind = "nrz"
 SHIPPED = sorted(
     p
     for p in (Path(__file__).resolve().parents[1] / "profiles").glob("*/*.toml")
-    if p.parent.name != "specs"
+    if p.parent.name not in ("specs", "spaces")  # spec sheets and design spaces are not profiles
 )
 
 

@@ -1,6 +1,10 @@
 import json
 import math
 import os
+import shlex
+import subprocess
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -310,21 +314,6 @@ def test_output_folder_that_cannot_be_made(setup):
     assert len(res.stderr.strip().splitlines()) == 1
 
 
-@pytest.mark.skipif(os.geteuid() == 0, reason="root can write anywhere")
-def test_unwritable_output_folder(setup):
-    tmp, prof, wav, _ = setup
-    out = tmp / "locked"
-    out.mkdir()
-    out.chmod(0o555)
-    try:
-        res = invoke([str(prof), str(wav), "--out-dir", str(out)])
-    finally:
-        out.chmod(0o755)
-    assert res.exit_code == 2
-    assert "not writable" in res.stderr
-    assert final_files(out) == []
-
-
 def test_interrupt_mid_file_leaves_nothing(setup, monkeypatch):
     tmp, prof, wav, _ = setup
     from audiodsm.stages import chain as chain_mod
@@ -471,7 +460,8 @@ def test_a_real_ctrl_c_leaves_nothing(setup):
             proc.kill()
     assert proc.returncode != 0
     assert any(name.endswith(".partial") for name in before)  # it was writing
-    assert sorted(p.name for p in out.iterdir()) == []  # no final and no temporary files
+    # no final and no temporary files; the folder the run made for them is gone again
+    assert not out.exists()
 
 
 def test_error_gain_asks_for_the_error_file(setup):
@@ -489,3 +479,260 @@ def test_error_gain_asks_for_the_error_file(setup):
     assert not any("error" in p.name for p in (tmp / "o2").iterdir())
     res = invoke([str(prof), str(wav), "--out-dir", str(tmp / "o3"), "--error-gain", "90"])
     assert res.exit_code == 2 and "--error-gain=90.0" in res.stderr
+
+
+# --------------------------------------------------------------------------------------------
+# faults and odd inputs (issue 11)
+# --------------------------------------------------------------------------------------------
+
+
+def error_lines(res):
+    return [line for line in res.stderr.splitlines() if line.startswith("audiodsm: error:")]
+
+
+def test_a_summary_that_cannot_be_written_takes_the_whole_set_with_it(setup, monkeypatch):
+    import errno
+
+    tmp, prof, wav, _ = setup
+    out = tmp / "out"
+    summary = out / "take one.test-dac.summary.json"
+    real_replace = os.replace
+
+    def full_for_the_summary(src, dst):  # the disk fills up just as the summary goes in
+        if str(dst) == str(summary):
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(dst))
+        return real_replace(src, dst)
+
+    monkeypatch.setattr(os, "replace", full_for_the_summary)
+    args = [str(prof), str(wav), "--out-dir", str(out), "--error-file", "--save-stream"]
+    res = invoke([*args, "--no-progress"])
+    monkeypatch.undo()
+    assert res.exit_code == 3, res.output
+    assert error_lines(res) == [
+        f"audiodsm: error: {summary}: cannot write ({os.strerror(errno.ENOSPC)})"
+    ]
+    assert "Traceback" not in res.output
+    assert final_files(out) == []  # no listening file, no bits, no temporary file
+    # so a rerun is not refused with "already exists"
+    res = invoke([*args, "--no-progress"])
+    assert res.exit_code == 0, res.output
+    assert len(final_files(out)) == 5
+
+
+def in_mount_namespace(script: str, tmp) -> subprocess.CompletedProcess:
+    """Run a shell script in a private mount namespace (mounts vanish with it), or skip."""
+    import shutil
+
+    if shutil.which("unshare") is None or shutil.which("mount") is None:
+        pytest.skip("needs unshare and mount to make a bind mount")
+    probe = subprocess.run(
+        ["unshare", "-rm", "sh", "-c", f"mount --bind '{tmp}' '{tmp}'"],
+        capture_output=True,
+        text=True,
+    )
+    if probe.returncode != 0:
+        pytest.skip(f"cannot bind-mount in a private mount namespace: {probe.stderr.strip()}")
+    env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[1]))
+    return subprocess.run(
+        ["unshare", "-rm", "sh", "-c", script], capture_output=True, text=True, env=env
+    )
+
+
+def render_command(*args) -> str:
+    return " ".join(shlex.quote(a) for a in [sys.executable, "-m", "audiodsm", "render", *args])
+
+
+def test_a_read_only_output_folder_is_a_storage_error(setup):
+    # a read-only bind mount: read-only even for root, where a chmod would not be
+    tmp, prof, wav, _ = setup
+    out = tmp / "locked"
+    out.mkdir()
+    q = shlex.quote(str(out))
+    res = in_mount_namespace(
+        f"mount --bind {q} {q} && mount -o remount,bind,ro {q} && "
+        + render_command(str(prof), str(wav), "--out-dir", str(out), "--no-progress"),
+        tmp,
+    )
+    assert res.returncode == 3, res.stderr
+    lines = res.stderr.strip().splitlines()
+    assert lines == [f"audiodsm: error: {out}: cannot write ({os.strerror(30)})"]  # EROFS
+    assert final_files(out) == []
+
+
+def test_a_full_disk_while_rendering_is_a_storage_error(setup):
+    # a real full disk: a 64 KiB file system for the output folder; the 24-bit listening file
+    # of the 1.25 s stereo input needs 360 kB
+    tmp, prof, wav, _ = setup
+    out = tmp / "small"
+    out.mkdir()
+    q = shlex.quote(str(out))
+    res = in_mount_namespace(
+        f"mount -t tmpfs -o size=64k tmpfs {q} && "
+        + render_command(str(prof), str(wav), "--out-dir", str(out), "--no-progress")
+        + f" ; code=$? ; ls -A {q} ; exit $code",
+        tmp,
+    )
+    assert res.returncode == 3, res.stderr
+    lines = res.stderr.strip().splitlines()
+    listen = out / "take one.test-dac.listen.wav"
+    assert lines == [f"audiodsm: error: {listen}: cannot write ({os.strerror(28)})"]  # ENOSPC
+    assert "Traceback" not in res.stderr
+    assert res.stdout == ""  # the small file system was left empty: no temporary file either
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root can write into a folder without write bits")
+def test_unwritable_output_folder(setup):
+    tmp, prof, wav, _ = setup
+    out = tmp / "locked"
+    out.mkdir()
+    out.chmod(0o555)
+    try:
+        res = invoke([str(prof), str(wav), "--out-dir", str(out)])
+    finally:
+        out.chmod(0o755)
+    assert res.exit_code == 3
+    assert error_lines(res) == [f"audiodsm: error: {out}: cannot write ({os.strerror(13)})"]
+    assert final_files(out) == []
+
+
+def test_long_profile_and_input_names_are_shortened_with_a_digest(setup):
+    from audiodsm.io_files import MAX_OUTPUT_NAME_BYTES
+
+    tmp, prof, wav, x = setup
+    long_name = "p" * 300
+    prof.write_text(PROFILE.replace('"test-dac"', f'"{long_name}"'), encoding="utf-8")
+    inputs = []
+    for last in "ab":  # 244-character names that differ only in their last letter
+        name = tmp / "src" / ("t" * 239 + last + ".wav")
+        assert len(name.name) == 244
+        sf.write(name, x[:4800], RATE, subtype="PCM_24")
+        inputs.append(name)
+    out = tmp / "out"
+    args = [str(prof), *map(str, inputs), "--out-dir", str(out), "--error-file", "--json"]
+    res = invoke([*args, "--save-stream", "--no-progress"])
+    assert res.exit_code == 0, res.output
+    names = final_files(out)
+    assert len(names) == 10 and len(set(names)) == 10  # both inputs, nothing collides
+    assert all(len(n.encode()) <= MAX_OUTPUT_NAME_BYTES for n in names)
+    assert all(n.startswith("t" * 100) for n in names)
+    for line in res.stdout.strip().splitlines():
+        outputs = json.loads(line)["outputs"]
+        assert all(Path(p).is_file() for p in outputs.values())
+        assert outputs["listening"].endswith(".listen.wav")
+    # the same long names give the same short names: a rerun finds them and keeps them
+    res = invoke([*args, "--save-stream", "--no-progress"])
+    assert res.exit_code == 2 and "already exists" in res.stderr
+
+
+def test_the_same_input_given_twice_renders_once(setup):
+    tmp, prof, wav, _ = setup
+    out = tmp / "out"
+    again = tmp / "src" / ".." / "src" / wav.name  # the same file by another path
+    res = invoke([str(prof), str(wav), str(again), str(wav), "--out-dir", str(out), "--json"])
+    assert res.exit_code == 0, res.output
+    assert len(res.stdout.strip().splitlines()) == 1  # one summary
+    notes = [line for line in res.stderr.splitlines() if "same file" in line]
+    assert notes == [
+        f"audiodsm: note: {again} is the same file as {wav}; rendered once",
+        f"audiodsm: note: {wav} is the same file as {wav}; rendered once",
+    ]
+    assert error_lines(res) == []
+    assert len(final_files(out)) == 2  # listening file and summary
+
+
+def test_an_output_folder_that_is_the_input_folder_by_another_path(setup):
+    tmp, prof, wav, _ = setup
+    link = tmp / "link-to-src"
+    link.symlink_to(wav.parent, target_is_directory=True)
+    before = final_files(wav.parent)
+    res = invoke([str(prof), str(wav), "--out-dir", str(link)])
+    assert res.exit_code == 2 and "holds this input" in res.stderr
+    res = invoke([str(prof), str(link / wav.name), "--out-dir", str(wav.parent)])
+    assert res.exit_code == 2 and "holds this input" in res.stderr
+    assert final_files(wav.parent) == before
+
+
+def test_an_output_folder_that_is_the_input_folder_through_a_bind_mount(setup):
+    tmp, prof, wav, _ = setup
+    view = tmp / "view"
+    view.mkdir()
+    before = final_files(wav.parent)
+    src, v = shlex.quote(str(wav.parent)), shlex.quote(str(view))
+    res = in_mount_namespace(
+        f"mount --bind {src} {v} && "
+        + render_command(str(prof), str(view / wav.name), "--out-dir", str(wav.parent)),
+        tmp,
+    )
+    assert res.returncode == 2, res.stderr
+    assert res.stderr.strip().splitlines() == [
+        f"audiodsm: error: {view / wav.name}: the output folder holds this input; "
+        "choose another --out-dir"
+    ]
+    assert final_files(wav.parent) == before
+
+
+@pytest.mark.parametrize("role", ["summary", "bits_sidecar", "listening"])
+def test_a_dangling_symlink_under_an_output_name_is_kept(setup, role):
+    from audiodsm.evaluate.render import output_names
+    from audiodsm.profile import load_profile
+
+    tmp, prof, wav, _ = setup
+    out = tmp / "out"
+    out.mkdir()
+    target = output_names(wav, load_profile(prof), out, stream=True)[role]
+    target.symlink_to(tmp / "nowhere")
+    args = [str(prof), str(wav), "--out-dir", str(out), "--save-stream", "--no-progress"]
+    res = invoke(args)
+    assert res.exit_code == 2
+    assert len(error_lines(res)) == 1
+    assert str(target) in error_lines(res)[0] and "symlink" in error_lines(res)[0]
+    assert final_files(out) == [target.name] and target.is_symlink()
+    assert HEARING_CAUTION not in res.stderr
+    res = invoke([*args, "--replace"])
+    assert res.exit_code == 0, res.output
+    assert not target.is_symlink() and target.is_file()
+
+
+@pytest.mark.parametrize("why", ["unreadable", "exists"])
+def test_no_folder_and_no_caution_when_every_input_is_refused(setup, why):
+    tmp, prof, wav, _ = setup
+    if why == "unreadable":
+        bad = tmp / "src" / "broken.wav"
+        bad.write_bytes(b"nothing")
+        out = tmp / "new" / "deeper"
+        res = invoke([str(prof), str(bad), "--out-dir", str(out), "--error-file"])
+        assert not (tmp / "new").exists()  # neither folder was left behind
+    else:
+        out = tmp / "out"
+        assert invoke([str(prof), str(wav), "--out-dir", str(out)]).exit_code == 0
+        res = invoke([str(prof), str(wav), "--out-dir", str(out), "--error-file"])
+    assert res.exit_code == 2
+    assert len(error_lines(res)) == 1
+    assert HEARING_CAUTION not in res.stderr and "amplified" not in res.stderr
+
+
+def test_the_caution_follows_the_first_listening_file(setup):
+    tmp, prof, wav, _ = setup
+    bad = tmp / "src" / "broken.wav"
+    bad.write_bytes(b"nothing")
+    res = invoke([str(prof), str(bad), str(wav), "--out-dir", str(tmp / "out"), "--no-progress"])
+    assert res.exit_code == 2
+    assert res.stderr.count(HEARING_CAUTION) == 1
+    lines = res.stderr.splitlines()
+    assert lines.index(HEARING_CAUTION) > lines.index(error_lines(res)[0])
+
+
+def test_a_later_render_removes_temporary_files_a_killed_one_left(setup):
+    tmp, prof, wav, _ = setup
+    out = tmp / "out"
+    out.mkdir()
+    ended = subprocess.Popen([sys.executable, "-c", "pass"])
+    ended.wait()  # its id now belongs to no process
+    stale = out / f".other take.test-dac.listen.wav.{ended.pid}-abcd1234.partial"
+    live = out / f".other take.test-dac.listen.wav.{os.getpid()}-abcd1234.partial"
+    stale.write_bytes(b"half a file")
+    live.write_bytes(b"being written")
+    res = invoke([str(prof), str(wav), "--out-dir", str(out), "--no-progress"])
+    assert res.exit_code == 0, res.output
+    assert not stale.exists()
+    assert live.exists()  # its writer still runs

@@ -49,7 +49,7 @@ def full_curves(order):
     levels = np.array([0.0, -1.0, -20.0, -40.0, -60.0, -80.0, -100.0])
     offs = np.geomspace(1e-6, 1e-2, 4)
     edges = np.tile(np.linspace(-1.0, 1.0, 17), (order, 1))
-    return {
+    curves = {
         "spectrum": {
             "frequency_hz": f,
             "level_dbfs": -150.0 + 20.0 * np.log10(1.0 + f / 2e4),
@@ -65,12 +65,37 @@ def full_curves(order):
             "line_dbfs": np.array([np.nan, -140.0, np.nan, -150.0, np.nan, -145.0, np.nan, -139]),
             "detection_limit_dbfs": np.full(8, -155.0),
         },
-        "state_histograms": {"edges": edges, "counts": np.ones((order, 16))},
+        "state_histograms": {
+            "edges": edges,
+            "counts": np.ones((order, 16)),
+            "state_bound": np.array([1e6]),
+        },
         "frequency_response": {
             "frequency_hz": np.array([20.0, 997.0, 20000.0]),
             "gain_db": np.array([-0.01, 0.0, -0.05]),
         },
     }
+    fa = np.linspace(0.0, 24000.0, 4097)
+    curves["spectrum"]["density_dbfs_per_hz"] = -180.0 + 20.0 * np.log10(1.0 + f / 2e4)
+    curves["spectrum"]["predicted_density_dbfs_per_hz"] = -181.0 + 20.0 * np.log10(1.0 + f / 2e4)
+    curves["spectrum"]["out_of_band_hz"] = np.array([20000.0, 500000.0])
+    curves["audio_spectrum"] = {
+        "frequency_hz": fa,
+        "density_dbfs_per_hz": np.full(fa.size, -170.0 - order),
+        "predicted_density_dbfs_per_hz": np.where(fa <= 20000.0, -171.0 - order, np.nan),
+        "resolution_hz": np.array([5.86]),
+    }
+    ft = np.array([20.0, 100.0, 997.0, 10000.0, 20000.0])
+    curves["thd_n_vs_frequency"] = {
+        "frequency_hz": ft,
+        "level_dbfs": np.array([-1.0, -20.0]),
+        "thd_n_db": np.array([-110.0 + 0.0 * ft - order, -95.0 + 0.0 * ft - order]),
+        "invalid_reason": np.array([[""] * 5, [""] * 5]),
+    }
+    curves["idle_tone_map"]["line_hz"] = np.array(
+        [np.nan, 1234.0, np.nan, 50.0, np.nan, 7000.0, np.nan, 15000.0]
+    )
+    return curves
 
 
 def report_battery(profile, *, jobs=None, progress=None, seed=0, **options):
@@ -112,8 +137,8 @@ def test_report_files_and_embedded_images(tmp_path, batch):
     assert sorted(p.name for p in out.iterdir()) == sorted(REPORT_FILES.values())  # no leftovers
     page = (out / "grades.html").read_text()
     images = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
-    # the overview chart, then five plots for each of the two profiles that ran
-    assert len(images) == 1 + 5 * 2
+    # the overview chart, the plots of every profile together, then each profile's plots
+    assert len(images) == 1 + len(plotting.OVERLAYS) + len(plotting.PLOTS) * 2
     for b64 in images:
         w, h = png_size(base64.b64decode(b64, validate=True))
         assert w >= 300 and h >= 150
@@ -213,11 +238,11 @@ def test_plots_draw_on_a_given_axes():
     from matplotlib.figure import Figure
 
     fig = Figure()
-    axes = fig.subplots(1, 5)
+    axes = fig.subplots(1, len(plotting.PLOTS))
     for ax, (_name, fn, _cap) in zip(axes, plotting.PLOTS, strict=True):
         assert fn(full_curves(3), ax=ax) is fig
     # the data drawn is the data given (plots compute nothing)
-    line = axes[4].get_lines()[0]
+    line = axes[-1].get_lines()[0]
     np.testing.assert_array_equal(line.get_xdata(), [20.0, 997.0, 20000.0])
     np.testing.assert_array_equal(line.get_ydata(), [-0.01, 0.0, -0.05])
 
@@ -253,21 +278,46 @@ def test_page_renders_in_headless_chromium(tmp_path, batch, browser):
     out = tmp_path / "report"
     write_report(batch, out)
     shot = tmp_path / "shot.png"
-    # a fixed 1280 x 2400 CSS-pixel viewport at scale 1, whatever the window's decorations
-    browser.execute_cdp_cmd(
-        "Emulation.setDeviceMetricsOverride",
-        {"width": 1280, "height": 2400, "deviceScaleFactor": 1, "mobile": False},
-    )
+
+    def viewport(height):
+        # a fixed CSS-pixel viewport at scale 1, whatever the window's decorations; 1280 wide
+        # is a common laptop screen
+        browser.execute_cdp_cmd(
+            "Emulation.setDeviceMetricsOverride",
+            {"width": 1280, "height": height, "deviceScaleFactor": 1, "mobile": False},
+        )
+
+    viewport(2400)
     browser.get((out / "grades.html").as_uri())
     browser.execute_script("document.documentElement.style.overflow = 'hidden'")
+    # usable on a laptop screen: nothing wider than the window
+    assert browser.execute_script("return document.documentElement.scrollWidth") <= 1280
+    height = int(browser.execute_script("return document.documentElement.scrollHeight"))
+    assert height < 16000
+    viewport(height)  # the whole page in one screenshot
     assert browser.save_screenshot(str(shot)), "Chromium wrote no screenshot"
     from matplotlib.image import imread
 
     img = imread(shot)
-    assert img.shape[:2] == (2400, 1280)
+    assert img.shape[:2] == (height, 1280)
     # a rendered page, not a blank one: many distinct colours (tables, plots, text)
     flat = (img[..., :3] * 255).astype(np.uint8).reshape(-1, 3)
     assert len(np.unique(flat[::7], axis=0)) > 200
+    # every plot is decoded and shown: its box lies on the page, and the screenshot holds
+    # a drawn plot there (many colours: curves, text, grid), not an empty frame
+    boxes = browser.execute_script(
+        "return Array.from(document.querySelectorAll('figure img')).map(i => {"
+        "const r = i.getBoundingClientRect(); return [i.complete && i.naturalWidth > 0,"
+        " r.left, r.top + window.scrollY, r.width, r.height, i.alt]; })"
+    )
+    assert len(boxes) == 1 + len(plotting.OVERLAYS) + 2 * len(plotting.PLOTS)
+    for ok, left, top, width, height_px, alt in boxes:
+        assert ok, alt
+        assert width >= 300 and height_px >= 150, alt
+        x0, y0 = int(left), int(top)
+        crop = (img[y0 : y0 + int(height_px), x0 : x0 + int(width), :3] * 255).astype(np.uint8)
+        assert crop.shape[0] > 100 and crop.shape[1] > 200, alt
+        assert len(np.unique(crop.reshape(-1, 3), axis=0)) > 30, alt
     Path(tmp_path / "keep").write_text(str(shot))
 
 
@@ -307,3 +357,96 @@ def test_invalid_readings_show_as_invalid_in_every_file(tmp_path):
     assert "invalid <small>(loop overloaded (7 guard actions))</small>" in page
     assert "invalid: tone lost &lt;here&gt;" in page  # escaped like every other text
     assert "-274" not in page  # the invalid THD+N never shows as a number
+
+
+def _graded_line(metric, limit, value, *, bound="at_most", level=None):
+    from audiodsm.evaluate.grade import TargetGrade
+    from audiodsm.spec import Target
+
+    t = Target(metric=metric, bound=bound, limit=limit, at_level_dbfs=level)
+    margin = limit - value if bound == "at_most" else value - limit
+    return TargetGrade(target=t, value=value, margin=margin, passed=margin >= 0)
+
+
+WORST_1 = "thd_n_db_worst_over_frequency_at_minus1_dbfs"
+
+
+def test_limits_are_drawn_with_the_verdict_in_words_and_shape():
+    curves = full_curves(3)
+    passing = _graded_line("thd_n_db", -90.0, -98.0, level=-20.0)
+    failing = _graded_line("thd_n_db_at_minus1_dbfs", -120.0, -98.0)
+    fig = plotting.plot_thd_n_vs_level(curves, graded=[passing, failing])
+    ax = fig.axes[0]
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert "limit at -20 dBFS <= -90 dB: pass" in labels
+    assert "limit at -1 dBFS <= -120 dB: FAIL" in labels
+    # the reading is marked at its level: a circle for the pass, a cross for the fail
+    marks = {
+        (ln.get_xdata()[0], ln.get_marker()) for ln in ax.get_lines() if len(ln.get_xdata()) == 1
+    }
+    assert marks == {(-20.0, "o"), (-1.0, "X")}
+    # every graded plot draws its limit, whatever the quantity
+    cases = [
+        (plotting.plot_thd_n_vs_frequency, WORST_1, -100.0, -113.0),
+        (plotting.plot_idle_tone_map, "idle_tone_max_dbfs", -150.0, -139.0),
+        (plotting.plot_noise_density, "out_of_band_noise_dbfs", -40.0, -45.0),
+        (plotting.plot_audio_band_density, "dynamic_range_db", 110.0, 112.0),
+        (plotting.plot_frequency_response, "passband_ripple_db", 0.1, 0.05),
+        (plotting.plot_state_histograms, "state_peak_max", 1.5, 1.0),
+    ]  # fmt: skip
+    for fn, metric, limit, value in cases:
+        bound = "at_least" if metric.startswith("dynamic_range") else "at_most"
+        g = _graded_line(metric, limit, value, bound=bound)
+        fig = fn(curves, graded=[g])
+        texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+        word = "pass" if g.passed else "FAIL"
+        assert any(t.endswith(": " + word) and f"{limit:g}" in t for t in texts), (metric, texts)
+
+
+def test_idle_tone_map_names_the_worst_lines_and_keeps_them_above_the_limit():
+    curves = full_curves(3)
+    # a stored band-wide limit above a found line (-150 dBFS at one offset)
+    curves["idle_tone_map"]["detection_limit_dbfs"] = np.full(8, -148.0)
+    fig = plotting.plot_idle_tone_map(curves)
+    ax = fig.axes[0]
+    notes = {t.get_text() for t in ax.texts}
+    # the three strongest lines (-139, -140, -145 dBFS) carry their frequencies
+    assert notes == {"15000 Hz", "1234 Hz", "7000 Hz"}
+    dotted = [ln for ln in ax.get_lines() if ln.get_linestyle() == ":"]
+    found = [ln for ln in ax.get_lines() if ln.get_marker() in ("^", "v")]
+    for lim, pts in zip(dotted, found, strict=True):
+        y_lim, y_pts = np.asarray(lim.get_ydata()), np.asarray(pts.get_ydata())
+        ok = np.isfinite(y_pts)
+        assert np.all(y_pts[ok] >= y_lim[ok])
+
+
+def test_overlays_keep_each_profile_in_its_colour_and_offer_the_data(tmp_path, batch):
+    out = tmp_path / "report"
+    page = write_report(batch, out)["html"].read_text()
+    # overview swatches: one colour-blind-safe colour per profile, in rank order; the
+    # Okabe & Ito (2008) palette's blue and vermillion come first
+    swatches = re.findall(r'class="swatch" style="background: (#[0-9A-Fa-f]{6})"', page)
+    assert swatches[:2] == ["#0072B2", "#D55E00"]
+    assert [plotting.series_style(i)["color"] for i in range(3)] == swatches
+    # the overview links to every overlay plot, and every plot has its data beside it
+    for kind, _caption in plotting.OVERLAYS:
+        assert f'href="#overlay-{kind}"' in page and f'id="overlay-{kind}"' in page
+    links = re.findall(
+        r'download="([^"]+)" href="data:text/csv;charset=utf-8;base64,([^"]+)"', page
+    )
+    assert len(links) == len(plotting.OVERLAYS) + 2 * len(plotting.PLOTS)
+    files = {name: base64.b64decode(b64).decode("utf-8") for name, b64 in links}
+    rows = list(csv.reader(io.StringIO(files["fifth-thd_n_vs_frequency.csv"])))
+    assert rows[0][:2] == ["frequency_hz", "thd_n_db_at_-1_dbfs"]
+    f = full_curves(5)["thd_n_vs_frequency"]
+    np.testing.assert_allclose([float(r[0]) for r in rows[1:]], f["frequency_hz"])
+    np.testing.assert_allclose([float(r[1]) for r in rows[1:]], f["thd_n_db"][0])
+    both = list(csv.DictReader(io.StringIO(files["every-profile-thd_n_vs_level.csv"])))
+    assert {r["profile"] for r in both} == {"fifth", "third"}
+    third = [float(r["thd_n_db"]) for r in both if r["profile"] == "third"]
+    np.testing.assert_allclose(third, full_curves(3)["thd_n_vs_level"]["thd_n_db"])
+    # the overlay draws the profiles in the same colours
+    fig = plotting.plot_overlay(
+        "thd_n_vs_level", [("fifth", full_curves(5), 0), ("third", full_curves(3), 1)]
+    )
+    assert [ln.get_color() for ln in fig.axes[0].get_lines()] == swatches[:2]

@@ -73,8 +73,16 @@ class _Bar:
 )
 @short_plan_option
 @scheduler_option
+@click.option(
+    "--save-plots",
+    "plots_folder",
+    type=click.Path(file_okay=False),
+    default=None,
+    help="Also write each profile's plots (PNG and SVG, the report's plots without limits) "
+    "into this folder, named <profile>-<plot>.png/.svg.",
+)
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
-def measure(profiles, as_json, jobs, seed, short, scheduler, no_progress):
+def measure(profiles, as_json, jobs, seed, short, scheduler, plots_folder, no_progress):
     """Run the test battery on each PROFILE (a file, or a folder of .toml files).
 
     Each profile's chain is driven with AES17-practice stimuli (997 Hz tones, silence, small
@@ -113,6 +121,11 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, no_progress):
             click.echo(f"audiodsm: {prof.name} ({path}): {res}", err=True)
             failed = True
             continue
+        if plots_folder is not None:
+            from audiodsm.evaluate.report import write_profile_plots
+
+            written = write_profile_plots(res.curves, plots_folder, stem=prof.name)
+            click.echo(f"{prof.name}: {len(written)} plot files in {plots_folder}", err=True)
         if as_json:
             record = {
                 "profile": prof.name,

@@ -2,8 +2,11 @@
 
 The job itself (output names, the streamed render, the summary) lives in
 :mod:`audiodsm.evaluate.render`; this module parses the options, shows a progress bar and the
-cautions on stderr, and prints each file's summary (a table, or one JSON object per line).
-Channels are numbered from 1.
+cautions on stderr (once the first listening file is written), and prints each file's summary
+(a table, or one JSON object per line). Channels are numbered from 1. An output folder this
+run created is removed again when nothing was written into it. Exit codes: 2 when an input or
+an output was refused, 3 when an output could not be written (the message names the path and
+the cause).
 """
 
 from __future__ import annotations
@@ -16,7 +19,8 @@ from pathlib import Path
 
 import click
 
-from audiodsm.errors import AudiodsmError
+from audiodsm.cli import one_line
+from audiodsm.errors import EXIT_OK, EXIT_STORAGE, EXIT_USAGE, AudiodsmError, StorageError
 
 __all__ = ["render"]
 
@@ -86,15 +90,16 @@ def render(
     Each input gives a calibrated listening WAV (a -1 dBFS 997 Hz tone in comes out at
     -1 dBFS), optionally an amplified error-only WAV and the modulator stream, and a summary:
     rms and peak per channel, clip/overload/pulse counts, and the A-weighted noise in the
-    input's silent passages.
+    input's silent passages. A file given twice is rendered once. Exit code 2 when an
+    input or an output is refused, 3 when an output could not be written.
 
     Caution: listening files can be loud. Test tones and amplified error files can damage
     hearing and tweeters; start playback at low volume.
     """
     from audiodsm.errors import ParameterError
     from audiodsm.evaluate.render import (
-        HEARING_CAUTION,
         chosen_error_gain_db,
+        distinct_inputs,
         prepare_output_folder,
         render_files,
         summary_text,
@@ -109,43 +114,65 @@ def render(
             "--listen-rate", listen_rate, "one of " + ", ".join(map(str, AUDIO_RATES_HZ))
         )
     gain_db = chosen_error_gain_db(profile, error_file=error_file, error_gain_db=error_gain)
-    out = prepare_output_folder(out_dir, inputs)
-    click.echo(HEARING_CAUTION, err=True)
-    from audiodsm.stages.loop_cache import compiled_loops_missing
+    inputs, repeats = distinct_inputs(inputs)
+    for name, first in repeats:
+        click.echo(f"audiodsm: note: {name} is the same file as {first}; rendered once", err=True)
+    made = []  # folders this run created: removed again if nothing is written into them
+    written = 0
+    exit_code = EXIT_OK
+    try:
+        out = prepare_output_folder(out_dir, inputs, made=made)
+        from audiodsm.stages.loop_cache import compiled_loops_missing
 
-    if compiled_loops_missing():
-        click.echo(
-            "audiodsm: compiling loops, once (the first run of a fresh checkout takes about "
-            "15 s longer; later runs load them)",
-            err=True,
-        )
+        if compiled_loops_missing():
+            click.echo(
+                "audiodsm: compiling loops, once (the first run of a fresh checkout takes about "
+                "15 s longer; later runs load them)",
+                err=True,
+            )
+        for _name, outcome in render_files(
+            inputs,
+            profile,
+            out,
+            listening_rate_hz=listen_rate,
+            float_output=float32,
+            error_gain_db=gain_db,
+            stream=save_stream,
+            overwrite=replace,
+            progress=None if no_progress else _SpeedBar,
+        ):
+            if isinstance(outcome, AudiodsmError):
+                click.echo(f"audiodsm: error: {one_line(outcome)}", err=True)
+                # an output that could not be written outranks a refused input
+                storage = isinstance(outcome, StorageError)
+                exit_code = max(exit_code, EXIT_STORAGE if storage else EXIT_USAGE)
+                continue
+            written += 1
+            if written == 1:  # the cautions go with the first listening file
+                _cautions(gain_db)
+            click.echo(json.dumps(outcome) if as_json else summary_text(outcome))
+    finally:
+        if not written:
+            for folder in reversed(made):  # innermost first; a folder not empty stays
+                try:
+                    folder.rmdir()
+                except OSError:
+                    break
+    if exit_code != EXIT_OK:
+        sys.exit(exit_code)
+
+
+def _cautions(gain_db) -> None:
+    """The hearing caution, and the error-only file's gain when one is written (stderr)."""
+    from audiodsm.evaluate.render import HEARING_CAUTION
+
+    click.echo(HEARING_CAUTION, err=True)
     if gain_db is not None:
         click.echo(
             f"Caution: error-only files are amplified by {gain_db:g} dB; a loud passage in them "
             "can be far above full scale. Turn the volume down before playing them.",
             err=True,
         )
-    failures = 0
-    for _name, outcome in render_files(
-        inputs,
-        profile,
-        out,
-        listening_rate_hz=listen_rate,
-        float_output=float32,
-        error_gain_db=gain_db,
-        stream=save_stream,
-        overwrite=replace,
-        progress=None if no_progress else _SpeedBar,
-    ):
-        if isinstance(outcome, AudiodsmError):
-            click.echo(f"audiodsm: error: {outcome}", err=True)
-            failures += 1
-        elif as_json:
-            click.echo(json.dumps(outcome))
-        else:
-            click.echo(summary_text(outcome))
-    if failures:
-        sys.exit(2)
 
 
 class _SpeedBar:

@@ -32,6 +32,10 @@ The tests
 ``frequency_response``
     A Schroeder-phase multitone on the 1/3-octave centres from 20 Hz to 20 kHz plus 997 Hz:
     the response of the whole chain relative to 997 Hz and its peak-to-peak ripple.
+``thd_n_vs_frequency``
+    Tones on the 1/3-octave centres from 20 Hz to 20 kHz (997 Hz in place of 1 kHz) at
+    -1 and -20 dBFS: THD+N against frequency (a PWM stage's distortion grows with the tone
+    frequency, which 997 Hz alone understates) and its worst value over frequency.
 ``images``
     An in-band tone at ``image_tone_hz``; its image at ``rate - image_tone_hz`` is read on the
     reconstructed output at the modulator rate (AES17 practice for DAC images).
@@ -60,13 +64,17 @@ import numpy as np
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.evaluate.battery_runs import (
+    _BAND,
     _FLOORED_METRICS,
+    _LOST_DB,
     _WEIGHTINGS,
     NUMERIC_FLOOR_DBFS,
     _db,
+    _response_frequencies,
     _run_seed,
     _test_dc,
     _test_dynamic_range,
+    _test_frequency_sweep,
     _test_idle,
     _test_images,
     _test_imd,
@@ -101,6 +109,7 @@ TEST_NAMES = (
     "dc_sweep",
     "stability",
     "frequency_response",
+    "thd_n_vs_frequency",
     "images",
     "intermodulation",
 )
@@ -120,6 +129,12 @@ METRIC_UNITS = {
         "dBFS",
         "rms of the output's ripple inside each modulator frame (the PWM carrier after the "
         "filter), which the frame-rate output cannot carry",
+    ),
+    "jitter_noise_dbfs_at_1ps": (
+        "dynamic_range",
+        "dBFS",
+        "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
+        "step (PDM and NRZ; scales as 20 log10 of the jitter)",
     ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
@@ -167,6 +182,16 @@ METRIC_UNITS = {
         "dB",
         "peak-to-peak response of the whole chain, 20 Hz .. 20 kHz",
     ),
+    "thd_n_db_worst_over_frequency_at_minus1_dbfs": (
+        "thd_n_vs_frequency",
+        "dB",
+        "highest THD+N of a -1 dBFS tone over the 1/3-octave centres, 20 Hz .. 20 kHz",
+    ),
+    "thd_n_db_worst_over_frequency_at_minus20_dbfs": (
+        "thd_n_vs_frequency",
+        "dB",
+        "highest THD+N of a -20 dBFS tone over the 1/3-octave centres, 20 Hz .. 20 kHz",
+    ),
     "image_rejection_db": ("images", "dB", "in-band tone over its image at rate - f"),
     "image_rejection_noise_limited": (
         "images",
@@ -186,8 +211,6 @@ METRIC_UNITS = {
 
 #: Shortest capture the idle-tone detector accepts (12 Hz bins, 8 averages; idle_tones.py).
 _MIN_SEARCH_S = 0.4
-#: A sweep tone more than this far from its level counts as lost (dead zone, limit cycle).
-_LOST_DB = 3.0
 #: How far below the linear-model noise floor of the loop a noise reading may fall before it
 #: is called impossible. The linear model (white quantization error of power step^2/12 shaped
 #: by the NTF) is accurate to a few dB for single-bit and dithered loops (Schreier & Temes
@@ -224,6 +247,10 @@ class BatteryPlan:
         The frequency-response multitone.
     response_level_dbfs : float
         Peak level of the multitone.
+    frequency_sweep_levels_dbfs : tuple of float
+        Tone levels of the THD+N-against-frequency sweep; -1 and -20 dBFS give its metrics.
+    frequency_sweep_s : float
+        Each tone of that sweep (short: the 1/3-octave centres make 31 tones per level).
     image_tone_hz : float
         In-band tone of the image test.
     image_s : float
@@ -258,6 +285,8 @@ class BatteryPlan:
     dc_s: float = 0.4
     response_s: float = 0.5
     response_level_dbfs: float = -6.0
+    frequency_sweep_levels_dbfs: tuple = (-1.0, -20.0)
+    frequency_sweep_s: float = 0.1
     image_tone_hz: float = 17000.0
     image_s: float = 0.5
     composite_level_dbfs: float = -6.0
@@ -280,6 +309,7 @@ class BatteryPlan:
             dc_offsets=4,
             dc_s=0.4,
             response_s=0.4,
+            frequency_sweep_s=0.1,
             image_s=0.3,
             imd_s=0.4,
             stability_samples=16384,
@@ -301,7 +331,7 @@ class BatteryPlan:
                     f"at least {_MIN_SEARCH_S} s (the idle-tone search needs 12 Hz bins "
                     "averaged 8 times)",
                 )
-        for name in ("image_s", "imd_s"):
+        for name in ("image_s", "imd_s", "frequency_sweep_s"):
             v = getattr(self, name)
             if not (math.isfinite(v) and 0.05 <= v <= 60.0):
                 raise ParameterError(f"plan.{name}", v, "a duration from 0.05 to 60 s")
@@ -310,6 +340,14 @@ class BatteryPlan:
         ):
             raise ParameterError(
                 "plan.sweep_levels_dbfs", self.sweep_levels_dbfs, "levels from -160 to 0 dBFS"
+            )
+        if not self.frequency_sweep_levels_dbfs or any(
+            not (-160.0 <= float(v) <= 0.0) for v in self.frequency_sweep_levels_dbfs
+        ):
+            raise ParameterError(
+                "plan.frequency_sweep_levels_dbfs",
+                self.frequency_sweep_levels_dbfs,
+                "levels from -160 to 0 dBFS",
             )
         lo, hi = self.dc_range
         if not (0.0 < lo <= hi < 1.0) or not (0 <= self.dc_offsets <= 400):
@@ -511,6 +549,14 @@ def run_battery(
         runs.append(("DC offsets", _test_dc, (part,)))
     if "frequency_response" in tests:
         runs.append(("frequency response", _test_response, ()))
+    if "thd_n_vs_frequency" in tests:
+        tones = [
+            (float(lv), f)
+            for lv in sorted({float(v) for v in plan.frequency_sweep_levels_dbfs}, reverse=True)
+            for f in _response_frequencies()
+        ]
+        for part in _chunks(tones, 8):
+            runs.append(("THD+N vs frequency", _test_frequency_sweep, (part,)))
     if "images" in tests:
         runs.append(("images", _test_images, ()))
     if "intermodulation" in tests:
@@ -579,6 +625,7 @@ _SCALARS = (
     "dynamic_range_db_ccir",
     "out_of_band_noise_dbfs",
     "carrier_ripple_dbfs",
+    "jitter_noise_dbfs_at_1ps",
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",
@@ -655,7 +702,7 @@ def _chain_noise_floor(linear, metrics, invalid):
 def _assemble(results, tests, plan, profile):
     """Merge the runs' partial results into metrics, curves, notes and invalid readings."""
     metrics, curves, notes, invalid = {}, {}, [], {}
-    sweep, overload, dc, lines = [], [], [], []
+    sweep, overload, dc, lines, fsweep = [], [], [], [], []
     stats = []
     msa = None
     stab = None
@@ -671,6 +718,7 @@ def _assemble(results, tests, plan, profile):
         sweep.extend(part.get("sweep", ()))
         overload.extend(part.get("overload", ()))
         dc.extend(part.get("dc", ()))
+        fsweep.extend(part.get("frequency_sweep", ()))
         stats.extend(part.get("stats", ()))
         if "silence_lines" in part:
             lines.append(("silence", 0.0, part["silence_lines"], part.get("silence_faults", "")))
@@ -691,6 +739,15 @@ def _assemble(results, tests, plan, profile):
             curves["spectrum"]["ntf_gain_db"] = 20.0 * np.log10(
                 np.maximum(np.abs(ntf.response(f / fm)), 1e-300)
             )
+        density = stab.get("noise_density")
+        for name in ("spectrum", "audio_spectrum"):
+            if density is not None and name in curves:
+                with np.errstate(divide="ignore"):
+                    f = curves[name]["frequency_hz"]
+                    pred = 10.0 * np.log10(np.maximum(density(f), 1e-300) / 0.5)
+                    if name == "audio_spectrum":  # the listening decimator's edge: no model
+                        pred = np.where(f <= _BAND[1], pred, np.nan)
+                    curves[name]["predicted_density_dbfs_per_hz"] = pred
 
     onset = None
     if sweep or overload:
@@ -800,6 +857,9 @@ def _assemble(results, tests, plan, profile):
             for k in ("level_dbfs", "tone_dbfs", "thd_n_db", "overload_count")
         }
 
+    if fsweep:
+        _assemble_frequency_sweep(fsweep, metrics, curves, notes, invalid, plan)
+
     if dc:
         dc.sort(key=lambda d: d[0])
         for off, found, faults in dc:
@@ -809,6 +869,7 @@ def _assemble(results, tests, plan, profile):
             "line_dbfs": np.array([np.nan if d[1][0] is None else d[1][0] for d in dc]),
             "line_hz": np.array([np.nan if d[1][1] is None else d[1][1] for d in dc]),
             "detection_limit_dbfs": np.array([d[1][2] for d in dc]),
+            "weakest_detectable_dbfs": np.array([d[1][3] for d in dc]),
         }
         notes.append(
             f"idle tones: {len(dc)} DC offsets from {plan.dc_range[0]:g} to "
@@ -877,6 +938,41 @@ def _assemble(results, tests, plan, profile):
     ordered = {k: plain_scalar(metrics[k], finite_only=False) for k in METRIC_UNITS if k in metrics}
     invalid = {k: invalid[k] for k in ordered if k in invalid}
     return ordered, curves, notes, invalid
+
+
+def _assemble_frequency_sweep(points, metrics, curves, notes, invalid, plan):
+    """THD+N against frequency: the curve (levels x frequencies) and the worst per level."""
+    levels = sorted({p["level_dbfs"] for p in points}, reverse=True)
+    freqs = sorted({p["frequency_hz"] for p in points})
+    grid = np.full((len(levels), len(freqs)), np.nan)
+    reasons = np.full((len(levels), len(freqs)), "", dtype=object)
+    for p in points:
+        i, j = levels.index(p["level_dbfs"]), freqs.index(p["frequency_hz"])
+        reasons[i, j] = p["reason"]
+        v = p["thd_n_db"]
+        if not p["reason"] and v is not None and math.isfinite(v):
+            grid[i, j] = v  # a curve never carries a reading the battery calls invalid
+    curves["thd_n_vs_frequency"] = {
+        "frequency_hz": np.array(freqs),
+        "level_dbfs": np.array(levels),
+        "thd_n_db": grid,
+        "invalid_reason": reasons.astype(str),
+    }
+    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
+        if lv not in levels:
+            continue
+        i = levels.index(lv)
+        metric = f"thd_n_db_worst_over_frequency_at_{name}_dbfs"
+        bad = [(freqs[j], reasons[i, j]) for j in range(len(freqs)) if reasons[i, j]]
+        metrics[metric] = float(np.nanmax(grid[i])) if np.isfinite(grid[i]).any() else None
+        if bad:
+            invalid[metric] = f"{len(bad)} of {len(freqs)} tones invalid (first: {bad[0][1]})"
+    notes.append(
+        f"THD+N vs frequency: {len(freqs)} tones (1/3-octave centres, 20 Hz..20 kHz) at "
+        + ", ".join(f"{v:g}" for v in levels)
+        + f" dBFS, {plan.frequency_sweep_s:g} s each after {plan.settle_s:g} s settling, "
+        "fundamental removed by a 3-parameter fit, 20 Hz..20 kHz"
+    )
 
 
 #: Readings that describe the failure itself and stay valid when the loop has no stable

@@ -33,6 +33,10 @@ _FLOORED_METRICS = (
 )
 #: Bin spacing wanted for the spectrum at the modulator rate (the next power-of-two segment).
 _SPECTRUM_RESOLUTION_HZ = 100.0
+#: A tone more than this far from its level counts as lost (dead zone, limit cycle).
+_LOST_DB = 3.0
+#: Bin spacing wanted for the audio-band spectrum at the audio rate.
+_AUDIO_RESOLUTION_HZ = 6.0
 #: Lines weaker than this are rounding patterns of float64 arithmetic, not idle tones.
 _LINE_FLOOR_DBFS = -200.0
 #: A listening output whose peak exceeds full scale by more than this has clipped: a real
@@ -132,6 +136,49 @@ def _linear_noise_floor(chain):
     return out
 
 
+def _predicted_noise_density(chain):
+    """The output noise density the loop's linear model predicts, as a function of Hz.
+
+    Returns ``density(freq_hz)``: power per Hz (full-scale units squared per Hz, one-sided,
+    referred to the chain input like every reading). The quantizer error is white with power
+    ``step**2 / 12``, the TPDF dither (peak ``dither_lsb`` steps, the sum of two uniform
+    variables) adds ``(dither_lsb * step)**2 / 6``; both enter at the quantizer and leave
+    through ``|NTF|**2``, spread over 0 .. fm/2. The semi-digital FIR and the analog filter
+    shape it relative to their gain at 997 Hz (the calibration divides that out), and the
+    chain's input scale refers it to the input. Output-stage effects (PWM) are not modelled.
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
+       ch. 2 (linear model: white error of power step^2/12 shaped by |NTF|^2).
+    .. [2] S. P. Lipshitz, R. A. Wannamaker and J. Vanderkooy, "Quantization and Dither: A
+       Theoretical Survey", J. Audio Eng. Soc. 40(5), 1992 (TPDF dither power).
+    """
+    mod = chain.modulator
+    fm = float(chain.modulator_rate_hz)
+    step = float(mod.step)
+    power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    ntf, fir, analog = chain.ntf, getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
+
+    def shaping(f):
+        g = np.ones_like(f)
+        if fir is not None:
+            g = g * np.abs(fir.response(f, frame_rate_hz=fm)) ** 2
+        if analog is not None:
+            g = g * np.abs(analog.response(f)) ** 2
+        return g
+
+    ref = float(shaping(np.array([_TEST_HZ]))[0])
+
+    def density(freq_hz):
+        f = np.asarray(freq_hz, dtype=float)
+        ntf_power = np.abs(ntf.response(f / fm)) ** 2
+        return power * ntf_power / (fm / 2.0) * shaping(f) / ref / scale**2
+
+    return density
+
+
 def _meter(x, rate, frequency_hz, weightings, settle_s):
     """Band-limited residual readings (fundamental removed when ``frequency_hz`` is set).
 
@@ -192,12 +239,15 @@ def _lines(x, rate, *, false_alarm, exclude_hz=()):
     band = (res.freq_hz >= _BAND[0]) & (res.freq_hz <= _BAND[1])
     t_lin = 10.0 ** (res.threshold_db / 10.0)
     floor = 10.0 ** (res.floor_dbfs[band] / 10.0)
-    limit = 10.0 * math.log10(float(np.max((t_lin - 1.0) * floor * enbw_bins)))
-    limit = max(limit, _LINE_FLOOR_DBFS)
+    reportable = (t_lin - 1.0) * floor * enbw_bins
+    limit = max(10.0 * math.log10(float(np.max(reportable))), _LINE_FLOOR_DBFS)
+    # the weakest line the detector reports where the floor is lowest: no found line is
+    # weaker than this (the plots draw it, so a found line never sits under its limit)
+    weakest = max(10.0 * math.log10(float(np.min(reportable))), _LINE_FLOOR_DBFS)
     if kept:
         best = max(kept, key=lambda t: t.level_dbfs)
-        return best.level_dbfs, best.frequency_hz, limit
-    return None, None, limit
+        return best.level_dbfs, best.frequency_hz, limit, weakest
+    return None, None, limit, weakest
 
 
 def _remove_fundamental(x, rate, settle):
@@ -224,11 +274,11 @@ def _coherent_amplitudes(y, bins):
 
 
 def _test_dynamic_range(ctx, profile):
-    from audiodsm.measure.spectrum import averaged_spectrum
+    from audiodsm.measure.spectrum import averaged_spectrum, power_to_dbfs
 
     plan, rate = ctx.plan, ctx.rate
     x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
-    res = _chain_run(profile, x, rate=rate, keep=("listening", "analog"))
+    res = _chain_run(profile, x, rate=rate, keep=("listening", "analog", "modulator"))
     y = res.listening[:, 0]
     r = _meter(y, rate, _TEST_HZ, _WEIGHTINGS, plan.settle_s)
     out = {"stats": [(res.stats, 0, 10 ** (-60 / 20))]}
@@ -272,13 +322,56 @@ def _test_dynamic_range(ctx, profile):
         "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
         "whole run"
     )
+    jitter, why = _jitter_sensitivity(profile, res, rate, plan.settle_s)
+    out["jitter_noise_dbfs_at_1ps"] = jitter
+    if why:
+        out["invalid"] = {**out["invalid"], "jitter_noise_dbfs_at_1ps": why}
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
         "level_dbfs": spec.bins_dbfs(),
+        "density_dbfs_per_hz": power_to_dbfs(spec.power / spec.resolution_hz),
         "resolution_hz": np.array([spec.resolution_hz]),
+        "out_of_band_hz": np.array([_BAND[1], upper]),
+    }
+    # the audio band in fine bins, from the listening output (the -60 dBFS tone stays in)
+    fine = averaged_spectrum(
+        y[int(round(plan.settle_s * rate)) :], rate_hz=rate, resolution_hz=_AUDIO_RESOLUTION_HZ
+    )
+    out["curve_audio_spectrum"] = {
+        "frequency_hz": fine.freq_hz,
+        "level_dbfs": fine.bins_dbfs(),
+        "density_dbfs_per_hz": power_to_dbfs(fine.power / fine.resolution_hz),
+        "resolution_hz": np.array([fine.resolution_hz]),
     }
     out["notes"] = notes
     return out
+
+
+def _jitter_sensitivity(profile, res, rate, settle_s):
+    """The in-band noise 1 ps rms of white jitter on the output edges would add (dBFS).
+
+    Textbook estimate (Schreier & Temes 2005, clock jitter of continuous-time DACs; Cherry &
+    Snelgrove 1999; checked against the jitter stage in tests/test_jitter.py): ``(sigma
+    f_m)^2 E[(y[n] - y[n-1])^2]`` spread evenly over the Nyquist band, ``2 B / f_m`` of it in
+    the band ``B``; referred to the listening full scale through the chain's calibration.
+    PWM is left out: its edges sit inside the frames (not modelled yet).
+
+    Returns
+    -------
+    (float or None, str)
+        The level, and why it is missing (empty when it is not).
+    """
+    if profile.output.kind == "pwm":
+        return None, "PWM edges are not in the jitter model"
+    from audiodsm.stages.chain import Chain
+
+    chain = Chain.from_profile(profile, rate, 1, threads=1)
+    fm = res.modulator_rate_hz
+    m = res.modulator[:, 0]
+    m = m[min(int(round(settle_s * fm)), m.size // 2) :]
+    steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
+    power = (1e-12 * fm) ** 2 * float(np.mean(steps * steps)) * 2.0 * _BAND[1] / fm
+    return (10.0 * math.log10(power / 0.5) if power > 0 else -math.inf), ""
 
 
 def _test_level_sweep(ctx, profile, levels):
@@ -388,6 +481,7 @@ def _test_stability(ctx, profile):
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "noise_floor": _linear_noise_floor(chain),
+        "noise_density": _predicted_noise_density(chain),
         "notes": [
             f"stability: bisection on a sine near a fifth of the band edge, "
             f"{plan.stability_samples} modulator samples per probe, to 0.002 of full scale; "
@@ -420,6 +514,7 @@ def _test_stability(ctx, profile):
             "counts": np.array(counts),
             "peak": np.max(np.abs(states), axis=0),
             "amplitude": np.array([limit.stable_amplitude]),
+            "state_bound": np.array([float(chain.modulator.state_bound)]),
         }
     return out
 
@@ -485,6 +580,35 @@ def _test_response(ctx, profile):
             "least-squares fit of every tone, relative to 997 Hz"
         ],
     }
+
+
+def _test_frequency_sweep(ctx, profile, tones):
+    """THD+N of single tones ``tones`` [(level_dbfs, frequency_hz), ...], one channel each."""
+    from audiodsm.signals import sine
+
+    plan, rate = ctx.plan, ctx.rate
+    seconds = plan.settle_s + plan.frequency_sweep_s + _TAIL_S
+    x = np.stack([sine(f, lv, rate_hz=rate, duration_s=seconds) for lv, f in tones], axis=1)
+    res = _chain_run(profile, x, rate=rate)
+    settle = int(round(plan.settle_s * rate))
+    points = []
+    for c, (lv, f) in enumerate(tones):
+        y = res.listening[:, c]
+        r = _meter(y, rate, f, ("unweighted",), plan.settle_s)
+        faults = _run_faults(res.stats, c, y[settle:])
+        tone = r.fundamental_dbfs
+        if tone is None or not math.isfinite(tone) or abs(tone - lv) > _LOST_DB:
+            faults.append(f"{f:g} Hz tone at {lv:g} dBFS lost: " + _tone_came_out(tone))
+        # the ratio is taken to the fitted tone, not to the band-limited total the meter's
+        # thd_n_db uses: the band's 20 Hz edge takes 3 dB off a 20 Hz tone (AES17 band
+        # filter), which would read as 3 dB more THD+N at the bottom of the sweep
+        ok = tone is not None and math.isfinite(tone)
+        points.append(
+            {"level_dbfs": lv, "frequency_hz": f, "reason": "; ".join(faults),
+             "thd_n_db": r.noise_dbfs["unweighted"] - tone if ok else None}
+        )  # fmt: skip
+    stats = [(res.stats, c, 10 ** (lv / 20)) for c, (lv, _) in enumerate(tones)]
+    return {"frequency_sweep": points, "stats": stats}
 
 
 def _test_images(ctx, profile):

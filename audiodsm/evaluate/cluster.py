@@ -311,25 +311,47 @@ def run_tasks(
             index_of[fut.key] = i
         t0 = time.perf_counter()
         done = 0
-        with client.as_current():
-            finished = as_completed(futures)
-        for fut in finished:
-            i = index_of[fut.key]
-            try:
-                status, value = fut.result()
-            except Exception as exc:  # KilledWorker: the task took down too many workers
-                status = "lost"
-                value = (
-                    "worker process ended unexpectedly each time it ran this task "
-                    f"({type(exc).__name__})"
-                )
-            fut.release()
+
+        def hand_over(i, status, value):
+            nonlocal done
             on_result(i, status, value)
             done += 1
             if progress is not None:
                 minutes = max(time.perf_counter() - t0, 1e-9) / 60.0
                 alive = len(client.scheduler_info(n_workers=-1).get("workers", {}))
                 progress(done, len(calls), done / minutes, alive)
+
+        with client.as_current():
+            finished = as_completed(futures)
+        suspects = []
+        for fut in finished:
+            i = index_of[fut.key]
+            try:
+                status, value = fut.result()
+            except Exception:  # KilledWorker: it was on workers that died, maybe not its fault
+                fut.release()
+                suspects.append(i)
+                continue
+            fut.release()
+            hand_over(i, status, value)
+        # A worker that dies takes every task queued on it along; the scheduler cannot tell the
+        # task that crashed it from its neighbours. Each suspect runs again alone, so only the
+        # task that really ends its worker is reported lost.
+        for n, i in enumerate(suspects):
+            fut = client.submit(
+                guarded_call, function, *calls[i], pure=False, key=f"audiodsm-{i}-alone-{n}"
+            )
+            futures.append(fut)
+            try:
+                status, value = fut.result()
+            except Exception as exc:
+                status = "lost"
+                value = (
+                    "worker process ended unexpectedly each time it ran this task "
+                    f"({type(exc).__name__})"
+                )
+            fut.release()
+            hand_over(i, status, value)
         return info
     finally:
         try:

@@ -18,25 +18,71 @@ from audiodsm.errors import ParameterError
 
 __all__ = [
     "PLOTS",
+    "OVERLAYS",
+    "series_style",
+    "plot_noise_density",
+    "plot_audio_band_density",
     "plot_spectrum",
     "plot_thd_n_vs_level",
+    "plot_thd_n_vs_frequency",
     "plot_idle_tone_map",
     "plot_state_histograms",
     "plot_frequency_response",
+    "plot_overlay",
+    "overlay_curve",
     "plot_margins",
     "plot_spectrogram",
     "plot_cost_against_margin",
 ]
 
-# a plain palette of our own: ink, a blue, an ochre, a grey and a muted red
+# Okabe & Ito's colour-blind-safe set ("Color Universal Design", 2008): blue, vermillion,
+# bluish green, reddish purple, orange, sky blue, black; yellow is left out (too pale on white).
 _INK = "#222222"
-_BLUE = "#2f5d8a"
-_OCHRE = "#b07d1a"
+_BLUE = "#0072B2"
+_VERMILLION = "#D55E00"
+_GREEN = "#009E73"
+_PURPLE = "#CC79A7"
+_ORANGE = "#E69F00"
+_SKY = "#56B4E9"
 _GREY = "#8a8a8a"
-_RED = "#a33b2b"
-_GREEN = "#3d7a4a"
+_OCHRE = _ORANGE
+_RED = _VERMILLION
 #: Colours for a series of curves or bars, used in turn.
-_SERIES = (_BLUE, _OCHRE, _GREEN, _RED, _GREY, _INK, "#6b4c9a", "#2a8a8a")
+_SERIES = (_BLUE, _VERMILLION, _GREEN, _PURPLE, _ORANGE, _SKY, _INK)
+#: Line styles and markers used in turn with the colours, so series differ without colour.
+_LINESTYLES = ("-", "--", "-.", ":")
+_MARKERS = ("o", "s", "^", "D", "v", "P", "*")
+#: Marker shapes of a limit's verdict: readable without colour.
+_PASS_MARKER, _FAIL_MARKER = "o", "X"
+
+
+def series_style(index: int) -> dict:
+    """Colour, line style and marker of series ``index`` (one per profile in a report).
+
+    The colour cycles through a colour-blind-safe set of seven (Okabe & Ito 2008); the line
+    style and the marker change too, so two series differ in print and without colour.
+
+    Parameters
+    ----------
+    index : int
+        0-based position of the series (a profile's rank minus one).
+
+    Returns
+    -------
+    dict
+        ``{"color": str, "ls": str, "marker": str}``, keyword arguments for ``Axes.plot``.
+
+    References
+    ----------
+    .. [1] M. Okabe and K. Ito, "Color Universal Design (CUD): how to make figures and
+       presentations that are friendly to colorblind people", 2008 (the palette).
+    """
+    i = int(index)
+    return {
+        "color": _SERIES[i % len(_SERIES)],
+        "ls": _LINESTYLES[(i // len(_SERIES) + i) % len(_LINESTYLES)],
+        "marker": _MARKERS[i % len(_MARKERS)],
+    }
 
 
 def _axes(ax, size=(6.4, 3.4)):
@@ -69,7 +115,155 @@ def _style(ax, title, xlabel, ylabel):
         ax.spines[side].set_visible(False)
 
 
-def plot_spectrum(curves, *, ax=None, title="Output spectrum"):
+def _graded(graded, *metrics):
+    """The graded targets (``TargetGrade``) among ``graded`` whose metric is in ``metrics``."""
+    return [g for g in graded or () if g.target.metric in metrics]
+
+
+def _verdict(g, level_dbfs=None) -> str:
+    """A target's limit and verdict in words, e.g. ``"limit <= -90 dB: pass"``."""
+    t = g.target
+    sign = ">=" if t.bound == "at_least" else "<="
+    unit = f" {t.unit}" if t.unit else ""
+    if level_dbfs is None:
+        level_dbfs = t.at_level_dbfs
+    where = f" at {level_dbfs:g} dBFS" if level_dbfs is not None else ""
+    if g.passed:
+        word = "pass"
+    else:
+        word = "FAIL" if g.value is not None else "FAIL (no valid reading)"
+    return f"limit{where} {sign} {t.limit:g}{unit}: {word}"
+
+
+def _limit_line(ax, g, *, y=None, x=None, xspan=None, **kw):
+    """A dashed limit line (horizontal at ``y`` or vertical at ``x``), labelled with its verdict."""
+    style = {"color": _INK, "lw": 1.0, "ls": (0, (5, 3)), "label": _verdict(g), **kw}
+    if y is not None:
+        if xspan is None:
+            ax.axhline(y, **style)
+        else:
+            ax.plot(xspan, [y, y], **style)
+    else:
+        ax.axvline(x, **style)
+
+
+def _verdict_marker(ax, g, x, y):
+    """The reading against its limit: a circle when it passes, a cross when it fails."""
+    if y is None or not np.isfinite(y):
+        return
+    ax.plot([x], [y], _PASS_MARKER if g.passed else _FAIL_MARKER, color=_INK, ms=7,
+            mfc="none" if g.passed else _INK, zorder=5)  # fmt: skip
+
+
+def _db_power(v):
+    with np.errstate(divide="ignore"):
+        return 10.0 * np.log10(v)
+
+
+def plot_noise_density(curves, *, ax=None, title="Output noise density, whole output band",
+                       graded=()):  # fmt: skip
+    """The output noise as a density, with the density the designed NTF predicts.
+
+    Parameters
+    ----------
+    curves : dict
+        ``curves["spectrum"]`` with ``frequency_hz`` and ``density_dbfs_per_hz``; optional
+        ``predicted_density_dbfs_per_hz`` (same axis), ``out_of_band_hz`` (the band of the
+        out-of-band noise reading) and ``weighting_db`` (A-weighting, right-hand axis).
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        Graded targets; an ``out_of_band_noise_dbfs`` limit is drawn as the flat density
+        that carries exactly the limit's power over the out-of-band band.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    c = _curve(curves, "spectrum", ("frequency_hz", "density_dbfs_per_hz"))
+    fig, ax = _axes(ax)
+    f = np.asarray(c["frequency_hz"], dtype=float)
+    keep = f > 0
+    d = np.asarray(c["density_dbfs_per_hz"], dtype=float)
+    ax.semilogx(f[keep], d[keep], color=_BLUE, lw=0.7, label="simulated output")
+    if "predicted_density_dbfs_per_hz" in c:
+        p = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
+        ax.semilogx(f[keep], p[keep], color=_VERMILLION, lw=1.3, ls="--",
+                    label="predicted: (quantizer + dither) x |NTF|^2")  # fmt: skip
+    _style(ax, title, "frequency (Hz)", "noise density (dBFS/\u221aHz)")
+    ax.axvline(20000.0, color=_GREY, lw=0.8, ls=":")
+    finite = d[keep][np.isfinite(d[keep])]
+    if finite.size:
+        ax.set_ylim(max(np.min(finite), np.max(finite) - 160.0) - 5.0, np.max(finite) + 10.0)
+    band = np.asarray(c.get("out_of_band_hz", (20000.0, f[-1])), dtype=float)
+    for g in _graded(graded, "out_of_band_noise_dbfs"):
+        flat = g.target.limit - 10.0 * np.log10(band[1] - band[0])
+        _limit_line(ax, g, y=flat, xspan=band)
+        if g.value is not None:
+            _verdict_marker(ax, g, float(np.sqrt(band[0] * band[1])),
+                            g.value - 10.0 * np.log10(band[1] - band[0]))  # fmt: skip
+    if "weighting_db" in c:
+        right = ax.twinx()
+        right.set_ylabel("A-weighting gain (dB)", fontsize=9)
+        right.tick_params(labelsize=8)
+        right.spines["top"].set_visible(False)
+        w = np.asarray(c["weighting_db"], dtype=float)[keep]
+        right.semilogx(f[keep], w, color=_GREEN, lw=1.0, ls=":", label="A-weighting (right axis)")
+        right.set_ylim(-120, 20)
+        h1, l1 = ax.get_legend_handles_labels()
+        h2, l2 = right.get_legend_handles_labels()
+        ax.legend(h1 + h2, l1 + l2, fontsize=7, loc="lower right", frameon=False)
+    else:
+        ax.legend(fontsize=7, loc="lower right", frameon=False)
+    return fig
+
+
+def plot_audio_band_density(curves, *, ax=None, title="Output noise density, audio band",
+                            graded=()):  # fmt: skip
+    """The audio band (linear 0 to 24 kHz, fine bins) as a density, with the prediction.
+
+    Parameters
+    ----------
+    curves : dict
+        ``curves["audio_spectrum"]`` with ``frequency_hz`` and ``density_dbfs_per_hz``;
+        optional ``predicted_density_dbfs_per_hz``.
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        A ``dynamic_range_db`` (or ``_a``, ``_ccir``) limit is drawn as the flat in-band
+        density whose 20 Hz..20 kHz power is ``-limit`` dBFS (for the weighted ones an
+        approximation: the weighting is not applied to the line).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    c = _curve(curves, "audio_spectrum", ("frequency_hz", "density_dbfs_per_hz"))
+    fig, ax = _axes(ax)
+    f = np.asarray(c["frequency_hz"], dtype=float) / 1e3
+    d = np.asarray(c["density_dbfs_per_hz"], dtype=float)
+    ax.plot(f, d, color=_BLUE, lw=0.6, label="simulated output (-60 dBFS tone in)")
+    if "predicted_density_dbfs_per_hz" in c:
+        pred = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
+        ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label="predicted by the linear model")
+    res = float(np.asarray(c.get("resolution_hz", [np.nan]))[0])
+    _style(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""), "frequency (kHz)",
+           "noise density (dBFS/\u221aHz)")  # fmt: skip
+    ax.set_xlim(0.0, min(24.0, float(f[-1])) if f.size else 24.0)
+    finite = d[np.isfinite(d) & (f <= 20.0)]
+    if finite.size:
+        ax.set_ylim(np.percentile(finite, 1) - 10.0, np.max(finite) + 5.0)
+    for g in _graded(graded, "dynamic_range_db", "dynamic_range_db_a", "dynamic_range_db_ccir"):
+        width = 10.0 * np.log10(20000.0 - 20.0)
+        _limit_line(ax, g, y=-g.target.limit - width, xspan=(0.02, 20.0))
+        if g.value is not None:
+            _verdict_marker(ax, g, 10.0, -g.value - width)
+    ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
+    ax.legend(fontsize=7, loc="upper left", frameon=False)
+    return fig
+
+
+def plot_spectrum(curves, *, ax=None, title="Output spectrum", graded=()):
     """The reconstructed output spectrum, with the designed NTF and the weighting overlaid.
 
     Parameters
@@ -80,6 +274,8 @@ def plot_spectrum(curves, *, ax=None, title="Output spectrum"):
         at the same frequencies, drawn against the right-hand axis.
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        Not used (the report draws limits on the density plots).
 
     Returns
     -------
@@ -93,9 +289,9 @@ def plot_spectrum(curves, *, ax=None, title="Output spectrum"):
     _style(ax, title, "frequency (Hz)", "level per bin (dBFS)")
     ax.axvline(20000.0, color=_GREY, lw=0.8, ls=":")
     right = None
-    for key, colour, label in (
-        ("ntf_gain_db", _OCHRE, "designed NTF"),
-        ("weighting_db", _GREEN, "A-weighting"),
+    for key, colour, style, label in (
+        ("ntf_gain_db", _VERMILLION, "--", "designed NTF"),
+        ("weighting_db", _GREEN, ":", "A-weighting"),
     ):
         if key in c:
             if right is None:
@@ -104,7 +300,7 @@ def plot_spectrum(curves, *, ax=None, title="Output spectrum"):
                 right.tick_params(labelsize=8)
                 right.spines["top"].set_visible(False)
             g = np.asarray(c[key], dtype=float)[keep]
-            right.semilogx(f[keep], g, color=colour, lw=1.1, ls="--", label=label)
+            right.semilogx(f[keep], g, color=colour, lw=1.1, ls=style, label=label)
     if right is not None:
         right.set_ylim(-120, 20)
         h1, l1 = ax.get_legend_handles_labels()
@@ -113,7 +309,17 @@ def plot_spectrum(curves, *, ax=None, title="Output spectrum"):
     return fig
 
 
-def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level"):
+_THD_N_LEVEL_METRICS = {
+    "thd_n_db": ("thd_n_db", None),
+    "thd_n_db_a": ("thd_n_db_a", None),
+    "thd_n_db_at_minus1_dbfs": ("thd_n_db", -1.0),
+    "thd_n_db_a_at_minus1_dbfs": ("thd_n_db_a", -1.0),
+    "thd_n_db_at_minus20_dbfs": ("thd_n_db", -20.0),
+    "thd_n_db_a_at_minus20_dbfs": ("thd_n_db_a", -20.0),
+}
+
+
+def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level", graded=()):
     """THD+N (unweighted and A-weighted) against the 997 Hz tone level.
 
     Parameters
@@ -123,6 +329,10 @@ def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level"):
         ``thd_n_db_a``); ``curves["overload"]`` (same fields) is drawn when present.
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        THD+N targets at a level (``thd_n_db`` at a stated level, ``thd_n_db_at_minus1_dbfs``
+        ...) are drawn as a short limit bar at their level, with the reading marked by a
+        circle (pass) or a cross (fail).
 
     Returns
     -------
@@ -132,25 +342,81 @@ def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level"):
     fig, ax = _axes(ax)
     ax.plot(c["level_dbfs"], c["thd_n_db"], "o-", color=_BLUE, ms=3, lw=1, label="unweighted")
     if "thd_n_db_a" in c:
-        ax.plot(c["level_dbfs"], c["thd_n_db_a"], "s--", color=_OCHRE, ms=3, lw=1, label="A-wtd")
+        ax.plot(c["level_dbfs"], c["thd_n_db_a"], "s--", color=_ORANGE, ms=3, lw=1, label="A-wtd")
     over = curves.get("overload")
     if isinstance(over, dict) and "level_dbfs" in over and "thd_n_db" in over:
-        ax.plot(over["level_dbfs"], over["thd_n_db"], "x", color=_RED, ms=5, label="overload")
+        ax.plot(over["level_dbfs"], over["thd_n_db"], "x", color=_VERMILLION, ms=5,
+                label="overload")  # fmt: skip
+    for g in _graded(graded, *_THD_N_LEVEL_METRICS):
+        _, fixed = _THD_N_LEVEL_METRICS[g.target.metric]
+        lv = fixed if fixed is not None else g.target.at_level_dbfs
+        if lv is None:
+            continue
+        weighted = _THD_N_LEVEL_METRICS[g.target.metric][0] == "thd_n_db_a"
+        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0),
+                    ls="--" if weighted else (0, (5, 3)),
+                    label=("A-wtd " if weighted else "") + _verdict(g, lv))  # fmt: skip
+        _verdict_marker(ax, g, lv, g.value)
     _style(ax, title, "tone level (dBFS)", "THD+N (dB)")
-    ax.legend(fontsize=8, frameon=False)
+    ax.legend(fontsize=7, frameon=False)
     return fig
 
 
-def plot_idle_tone_map(curves, *, ax=None, title="Idle tones against DC offset"):
+def plot_thd_n_vs_frequency(curves, *, ax=None, title="THD+N against frequency", graded=()):
+    """THD+N of single tones against their frequency, one line per tone level.
+
+    Parameters
+    ----------
+    curves : dict
+        ``curves["thd_n_vs_frequency"]`` with ``frequency_hz`` (F), ``level_dbfs`` (L) and
+        ``thd_n_db`` (L x F, NaN at invalid tones).
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        ``thd_n_db_worst_over_frequency_at_minus1_dbfs`` / ``..._minus20_dbfs`` limits are
+        drawn as lines across the band, the worst reading marked at its frequency.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    c = _curve(curves, "thd_n_vs_frequency", ("frequency_hz", "level_dbfs", "thd_n_db"))
+    fig, ax = _axes(ax)
+    f = np.asarray(c["frequency_hz"], dtype=float)
+    grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
+    levels = [float(v) for v in np.atleast_1d(c["level_dbfs"])]
+    for k, lv in enumerate(levels):
+        ax.semilogx(f, grid[k], marker=_MARKERS[k % len(_MARKERS)], ms=3, lw=1,
+                    ls=_LINESTYLES[k % len(_LINESTYLES)], color=_SERIES[k % len(_SERIES)],
+                    label=f"{lv:g} dBFS tones")  # fmt: skip
+    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
+        for g in _graded(graded, f"thd_n_db_worst_over_frequency_at_{name}_dbfs"):
+            ls = (0, (5, 3)) if lv == -1.0 else (0, (1, 2))
+            _limit_line(ax, g, y=g.target.limit, ls=ls, label=f"{lv:g} dBFS " + _verdict(g))
+            if lv in levels and np.isfinite(grid[levels.index(lv)]).any():
+                row = grid[levels.index(lv)]
+                j = int(np.nanargmax(row))
+                _verdict_marker(ax, g, f[j], row[j] if g.value is not None else None)
+    _style(ax, title, "tone frequency (Hz)", "THD+N (dB)")
+    ax.legend(fontsize=7, frameon=False)
+    return fig
+
+
+def plot_idle_tone_map(curves, *, ax=None, title="Idle tones against DC offset", graded=()):
     """The strongest in-band line at each small DC offset, with the detection limit.
 
     Parameters
     ----------
     curves : dict
         ``curves["idle_tone_map"]`` with ``dc_offset`` (signed, full-scale units),
-        ``line_dbfs`` (NaN where no line was found) and ``detection_limit_dbfs``.
+        ``line_dbfs`` (NaN where no line was found) and ``detection_limit_dbfs``; optional
+        ``line_hz`` (the worst lines are labelled with their frequency) and
+        ``weakest_detectable_dbfs`` (drawn as the limit when present: no found line lies
+        below it).
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        An ``idle_tone_max_dbfs`` limit is drawn across the map.
 
     Returns
     -------
@@ -160,13 +426,28 @@ def plot_idle_tone_map(curves, *, ax=None, title="Idle tones against DC offset")
     fig, ax = _axes(ax)
     off = np.asarray(c["dc_offset"], dtype=float)
     line = np.asarray(c["line_dbfs"], dtype=float)
-    limit = np.asarray(c["detection_limit_dbfs"], dtype=float)
-    for sign, marker, colour, label in ((1, "^", _BLUE, "positive"), (-1, "v", _OCHRE, "negative")):
+    key = "weakest_detectable_dbfs" if "weakest_detectable_dbfs" in c else "detection_limit_dbfs"
+    limit = np.asarray(c[key], dtype=float)
+    # a found line is never drawn under its limit: where the stored limit lies above the line
+    # (the older band-wide limit), the limit is drawn at the line
+    limit = np.where(np.isfinite(line), np.fmin(limit, line), limit)
+    hz = np.asarray(c.get("line_hz", np.full(off.shape, np.nan)), dtype=float)
+    for sign, marker, colour, label in (
+        (1, "^", _BLUE, "positive"),
+        (-1, "v", _ORANGE, "negative"),
+    ):
         sel = np.sign(off) == sign
         order = np.argsort(np.abs(off[sel]))
         mag = np.abs(off[sel])[order]
         ax.semilogx(mag, limit[sel][order], color=colour, lw=0.8, ls=":")
         ax.semilogx(mag, line[sel][order], marker, color=colour, ms=5, label=f"{label} offset")
+    found = np.flatnonzero(np.isfinite(line))
+    for i in found[np.argsort(line[found])[::-1]][:3]:  # the three strongest lines
+        if np.isfinite(hz[i]):
+            ax.annotate(f"{hz[i]:.0f} Hz", (abs(off[i]), line[i]), textcoords="offset points",
+                        xytext=(4, 4), fontsize=7, color=_INK)  # fmt: skip
+    for g in _graded(graded, "idle_tone_max_dbfs"):
+        _limit_line(ax, g, y=g.target.limit)
     if np.isnan(line).all():
         ax.text(
             0.5,
@@ -178,20 +459,27 @@ def plot_idle_tone_map(curves, *, ax=None, title="Idle tones against DC offset")
             color=_INK,
         )
     _style(ax, title, "DC offset (fraction of full scale)", "strongest line (dBFS)")
-    ax.legend(fontsize=8, frameon=False, title="dotted: detection limit", title_fontsize=7)
+    ax.legend(fontsize=7, frameon=False, title="dotted: weakest detectable line",
+              title_fontsize=7)  # fmt: skip
     return fig
 
 
-def plot_state_histograms(curves, *, ax=None, title="Integrator states"):
+def plot_state_histograms(curves, *, ax=None, title="Integrator states", graded=()):
     """Histograms of the loop's integrator states at the maximum stable amplitude.
+
+    The axis is fitted to the central 99.9 % of each state's samples (rarer excursions are
+    named in the legend with their reach); the guard's state bound (where the loop is reset or
+    clamped) is marked when it lies near the data, else named in the legend.
 
     Parameters
     ----------
     curves : dict
         ``curves["state_histograms"]`` with ``edges`` (states x (bins + 1)) and ``counts``
-        (states x bins).
+        (states x bins); optional ``state_bound``.
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        A ``state_peak_max`` limit is drawn at plus and minus the limit.
 
     Returns
     -------
@@ -201,16 +489,46 @@ def plot_state_histograms(curves, *, ax=None, title="Integrator states"):
     fig, ax = _axes(ax)
     edges = np.atleast_2d(np.asarray(c["edges"], dtype=float))
     counts = np.atleast_2d(np.asarray(c["counts"], dtype=float))
+    lo, hi = np.inf, -np.inf
+    reach = 0.0
     for k in range(counts.shape[0]):
         total = counts[k].sum()
         share = counts[k] / total if total > 0 else counts[k]
-        ax.stairs(share, edges[k], color=_SERIES[k % len(_SERIES)], lw=1.1, label=f"state {k + 1}")
+        st = series_style(k)
+        ax.stairs(share, edges[k], color=st["color"], ls=st["ls"], lw=1.1, label=f"state {k + 1}")
+        used = np.flatnonzero(counts[k] > 0)
+        if used.size:
+            reach = max(reach, abs(edges[k][used[0]]), abs(edges[k][used[-1] + 1]))
+            # the axis holds the central 99.9 % of each state's samples
+            cum = np.cumsum(counts[k]) / total
+            first = int(np.searchsorted(cum, 0.0005))
+            last = int(np.searchsorted(cum, 0.9995))
+            lo, hi = min(lo, edges[k][first]), max(hi, edges[k][min(last, cum.size - 1) + 1])
+    if np.isfinite(lo):
+        span = max(abs(lo), abs(hi)) * 1.1
+        if reach > span:
+            ax.plot([], [], " ", label=f"rare excursions to \u00b1{reach:.3g}, beyond the axis")
+        limits = [g.target.limit for g in _graded(graded, "state_peak_max")]
+        span = max([span, *(1.05 * v for v in limits)])
+        ax.set_xlim(-span, span)
+    bound = float(np.asarray(c.get("state_bound", [np.nan]))[0])
+    if np.isfinite(bound):
+        if np.isfinite(lo) and bound <= 3.0 * max(abs(lo), abs(hi)):
+            ax.set_xlim(-1.05 * bound, 1.05 * bound)
+            for x in (-bound, bound):
+                ax.axvline(x, color=_VERMILLION, lw=1.2, ls="-.",
+                           label="guard bound" if x > 0 else None)  # fmt: skip
+        else:
+            ax.plot([], [], " ", label=f"guard bound \u00b1{bound:g}, off scale")
+    for g in _graded(graded, "state_peak_max"):
+        for x in (-g.target.limit, g.target.limit):
+            _limit_line(ax, g, x=x, label=_verdict(g) if x > 0 else None)
     _style(ax, title, "state value (full-scale units)", "share of samples")
     ax.legend(fontsize=7, frameon=False, ncols=2)
     return fig
 
 
-def plot_frequency_response(curves, *, ax=None, title="Frequency response"):
+def plot_frequency_response(curves, *, ax=None, title="Frequency response", graded=()):
     """Gain of the whole chain relative to 997 Hz.
 
     Parameters
@@ -219,6 +537,9 @@ def plot_frequency_response(curves, *, ax=None, title="Frequency response"):
         ``curves["frequency_response"]`` with ``frequency_hz`` and ``gain_db``.
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        A ``passband_ripple_db`` limit (peak to peak) is drawn as a band of that width
+        centred on the middle of the measured response.
 
     Returns
     -------
@@ -226,9 +547,92 @@ def plot_frequency_response(curves, *, ax=None, title="Frequency response"):
     """
     c = _curve(curves, "frequency_response", ("frequency_hz", "gain_db"))
     fig, ax = _axes(ax)
-    ax.semilogx(c["frequency_hz"], c["gain_db"], "o-", color=_BLUE, ms=3, lw=1)
+    gain = np.asarray(c["gain_db"], dtype=float)
+    ax.semilogx(c["frequency_hz"], gain, "o-", color=_BLUE, ms=3, lw=1, label="response")
     ax.axhline(0.0, color=_GREY, lw=0.8)
+    for g in _graded(graded, "passband_ripple_db"):
+        mid = 0.5 * (np.nanmax(gain) + np.nanmin(gain)) if np.isfinite(gain).any() else 0.0
+        half = 0.5 * g.target.limit
+        _limit_line(ax, g, y=mid + half, label="band of the ripple " + _verdict(g))
+        _limit_line(ax, g, y=mid - half, label=None)
     _style(ax, title, "frequency (Hz)", "gain re 997 Hz (dB)")
+    ax.legend(fontsize=7, frameon=False)
+    return fig
+
+
+#: What each overlay plot draws: name -> (curve, title, x label, y label, x scale).
+_OVERLAY_KINDS = {
+    "thd_n_vs_level": ("thd_n_vs_level", "THD+N against level, every profile", "tone level (dBFS)",
+                       "THD+N (dB)", "linear"),
+    "thd_n_vs_frequency": ("thd_n_vs_frequency", "THD+N against frequency, every profile",
+                           "tone frequency (Hz)", "THD+N (dB)", "log"),
+    "noise_density": ("audio_spectrum", "Output noise density in the audio band, every profile",
+                      "frequency (kHz)", "noise density (dBFS/\u221aHz)", "linear"),
+}  # fmt: skip
+
+
+def overlay_curve(kind: str) -> str:
+    """The battery curve an overlay ``kind`` of :func:`plot_overlay` draws."""
+    if kind not in _OVERLAY_KINDS:
+        raise ParameterError("kind", kind, "one of " + ", ".join(_OVERLAY_KINDS))
+    return _OVERLAY_KINDS[kind][0]
+
+
+def _smooth_db(d, bins):
+    """Density in dB averaged in power over runs of ``bins`` bins (a readable overlay)."""
+    p = 10.0 ** (np.asarray(d, dtype=float) / 10.0)
+    n = len(p) // bins * bins
+    return _db_power(p[:n].reshape(-1, bins).mean(axis=1))
+
+
+def plot_overlay(kind, profiles, *, ax=None, title=None):
+    """One quantity for several profiles on one axis, one colour and style per profile.
+
+    Parameters
+    ----------
+    kind : str
+        ``"thd_n_vs_level"``, ``"thd_n_vs_frequency"`` (-1 dBFS solid markers, -20 dBFS
+        hollow) or ``"noise_density"`` (the audio-band density, averaged over 8 bins).
+    profiles : sequence of (str, dict, int)
+        ``(name, curves, style index)``; the style index picks :func:`series_style`, so a
+        profile keeps its colour across the report. Profiles without the curve are listed in
+        the legend as "no data".
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, optional, keyword-only
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    if kind not in _OVERLAY_KINDS:
+        raise ParameterError("kind", kind, "one of " + ", ".join(_OVERLAY_KINDS))
+    curve, default_title, xlabel, ylabel, xscale = _OVERLAY_KINDS[kind]
+    fig, ax = _axes(ax, size=(7.6, 3.8))
+    for name, curves, index in profiles:
+        st = series_style(index)
+        c = curves.get(curve) if isinstance(curves, dict) else None
+        if not isinstance(c, dict):
+            ax.plot([], [], " ", label=f"{name}: no data")
+            continue
+        if kind == "thd_n_vs_level":
+            ax.plot(c["level_dbfs"], c["thd_n_db"], ms=4, lw=1.1, label=name, **st)
+        elif kind == "thd_n_vs_frequency":
+            grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
+            for k, lv in enumerate(np.atleast_1d(c["level_dbfs"])):
+                ax.plot(c["frequency_hz"], grid[k], ms=4, lw=1.1,
+                        mfc=st["color"] if k == 0 else "none",
+                        label=f"{name}, {float(lv):g} dBFS", **st)  # fmt: skip
+        else:
+            f = np.asarray(c["frequency_hz"], dtype=float)
+            d = _smooth_db(c["density_dbfs_per_hz"], 8)
+            fk = f[: len(d) * 8].reshape(-1, 8).mean(axis=1) / 1e3
+            ax.plot(fk, d, lw=0.9, color=st["color"], ls=st["ls"], label=name)
+    ax.set_xscale(xscale)
+    if kind == "noise_density":
+        ax.set_xlim(0.0, 24.0)
+        ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
+    _style(ax, title or default_title, xlabel, ylabel)
+    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     return fig
 
 
@@ -318,11 +722,20 @@ def plot_spectrogram(
 
 #: The per-profile plots of a report, in order: (curve name, function, caption).
 PLOTS = (
-    ("spectrum", plot_spectrum, "output spectrum, designed NTF and A-weighting"),
+    ("spectrum", plot_noise_density, "output noise density with the linear model's prediction"),
+    ("audio_spectrum", plot_audio_band_density, "audio-band noise density, fine bins"),
     ("thd_n_vs_level", plot_thd_n_vs_level, "THD+N against level"),
+    ("thd_n_vs_frequency", plot_thd_n_vs_frequency, "THD+N against frequency"),
     ("idle_tone_map", plot_idle_tone_map, "idle-tone map"),
     ("state_histograms", plot_state_histograms, "integrator state histograms"),
     ("frequency_response", plot_frequency_response, "frequency response"),
+)
+
+#: The report's plots of every profile together: (kind for plot_overlay, caption).
+OVERLAYS = (
+    ("thd_n_vs_level", "THD+N against level, every profile"),
+    ("thd_n_vs_frequency", "THD+N against frequency, every profile"),
+    ("noise_density", "audio-band noise density, every profile"),
 )
 
 

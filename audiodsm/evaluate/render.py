@@ -10,14 +10,19 @@ For each input file :func:`render_file` writes, into the output folder:
   (PDM) or ``<stem>.<profile>.codes.txt`` (NRZ / PWM level codes, one word per line);
 - ``<stem>.<profile>.summary.json``: the per-file summary (channels numbered from 1).
 
-Every file is written under a temporary name and renamed only when complete; a failure or
-Ctrl-C leaves nothing under a final name. Existing outputs are kept unless asked to replace
-them. :func:`render_files` renders several inputs into one folder (``audiodsm render``);
-:func:`prepare_output_folder` checks that folder first.
+The outputs of one input are one set (:class:`audiodsm.io_files.OutputSet`): each file is
+written under a temporary name, and all of them are renamed together once the summary is
+written, so a failure or Ctrl-C at any point (a full disk while writing the summary included)
+leaves nothing under a final name. Existing outputs, dangling symlinks among them, are kept
+unless asked to replace them. Names too long for the file system are shortened with a digest
+(:func:`audiodsm.io_files.fit_file_name`). :func:`render_files` renders several inputs into one
+folder (``audiodsm render``), each distinct file once (:func:`distinct_inputs`);
+:func:`prepare_output_folder` checks that folder first, comparing folders by device and inode.
 """
 
 from __future__ import annotations
 
+import errno
 import json
 import math
 import os
@@ -36,12 +41,13 @@ __all__ = [
     "output_names",
     "render_file",
     "render_files",
+    "distinct_inputs",
     "prepare_output_folder",
     "chosen_error_gain_db",
     "summary_text",
 ]
 
-#: Said (on stderr, or at the end of the demo) whenever listening files are written.
+#: Said (on stderr, or at the end of the demo) once a listening file has been written.
 HEARING_CAUTION = (
     "Caution: listening files can be loud. Test tones and amplified error files can damage "
     "hearing and tweeters; start playback at low volume."
@@ -55,6 +61,11 @@ def _safe(text: str) -> str:
 
 def _gain_text(gain_db: float) -> str:
     return f"{gain_db:g}".replace("-", "minus")
+
+
+# Room kept after ``<stem>.<profile>`` for the longest role suffix: ".error+<gain>dB.wav" with
+# the longest gain ``:g`` writes ("minus1.23457e-300") is 30 bytes; the others are shorter.
+_ROLE_SUFFIX_BYTES = 32
 
 
 def output_names(input_path, profile, out_dir, *, error_gain_db=None, stream=False) -> dict:
@@ -75,8 +86,19 @@ def output_names(input_path, profile, out_dir, *, error_gain_db=None, stream=Fal
     dict
         Role (``"listening"``, ``"error"``, ``"bits"``, ``"bits_sidecar"``, ``"codes"``,
         ``"summary"``) -> Path.
+
+    Notes
+    -----
+    The names share the base ``<input stem>.<profile name>``. A base too long for every name
+    built on it to fit the file system (with room for the temporary name wrapped around it
+    while it is written) keeps its start and gets ``-`` and 16 hex digits of the SHA-256 of
+    the whole base (:func:`audiodsm.io_files.fit_file_name`), so long names that differ anywhere
+    stay apart and the same input and profile always get the same names.
     """
+    from audiodsm.io_files import MAX_OUTPUT_NAME_BYTES, fit_file_name
+
     base = f"{Path(input_path).stem}.{_safe(profile.name)}"
+    base = fit_file_name(base, max_bytes=MAX_OUTPUT_NAME_BYTES - _ROLE_SUFFIX_BYTES)
     out = Path(out_dir)
     names = {"listening": out / f"{base}.listen.wav", "summary": out / f"{base}.summary.json"}
     if error_gain_db is not None:
@@ -139,10 +161,15 @@ def render_file(
     Raises
     ------
     AudioFileError, OutputError, ParameterError
-        Bad input, an output that exists, or an unwritable folder. Nothing is left under a
-        final name.
+        Bad input, or an output that exists (a dangling symlink included). Nothing is left
+        under a final name.
+    StorageError
+        An output could not be written (full disk, read-only folder); the message names the
+        file and the cause. Nothing of this input is left under a final name, so a rerun
+        starts clean.
     """
     from audiodsm.io import audio_info, iter_audio_blocks, open_audio_writer
+    from audiodsm.io_files import OutputSet, refuse_dangling_symlink, same_file
     from audiodsm.profile import AUDIO_RATES_HZ
     from audiodsm.profile_text import profile_digest
     from audiodsm.stages.chain import Chain
@@ -160,8 +187,9 @@ def render_file(
     protected = [Path(p) for p in protect] + [path]
     for target in names.values():
         for other in protected:
-            if target.exists() and os.path.samefile(target, other):
+            if same_file(target, other):
                 raise OutputError(f"{target}: refusing to overwrite an input file")
+        refuse_dangling_symlink(target, replace=overwrite)
         if target.exists() and not overwrite:
             raise OutputError(f"{target}: already exists (use --replace to replace it)")
     chain = Chain.from_profile(
@@ -209,9 +237,11 @@ def render_file(
             subtype=subtype,
             overwrite=overwrite,
             protect=protected,
+            output_set=outputs,
         )
 
-    with ExitStack() as stack:
+    # one set: the audio files wait under their temporary names until the summary is written
+    with OutputSet() as outputs, ExitStack() as stack:
         listen_w = stack.enter_context(listening_writer(names["listening"]))
         error_w = None
         if "error" in names:
@@ -224,6 +254,7 @@ def render_file(
                     rate_hz=chain.modulator_rate_hz,
                     channels=info.channels,
                     overwrite=overwrite,
+                    output_set=outputs,
                 )
             )
         elif "codes" in names:
@@ -233,6 +264,7 @@ def render_file(
                     levels=profile.modulator.levels,
                     channels=info.channels,
                     overwrite=overwrite,
+                    output_set=outputs,
                 )
             )
         run_keep = keep + (("modulator",) if stream_w is not None else ())
@@ -297,17 +329,12 @@ def render_file(
                     "silence_noise_dbfs_a": silence_dbfs[c],
                 }
             )
-    # the audio files are complete and renamed; the summary goes last
-    _write_json_atomic(names["summary"], summary, overwrite=overwrite)
+        stack.close()  # the audio files are complete (still under their temporary names)
+        outputs.add_text(
+            names["summary"], json.dumps(summary, indent=2) + "\n", overwrite=overwrite
+        )
+    # leaving the block renamed the whole set, or (on any failure) removed it
     return summary
-
-
-def _write_json_atomic(path: Path, data: dict, *, overwrite: bool) -> None:
-    from audiodsm.io_files import replace_text_atomically
-
-    if path.exists() and not overwrite:
-        raise OutputError(f"{path}: already exists (use --replace to replace it)")
-    replace_text_atomically(path, json.dumps(data, indent=2) + "\n")
 
 
 def _fmt(value, spec=".1f", none="-"):
@@ -396,15 +423,74 @@ def chosen_error_gain_db(profile, *, error_file=None, error_gain_db=None) -> flo
     return profile.listening.error_gain_db if error_gain_db is None else float(error_gain_db)
 
 
-def prepare_output_folder(out_dir, inputs) -> Path:
+def distinct_inputs(inputs) -> tuple[list, list]:
+    """The inputs with every repeat of the same file left out, and the repeats.
+
+    The same file given twice, by the same path or another (``./a.wav`` and ``a.wav``, a
+    symlink, a bind mount), is rendered once: a second render would only find the first one's
+    outputs in its way. Files are compared by device and inode
+    (:func:`audiodsm.io_files.same_file`); paths that do not exist, by their absolute text.
+
+    Parameters
+    ----------
+    inputs : sequence of path-like
+
+    Returns
+    -------
+    distinct : list
+        The inputs in the order given, each file at its first mention.
+    repeats : list of (input, earlier input)
+        Each input left out, with the earlier mention of the same file.
+    """
+    from audiodsm.io_files import same_file
+
+    distinct, repeats = [], []
+    for name in inputs:
+        first = next(
+            (
+                seen
+                for seen in distinct
+                if same_file(seen, name)
+                or os.path.abspath(os.fspath(seen)) == os.path.abspath(os.fspath(name))
+            ),
+            None,
+        )
+        if first is None:
+            distinct.append(name)
+        else:
+            repeats.append((name, first))
+    return distinct, repeats
+
+
+# mkdir failures that are a wrong path (a file in the way, a symlink loop), not a refused write
+_NOT_A_FOLDER_ERRNOS = {errno.ENOTDIR, errno.EEXIST, errno.ELOOP}
+
+
+def _why_not_writable(folder) -> int:
+    """The errno of a folder ``os.access`` says cannot be written: read-only file system or not."""
+    try:
+        read_only = bool(os.statvfs(folder).f_flag & os.ST_RDONLY)
+    except (OSError, AttributeError):  # no statvfs (Windows)
+        read_only = False
+    return errno.EROFS if read_only else errno.EACCES
+
+
+def prepare_output_folder(out_dir, inputs, *, made=None) -> Path:
     """Create the output folder of a render and check that the inputs can go into it.
+
+    Temporary files that a killed earlier run left in the folder (their writer no longer
+    runs) are removed (:func:`audiodsm.io_files.remove_stale_temp_files`).
 
     Parameters
     ----------
     out_dir : path-like
-        The folder (created when missing).
+        The folder (created when missing, with its missing parents).
     inputs : sequence of path-like
-        The audio files to render into it.
+        The audio files to render into it (repeats of one file are fine, see
+        :func:`distinct_inputs`).
+    made : list, optional, keyword-only
+        Receives the folders this call created, outermost first, so that a caller that ends
+        up writing nothing can remove them again.
 
     Returns
     -------
@@ -414,31 +500,49 @@ def prepare_output_folder(out_dir, inputs) -> Path:
     Raises
     ------
     OutputError
-        The folder cannot be created or written, it holds an input, or two inputs have the
-        same stem (their outputs would collide).
+        A file is in the way of the folder, the folder holds an input (compared by device and
+        inode, so another path to it, a symlink or a bind mount, is no way around), or two
+        different inputs have the same stem (their outputs would collide).
+    StorageError
+        The folder cannot be created or written: read-only, no permission, disk full.
     """
+    from audiodsm.errors import StorageError
+    from audiodsm.io_files import remove_stale_temp_files, same_file
+
     out = Path(out_dir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
-    if not os.access(out, os.W_OK | os.X_OK):
-        raise OutputError(f"{out}: the output folder is not writable")
+    distinct, _ = distinct_inputs(inputs)
     seen = {}
-    for name in inputs:
+    for name in distinct:
         stem = Path(name).stem
-        if stem in seen and Path(seen[stem]).resolve() != Path(name).resolve():
+        if stem in seen:
             raise OutputError(
                 f"{name}: has the same name as {seen[stem]}; their outputs would collide "
                 "(render them into different folders)"
             )
-        seen.setdefault(stem, name)
-    out_real = out.resolve()
-    for name in inputs:
-        if Path(name).resolve().parent == out_real:
+        seen[stem] = name
+    missing, walk = [], out
+    while not os.path.lexists(walk) and walk != walk.parent:
+        missing.append(walk)
+        walk = walk.parent
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        if exc.errno in _NOT_A_FOLDER_ERRNOS:
+            raise OutputError(f"{out}: cannot create the output folder ({exc.strerror})") from None
+        raise StorageError(out, exc) from None
+    finally:
+        if made is not None:
+            made.extend(p for p in reversed(missing) if p.is_dir())
+    for name in distinct:
+        # the folder of the name given and, for a symlink, of the file it points to
+        folders = {Path(name).parent, Path(os.path.realpath(name)).parent}
+        if any(same_file(folder, out) for folder in folders):
             raise OutputError(
                 f"{name}: the output folder holds this input; choose another --out-dir"
             )
+    if not os.access(out, os.W_OK | os.X_OK):  # a read-only mount refuses even root here
+        raise StorageError(out, os.strerror(_why_not_writable(out)))
+    remove_stale_temp_files(out)
     return out
 
 
@@ -459,7 +563,8 @@ def render_files(
     Parameters
     ----------
     inputs : sequence of path-like
-        Audio files; none is ever overwritten.
+        Audio files; none is ever overwritten. A file given more than once is rendered once
+        (:func:`distinct_inputs`).
     profile : ChainProfile
     out_dir : path-like
         A folder :func:`prepare_output_folder` accepted.
@@ -476,7 +581,8 @@ def render_files(
     """
     from audiodsm.io import audio_info
 
-    for name in inputs:
+    distinct, _ = distinct_inputs(inputs)
+    for name in distinct:
         try:
             watch = nullcontext() if progress is None else progress(name, audio_info(name).frames)
             with watch as update:

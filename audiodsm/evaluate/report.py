@@ -3,12 +3,13 @@
 :func:`write_report` writes three files into a folder:
 
 ``grades.html``
-    An overview (profiles ranked by worst margin, a target-by-profile matrix of readings and
-    margins, a chart of the margins), then one section per profile: its readings against the
-    spec sheet, every battery metric, the battery's notes and five plots (output spectrum with
-    the designed NTF and the A-weighting curve, THD+N against level, idle-tone map, integrator
-    state histograms, frequency response). The plots are embedded as base64 PNG, so the page
-    is a single file that opens anywhere.
+    An overview (profiles ranked by worst margin, each in its plot colour, a target-by-profile
+    matrix of readings and margins, a chart of the margins), the plots of every profile
+    together (THD+N against level and frequency, audio-band noise density), then one section
+    per profile: its readings against the spec sheet, every battery metric, the battery's
+    notes and the plots of :data:`audiodsm.evaluate.plotting.PLOTS` with the spec limits
+    drawn (docs/report.md). The plots are embedded as base64 PNG and each one's data as a
+    base64 CSV download, so the page is a single file that opens anywhere.
 ``grades.json``
     :func:`batch_to_dict` of the batch.
 ``grades.csv``
@@ -34,9 +35,10 @@ from pathlib import Path
 
 import numpy as np
 
-from audiodsm.errors import AudiodsmError, OutputError, StorageError
+from audiodsm.errors import AudiodsmError, OutputError, ParameterError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.io_files import (
+    OutputSet,
     create_temp_file,
     create_temp_folder,
     remove_stale_temp_files,
@@ -49,7 +51,10 @@ __all__ = [
     "batch_to_dict",
     "batch_to_csv",
     "report_curves",
+    "curve_to_csv",
+    "overlay_to_csv",
     "figure_to_png",
+    "write_profile_plots",
     "render_html",
     "check_report_dir",
     "write_report",
@@ -208,6 +213,108 @@ def report_curves(curves: dict) -> dict:
     return out
 
 
+def _column(v):
+    return "" if isinstance(v, float) and not math.isfinite(v) else repr(v)
+
+
+def _csv_text(header, rows) -> str:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\r\n")
+    w.writerow(header)
+    for row in rows:
+        w.writerow(["" if v is None else v if isinstance(v, str) else _column(v) for v in row])
+    return buf.getvalue()
+
+
+def _curve_table(curves: dict, name: str):
+    """(header, rows) of one curve as a table; numbers as Python floats, NaN as None."""
+    c = curves[name]
+
+    def num(v):
+        v = float(v)
+        return v if math.isfinite(v) else None
+
+    if name == "state_histograms":
+        edges = np.atleast_2d(np.asarray(c["edges"], dtype=float))
+        counts = np.atleast_2d(np.asarray(c["counts"], dtype=float))
+        rows = [
+            [k + 1, num(edges[k][i]), num(edges[k][i + 1]), num(counts[k][i])]
+            for k in range(counts.shape[0])
+            for i in range(counts.shape[1])
+        ]
+        return ["state", "lower", "upper", "count"], rows
+    if name == "thd_n_vs_frequency":
+        f = np.asarray(c["frequency_hz"], dtype=float)
+        grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
+        levels = [float(v) for v in np.atleast_1d(c["level_dbfs"])]
+        reasons = np.atleast_2d(np.asarray(c.get("invalid_reason", np.full(grid.shape, ""))))
+        header = ["frequency_hz"]
+        for lv in levels:
+            header += [f"thd_n_db_at_{lv:g}_dbfs", f"invalid_reason_at_{lv:g}_dbfs"]
+        rows = []
+        for j in range(f.size):
+            row = [num(f[j])]
+            for k in range(len(levels)):
+                row += [num(grid[k][j]), str(reasons[k][j])]
+            rows.append(row)
+        return header, rows
+    arrays = {k: np.asarray(v) for k, v in c.items()}
+    n = max((a.size for a in arrays.values() if a.ndim == 1), default=0)
+    keys = [k for k, a in arrays.items() if a.ndim == 1 and a.size == n and n > 1]
+    rows = []
+    for i in range(n):
+        rows.append([str(arrays[k][i]) if arrays[k].dtype.kind in "US" else num(arrays[k][i])
+                     for k in keys])  # fmt: skip
+    return keys, rows
+
+
+def curve_to_csv(curves: dict, name: str) -> str:
+    """One battery curve as CSV text (RFC 4180, CRLF lines), the data behind its plot.
+
+    Every 1-D array of the curve's length becomes a column named as the array; NaN and
+    infinities become empty fields. ``thd_n_vs_frequency`` gets one THD+N column (and one
+    reason column) per tone level; ``state_histograms`` one row per state and bin.
+
+    Parameters
+    ----------
+    curves : dict
+        A battery's curves (:attr:`BatteryResult.curves`, or :func:`report_curves`).
+    name : str
+        The curve.
+
+    Returns
+    -------
+    str
+    """
+    if not isinstance(curves, dict) or not isinstance(curves.get(name), dict):
+        raise ParameterError(f"curves[{name!r}]", None, "a battery curve")
+    return _csv_text(*_curve_table(curves, name))
+
+
+def overlay_to_csv(curve: str, profiles) -> str:
+    """One curve of several profiles as one CSV table, with a leading ``profile`` column.
+
+    Parameters
+    ----------
+    curve : str
+        The battery curve (e.g. ``"thd_n_vs_level"``).
+    profiles : sequence of (str, dict)
+        ``(profile name, curves)``; profiles without the curve are left out.
+
+    Returns
+    -------
+    str
+    """
+    header, rows = ["profile"], []
+    for name, curves in profiles:
+        if not isinstance(curves, dict) or not isinstance(curves.get(curve), dict):
+            continue
+        cols, table = _curve_table(curves, curve)
+        header += [c for c in cols if c not in header]
+        rows += [{"profile": name, **dict(zip(cols, r, strict=True))} for r in table]
+    return _csv_text(header, [[r.get(k) for k in header] for r in rows])
+
+
 def figure_to_png(fig) -> bytes:
     """The figure as PNG bytes (100 dpi)."""
     buf = io.BytesIO()
@@ -266,6 +373,16 @@ def _png_base64(fig) -> str:
     return base64.b64encode(figure_to_png(fig)).decode("ascii")
 
 
+def _b64(text: str) -> str:
+    return base64.b64encode(text.encode("utf-8")).decode("ascii")
+
+
+def _file_stem(name: str) -> str:
+    """A profile name as a plain download-file stem (letters, digits, '-', '_', '.')."""
+    stem = "".join(ch if ch.isalnum() or ch in "-_." else "-" for ch in name).strip(".-")
+    return stem[:60] or "profile"
+
+
 def render_html(batch, *, title=None) -> str:
     """The report page as one HTML string with every image embedded as base64 PNG.
 
@@ -290,19 +407,46 @@ def render_html(batch, *, title=None) -> str:
     stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
     margins_png = _png_base64(plotting.plot_margins(batch)) if batch.grades else None
     sections = []
+    with_curves = []
     for rank, g in enumerate(batch.grades, 1):
         plots = None
+        style = plotting.series_style(rank - 1)
         if g.curves:
             curves = report_curves(g.curves)
+            with_curves.append((g.name, curves, rank - 1))
             plots = []
-            for _name, fn, caption in plotting.PLOTS:
+            for name, fn, caption in plotting.PLOTS:
                 try:
-                    fig = fn(curves)
+                    fig = fn(curves, graded=g.lines)
                 except AudiodsmError:
                     plots.append({"caption": caption, "png": None})
                     continue
-                plots.append({"caption": caption, "png": _png_base64(fig)})
-        sections.append({"rank": rank, "grade": g, "plots": plots})
+                plots.append(
+                    {
+                        "caption": caption,
+                        "png": _png_base64(fig),
+                        "id": f"profile-{rank}-{name}",
+                        "csv": _b64(curve_to_csv(curves, name)),
+                        "csv_name": f"{_file_stem(g.name)}-{name}.csv",
+                    }
+                )
+        sections.append({"rank": rank, "grade": g, "plots": plots, "colour": style["color"]})
+    overlays = []
+    if len(with_curves) > 1:
+        for kind, caption in plotting.OVERLAYS:
+            curve = plotting.overlay_curve(kind)
+            if not any(curve in c for _, c, _ in with_curves):
+                continue
+            fig = plotting.plot_overlay(kind, with_curves)
+            overlays.append(
+                {
+                    "caption": caption,
+                    "png": _png_base64(fig),
+                    "id": f"overlay-{kind}",
+                    "csv": _b64(overlay_to_csv(curve, [(n, c) for n, c, _ in with_curves])),
+                    "csv_name": f"every-profile-{kind}.csv",
+                }
+            )
     return (
         _environment()
         .get_template(_TEMPLATE)
@@ -314,6 +458,8 @@ def render_html(batch, *, title=None) -> str:
             batch=batch,
             margins_png=margins_png,
             sections=sections,
+            overlays=overlays,
+            csv_file=REPORT_FILES["csv"],
         )
     )
 
@@ -459,3 +605,74 @@ def write_report(batch, directory, *, protect=(), title=None) -> dict:
     else:
         _write_new_report_folder(d, texts)
     return {kind: d / REPORT_FILES[kind] for kind in ("json", "csv", "html")}
+
+
+#: File formats :func:`write_profile_plots` writes each plot in.
+PLOT_FORMATS = ("png", "svg")
+
+
+def write_profile_plots(curves: dict, folder, *, stem: str) -> list:
+    """Write one profile's report plots into a folder, as PNG and SVG files.
+
+    The plots are those of a report section (:data:`audiodsm.evaluate.plotting.PLOTS`), drawn
+    without spec limits; a curve the battery did not give is skipped. Files are named
+    ``<stem>-<curve>.png`` and ``.svg`` (e.g. ``pdm5-thd_n_vs_frequency.svg``) and replace
+    files of the same name. They appear together or not at all
+    (:class:`audiodsm.io_files.OutputSet`).
+
+    Parameters
+    ----------
+    curves : dict
+        A battery's curves (:attr:`BatteryResult.curves`).
+    folder : path-like
+        Created (with parents) when missing.
+    stem : str
+        Start of every file name (a profile name; characters other than letters, digits,
+        ``-``, ``_`` and ``.`` become ``-``).
+
+    Returns
+    -------
+    list of Path
+        The files written, in plot order.
+
+    Raises
+    ------
+    OutputError
+        ``folder`` is a file.
+    StorageError
+        A file could not be written (nothing of this profile is left under a final name).
+    """
+    from audiodsm.evaluate import plotting
+
+    d = Path(folder)
+    if d.exists() and not d.is_dir():
+        raise OutputError(f"{d}: the plot folder is a file")
+    try:
+        d.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StorageError(d, exc) from None
+    curves = report_curves(curves)
+    base = _file_stem(stem)
+    with OutputSet() as outputs:
+        for name, fn, _caption in plotting.PLOTS:
+            try:
+                fig = fn(curves)
+            except AudiodsmError:
+                continue
+            for fmt in PLOT_FORMATS:
+                target = d / f"{base}-{name}.{fmt}"
+                fd, tmp = create_temp_file(target)
+                try:
+                    with os.fdopen(fd, "wb") as fh:
+                        fig.savefig(fh, format=fmt, dpi=100)
+                        fh.flush()
+                        os.fsync(fh.fileno())
+                except OSError as exc:
+                    tmp.unlink(missing_ok=True)
+                    raise StorageError(target, exc) from None
+                except BaseException:
+                    tmp.unlink(missing_ok=True)
+                    raise
+                outputs.stage(tmp, target, overwrite=True)
+        written = outputs.commit()
+    return [Path(p) for p in written]

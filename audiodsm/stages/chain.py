@@ -40,12 +40,13 @@ from typing import NamedTuple
 import numpy as np
 
 from audiodsm.errors import ParameterError
-from audiodsm.profile import ChainProfile
+from audiodsm.profile import ChainProfile, ImpairmentSettings
 from audiodsm.stages.chain_build import (
     _analog_filter,
     _build_ntf,
     _check_rate,
     _designed_ntf,
+    _edge_jitter_and_noise,
     _mean_level,
     _output_waveform_fn,
     _pwm_dead_time_fn,
@@ -64,6 +65,7 @@ __all__ = [
     "STAGE_NAMES",
     "Chain",
     "run_chain",
+    "release_worker_threads",
 ]
 
 #: What :func:`run_chain` can keep: the listening output, the modulator output, the
@@ -231,6 +233,10 @@ class Chain:
             else:
                 plain = profile
             self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
+            # the calibration reads the ideal stage: the impairments' errors stay in the output
+            self._ideal_stage = _output_waveform_fn(
+                replace(plain, impairments=ImpairmentSettings()), float(self.modulator_rate_hz)
+            )
         with _settings_of(profile, "listening"):
             listen = profile.listening
             if listen.decimator == "counting":  # same interface as the half-band cascade
@@ -254,6 +260,14 @@ class Chain:
                 self._downsampler = Downsampler(self.downsampler_design)
         with _settings_of(profile, "output"):
             self._calibrate()  # runs the output stage on its levels
+        with _settings_of(profile, "impairments"):
+            self._jitter, self._noise = _edge_jitter_and_noise(profile, self.modulator_rate_hz)
+        imp = profile.impairments
+        self._supply_ripple = None
+        if imp.supply_ripple > 0.0:
+            self._supply_ripple = {"ripple": imp.supply_ripple, "ripple_hz": imp.supply_ripple_hz}
+        if self._jitter is not None:  # an early edge changes the frame before it
+            self.latency_s += 1.0 / self.modulator_rate_hz
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
         n_threads = threads if threads is not None else min(self.channels, os.cpu_count() or 1)
         self._threads = max(1, int(n_threads))
@@ -301,7 +315,7 @@ class Chain:
         # no dead time (see __init__): the error dead time makes depends on the load current,
         # it is the product's offset and distortion, and the measurements must show it.
         hold = 4
-        wf, _, _ = self._waveform(np.repeat(probe, hold), None)
+        wf, _, _ = self._ideal_stage(np.repeat(probe, hold), None)
         means = _mean_level(wf)[hold - 1 :: hold]
         # least-squares line through (level, mean output): slope = volts per full-scale unit.
         # With five or more levels the two end levels are left out: a minimum pulse width can
@@ -420,6 +434,8 @@ class Chain:
         return merged, st
 
     def _channel_piece(self, x, st, keep):
+        from audiodsm.stages.output_stage import PulseWaveform
+
         clock = time.perf_counter
         t0 = clock()
         if self.input_scale != 1.0:
@@ -446,8 +462,22 @@ class Chain:
         else:
             switches = 0
         t3 = clock()
+        supply_s = st.supply_frames
+        if self._supply_ripple is not None:  # open loop: levels times the rippling supply
+            from audiodsm.stages.supply import apply_supply_ripple
+
+            wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)
+            supply_s = (supply_s or 0) + y.size
+        jit_s = st.jitter
+        if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
+            means, jit_s = self._jitter.process(wf.levels[:, 0], jit_s)
+            wf = PulseWaveform._trusted(means.reshape(-1, 1), wf.ticks, 1, wf.frame_rate_hz)
         if wf is not None:
             analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
+        noise_s = st.noise
+        if self._noise is not None:  # output-referred: added after the filter
+            noise, noise_s = self._noise.process(analog.size, noise_s)
+            analog = analog + noise
         t4 = clock()
         # the decimator is linear: calibrate after it, on 1/OSR as many samples
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
@@ -455,8 +485,17 @@ class Chain:
         t5 = clock()
         error = None
         new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
+        new = new._replace(jitter=jit_s, noise=noise_s, supply_frames=supply_s)
         if "error" in keep:
             ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
+            if self._jitter is not None:  # the same one-frame delay as the jittered output
+                held = st.ideal_held if st.ideal_held is not None else 0.0
+                levels = ideal_wf.levels[:, 0]
+                new = new._replace(ideal_held=float(levels[-1]) if levels.size else held)
+                delayed = np.concatenate(([held], levels[:-1])).reshape(-1, 1)
+                ideal_wf = PulseWaveform._trusted(
+                    delayed, ideal_wf.ticks, 1, ideal_wf.frame_rate_hz
+                )
             ideal, ifir_s, ifilt_s = self._reconstruct(ideal_wf, st.ideal_fir, st.ideal_analog)
             ideal_raw, idown_s = self._downsampler.process(
                 ideal, st.ideal_downsampler, check_finite=False
@@ -728,6 +767,10 @@ class _ChannelState(NamedTuple):
     ideal_fir: object = None
     ideal_analog: object = None
     ideal_downsampler: object = None
+    jitter: object = None  # [impairments]: edge jitter, analog noise, the ideal path's delay
+    noise: object = None
+    ideal_held: float | None = None
+    supply_frames: int | None = None  # frames since the start (the supply ripple's time)
 
 
 _POOLS: dict[tuple[int, int], ThreadPoolExecutor] = {}
@@ -746,6 +789,22 @@ def _pool(workers: int) -> ThreadPoolExecutor:
             max_workers=workers, thread_name_prefix="audiodsm-chain"
         )
     return pool
+
+
+def release_worker_threads() -> None:
+    """Tell every shared worker thread of the chain and the modulator to end; do not wait.
+
+    The shared pools live as long as the process. When Ctrl-C lands while a pool is starting a
+    thread, Python's exit can miss that thread and wait for it forever (the thread is started
+    before the pool records it). A command ends by calling this: every pool queues its stop
+    marker, so each idle thread, recorded or not, ends, and the next use builds new pools.
+    """
+    from audiodsm.stages import modulator
+
+    for pools in (_POOLS, modulator._POOLS):
+        for pool in list(pools.values()):
+            pool.shutdown(wait=False, cancel_futures=True)
+        pools.clear()
 
 
 def _check_keep(keep) -> tuple:

@@ -151,6 +151,9 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
         return pdm
     if out.kind == "nrz":
         lsb = 2.0 * volts / (levels - 1)
+        imp = profile.impairments
+        if imp.element_mismatch > 0.0 or imp.element_selection != "thermometer":
+            return _unit_element_fn(profile, frame_rate_hz, lsb)
 
         def nrz(y, state):
             wf = out_mod.nrz_waveform(y, levels=levels, frame_rate_hz=frame_rate_hz, lsb_volts=lsb)
@@ -177,6 +180,53 @@ def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
         return wf, (stats.dropped_pulses, stats.stretched_pulses), state
 
     return pwm
+
+
+def _unit_element_fn(profile: ChainProfile, frame_rate_hz: float, lsb_volts: float):
+    """The NRZ stage built from unit elements with mismatch and an element-selection logic."""
+    from audiodsm.stages import output_stage as out_mod
+    from audiodsm.stages.elements import UnitElements
+
+    imp, levels = profile.impairments, profile.modulator.levels
+    elements = UnitElements(
+        levels, imp.element_selection, mismatch=imp.element_mismatch, seed=imp.part_seed
+    )
+
+    def nrz_elements(y, state):
+        codes = out_mod.level_codes(y, levels=levels)
+        centred, state = elements.process(codes, state)
+        ones = np.ones((y.size, 1), dtype=np.int64)
+        wf = out_mod.PulseWaveform._trusted(
+            (centred * lsb_volts).reshape(-1, 1), ones, 1, frame_rate_hz
+        )
+        return wf, (0, 0), state
+
+    return nrz_elements
+
+
+def _edge_jitter_and_noise(profile: ChainProfile, frame_rate_hz: float):
+    """The [impairments] section's edge jitter (PDM, NRZ) and analog noise stages, or None."""
+    from audiodsm.stages.analog_noise import AnalogNoise
+    from audiodsm.stages.jitter import EdgeJitter
+
+    imp = profile.impairments
+    jitter = noise = None
+    if imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0:
+        jitter = EdgeJitter(
+            frame_rate_hz,
+            rms_s=imp.jitter_rms_s,
+            sine_peak_s=imp.jitter_sine_peak_s,
+            sine_hz=imp.jitter_sine_hz,
+            seed=imp.part_seed,
+        )
+    if imp.noise_density_nv > 0.0:
+        noise = AnalogNoise(
+            frame_rate_hz,
+            density_v=imp.noise_density_nv * 1e-9,
+            corner_hz=imp.noise_corner_hz,
+            seed=imp.part_seed,
+        )
+    return jitter, noise
 
 
 def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):

@@ -679,10 +679,16 @@ _LAYOUT_VERSION = 1
 
 
 class _AtomicFile:
-    """A file written under a temporary name in the target folder, renamed on commit."""
+    """A file written under a temporary name in the target folder, renamed on commit.
 
-    def __init__(self, path, *, overwrite: bool, mode: str):
+    With an ``output_set`` (:class:`audiodsm.io_files.OutputSet`) the commit hands the finished
+    temporary file to the set, which renames it together with the set's other files.
+    """
+
+    def __init__(self, path, *, overwrite: bool, mode: str, output_set=None):
         self.path = Path(path)
+        self.overwrite = overwrite
+        self.output_set = output_set
         folder = self.path.parent if str(self.path.parent) else Path(".")
         if os.path.lexists(self.path) and not overwrite:
             raise OutputError(f"{self.path}: already exists; pass overwrite=True to replace it")
@@ -697,10 +703,13 @@ class _AtomicFile:
             self.handle.flush()
             os.fsync(self.handle.fileno())
             self.handle.close()
-            os.replace(self.tmp, self.path)
+            if self.output_set is None:
+                os.replace(self.tmp, self.path)
         except OSError as exc:
             self.discard()
             raise StorageError(self.path, exc) from None
+        if self.output_set is not None:
+            self.output_set.stage(self.tmp, self.path, overwrite=self.overwrite)
 
     def discard(self):
         if not self.handle.closed:
@@ -743,12 +752,15 @@ class PackedBitsWriter:
         Channel count.
     overwrite : bool
         Replace existing files instead of refusing.
+    output_set : audiodsm.io_files.OutputSet, optional
+        Leave both finished files for the set to rename together with its other outputs.
     """
 
     path: str | Path
     rate_hz: float
     channels: int = 1
     overwrite: bool = False
+    output_set: object = None
     _file: _AtomicFile | None = field(default=None, init=False, repr=False)
     _carry: np.ndarray = field(default=None, init=False, repr=False)
     _samples: int = field(default=0, init=False, repr=False)
@@ -757,9 +769,11 @@ class PackedBitsWriter:
         self.rate_hz = _check_rate_named(self.rate_hz, "rate_hz")
         self.channels = _check_int(self.channels, "channels", 1, 64)
         sidecar = Path(str(self.path) + ".json")
-        if sidecar.exists() and not self.overwrite:
+        if os.path.lexists(sidecar) and not self.overwrite:  # a dangling symlink counts too
             raise OutputError(f"{sidecar}: already exists; pass overwrite=True to replace it")
-        self._file = _AtomicFile(self.path, overwrite=self.overwrite, mode="wb")
+        self._file = _AtomicFile(
+            self.path, overwrite=self.overwrite, mode="wb", output_set=self.output_set
+        )
         self._carry = np.zeros(0, dtype=np.uint8)
 
     def append(self, y) -> None:
@@ -794,7 +808,16 @@ class PackedBitsWriter:
             "level_of_bit_0": -1.0,
             "padding_bits_at_end": pad,
         }
-        side = _AtomicFile(str(self.path) + ".json", overwrite=self.overwrite, mode="w")
+        try:
+            side = _AtomicFile(
+                str(self.path) + ".json",
+                overwrite=self.overwrite,
+                mode="w",
+                output_set=self.output_set,
+            )
+        except BaseException:
+            self._file.discard()
+            raise
         try:
             json.dump(info, side.handle, indent=2)
             side.handle.write("\n")
@@ -902,18 +925,23 @@ class CodeTextWriter:
         Channel count.
     overwrite : bool
         Replace an existing file instead of refusing.
+    output_set : audiodsm.io_files.OutputSet, optional
+        Leave the finished file for the set to rename together with its other outputs.
     """
 
     path: str | Path
     levels: int = 2
     channels: int = 1
     overwrite: bool = False
+    output_set: object = None
     _file: _AtomicFile | None = field(default=None, init=False, repr=False)
 
     def __post_init__(self):
         self.levels = _check_levels(self.levels)
         self.channels = _check_int(self.channels, "channels", 1, 64)
-        self._file = _AtomicFile(self.path, overwrite=self.overwrite, mode="w")
+        self._file = _AtomicFile(
+            self.path, overwrite=self.overwrite, mode="w", output_set=self.output_set
+        )
 
     @property
     def digits(self) -> int:

@@ -1,0 +1,193 @@
+"""Compiled inner loops of the unit-element and edge-jitter stages, and nothing else.
+
+The stages are stages/elements.py and stages/jitter.py.
+Same rules as the other kernel modules: ``@njit(cache=True, nogil=True)``, no fastmath,
+contiguous arrays in, caller-allocated outputs and state arrays updated in place, no
+validation (the wrappers validate, convert, allocate and call). Each kernel has a slow
+pure-Python twin in ``tests/test_elements.py`` or ``tests/test_jitter.py``.
+
+Unit-element convention (all element kernels): ``n_elements = N`` bipolar unit elements, each
+adding ``+(1 + e_i) / 2`` LSB when selected and ``-(1 + e_i) / 2`` LSB when not, so code ``k``
+(``k`` elements selected) gives the centred level ``k - N / 2`` plus the mismatch error
+``sum_selected(e_i) - total(e) / 2``. The output is that centred level in LSB; the ideal part
+and the error are added last, so with every ``e_i = 0`` the output is exactly ``k - N / 2``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+# splitmix64 constants (S. Vigna's reference code of splitmix64, public domain; the generator
+# of Steele, Lea & Flood, "Fast splittable pseudorandom number generators", OOPSLA 2014)
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+_MIX1 = np.uint64(0xBF58476D1CE4E5B9)
+_MIX2 = np.uint64(0x94D049BB133111EB)
+
+
+@njit(cache=True, nogil=True)
+def _next_random(rng):
+    """Advance the splitmix64 state ``rng[0]`` and return the next 64-bit output."""
+    x = rng[0] + _GOLDEN
+    rng[0] = x
+    z = x
+    z = (z ^ (z >> np.uint64(30))) * _MIX1
+    z = (z ^ (z >> np.uint64(27))) * _MIX2
+    return z ^ (z >> np.uint64(31))
+
+
+@njit(cache=True, nogil=True)
+def select_thermometer(codes, half, table, out):
+    """Thermometer selection: code ``k`` turns on elements ``0 .. k-1``, always the same ones.
+
+    ``table[k]`` holds the static error of code ``k`` (``sum(e[:k]) - sum(e) / 2``).
+    """
+    for n in range(codes.size):
+        k = codes[n]
+        out[n] = (k - half) + table[k]
+
+
+@njit(cache=True, nogil=True)
+def select_random(codes, half, errors, rng, order, out):
+    """Random selection: each sample, ``k`` elements drawn without replacement.
+
+    A partial Fisher-Yates shuffle of the persistent index array ``order`` (state), with
+    splitmix64 (state ``rng``, one uint64) as the source; the modulo bias of ``r % m`` for
+    ``m <= 65536`` is below 4e-15 and ignored.
+    """
+    n_el = errors.size
+    total = 0.0
+    for i in range(n_el):
+        total += errors[i]
+    for n in range(codes.size):
+        k = codes[n]
+        acc = 0.0
+        for j in range(k):
+            r = j + np.int64(_next_random(rng) % np.uint64(n_el - j))
+            t = order[j]
+            order[j] = order[r]
+            order[r] = t
+            acc += errors[order[j]]
+        out[n] = (k - half) + (acc - 0.5 * total)
+
+
+@njit(cache=True, nogil=True)
+def _cyclic_sum(prefix, start, count, n_el):
+    """Sum of ``errors[start], ..., errors[start + count - 1]`` taken modulo ``n_el``."""
+    stop = start + count
+    if stop <= n_el:
+        return prefix[stop] - prefix[start]
+    return (prefix[n_el] - prefix[start]) + prefix[stop - n_el]
+
+
+@njit(cache=True, nogil=True)
+def select_rotating(codes, half, prefix, pointers, bidirectional, out):
+    """Data-weighted averaging, plain or bi-directional.
+
+    Plain (Baird & Fiez 1995): the ``k`` elements from the pointer on, cyclically; the pointer
+    then moves past them. Bi-directional (Fujimori et al. 2000): even samples go forward from
+    ``pointers[0]``, odd samples backward from ``pointers[1]`` (elements ``p - 1, ..., p -
+    k``), two interleaved rotations. ``pointers`` = (forward, backward, samples so far mod 2).
+    ``prefix`` holds the cumulative sums of the element errors (``prefix[0] = 0``).
+    """
+    n_el = prefix.size - 1
+    for n in range(codes.size):
+        k = codes[n]
+        if bidirectional and pointers[2] == 1:
+            p = pointers[1] - k
+            if p < 0:
+                p += n_el
+            acc = _cyclic_sum(prefix, p, k, n_el)
+            pointers[1] = p
+        else:
+            p = pointers[0]
+            acc = _cyclic_sum(prefix, p, k, n_el)
+            p += k
+            if p >= n_el:
+                p -= n_el
+            pointers[0] = p
+        if bidirectional:
+            pointers[2] = 1 - pointers[2]
+        out[n] = (k - half) + (acc - 0.5 * prefix[n_el])
+
+
+@njit(cache=True, nogil=True)
+def select_vector_shaped(codes, half, errors, past, out):
+    """Second-order vector mismatch shaping (Schreier & Zhang 1995; Schreier & Temes 2005).
+
+    Error feedback on the selection vector ``v`` (0/1 per element, ``k`` ones): the target is
+    ``t = k / N - 2 eps[n-1] + eps[n-2]``, ``v`` selects the ``k`` largest ``t_i`` (ties to
+    the lower index), ``eps = v - t``. So ``v = k / N + (1 - z^-1)^2 eps``: each element's use
+    is second-order shaped, and so is the mismatch error ``sum(v_i e_i)``; ``sum(t) = k``
+    at every sample, so the states do not drift as a whole.
+    ``past`` rows are ``eps[n-1]`` and ``eps[n-2]`` (state).
+    """
+    n_el = errors.size
+    total = 0.0
+    for i in range(n_el):
+        total += errors[i]
+    target = np.empty(n_el)
+    ranked = np.arange(n_el)
+    for n in range(codes.size):
+        k = codes[n]
+        share = k / n_el
+        for i in range(n_el):
+            target[i] = share - 2.0 * past[0, i] + past[1, i]
+        # insertion sort by (target descending, index ascending), starting from the last
+        # sample's order: the targets move little from one sample to the next, so few moves
+        for j in range(1, n_el):
+            item = ranked[j]
+            t = target[item]
+            m = j - 1
+            while m >= 0 and (
+                target[ranked[m]] < t or (target[ranked[m]] == t and ranked[m] > item)
+            ):
+                ranked[m + 1] = ranked[m]
+                m -= 1
+            ranked[m + 1] = item
+        acc = 0.0
+        for i in range(n_el):
+            past[1, i] = past[0, i]
+            past[0, i] = -target[i]
+        for j in range(k):
+            i = ranked[j]
+            past[0, i] += 1.0
+            acc += errors[i]
+        out[n] = (k - half) + (acc - 0.5 * total)
+
+
+@njit(cache=True, nogil=True)
+def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out):
+    """Exact frame means of a one-segment-per-frame waveform whose edges are displaced.
+
+    The edge at the start of frame ``n`` (from ``levels[n-1]`` to ``levels[n]``) moves by
+    ``shifts[n] + sine_peak * sin(2 pi ((start + n) sine_ratio mod 1))`` frames (positive:
+    later), clipped to ``[-1/2, 1/2]``; ``start`` is the index of the block's first edge.
+    A late edge leaves the first
+    ``shift`` of frame ``n`` at the old level; an early one puts the last ``-shift`` of frame
+    ``n - 1`` at the new level. Either way the area moved is ``-(levels[n] - levels[n-1]) *
+    shift``: it changes the mean of frame ``n`` (late) or ``n - 1`` (early). Frame ``n - 1``
+    is finished only when edge ``n`` is known, so the output runs one frame behind:
+    ``out[n]`` is the mean of frame ``n - 1``. ``held`` = (level of the frame held back, its
+    mean so far); updated in place.
+    """
+    prev = held[0]
+    pending = held[1]
+    for n in range(levels.size):
+        level = levels[n]
+        shift = shifts[n]
+        if sine_peak != 0.0:
+            cycles = ((start + n) * sine_ratio) % 1.0  # exact enough: indices below 2**53
+            shift += sine_peak * np.sin(2.0 * np.pi * cycles)
+        shift = min(max(shift, -0.5), 0.5)
+        moved = -(level - prev) * shift
+        mean = level
+        if shift > 0.0:
+            mean += moved
+        else:
+            pending += moved
+        out[n] = pending
+        pending = mean
+        prev = level
+    held[0] = prev
+    held[1] = pending

@@ -1,0 +1,73 @@
+"""Impairment benchmarks: what element mismatch shaping, jitter and noise cost in the chain.
+
+Cases
+-----
+``impairments_cost``
+    The demo 17-level NRZ DAC chip profile (``profiles/dac_chip/nrz17_64x.toml``, 3rd-order
+    loop, OSR 64) on one channel of a synthesized 48 kHz tone, ``SECONDS`` long, run through
+    :class:`~audiodsm.stages.chain.Chain` as is (ideal) and with each impairment set: 0.1 %
+    element mismatch with each element-selection method, white plus sinusoidal edge jitter,
+    analog noise, and the second-order mismatch shaper with jitter together. Reports the wall
+    time of each and its ratio to the ideal chain. Target (issue 13): mismatch shaping and
+    jitter together at most 1.5 x the ideal chain (``shaping_and_jitter_ratio``).
+
+``AUDIODSM_BENCH_IMPAIRMENT_SECONDS`` shortens (or lengthens) the input.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import time
+from pathlib import Path
+
+import numpy as np
+
+SECONDS = float(os.environ.get("AUDIODSM_BENCH_IMPAIRMENT_SECONDS", "10"))
+TARGET_RATIO = 1.5
+_PROFILE = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "nrz17_64x.toml"
+_JITTER = {"jitter_rms_s": 5e-12, "jitter_sine_peak_s": 2e-12, "jitter_sine_hz": 1000.0}
+
+
+def _time_chain(profile, x, rate) -> float:
+    from audiodsm.stages.chain import Chain
+
+    chain = Chain.from_profile(profile, rate, 1, threads=1)
+    chain.process(x[: rate // 10])  # compile and warm the caches
+    start = time.perf_counter()
+    chain.process(x)
+    return time.perf_counter() - start
+
+
+def run():
+    from audiodsm.profile import load_profile
+
+    rate = 48000
+    base = load_profile(_PROFILE)
+    x = 0.5 * np.sin(2 * np.pi * 997.0 * np.arange(int(SECONDS * rate)) / rate)
+
+    def with_keys(**keys):
+        return dataclasses.replace(base, impairments=dataclasses.replace(base.impairments, **keys))
+
+    cases = {"ideal": base}
+    for method in ("thermometer", "random", "data-weighted", "vector-second-order"):
+        cases[f"elements_{method}"] = with_keys(element_mismatch=0.001, element_selection=method)
+    cases["jitter"] = with_keys(**_JITTER)
+    cases["analog_noise"] = with_keys(noise_density_nv=50.0, noise_corner_hz=100.0)
+    cases["shaping_and_jitter"] = with_keys(
+        element_mismatch=0.001, element_selection="vector-second-order", **_JITTER
+    )
+    cases["dwa_and_jitter"] = with_keys(
+        element_mismatch=0.001, element_selection="data-weighted", **_JITTER
+    )
+    seconds = {name: _time_chain(p, x, rate) for name, p in cases.items()}
+    record = {
+        "case": "impairments_cost",
+        "audio_seconds": SECONDS,
+        "profile": base.name,
+        "target_ratio": TARGET_RATIO,
+    }
+    for name, s in seconds.items():
+        record[f"{name}_s"] = round(s, 3)
+        record[f"{name}_ratio"] = round(s / seconds["ideal"], 3)
+    yield record
