@@ -115,6 +115,31 @@ class InputSettings:
         doc="Samples beyond ±1.0: 'clip' clips them to ±1.0 and counts them; 'refuse' "
         "stops with an error naming the file.",
     )
+    source_bits: int = _key(
+        24,
+        "int",
+        "an integer from 8 to 32",
+        _int_range(8, 32),
+        doc="Word length of the source the product plays (bits, two's complement, full scale "
+        "±1.0): what requantize rounds the input to.",
+    )
+    requantize: str = _key(
+        "tpdf",
+        "str",
+        _fmt_choices("tpdf", "off"),
+        _choice("tpdf", "off"),
+        doc="'tpdf': round every input sample to source_bits with TPDF dither of 2 LSB peak to "
+        "peak before the upsampler, as a source file of that word length carries it (noise "
+        "LSB²/4, so no reading beats the source); 'off': feed the samples unrounded (an ideal "
+        "source of unlimited word length).",
+    )
+    dither_seed: int = _key(
+        0,
+        "int",
+        "an integer from 0 to 2**63 - 1",
+        _int_range(0, 2**63 - 1),
+        doc="Seed of the requantization dither (channel c draws its own stream from it).",
+    )
 
 
 @dataclass(frozen=True)
@@ -196,6 +221,14 @@ class ModulatorSettings:
         _choice(*ZERO_LAYOUTS),
         doc="'spread': NTF zeros at the optimal positions over the band; 'dc': all at DC.",
     )
+    zero_band_edge_hz: float = _key(
+        20000.0,
+        "float",
+        "a number from 1000 to 96000",
+        _float_range(1000.0, 96000.0),
+        doc="Edge of the band the spread NTF zeros are optimized over, Hz: the band the "
+        "product is judged in. Capped at half the input rate.",
+    )
     zeros: tuple = _key(
         (),
         "roots",
@@ -214,6 +247,16 @@ class ModulatorSettings:
         _fmt_choices("feedback", "feedforward", "error-feedback"),
         _choice("feedback", "feedforward", "error-feedback"),
         doc="Loop structure realizing the NTF.",
+    )
+    input_feed_in: bool = _key(
+        False,
+        "bool",
+        "true or false",
+        only="feedforward",
+        only_by="structure",
+        doc="Feedforward loop only: feed the input straight to the quantizer too (and to the "
+        "first integrator with the feedback's weight), so the signal transfer is exactly 1 "
+        "and the integrators carry only shaped noise, not the signal.",
     )
     levels: int = _key(
         2,
@@ -982,4 +1025,4 @@ def load_profile(path) -> ChainProfile:
 
 
 #: The modulator keys of an NTF design (they do nothing when explicit zeros and poles are given).
-_DESIGN_KEYS = ("order", "out_of_band_gain", "zero_layout")
+_DESIGN_KEYS = ("order", "out_of_band_gain", "zero_layout", "zero_band_edge_hz")

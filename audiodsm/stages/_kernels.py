@@ -99,7 +99,8 @@ def loop_any_structure(
     counts : int64 (1,)
         Running count of overload samples, updated in place.
     structure : int
-        0 feedback, 1 feedforward, 2 error feedback.
+        0 feedback, 1 feedforward, 2 error feedback, 3 feedforward with the input fed straight
+        to the quantizer too (``y = u + sum(c * x)``).
     levels : int
         Quantizer levels, 2 to 2**24 (16777216).
     dither_scale : float
@@ -132,8 +133,8 @@ def loop_any_structure(
         ut = u[t]
         if structure == 0:
             y = x[last]
-        elif structure == 1:
-            y = 0.0
+        elif structure == 1 or structure == 3:
+            y = ut if structure == 3 else 0.0
             for i in range(order):
                 y = y + coef[5, i] * x[i]
         else:
@@ -199,7 +200,7 @@ def loop_any_structure(
 # feedforward kernels assume, as LoopRealization.for_ntf builds them, that only the first integrator
 # receives the quantizer output.
 
-STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
+STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2, "feedforward-feed-in": 3}
 
 #: samples per block of a specialised loop (see loop_kernel_source): small enough that a block
 #: run again with the guard costs little, large enough that the per-block work does not show
@@ -234,7 +235,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     Parameters
     ----------
     structure : str
-        ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
+        ``"feedback"``, ``"feedforward"``, ``"error-feedback"`` or ``"feedforward-feed-in"``
+        (feedforward with the input fed straight to the quantizer too).
     order : int
         1..8.
     lossless : bool
@@ -251,6 +253,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     """
     n = order
     code = STRUCTURE_CODES[structure]
+    feed_in = code == 3
+    code = 1 if feed_in else code  # feedforward but for the input at the quantizer
     lines = []
     add = lines.append
     xs = ", ".join(f"x{i}" for i in range(n))
@@ -300,7 +304,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
         if code == 0:
             return f"x{n - 1}"
         if code == 1:
-            y = "0.0"
+            y = "u[t]" if feed_in else "0.0"
             for i in range(n):
                 y = f"({y} + c{i} * x{i})"
             return y
