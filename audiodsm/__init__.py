@@ -16,8 +16,10 @@ Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
 Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
-    level_codes, PackedBitsWriter, write_packed_bits, read_packed_bits,
-    CodeTextWriter, write_code_text, read_code_text
+    level_codes
+Stream files (``audiodsm.stages.stream_export``)
+    PackedBitsWriter, write_packed_bits, read_packed_bits, CodeTextWriter, write_code_text,
+    read_code_text
 Reconstruction (``audiodsm.stages.filter_design``, ``audiodsm.stages.reconstruct``)
     AnalogFilter, analog_prototype, lc_filter, SemiDigitalFir, semi_digital_fir,
     filter_waveform, filter_waveform_ticks, filter_waveform_power, FilterState,
@@ -132,12 +134,12 @@ _PUBLIC = {
     "PwmStats": "audiodsm.stages.output_stage",
     "PwmState": "audiodsm.stages.output_stage",
     "level_codes": "audiodsm.stages.output_stage",
-    "PackedBitsWriter": "audiodsm.stages.output_stage",
-    "write_packed_bits": "audiodsm.stages.output_stage",
-    "read_packed_bits": "audiodsm.stages.output_stage",
-    "CodeTextWriter": "audiodsm.stages.output_stage",
-    "write_code_text": "audiodsm.stages.output_stage",
-    "read_code_text": "audiodsm.stages.output_stage",
+    "PackedBitsWriter": "audiodsm.stages.stream_export",
+    "write_packed_bits": "audiodsm.stages.stream_export",
+    "read_packed_bits": "audiodsm.stages.stream_export",
+    "CodeTextWriter": "audiodsm.stages.stream_export",
+    "write_code_text": "audiodsm.stages.stream_export",
+    "read_code_text": "audiodsm.stages.stream_export",
     "AnalogFilter": "audiodsm.stages.filter_design",
     "analog_prototype": "audiodsm.stages.filter_design",
     "lc_filter": "audiodsm.stages.filter_design",

@@ -35,7 +35,7 @@ from audiodsm.limits import (
     OUT_OF_BAND_GAIN_RANGE,
     ZERO_LAYOUTS,
 )
-from audiodsm.profile_checks import _check_whole
+from audiodsm.profile_checks import _check_fixed_point, _check_impairments, _check_whole
 
 __all__ = [
     "AUDIO_RATES_HZ",
@@ -114,6 +114,31 @@ class InputSettings:
         _choice("clip", "refuse"),
         doc="Samples beyond ±1.0: 'clip' clips them to ±1.0 and counts them; 'refuse' "
         "stops with an error naming the file.",
+    )
+    source_bits: int = _key(
+        24,
+        "int",
+        "an integer from 8 to 32",
+        _int_range(8, 32),
+        doc="Word length of the source the product plays (bits, two's complement, full scale "
+        "±1.0): what requantize rounds the input to.",
+    )
+    requantize: str = _key(
+        "tpdf",
+        "str",
+        _fmt_choices("tpdf", "off"),
+        _choice("tpdf", "off"),
+        doc="'tpdf': round every input sample to source_bits with TPDF dither of 2 LSB peak to "
+        "peak before the upsampler, as a source file of that word length carries it (noise "
+        "LSB²/4, so no reading beats the source); 'off': feed the samples unrounded (an ideal "
+        "source of unlimited word length).",
+    )
+    dither_seed: int = _key(
+        0,
+        "int",
+        "an integer from 0 to 2**63 - 1",
+        _int_range(0, 2**63 - 1),
+        doc="Seed of the requantization dither (channel c draws its own stream from it).",
     )
 
 
@@ -196,6 +221,14 @@ class ModulatorSettings:
         _choice(*ZERO_LAYOUTS),
         doc="'spread': NTF zeros at the optimal positions over the band; 'dc': all at DC.",
     )
+    zero_band_edge_hz: float = _key(
+        20000.0,
+        "float",
+        "a number from 1000 to 96000",
+        _float_range(1000.0, 96000.0),
+        doc="Edge of the band the spread NTF zeros are optimized over, Hz: the band the "
+        "product is judged in. Capped at half the input rate.",
+    )
     zeros: tuple = _key(
         (),
         "roots",
@@ -214,6 +247,16 @@ class ModulatorSettings:
         _fmt_choices("feedback", "feedforward", "error-feedback"),
         _choice("feedback", "feedforward", "error-feedback"),
         doc="Loop structure realizing the NTF.",
+    )
+    input_feed_in: bool = _key(
+        False,
+        "bool",
+        "true or false",
+        only="feedforward",
+        only_by="structure",
+        doc="Feedforward loop only: feed the input straight to the quantizer too (and to the "
+        "first integrator with the feedback's weight), so the signal transfer is exactly 1 "
+        "and the integrators carry only shaped noise, not the signal.",
     )
     levels: int = _key(
         2,
@@ -868,116 +911,6 @@ def _parse_section(cls, table, path, section):
     return settings
 
 
-def _check_fixed_point(profile: ChainProfile, table: dict, path: str) -> None:
-    """Rules of the [fixed_point] section that involve the modulator."""
-    fp, mod = profile.fixed_point, profile.modulator
-    if not fp.active:
-        for key in table:
-            if key != "state_integer_bits":
-                raise ProfileError(
-                    path,
-                    f"fixed_point.{key}",
-                    "applies only with fixed_point.state_integer_bits (one entry per state)",
-                )
-        return
-    order = len(mod.zeros) if mod.explicit_ntf else mod.order
-    for key in ("state_integer_bits", "state_fraction_bits", "state_rounding", "state_overflow"):
-        got = len(getattr(fp, key))
-        if got != order and (got or key in ("state_integer_bits", "state_fraction_bits")):
-            raise ProfileError(
-                path,
-                f"fixed_point.{key}",
-                f"got {got} entries; expected {order}, one per state of the order-{order} loop",
-            )
-    if mod.structure != "feedback":
-        raise ProfileError(
-            path,
-            "modulator.structure",
-            f"got {mod.structure!r} with a [fixed_point] section; expected 'feedback' (the "
-            "fixed-point loop is the feedback structure)",
-        )
-    if mod.dither_lsb != 0.0:
-        raise ProfileError(
-            path,
-            "modulator.dither_lsb",
-            f"got {mod.dither_lsb!r} with a [fixed_point] section; expected 0 (the "
-            "fixed-point loop has no dither)",
-        )
-    m = (mod.levels - 1).bit_length() - 1
-    if mod.levels != 2 and (mod.levels - 1 != 1 << m or m > 16):
-        raise ProfileError(
-            path,
-            "modulator.levels",
-            f"got {mod.levels} with a [fixed_point] section; expected 2 or 2**m + 1 "
-            "(3, 5, 9, 17, ...), levels on a binary grid",
-        )
-
-
-#: Most levels a DAC built from unit elements may have (stages/elements.py: MAX_ELEMENTS + 1).
-_MAX_ELEMENT_LEVELS = 1025
-
-
-def _check_impairments(profile: ChainProfile, path: str) -> None:
-    """Rules of the [impairments] section that involve the output stage."""
-    imp, kind = profile.impairments, profile.output.kind
-    element = imp.element_mismatch > 0.0 or imp.element_selection != "thermometer"
-    if element and kind != "nrz":
-        key = "element_mismatch" if imp.element_mismatch > 0.0 else "element_selection"
-        raise ProfileError(
-            path,
-            f"impairments.{key}",
-            f"applies only to unit elements (output.kind = 'nrz'); this profile has {kind!r}",
-        )
-    if element and profile.modulator.levels > _MAX_ELEMENT_LEVELS:
-        raise ProfileError(
-            path,
-            "modulator.levels",
-            f"got {profile.modulator.levels} with unit-element impairments; expected 3 to "
-            f"{_MAX_ELEMENT_LEVELS} (one element per step)",
-        )
-    jitter = imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0
-    if jitter and kind == "pwm":
-        key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
-        raise ProfileError(
-            path,
-            f"impairments.{key}",
-            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
-        )
-    if (imp.jitter_sine_peak_s > 0.0) != (imp.jitter_sine_hz > 0.0):
-        key = "jitter_sine_hz" if imp.jitter_sine_peak_s > 0.0 else "jitter_sine_peak_s"
-        raise ProfileError(
-            path,
-            f"impairments.{key}",
-            "got 0; expected jitter_sine_peak_s and jitter_sine_hz to be given together",
-        )
-    if imp.supply_ripple > 0.0 and kind != "pwm":
-        raise ProfileError(
-            path,
-            "impairments.supply_ripple",
-            f"applies only to a class-D stage (output.kind = 'pwm'); this profile has {kind!r}",
-        )
-    if imp.supply_ripple > 0.0 and profile.output.dead_time_ticks > 0:
-        raise ProfileError(
-            path,
-            "impairments.supply_ripple",
-            "got a ripple with output.dead_time_ticks > 0; expected no dead time (the "
-            "dead-time loop does not model the supply yet)",
-        )
-    if (imp.supply_ripple > 0.0) != (imp.supply_ripple_hz > 0.0):
-        key = "supply_ripple_hz" if imp.supply_ripple > 0.0 else "supply_ripple"
-        raise ProfileError(
-            path,
-            f"impairments.{key}",
-            "got 0; expected supply_ripple and supply_ripple_hz to be given together",
-        )
-    if imp.noise_corner_hz > 0.0 and imp.noise_density_nv == 0.0:
-        raise ProfileError(
-            path,
-            "impairments.noise_corner_hz",
-            f"got {imp.noise_corner_hz!r} with no noise; expected impairments.noise_density_nv",
-        )
-
-
 def profile_from_dict(data: dict, *, source: str = "<profile>") -> ChainProfile:
     """Build a validated :class:`ChainProfile` from a nested dict (the parsed TOML).
 
@@ -1092,4 +1025,4 @@ def load_profile(path) -> ChainProfile:
 
 
 #: The modulator keys of an NTF design (they do nothing when explicit zeros and poles are given).
-_DESIGN_KEYS = ("order", "out_of_band_gain", "zero_layout")
+_DESIGN_KEYS = ("order", "out_of_band_gain", "zero_layout", "zero_band_edge_hz")

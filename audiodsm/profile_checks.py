@@ -2,8 +2,10 @@
 
 :func:`audiodsm.profile.profile_from_dict` validates each key on its own (type, range, choice)
 and then calls :func:`_check_whole` for what only the profile as a whole can tell: explicit NTF
-roots that fit, semi-digital FIR taps that the chain can divide by, and PWM timing that fits
-the frame. Each failure raises :class:`~audiodsm.errors.ProfileError` with one line.
+roots that fit, semi-digital FIR taps that the chain can divide by, PWM timing that fits the
+frame, and the rules of the [fixed_point] and [impairments] sections that involve the other
+sections (:func:`_check_fixed_point`, :func:`_check_impairments`). Each failure raises
+:class:`~audiodsm.errors.ProfileError` with one line.
 """
 
 from __future__ import annotations
@@ -173,3 +175,113 @@ def _check_whole(profile: ChainProfile, path: str) -> None:
             path, "reconstruction.fir_taps", "got taps summing to 0; expected a non-zero sum"
         )
     _check_pwm_timing(profile, path)
+
+
+def _check_fixed_point(profile: ChainProfile, table: dict, path: str) -> None:
+    """Rules of the [fixed_point] section that involve the modulator."""
+    fp, mod = profile.fixed_point, profile.modulator
+    if not fp.active:
+        for key in table:
+            if key != "state_integer_bits":
+                raise ProfileError(
+                    path,
+                    f"fixed_point.{key}",
+                    "applies only with fixed_point.state_integer_bits (one entry per state)",
+                )
+        return
+    order = len(mod.zeros) if mod.explicit_ntf else mod.order
+    for key in ("state_integer_bits", "state_fraction_bits", "state_rounding", "state_overflow"):
+        got = len(getattr(fp, key))
+        if got != order and (got or key in ("state_integer_bits", "state_fraction_bits")):
+            raise ProfileError(
+                path,
+                f"fixed_point.{key}",
+                f"got {got} entries; expected {order}, one per state of the order-{order} loop",
+            )
+    if mod.structure != "feedback":
+        raise ProfileError(
+            path,
+            "modulator.structure",
+            f"got {mod.structure!r} with a [fixed_point] section; expected 'feedback' (the "
+            "fixed-point loop is the feedback structure)",
+        )
+    if mod.dither_lsb != 0.0:
+        raise ProfileError(
+            path,
+            "modulator.dither_lsb",
+            f"got {mod.dither_lsb!r} with a [fixed_point] section; expected 0 (the "
+            "fixed-point loop has no dither)",
+        )
+    m = (mod.levels - 1).bit_length() - 1
+    if mod.levels != 2 and (mod.levels - 1 != 1 << m or m > 16):
+        raise ProfileError(
+            path,
+            "modulator.levels",
+            f"got {mod.levels} with a [fixed_point] section; expected 2 or 2**m + 1 "
+            "(3, 5, 9, 17, ...), levels on a binary grid",
+        )
+
+
+#: Most levels a DAC built from unit elements may have (stages/elements.py: MAX_ELEMENTS + 1).
+_MAX_ELEMENT_LEVELS = 1025
+
+
+def _check_impairments(profile: ChainProfile, path: str) -> None:
+    """Rules of the [impairments] section that involve the output stage."""
+    imp, kind = profile.impairments, profile.output.kind
+    element = imp.element_mismatch > 0.0 or imp.element_selection != "thermometer"
+    if element and kind != "nrz":
+        key = "element_mismatch" if imp.element_mismatch > 0.0 else "element_selection"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            f"applies only to unit elements (output.kind = 'nrz'); this profile has {kind!r}",
+        )
+    if element and profile.modulator.levels > _MAX_ELEMENT_LEVELS:
+        raise ProfileError(
+            path,
+            "modulator.levels",
+            f"got {profile.modulator.levels} with unit-element impairments; expected 3 to "
+            f"{_MAX_ELEMENT_LEVELS} (one element per step)",
+        )
+    jitter = imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0
+    if jitter and kind == "pwm":
+        key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
+        )
+    if (imp.jitter_sine_peak_s > 0.0) != (imp.jitter_sine_hz > 0.0):
+        key = "jitter_sine_hz" if imp.jitter_sine_peak_s > 0.0 else "jitter_sine_peak_s"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "got 0; expected jitter_sine_peak_s and jitter_sine_hz to be given together",
+        )
+    if imp.supply_ripple > 0.0 and kind != "pwm":
+        raise ProfileError(
+            path,
+            "impairments.supply_ripple",
+            f"applies only to a class-D stage (output.kind = 'pwm'); this profile has {kind!r}",
+        )
+    if imp.supply_ripple > 0.0 and profile.output.dead_time_ticks > 0:
+        raise ProfileError(
+            path,
+            "impairments.supply_ripple",
+            "got a ripple with output.dead_time_ticks > 0; expected no dead time (the "
+            "dead-time loop does not model the supply yet)",
+        )
+    if (imp.supply_ripple > 0.0) != (imp.supply_ripple_hz > 0.0):
+        key = "supply_ripple_hz" if imp.supply_ripple > 0.0 else "supply_ripple"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "got 0; expected supply_ripple and supply_ripple_hz to be given together",
+        )
+    if imp.noise_corner_hz > 0.0 and imp.noise_density_nv == 0.0:
+        raise ProfileError(
+            path,
+            "impairments.noise_corner_hz",
+            f"got {imp.noise_corner_hz!r} with no noise; expected impairments.noise_density_nv",
+        )

@@ -31,6 +31,7 @@ def _transparent(bits):
     return profile_from_dict(
         {
             "name": f"transparent-{bits}bit",
+            "input": {"requantize": "off"},  # the quantizer alone: a float source
             "upsampler": {"osr": 16},
             "modulator": {
                 "zeros": [0.0],
@@ -96,6 +97,7 @@ def test_multibit_dynamic_range_agrees_with_linear_model():
     prof = profile_from_dict(
         {
             "name": "nrz17",
+            "input": {"requantize": "off"},  # the loop alone: a float source
             "modulator": {"order": 4, "levels": 17, "out_of_band_gain": 2.5},
             "output": {"kind": "nrz"},
         }
@@ -103,9 +105,10 @@ def test_multibit_dynamic_range_agrees_with_linear_model():
     res = run_battery(prof, tests=("dynamic_range",), plan=BatteryPlan.quick())
     from audiodsm.design.ntf import NoiseTransfer
 
-    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5)
     chain = Chain.from_profile(prof, RATE, 1)
     fm = 64 * RATE
+    # the zeros are optimized over 0..20 kHz (modulator.zero_band_edge_hz)
+    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5, zero_band_edge=20000.0 / fm)
     expected = ntf.linear_sqnr_db(levels=17, osr=fm / (2 * 20000.0)) + 20 * math.log10(
         chain.input_scale
     )
@@ -365,6 +368,7 @@ def test_digitally_silent_idle_output_reports_the_numeric_floor():
     silent = profile_from_dict(
         {
             "name": "silent-nrz9",
+            "input": {"requantize": "off"},  # exact digital silence in
             "modulator": {"order": 2, "levels": 9, "zero_layout": "dc"},
             "output": {"kind": "nrz"},
         }
@@ -488,7 +492,7 @@ def test_linear_noise_floor_is_the_undithered_share_of_the_tpdf_error():
 def test_impossible_thd_n_is_called_so():
     # A THD+N whose noise lies far under the chain's own floor, or under the simulation's
     # float64 floor, is not a reading: the sweep point says why.
-    from audiodsm.evaluate.battery import _sweep_reason
+    from audiodsm.evaluate.battery_assembly import _sweep_reason
 
     floor = {"unweighted": -110.0, "a": -112.0, "ccir": -108.0}
     point = {

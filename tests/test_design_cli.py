@@ -149,7 +149,10 @@ def test_design_writes_a_profile_and_a_summary(tmp_path):
         2.5,
     )
     assert prof.output.kind == "nrz"
-    ntf = NoiseTransfer.designed(4, osr=64, out_of_band_gain=2.5)
+    # the chain places the spread zeros for 20 kHz (modulator.zero_band_edge_hz)
+    ntf = NoiseTransfer.designed(
+        4, osr=64, out_of_band_gain=2.5, zero_band_edge=20000.0 / (64 * RATE)
+    )
     assert record["ntf_out_of_band_gain"] == pytest.approx(ntf.out_of_band_gain(), rel=1e-9)
     assert record["linear_sqnr_db"] == pytest.approx(
         ntf.linear_sqnr_db(levels=9, osr=64 * RATE / 40000.0), abs=1e-9

@@ -222,3 +222,32 @@ def test_unchecked_path_gives_the_same_bits(rng):
     assert np.array_equal(checked, unchecked)
     with pytest.raises(ParameterError, match="NaN or Inf"):
         dn.process(np.full(100, np.nan))
+
+
+# ---------------------------------------------------------------------------------------------
+# the rational stage's images are copies of the signal: held far below any chain's noise
+# ---------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("rate_out", [96000, 48000, 192000])
+def test_rate_change_adds_no_signal_proportional_floor(rate_out):
+    # A -1 dBFS 997 Hz sine synthesized at 64 x 44.1 kHz, decimated to another family's rate.
+    # The rational stage's images (k x 176.4 kHz +- 997 Hz) fold into the audio band; at the
+    # alias spec's 110 dB they read THD+N -122.8 dB at 96 kHz. Reference: the same sine
+    # synthesized at the output rate, fitted and removed by measure.tone (a 3-parameter
+    # least-squares fit, IEEE 1057); what is left must be below -155 dB.
+    from audiodsm.measure.tone import thd_plus_noise
+    from audiodsm.stages.downsample import RATIONAL_IMAGE_ATTEN_DB
+
+    fm = 44100 * 64
+    x = 10 ** (-1 / 20) * np.sin(2 * np.pi * AES17_TONE_HZ * np.arange(int(1.2 * fm)) / fm)
+    d = design_downsampler(fm, rate_out, passband_hz=PASSBAND_HZ)
+    assert d.rational_taps.size  # the path with a rational stage
+    y, _ = Downsampler(d).process(x)
+    settled = y[int(0.1 * rate_out) :]
+    assert thd_plus_noise(settled, rate_hz=rate_out, frequency_hz=AES17_TONE_HZ).ratio_db < -155.0
+    # the image bands themselves, on the rational stage's own grid: the Kaiser stopband
+    fu = d.rational_up * (fm / 2 ** len(d.halfband_taps))
+    f = np.linspace(min(rate_out, fu / d.rational_up) - PASSBAND_HZ, fu / 2, 20001)
+    _, h = signal.freqz(d.rational_taps / d.rational_up, worN=f, fs=fu)
+    assert -20 * np.log10(np.max(np.abs(h))) > RATIONAL_IMAGE_ATTEN_DB

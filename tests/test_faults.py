@@ -191,7 +191,7 @@ def test_outputs_follow_the_umask(tmp_path, umask_022):
     entry = cache.store("k" * 64, {"metrics": {"m": 1.0}, "curves": {}, "notes": (), "seconds": 1})
     for path in (wav, txt, tmp_path / "b.flac", entry):
         assert mode(path) == 0o644, path
-    from audiodsm.stages.output_stage import write_packed_bits
+    from audiodsm.stages.stream_export import write_packed_bits
 
     write_packed_bits(tmp_path / "bits.raw", np.ones(64), rate_hz=3072000.0)
     assert mode(tmp_path / "bits.raw") == 0o644

@@ -762,3 +762,41 @@ def test_unstable_profile_fails_every_target_with_the_reason(tmp_path):
     r = run_cli([str(UNSTABLE), "--spec", str(spec), "--short", "--no-cache", "--jobs", "1",
                  "--no-progress"])  # fmt: skip
     assert "FAIL: invalid: loop overloaded from" in r.output
+
+
+def test_known_answer_grade_of_a_16_bit_source(tmp_path):
+    # A 16-bit source with TPDF dither through a chain far cleaner than 16 bits: its dynamic
+    # range is the dither's, 10 log10((1/2) / (LSB^2/4 * (20 kHz - 20 Hz) / (rate/2))) with
+    # LSB = 2^-15 (TPDF of 2 LSB peak to peak adds LSB^2/6 to the rounding's LSB^2/12:
+    # Lipshitz, Wannamaker & Vanderkooy 1992, JAES 40(5)). The real battery graded against
+    # limits 0.2 dB either side of it must pass the lower and fail the upper.
+    from audiodsm.evaluate.battery import DEFAULT_RATE_HZ, BatteryPlan
+
+    pdir = tmp_path / "profiles"
+    pdir.mkdir()
+    (pdir / "source16.toml").write_text(
+        '[input]\nsource_bits = 16\nrequantize = "tpdf"\n'
+        "[modulator]\norder = 5\nlevels = 65\nout_of_band_gain = 3.0\n"
+        '[output]\nkind = "nrz"\n[reconstruction]\nkind = "none"\n'
+    )
+    rate = DEFAULT_RATE_HZ
+    lsb = 2.0**-15
+    theory = 10 * math.log10(0.5 / (lsb**2 / 4 * (20000.0 - 20.0) / (rate / 2)))
+    assert theory == pytest.approx(94.12, abs=0.01)  # at 48 kHz; 93.75 dB at 44.1 kHz
+    options = {"plan": dataclasses.replace(BatteryPlan.quick(), tone_s=2.0)}
+    options["tests"] = ("dynamic_range",)
+    grades = {}
+    for name, limit in (("below", theory - 0.2), ("above", theory + 0.2)):
+        sheet = parse_spec(f'[[target]]\nmetric = "dynamic_range_db"\nat_least = {limit!r}\n')
+        batch = grade_batch(
+            collect_profiles([pdir]),
+            sheet,
+            jobs=1,
+            cache_dir=tmp_path / "cache",
+            battery_options=options,
+        )
+        (grades[name],) = batch.grades
+    measured = grades["below"].metrics["dynamic_range_db"]
+    assert measured == pytest.approx(theory, abs=0.2)
+    assert grades["below"].passed and not grades["above"].passed
+    assert grades["above"].cached  # the spec is applied to the cached battery

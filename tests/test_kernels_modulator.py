@@ -13,7 +13,7 @@ from audiodsm.stages.modulator import _kernel_key
 
 MASK = (1 << 64) - 1
 GOLDEN = 0x9E3779B97F4A7C15
-CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
+CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2, "feedforward-feed-in": 3}
 
 
 def unit_from_counter(counter):
@@ -48,8 +48,8 @@ def twin(u, coef, state, counter, peaks, count, structure, levels, dscale, ib, s
     for ut in map(float, u):
         if structure == 0:
             y = x[-1]
-        elif structure == 1:
-            y = 0.0
+        elif structure in (1, 3):  # 3: feedforward with the input fed to the quantizer
+            y = ut if structure == 3 else 0.0
             for i in range(n):
                 y = y + c[i] * x[i]
         else:
@@ -358,3 +358,38 @@ def test_second_order_loop_equals_the_c_reference_loop():
     got = run_kernel(_kernel_key(exact), exact, np.array(u), 2, 0.0, 8.0, 1e6, True, [0.0, 0.0])
     np.testing.assert_array_equal(got[0], expected)
     np.testing.assert_array_equal(got[1], [s1, s2])
+
+
+@pytest.mark.parametrize(("order", "kind"), [(1, "designed"), (2, "designed"), (5, "scaled")])
+def test_feed_in_kernels_equal_python_twin(order, kind, rng):
+    ntf = NoiseTransfer.designed(order, osr=32, out_of_band_gain=1.7)
+    loop = LoopRealization.for_ntf(ntf, structure="feedforward", input_feed_in=True)
+    if kind == "scaled":
+        loop = loop.rescaled(rng.uniform(0.5, 4.0, order))
+    key = _kernel_key(loop)
+    assert key[0] == "feedforward-feed-in"
+    u = 0.5 * np.sin(np.arange(300) * 0.05) + 0.05 * rng.standard_normal(300)
+    start = 0.01 * rng.standard_normal(order)
+    code = CODES["feedforward-feed-in"]
+    for levels, dither, ib, sb, reset in CASES:
+        dscale = dither * 2.0 / (levels - 1)
+        args = (levels, dscale, ib, sb, reset)
+        expected = twin(u, coefficients(loop), start, 12345, np.zeros(order), 0, code, *args)
+        for fast in (False, key):
+            if fast is False:
+                # the generic loop, told the feed-in code
+                n = loop.order
+                out, st = np.empty(len(u)), np.array(start, dtype=float)
+                rng_c, pk = np.array([12345], dtype=np.uint64), np.zeros(n)
+                cnt, tr = np.zeros(1, dtype=np.int64), np.empty((len(u), n))
+                _kernels.loop_any_structure(
+                    u, out, coefficients(loop), st, rng_c, pk, cnt, code, *args, tr
+                )
+                got = (out, st, int(rng_c[0]), pk, int(cnt[0]))
+            else:
+                got = run_kernel(fast, loop, u, *args, start)
+            np.testing.assert_array_equal(got[0], expected[0])
+            np.testing.assert_array_equal(got[1], expected[1])
+            assert got[2] == expected[2]
+            np.testing.assert_array_equal(got[3], expected[3])
+            assert got[4] == expected[4]

@@ -609,3 +609,59 @@ def test_from_dict_rejects_bad_input(data, name):
     with pytest.raises(ParameterError) as err:
         NoiseTransfer.from_dict(data)
     assert err.value.name == name
+
+
+# --------------------------------------------------------------------------------------------
+# zeros optimized over a band narrower than the signal band (the band a product is judged in)
+
+
+@pytest.mark.parametrize("order", [4, 5, 7])
+def test_zeros_for_a_band_edge_are_the_legendre_roots_for_that_edge(order):
+    # A 96 kHz input at OSR 64 judged over 0..20 kHz: edge B = 20 kHz / 6.144 MHz.
+    osr, rate_hz = 64, 96000 * 64
+    edge = 20000.0 / rate_hz
+    ntf = NoiseTransfer.designed(order, osr=osr, zero_band_edge=edge)
+    assert ntf.zero_band_edge == edge
+    # S&T ch. 4: the optimal zeros are the Legendre roots scaled to the band edge. Against
+    # numpy.polynomial.legendre directly, in Hz: every zero lies in the 20 kHz band.
+    roots = legendre.legroots([0] * order + [1])
+    want_hz = np.sort(roots[roots > -1e-12]) * 20000.0
+    np.testing.assert_allclose(ntf.notch_frequencies() * rate_hz, want_hz, atol=1e-6)
+    assert np.all(np.abs(np.abs(ntf.zeros) - 1.0) < 1e-12)
+    # The placement for the default edge 0.5/osr reaches 48 kHz, above the judged band.
+    assert NoiseTransfer.designed(order, osr=osr).notch_frequencies()[-1] * rate_hz > 30000.0
+    # Round trip keeps the edge.
+    assert NoiseTransfer.from_dict(ntf.to_dict()).zero_band_edge == edge
+
+
+@pytest.mark.parametrize("order", [3, 5, 7])
+def test_band_edge_zeros_give_the_published_improvement_over_20khz(order):
+    # In-band noise over 0..20 kHz: zeros for B = 20 kHz against all zeros at DC. S&T ch. 4
+    # table (whole dB, from memory) and the A&S closed form k_n^2; as in
+    # test_designed_improvement_matches_closed_form the different poles add
+    # 20log10(|A_opt(1)| / |A_dc(1)|), and the small-angle error is tiny at an effective OSR of
+    # 153.6.
+    osr, rate_hz = 64, 96000 * 64
+    band_osr = rate_hz / (2 * 20000.0)
+    dc = NoiseTransfer.designed(order, osr=osr, zero_layout="dc")
+    opt = NoiseTransfer.designed(order, osr=osr, zero_band_edge=20000.0 / rate_hz)
+    got_db = 10 * math.log10(
+        dc.in_band_noise_fraction(band_osr) / opt.in_band_noise_fraction(band_osr)
+    )
+    pole_term = 20 * math.log10(abs(opt.polynomials()[1].sum() / dc.polynomials()[1].sum()))
+    assert got_db == pytest.approx(_legendre_improvement_db(order) + pole_term, abs=0.02)
+    # the book table as a rounded value, as in the table test above
+    assert abs(got_db - SNT_OPTIMAL_ZEROS[order][1]) < TABLE_DB_STEP.get(order, 1.0)
+    # ... and the zeros placed for 48 kHz (the old default) leave far more noise in 20 kHz.
+    wide = NoiseTransfer.designed(order, osr=osr)
+    assert wide.in_band_noise_fraction(band_osr) > 10 * opt.in_band_noise_fraction(band_osr)
+
+
+def test_zero_band_edge_is_checked():
+    for bad in (0.0, -1e-3, 0.5 / 64 * 1.001, math.nan, "x"):
+        with pytest.raises(ParameterError, match="zero_band_edge"):
+            NoiseTransfer.designed(5, osr=64, zero_band_edge=bad)
+    # the signal band edge itself is the default, bit for bit
+    a = NoiseTransfer.designed(5, osr=64, zero_band_edge=0.5 / 64)
+    b = NoiseTransfer.designed(5, osr=64)
+    assert np.array_equal(a.zeros, b.zeros) and np.array_equal(a.poles, b.poles)

@@ -10,13 +10,15 @@ from hypothesis import strategies as st
 
 from audiodsm.errors import AudioFileError, OutputError, ParameterError
 from audiodsm.stages.output_stage import (
-    CodeTextWriter,
-    PackedBitsWriter,
     PulseWaveform,
     level_codes,
     nrz_waveform,
     pdm_waveform,
     pwm_waveform,
+)
+from audiodsm.stages.stream_export import (
+    CodeTextWriter,
+    PackedBitsWriter,
     read_code_text,
     read_packed_bits,
     write_code_text,
@@ -81,7 +83,7 @@ def test_waveform_checks_its_shape():
 
 def _slow_pwm(codes, steps, *, mode, carrier, bridge, sub, dead, min_ticks, action, volts):
     """Counter comparison tick by tick, written from the definitions in the docstring: the
-    slow twin of the compiled kernel ``_kernels.pwm_segments`` (and of the code-level
+    slow twin of the compiled kernel ``_waveform_kernels.pwm_segments`` (and of the code-level
     minimum-pulse rule around it).
 
     Trailing edge: a leg is high while the sawtooth counter (counter step = tick // sub) is

@@ -138,3 +138,41 @@ def test_bad_input():
         loop.rescaled([1.0, 1.0])
     with pytest.raises(ParameterError, match="peak_target"):
         loop.rescaled([1.0, 1.0, 1.0], peak_target=-1)
+
+
+# --------------------------------------------------------------------------------------------
+# feedforward loop with the input fed straight to the quantizer
+
+
+@pytest.mark.filterwarnings("ignore::scipy.signal.BadCoefficients")
+@pytest.mark.parametrize("order", [2, 3, 5])
+def test_feed_in_signal_transfer_is_one_and_ntf_unchanged(order):
+    ntf = NoiseTransfer.designed(order, osr=64, out_of_band_gain=1.5)
+    loop = LoopRealization.for_ntf(ntf, structure="feedforward", input_feed_in=True)
+    assert loop.input_feed_in and loop.direct_input == 1.0
+    ss = loop.linearized()
+    f = np.linspace(0.0, 0.5, 60)
+    # Outside check: scipy.signal.dlti on the closed-loop state space gives STF = 1 at every
+    # frequency (input into the first integrator cancels the fed-back signal part exactly).
+    acl = ss.closed_transition()
+    b_sig = (ss.input_entry + ss.feedback_entry * ss.input_direct)[:, None]
+    assert np.all(b_sig == 0.0)
+    sys_sig = signal.dlti(acl, b_sig, ss.quantizer_tap[None, :], [[ss.input_direct]], dt=1)
+    _, h = sys_sig.freqresp(2 * np.pi * f)
+    np.testing.assert_allclose(h, 1.0, atol=1e-12)
+    np.testing.assert_allclose(ss.signal_response(f), 1.0, atol=1e-12)
+    # the NTF is the plain feedforward loop's
+    back = loop.realized_ntf()
+    assert np.max(np.abs(back.response(GRID) / ntf.response(GRID) - 1)) < 1e-9
+    # scaling keeps the cancellation
+    scaled = loop.rescaled(np.arange(1.0, order + 1.0) * 3.0)
+    ls = scaled.linearized()
+    assert np.all(ls.input_entry + ls.feedback_entry * ls.input_direct == 0.0)
+
+
+def test_feed_in_only_for_feedforward():
+    ntf = NoiseTransfer.designed(3, osr=64)
+    for structure in ("feedback", "error-feedback"):
+        with pytest.raises(ParameterError, match="input_feed_in"):
+            LoopRealization.for_ntf(ntf, structure=structure, input_feed_in=True)
+    assert not LoopRealization.for_ntf(ntf, structure="feedforward").input_feed_in

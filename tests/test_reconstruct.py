@@ -7,7 +7,7 @@ import pytest
 import scipy.signal as ss
 
 from audiodsm.errors import ParameterError
-from audiodsm.stages import _kernels
+from audiodsm.stages import _waveform_kernels
 from audiodsm.stages import reconstruct as rec
 from audiodsm.stages.filter_design import (
     AnalogFilter,
@@ -188,7 +188,7 @@ def test_physical_state_of_lc_at_rest_after_dc():
 
 
 def _slow_segments(levels, ticks, phis, gammas, wx, wu, x):
-    """Slow twin of _kernels.frame_means_segments (same operation order)."""
+    """Slow twin of _waveform_kernels.frame_means_segments (same operation order)."""
     x = list(x)
     m = len(x)
     y = []
@@ -220,7 +220,7 @@ def test_frame_means_kernel_equals_slow_twin(rng):
     x = np.array([0.1, -0.2])
     y = np.empty(40)
     ref_y, ref_x = _slow_segments(wave.levels, wave.ticks, phis, gammas, wx, wu, x.copy())
-    _kernels.frame_means_segments(wave.levels, wave.ticks, phis, gammas, wx, wu, x, y)
+    _waveform_kernels.frame_means_segments(wave.levels, wave.ticks, phis, gammas, wx, wu, x, y)
     np.testing.assert_array_equal(y, ref_y)
     np.testing.assert_array_equal(x, ref_x)
 

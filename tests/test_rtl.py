@@ -81,7 +81,7 @@ def _shipped_fixed_point_profiles():
     root = Path(__file__).resolve().parents[1] / "profiles"
     found = []
     for path in sorted(root.glob("*/*.toml")):
-        if path.parent.name == "specs":
+        if path.parent.name in ("specs", "spaces"):  # spec sheets and design spaces
             continue
         profile = load_profile(path)
         if profile.fixed_point.active:

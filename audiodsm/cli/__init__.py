@@ -162,6 +162,10 @@ class _LazyGroup(click.Group):
         except StopSignal as exc:  # raised outside click's own handling
             click.echo(f"audiodsm: stopped by {signal.Signals(exc.signal_number).name}", err=True)
             sys.exit(exit_code_for_signal(exc.signal_number))
+        finally:
+            chain = sys.modules.get("audiodsm.stages.chain")
+            if chain is not None:  # no idle worker thread may keep the process from ending
+                chain.release_worker_threads()
         sys.exit(result if isinstance(result, int) else 0)
 
 

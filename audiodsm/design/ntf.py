@@ -69,6 +69,8 @@ class NoiseTransfer:
     zero_layout : str or None
         ``"spread"`` (zeros at the optimal in-band positions) or ``"dc"`` (all at DC) for a
         design; None for a user NTF.
+    zero_band_edge : float or None
+        Band edge (cycles per sample) the spread zeros were placed for; None for a user NTF.
 
     Notes
     -----
@@ -82,6 +84,7 @@ class NoiseTransfer:
     osr: float | None = None
     out_of_band_gain_target: float | None = None
     zero_layout: str | None = None
+    zero_band_edge: float | None = None
 
     def __post_init__(self):
         for name in ("zeros", "poles"):
@@ -312,7 +315,8 @@ class NoiseTransfer:
         -------
         dict
             Keys ``order``, ``zeros``, ``poles``, ``gain`` and, for designed NTFs, ``osr``,
-            ``out_of_band_gain_target``, ``zero_layout``. :meth:`from_dict` reads it back.
+            ``out_of_band_gain_target``, ``zero_layout``, ``zero_band_edge``. :meth:`from_dict`
+            reads it back.
         """
         out = {
             "order": self.order,
@@ -320,7 +324,7 @@ class NoiseTransfer:
             "poles": [[float(v.real), float(v.imag)] for v in self.poles],
             "gain": self.gain,
         }
-        for key in ("osr", "out_of_band_gain_target", "zero_layout"):
+        for key in ("osr", "out_of_band_gain_target", "zero_layout", "zero_band_edge"):
             value = getattr(self, key)
             if value is not None:
                 out[key] = value
@@ -335,7 +339,7 @@ class NoiseTransfer:
         data : dict
             Must hold ``zeros`` and ``poles`` (lists of ``[real, imag]`` pairs or of real
             numbers); may hold ``gain``, ``order`` (checked against the pole count), ``osr``,
-            ``out_of_band_gain_target`` and ``zero_layout``.
+            ``out_of_band_gain_target``, ``zero_layout`` and ``zero_band_edge``.
 
         Raises
         ------
@@ -353,6 +357,7 @@ class NoiseTransfer:
             "osr",
             "out_of_band_gain_target",
             "zero_layout",
+            "zero_band_edge",
         }
         unknown = sorted(set(data) - allowed)
         if unknown:
@@ -378,6 +383,11 @@ class NoiseTransfer:
             if layout not in ZERO_LAYOUTS:
                 raise ParameterError("zero_layout", layout, _LAYOUT_EXPECTED)
             extra["zero_layout"] = layout
+        edge = data.get("zero_band_edge")
+        if edge is not None:
+            extra["zero_band_edge"] = _check_real(
+                "zero_band_edge", edge, low=0.0, low_open=True, high=0.5, expected="0 < edge <= 0.5"
+            )
         return cls(ntf.zeros, ntf.poles, ntf.gain, **extra)
 
     # -----------------------------------------------------------------------------------------
@@ -468,7 +478,13 @@ class NoiseTransfer:
 
     @classmethod
     def designed(
-        cls, order: int, *, osr: float, out_of_band_gain: float = 1.5, zero_layout: str = "spread"
+        cls,
+        order: int,
+        *,
+        osr: float,
+        out_of_band_gain: float = 1.5,
+        zero_layout: str = "spread",
+        zero_band_edge: float | None = None,
     ) -> NoiseTransfer:
         """Design a low-pass-band NTF with a bounded out-of-band gain.
 
@@ -484,23 +500,29 @@ class NoiseTransfer:
         zero_layout : {"spread", "dc"}, keyword-only
             Spread the zeros over the band at the optimal positions (``"spread"``, see
             :meth:`spread_zero_fractions`) or put them all at DC (``"dc"``).
+        zero_band_edge : float, keyword-only
+            Edge of the band the spread zeros are optimized over, in cycles per sample, at most
+            the signal band edge 0.5/osr (the default). A product judged over 0..20 kHz whose
+            modulator runs faster than 40 kHz x osr gives the 20 kHz edge here, so no zero pair
+            lands above the band it is judged in. Ignored for ``zero_layout="dc"``.
 
         Returns
         -------
         NoiseTransfer
-            Causal (NTF(inf) = 1), with ``osr``, ``out_of_band_gain_target`` and
-            ``zero_layout`` recorded.
+            Causal (NTF(inf) = 1), with ``osr``, ``out_of_band_gain_target``,
+            ``zero_layout`` and ``zero_band_edge`` recorded.
 
         Raises
         ------
         ParameterError
             Order outside 1..8, OSR outside 4..1024, out_of_band_gain <= 1, an unknown
-            zero_layout, or a gain this pole family cannot reach for the order and OSR (the
-            message gives the reachable range).
+            zero_layout, a zero_band_edge outside (0, 0.5/osr], or a gain this pole family
+            cannot reach for the order and OSR (the message gives the reachable range).
 
         Notes
         -----
-        Zeros: all at z = 1, or at exp(+-j x_i pi/osr) with x_i the roots of the Legendre
+        Zeros: all at z = 1, or at exp(+-j 2 pi x_i f_b) (f_b the zero band edge, 0.5/osr by
+        default) with x_i the roots of the Legendre
         polynomial of the order (odd orders keep one zero at DC) [1]_.
 
         Poles: the poles of a digital Butterworth (maximally flat) high-pass of the order,
@@ -532,7 +554,17 @@ class NoiseTransfer:
         )
         if not isinstance(zero_layout, str) or zero_layout not in ZERO_LAYOUTS:
             raise ParameterError("zero_layout", zero_layout, _LAYOUT_EXPECTED)
-        zeros = _zeros_for(order, osr, zero_layout)
+        edge = None
+        if zero_band_edge is not None and zero_band_edge != 0.5 / osr:
+            edge = _check_real(
+                "zero_band_edge",
+                zero_band_edge,
+                low=0.0,
+                low_open=True,
+                high=0.5 / osr,
+                expected=f"a frequency above 0 and at most 0.5/osr = {0.5 / osr:.6g} cycles/sample",
+            )
+        zeros = _zeros_for(order, osr, zero_layout, edge)
 
         def excess(log_t, refine=True):
             ntf = cls(zeros, _butterworth_highpass_poles(order, math.exp(log_t)))
@@ -569,6 +601,7 @@ class NoiseTransfer:
                     osr=osr,
                     out_of_band_gain_target=target,
                     zero_layout=zero_layout,
+                    zero_band_edge=0.5 / osr if edge is None else edge,
                 )
             prev_x, prev_v = x, v
         placement = "zeros spread over the band" if zero_layout == "spread" else "zeros at DC"
@@ -673,10 +706,15 @@ def _symmetrize(roots, name):
 # design helpers
 
 
-def _zeros_for(order, osr, zero_layout):
+def _zeros_for(order, osr, zero_layout, edge=None):
+    """Zeros at DC, or at the Legendre roots scaled to the band edge (cycles/sample).
+
+    ``edge`` None is the signal band edge 0.5/osr (computed as pi/osr radians, as always).
+    """
     if zero_layout == "dc":
         return np.ones(order, dtype=complex)
-    pos = NoiseTransfer.spread_zero_fractions(order) * np.pi / osr  # radians per sample
+    edge_rad = np.pi / osr if edge is None else 2.0 * np.pi * edge
+    pos = NoiseTransfer.spread_zero_fractions(order) * edge_rad  # radians per sample
     zeros = []
     for w in pos:
         if w == 0.0:

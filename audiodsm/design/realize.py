@@ -11,7 +11,12 @@ where the quantizer output ``v`` re-enters and what drives the quantizer:
     ``b[0]``.
 ``"feedforward"``
     ``v`` is subtracted at the first integrator only; the quantizer reads a weighted sum of all
-    integrator states, ``y = sum(c[i] * x[i])``; the input enters the first integrator.
+    integrator states, ``y = sum(c[i] * x[i])``; the input enters the first integrator. With
+    the input feed-in (``input_feed_in=True``) the input also goes straight to the quantizer,
+    ``y = u + sum(c[i] * x[i])``, and enters the first integrator with the same weight as the
+    fed-back ``v``, so the first integrator integrates ``u - v``: the signal transfer is exactly
+    1 and the integrators carry only shaped quantization noise, not the signal (the
+    "low-distortion" feedforward loop).
 ``"error-feedback"``
     The input goes straight to the quantizer, ``y = u + x[n-1]``; the quantization error
     ``e = v - y`` drives the chain through the combination ``t = x[n-1] + e`` (which equals
@@ -139,7 +144,8 @@ class LoopRealization:
     output_weight : ndarray
         ``c``: quantizer-input weights (``c = (0, ..., 0, 1)`` for feedback and error feedback).
     direct_input : float
-        Input straight to the quantizer: 1.0 for error feedback, else 0.0.
+        Input straight to the quantizer: 1.0 for error feedback and for a feedforward loop
+        with the input feed-in, else 0.0.
     state_scale : ndarray
         Factor each state was divided by in scaling (all ones when unscaled).
     """
@@ -328,8 +334,15 @@ class LoopRealization:
             state_scale=self.state_scale * s,
         )
 
+    @property
+    def input_feed_in(self) -> bool:
+        """True for a feedforward loop whose input also goes straight to the quantizer."""
+        return self.structure == "feedforward" and self.direct_input != 0.0
+
     @classmethod
-    def for_ntf(cls, ntf: NoiseTransfer, *, structure: str = "feedback") -> LoopRealization:
+    def for_ntf(
+        cls, ntf: NoiseTransfer, *, structure: str = "feedback", input_feed_in: bool = False
+    ) -> LoopRealization:
         """Compute the coefficients of a loop that realizes ``ntf`` exactly.
 
         Parameters
@@ -338,12 +351,17 @@ class LoopRealization:
             The noise transfer function (order 1..8, causal, poles inside the unit circle).
         structure : str, keyword-only
             One of ``STRUCTURES``: ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
+        input_feed_in : bool, keyword-only
+            Feedforward only: feed the input straight to the quantizer as well
+            (``direct_input = 1``, ``input_gain[0] = feedback[0]``), so the signal transfer is
+            1 at every frequency and no integrator carries the signal.
 
         Returns
         -------
         LoopRealization
             Unscaled coefficients. The signal transfer at DC is exactly 1 (the input gain is solved
-            for it); for ``"error-feedback"`` the signal transfer is 1 at every frequency.
+            for it); for ``"error-feedback"`` and a feedforward loop with the input feed-in the
+            signal transfer is 1 at every frequency.
 
         Notes
         -----
@@ -365,6 +383,10 @@ class LoopRealization:
         """
         if structure not in STRUCTURES:
             raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")
+        if not isinstance(input_feed_in, bool) or (input_feed_in and structure != "feedforward"):
+            raise ParameterError(
+                "input_feed_in", input_feed_in, "True only with structure 'feedforward', or False"
+            )
         if not isinstance(ntf, NoiseTransfer):
             raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer")
         n = ntf.order
@@ -437,6 +459,10 @@ class LoopRealization:
         unknowns = np.linalg.solve(np.array(cols).T, target[1:] - p0[1:])
         loop = with_unknowns(unknowns)
 
+        if input_feed_in:
+            # x[0] integrates b0 u - a0 v with b0 = a0 = 1: the input cancels the signal part of
+            # v, so the states see only shaped noise and v = u + (noise), STF = 1 exactly.
+            return replace(loop, direct_input=1.0)
         if structure != "error-feedback":
             if structure == "feedback":
                 loop = replace(loop, input_gain=np.eye(n)[0])

@@ -268,13 +268,18 @@ def predicted_range_with_dither_db(profile, *, weighting: str = "unweighted") ->
     from audiodsm.evaluate.search import _input_scale, predicted_dynamic_range_db
 
     mod = profile.modulator
+    rate = battery_rate_hz(profile) * profile.upsampler.osr
+    # the zeros where the chain puts them: optimized over 0..zero_band_edge_hz (capped at half
+    # the audio rate)
+    edge_hz = mod.zero_band_edge_hz
+    edge = edge_hz / rate if edge_hz < 0.5 * battery_rate_hz(profile) else None
     ntf = NoiseTransfer.designed(
         mod.order,
         osr=profile.upsampler.osr,
         out_of_band_gain=mod.out_of_band_gain,
         zero_layout=mod.zero_layout,
+        zero_band_edge=edge,
     )
-    rate = battery_rate_hz(profile) * profile.upsampler.osr
     # the chain's own input scale (the dither takes headroom from the no-overload bound)
     scale = min(1.0, _input_scale(ntf, mod.levels, mod.dither_lsb))
     return predicted_dynamic_range_db(

@@ -173,7 +173,7 @@ def render_file(
     from audiodsm.profile import AUDIO_RATES_HZ
     from audiodsm.profile_text import profile_digest
     from audiodsm.stages.chain import Chain
-    from audiodsm.stages.output_stage import CodeTextWriter, PackedBitsWriter
+    from audiodsm.stages.stream_export import CodeTextWriter, PackedBitsWriter
 
     path = Path(input_path)
     info = audio_info(path)

@@ -338,11 +338,17 @@ def search_designs(
         key = (order, osr, g)
         if key not in designs:
             try:
+                # zeros for the band the chain will place them in (the profile's default
+                # modulator.zero_band_edge_hz, capped at half the audio rate), so the prediction
+                # is of the loop the written profile runs
+                edge_hz = ChainProfile().modulator.zero_band_edge_hz
+                edge = edge_hz / (osr * float(rate_hz)) if edge_hz < 0.5 * rate_hz else None
                 designs[key] = NoiseTransfer.designed(
                     order,
                     osr=osr,
                     out_of_band_gain=g,
                     zero_layout=zero_layout,
+                    zero_band_edge=edge,
                 )
             except ParameterError:
                 designs[key] = None  # this gain is out of reach for the order and OSR

@@ -4,7 +4,8 @@ Every function here is ``@njit(cache=True, nogil=True)`` without fastmath (reord
 change quantizer decisions). Kernels take contiguous float64/int arrays and scalars, write into
 caller-allocated output and state arrays, and validate nothing: the public wrappers in the stage
 modules validate, convert, allocate and call. Each kernel has a slow pure-Python twin in the
-tests. The rate converters' loops live apart, in :mod:`audiodsm.stages._rate_kernels`.
+tests. The rate converters' loops live apart, in :mod:`audiodsm.stages._rate_kernels`, and the
+output-stage and reconstruction-filter loops in :mod:`audiodsm.stages._waveform_kernels`.
 """
 
 from __future__ import annotations
@@ -101,7 +102,8 @@ def loop_any_structure(
     counts : int64 (1,)
         Running count of overload samples, updated in place.
     structure : int
-        0 feedback, 1 feedforward, 2 error feedback.
+        0 feedback, 1 feedforward, 2 error feedback, 3 feedforward with the input fed straight
+        to the quantizer too (``y = u + sum(c * x)``).
     levels : int
         Quantizer levels, 2 to 2**24 (16777216).
     dither_scale : float
@@ -135,8 +137,8 @@ def loop_any_structure(
         ut = u[t]
         if structure == 0:
             y = x[last]
-        elif structure == 1:
-            y = 0.0
+        elif structure == 1 or structure == 3:
+            y = ut if structure == 3 else 0.0
             for i in range(order):
                 y = y + coef[5, i] * x[i]
         else:
@@ -204,7 +206,7 @@ def loop_any_structure(
 # feedforward kernels assume, as LoopRealization.for_ntf builds them, that only the first integrator
 # receives the quantizer output.
 
-STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2}
+STRUCTURE_CODES = {"feedback": 0, "feedforward": 1, "error-feedback": 2, "feedforward-feed-in": 3}
 
 #: samples per block of a specialised loop (see loop_kernel_source): small enough that a block
 #: run again with the guard costs little, large enough that the per-block work does not show
@@ -239,7 +241,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     Parameters
     ----------
     structure : str
-        ``"feedback"``, ``"feedforward"`` or ``"error-feedback"``.
+        ``"feedback"``, ``"feedforward"``, ``"error-feedback"`` or ``"feedforward-feed-in"``
+        (feedforward with the input fed straight to the quantizer too).
     order : int
         1..8.
     lossless : bool
@@ -256,6 +259,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     """
     n = order
     code = STRUCTURE_CODES[structure]
+    feed_in = code == 3
+    code = 1 if feed_in else code  # feedforward but for the input at the quantizer
     lines = []
     add = lines.append
     xs = ", ".join(f"x{i}" for i in range(n))
@@ -306,7 +311,7 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
         if code == 0:
             return f"x{n - 1}"
         if code == 1:
-            y = "0.0"
+            y = "u[t]" if feed_in else "0.0"
             for i in range(n):
                 y = f"({y} + c{i} * x{i})"
             return y
@@ -530,503 +535,3 @@ def loop_kernel(structure, order, lossless, unit_chain, pairs):
         kernel = _LoopKernel(key)
         _LOOP_KERNELS[key] = kernel
     return kernel
-
-
-# ---------------------------------------------------------------------------------------------
-# Output stages (stages/output_stage.py)
-# ---------------------------------------------------------------------------------------------
-
-
-@njit(cache=True, nogil=True)
-def pwm_segments(
-    codes_a,
-    codes_b,
-    n_legs,
-    invert_b,
-    double_edge,
-    steps,
-    sub,
-    dead,
-    volts,
-    half_bridge,
-    run,
-    last,
-    levels,
-    ticks,
-    counts,
-):
-    """Build PWM frames: leg intervals from counter codes, dead time, merged segments.
-
-    Per frame and leg, the commanded high intervals (at most two) come from the code:
-    trailing edge ``[0, k sub)`` (or its complement ``[k sub, F)`` for an inverted leg);
-    double edge ``[c - k sub, c + k sub)`` about the centre ``c = steps sub`` (or the two
-    pieces outside it). Dead time: an interval's start moves to ``start + dead - elapsed``
-    (capped at its end), where ``elapsed`` is how long the command has already been high
-    (``run``, carried from the previous frame, for an interval starting at 0). The sorted
-    interval ends cut the frame into ``1 + 4 n_legs`` segments (zero-length ones included);
-    each segment's level is ``volts (2 A - 1)`` (half bridge) or ``volts (A - B)``.
-
-    ``codes_a``, ``codes_b``: (n,) int64; ``run``, ``last``: (n_legs,) int64 state, updated;
-    ``levels``: (n, S) float64 and ``ticks``: (n, S) int64 written; ``counts``: (3,) int64
-    incremented with [pulses lost to dead time, transitions of leg A, transitions of leg B].
-    """
-    n = codes_a.shape[0]
-    frame = steps * sub * (2 if double_edge else 1)
-    centre = steps * sub
-    n_cut = 2 + 4 * n_legs
-    st = np.empty((2, 2), np.int64)
-    en = np.empty((2, 2), np.int64)
-    cuts = np.empty(n_cut, np.int64)
-    for i in range(n):
-        for leg in range(n_legs):
-            k = codes_a[i] if leg == 0 else codes_b[i]
-            inv = leg == 1 and invert_b
-            s0 = frame
-            e0 = frame
-            s1 = frame
-            e1 = frame
-            if not double_edge:
-                if inv:
-                    s0 = k * sub
-                else:
-                    s0 = 0
-                    e0 = k * sub
-            else:
-                h = k * sub
-                if not inv:
-                    s0 = centre - h
-                    e0 = centre + h
-                elif h > 0:
-                    s0 = 0
-                    e0 = centre - h
-                    s1 = centre + h
-                else:
-                    s0 = 0
-            st[leg, 0] = s0
-            en[leg, 0] = e0
-            st[leg, 1] = s1
-            en[leg, 1] = e1
-            new_run = 0
-            for j in range(2):
-                s = st[leg, j]
-                e = en[leg, j]
-                if e > s:
-                    if e == frame:
-                        new_run = dead if s == 0 else min(frame - s, dead)
-                    elapsed = run[leg] if s == 0 else 0
-                    delay = dead - elapsed
-                    if delay > 0:
-                        s = min(e, s + delay)
-                        if s == e:
-                            counts[0] += 1
-                        st[leg, j] = s
-            run[leg] = new_run
-        # cut points, sorted (insertion sort of a handful of values)
-        cuts[0] = 0
-        c = 1
-        for leg in range(n_legs):
-            for j in range(2):
-                cuts[c] = st[leg, j]
-                cuts[c + 1] = en[leg, j]
-                c += 2
-        cuts[c] = frame
-        for a in range(1, n_cut):
-            v = cuts[a]
-            b = a - 1
-            while b >= 0 and cuts[b] > v:
-                cuts[b + 1] = cuts[b]
-                b -= 1
-            cuts[b + 1] = v
-        for j in range(n_cut - 1):
-            t = cuts[j + 1] - cuts[j]
-            mid2 = cuts[j] + cuts[j + 1]
-            high_a = 0
-            high_b = 0
-            for leg in range(n_legs):
-                hi = 0
-                for q in range(2):
-                    if 2 * st[leg, q] <= mid2 and mid2 < 2 * en[leg, q]:
-                        hi = 1
-                if leg == 0:
-                    high_a = hi
-                else:
-                    high_b = hi
-                if t > 0 and hi != last[leg]:
-                    counts[1 + leg] += 1
-                    last[leg] = hi
-            ticks[i, j] = t
-            if half_bridge:
-                levels[i, j] = volts * (2.0 * high_a - 1.0)
-            else:
-                levels[i, j] = volts * (float(high_a) - float(high_b))
-
-
-@njit(cache=True, nogil=True, inline="always")
-def _leg_high(st, en, leg, half_tick2):
-    """Whether a leg's command is high at the doubled time ``half_tick2``.
-
-    ``half_tick2`` is ``2 t`` for tick ``t``, or ``2 t - 1`` for the instant just before it.
-    """
-    hi = 0
-    for q in range(2):
-        if 2 * st[leg, q] <= half_tick2 and half_tick2 < 2 * en[leg, q]:
-            hi = 1
-    return hi
-
-
-@njit(cache=True, nogil=True)
-def pwm_dead_time_means(
-    codes_a,
-    codes_b,
-    n_legs,
-    invert_b,
-    double_edge,
-    steps,
-    sub,
-    dead,
-    volts,
-    half_bridge,
-    command,
-    dead_left,
-    dead_level,
-    leg_level,
-    phis,
-    gammas,
-    wx,
-    wu,
-    qs,
-    current_w,
-    x,
-    y,
-    power,
-    counts,
-):
-    """PWM with load-current-dependent dead time, run through the filter frame by frame.
-
-    The legs' commanded high intervals come from the codes as in :func:`pwm_segments`. Every
-    change of a leg's command starts a dead interval of ``dead`` ticks in which both switches
-    of the leg are off and the freewheeling diodes set the leg: low when the leg's inductor
-    current flows out of the leg (``i > 0``), high when it flows in (``i < 0``), unchanged at
-    ``i == 0``. The current is read from the filter state at the start of the dead interval:
-    leg A's current is ``current_w . x``, leg B's (a full bridge) its negative. A command
-    change inside a dead interval extends it to ``dead`` ticks after that change, keeping its
-    level (counted as a pulse lost to dead time). Outside dead intervals a leg follows its
-    command. The frame is cut at every command change and dead-interval end; each segment's
-    level is ``volts (2 A - 1)`` (half bridge) or ``volts (A - B)``, and it updates the frame
-    mean, the frame's mean square and the state as in :func:`frame_power_segments`.
-
-    ``command``, ``dead_left``, ``dead_level``, ``leg_level``: (n_legs,) int64 state, updated
-    (command level at the end of the last frame, dead ticks still to run at the frame start,
-    the level of that dead interval, the leg's actual level); tables over lengths 0..frame;
-    ``x``: (m,) updated; ``y``, ``power``: (n,) frame means and mean squares written;
-    ``counts``: (3,) int64 incremented
-    with [pulses lost to dead time, transitions of leg A, transitions of leg B].
-    """
-    n = codes_a.shape[0]
-    m = x.shape[0]
-    frame = steps * sub * (2 if double_edge else 1)
-    centre = steps * sub
-    st = np.empty((2, 2), np.int64)
-    en = np.empty((2, 2), np.int64)
-    cand = np.empty((2, 5), np.int64)
-    in_dead = np.zeros(2, np.int64)
-    dead_end = np.zeros(2, np.int64)
-    tmp = np.empty(m)
-    for i in range(n):
-        for leg in range(n_legs):
-            k = codes_a[i] if leg == 0 else codes_b[i]
-            inv = leg == 1 and invert_b
-            s0 = frame
-            e0 = frame
-            s1 = frame
-            e1 = frame
-            if not double_edge:
-                if inv:
-                    s0 = k * sub
-                else:
-                    s0 = 0
-                    e0 = k * sub
-            else:
-                h = k * sub
-                if not inv:
-                    s0 = centre - h
-                    e0 = centre + h
-                elif h > 0:
-                    s0 = 0
-                    e0 = centre - h
-                    s1 = centre + h
-                else:
-                    s0 = 0
-            st[leg, 0] = s0
-            en[leg, 0] = e0
-            st[leg, 1] = s1
-            en[leg, 1] = e1
-            cand[leg, 0] = 0
-            cand[leg, 1] = s0
-            cand[leg, 2] = e0
-            cand[leg, 3] = s1
-            cand[leg, 4] = e1
-            in_dead[leg] = 1 if dead_left[leg] > 0 else 0
-            dead_end[leg] = dead_left[leg]
-        acc = 0.0
-        sq = 0.0
-        t = 0
-        while t < frame:
-            u_high_a = 0
-            u_high_b = 0
-            for leg in range(n_legs):
-                if in_dead[leg] == 1 and dead_end[leg] <= t:
-                    in_dead[leg] = 0
-                now = _leg_high(st, en, leg, 2 * t)
-                before = command[leg] if t == 0 else _leg_high(st, en, leg, 2 * t - 1)
-                if now != before and dead > 0:
-                    if in_dead[leg] == 1:
-                        counts[0] += 1
-                    else:
-                        in_dead[leg] = 1
-                        cur = 0.0
-                        for q in range(m):
-                            cur += current_w[q] * x[q]
-                        if leg == 1:
-                            cur = -cur
-                        if cur > 0.0:
-                            dead_level[leg] = 0
-                        elif cur < 0.0:
-                            dead_level[leg] = 1
-                        else:
-                            dead_level[leg] = leg_level[leg]
-                    dead_end[leg] = t + dead
-                level = dead_level[leg] if in_dead[leg] == 1 else now
-                if level != leg_level[leg]:
-                    counts[1 + leg] += 1
-                    leg_level[leg] = level
-                if leg == 0:
-                    u_high_a = level
-                else:
-                    u_high_b = level
-            t_next = frame
-            for leg in range(n_legs):
-                for c in range(5):
-                    tc = cand[leg, c]
-                    if tc > t and tc < t_next:
-                        if _leg_high(st, en, leg, 2 * tc) != _leg_high(st, en, leg, 2 * tc - 1):
-                            t_next = tc
-                if in_dead[leg] == 1 and dead_end[leg] > t and dead_end[leg] < t_next:
-                    t_next = dead_end[leg]
-            kk = t_next - t
-            if half_bridge:
-                u = volts * (2.0 * u_high_a - 1.0)
-            else:
-                u = volts * (float(u_high_a) - float(u_high_b))
-            acc += wu[kk] * u
-            for q in range(m):
-                acc += wx[kk, q] * x[q]
-            for r in range(m + 1):
-                zr = x[r] if r < m else u
-                row = qs[kk, r, m] * u
-                for q in range(m):
-                    row += qs[kk, r, q] * x[q]
-                sq += zr * row
-            for r in range(m):
-                v = gammas[kk, r] * u
-                for q in range(m):
-                    v += phis[kk, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
-            t = t_next
-        y[i] = acc
-        power[i] = sq
-        for leg in range(n_legs):
-            command[leg] = _leg_high(st, en, leg, 2 * frame - 1)
-            if in_dead[leg] == 1 and dead_end[leg] > frame:
-                dead_left[leg] = dead_end[leg] - frame
-            else:
-                dead_left[leg] = 0
-
-
-# ---------------------------------------------------------------------------------------------
-# Reconstruction filters (stages/reconstruct.py)
-# ---------------------------------------------------------------------------------------------
-
-
-@njit(cache=True, nogil=True)
-def frame_means_segments(levels, ticks, phis, gammas, wx, wu, x, y):
-    """Mean of a state-space filter's output over every frame of a piecewise-constant waveform.
-
-    For every segment of ``k`` ticks holding ``u``: the frame's mean gains
-    ``wx(k) . x + wu(k) u`` (the exact integral of ``C x(t) + D u`` over the segment, divided
-    by the frame length), then ``x <- Phi(k) x + Gamma(k) u`` (zero-order-hold exact).
-    Zero-length segments are skipped. ``levels``, ``ticks``: (n, s); ``phis``: (F + 1, m, m);
-    ``gammas``, ``wx``: (F + 1, m); ``wu``: (F + 1,); ``x``: (m,) updated in place;
-    ``y``: (n,) written with the frame means.
-    """
-    n = levels.shape[0]
-    s = levels.shape[1]
-    m = x.shape[0]
-    tmp = np.empty(m)
-    for i in range(n):
-        acc = 0.0
-        for j in range(s):
-            k = ticks[i, j]
-            if k == 0:
-                continue
-            u = levels[i, j]
-            acc += wu[k] * u
-            for q in range(m):
-                acc += wx[k, q] * x[q]
-            for r in range(m):
-                v = gammas[k, r] * u
-                for q in range(m):
-                    v += phis[k, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
-        y[i] = acc
-
-
-@njit(cache=True, nogil=True)
-def frame_power_segments(levels, ticks, phis, gammas, wx, wu, qs, x, y, power):
-    """:func:`frame_means_segments`, and the mean square of the output over every frame.
-
-    Per segment of ``k`` ticks, with ``z = [x; u]`` at its start, the frame's mean square gains
-    ``z' Q(k) z`` (``qs``: (F + 1, m + 1, m + 1), the output's squared integral over the
-    segment as a quadratic form, divided by the frame length). The means, the state and their
-    operation order are those of :func:`frame_means_segments`. ``power``: (n,) written.
-    """
-    n = levels.shape[0]
-    s = levels.shape[1]
-    m = x.shape[0]
-    tmp = np.empty(m)
-    for i in range(n):
-        acc = 0.0
-        sq = 0.0
-        for j in range(s):
-            k = ticks[i, j]
-            if k == 0:
-                continue
-            u = levels[i, j]
-            acc += wu[k] * u
-            for q in range(m):
-                acc += wx[k, q] * x[q]
-            for r in range(m + 1):
-                zr = x[r] if r < m else u
-                row = qs[k, r, m] * u
-                for q in range(m):
-                    row += qs[k, r, q] * x[q]
-                sq += zr * row
-            for r in range(m):
-                v = gammas[k, r] * u
-                for q in range(m):
-                    v += phis[k, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
-        y[i] = acc
-        power[i] = sq
-
-
-@njit(cache=True, nogil=True)
-def frame_means_modal(u, real_phi, real_gamma, real_w, pair_phi, pair_gamma, pair_w, wu, xr, xp, y):
-    """One-segment frames through a filter in real modal form: the fast path for PDM / NRZ.
-
-    The state holds ``nr`` real modes then ``np`` complex-pair modes, each pair as (re, im)
-    with the 2x2 block ``[[a, -b], [b, a]]`` (``a + jb = exp(lambda dt)``). Per sample:
-    ``y = wu u + w . x`` (the frame mean, from the state at the frame start), then
-    ``x <- Phi x + Gamma u``, with the same operation order as :func:`frame_means_segments` on
-    the block-diagonal matrices, so both give identical numbers. ``real_*``: (nr,);
-    ``pair_phi``: (np, 2) as (a, b); ``pair_gamma``, ``pair_w``: (np, 2); ``xr``: (nr,),
-    ``xp``: (np, 2), updated in place.
-    """
-    n = u.shape[0]
-    nr = xr.shape[0]
-    npair = xp.shape[0]
-    for i in range(n):
-        un = u[i]
-        out = wu * un
-        for r in range(nr):
-            out += real_w[r] * xr[r]
-        for p in range(npair):
-            out += pair_w[p, 0] * xp[p, 0]
-            out += pair_w[p, 1] * xp[p, 1]
-        y[i] = out
-        for r in range(nr):
-            v = real_gamma[r] * un
-            v += real_phi[r] * xr[r]
-            xr[r] = v
-        for p in range(npair):
-            a = pair_phi[p, 0]
-            b = pair_phi[p, 1]
-            re = xp[p, 0]
-            im = xp[p, 1]
-            nre = pair_gamma[p, 0] * un
-            nre += a * re
-            nre += -b * im
-            nim = pair_gamma[p, 1] * un
-            nim += b * re
-            nim += a * im
-            xp[p, 0] = nre
-            xp[p, 1] = nim
-
-
-@njit(cache=True, nogil=True)
-def frame_means_modal_pair(u, pair_phi, pair_gamma, pair_w, wu, xp, y):
-    """:func:`frame_means_modal` for exactly one complex pair and no real mode (2nd order).
-
-    The state lives in local scalars for the whole loop; same operation order, same numbers.
-    """
-    a = pair_phi[0, 0]
-    b = pair_phi[0, 1]
-    gre = pair_gamma[0, 0]
-    gim = pair_gamma[0, 1]
-    wre = pair_w[0, 0]
-    wim = pair_w[0, 1]
-    re = xp[0, 0]
-    im = xp[0, 1]
-    for i in range(u.shape[0]):
-        un = u[i]
-        y[i] = wu * un + wre * re + wim * im
-        nre = gre * un + a * re + -b * im
-        nim = gim * un + b * re + a * im
-        re = nre
-        im = nim
-    xp[0, 0] = re
-    xp[0, 1] = im
-
-
-@njit(cache=True, nogil=True)
-def frame_means_modal_real_pair(
-    u, real_phi, real_gamma, real_w, pair_phi, pair_gamma, pair_w, wu, xr, xp, y
-):
-    """:func:`frame_means_modal` for exactly one real mode and one pair (3rd order).
-
-    The state lives in local scalars for the whole loop; same operation order, same numbers.
-    """
-    p0 = real_phi[0]
-    g0 = real_gamma[0]
-    w0 = real_w[0]
-    a = pair_phi[0, 0]
-    b = pair_phi[0, 1]
-    gre = pair_gamma[0, 0]
-    gim = pair_gamma[0, 1]
-    wre = pair_w[0, 0]
-    wim = pair_w[0, 1]
-    x0 = xr[0]
-    re = xp[0, 0]
-    im = xp[0, 1]
-    for i in range(u.shape[0]):
-        un = u[i]
-        y[i] = wu * un + w0 * x0 + wre * re + wim * im
-        x0 = g0 * un + p0 * x0
-        nre = gre * un + a * re + -b * im
-        nim = gim * un + b * re + a * im
-        re = nre
-        im = nim
-    xr[0] = x0
-    xp[0, 0] = re
-    xp[0, 1] = im
-
-
-# ---------------------------------------------------------------------------------------------
-# Measurement helpers (measure/*)
-# ---------------------------------------------------------------------------------------------

@@ -53,6 +53,7 @@ from audiodsm.stages.chain_build import (
     _scaled_loop,
     _settings_of,
     _stf_filter,
+    _zero_band_edge,
     auto_input_scale,
 )
 from audiodsm.stages.chain_records import ChainBlock, ChainResult, ChainState, ChainStats
@@ -64,6 +65,7 @@ __all__ = [
     "STAGE_NAMES",
     "Chain",
     "run_chain",
+    "release_worker_threads",
 ]
 
 #: What :func:`run_chain` can keep: the listening output, the modulator output, the
@@ -149,6 +151,13 @@ class Chain:
         self.modulator_rate_hz = self.rate_hz * self.osr
         self.block_frames = max(1, MAX_BLOCK_MODULATOR_SAMPLES // self.osr)
         self.piece_frames = max(1, CACHE_PIECE_MODULATOR_SAMPLES // self.osr)
+        self.requantizer = None  # the source's word length (input.requantize = "tpdf")
+        if profile.input.requantize == "tpdf":
+            from audiodsm.stages.source_word import SourceRequantizer
+
+            self.requantizer = SourceRequantizer(
+                profile.input.source_bits, seed=profile.input.dither_seed
+            )
 
         with _settings_of(profile, "upsampler"):
             self.upsampler_design = design_upsampler(
@@ -167,7 +176,13 @@ class Chain:
             if mod.explicit_ntf:
                 self.ntf = _build_ntf(mod)
             else:
-                self.ntf = _designed_ntf(mod.order, self.osr, mod.out_of_band_gain, mod.zero_layout)
+                self.ntf = _designed_ntf(
+                    mod.order,
+                    self.osr,
+                    mod.out_of_band_gain,
+                    mod.zero_layout,
+                    _zero_band_edge(mod.zero_band_edge_hz, self.rate_hz, self.modulator_rate_hz),
+                )
             mod_kwargs = {
                 "structure": mod.structure,
                 "levels": mod.levels,
@@ -175,6 +190,8 @@ class Chain:
                 "seed": mod.seed,
                 "guard": mod.guard,
             }
+            if mod.input_feed_in:
+                mod_kwargs["input_feed_in"] = True
             loop, self.state_scaling_probe = _scaled_loop(
                 self.ntf, mod_kwargs, self.osr, mod.state_scaling, mod.state_peak_bound
             )
@@ -583,6 +600,9 @@ class Chain:
                     "samples within ±1.0 (the profile sets input.over_full_scale = 'refuse')",
                 )
             x = np.clip(x, -1.0, 1.0)
+        if self.requantizer is not None and x.shape[0]:
+            x, rq_state = self.requantizer.process(x, state.requantizer)
+            state = replace(state, requantizer=rq_state)
         if x.shape[0] == 0:  # nothing to do: every requested output is empty
             empty = np.zeros((0, self.channels))
             block = ChainBlock(**{k: (empty if k in keep else None) for k in KEEP_CHOICES})
@@ -771,6 +791,22 @@ def _pool(workers: int) -> ThreadPoolExecutor:
             max_workers=workers, thread_name_prefix="audiodsm-chain"
         )
     return pool
+
+
+def release_worker_threads() -> None:
+    """Tell every shared worker thread of the chain and the modulator to end; do not wait.
+
+    The shared pools live as long as the process. When Ctrl-C lands while a pool is starting a
+    thread, Python's exit can miss that thread and wait for it forever (the thread is started
+    before the pool records it). A command ends by calling this: every pool queues its stop
+    marker, so each idle thread, recorded or not, ends, and the next use builds new pools.
+    """
+    from audiodsm.stages import modulator
+
+    for pools in (_POOLS, modulator._POOLS):
+        for pool in list(pools.values()):
+            pool.shutdown(wait=False, cancel_futures=True)
+        pools.clear()
 
 
 def _check_keep(keep) -> tuple:

@@ -43,19 +43,36 @@ def _settings_of(profile: ChainProfile, section: str):
 
 
 @functools.lru_cache(maxsize=64)
-def _designed_ntf(order, osr, out_of_band_gain, zero_layout):
+def _designed_ntf(order, osr, out_of_band_gain, zero_layout, zero_band_edge=None):
     """NoiseTransfer.designed, remembered in this process and on disk (stages/loop_cache.py)."""
     from audiodsm.design.ntf import NoiseTransfer
     from audiodsm.stages import loop_cache
 
     key = (int(order), float(osr), float(out_of_band_gain), str(zero_layout))
+    if zero_band_edge is not None:
+        key += (float(zero_band_edge),)
     ntf = loop_cache.load("ntf", key)
     if not isinstance(ntf, NoiseTransfer):
         ntf = NoiseTransfer.designed(
-            order, osr=osr, out_of_band_gain=out_of_band_gain, zero_layout=zero_layout
+            order,
+            osr=osr,
+            out_of_band_gain=out_of_band_gain,
+            zero_layout=zero_layout,
+            zero_band_edge=zero_band_edge,
         )
         loop_cache.store("ntf", key, ntf)
     return ntf
+
+
+def _zero_band_edge(edge_hz, rate_hz, modulator_rate_hz):
+    """The spread zeros' band edge in cycles per modulator sample (None: the whole audio band).
+
+    The profile's edge is capped at half the input rate; at the cap the design's own default
+    (0.5/osr) is used, so such a chain designs exactly what it did before the key existed.
+    """
+    if edge_hz >= 0.5 * rate_hz:
+        return None
+    return float(edge_hz) / float(modulator_rate_hz)
 
 
 _SCALED_LOOPS: dict = {}

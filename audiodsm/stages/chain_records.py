@@ -83,11 +83,14 @@ class ChainState:
         Running counts.
     to_skip : int
         Listening samples still to drop at the start (latency alignment, :meth:`Chain.stream`).
+    requantizer : RequantizerState or None
+        The source requantization's dither state (``input.requantize = "tpdf"``).
     """
 
     channels: tuple
     stats: ChainStats
     to_skip: int = 0
+    requantizer: object = None
 
 
 @dataclass(frozen=True)

@@ -113,10 +113,10 @@ def compiled_loops_missing() -> bool:
     """
     from numba.core.dispatcher import Dispatcher
 
-    from audiodsm.stages import _kernels, _rate_kernels
+    from audiodsm.stages import _kernels, _rate_kernels, _waveform_kernels
 
     checked = 0
-    for module in (_kernels, _rate_kernels):
+    for module in (_kernels, _rate_kernels, _waveform_kernels):
         for value in vars(module).values():
             if not isinstance(value, Dispatcher):
                 continue

@@ -90,7 +90,12 @@ def _kernel_key(loop: LoopRealization) -> tuple[str, int, bool, bool, int] | Non
     pairs = len(upstream)
     if not np.array_equal(upstream, np.arange(0, 2 * pairs, 2)):
         pairs = -1  # not the layout LoopRealization.for_ntf makes: keep every resonator term
-    return loop.structure, n, lossless, unit_chain, pairs
+    return _kernel_structure(loop), n, lossless, unit_chain, pairs
+
+
+def _kernel_structure(loop: LoopRealization) -> str:
+    """The kernels' name for the loop's structure (the feedforward feed-in has its own)."""
+    return "feedforward-feed-in" if loop.input_feed_in else loop.structure
 
 
 @dataclass(frozen=True, eq=False)
@@ -135,6 +140,9 @@ class Modulator:
         The noise transfer function to realize, or an already realized (e.g. scaled) loop.
     structure : str
         One of ``STRUCTURES`` (ignored when ``ntf`` is a ``LoopRealization``).
+    input_feed_in : bool
+        Feedforward only: feed the input straight to the quantizer too (see
+        :meth:`LoopRealization.for_ntf`); ignored when ``ntf`` is a ``LoopRealization``.
     levels : int
         Quantizer output levels, 2 (single bit) to 2**24, evenly spaced in [-1, 1].
     dither_lsb : float
@@ -175,13 +183,14 @@ class Modulator:
         guard: str = "reset",
         state_bound: float = 1.0e6,
         input_bound: float = 8.0,
+        input_feed_in: bool = False,
     ):
         if isinstance(ntf, LoopRealization):
             loop = ntf
         elif isinstance(ntf, NoiseTransfer):
             if structure not in STRUCTURES:
                 raise ParameterError("structure", structure, f"one of {', '.join(STRUCTURES)}")
-            loop = LoopRealization.for_ntf(ntf, structure=structure)
+            loop = LoopRealization.for_ntf(ntf, structure=structure, input_feed_in=input_feed_in)
         else:
             raise ParameterError("ntf", type(ntf).__name__, "a NoiseTransfer or LoopRealization")
         lowest, highest = LEVELS_RANGE
@@ -203,6 +212,10 @@ class Modulator:
         # as the quantizer input, so the quantizer sees y / g (g = c[-1]); a sign decision does
         # not mind, and the dither and the input bound are divided by g to match.
         self._quantizer_gain = 1.0
+        if loop.input_feed_in and loop.direct_input != 1.0:
+            raise ParameterError(
+                "ntf.direct_input", loop.direct_input, "1.0 for a feedforward loop's input feed-in"
+            )
         if loop.structure == "feedback" and loop.output_weight[-1] != 1.0:
             if levels != 2:
                 raise ParameterError(
@@ -338,7 +351,7 @@ class Modulator:
                 rng,
                 peaks,
                 counts,
-                _kernels.STRUCTURE_CODES[self.structure],
+                _kernels.STRUCTURE_CODES[_kernel_structure(self.loop)],
                 *scalars,
                 np.empty((0, self.order)) if trace is None else trace,
             )

@@ -26,7 +26,7 @@ import scipy.linalg
 import scipy.signal
 
 from audiodsm.errors import ParameterError
-from audiodsm.stages import _kernels
+from audiodsm.stages import _waveform_kernels
 from audiodsm.stages import output_stage as _out
 from audiodsm.stages.filter_design import AnalogFilter
 from audiodsm.stages.output_stage import PulseWaveform, PwmStats
@@ -319,7 +319,7 @@ def filter_waveform(
     if waveform.n_segments == 1 and tpf == 1 and model.modal:
         _run_modal(waveform.levels[:, 0], model, phis, gammas, wx, wu, x, y)
     else:
-        _kernels.frame_means_segments(waveform.levels, index, phis, gammas, wx, wu, x, y)
+        _waveform_kernels.frame_means_segments(waveform.levels, index, phis, gammas, wx, wu, x, y)
     return y, _new_state(x, model)
 
 
@@ -340,13 +340,13 @@ def _run_modal(u, model, phis, gammas, wx, wu, x, y):
     n_pairs = xp.shape[0]
     w_u = float(wu[1])
     if nr == 0 and n_pairs == 1:
-        _kernels.frame_means_modal_pair(u, pair_phi, pair_gamma, pair_w, w_u, xp, y)
+        _waveform_kernels.frame_means_modal_pair(u, pair_phi, pair_gamma, pair_w, w_u, xp, y)
     elif nr == 1 and n_pairs == 1:
-        _kernels.frame_means_modal_real_pair(
+        _waveform_kernels.frame_means_modal_real_pair(
             u, real_phi, real_gamma, real_w, pair_phi, pair_gamma, pair_w, w_u, xr, xp, y
         )
     else:
-        _kernels.frame_means_modal(
+        _waveform_kernels.frame_means_modal(
             u, real_phi, real_gamma, real_w, pair_phi, pair_gamma, pair_w, w_u, xr, xp, y
         )
     x[:nr] = xr
@@ -410,7 +410,9 @@ def filter_waveform_power(
         index = np.searchsorted(lengths, waveform.ticks)
     y = np.empty(waveform.n_frames)
     power = np.empty(waveform.n_frames)
-    _kernels.frame_power_segments(waveform.levels, index, phis, gammas, wx, wu, qs, x, y, power)
+    _waveform_kernels.frame_power_segments(
+        waveform.levels, index, phis, gammas, wx, wu, qs, x, y, power
+    )
     return y, power, _new_state(x, model)
 
 
@@ -566,7 +568,7 @@ def filter_pwm_with_dead_time(
     means = np.empty(plan.n)
     power = np.empty(plan.n)
     counts = np.zeros(3, dtype=np.int64)
-    _kernels.pwm_dead_time_means(
+    _waveform_kernels.pwm_dead_time_means(
         plan.codes_a,
         plan.codes_b,
         n_legs,
