@@ -736,7 +736,8 @@ def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
     signal = spec[tone].sum()
     band = spec[4 : edge + 1].sum()
     noise = max(band - spec[max(tone.start, 4) : tone.stop].sum(), 1e-300)
-    return float(10 * np.log10(signal / noise))
+    with np.errstate(over="ignore"):  # a noise-free band (1e-300) reads +inf dB, silently
+        return float(10 * np.log10(signal / noise))
 
 
 class _Run(NamedTuple):
