@@ -5,6 +5,7 @@ import numpy as np
 import pytest
 
 from audiodsm.measure.silence import SILENCE_GUARD_WINDOWS, SILENCE_WINDOW_S, SilenceNoiseMeter
+from audiodsm.measure.spectrum import NUMERIC_FLOOR_DBFS
 
 
 def test_silence_meter_reads_a_weighted_white_noise_as_the_curve_predicts(rng):
@@ -34,3 +35,19 @@ def test_silence_meter_reads_a_weighted_white_noise_as_the_curve_predicts(rng):
     short.feed_input(x[: int(1.4 * fs)])
     short.feed_output(y[: int(1.4 * fs)])
     assert short.result()[1] == [None]
+
+
+def test_a_digitally_silent_output_reads_the_numeric_floor():
+    # An output with no in-band power in the silent stretch (here exact zeros; in a render, an
+    # undithered single-bit loop idling in a pattern at half its rate once band-limited) has no
+    # physical noise level: float64 rounding noise on a full-scale signal is near
+    # 20 log10(2**-53) = -319 dB (IEEE 754), so the meter reports the numeric floor, as the
+    # battery does, not a level of -466 dBFS.
+    fs = 48000
+    x = np.zeros((2 * fs, 1))
+    meter = SilenceNoiseMeter(fs, fs, 1)
+    meter.feed_input(x)
+    meter.feed_output(1e-30 * np.ones((2 * fs, 1)))  # DC, outside the 20 Hz .. 20 kHz band
+    _, levels = meter.result()
+    assert 20 * math.log10(2.0**-53) < NUMERIC_FLOOR_DBFS
+    assert levels == [NUMERIC_FLOOR_DBFS]

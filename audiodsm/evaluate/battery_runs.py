@@ -15,16 +15,13 @@ from dataclasses import replace
 
 import numpy as np
 
+from audiodsm.measure.spectrum import NUMERIC_FLOOR_DBFS
+
 _TEST_HZ = 997.0
 _BAND = (20.0, 20000.0)
 _WEIGHTINGS = ("unweighted", "a", "ccir")
 #: Extra stimulus after each measured stretch, cut off again (see _chain_run).
 _TAIL_S = 0.05
-# The simulation carries float64 numbers, whose rounding noise on a full-scale signal lies near
-# 20 log10(2**-53) = -319 dB. A noise reading below this floor says only that the output was
-# digitally silent (e.g. an undithered multi-level loop idling on its zero level), so the battery
-# reports the floor and says so in the notes instead of a number of no physical meaning.
-NUMERIC_FLOOR_DBFS = -300.0
 _FLOORED_METRICS = (
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",

@@ -14,6 +14,8 @@ import math
 
 import numpy as np
 
+from audiodsm.measure.spectrum import NUMERIC_FLOOR_DBFS
+
 __all__ = [
     "SILENCE_WINDOW_S",
     "SILENCE_PEAK",
@@ -137,7 +139,9 @@ class SilenceNoiseMeter:
     def result(self):
         """(silent seconds measured, A-weighted noise dBFS per channel or None).
 
-        The levels are None when fewer than :data:`SILENCE_MIN_S` seconds were usable.
+        The levels are None when fewer than :data:`SILENCE_MIN_S` seconds were usable, and
+        :data:`~audiodsm.measure.spectrum.NUMERIC_FLOOR_DBFS` for an output digitally silent in
+        the band (below the simulation's float64 rounding noise, no physical reading).
         """
         flags = self.in_flags
         usable = [
@@ -149,4 +153,7 @@ class SilenceNoiseMeter:
         if seconds < SILENCE_MIN_S:
             return seconds, [None] * self.channels
         power = np.mean([self.out_power[k] for k in usable], axis=0)
-        return seconds, [mean_power_dbfs(float(p)) for p in power]
+        levels = [mean_power_dbfs(float(p)) for p in power]
+        return seconds, [
+            NUMERIC_FLOOR_DBFS if v is None or v < NUMERIC_FLOOR_DBFS else v for v in levels
+        ]

@@ -23,6 +23,7 @@ from audiodsm.errors import ParameterError
 
 __all__ = [
     "FULL_SCALE_SINE_POWER",
+    "NUMERIC_FLOOR_DBFS",
     "level_dbfs",
     "power_to_dbfs",
     "Spectrum",
@@ -33,6 +34,13 @@ __all__ = [
 
 #: Mean-square value of a full-scale sine (peak 1.0): the power that reads 0 dBFS.
 FULL_SCALE_SINE_POWER = 0.5
+
+#: The lowest level a simulated signal can honestly carry. The simulation computes in float64,
+#: whose rounding noise on a full-scale signal lies near 20 log10(2**-53) = -319 dB (IEEE 754
+#: double precision). A noise reading below this floor says only that the output was digitally
+#: silent (e.g. an undithered loop idling in a pattern with no in-band power), so readings are
+#: reported at the floor, with a note, never as a number of no physical meaning.
+NUMERIC_FLOOR_DBFS = -300.0
 
 _MIN_SEGMENT = 64
 
