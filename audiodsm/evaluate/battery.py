@@ -64,6 +64,7 @@ import numpy as np
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.evaluate.battery_assembly import _assemble
+from audiodsm.evaluate.battery_impairments import _test_jitter, _test_mismatch
 from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
@@ -107,6 +108,8 @@ TEST_NAMES = (
     "thd_n_vs_frequency",
     "images",
     "intermodulation",
+    "element_mismatch",
+    "jitter_sweep",
 )
 
 #: Every metric name, the test that produces it, and a short plain description with unit.
@@ -130,6 +133,58 @@ METRIC_UNITS = {
         "dBFS",
         "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
         "step (PDM and NRZ; scales as 20 log10 of the jitter)",
+    ),
+    "output_step_rms_fs": (
+        "dynamic_range",
+        "FS",
+        "rms step between successive output samples (full-scale units); the jitter noise "
+        "goes with its square, so two streams' jitter noise differs by 20 log10 of its ratio",
+    ),
+    "jitter_dynamic_range_db_at_1ps": (
+        "jitter_sweep",
+        "dB",
+        "dynamic range (unweighted, -60 dBFS) with 1 ps rms white jitter on the output edges",
+    ),
+    "jitter_dynamic_range_db_at_10ps": (
+        "jitter_sweep",
+        "dB",
+        "dynamic range (unweighted, -60 dBFS) with 10 ps rms white jitter on the output edges",
+    ),
+    "jitter_dynamic_range_db_at_100ps": (
+        "jitter_sweep",
+        "dB",
+        "dynamic range (unweighted, -60 dBFS) with 100 ps rms white jitter on the output edges",
+    ),
+    "analog_noise_dbfs": (
+        "dynamic_range",
+        "dBFS",
+        "in-band noise of the analog noise floor alone (density^2 x 20 Hz..20 kHz), unweighted "
+        "(none without a noise density)",
+    ),
+    "analog_noise_dbfs_a": (
+        "dynamic_range",
+        "dBFS",
+        "in-band noise of the analog noise floor alone, A-weighted",
+    ),
+    "mismatch_free_thd_n_db_at_minus1_dbfs": (
+        "element_mismatch",
+        "dB",
+        "THD+N at -1 dBFS with ideal unit elements (NRZ with element mismatch only)",
+    ),
+    "mismatch_free_dynamic_range_db_a": (
+        "element_mismatch",
+        "dB",
+        "A-weighted dynamic range with ideal unit elements (NRZ with element mismatch only)",
+    ),
+    "mismatch_thd_n_cost_db": (
+        "element_mismatch",
+        "dB",
+        "how much the unit elements' mismatch raises the -1 dBFS THD+N (same dither)",
+    ),
+    "mismatch_dynamic_range_cost_db": (
+        "element_mismatch",
+        "dB",
+        "how much the unit elements' mismatch lowers the A-weighted dynamic range (same dither)",
     ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
@@ -159,6 +214,11 @@ METRIC_UNITS = {
         "idle",
         "dBFS",
         "DC at the output during silence (a DC of full-scale value reads +3.01 dBFS)",
+    ),
+    "dc_offset_fs": (
+        "idle",
+        "FS",
+        "DC at the output during silence, signed, as a fraction of full scale",
     ),
     "idle_tone_max_dbfs": (
         "idle",
@@ -265,6 +325,9 @@ class BatteryPlan:
     false_alarm : float
         Probability that noise alone triggers a line anywhere in the battery (shared out over
         all the captures searched for idle tones).
+    jitter_sigmas_s : tuple of float
+        White edge jitter (rms, seconds) of the dynamic-range-against-jitter runs; 1, 10 and
+        100 ps give the ``jitter_dynamic_range_db_at_*`` metrics.
     """
 
     settle_s: float = 0.1
@@ -290,6 +353,7 @@ class BatteryPlan:
     histogram_samples: int = 1 << 17
     histogram_bins: int = 64
     false_alarm: float = 0.01
+    jitter_sigmas_s: tuple = (1e-12, 1e-11, 1e-10)
 
     @classmethod
     def quick(cls) -> BatteryPlan:
@@ -356,6 +420,12 @@ class BatteryPlan:
         if not (float(self.image_tone_hz).is_integer() and 20.0 <= self.image_tone_hz <= 20000.0):
             raise ParameterError(
                 "plan.image_tone_hz", self.image_tone_hz, "a whole number of Hz, 20 to 20000"
+            )
+        if not self.jitter_sigmas_s or any(
+            isinstance(v, bool) or not (0.0 < float(v) <= 1e-8) for v in self.jitter_sigmas_s
+        ):
+            raise ParameterError(
+                "plan.jitter_sigmas_s", self.jitter_sigmas_s, "jitter from 0 to 10 ns (seconds)"
             )
         if not (self.histogram_bins >= 4 and self.histogram_samples >= 1024):
             raise ParameterError(
@@ -554,6 +624,11 @@ def run_battery(
         runs.append(("images", _test_images, ()))
     if "intermodulation" in tests:
         runs.append(("intermodulation", _test_imd, ()))
+    if "element_mismatch" in tests:
+        runs.append(("element mismatch", _test_mismatch, ()))
+    if "jitter_sweep" in tests:
+        for sigma in sorted({float(v) for v in plan.jitter_sigmas_s}):
+            runs.append(("DR vs jitter", _test_jitter, (sigma,)))
     total = len(runs) + ("stability" in tests)  # the overload probes follow the stability run
 
     def with_seed(index):

@@ -37,6 +37,10 @@ _SCALARS = (
     "out_of_band_noise_dbfs",
     "carrier_ripple_dbfs",
     "jitter_noise_dbfs_at_1ps",
+    "output_step_rms_fs",
+    "analog_noise_dbfs",
+    "analog_noise_dbfs_a",
+    "dc_offset_fs",
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",
@@ -356,6 +360,9 @@ def _assemble(results, tests, plan, profile):
             f"numeric floor); reported as {NUMERIC_FLOOR_DBFS:g} dBFS"
         )
     _impossible(metrics, invalid, floor)
+    from audiodsm.evaluate.battery_impairments import assemble_impairments
+
+    assemble_impairments(results, metrics, curves, notes, invalid)
     if stab is not None and not msa_amp > 0.0:
         why = "the loop has no stable amplitude: it overloads at every amplitude probed"
         for k in metrics:

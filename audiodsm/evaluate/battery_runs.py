@@ -329,10 +329,15 @@ def _test_dynamic_range(ctx, profile):
         "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
         "whole run"
     )
-    jitter, why = _jitter_sensitivity(profile, res, rate, plan.settle_s)
+    jitter, step_rms, why = _jitter_sensitivity(profile, res, rate, plan.settle_s)
     out["jitter_noise_dbfs_at_1ps"] = jitter
+    out["output_step_rms_fs"] = step_rms
     if why:
-        out["invalid"] = {**out["invalid"], "jitter_noise_dbfs_at_1ps": why}
+        out["invalid"] = {**out["invalid"], "jitter_noise_dbfs_at_1ps": why, "output_step_rms_fs": why}
+    from audiodsm.evaluate.battery_impairments import ANALOG_NOISE_METRICS, analog_noise_floor
+
+    floor = analog_noise_floor(profile, res.gain)
+    out.update({k: None for k in ANALOG_NOISE_METRICS} if floor is None else floor)
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
         "level_dbfs": spec.bins_dbfs(),
@@ -365,11 +370,13 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
 
     Returns
     -------
-    (float or None, str)
-        The level, and why it is missing (empty when it is not).
+    (float or None, float or None, str)
+        The level, the rms step between successive output samples (listening full-scale
+        units; the jitter noise goes with its square), and why they are missing (empty when
+        they are not).
     """
     if profile.output.kind == "pwm":
-        return None, "PWM edges are not in the jitter model"
+        return None, None, "PWM edges are not in the jitter model"
     from audiodsm.stages.chain import Chain
 
     chain = Chain.from_profile(profile, rate, 1, threads=1)
@@ -377,8 +384,10 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
     m = res.modulator[:, 0]
     m = m[min(int(round(settle_s * fm)), m.size // 2) :]
     steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
-    power = (1e-12 * fm) ** 2 * float(np.mean(steps * steps)) * 2.0 * _BAND[1] / fm
-    return (10.0 * math.log10(power / 0.5) if power > 0 else -math.inf), ""
+    mean_square = float(np.mean(steps * steps))
+    power = (1e-12 * fm) ** 2 * mean_square * 2.0 * _BAND[1] / fm
+    level = 10.0 * math.log10(power / 0.5) if power > 0 else -math.inf
+    return level, math.sqrt(mean_square), ""
 
 
 def _test_level_sweep(ctx, profile, levels):
@@ -435,9 +444,12 @@ def _test_idle(ctx, profile):
     dc = float(np.mean(y[settle:]))
     faults = "; ".join(_run_faults(res.stats, 0, y[settle:]))
     out = {
-        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz")} if faults else {},
+        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz", "dc_offset_fs")}
+        if faults
+        else {},
         "silence_faults": faults,
         "dc_offset_dbfs": 20.0 * math.log10(abs(dc) * math.sqrt(2.0)) if dc else -math.inf,
+        "dc_offset_fs": dc,
         "idle_noise_dbfs": r.noise_dbfs["unweighted"],
         "idle_noise_dbfs_a": r.noise_dbfs["a"],
         "idle_noise_dbfs_ccir": r.noise_dbfs["ccir"],
