@@ -234,7 +234,9 @@ def assemble_impairments(results, metrics, curves, notes, invalid):
             "invalid_reason": np.array([p["reason"] for p in points]),
         }
         for p in points:
-            name = next((n for s, n in JITTER_METRICS.items() if math.isclose(s, p["sigma_s"])), None)
+            name = next(
+                (n for s, n in JITTER_METRICS.items() if math.isclose(s, p["sigma_s"])), None
+            )
             if name is None:
                 continue
             metrics[name] = p["dr_db"]

@@ -333,7 +333,11 @@ def _test_dynamic_range(ctx, profile):
     out["jitter_noise_dbfs_at_1ps"] = jitter
     out["output_step_rms_fs"] = step_rms
     if why:
-        out["invalid"] = {**out["invalid"], "jitter_noise_dbfs_at_1ps": why, "output_step_rms_fs": why}
+        out["invalid"] = {
+            **out["invalid"],
+            "jitter_noise_dbfs_at_1ps": why,
+            "output_step_rms_fs": why,
+        }
     from audiodsm.evaluate.battery_impairments import ANALOG_NOISE_METRICS, analog_noise_floor
 
     floor = analog_noise_floor(profile, res.gain)
