@@ -22,6 +22,12 @@ candidate with spread NTF zeros against the same loop with every zero at DC
 (``profiles/variants/``), on short excerpts of two demo clips. A set whose key exists is kept
 as it is (keys are never replaced).
 
+After each product's grades it prints what the impairments cost (:func:`tradeoff_lines`):
+the -1 dBFS THD+N of every candidate with mismatched unit elements, as built and with ideal
+elements, with the spec's verdict (the demo DAC's thermometer part fails, its shaped part
+passes), and every candidate's dynamic range with 1, 10 and 100 ps of clock jitter (the
+single-bit streams against the 17-level ones).
+
 To keep the whole demo within about three minutes on two cores, it runs the battery's short
 plan (fewer levels and DC offsets, shorter captures) and says so in its output; ``audiodsm
 grade`` runs the full battery.

@@ -41,6 +41,12 @@ The tests
     reconstructed output at the modulator rate (AES17 practice for DAC images).
 ``intermodulation``
     SMPTE (60 Hz + 7 kHz, 4:1) and difference-frequency (19 + 20 kHz, 1:1) twin tones.
+``element_mismatch``
+    For NRZ outputs with mismatched unit elements: the -1 dBFS THD+N and -60 dBFS dynamic
+    range as built and with ideal elements, same dither (what the mismatch costs).
+``jitter_sweep``
+    The -60 dBFS dynamic range with 1, 10 and 100 ps rms of white jitter on the output edges
+    (PDM and NRZ). Both are in :mod:`audiodsm.evaluate.battery_impairments`.
 
 Every test's durations are set by a :class:`BatteryPlan`. The default plan keeps the battery of
 a 5th-order single-bit 64x profile within about 20 s on two cores; its resolution is stated in
