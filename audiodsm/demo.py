@@ -257,7 +257,7 @@ def run_demo(
                 say(f"  {g.name}: {g.failure}")
         costs = tradeoff_lines(batch)
         if costs:
-            say(f"\n-- what the {title}'s impairments cost --")
+            say(f"\n-- {title}: what the impairments cost --")
             for line in costs:
                 say("  " + line if line else "")
         reports[product] = write_report(
