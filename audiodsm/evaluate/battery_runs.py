@@ -143,30 +143,72 @@ def _linear_noise_floor(chain):
     return out
 
 
+_GAIN_RUN_SAMPLES = 1 << 17  # modulator samples of the effective-gain fit (after settling)
+_GAIN_SETTLE_SAMPLES = 1 << 12
+_GAIN_LEVEL_DBFS = -60.0  # the level of the tone the density is measured under
+
+
+def _effective_quantizer_gain(chain):
+    """The single-bit quantizer's effective gain in the chain's loop (None for multi-level).
+
+    A sign quantizer has no gain of its own, so the loop sets one; it is fitted by least
+    squares (``design.quantizer_gain.least_squares_gain``) to the quantizer's input and output
+    over a run of the chain's own modulator on the tone the density is measured under (997 Hz
+    at -60 dBFS, times the chain's input scale), the first samples left out while the loop
+    settles. A multi-level quantizer that does not clip has gain 1 by its step.
+    """
+    from audiodsm.design.quantizer_gain import least_squares_gain
+
+    mod = chain.modulator
+    if mod.levels != 2:
+        return None
+    fm = float(chain.modulator_rate_hz)
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    n = _GAIN_SETTLE_SAMPLES + _GAIN_RUN_SAMPLES
+    tone = 10.0 ** (_GAIN_LEVEL_DBFS / 20.0) * scale * np.sin(2.0 * np.pi * _TEST_HZ / fm * np.arange(n))
+    y, v = mod.trace_quantizer_input(tone)
+    return least_squares_gain(v[_GAIN_SETTLE_SAMPLES:], y[_GAIN_SETTLE_SAMPLES:])
+
+
 def _predicted_noise_density(chain):
     """The output noise density the loop's linear model predicts, as a function of Hz.
 
-    Returns ``density(freq_hz)``: power per Hz (full-scale units squared per Hz, one-sided,
-    referred to the chain input like every reading). The quantizer error is white with power
-    ``step**2 / 12``, the TPDF dither (peak ``dither_lsb`` steps, the sum of two uniform
-    variables) adds ``(dither_lsb * step)**2 / 6``; both enter at the quantizer and leave
-    through ``|NTF|**2``, spread over 0 .. fm/2. The semi-digital FIR and the analog filter
-    shape it relative to their gain at 997 Hz (the calibration divides that out), and the
-    chain's input scale refers it to the input. Output-stage effects (PWM) are not modelled.
+    Returns ``(density, gain)``: ``density(freq_hz)`` is power per Hz (full-scale units
+    squared per Hz, one-sided, referred to the chain input like every reading); ``gain`` the
+    single-bit quantizer's effective gain (``QuantizerGain``) or None for a multi-level one.
+
+    Multi-level: the quantizer error is white with power ``step**2 / 12``, the TPDF dither
+    (peak ``dither_lsb`` steps, the sum of two uniform variables) adds
+    ``(dither_lsb * step)**2 / 6``; both enter at the quantizer and leave through
+    ``|NTF|**2``, spread over 0 .. fm/2. Single-bit: the quantizer is the effective gain ``k``
+    plus a white error of the power the fit leaves (dither included), which leaves through
+    the effective NTF ``NTF / (k + (1 - k) NTF)`` (``design.quantizer_gain.effective_ntf``).
+    The semi-digital FIR and the analog filter shape it relative to their gain at 997 Hz (the
+    calibration divides that out), and the chain's input scale refers it to the input.
+    Output-stage effects (PWM) are not modelled.
 
     References
     ----------
     .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
-       ch. 2 (linear model: white error of power step^2/12 shaped by |NTF|^2).
+       ch. 2 (linear model: white error of power step^2/12 shaped by |NTF|^2) and ch. 4
+       (effective gain of a single-bit quantizer).
     .. [2] S. P. Lipshitz, R. A. Wannamaker and J. Vanderkooy, "Quantization and Dither: A
        Theoretical Survey", J. Audio Eng. Soc. 40(5), 1992 (TPDF dither power).
     """
+    from audiodsm.design.quantizer_gain import effective_ntf
+
     mod = chain.modulator
     fm = float(chain.modulator_rate_hz)
     step = float(mod.step)
-    power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
+    ntf = chain.ntf
+    gain = _effective_quantizer_gain(chain)
+    if gain is None:
+        power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
+    else:
+        power = gain.error_power
+        ntf = effective_ntf(ntf, gain.gain)
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
-    ntf, fir, analog = chain.ntf, getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
+    fir, analog = getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
 
     def shaping(f):
         g = np.ones_like(f)
@@ -183,7 +225,7 @@ def _predicted_noise_density(chain):
         ntf_power = np.abs(ntf.response(f / fm)) ** 2
         return power * ntf_power / (fm / 2.0) * shaping(f) / ref / scale**2
 
-    return density
+    return density, gain
 
 
 def _meter(x, rate, frequency_hz, weightings, settle_s):
@@ -501,7 +543,7 @@ def _test_stability(ctx, profile):
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "noise_floor": _linear_noise_floor(chain),
-        "noise_density": _predicted_noise_density(chain),
+        "noise_density": _predicted_noise_density(chain),  # (density, effective gain)
         "notes": [
             f"stability: slow ramps then fixed-level runs of {plan.stability_samples} modulator "
             f"samples at {freqs} Hz, each run with its own dither seed, the lowest limit kept; "

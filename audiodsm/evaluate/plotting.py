@@ -160,6 +160,14 @@ def _db_power(v):
         return 10.0 * np.log10(v)
 
 
+def _prediction_label(c):
+    """The legend of a predicted density: what it assumes of the quantizer."""
+    k = float(np.asarray(c.get("predicted_quantizer_gain", [1.0]), dtype=float)[0])
+    if k == 1.0:
+        return "predicted from the NTF (quantizer gain 1, white error + dither)"
+    return f"predicted from the NTF with effective quantizer gain {k:.2f} (fitted to a run)"
+
+
 def plot_noise_density(curves, *, ax=None, title="Output noise density, whole output band",
                        graded=()):  # fmt: skip
     """The output noise as a density, with the density the designed NTF predicts.
@@ -168,7 +176,8 @@ def plot_noise_density(curves, *, ax=None, title="Output noise density, whole ou
     ----------
     curves : dict
         ``curves["spectrum"]`` with ``frequency_hz`` and ``density_dbfs_per_hz``; optional
-        ``predicted_density_dbfs_per_hz`` (same axis), ``out_of_band_hz`` (the band of the
+        ``predicted_density_dbfs_per_hz`` (same axis) with ``predicted_quantizer_gain`` (the
+        quantizer gain it assumes, named in the legend), ``out_of_band_hz`` (the band of the
         out-of-band noise reading) and ``weighting_db`` (A-weighting, right-hand axis).
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
@@ -189,7 +198,7 @@ def plot_noise_density(curves, *, ax=None, title="Output noise density, whole ou
     if "predicted_density_dbfs_per_hz" in c:
         p = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
         ax.semilogx(f[keep], p[keep], color=_VERMILLION, lw=1.3, ls="--",
-                    label="predicted: (quantizer + dither) x |NTF|^2")  # fmt: skip
+                    label=_prediction_label(c))  # fmt: skip
     _style(ax, title, "frequency (Hz)", "noise density (dBFS/\u221aHz)")
     ax.axvline(20000.0, color=_GREY, lw=0.8, ls=":")
     finite = d[keep][np.isfinite(d[keep])]
@@ -226,7 +235,7 @@ def plot_audio_band_density(curves, *, ax=None, title="Output noise density, aud
     ----------
     curves : dict
         ``curves["audio_spectrum"]`` with ``frequency_hz`` and ``density_dbfs_per_hz``;
-        optional ``predicted_density_dbfs_per_hz``.
+        optional ``predicted_density_dbfs_per_hz`` and ``predicted_quantizer_gain``.
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
     graded : sequence of TargetGrade, keyword-only
@@ -245,7 +254,7 @@ def plot_audio_band_density(curves, *, ax=None, title="Output noise density, aud
     ax.plot(f, d, color=_BLUE, lw=0.6, label="simulated output (-60 dBFS tone in)")
     if "predicted_density_dbfs_per_hz" in c:
         pred = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
-        ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label="predicted by the linear model")
+        ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label=_prediction_label(c))
     res = float(np.asarray(c.get("resolution_hz", [np.nan]))[0])
     _style(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""), "frequency (kHz)",
            "noise density (dBFS/\u221aHz)")  # fmt: skip
