@@ -53,9 +53,12 @@ def test_describing_gain_closes_the_loop_power(order, layout):
     found = single_bit_describing_gain(ntf)
     assert found.error_power == pytest.approx(1.0 - 2.0 / np.pi)
     shaped = effective_ntf(ntf, found.gain)
-    energy = 2.0 * integrate.quad(
-        lambda f: abs(shaped.response(np.array([f]))[0] - 1.0) ** 2, 0.0, 0.5, limit=400
-    )[0]
+    energy = (
+        2.0
+        * integrate.quad(
+            lambda f: abs(shaped.response(np.array([f]))[0] - 1.0) ** 2, 0.0, 0.5, limit=400
+        )[0]
+    )
     s = np.sqrt(energy * found.error_power) / found.gain
     assert found.gain * s == pytest.approx(np.sqrt(2.0 / np.pi), rel=1e-6)
     # the stable root: a gain a little higher would need a larger input than it gets

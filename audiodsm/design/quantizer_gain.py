@@ -172,7 +172,9 @@ def single_bit_describing_gain(ntf: NoiseTransfer) -> QuantizerGain:
         else:
             high = mid
     k = optimize.brentq(excess, low, high, xtol=1e-12)
-    return QuantizerGain(gain=float(k), error_power=float(error_power), method="describing function")
+    return QuantizerGain(
+        gain=float(k), error_power=float(error_power), method="describing function"
+    )
 
 
 def least_squares_gain(quantizer_input, quantizer_output) -> QuantizerGain:

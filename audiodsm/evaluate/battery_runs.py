@@ -165,7 +165,11 @@ def _effective_quantizer_gain(chain):
     fm = float(chain.modulator_rate_hz)
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
     n = _GAIN_SETTLE_SAMPLES + _GAIN_RUN_SAMPLES
-    tone = 10.0 ** (_GAIN_LEVEL_DBFS / 20.0) * scale * np.sin(2.0 * np.pi * _TEST_HZ / fm * np.arange(n))
+    tone = (
+        10.0 ** (_GAIN_LEVEL_DBFS / 20.0)
+        * scale
+        * np.sin(2.0 * np.pi * _TEST_HZ / fm * np.arange(n))
+    )
     y, v = mod.trace_quantizer_input(tone)
     return least_squares_gain(v[_GAIN_SETTLE_SAMPLES:], y[_GAIN_SETTLE_SAMPLES:])
 
