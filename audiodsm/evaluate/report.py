@@ -213,8 +213,27 @@ def report_curves(curves: dict) -> dict:
     return out
 
 
-def _column(v):
-    return "" if isinstance(v, float) and not math.isfinite(v) else repr(v)
+def _column(v, name=""):
+    """One number of a CSV column, rounded for its kind (the column's name says it).
+
+    Levels, ratios and gains (a name with ``db``) to 0.01 dB, below the repeatability of any
+    reading; frequencies (``_hz``) to 1 mHz; whole numbers as integers; anything else to six
+    significant digits. NaN and infinities are empty fields.
+    """
+    if isinstance(v, bool | str):
+        return str(v)
+    v = float(v)
+    if not math.isfinite(v):
+        return ""
+    if "db" in name:
+        text = f"{v:.2f}"
+    elif name.endswith("_hz"):
+        text = f"{v:.3f}".rstrip("0").rstrip(".")
+    elif v.is_integer() and abs(v) < 1e15:
+        text = str(int(v))
+    else:
+        text = f"{v:.6g}"
+    return "0" if text in ("-0", "-0.00", "-0.0") else text
 
 
 def _csv_text(header, rows) -> str:
@@ -222,8 +241,78 @@ def _csv_text(header, rows) -> str:
     w = csv.writer(buf, lineterminator="\r\n")
     w.writerow(header)
     for row in rows:
-        w.writerow(["" if v is None else v if isinstance(v, str) else _column(v) for v in row])
+        w.writerow(["" if v is None else _column(v, k) for k, v in zip(header, row, strict=True)])
     return buf.getvalue()
+
+
+#: The whole-band spectrum's CSV in the report: every bin up to this frequency ...
+_CSV_FULL_BELOW_HZ = 24000.0
+#: ... and above it the bins averaged over bands of 1/96 octave (on the plot's log axis a
+#: band is under one pixel wide).
+_CSV_BANDS_PER_OCTAVE = 96
+#: The overlaid audio-band densities are drawn averaged over runs of this many bins.
+_OVERLAY_BINS = 8
+
+
+def _averaged_curve(c: dict, groups) -> dict:
+    """A spectrum curve with its bins averaged over ``groups`` (a group id per bin, runs).
+
+    Columns in dB (a name with ``db``) are averaged in power, the others arithmetically, over
+    the finite values of each group; ``bins_averaged`` counts the bins of each row. Arrays
+    of another length than the spectrum's (``resolution_hz``, ...) are kept as they are.
+    """
+    f = np.asarray(c["frequency_hz"], dtype=float)
+    groups = np.asarray(groups)
+    index = np.cumsum(np.r_[True, groups[1:] != groups[:-1]]) - 1  # bin -> row
+    counts = np.bincount(index)
+    out = {}
+    for key, value in c.items():
+        a = np.asarray(value)
+        if a.ndim != 1 or a.size != f.size or a.dtype.kind not in "fiu":
+            out[key] = value
+            continue
+        x = a.astype(float)
+        if "db" in key:
+            with np.errstate(over="ignore"):
+                x = 10.0 ** (x / 10.0)
+        ok = np.isfinite(x)
+        total = np.bincount(index, np.where(ok, x, 0.0), minlength=counts.size)
+        used = np.bincount(index, ok.astype(float), minlength=counts.size)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            mean = np.where(used > 0, total / np.maximum(used, 1.0), np.nan)
+            row = 10.0 * np.log10(mean) if "db" in key else mean
+        alone = counts[index] == 1  # a bin that is its own row keeps its value exactly
+        row[index[alone]] = a[alone]
+        out[key] = row
+    out["bins_averaged"] = counts.astype(float)
+    return out
+
+
+def _thinned_wide_spectrum(c: dict) -> dict:
+    """The whole-band spectrum for its CSV: fine below 24 kHz, 1/96-octave bands above."""
+    f = np.asarray(c["frequency_hz"], dtype=float)
+    above = f > _CSV_FULL_BELOW_HZ
+    with np.errstate(divide="ignore"):
+        band = np.floor(_CSV_BANDS_PER_OCTAVE * np.log2(np.maximum(f, 1e-300) / _CSV_FULL_BELOW_HZ))
+    groups = np.where(above, f.size + band, np.arange(f.size))
+    return _averaged_curve(c, groups.astype(np.int64))
+
+
+def _overlay_density_curves(profiles):
+    """The audio-band densities as the overlay draws them: power means of 8-bin runs."""
+    out = []
+    for name, curves in profiles:
+        c = curves.get("audio_spectrum") if isinstance(curves, dict) else None
+        if isinstance(c, dict):
+            n = np.asarray(c["frequency_hz"]).size // _OVERLAY_BINS * _OVERLAY_BINS
+            cut = {k: (np.asarray(v)[:n] if np.ndim(v) == 1 and np.size(v) > n else v)
+                   for k, v in c.items()}  # fmt: skip
+            curves = {
+                **curves,
+                "audio_spectrum": _averaged_curve(cut, np.arange(n) // _OVERLAY_BINS),
+            }
+        out.append((name, curves))
+    return out
 
 
 def _curve_table(curves: dict, name: str):
@@ -414,6 +503,10 @@ def render_html(batch, *, title=None) -> str:
         if g.curves:
             curves = report_curves(g.curves)
             with_curves.append((g.name, curves, rank - 1))
+            # the CSV beside each plot: the whole-band spectrum thinned above the audio band
+            data = dict(curves)
+            if isinstance(curves.get("spectrum"), dict):
+                data["spectrum"] = _thinned_wide_spectrum(curves["spectrum"])
             plots = []
             for name, fn, caption in plotting.PLOTS:
                 try:
@@ -426,7 +519,7 @@ def render_html(batch, *, title=None) -> str:
                         "caption": caption,
                         "png": _png_base64(fig),
                         "id": f"profile-{rank}-{name}",
-                        "csv": _b64(curve_to_csv(curves, name)),
+                        "csv": _b64(curve_to_csv(data, name)),
                         "csv_name": f"{_file_stem(g.name)}-{name}.csv",
                     }
                 )
@@ -438,12 +531,15 @@ def render_html(batch, *, title=None) -> str:
             if not any(curve in c for _, c, _ in with_curves):
                 continue
             fig = plotting.plot_overlay(kind, with_curves)
+            drawn = [(n, c) for n, c, _ in with_curves]
+            if kind == "noise_density":
+                drawn = _overlay_density_curves(drawn)
             overlays.append(
                 {
                     "caption": caption,
                     "png": _png_base64(fig),
                     "id": f"overlay-{kind}",
-                    "csv": _b64(overlay_to_csv(curve, [(n, c) for n, c, _ in with_curves])),
+                    "csv": _b64(overlay_to_csv(curve, drawn)),
                     "csv_name": f"every-profile-{kind}.csv",
                 }
             )
