@@ -9,7 +9,9 @@
     per profile: its readings against the spec sheet, every battery metric, the battery's
     notes and the plots of :data:`audiodsm.evaluate.plotting.PLOTS` with the spec limits
     drawn (docs/report.md). The plots are embedded as base64 PNG and each one's data as a
-    base64 CSV download, so the page is a single file that opens anywhere.
+    base64 CSV download, so the page is a single file that opens anywhere; the downloads are
+    kept lean (numbers rounded by kind, the whole-band spectrum averaged over 1/96-octave
+    bands above 24 kHz, the overlaid densities as drawn).
 ``grades.json``
     :func:`batch_to_dict` of the batch.
 ``grades.csv``
@@ -361,7 +363,9 @@ def curve_to_csv(curves: dict, name: str) -> str:
     """One battery curve as CSV text (RFC 4180, CRLF lines), the data behind its plot.
 
     Every 1-D array of the curve's length becomes a column named as the array; NaN and
-    infinities become empty fields. ``thd_n_vs_frequency`` gets one THD+N column (and one
+    infinities become empty fields. Numbers are rounded by their kind: a column whose name
+    holds ``db`` to 0.01 dB, one ending in ``_hz`` to 1 mHz, whole numbers as integers, the
+    rest to six significant digits. ``thd_n_vs_frequency`` gets one THD+N column (and one
     reason column) per tone level; ``state_histograms`` one row per state and bin.
 
     Parameters
