@@ -426,6 +426,15 @@ def unstable_result():
     return run_battery(load_profile(UNSTABLE), tests=tests, plan=BatteryPlan.quick(), jobs=2)
 
 
+def test_unstable_loop_gets_the_unit_gain_prediction(unstable_result):
+    # The order-8 single-bit loop overloads on the -60 dBFS tone: the gain fitted to that run
+    # (about 0.15) would make the effective NTF unstable (its poles leave the unit circle), so
+    # there is no effective gain to model and the prediction falls back to unit gain.
+    c = unstable_result.curves["spectrum"]
+    assert c["predicted_quantizer_gain"][0] == 1.0
+    assert np.isfinite(c["predicted_density_dbfs_per_hz"][1:]).all()
+
+
 def test_unstable_loop_readings_are_invalid_with_reasons(unstable_result):
     # Order 8, out-of-band gain 6, single-bit: far past Lee's rule for single-bit loops (peak
     # NTF gain about 1.5; common practice, Schreier & Temes 2005, ch. 4). It overloads at

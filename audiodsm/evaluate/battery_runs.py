@@ -15,6 +15,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from audiodsm.errors import ParameterError
 from audiodsm.measure.spectrum import NUMERIC_FLOOR_DBFS
 
 _TEST_HZ = 997.0
@@ -205,12 +206,16 @@ def _predicted_noise_density(chain):
     fm = float(chain.modulator_rate_hz)
     step = float(mod.step)
     ntf = chain.ntf
-    gain = _effective_quantizer_gain(chain)
+    try:
+        gain = _effective_quantizer_gain(chain)
+        if gain is not None:
+            ntf = effective_ntf(ntf, gain.gain)
+    except ParameterError:  # a loop that overloads on the tone: no gain to model; unit gain
+        gain = None
     if gain is None:
         power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
     else:
         power = gain.error_power
-        ntf = effective_ntf(ntf, gain.gain)
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
     fir, analog = getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
 
