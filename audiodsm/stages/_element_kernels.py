@@ -191,3 +191,157 @@ def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out
         prev = level
     held[0] = prev
     held[1] = pending
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _area_before(shift, ramp):
+    """Area of a unit edge's ramp before its nominal instant (slot units).
+
+    The edge starts at ``shift`` and rises linearly to 1 over ``ramp`` (a step when 0); the
+    area of that ramp on ``(-inf, 0]`` is ``0`` (the ramp starts after 0), ``-shift - ramp/2``
+    (it ends before 0) or ``shift^2 / (2 ramp)`` (it straddles 0).
+    """
+    if shift >= 0.0:
+        return 0.0
+    if ramp == 0.0 or shift + ramp <= 0.0:
+        return -shift - 0.5 * ramp
+    return shift * shift / (2.0 * ramp)
+
+
+@njit(cache=True, nogil=True)
+def edge_slot_means(levels, shifts, start, sine_peak, sine_ratio, rise, fall, top, rz, held, out):
+    """Exact slot means of a PDM / NRZ / RZ output whose edges ramp and are displaced.
+
+    A frame is ``S`` slots of equal length (``S = 1``: NRZ, the frame's level; ``S = 2``:
+    return-to-zero, the level then 0). Every slot starts with an edge, displaced by
+    ``shifts[e] + sine_peak sin(2 pi ((start + e) sine_ratio mod 1))`` slots (``e`` the
+    block's edge index, ``start`` the first edge's global index), clipped to ``[-1/2, 1/2]``.
+    An edge is an up part (ramp of ``rise`` slots) and a down part (``fall`` slots): NRZ, the
+    net step (up when positive); RZ, the unit elements' parts, the ``k`` elements at ``+a``
+    and the ``N - k`` at ``-a`` switching apart (``top = N a``: up ``(L + top) / 2`` and down
+    ``(L - top) / 2`` into a level ``L``, the negatives back to 0). A part of step ``s``
+    changes the slot before the edge by ``s P`` and the slot after it by ``s (-shift -
+    ramp / 2 - P)``, ``P`` = :func:`_area_before` (exact integrals of the linear ramp, whose
+    span lies inside those two slots when ``rise, fall < 1/2``). ``out[i]`` (shape (n, S)) is
+    frame ``i - 1``; ``held`` = (last level, the held frame's ``S`` slot means), updated.
+    """
+    n = levels.shape[0]
+    n_slots = out.shape[1]
+    prev = held[0]
+    last = np.empty(n_slots)
+    cur = np.empty(n_slots)
+    for s in range(n_slots):
+        last[s] = held[1 + s]
+    for i in range(n):
+        level = levels[i]
+        for s in range(n_slots):
+            e = i * n_slots + s
+            shift = shifts[e]
+            if sine_peak != 0.0:
+                cycles = ((start + e) * sine_ratio) % 1.0
+                shift += sine_peak * np.sin(2.0 * np.pi * cycles)
+            shift = min(max(shift, -0.5), 0.5)
+            if not rz:
+                step = level - prev
+                up = step if step > 0.0 else 0.0
+                down = step if step < 0.0 else 0.0
+                value = level
+                prev = level
+            elif s == 0:
+                up = 0.5 * (level + top)
+                down = 0.5 * (level - top)
+                value = level
+            else:
+                up = 0.5 * (top - level)
+                down = -0.5 * (level + top)
+                value = 0.0
+            b_up = _area_before(shift, rise)
+            b_down = _area_before(shift, fall)
+            before = up * b_up + down * b_down
+            after = up * (-shift - 0.5 * rise - b_up) + down * (-shift - 0.5 * fall - b_down)
+            if s == 0:
+                last[n_slots - 1] += before
+                for q in range(n_slots):
+                    out[i, q] = last[q]
+            else:
+                cur[s - 1] += before
+            cur[s] = value + after
+        for q in range(n_slots):
+            last[q] = cur[q]
+    held[0] = prev
+    for s in range(n_slots):
+        held[1 + s] = last[s]
+
+
+@njit(cache=True, nogil=True)
+def jittered_segments(
+    levels,
+    ticks,
+    shifts,
+    start,
+    ticks_per_frame,
+    sine_peak,
+    sine_ratio,
+    held_levels,
+    held_ticks,
+    held,
+    out_levels,
+    out_ticks,
+):
+    """Exact segment means of a PWM waveform whose every edge is displaced (in ticks).
+
+    An edge is a level change between two consecutive segments of nonzero length (edges of
+    both legs at one tick share the clock edge, so they move together). It sits on a tick
+    ``t`` of frame ``i`` and moves by ``shifts[e]`` (consumed in order) plus ``sine_peak
+    sin(2 pi (((start + i) sine_ratio + t sine_ratio / ticks_per_frame) mod 1))`` ticks,
+    clipped to ``[-1/2, 1/2]``; ``start`` is the block's first global frame. The area moved,
+    ``-step * shift`` (tick units), lies inside the segment after the edge (late) or before
+    it (early), each at least one tick long: that segment's level gains ``area / length``, so
+    every segment keeps its exact integral. An early edge at a frame's start changes the
+    previous frame, so the output runs one frame behind: ``out_*[i]`` is frame ``i - 1``.
+    ``held_levels``, ``held_ticks``: (S,) the held frame, updated; ``held`` = (last level,
+    index of the held frame's last nonzero segment), updated.
+    """
+    n = levels.shape[0]
+    n_seg = levels.shape[1]
+    prev = held[0]
+    last_j = int(held[1])
+    in_cur = False
+    cur = np.empty(n_seg)
+    e = 0
+    step_ratio = sine_ratio / ticks_per_frame
+    for i in range(n):
+        t = 0
+        for j in range(n_seg):
+            cur[j] = levels[i, j]
+        for j in range(n_seg):
+            k = ticks[i, j]
+            if k == 0:
+                continue
+            level = levels[i, j]
+            if level != prev:
+                shift = shifts[e]
+                e += 1
+                if sine_peak != 0.0:
+                    cycles = ((start + i) * sine_ratio + t * step_ratio) % 1.0
+                    shift += sine_peak * np.sin(2.0 * np.pi * cycles)
+                shift = min(max(shift, -0.5), 0.5)
+                moved = -(level - prev) * shift
+                if shift > 0.0:
+                    cur[j] += moved / k
+                elif in_cur:
+                    cur[last_j] += moved / ticks[i, last_j]
+                else:
+                    held_levels[last_j] += moved / held_ticks[last_j]
+                prev = level
+            last_j = j
+            in_cur = True
+            t += k
+        for j in range(n_seg):
+            out_levels[i, j] = held_levels[j]
+            out_ticks[i, j] = held_ticks[j]
+            held_levels[j] = cur[j]
+            held_ticks[j] = ticks[i, j]
+        in_cur = False
+    held[0] = prev
+    held[1] = last_j
