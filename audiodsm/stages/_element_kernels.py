@@ -288,32 +288,45 @@ def jittered_segments(
     out_levels,
     out_ticks,
 ):
-    """Exact segment means of a PWM waveform whose every edge is displaced (in ticks).
+    """Exact tick means of a PWM waveform whose every edge is displaced (in ticks).
 
     An edge is a level change between two consecutive segments of nonzero length (edges of
     both legs at one tick share the clock edge, so they move together). It sits on a tick
     ``t`` of frame ``i`` and moves by ``shifts[e]`` (consumed in order) plus ``sine_peak
     sin(2 pi (((start + i) sine_ratio + t sine_ratio / ticks_per_frame) mod 1))`` ticks,
     clipped to ``[-1/2, 1/2]``; ``start`` is the block's first global frame. The area moved,
-    ``-step * shift`` (tick units), lies inside the segment after the edge (late) or before
-    it (early), each at least one tick long: that segment's level gains ``area / length``, so
-    every segment keeps its exact integral. An early edge at a frame's start changes the
-    previous frame, so the output runs one frame behind: ``out_*[i]`` is frame ``i - 1``.
-    ``held_levels``, ``held_ticks``: (S,) the held frame, updated; ``held`` = (last level,
-    index of the held frame's last nonzero segment), updated.
+    ``-step * shift`` (tick units), lies inside the tick after the edge (late) or the tick
+    before it (early). Every input segment ``j`` of ``k`` ticks becomes three output pieces
+    ``3 j .. 3 j + 2``: its first tick, the ``k - 2`` ticks between, its last tick (``k = 1``:
+    the first piece alone), and the moved area goes into the piece of that one tick, so the
+    mean of every tick is exact and the moved area sits within a tick of its edge (a wider
+    spread would misplace the nearly cancelling areas of a pulse's two edges). An early edge
+    at a frame's start changes the previous frame, so the output runs one frame behind:
+    ``out_*[i]`` (shape (n, 3 S)) is frame ``i - 1``. ``held_levels``, ``held_ticks``: (3 S,)
+    the held frame's pieces, updated; ``held`` = (last level, piece index of the held frame's
+    last nonzero tick), updated.
     """
     n = levels.shape[0]
     n_seg = levels.shape[1]
+    n_out = 3 * n_seg
     prev = held[0]
-    last_j = int(held[1])
+    last_p = int(held[1])
     in_cur = False
-    cur = np.empty(n_seg)
+    cur = np.empty(n_out)
+    cur_ticks = np.empty(n_out, np.int64)
     e = 0
     step_ratio = sine_ratio / ticks_per_frame
     for i in range(n):
         t = 0
         for j in range(n_seg):
-            cur[j] = levels[i, j]
+            k = ticks[i, j]
+            level = levels[i, j]
+            cur[3 * j] = level
+            cur[3 * j + 1] = level
+            cur[3 * j + 2] = level
+            cur_ticks[3 * j] = 1 if k > 0 else 0
+            cur_ticks[3 * j + 1] = k - 2 if k > 2 else 0
+            cur_ticks[3 * j + 2] = 1 if k > 1 else 0
         for j in range(n_seg):
             k = ticks[i, j]
             if k == 0:
@@ -328,20 +341,20 @@ def jittered_segments(
                 shift = min(max(shift, -0.5), 0.5)
                 moved = -(level - prev) * shift
                 if shift > 0.0:
-                    cur[j] += moved / k
+                    cur[3 * j] += moved
                 elif in_cur:
-                    cur[last_j] += moved / ticks[i, last_j]
+                    cur[last_p] += moved
                 else:
-                    held_levels[last_j] += moved / held_ticks[last_j]
+                    held_levels[last_p] += moved
                 prev = level
-            last_j = j
+            last_p = 3 * j + 2 if k > 1 else 3 * j
             in_cur = True
             t += k
-        for j in range(n_seg):
-            out_levels[i, j] = held_levels[j]
-            out_ticks[i, j] = held_ticks[j]
-            held_levels[j] = cur[j]
-            held_ticks[j] = ticks[i, j]
+        for q in range(n_out):
+            out_levels[i, q] = held_levels[q]
+            out_ticks[i, q] = held_ticks[q]
+            held_levels[q] = cur[q]
+            held_ticks[q] = cur_ticks[q]
         in_cur = False
     held[0] = prev
-    held[1] = last_j
+    held[1] = last_p

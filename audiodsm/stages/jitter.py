@@ -30,8 +30,11 @@ in every frame mean, an offset, and the distortion vanishes at the cost of a gai
 
 PWM (:meth:`EdgeJitter.process_waveform` on a waveform of several ticks a frame): every
 level change between two segments is an edge on the tick clock, displaced by the same law
-in ticks; the area it moves stays inside the segment after it (late) or before it (early),
-whose level is set to its exact mean. Displacements are limited to half a tick.
+in ticks; the area it moves stays inside the tick after it (late) or before it (early),
+whose level is set to its exact mean. That tick is split off its segment: a pulse's two
+edges move nearly equal and opposite areas, and spreading them over segments of unequal
+length would misplace them by a good part of a frame, an error of the same order as the
+jitter's own effect. Displacements are limited to half a tick.
 
 References
 ----------
@@ -263,8 +266,9 @@ class EdgeJitter:
         Returns
         -------
         waveform : PulseWaveform
-            Same frame count; one segment a frame (NRZ, PDM), two (RZ), or the PWM
-            waveform's segments with their exact means.
+            Same frame count; one segment a frame (NRZ, PDM), two (RZ), or, for PWM, three
+            pieces per input segment (its first tick, the ticks between, its last tick)
+            with the exact mean of every tick.
         state : JitterState
         """
         from audiodsm.stages.output_stage import PulseWaveform
@@ -287,18 +291,19 @@ class EdgeJitter:
         if len(st.held) > 2:
             held_levels = np.array(st.held[2], dtype=np.float64)
             held_ticks = np.array(st.held[3], dtype=np.int64)
-        else:  # the rest frame: the whole frame at 0
-            held_levels = np.zeros(n_seg)
-            held_ticks = np.zeros(n_seg, dtype=np.int64)
-            held_ticks[0] = self.ticks_per_frame
+        else:  # the rest frame: the whole frame at 0, as first tick, middle, last tick
+            held_levels = np.zeros(3 * n_seg)
+            held_ticks = np.zeros(3 * n_seg, dtype=np.int64)
+            held_ticks[:3] = (1, self.ticks_per_frame - 2, 1)
+            last_j = 2
         on = levels[ticks > 0]  # row-major: the segments in time order
         edges = int(np.count_nonzero(np.diff(on, prepend=prev) != 0.0)) if on.size else 0
         gen = np.random.Generator(np.random.PCG64())
         gen.bit_generator.state = st.generator
         shift = self._random_shifts(edges, gen)
         held = np.array([prev, last_j], dtype=np.float64)
-        out_levels = np.empty((n, n_seg))
-        out_ticks = np.empty((n, n_seg), dtype=np.int64)
+        out_levels = np.empty((n, 3 * n_seg))
+        out_ticks = np.empty((n, 3 * n_seg), dtype=np.int64)
         _k.jittered_segments(
             levels,
             ticks,
