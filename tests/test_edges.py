@@ -469,3 +469,38 @@ def test_pwm_jitter_refused_with_dead_time_and_beyond_half_a_tick():
     profile = _with(load_profile(PWM9), jitter_rms_s=5e-9)  # 10 sigma > half the 81 ns tick
     with pytest.raises(ProfileError, match="half a PWM tick"):
         Chain.from_profile(profile, 48000, 1)
+
+
+def test_battery_jitter_reading_of_pwm_predicts_the_jittered_chain():
+    # The battery's reading for PWM (the estimate above from every edge's squared step, at
+    # 1 ps) against the chain with 2 ns rms white jitter on its PWM edges: the added in-band
+    # noise of the error path is the reading + 20 log10(2000) within 1 dB (the LC filter's
+    # small rise toward 20 kHz shapes the white jitter noise a little).
+    from audiodsm.evaluate.battery import BatteryPlan, run_battery
+
+    profile = load_profile(PWM9)
+    res = run_battery(profile, tests=("dynamic_range",), plan=BatteryPlan.quick())
+    reading = res.metrics["jitter_noise_dbfs_at_1ps"]
+    assert reading is not None and np.isfinite(reading)
+    rate, sigma, n, skip = 48000, 2e-9, 1 << 16, 4096
+    x = 10 ** (-60 / 20) * np.sin(2 * np.pi * 997 * np.arange(n) / rate)
+
+    def band_power(p):
+        error = Chain.from_profile(p, rate, 1).process(x, keep=("error",))[0].error[skip:, 0]
+        freqs, psd = welch(error, fs=rate, nperseg=1 << 13)
+        return float(np.sum(psd[freqs <= 20000.0]) * (freqs[1] - freqs[0]))
+
+    added = band_power(_with(profile, jitter_rms_s=sigma, part_seed=2)) - band_power(profile)
+    got_dbfs = 10 * np.log10(added / 0.5)
+    assert abs(got_dbfs - (reading + 20 * np.log10(sigma / 1e-12))) <= 1.0, (got_dbfs, reading)
+
+
+def test_return_to_zero_refused_with_a_semi_digital_fir():
+    text = PDM2.read_text() + "\n[impairments]\nreturn_to_zero = true\n"
+    if "[reconstruction]" in text:
+        text = text.replace("[reconstruction]", "[reconstruction]\nfir_taps = [0.5, 0.5]", 1)
+    else:
+        text += "\n[reconstruction]\nfir_taps = [0.5, 0.5]\n"
+    with pytest.raises(ProfileError, match="impairments.return_to_zero") as info:
+        parse_profile(text)
+    assert "\n" not in str(info.value) and "fir_taps" in str(info.value)
