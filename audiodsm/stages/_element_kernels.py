@@ -1,6 +1,6 @@
-"""Compiled inner loops of the unit-element and edge-jitter stages, and nothing else.
+"""Compiled inner loops of the unit-element, edge and analog-noise stages, and nothing else.
 
-The stages are stages/elements.py and stages/jitter.py.
+The stages are stages/elements.py, stages/jitter.py and stages/analog_noise.py.
 Same rules as the other kernel modules: ``@njit(cache=True, nogil=True)``, no fastmath,
 contiguous arrays in, caller-allocated outputs and state arrays updated in place, no
 validation (the wrappers validate, convert, allocate and call). Each kernel has a slow
@@ -154,6 +154,30 @@ def select_vector_shaped(codes, half, errors, past, out):
             past[0, i] += 1.0
             acc += errors[i]
         out[n] = (k - half) + (acc - 0.5 * total)
+
+
+@njit(cache=True, nogil=True)
+def relaxation_noise(draws, start, frame_std, poles, gains, holds, relax, out):
+    """White frame means plus a sum of held first-order relaxation processes (the 1/f part).
+
+    ``draws`` is consumed in order, frame by frame: the white draw, then one draw for every
+    process ``i`` whose update falls on the frame (global frame ``start + t`` a multiple of
+    ``holds[i]``): ``x_i <- gains[i] draw + poles[i] x_i``, held until its next update.
+    ``out[t] = frame_std white + sum_i x_i`` (added in process order); ``relax``: the
+    ``x_i``, updated.
+    """
+    p = poles.size
+    e = 0
+    for t in range(out.size):
+        frame = start + t
+        acc = frame_std * draws[e]
+        e += 1
+        for i in range(p):
+            if frame % holds[i] == 0:
+                relax[i] = gains[i] * draws[e] + poles[i] * relax[i]
+                e += 1
+            acc += relax[i]
+        out[t] = acc
 
 
 @njit(cache=True, nogil=True)
