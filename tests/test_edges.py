@@ -504,3 +504,18 @@ def test_return_to_zero_refused_with_a_semi_digital_fir():
     with pytest.raises(ProfileError, match="impairments.return_to_zero") as info:
         parse_profile(text)
     assert "\n" not in str(info.value) and "fir_taps" in str(info.value)
+
+
+@pytest.mark.parametrize("levels", [2, 17])
+def test_return_to_zero_white_jitter_noise_counts_two_edges_a_frame(levels):
+    # The same derivation as for PWM (each edge an independent pulse of area -step delta):
+    # with return to zero every frame has two edges of the held level y, so the in-band noise
+    # of the frame means is (sigma / T)^2 2 E[y^2] / OSR (the battery's reading for RZ).
+    n, osr, sigma = 1 << 18, 64, 1e-9
+    y = _stream(levels, n)
+    out, _ = EdgeJitter(RATE, rms_s=sigma, return_to_zero=True, seed=4).process(y)
+    error = out.mean(axis=1)[1:] - 0.5 * y[:-1]  # one frame behind
+    freqs, psd = welch(error, fs=1.0, nperseg=1 << 14)
+    got = np.sum(psd[freqs <= 0.5 / osr]) * (freqs[1] - freqs[0])
+    want = (sigma * RATE) ** 2 * 2.0 * np.mean(y * y) / osr
+    assert abs(10 * np.log10(got / want)) <= 0.5, (got, want)

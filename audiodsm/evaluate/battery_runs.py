@@ -363,7 +363,8 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
     the band ``B``; referred to the listening full scale through the chain's calibration.
     PWM: every edge of the PWM waveform (without dead time) adds its own independent error,
     so ``E[(y[n] - y[n-1])^2]`` becomes the mean over frames of the sum of a frame's squared
-    edge steps (derivation in tests/test_edges.py, checked against the jitter stage there).
+    edge steps (derivation in tests/test_edges.py, checked against the jitter stage there);
+    with return to zero, two edges a frame of the held level each: ``2 E[y^2]``.
 
     Returns
     -------
@@ -380,6 +381,9 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
         wf, _, _ = chain._waveform(m, None)
         steps = np.diff(wf.levels[wf.ticks > 0]) / chain.gain  # listening full-scale units
         mean_square = float(np.sum(steps * steps)) / max(m.size, 1)
+    elif profile.impairments.return_to_zero:  # two edges a frame, each the held level
+        held = m * (2.0 * chain.stage_gain / chain.gain)  # RZ halves the mean, not the level
+        mean_square = 2.0 * float(np.mean(held * held))
     else:
         steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
         mean_square = float(np.mean(steps * steps))
