@@ -519,3 +519,26 @@ def test_return_to_zero_white_jitter_noise_counts_two_edges_a_frame(levels):
     got = np.sum(psd[freqs <= 0.5 / osr]) * (freqs[1] - freqs[0])
     want = (sigma * RATE) ** 2 * 2.0 * np.mean(y * y) / osr
     assert abs(10 * np.log10(got / want)) <= 0.5, (got, want)
+
+
+def test_sine_jitter_by_rotation_stays_at_the_exact_sine():
+    # the sinusoidal jitter's sine is rotated from anchors (stages/_element_kernels.py); the
+    # reference is numpy's sine of the same phase, 2 pi ((start + n) ratio mod 1)
+    from audiodsm.stages import _element_kernels as kernels
+
+    # (at large indices the reference's own phase n * ratio rounds to about 1e-16 n ratio
+    # cycles, so the bound is for the first few million edges, a second at 3 MHz)
+    ratio, peak = 1234.5 / 3.072e6, 0.3
+    for start in (0, 1, 1023, 1024, 3_000_017):
+        got = np.zeros(5000)
+        kernels.add_sine_shifts(got, start, peak, ratio)
+        n = np.arange(start, start + 5000, dtype=np.float64)
+        want = peak * np.sin(2 * np.pi * np.mod(n * ratio, 1.0))
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-11 * peak)
+    # any split gives the same numbers
+    whole = np.zeros(3000)
+    kernels.add_sine_shifts(whole, 777, peak, ratio)
+    parts = [np.zeros(1000), np.zeros(2000)]
+    kernels.add_sine_shifts(parts[0], 777, peak, ratio)
+    kernels.add_sine_shifts(parts[1], 1777, peak, ratio)
+    np.testing.assert_array_equal(np.concatenate(parts), whole)

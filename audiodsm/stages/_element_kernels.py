@@ -217,6 +217,39 @@ def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out
     held[1] = pending
 
 
+#: The sine of the sinusoidal jitter is computed exactly at every global edge index that is a
+#: multiple of this, and by rotation between.
+SINE_ANCHOR = 1024
+
+
+@njit(cache=True, nogil=True)
+def add_sine_shifts(shifts, start, peak, ratio):
+    """Add ``peak sin(2 pi ((start + n) ratio mod 1))`` to ``shifts[n]`` (in place).
+
+    The sine is computed exactly at every global index ``start + n`` that is a multiple of
+    :data:`SINE_ANCHOR` and by rotating the phasor by ``2 pi ratio`` per index between: a
+    few rounding steps from the exact value (a relative error near 1e-13 at most), the same
+    numbers whatever the block boundaries, and a fraction of the cost of a sine per edge.
+    """
+    step = 2.0 * np.pi * ratio
+    c_step = np.cos(step)
+    s_step = np.sin(step)
+    base = start - start % SINE_ANCHOR
+    phase = 2.0 * np.pi * ((base * ratio) % 1.0)
+    s = np.sin(phase)
+    c = np.cos(phase)
+    for _ in range(start - base):
+        s, c = s * c_step + c * s_step, c * c_step - s * s_step
+    for n in range(shifts.size):
+        index = start + n
+        if index % SINE_ANCHOR == 0:
+            phase = 2.0 * np.pi * ((index * ratio) % 1.0)
+            s = np.sin(phase)
+            c = np.cos(phase)
+        shifts[n] += peak * s
+        s, c = s * c_step + c * s_step, c * c_step - s * s_step
+
+
 @njit(cache=True, nogil=True, inline="always")
 def _area_before(shift, ramp):
     """Area of a unit edge's ramp before its nominal instant (slot units).

@@ -226,16 +226,18 @@ class EdgeJitter:
         held = np.array(st.held, dtype=np.float64)
         peak = self.sine_peak_s * self._slot_rate
         ratio = self.sine_hz / self._slot_rate
+        if peak != 0.0:  # the sine by anchored rotation, added to the random part
+            _k.add_sine_shifts(shift, st.frames * self.slots, peak, ratio)
         if self._plain:
             out = np.empty(levels.size)
-            _k.jittered_frame_means(levels, shift, st.frames, peak, ratio, held, out)
+            _k.jittered_frame_means(levels, shift, st.frames, 0.0, ratio, held, out)
         else:
             out = np.empty((levels.size, self.slots))
             _k.edge_slot_means(
                 levels,
                 shift,
                 st.frames * self.slots,
-                peak,
+                0.0,
                 ratio,
                 self.rise_s * self._slot_rate,
                 self.fall_s * self._slot_rate,
