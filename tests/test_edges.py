@@ -542,3 +542,14 @@ def test_sine_jitter_by_rotation_stays_at_the_exact_sine():
     kernels.add_sine_shifts(parts[0], 777, peak, ratio)
     kernels.add_sine_shifts(parts[1], 1777, peak, ratio)
     np.testing.assert_array_equal(np.concatenate(parts), whole)
+
+
+def test_return_to_zero_counts_two_switchings_a_frame():
+    # a single-bit stream never rests at 0: with return to zero it switches out of 0 and
+    # back in every frame, twice the frame rate
+    profile = _with(load_profile(PDM2), return_to_zero=True)
+    chain = Chain.from_profile(profile, 48000, 1)
+    x = 0.25 * np.sin(2 * np.pi * 997 * np.arange(2000) / 48000)
+    result, state = chain.process(x)
+    frames = 2000 * chain.modulator_rate_hz / 48000
+    assert state.stats.switching_events[0] == 2 * frames

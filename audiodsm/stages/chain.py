@@ -458,6 +458,8 @@ class Chain:
         prev = st.last_level
         if self.profile.output.kind == "pwm":
             switches = None  # the PWM stage counts its own edges
+        elif self.profile.impairments.return_to_zero:  # out of 0 and back in every frame
+            switches = 2 * int(np.count_nonzero(y))
         elif y.size:
             first = prev is not None and y[0] != prev
             switches = int(np.count_nonzero(y[1:] != y[:-1])) + int(first)
