@@ -19,7 +19,7 @@ Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
 Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
-    level_codes
+    level_codes, return_to_zero_waveform
 Stream files (``audiodsm.stages.stream_export``)
     PackedBitsWriter, write_packed_bits, read_packed_bits, CodeTextWriter, write_code_text,
     read_code_text
@@ -141,6 +141,7 @@ _PUBLIC = {
     "PwmStats": "audiodsm.stages.output_stage",
     "PwmState": "audiodsm.stages.output_stage",
     "level_codes": "audiodsm.stages.output_stage",
+    "return_to_zero_waveform": "audiodsm.stages.output_stage",
     "PackedBitsWriter": "audiodsm.stages.stream_export",
     "write_packed_bits": "audiodsm.stages.stream_export",
     "read_packed_bits": "audiodsm.stages.stream_export",

@@ -671,8 +671,9 @@ class ImpairmentSettings:
     """How the built converter departs from the ideal one (``[impairments]``).
 
     See docs/impairments.md. Every key at its default is the ideal converter. The element
-    keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the jitter keys to PDM
-    and NRZ outputs, the analog noise to every output.
+    keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the edge keys (rise and
+    fall times, return to zero) to PDM and NRZ outputs, the jitter keys to PDM, NRZ and PWM
+    outputs, the analog noise to every output.
     """
 
     element_mismatch: float = _key(
@@ -704,14 +705,15 @@ class ImpairmentSettings:
         "a number from 0 to 1e-6 (seconds)",
         _float_range(0.0, 1e-6),
         doc="Standard deviation of the random (white Gaussian) displacement of every output "
-        "edge, in seconds (PDM, NRZ).",
+        "edge, in seconds (PDM, NRZ, PWM).",
     )
     jitter_sine_peak_s: float = _key(
         0.0,
         "float",
         "a number from 0 to 1e-6 (seconds)",
         _float_range(0.0, 1e-6),
-        doc="Peak displacement of the output edges by sinusoidal jitter, in seconds (PDM, NRZ).",
+        doc="Peak displacement of the output edges by sinusoidal jitter, in seconds (PDM, NRZ, "
+        "PWM).",
     )
     jitter_sine_hz: float = _key(
         0.0,
@@ -719,6 +721,29 @@ class ImpairmentSettings:
         "a number from 0 to 1e8 (Hz)",
         _float_range(0.0, 1e8),
         doc="Frequency of the sinusoidal jitter, in Hz.",
+    )
+    rise_time_s: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e-6 (seconds)",
+        _float_range(0.0, 1e-6),
+        doc="Duration of every rising output edge (a linear ramp of equal area), in seconds "
+        "(PDM, NRZ); below half an output period (half of its half with return to zero).",
+    )
+    fall_time_s: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e-6 (seconds)",
+        _float_range(0.0, 1e-6),
+        doc="Duration of every falling output edge, in seconds (PDM, NRZ); unequal rise and "
+        "fall times make a data-dependent error.",
+    )
+    return_to_zero: bool = _key(
+        False,
+        "bool",
+        "true or false",
+        doc="Return-to-zero coding: each level for the first half of its output period, 0 "
+        "for the second (PDM, NRZ; halves the gain, calibrated out).",
     )
     noise_density_nv: float = _key(
         0.0,

@@ -245,12 +245,28 @@ def _check_impairments(profile: ChainProfile, path: str) -> None:
             f"{_MAX_ELEMENT_LEVELS} (one element per step)",
         )
     jitter = imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0
-    if jitter and kind == "pwm":
+    if jitter and kind == "pwm" and profile.output.dead_time_ticks > 0:
         key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
         raise ProfileError(
             path,
             f"impairments.{key}",
-            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
+            "got jitter with output.dead_time_ticks > 0; expected no dead time (the "
+            "dead-time loop does not model jitter yet)",
+        )
+    for key in ("rise_time_s", "fall_time_s", "return_to_zero"):
+        if getattr(imp, key) and kind == "pwm":
+            raise ProfileError(
+                path,
+                f"impairments.{key}",
+                "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has "
+                "'pwm'",
+            )
+    if imp.return_to_zero and profile.reconstruction.fir_taps:
+        raise ProfileError(
+            path,
+            "impairments.return_to_zero",
+            "got true with reconstruction.fir_taps; expected no semi-digital FIR (it takes "
+            "one level a frame)",
         )
     if (imp.jitter_sine_peak_s > 0.0) != (imp.jitter_sine_hz > 0.0):
         key = "jitter_sine_hz" if imp.jitter_sine_peak_s > 0.0 else "jitter_sine_peak_s"

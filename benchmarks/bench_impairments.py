@@ -7,8 +7,10 @@ Cases
     loop, OSR 64) on one channel of a synthesized 48 kHz tone, ``SECONDS`` long, run through
     :class:`~audiodsm.stages.chain.Chain` as is (ideal) and with each impairment set: 0.1 %
     element mismatch with each element-selection method, white plus sinusoidal edge jitter,
-    analog noise, and the second-order mismatch shaper with jitter together. Reports the wall
-    time of each and its ratio to the ideal chain. Target (issue 13): mismatch shaping and
+    analog noise, the second-order mismatch shaper with jitter together, unequal edges, and
+    unequal edges with return-to-zero coding. Reports the wall and the CPU time of each and
+    their ratios to the ideal chain (and the machine's load average, which the wall times
+    follow). Target (issue 13): mismatch shaping and
     jitter together at most 1.5 x the ideal chain (``shaping_and_jitter_ratio``).
 
 ``AUDIODSM_BENCH_IMPAIRMENT_SECONDS`` shortens (or lengthens) the input.
@@ -29,14 +31,15 @@ _PROFILE = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "nrz1
 _JITTER = {"jitter_rms_s": 5e-12, "jitter_sine_peak_s": 2e-12, "jitter_sine_hz": 1000.0}
 
 
-def _time_chain(profile, x, rate) -> float:
+def _time_chain(profile, x, rate) -> tuple[float, float]:
+    """Wall and CPU seconds of one run (CPU time is steadier on a shared machine)."""
     from audiodsm.stages.chain import Chain
 
     chain = Chain.from_profile(profile, rate, 1, threads=1)
     chain.process(x[: rate // 10])  # compile and warm the caches
-    start = time.perf_counter()
+    start, cpu = time.perf_counter(), time.process_time()
     chain.process(x)
-    return time.perf_counter() - start
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 def run():
@@ -60,14 +63,21 @@ def run():
     cases["dwa_and_jitter"] = with_keys(
         element_mismatch=0.001, element_selection="data-weighted", **_JITTER
     )
-    seconds = {name: _time_chain(p, x, rate) for name, p in cases.items()}
+    cases["unequal_edges"] = with_keys(rise_time_s=4e-9, fall_time_s=3e-9)
+    cases["return_to_zero_edges"] = with_keys(
+        rise_time_s=4e-9, fall_time_s=3e-9, return_to_zero=True
+    )
+    times = {name: _time_chain(p, x, rate) for name, p in cases.items()}
     record = {
         "case": "impairments_cost",
         "audio_seconds": SECONDS,
         "profile": base.name,
         "target_ratio": TARGET_RATIO,
+        "load_average_1min": round(os.getloadavg()[0], 2),
     }
-    for name, s in seconds.items():
-        record[f"{name}_s"] = round(s, 3)
-        record[f"{name}_ratio"] = round(s / seconds["ideal"], 3)
+    for name, (wall, cpu) in times.items():
+        record[f"{name}_s"] = round(wall, 3)
+        record[f"{name}_ratio"] = round(wall / times["ideal"][0], 3)
+        record[f"{name}_cpu_s"] = round(cpu, 3)
+        record[f"{name}_cpu_ratio"] = round(cpu / times["ideal"][1], 3)
     yield record

@@ -129,7 +129,7 @@ METRIC_UNITS = {
         "dynamic_range",
         "dBFS",
         "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
-        "step (PDM and NRZ; scales as 20 log10 of the jitter)",
+        "step (PDM, NRZ; PWM: of its edges; scales as 20 log10 of the jitter)",
     ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),

@@ -412,23 +412,33 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
     Snelgrove 1999; checked against the jitter stage in tests/test_jitter.py): ``(sigma
     f_m)^2 E[(y[n] - y[n-1])^2]`` spread evenly over the Nyquist band, ``2 B / f_m`` of it in
     the band ``B``; referred to the listening full scale through the chain's calibration.
-    PWM is left out: its edges sit inside the frames (not modelled yet).
+    PWM: every edge of the PWM waveform (without dead time) adds its own independent error,
+    so ``E[(y[n] - y[n-1])^2]`` becomes the mean over frames of the sum of a frame's squared
+    edge steps (derivation in tests/test_edges.py, checked against the jitter stage there);
+    with return to zero, two edges a frame of the held level each: ``2 E[y^2]``.
 
     Returns
     -------
     (float or None, str)
         The level, and why it is missing (empty when it is not).
     """
-    if profile.output.kind == "pwm":
-        return None, "PWM edges are not in the jitter model"
     from audiodsm.stages.chain import Chain
 
     chain = Chain.from_profile(profile, rate, 1, threads=1)
     fm = res.modulator_rate_hz
     m = res.modulator[:, 0]
     m = m[min(int(round(settle_s * fm)), m.size // 2) :]
-    steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
-    power = (1e-12 * fm) ** 2 * float(np.mean(steps * steps)) * 2.0 * _BAND[1] / fm
+    if profile.output.kind == "pwm":  # every edge inside the frames, in volts
+        wf, _, _ = chain._waveform(m, None)
+        steps = np.diff(wf.levels[wf.ticks > 0]) / chain.gain  # listening full-scale units
+        mean_square = float(np.sum(steps * steps)) / max(m.size, 1)
+    elif profile.impairments.return_to_zero:  # two edges a frame, each the held level
+        held = m * (2.0 * chain.stage_gain / chain.gain)  # RZ halves the mean, not the level
+        mean_square = 2.0 * float(np.mean(held * held))
+    else:
+        steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
+        mean_square = float(np.mean(steps * steps))
+    power = (1e-12 * fm) ** 2 * mean_square * 2.0 * _BAND[1] / fm
     return (10.0 * math.log10(power / 0.5) if power > 0 else -math.inf), ""
 
 

@@ -236,8 +236,9 @@ class Chain:
                 plain = profile
             self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
             # the calibration reads the ideal stage: the impairments' errors stay in the output
+            ideal = ImpairmentSettings(return_to_zero=plain.impairments.return_to_zero)
             self._ideal_stage = _output_waveform_fn(
-                replace(plain, impairments=ImpairmentSettings()), float(self.modulator_rate_hz)
+                replace(plain, impairments=ideal), float(self.modulator_rate_hz)
             )
         with _settings_of(profile, "listening"):
             listen = profile.listening
@@ -457,6 +458,8 @@ class Chain:
         prev = st.last_level
         if self.profile.output.kind == "pwm":
             switches = None  # the PWM stage counts its own edges
+        elif self.profile.impairments.return_to_zero:  # out of 0 and back in every frame
+            switches = 2 * int(np.count_nonzero(y))
         elif y.size:
             first = prev is not None and y[0] != prev
             switches = int(np.count_nonzero(y[1:] != y[:-1])) + int(first)
@@ -472,8 +475,7 @@ class Chain:
             supply_s = (supply_s or 0) + y.size
         jit_s = st.jitter
         if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
-            means, jit_s = self._jitter.process(wf.levels[:, 0], jit_s)
-            wf = PulseWaveform._trusted(means.reshape(-1, 1), wf.ticks, 1, wf.frame_rate_hz)
+            wf, jit_s = self._jitter.process_waveform(wf, jit_s)
         if wf is not None:
             analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
         noise_s = st.noise

@@ -134,7 +134,25 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
 
 
 def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
-    """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``."""
+    """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``.
+
+    With ``impairments.return_to_zero`` every frame of the PDM / NRZ stage returns to 0 for
+    its second half.
+    """
+    stage = _stage_waveform_fn(profile, frame_rate_hz)
+    if not profile.impairments.return_to_zero:
+        return stage
+    from audiodsm.stages.output_stage import return_to_zero_waveform
+
+    def return_to_zero(y, state):
+        wf, counts, state = stage(y, state)
+        return return_to_zero_waveform(wf), counts, state
+
+    return return_to_zero
+
+
+def _stage_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
+    """The output stage's function, one segment a frame for PDM and NRZ."""
     from audiodsm.stages import output_stage as out_mod
 
     out = profile.output
@@ -206,19 +224,30 @@ def _unit_element_fn(profile: ChainProfile, frame_rate_hz: float, lsb_volts: flo
 
 
 def _edge_jitter_and_noise(profile: ChainProfile, frame_rate_hz: float):
-    """The [impairments] section's edge jitter (PDM, NRZ) and analog noise stages, or None."""
+    """The [impairments] section's edge stage (jitter, unequal edges) and analog noise, or None."""
     from audiodsm.stages.analog_noise import AnalogNoise
     from audiodsm.stages.jitter import EdgeJitter
 
-    imp = profile.impairments
+    imp, out = profile.impairments, profile.output
     jitter = noise = None
-    if imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0:
+    edges = imp.rise_time_s > 0.0 or imp.fall_time_s > 0.0
+    if imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0 or edges:
+        if out.kind == "pwm":
+            steps = out.counter_steps or profile.modulator.levels - 1
+            ticks = steps * out.tick_subdivision * (2 if out.pwm_carrier == "double-edge" else 1)
+        else:
+            ticks = 1
         jitter = EdgeJitter(
             frame_rate_hz,
             rms_s=imp.jitter_rms_s,
             sine_peak_s=imp.jitter_sine_peak_s,
             sine_hz=imp.jitter_sine_hz,
             seed=imp.part_seed,
+            rise_s=imp.rise_time_s,
+            fall_s=imp.fall_time_s,
+            return_to_zero=imp.return_to_zero,
+            top_level=out.full_scale_volts,
+            ticks_per_frame=ticks,
         )
     if imp.noise_density_nv > 0.0:
         noise = AnalogNoise(
