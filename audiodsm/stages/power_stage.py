@@ -347,19 +347,24 @@ def class_d_readings(
     load_row = np.append(switched.load_current_row, 0.0)
     w_current = np.outer(e_i, e_i)
     w_power = 0.5 * (np.outer(out_row, load_row) + np.outer(load_row, out_row))
-    lengths = np.unique(ticks)
+    # per switch state and segment length, the sum of z z' over its segments; each
+    # integral is then trace(Q S)
+    lengths = np.unique(ticks[live])
     index = np.searchsorted(lengths, ticks)
     loss = 0.0
     power = 0.0
     for c, filt in enumerate(switched.filters):
-        sel = live & (cfg == c)
-        if not np.any(sel):
+        sel_c = live & (cfg == c)
+        if not np.any(sel_c):
             continue
-        zc = z[sel]
-        qi = _quadratic_integrals(filt, w_current, dt, lengths)[index[sel]]
-        qp = _quadratic_integrals(filt, w_power, dt, lengths)[index[sel]]
-        loss += switched.loop_ohm[c] * float(np.einsum("ka,kab,kb->", zc, qi, zc))
-        power += float(np.einsum("ka,kab,kb->", zc, qp, zc))
+        qi = _quadratic_integrals(filt, w_current, dt, lengths)
+        qp = _quadratic_integrals(filt, w_power, dt, lengths)
+        zc, kc = z[sel_c], index[sel_c]
+        for j in np.unique(kc):
+            zj = zc[kc == j]
+            sums = zj.T @ zj
+            loss += switched.loop_ohm[c] * float(np.sum(qi[j] * sums))
+            power += float(np.sum(qp[j] * sums))
     seconds = (n - skip_frames) / waveform.frame_rate_hz
     return ClassDReadings(
         output_peak_volts=float(np.max(np.abs(volts))),
