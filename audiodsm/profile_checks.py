@@ -265,13 +265,6 @@ def _check_impairments(profile: ChainProfile, path: str) -> None:
             "impairments.supply_ripple",
             f"applies only to a class-D stage (output.kind = 'pwm'); this profile has {kind!r}",
         )
-    if imp.supply_ripple > 0.0 and profile.output.dead_time_ticks > 0:
-        raise ProfileError(
-            path,
-            "impairments.supply_ripple",
-            "got a ripple with output.dead_time_ticks > 0; expected no dead time (the "
-            "dead-time loop does not model the supply yet)",
-        )
     if (imp.supply_ripple > 0.0) != (imp.supply_ripple_hz > 0.0):
         key = "supply_ripple_hz" if imp.supply_ripple > 0.0 else "supply_ripple"
         raise ProfileError(

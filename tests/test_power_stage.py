@@ -435,3 +435,43 @@ def test_power_stage_keys_leave_other_digests_alone():
         impairments=dataclasses.replace(profile.impairments, high_side_on_ohm=0.0),
     )
     assert profile_digest(plain) != profile_digest(profile)
+
+
+def test_dead_time_loop_carries_the_supply_ripple_exactly():
+    # With zero dead time the fused loop equals the plain stage scaled by the rippling supply
+    # (exact segment means, audiodsm.stages.supply) through the filter, to rounding; block by
+    # block equals one call (the ripple's time runs on across blocks).
+    from audiodsm.stages.supply import apply_supply_ripple
+
+    rng = np.random.default_rng(8)
+    y = rng.integers(0, 9, 3000) / 4.0 - 1.0
+    kw = dict(frame_rate_hz=768e3, levels=9, bridge="half", tick_subdivision=4, supply_volts=5.0)
+    filt = lc_filter(L_H, C_F, 8.0)
+    ripple = dict(supply_ripple=0.05, supply_ripple_hz=1234.5)
+    got, _, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=0, **kw, **ripple)
+    wave, _, _ = pwm_waveform(y, **kw)
+    wave = apply_supply_ripple(wave, ripple=0.05, ripple_hz=1234.5, first_frame=0)
+    want, _, _ = filter_waveform_power(filt, wave)
+    assert np.allclose(got, want, rtol=0, atol=1e-9)
+    full, _, _, _ = filter_pwm_with_dead_time(filt, y, dead_time_ticks=1, **kw, **ripple)
+    a, _, _, st = filter_pwm_with_dead_time(filt, y[:1111], dead_time_ticks=1, **kw, **ripple)
+    b, _, _, _ = filter_pwm_with_dead_time(
+        filt, y[1111:], dead_time_ticks=1, state=st, **kw, **ripple
+    )
+    assert np.array_equal(np.concatenate([a, b]), full)
+
+
+def test_supply_sidebands_with_dead_time_follow_amplitude_modulation():
+    # Open loop, every leg voltage is +-V(t): the whole output, dead-time error included,
+    # scales with the supply, so the sidebands stay at 20 log10(m / 2) re the tone
+    # (amplitude modulation) within 0.3 dB.
+    profile = load_profile(HALF)
+    profile = dataclasses.replace(
+        profile,
+        impairments=dataclasses.replace(
+            profile.impairments, supply_ripple=0.05, supply_ripple_hz=300.0
+        ),
+    )
+    result = run_battery(profile, tests=("class_d_stage",), plan=BatteryPlan.quick(), jobs=1)
+    got = result.metrics["supply_ripple_sideband_db"]
+    assert abs(got - 20 * math.log10(0.05 / 2)) <= 0.3

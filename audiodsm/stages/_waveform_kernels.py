@@ -180,6 +180,9 @@ def pwm_dead_time_means(
     y,
     power,
     counts,
+    ripple=0.0,
+    ripple_ratio=0.0,
+    first_frame=0,
 ):
     """PWM with load-current-dependent dead time, run through the filter frame by frame.
 
@@ -205,6 +208,10 @@ def pwm_dead_time_means(
     ``x``: (m,) updated; ``y``, ``power``: (n,) frame means and mean squares written;
     ``counts``: (3,) int64 incremented
     with [pulses lost to dead time, transitions of leg A, transitions of leg B].
+    ``ripple`` > 0: the supply is ``V (1 + ripple sin(2 pi f_r t))`` with ``ripple_ratio =
+    f_r / frame rate`` (ripple cycles per frame) and ``first_frame`` the index of the first
+    frame since the start; each segment's level is its exact mean over the segment, as in
+    :func:`audiodsm.stages.supply.apply_supply_ripple`.
     """
     n = codes_a.shape[0]
     m = x.shape[0]
@@ -302,6 +309,12 @@ def pwm_dead_time_means(
                 u = volts * (2.0 * u_high_a - 1.0)
             else:
                 u = volts * (float(u_high_a) - float(u_high_b))
+            if ripple > 0.0:
+                base = ((first_frame + i) * 1.0 * ripple_ratio) % 1.0
+                p0 = 2.0 * np.pi * (base + (t / frame) * ripple_ratio)
+                p1 = 2.0 * np.pi * (base + (t_next / frame) * ripple_ratio)
+                width = 2.0 * np.pi * (kk / frame) * ripple_ratio
+                u = u * (1.0 + ripple * ((np.cos(p0) - np.cos(p1)) / width))
             cf = 0
             if phis.shape[0] > 1:
                 cf = u_high_a if half_bridge else 2 * u_high_a + u_high_b

@@ -470,7 +470,7 @@ class Chain:
             switches = 0
         t3 = clock()
         supply_s = st.supply_frames
-        if self._supply_ripple is not None:  # open loop: levels times the rippling supply
+        if self._supply_ripple is not None and wf is not None:  # open loop: levels x supply
             from audiodsm.stages.supply import apply_supply_ripple
 
             wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)

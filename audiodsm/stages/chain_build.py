@@ -263,6 +263,8 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
             supply_volts=out.full_scale_volts,
             state=state,
             switched=switched,
+            supply_ripple=imp.supply_ripple,
+            supply_ripple_hz=imp.supply_ripple_hz,
         )
         return means, squares, (stats.dropped_pulses, stats.stretched_pulses), state
 

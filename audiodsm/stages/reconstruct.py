@@ -466,6 +466,8 @@ def filter_pwm_with_dead_time(
     supply_volts: float = 1.0,
     state: DeadTimeState | None = None,
     switched=None,
+    supply_ripple: float = 0.0,
+    supply_ripple_hz: float = 0.0,
 ) -> tuple[np.ndarray, np.ndarray, PwmStats, DeadTimeState]:
     """PWM with dead time that follows the load current, through the filter: frame means.
 
@@ -498,6 +500,11 @@ def filter_pwm_with_dead_time(
         the filter of the switches that conduct in it (during a dead interval: the switch on
         the rail the diode connects). ``filt`` is then its ``average`` filter. None: ``filt``
         alone.
+    supply_ripple, supply_ripple_hz : float
+        A sinusoidal ripple on the supply, ``V (1 + m sin(2 pi f_r t))`` (``m`` below 1), as
+        in :func:`~audiodsm.stages.supply.apply_supply_ripple`: every segment's level is its
+        exact mean over the segment; the ripple's time origin is the first frame ever
+        processed (the frames counted in ``state``). 0: a steady supply.
 
     Returns
     -------
@@ -580,6 +587,14 @@ def filter_pwm_with_dead_time(
     means = np.empty(plan.n)
     power = np.empty(plan.n)
     counts = np.zeros(3, dtype=np.int64)
+    ripple = float(supply_ripple)
+    if not (math.isfinite(ripple) and 0.0 <= ripple < 1.0):
+        raise ParameterError(
+            "supply_ripple", supply_ripple, "a relative amplitude from 0 to below 1"
+        )
+    ripple_hz = float(supply_ripple_hz)
+    if ripple > 0.0 and not (math.isfinite(ripple_hz) and ripple_hz > 0.0):
+        raise ParameterError("supply_ripple_hz", supply_ripple_hz, "a frequency above 0 Hz")
     _waveform_kernels.pwm_dead_time_means(
         plan.codes_a,
         plan.codes_b,
@@ -605,6 +620,9 @@ def filter_pwm_with_dead_time(
         means,
         power,
         counts,
+        ripple,
+        ripple_hz / plan.rate if ripple > 0.0 else 0.0,
+        int(totals.frames),
     )
     stats, totals = _out._pwm_counts(
         totals, plan.n, plan.rate, plan.dropped, plan.stretched, counts, n_legs
