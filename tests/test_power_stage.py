@@ -475,3 +475,36 @@ def test_supply_sidebands_with_dead_time_follow_amplitude_modulation():
     result = run_battery(profile, tests=("class_d_stage",), plan=BatteryPlan.quick(), jobs=1)
     got = result.metrics["supply_ripple_sideband_db"]
     assert abs(got - 20 * math.log10(0.05 / 2)) <= 0.3
+
+
+@pytest.mark.parametrize(("mode", "bridge"), [("two-level", "half"), ("three-level", "full")])
+def test_dead_time_loop_picks_the_same_switches_as_the_plain_stage(mode, bridge):
+    # With zero dead time the fused loop's switch states (from the legs' levels) and
+    # segment_switch_states (from the waveform and the codes) must pick the same filter in
+    # every segment: unequal switches, a loudspeaker, both implementations equal to rounding.
+    rng = np.random.default_rng(21)
+    y = rng.integers(0, 9, 2500) / 4.0 - 1.0
+    kw = dict(
+        frame_rate_hz=768e3,
+        levels=9,
+        mode=mode,
+        bridge=bridge,
+        carrier="double-edge",
+        tick_subdivision=2,
+        supply_volts=5.0,
+    )
+    sw = switched_lc_filter(
+        L_H,
+        C_F,
+        SPEAKER,
+        bridged=bridge == "full",
+        high_side_ohm=0.4,
+        low_side_ohm=0.05,
+        half_bridge=bridge == "half",
+    )
+    got, got_sq, _, _ = filter_pwm_with_dead_time(sw.average, y, switched=sw, **kw)
+    wave, _, _ = pwm_waveform(y, **kw)
+    plan = out_mod._pwm_plan(y, 768e3, 9, None, mode, "double-edge", bridge, 2, 0, 0, "drop", 5.0)
+    want, want_sq, _ = filter_switched_waveform(sw, wave, segment_switch_states(wave, plan))
+    assert np.allclose(got, want, rtol=0, atol=1e-9)
+    assert np.allclose(got_sq, want_sq, rtol=0, atol=1e-8)
