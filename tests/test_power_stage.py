@@ -337,7 +337,7 @@ def test_sideband_reader_on_amplitude_modulation():
 
 
 def test_battery_supply_rejection_and_power_of_the_demo_bridge():
-    # The demo bridge (2 % ripple at 217 Hz, open loop): the supply-rejection reading is
+    # The demo bridge (0.5 % ripple at 217 Hz, open loop): the supply-rejection reading is
     # 20 log10(m / 2) within 0.3 dB (amplitude modulation). Load power at -1 dBFS: a sine of
     # amplitude V into 8 ohm gives V^2 / (2 R) (V from the chain's own calibration: the
     # modulator's input scale, the stage's volts, the loop's STF and the filter at 997 Hz);
