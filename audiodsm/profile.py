@@ -672,7 +672,9 @@ class ImpairmentSettings:
 
     See docs/impairments.md. Every key at its default is the ideal converter. The element
     keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the jitter keys to PDM
-    and NRZ outputs, the analog noise to every output.
+    and NRZ outputs, the analog noise to every output; the supply ripple to PWM, the switches'
+    on-resistance to PWM with an LC filter, the loudspeaker (all five ``speaker_*`` keys
+    together) to an LC filter, in place of ``reconstruction.load_ohm``.
     """
 
     element_mismatch: float = _key(

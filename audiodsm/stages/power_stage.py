@@ -36,6 +36,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import scipy.linalg
@@ -80,7 +81,7 @@ class SwitchedLcFilter:
     load_current_row: np.ndarray
     half_bridge: bool
 
-    @property
+    @cached_property
     def model(self):
         """The simulation model: the filter's own coordinates, keyed by all switch states."""
         from audiodsm.stages.reconstruct import _Model
