@@ -673,7 +673,9 @@ class ImpairmentSettings:
     See docs/impairments.md. Every key at its default is the ideal converter. The element
     keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the edge keys (rise and
     fall times, return to zero) to PDM and NRZ outputs, the jitter keys to PDM, NRZ and PWM
-    outputs, the analog noise to every output.
+    outputs, the analog noise to every output; the supply ripple to PWM, the switches'
+    on-resistance to PWM with an LC filter, the loudspeaker (all five ``speaker_*`` keys
+    together) to an LC filter, in place of ``reconstruction.load_ohm``.
     """
 
     element_mismatch: float = _key(
@@ -775,12 +777,83 @@ class ImpairmentSettings:
         _float_range(0.0, 1e5),
         doc="Frequency of the supply ripple, in Hz.",
     )
+    high_side_on_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 10 (ohm)",
+        _float_range(0.0, 10.0),
+        doc="On-resistance of each leg's high-side switch, in ohm, in series with the LC "
+        "filter while the leg is high (PWM with an LC filter).",
+    )
+    low_side_on_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 10 (ohm)",
+        _float_range(0.0, 10.0),
+        doc="On-resistance of each leg's low-side switch, in ohm, in series with the LC "
+        "filter while the leg is low (PWM with an LC filter).",
+    )
+    speaker_coil_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 100 (ohm)",
+        _float_range(0.0, 100.0),
+        doc="Loudspeaker load instead of reconstruction.load_ohm: voice-coil resistance Re, "
+        "in ohm (0 = resistive load; LC filter).",
+    )
+    speaker_coil_inductance_h: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 0.1 (henry)",
+        _float_range(0.0, 0.1),
+        doc="Loudspeaker voice-coil inductance Le, in henry.",
+    )
+    speaker_resonance_hz: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 20000 (Hz)",
+        _float_range(0.0, 20000.0),
+        doc="Loudspeaker free-air resonance fs, in Hz.",
+    )
+    speaker_mechanical_q: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 100",
+        _float_range(0.0, 100.0),
+        doc="Loudspeaker mechanical quality factor Qms.",
+    )
+    speaker_electrical_q: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 100",
+        _float_range(0.0, 100.0),
+        doc="Loudspeaker electrical quality factor Qes.",
+    )
+
+    @property
+    def loudspeaker(self) -> bool:
+        """True when the profile gives a loudspeaker load."""
+        return any(getattr(self, k) > 0.0 for k in SPEAKER_KEYS)
+
+    @property
+    def on_resistance(self) -> bool:
+        """True when a switch has on-resistance."""
+        return self.high_side_on_ohm > 0.0 or self.low_side_on_ohm > 0.0
 
     @property
     def active(self) -> bool:
         """True when any key differs from the ideal converter."""
         return self != ImpairmentSettings()
 
+
+#: The [impairments] keys of a loudspeaker load, given all together or none.
+SPEAKER_KEYS = (
+    "speaker_coil_ohm",
+    "speaker_coil_inductance_h",
+    "speaker_resonance_hz",
+    "speaker_mechanical_q",
+    "speaker_electrical_q",
+)
 
 _SECTIONS = {
     "input": InputSettings,

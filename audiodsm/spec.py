@@ -83,6 +83,12 @@ METRIC_CATALOGUE = {
     "switching_rate_hz": ("Hz", "output level changes per second at idle"),
     "dc_offset_dbfs": ("dBFS", "DC at the output during silence"),
     "jitter_noise_dbfs_at_1ps": ("dBFS", "in-band noise 1 ps rms of clock jitter adds"),
+    "supply_ripple_sideband_db": ("dB", "supply ripple sideband beside a tone (supply rejection)"),
+    "output_peak_volts": ("V", "peak load voltage at -1 dBFS"),
+    "load_current_peak_amperes": ("A", "peak load current at -1 dBFS"),
+    "inductor_current_peak_amperes": ("A", "peak filter-inductor current at -1 dBFS"),
+    "switch_conduction_watts": ("W", "conduction loss in the switches at -1 dBFS"),
+    "load_power_watts": ("W", "power into the load at -1 dBFS"),
     # read from the THD+N-versus-level sweep at the level the target names
     "thd_n_db": ("dB", "THD+N at the stated tone level"),
     "thd_n_db_a": ("dB", "THD+N at the stated tone level, A-weighted"),

@@ -13,6 +13,14 @@ Cases
     follow). Target (issue 13): mismatch shaping and
     jitter together at most 1.5 x the ideal chain (``shaping_and_jitter_ratio``).
 
+``class_d_cost``
+    The demo class-D bridge (``profiles/pocket_amp/pwm9_bridge_16x.toml``, three-level PWM,
+    OSR 16) with its [impairments] section removed (ideal), then with each class-D
+    impairment alone: the supply ripple, the switches' unequal on-resistance (one filter per
+    switch state), the loudspeaker load (a five-state filter), and all three together; and
+    the half bridge with dead time, ideal and with on-resistance and its loudspeaker. Wall
+    time of each and its ratio to its ideal chain (no target: the cost is reported).
+
 ``AUDIODSM_BENCH_IMPAIRMENT_SECONDS`` shortens (or lengthens) the input.
 """
 
@@ -28,6 +36,14 @@ import numpy as np
 SECONDS = float(os.environ.get("AUDIODSM_BENCH_IMPAIRMENT_SECONDS", "10"))
 TARGET_RATIO = 1.5
 _PROFILE = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "nrz17_64x.toml"
+_POCKET = Path(__file__).resolve().parents[1] / "profiles" / "pocket_amp"
+_SPEAKER = {
+    "speaker_coil_ohm": 7.2,
+    "speaker_coil_inductance_h": 1.2e-4,
+    "speaker_resonance_hz": 180.0,
+    "speaker_mechanical_q": 2.8,
+    "speaker_electrical_q": 0.9,
+}
 _JITTER = {"jitter_rms_s": 5e-12, "jitter_sine_peak_s": 2e-12, "jitter_sine_hz": 1000.0}
 
 
@@ -81,3 +97,32 @@ def run():
         record[f"{name}_cpu_s"] = round(cpu, 3)
         record[f"{name}_cpu_ratio"] = round(cpu / times["ideal"][1], 3)
     yield record
+    yield _class_d_record(rate, x)
+
+
+def _class_d_record(rate, x):
+    from audiodsm.profile import ImpairmentSettings, load_profile
+
+    def with_keys(base, **keys):
+        return dataclasses.replace(base, impairments=ImpairmentSettings(**keys))
+
+    bridge = load_profile(_POCKET / "pwm9_bridge_16x.toml")
+    half = load_profile(_POCKET / "pwm9_halfbridge_deadtime_16x.toml")
+    switches = {"high_side_on_ohm": 0.12, "low_side_on_ohm": 0.08}
+    ripple = {"supply_ripple": 0.02, "supply_ripple_hz": 217.0}
+    cases = {
+        "bridge_ideal": with_keys(bridge),
+        "bridge_supply_ripple": with_keys(bridge, **ripple),
+        "bridge_on_resistance": with_keys(bridge, **switches),
+        "bridge_loudspeaker": with_keys(bridge, **_SPEAKER),
+        "bridge_all": with_keys(bridge, **ripple, **switches, **_SPEAKER),
+        "dead_time_ideal": with_keys(half),
+        "dead_time_on_resistance_loudspeaker": with_keys(half, **switches, **_SPEAKER),
+    }
+    seconds = {name: _time_chain(p, x, rate) for name, p in cases.items()}
+    record = {"case": "class_d_cost", "audio_seconds": SECONDS}
+    for name, s in seconds.items():
+        ideal = seconds["dead_time_ideal" if name.startswith("dead") else "bridge_ideal"]
+        record[f"{name}_s"] = round(s, 3)
+        record[f"{name}_ratio"] = round(s / ideal, 3)
+    return record

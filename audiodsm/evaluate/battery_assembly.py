@@ -47,6 +47,12 @@ _SCALARS = (
     "image_rejection_noise_limited",
     "imd_smpte_db",
     "imd_difference_db",
+    "supply_ripple_sideband_db",
+    "output_peak_volts",
+    "load_current_peak_amperes",
+    "inductor_current_peak_amperes",
+    "switch_conduction_watts",
+    "load_power_watts",
 )
 
 

@@ -773,3 +773,145 @@ def _test_imd(ctx, profile):
             + smpte.convention
         ],
     }
+
+
+#: The class-D stage's readings (test ``class_d_stage``): metric names in their order.
+_CLASS_D_METRICS = (
+    "supply_ripple_sideband_db",
+    "output_peak_volts",
+    "load_current_peak_amperes",
+    "inductor_current_peak_amperes",
+    "switch_conduction_watts",
+    "load_power_watts",
+)
+#: Level of the class-D stage's test tone (997 Hz), dBFS.
+_CLASS_D_LEVEL_DBFS = -1.0
+#: Tone periods the volts, amperes and watts are read over, and the filter's run-in before.
+_CLASS_D_PERIODS = 20
+_CLASS_D_RUN_IN_S = 0.02
+
+
+def _sideband_levels(y, rate, tone_hz, ripple_hz):
+    """Levels (dB re the tone) of the supply ripple's sidebands at ``|f - f_r|`` and ``f + f_r``.
+
+    One least-squares fit of a constant and a sine and cosine at the tone and at each in-band
+    sideband (known frequencies: the linear form of the IEEE 1057 sine fit).
+    """
+    freqs = [tone_hz] + [
+        f for f in (abs(tone_hz - ripple_hz), tone_hz + ripple_hz) if _BAND[0] <= f <= _BAND[1]
+    ]
+    if len(freqs) == 1:
+        return []
+    t = np.arange(y.size) / rate
+    cols = [np.ones_like(t)]
+    for f in freqs:
+        cols += [np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t)]
+    coef, *_ = np.linalg.lstsq(np.column_stack(cols), y, rcond=None)
+    amps = np.hypot(coef[1::2], coef[2::2])
+    return [20.0 * math.log10(max(a, 1e-300) / amps[0]) for a in amps[1:]]
+
+
+def _test_class_d_stage(ctx, profile):
+    """Supply rejection and the stage's volts, amperes and watts at -1 dBFS, 997 Hz.
+
+    The supply ripple's sidebands are read on the listening output (the whole chain, dead
+    time included); the volts, amperes and watts from the modulator output run once more
+    through the PWM stage without dead time and the LC filter with its load and switches
+    (:func:`audiodsm.stages.power_stage.class_d_readings`).
+    """
+    plan, rate = ctx.plan, ctx.rate
+    out = dict.fromkeys(_CLASS_D_METRICS)
+    invalid = {}
+    if profile.output.kind != "pwm":
+        why = "applies to a class-D (PWM) stage"
+        return {**out, "invalid": dict.fromkeys(_CLASS_D_METRICS, why)}
+    imp = profile.impairments
+    read_s = _CLASS_D_PERIODS / _TEST_HZ
+    seconds = plan.settle_s + max(plan.sweep_s, read_s) + _TAIL_S
+    x = _tone(_CLASS_D_LEVEL_DBFS, rate, seconds)
+    res = _chain_run(profile, x, rate=rate, keep=("listening", "modulator"))
+    notes = []
+    settle = int(round(plan.settle_s * rate))
+    if imp.supply_ripple > 0.0:
+        levels = _sideband_levels(res.listening[settle:, 0], rate, _TEST_HZ, imp.supply_ripple_hz)
+        if levels:
+            out["supply_ripple_sideband_db"] = max(levels)
+            notes.append(
+                f"supply rejection: {_CLASS_D_LEVEL_DBFS:g} dBFS {_TEST_HZ:g} Hz with the "
+                f"profile's supply ripple ({imp.supply_ripple:g} at {imp.supply_ripple_hz:g} "
+                "Hz); the stronger in-band sideband at f +- f_ripple re the tone, by a "
+                "least-squares fit at the three frequencies"
+            )
+        else:
+            invalid["supply_ripple_sideband_db"] = "no ripple sideband falls in the audio band"
+    else:
+        invalid["supply_ripple_sideband_db"] = "the profile has no supply ripple"
+    power_names = _CLASS_D_METRICS[1:]
+    if profile.reconstruction.kind != "lc":
+        why = "needs an LC filter (reconstruction.kind = 'lc'): the load is not modelled"
+        invalid.update(dict.fromkeys(power_names, why))
+    else:
+        r = _class_d_power(profile, res, plan.settle_s, read_s)
+        out.update(
+            output_peak_volts=r.output_peak_volts,
+            load_current_peak_amperes=r.load_current_peak_amperes,
+            inductor_current_peak_amperes=r.inductor_current_peak_amperes,
+            switch_conduction_watts=r.switch_conduction_watts,
+            load_power_watts=r.load_power_watts,
+        )
+        extra = ""
+        if profile.output.dead_time_ticks > 0:
+            extra = "; read on the stage without dead time"
+        notes.append(
+            f"class-D volts, amperes, watts: {_CLASS_D_LEVEL_DBFS:g} dBFS {_TEST_HZ:g} Hz, "
+            f"{r.seconds * 1e3:.1f} ms ({_CLASS_D_PERIODS} periods) after "
+            f"{plan.settle_s:g} s; peaks at every switching instant, conduction loss "
+            f"(I^2 R in the switches) and load power as exact averages{extra}"
+        )
+    return {**out, "invalid": invalid, "notes": notes}
+
+
+def _class_d_power(profile, res, settle_s, read_s):
+    """The chain run's modulator output through the power stage: :class:`ClassDReadings`."""
+    from audiodsm.stages import output_stage as out_mod
+    from audiodsm.stages.chain_build import _power_stage_filter
+    from audiodsm.stages.power_stage import class_d_readings, segment_switch_states
+    from audiodsm.stages.supply import apply_supply_ripple
+
+    out, imp = profile.output, profile.impairments
+    fm = res.modulator_rate_hz
+    first = max(0, int(round((settle_s - _CLASS_D_RUN_IN_S) * fm)))
+    run_in = int(round(settle_s * fm)) - first
+    y = np.ascontiguousarray(res.modulator[first : first + run_in + int(round(read_s * fm)), 0])
+    settings = (
+        fm,
+        profile.modulator.levels,
+        out.counter_steps or None,
+        out.pwm_mode,
+        out.pwm_carrier,
+        out.pwm_bridge,
+        out.tick_subdivision,
+        0,
+        out.min_pulse_ticks,
+        out.short_pulse_action,
+        out.full_scale_volts,
+    )
+    wf, _, _ = out_mod.pwm_waveform(
+        y,
+        frame_rate_hz=fm,
+        levels=profile.modulator.levels,
+        counter_steps=out.counter_steps or None,
+        mode=out.pwm_mode,
+        carrier=out.pwm_carrier,
+        bridge=out.pwm_bridge,
+        tick_subdivision=out.tick_subdivision,
+        min_pulse_ticks=out.min_pulse_ticks,
+        min_pulse_action=out.short_pulse_action,
+        supply_volts=out.full_scale_volts,
+    )
+    if imp.supply_ripple > 0.0:
+        wf = apply_supply_ripple(
+            wf, ripple=imp.supply_ripple, ripple_hz=imp.supply_ripple_hz, first_frame=first
+        )
+    configs = segment_switch_states(wf, out_mod._pwm_plan(y, *settings))
+    return class_d_readings(_power_stage_filter(profile), wf, configs, skip_frames=run_in)

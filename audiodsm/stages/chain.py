@@ -53,6 +53,7 @@ from audiodsm.stages.chain_build import (
     _scaled_loop,
     _settings_of,
     _stf_filter,
+    _switched_filter_fn,
     _zero_band_edge,
     auto_input_scale,
 )
@@ -269,6 +270,10 @@ class Chain:
         self._supply_ripple = None
         if imp.supply_ripple > 0.0:
             self._supply_ripple = {"ripple": imp.supply_ripple, "ripple_hz": imp.supply_ripple_hz}
+        self._switched = None  # on-resistance that follows the switch state (no dead time)
+        if self._pwm_dead_time is None:
+            with _settings_of(profile, "impairments"):
+                self._switched = _switched_filter_fn(profile, float(self.modulator_rate_hz))
         if self._jitter is not None:  # an early edge changes the frame before it
             self.latency_s += 1.0 / self.modulator_rate_hz
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
@@ -468,7 +473,7 @@ class Chain:
             switches = 0
         t3 = clock()
         supply_s = st.supply_frames
-        if self._supply_ripple is not None:  # open loop: levels times the rippling supply
+        if self._supply_ripple is not None and wf is not None:  # open loop: levels x supply
             from audiodsm.stages.supply import apply_supply_ripple
 
             wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)
@@ -476,7 +481,12 @@ class Chain:
         jit_s = st.jitter
         if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
             wf, jit_s = self._jitter.process_waveform(wf, jit_s)
-        if wf is not None:
+        if wf is not None and self._switched is not None:  # source resistance per segment
+            analog, squares, filt_s = self._switched(wf, y, st.analog)
+            fir_s = st.fir
+            if ripple is not None:
+                ripple.append(float(np.sum(np.maximum(squares - analog * analog, 0.0))))
+        elif wf is not None:
             analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
         noise_s = st.noise
         if self._noise is not None:  # output-referred: added after the filter
