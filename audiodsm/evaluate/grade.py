@@ -154,8 +154,10 @@ class ProfileGrade:
 
     @property
     def spread(self) -> dict:
-        """Each metric's distribution over the parts (:func:`~audiodsm.evaluate.parts.
-        metric_spread`); empty for one part."""
+        """Each metric's distribution over the parts; empty for one part.
+
+        See :func:`audiodsm.evaluate.parts.metric_spread`.
+        """
         from audiodsm.evaluate.parts import metric_spread
 
         return metric_spread(self.parts) if self.parts else {}
@@ -907,9 +909,11 @@ def grade_batch(
 
 
 def _run_part(battery, profile, part, jobs, seed, options, report=None):
-    """Run the battery on part ``part`` of a profile (:func:`~audiodsm.evaluate.parts.
-    part_profile`); the task of a serial batch and of a cluster worker alike, so both give
-    the same readings."""
+    """Run the battery on part ``part`` of a profile; never raises an ordinary exception.
+
+    The part's profile comes from :func:`audiodsm.evaluate.parts.part_profile`. This is the
+    task of a serial batch and of a cluster worker alike, so both give the same readings.
+    """
     from audiodsm.evaluate.parts import part_profile
 
     return _run_one(battery, part_profile(profile, part), part, jobs, seed, options, report)
@@ -921,7 +925,8 @@ def _run_on_cluster(
     """Run the batteries of ``todo`` as cluster tasks; ``finish`` gets each outcome here.
 
     A task carries (battery, profile, part index, threads, seed, options): descriptions,
-    never signals; the worker derives the part's profile itself."""
+    never signals; the worker derives the part's profile itself.
+    """
     from audiodsm.evaluate.cluster import run_tasks
 
     threads = 1 if scheduler else max(1, jobs // workers)

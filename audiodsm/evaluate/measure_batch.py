@@ -15,8 +15,9 @@ __all__ = ["measure_on_cluster", "measure_part"]
 
 
 def measure_part(profile, threads, seed, plan, part=0, progress=None):
-    """The battery of part ``part`` of a profile (a task of :func:`measure_on_cluster`, and
-    what ``measure`` runs in its own process).
+    """The battery of part ``part`` of a profile.
+
+    The task of :func:`measure_on_cluster`, and what ``measure`` runs in its own process.
 
     Returns
     -------
