@@ -464,3 +464,59 @@ def test_spread_plot_draws_one_panel_per_metric_with_the_limit(tmp_path):
     fig.savefig(tmp_path / "spread.png")
     with pytest.raises(ParameterError):
         plot_part_spread([_part(0, {"y": 1.0})])
+
+
+def test_measure_runs_every_part_and_prints_the_spread(tmp_path, calls, monkeypatch):
+    from types import SimpleNamespace
+
+    from audiodsm.evaluate.battery import validity_table
+
+    def fake_part(profile, threads, seed, plan, part=0, progress=None):
+        res = part_battery(part_profile(profile, part))
+        return SimpleNamespace(
+            digest=profile_digest(part_profile(profile, part)), rate_hz=48000, seconds=0.01,
+            metrics=res.metrics, invalid={}, notes=(), curves=res.curves,
+            json_metrics=lambda: dict(res.metrics),
+            validity=lambda: validity_table(res.metrics, {}),
+        )  # fmt: skip
+
+    monkeypatch.setattr("audiodsm.evaluate.measure_batch.measure_part", fake_part)
+    pdir = _write(tmp_path)
+    r = CliRunner().invoke(main, ["measure", str(pdir), "--jobs", "1", "--parts", "4", "--json"])
+    assert r.exit_code == 0, r.output
+    records = {d["profile"]: d for d in map(json.loads, r.output.splitlines())}
+    assert "parts" not in records["i"]  # no random draw: one run
+    parts = records["m"]["parts"]
+    seeds = [part_seed_of(11, k) for k in range(4)]
+    assert parts["count"] == 4 and parts["seeds"] == seeds and parts["percentiles"] == [5.0, 95.0]
+    assert _ran(calls) == sorted(seeds + [0])
+    dr = [p["metrics"]["dynamic_range_db_a"] for p in parts["per_part"]]
+    assert records["m"]["metrics"]["dynamic_range_db_a"] == dr[0]  # part 0 is the profile
+    row = parts["spread"]["dynamic_range_db_a"]
+    assert (row["min"], row["max"]) == (min(dr), max(dr))
+    assert row["median"] == pytest.approx(float(np.median(dr)), abs=1e-12)
+    r = CliRunner().invoke(main, ["measure", str(pdir / "m.toml"), "--jobs", "1", "--parts", "3"])
+    assert "m: spread over 3 parts (the column above is part 0)" in r.output
+
+
+def test_explore_runs_the_parts_of_every_survivor_and_resumes(tmp_path, calls):
+    from audiodsm.evaluate.explore import explore_space, load_space
+
+    path = tmp_path / "space.toml"
+    path.write_text(
+        'name = "t"\ncandidate_limit = 50\nprune_slack_db = 60.0\n'
+        "[vary]\norder = [3, 4]\nlevels = [9, 17]\n"
+        '[fixed]\n"output.kind" = "nrz"\n"impairments.element_mismatch" = 0.003\n'
+        '"impairments.parts" = 3\n'
+    )
+    space, spec = load_space(path), parse_spec(SPEC)
+    out = explore_space(space, spec, battery=part_battery, jobs=1, cache_dir=tmp_path / "c")
+    graded = [c for c in out.candidates if c.grade is not None]
+    assert len(graded) == 4 and all(len(c.grade.parts) == 3 for c in graded)
+    assert len(_ran(calls)) == 12
+    for f in calls.iterdir():
+        f.unlink()
+    more = explore_space(space, spec, battery=part_battery, jobs=1, cache_dir=tmp_path / "c",
+                         parts=5)  # fmt: skip
+    assert len(_ran(calls)) == 8  # parts 3 and 4 of each survivor only
+    assert all(len(c.grade.parts) == 5 for c in more.candidates if c.grade is not None)
