@@ -147,8 +147,11 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, parts, plots_folder
                 results[u] = measure_part(prof, jobs, seed, plan, k, progress=bar)
             finally:
                 bar.close()
+    by_profile: dict[int, list] = {}
+    for u, (i, k) in enumerate(units):
+        by_profile.setdefault(i, []).append((k, results[u]))
     for i, (path, prof) in enumerate(loaded):
-        mine = [(k, results[u]) for u, (j, k) in enumerate(units) if j == i]
+        mine = by_profile[i]
         broken = [(k, r) for k, r in mine if isinstance(r, str)]
         if broken:
             k, text = broken[0]

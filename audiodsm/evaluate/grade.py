@@ -8,7 +8,9 @@ runs the test battery on many profiles (in parallel processes), grades each, ran
 their worst normalized margin (:func:`rank_grades`) and keeps every finished battery in a
 cache keyed by what was computed: (profile content digest, tool version, battery options).
 The spec sheet is applied afterwards, so a repeated or interrupted batch resumes without
-recomputing, and a changed limit re-grades from the cache.
+recomputing, and a changed limit re-grades from the cache. A profile with random impairments
+can run as several parts (:mod:`audiodsm.evaluate.parts`): each part is its own battery and
+cache entry, and the targets are graded over the parts.
 
 The battery is a parameter: any callable ``battery(profile, *, jobs, progress, seed,
 **options)`` returning an object with ``.metrics`` (dict) and ``.curves`` (dict of dicts of
@@ -881,8 +883,11 @@ def grade_batch(
 
     grades = []
     finished = set()
+    units_of: dict[int, list] = {}
+    for u, (i, _k) in enumerate(units):
+        units_of.setdefault(i, []).append(u)
     for i, (path, prof) in enumerate(entries):
-        mine = [u for u, (j, _k) in enumerate(units) if j == i]
+        mine = units_of[i]
         if any(u not in outcomes for u in mine):
             continue
         finished.add(i)
