@@ -540,3 +540,18 @@ def test_real_battery_parts_on_two_workers_equal_the_serial_run_bit_for_bit(tmp_
     assert len(dr) == 2 and dr[0] != dr[1]  # two different parts
     assert dr == [p.metrics["dynamic_range_db"] for p in b.parts]  # bit for bit
     assert (a.lines[0].value, a.lines[0].margin) == (b.lines[0].value, b.lines[0].margin)
+
+
+def test_the_exploration_report_says_how_many_parts_ran(tmp_path, calls):
+    from audiodsm.evaluate.explore import explore_space, load_space, write_exploration
+
+    path = tmp_path / "space.toml"
+    path.write_text(
+        'name = "t"\ncandidate_limit = 50\nprune_slack_db = 60.0\n[vary]\norder = [3, 4]\n'
+        '[fixed]\n"output.kind" = "nrz"\n"modulator.levels" = 17\n'
+        '"impairments.element_mismatch" = 0.003\n'
+    )
+    out = explore_space(load_space(path), parse_spec(SPEC), battery=part_battery, jobs=1,
+                        parts=2)  # fmt: skip
+    page = write_exploration(out, tmp_path / "o")["report"].read_text()
+    assert "Candidates with random impairments ran 2 parts each" in page
