@@ -160,6 +160,9 @@ def test_spread_is_numpys_linear_percentiles_of_the_valid_readings():
         want = ordered[lo] + (h - lo) * (ordered[min(lo + 1, 5)] - ordered[lo])
         assert row[key] == pytest.approx(want, rel=0, abs=1e-12)
     assert metric_spread(parts)["flag"]["readings"] == 0  # flags have no spread
+    numpy_kinds = [_part(k, {"n": np.int64(k), "f": np.bool_(True)}) for k in range(3)]
+    assert metric_spread(numpy_kinds)["n"]["median"] == 1.0  # numpy counts are numbers ...
+    assert metric_spread(numpy_kinds)["f"]["readings"] == 0  # ... numpy flags are not
 
 
 def test_spec_percentile_key_is_checked():

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import math
+import numbers
 from dataclasses import dataclass, field, replace
 from fractions import Fraction
 
@@ -37,6 +38,7 @@ from audiodsm.limits import PARTS_RANGE
 __all__ = [
     "SPREAD_PERCENTILES",
     "PartReading",
+    "is_number",
     "random_draws",
     "part_seed_of",
     "part_profile",
@@ -82,6 +84,11 @@ class PartReading:
     curves: dict = field(default_factory=dict, repr=False)
     cached: bool = False
     seconds: float = 0.0
+
+
+def is_number(value) -> bool:
+    """True for a real number that is not a flag (Python or numpy; bools are flags)."""
+    return isinstance(value, numbers.Real) and not isinstance(value, (bool, np.bool_))
 
 
 def random_draws(profile) -> tuple:
@@ -324,7 +331,7 @@ def metric_spread(parts, percentiles=SPREAD_PERCENTILES) -> dict:
         values = []
         for p in parts:
             v = p.metrics.get(name)
-            if name in p.invalid or isinstance(v, bool) or not isinstance(v, (int, float)):
+            if name in p.invalid or not is_number(v):
                 continue
             if math.isfinite(float(v)):
                 values.append(float(v))

@@ -752,7 +752,7 @@ def plot_part_spread(parts, *, graded=(), title="Spread over parts", max_metrics
     from matplotlib.patches import Rectangle
 
     from audiodsm.evaluate.battery import METRIC_UNITS
-    from audiodsm.evaluate.parts import metric_spread
+    from audiodsm.evaluate.parts import is_number, metric_spread
 
     spread = metric_spread(parts)
     limits = {}
@@ -774,7 +774,7 @@ def plot_part_spread(parts, *, graded=(), title="Spread over parts", max_metrics
         values = np.array(
             [
                 np.nan
-                if name in p.invalid or not isinstance(p.metrics.get(name), (int, float))
+                if name in p.invalid or not is_number(p.metrics.get(name))
                 else float(p.metrics[name])
                 for p in parts
             ]

@@ -215,12 +215,14 @@ def parts_to_csv(grade) -> str:
     Columns ``part, part_seed, metric, value, valid, reason`` (numbers in full precision,
     empty when there is none): the data of the report's spread plot.
     """
+    from audiodsm.evaluate.parts import is_number
+
     rows = []
     for p in grade.parts:
         for name, value in p.metrics.items():
             bad = name in p.invalid
             number = None
-            if not bad and not isinstance(value, bool) and isinstance(value, (int, float)):
+            if not bad and is_number(value):
                 number = plain_scalar(value)
             text = "" if number is None else repr(float(number))
             why = str(p.invalid.get(name, ""))
