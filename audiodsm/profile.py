@@ -32,6 +32,7 @@ from audiodsm.limits import (
     ORDER_RANGE,
     OSR_CHOICES,
     OUT_OF_BAND_GAIN_RANGE,
+    PARTS_RANGE,
     ZERO_LAYOUTS,
 )
 from audiodsm.profile_checks import _check_fixed_point, _check_impairments, _check_whole
@@ -701,6 +702,15 @@ class ImpairmentSettings:
         doc="The part: seeds the element weights, the random selection, the random jitter "
         "and the analog noise.",
     )
+    parts: int = _key(
+        1,
+        "int",
+        f"an integer from {PARTS_RANGE[0]} to {PARTS_RANGE[1]}",
+        _int_range(*PARTS_RANGE),
+        doc="How many parts `measure` and `grade` run when a random impairment is on "
+        "(element mismatch, random jitter, analog noise); part 0 is part_seed itself, the "
+        "others derived seeds (docs/impairments.md). A profile with no random draw runs once.",
+    )
     jitter_rms_s: float = _key(
         0.0,
         "float",
@@ -842,8 +852,10 @@ class ImpairmentSettings:
 
     @property
     def active(self) -> bool:
-        """True when any key differs from the ideal converter."""
-        return self != ImpairmentSettings()
+        """True when any key differs from the ideal converter (``parts`` alone does not)."""
+        from dataclasses import replace
+
+        return replace(self, parts=1) != ImpairmentSettings()
 
 
 #: The [impairments] keys of a loudspeaker load, given all together or none.

@@ -33,6 +33,7 @@ __all__ = [
     "plot_margins",
     "plot_spectrogram",
     "plot_cost_against_margin",
+    "plot_part_spread",
 ]
 
 # Okabe & Ito's colour-blind-safe set ("Color Universal Design", 2008): blue, vermillion,
@@ -726,6 +727,94 @@ def plot_spectrogram(
     bar = fig.colorbar(mesh, ax=ax, pad=0.01)
     bar.set_label("dBFS per bin", fontsize=8)
     bar.ax.tick_params(labelsize=7)
+    return fig
+
+
+def plot_part_spread(parts, *, graded=(), title="Spread over parts", max_metrics=12):
+    """Each metric's readings over the parts of one profile: a strip plot per metric.
+
+    One panel per metric (each in its own unit): every part's reading as a point (circle
+    when it meets the metric's spec target, cross when not; jittered up and down so equal
+    readings stay visible), a box from the 5th to the 95th percentile with the median as a
+    thick line, and the target's limit as a dashed line. Metrics a target names come first,
+    then those that differ between parts; at most ``max_metrics`` panels.
+
+    Parameters
+    ----------
+    parts : sequence of PartReading
+        A profile's parts (:attr:`ProfileGrade.parts`).
+    graded : sequence of TargetGrade, keyword-only
+        The profile's graded targets (their limits are drawn).
+    title : str, keyword-only
+    max_metrics : int, keyword-only
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Raises
+    ------
+    ParameterError
+        No metric has a reading in two or more parts.
+    """
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Rectangle
+
+    from audiodsm.evaluate.battery import METRIC_UNITS
+    from audiodsm.evaluate.parts import is_number, metric_spread
+
+    spread = metric_spread(parts)
+    limits = {}
+    for line in graded:
+        t = line.target
+        if t.at_level_dbfs is None and t.metric in spread:
+            limits.setdefault(t.metric, t)
+    varied = [k for k, r in spread.items() if r["readings"] >= 2 and r["max"] > r["min"]]
+    names = [k for k in limits if spread[k]["readings"] >= 2]
+    names += [k for k in varied if k not in names]
+    names = names[:max_metrics]
+    if not names:
+        raise ParameterError("parts", len(parts), "readings that differ between two or more parts")
+    fig = Figure(figsize=(7.6, 0.85 * len(names) + 0.9), dpi=100, layout="constrained")
+    axes = fig.subplots(len(names), 1, squeeze=False)
+    offsets = np.linspace(-0.25, 0.25, len(parts)) if len(parts) > 1 else np.zeros(1)
+    for ax, name in zip(axes[:, 0], names, strict=True):
+        row, target = spread[name], limits.get(name)
+        values = np.array(
+            [
+                np.nan
+                if name in p.invalid or not is_number(p.metrics.get(name))
+                else float(p.metrics[name])
+                for p in parts
+            ]
+        )
+        ok = np.isfinite(values)
+        meets = np.ones(values.size, dtype=bool)
+        if target is not None:
+            meets = np.array(
+                [bool(v) and target.margin(x) >= 0.0 for x, v in zip(values, ok, strict=True)]
+            )
+        for mask, marker, colour in ((ok & meets, "o", _BLUE), (ok & ~meets, "x", _VERMILLION)):
+            if mask.any():
+                ax.plot(values[mask], offsets[mask], marker, color=colour, ms=4, alpha=0.8)
+        ax.add_patch(
+            Rectangle((row["p5"], -0.38), row["p95"] - row["p5"], 0.76, fill=False, ec=_INK, lw=0.8)
+        )
+        ax.plot([row["median"]] * 2, [-0.38, 0.38], color=_INK, lw=2.2)
+        if target is not None:
+            ax.axvline(target.limit, color=_INK, ls="--", lw=1.0)
+        ax.set_ylim(-0.5, 0.5)
+        ax.set_yticks([])
+        unit = target.unit if target is not None else METRIC_UNITS.get(name, ("", "", ""))[1]
+        label = f"{name} ({unit})" if unit else name
+        ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=7)
+        ax.tick_params(axis="x", labelsize=7)
+        ax.grid(True, axis="x", alpha=0.3)
+    axes[0, 0].set_title(
+        f"{title}: {len(parts)} parts (box: 5th to 95th percentile, thick line: median, "
+        "dashed: limit, x: misses it)",
+        fontsize=8,
+    )
     return fig
 
 

@@ -55,6 +55,7 @@ __all__ = [
     "report_curves",
     "curve_to_csv",
     "overlay_to_csv",
+    "parts_to_csv",
     "figure_to_png",
     "write_profile_plots",
     "render_html",
@@ -80,6 +81,9 @@ CSV_COLUMNS = (
     "passed",
     "valid",
     "reason",
+    "parts_met",
+    "parts_needed",
+    "parts_total",
 )
 
 
@@ -98,8 +102,13 @@ def batch_to_dict(batch) -> dict:
         ``worst_margin`` (plain minimum, in mixed units), ``ranking_margin_db`` (the worst
         normalized margin the ranking uses), ``failure``, ``cached``, ``seconds``,
         ``targets`` (one dict per target: metric, at_level_dbfs, bound, limit, unit, value,
-        margin, passed, valid, reason, note), ``metrics`` (an invalid reading is null),
-        ``validity`` (metric -> ``{"valid": bool, "reason": str}``) and ``notes``.
+        margin, passed, valid, reason, note, and for a profile run as several parts
+        parts_met, parts_needed, parts_total, else null), ``metrics`` (an invalid reading is
+        null), ``validity`` (metric -> ``{"valid": bool, "reason": str}``), ``notes`` and
+        ``parts`` (null for one part; else ``{"count", "seeds", "percentiles", "spread":
+        {metric: {"parts", "readings", "min", "p5", "median", "p95", "max"}}, "per_part":
+        [{"part", "seed", "cached", "seconds", "metrics", "validity"}]}``; ``metrics`` and
+        ``validity`` of the profile are then part 0's).
     """
     from audiodsm import __version__
     from audiodsm.evaluate.battery import validity_table
@@ -123,6 +132,10 @@ def batch_to_dict(batch) -> dict:
                     "valid": bool(line.valid),
                     "reason": line.reason,
                     "note": t.note,
+                    "percentile": t.percentile,
+                    "parts_met": line.parts_met,
+                    "parts_needed": line.parts_needed,
+                    "parts_total": line.parts_total,
                 }
             )
         profiles.append(
@@ -142,6 +155,7 @@ def batch_to_dict(batch) -> dict:
                 "metrics": {k: plain_scalar(v) for k, v in g.metrics.items()},
                 "validity": validity_table(g.metrics, g.invalid),
                 "notes": list(g.notes),
+                "parts": _parts_dict(g),
             }
         )
     return {
@@ -158,6 +172,7 @@ def batch_to_dict(batch) -> dict:
                     "limit": t.limit,
                     "unit": t.unit,
                     "note": t.note,
+                    "percentile": t.percentile,
                 }
                 for t in spec.targets
             ],
@@ -167,6 +182,54 @@ def batch_to_dict(batch) -> dict:
         "interrupted": batch.interrupted,
         "unfinished": list(batch.unfinished),
     }
+
+
+def _parts_dict(g):
+    """A profile's parts as JSON-ready data (None for one part)."""
+    from audiodsm.evaluate.battery import validity_table
+    from audiodsm.evaluate.parts import SPREAD_PERCENTILES
+
+    if not g.parts:
+        return None
+    spread = {name: {k: plain_scalar(v) for k, v in row.items()} for name, row in g.spread.items()}
+    return {
+        "count": len(g.parts),
+        "seeds": [p.seed for p in g.parts],
+        "percentiles": list(SPREAD_PERCENTILES),
+        "spread": spread,
+        "per_part": [
+            {
+                "part": p.index,
+                "seed": p.seed,
+                "cached": p.cached,
+                "seconds": plain_scalar(p.seconds),
+                "metrics": {k: plain_scalar(v) for k, v in p.metrics.items()},
+                "validity": validity_table(p.metrics, p.invalid),
+            }
+            for p in g.parts
+        ],
+    }
+
+
+def parts_to_csv(grade) -> str:
+    """Every part's readings of one profile, one row per part and metric.
+
+    Columns ``part, part_seed, metric, value, valid, reason`` (numbers in full precision,
+    empty when there is none): the data of the report's spread plot.
+    """
+    from audiodsm.evaluate.parts import is_number
+
+    rows = []
+    for p in grade.parts:
+        for name, value in p.metrics.items():
+            bad = name in p.invalid
+            number = None
+            if not bad and is_number(value):
+                number = plain_scalar(value)
+            text = "" if number is None else repr(float(number))
+            why = str(p.invalid.get(name, ""))
+            rows.append((str(p.index), str(p.seed), name, text, "no" if bad else "yes", why))
+    return _csv_text(("part", "part_seed", "metric", "value", "valid", "reason"), rows)
 
 
 def batch_to_csv(batch) -> str:
@@ -191,6 +254,10 @@ def batch_to_csv(batch) -> str:
                     "pass" if t["passed"] else "fail",
                     "yes" if t["valid"] else "no",
                     t["reason"],
+                    *(
+                        "" if t[k] is None else t[k]
+                        for k in ("parts_met", "parts_needed", "parts_total")
+                    ),
                 ]
             )
     return buf.getvalue()
@@ -527,7 +594,23 @@ def render_html(batch, *, title=None) -> str:
                         "csv_name": f"{_file_stem(g.name)}-{name}.csv",
                     }
                 )
-        sections.append({"rank": rank, "grade": g, "plots": plots, "colour": style["color"]})
+        spread = None
+        if g.parts:
+            spread = {
+                "table": g.spread,
+                "png": None,
+                "id": f"profile-{rank}-parts",
+                "caption": f"spread over {len(g.parts)} parts",
+                "csv": _b64(parts_to_csv(g)),
+                "csv_name": f"{_file_stem(g.name)}-parts.csv",
+            }
+            try:
+                spread["png"] = _png_base64(plotting.plot_part_spread(g.parts, graded=g.lines))
+            except AudiodsmError:  # no metric differs between parts: the table says it all
+                pass
+        sections.append(
+            {"rank": rank, "grade": g, "plots": plots, "colour": style["color"], "spread": spread}
+        )
     overlays = []
     if len(with_curves) > 1:
         for kind, caption in plotting.OVERLAYS:
