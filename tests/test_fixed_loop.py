@@ -201,8 +201,50 @@ def test_input_words_equal_a_numpy_twin(rule, overflow):
     np.testing.assert_array_equal(quantize_words(x, node), w.astype(np.int64))
 
 
+@pytest.mark.parametrize("rule", ["truncate", "round-half-up", "convergent"])
+@pytest.mark.parametrize("overflow", ["saturate", "wrap"])
+@pytest.mark.parametrize("levels", [2, 9])
+def test_run_on_floats_equals_run_words_on_its_input_words(rule, overflow, levels):
+    # run() fits the input to its word inside the compiled loop; that must be input_words'
+    # fit exactly (ties and out-of-range samples included), across block and call edges, and
+    # with the overflow rules acting (the blocks run again with the rules on)
+    fmt = _mixed_format(4)
+    fmt = FixedPointFormat(
+        input=NodeFormat("input", 0, 7, rule, overflow),
+        states=fmt.states,
+        coefficient_fraction_bits=fmt.coefficient_fraction_bits,
+        coefficient_digits=fmt.coefficient_digits,
+    )
+    fx = FixedPointModulator(_loop(4), fmt, levels)
+    rng = np.random.default_rng(11)
+    x = np.r_[rng.uniform(-1.2, 1.2, 3000), (np.arange(-140, 140) + 0.5) / 128.0]
+    x = np.tile(x, 2)
+    y, st = fx.run(x)
+    q, st_words = fx.run_words(quantize_words(x, fmt.input))
+    np.testing.assert_array_equal(y, fx.levels_from_indices(q))
+    for field in ("words", "peak_words", "overflow_count"):
+        np.testing.assert_array_equal(getattr(st, field), getattr(st_words, field))
+    assert st.overflow_count.sum() > 0
+    buffer = np.full(len(x), np.nan)
+    y1, s1 = fx.run(x[:1500], out=buffer[:1500])
+    y2, s2 = fx.run(x[1500:], s1, out=buffer[1500:])
+    assert y1.base is buffer and y2.base is buffer  # the caller's buffer, written in place
+    np.testing.assert_array_equal(buffer, y)
+    np.testing.assert_array_equal(s2.words, st.words)
+
+
 def test_refusals():
     loop = _loop(3)
+    fx = FixedPointModulator(loop, FixedPointFormat.uniform(3))
+    top = (1 << (fx.format.input.word_bits - 1)) - 1
+    words = np.zeros(5000, dtype=np.int64)
+    words[4500] = top + 1  # past the first block of the compiled loop
+    with pytest.raises(ParameterError, match="outside the input word"):
+        fx.run_words(words)
+    words[4500] = -top - 1
+    fx.run_words(words)  # the most negative word is in range
+    with pytest.raises(ParameterError, match="out"):
+        fx.run(np.zeros(10), out=np.zeros(9))
     with pytest.raises(ParameterError, match="structure"):
         FixedPointModulator(_loop(3, "feedforward"), FixedPointFormat.uniform(3))
     with pytest.raises(ParameterError, match="fmt.states"):

@@ -32,7 +32,6 @@ __all__ = [
 
 _ROUNDING_CODES = {"truncate": 0, "round-half-up": 1, "convergent": 2}
 _OVERFLOW_CODES = {"saturate": 0, "wrap": 1}
-_CHUNK = 1 << 15  # samples per kernel call in run(): the words stay in cache
 _MAX_BITS = 63  # int64 holds every intermediate value when all terms fit in this many bits
 
 
@@ -165,16 +164,23 @@ class FixedPointModulator:
         self._quantizer = np.array(
             [m, fmt.states[-1].fraction_bits, self.output_fraction_bits], dtype=np.int64
         )
-        resonators = tuple(bool(self._coef[2, i] != 0) for i in range(self.order - 1)) + (False,)
+        node = fmt.input
         self._kernel_key = (
             self.order,
-            resonators,
             m,
             int(fmt.states[-1].fraction_bits),
+            tuple(tuple(int(v) for v in row) for row in self._coef),
             tuple(tuple(int(v) for v in row) for row in self._shifts),
             tuple(tuple(int(v) for v in row) for row in self._rules),
+            (
+                int(node.fraction_bits),
+                _ROUNDING_CODES[node.rounding],
+                int(node.word_bits),
+                node.overflow == "wrap",
+            ),
+            float(2.0 / (self.levels - 1)),
         )
-        self._kernel = None  # compiled on first run
+        self._kernels = {}  # compiled on first run: False on words, True on floats
 
     def _plan_shifts(self):
         """Alignment shifts per node, and a check that every intermediate fits in int64."""
@@ -281,13 +287,17 @@ class FixedPointModulator:
         u = np.ascontiguousarray(words, dtype=np.int64)
         if u.ndim != 1:
             raise ParameterError("words.shape", u.shape, "(frames,)")
-        node = self.format.input
-        hi = (1 << (node.word_bits - 1)) - 1
-        if len(u) and (u.max() > hi or u.min() < -hi - 1):
-            raise ParameterError("words", "a word outside the input word", f"-{hi + 1}..{hi}")
-        return self._run_checked_words(u, state)
+        out = np.empty(len(u), dtype=np.int64)
+        return out, self._run_kernel(False, u, out, state)
 
-    def _run_checked_words(self, u, state):
+    def _kernel(self, float_io):
+        kernel = self._kernels.get(float_io)
+        if kernel is None:
+            kernel = _fixed_kernels.fixed_loop_kernel(self._kernel_key, float_io)
+            self._kernels[float_io] = kernel
+        return kernel
+
+    def _run_kernel(self, float_io, u, out, state):
         if state is None:
             state = self.initial_state()
         elif not isinstance(state, FixedLoopState) or state.words.shape != (self.order,):
@@ -295,40 +305,51 @@ class FixedPointModulator:
         st = np.array(state.words, dtype=np.int64)
         peaks = np.array(state.peak_words, dtype=np.int64)
         counts = np.array(state.overflow_count, dtype=np.int64)
-        out = np.empty(len(u), dtype=np.int64)
-        if self._kernel is None:
-            self._kernel = _fixed_kernels.fixed_loop_kernel(self._kernel_key)
-        self._kernel(
-            u, out, self._coef, self._shifts, self._rules, st, peaks, counts, self._quantizer
-        )
+        if self._kernel(float_io)(u, out, st, peaks, counts) >= 0:
+            hi = (1 << (self.format.input.word_bits - 1)) - 1
+            raise ParameterError("words", "a word outside the input word", f"-{hi + 1}..{hi}")
         steps = np.array([node.step for node in self.format.states])
-        new = FixedLoopState(
+        return FixedLoopState(
             _readonly(st),
             _readonly(peaks),
             _readonly(counts),
             state.samples + len(u),
             _readonly(peaks * steps),
         )
-        return out, new
 
-    def run(self, x, state: FixedLoopState | None = None):
+    def run(self, x, state: FixedLoopState | None = None, *, out=None):
         """Modulate full-scale float input; return output levels in full-scale units.
 
-        The input is first fitted to the input word (:meth:`input_words`). Long inputs run in
-        cache-sized chunks (the chunking is invisible in the result: the loop streams).
+        The input is fitted to the input word (:meth:`input_words`'s rules) inside the
+        compiled loop; the result equals ``levels_from_indices(run_words(input_words(x)))``
+        bit for bit.
+
+        Parameters
+        ----------
+        x : array_like, shape (frames,)
+            Full-scale input.
+        state : FixedLoopState or None
+            From the previous call, or None to start from zero.
+        out : ndarray of float64, shape (frames,), optional
+            Written with the output and returned (no allocation).
         """
-        x = np.asarray(x, dtype=np.float64)
+        x = np.ascontiguousarray(x, dtype=np.float64)
         if x.ndim != 1:
             raise ParameterError("x.shape", x.shape, "(frames,)")
-        y = np.empty(len(x))
-        new = self.initial_state() if state is None else state
-        for start in range(0, max(len(x), 1), _CHUNK):
-            part = x[start : start + _CHUNK]
-            q, new = self._run_checked_words(self.input_words(part), new)  # fit by making
-            y[start : start + len(part)] = q
-        y *= self.step
-        y -= 1.0
-        return y, new
+        if not np.isfinite(x).all():
+            raise ParameterError("x", "non-finite samples", "finite samples")
+        if out is None:
+            out = np.empty(len(x))
+        elif (
+            not isinstance(out, np.ndarray)
+            or out.dtype != np.float64
+            or out.shape != x.shape
+            or not out.flags.c_contiguous
+            or not out.flags.writeable
+        ):
+            raise ParameterError("out", type(out).__name__, f"a writable float64 array {x.shape}")
+        new = self._run_kernel(True, x, out, state)
+        return out, new
 
     def process(self, x, state: FixedLoopState | None = None):
         """Same as :meth:`run` (the stage interface)."""
