@@ -24,8 +24,8 @@ from audiodsm.stages.fixed_loop import (
     in_band_noise_power,
 )
 
-# zero_band_edge_hz = 24000: the zeros spread over 0..24 kHz at 48 kHz, the band the planner
-# measures the loop's noise in (0..0.5/osr; the default places them for 0..20 kHz)
+# zero_band_edge_hz = 24000: the zeros spread over 0..24 kHz at 48 kHz, and the planner
+# measures the loop's noise over that band (0..0.5/osr; the default is 0..20 kHz)
 BASE = (
     'name = "t3"\n[upsampler]\nosr = 64\n[modulator]\norder = 3\nstructure = "feedback"\n'
     "zero_band_edge_hz = 24000.0\n"
@@ -62,12 +62,12 @@ def test_plan_keeps_its_noise_budget_in_simulation(planned):
     flt = Modulator(facts.loop, levels=facts.levels)
     fixed_sum = float_sum = 0.0
     for fraction in (0.55, 0.6, 0.7, 0.8):  # of the band edge: harmonics fall out of band
-        tone_bin = int(n / facts.osr / 2 * fraction) | 1
+        tone_bin = int(n / facts.band_ratio / 2 * fraction) | 1
         x = 0.5 * facts.stable_amplitude * np.sin(2 * np.pi * tone_bin / n * np.arange(n))
         y_fixed, st = fx.run(x)
         assert st.overflow_count.sum() == 0
-        fixed_sum += in_band_noise_power(y_fixed, osr=facts.osr, tone_bin=tone_bin)
-        float_sum += in_band_noise_power(flt.run(x)[0], osr=facts.osr, tone_bin=tone_bin)
+        fixed_sum += in_band_noise_power(y_fixed, osr=facts.band_ratio, tone_bin=tone_bin)
+        float_sum += in_band_noise_power(flt.run(x)[0], osr=facts.band_ratio, tone_bin=tone_bin)
     assert abs(10 * np.log10(fixed_sum / float_sum)) < 0.3
     # range: every state holds its float peak with the margin
     for node, peak in zip(plan.format.states, facts.state_peaks, strict=True):
@@ -251,5 +251,18 @@ def test_shipped_fixed_point_section_is_the_planners_own():
 
     path = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "pdm5_fixed_64x.toml"
     shipped = load_profile(path)
-    plan, _, _ = plan_profile(shipped, rounding="convergent")
+    plan, facts, _ = plan_profile(shipped, rounding="convergent")
     assert profile_with_plan(shipped, plan) == shipped
+    # its noise budget is kept in the audio band the battery measures, up to AES17's 20 kHz
+    # (measure/bands.py), not up to half the 48 kHz rate: 3.072 MHz / (2 x 20 kHz) = 76.8
+    from audiodsm.measure.bands import AES17_UPPER_HZ
+
+    assert facts.band_edge_hz == AES17_UPPER_HZ == shipped.modulator.zero_band_edge_hz
+    assert facts.band_ratio == pytest.approx(76.8, rel=1e-12)
+
+
+def test_planner_band_follows_the_profile(planned):
+    # BASE spreads its zeros over 0..24 kHz at 48 kHz: the band is then 0..0.5/osr exactly
+    _, _, facts, _ = planned
+    assert facts.band_edge_hz == 24000.0
+    assert facts.band_ratio == facts.osr

@@ -101,6 +101,11 @@ class FloatLoopFacts:
         80 dB lower.
     upsampler_design : object
         The chain's upsampler design (for the test vectors).
+    band_edge_hz : float
+        Upper edge of the audio band every in-band noise figure of the plan is taken over
+        (from DC): the profile's ``modulator.zero_band_edge_hz`` (20 kHz unless set; the band
+        the NTF zeros are spread over and the battery's 20 kHz upper limit), capped at half the
+        audio rate.
     """
 
     loop: object
@@ -112,9 +117,19 @@ class FloatLoopFacts:
     state_peaks: np.ndarray
     loop_noise_power: float
     upsampler_design: object
+    band_edge_hz: float
+
+    @property
+    def band_ratio(self) -> float:
+        """Modulator rate over twice the band edge: the band is 0..0.5/band_ratio per sample.
+
+        It stands where the in-band functions take ``osr``; it equals the OSR when the band
+        reaches half the audio rate.
+        """
+        return self.rate_hz * self.osr / (2.0 * self.band_edge_hz)
 
 
-def _noise_tone(osr: int, samples: int, amplitude: float):
+def _noise_tone(osr: float, samples: int, amplitude: float):
     """A coherent tone at 0.6 of the band edge (harmonics out of band) and its bin."""
     tone_bin = int(samples / osr / 2 * 0.6) | 1
     t = np.arange(samples)
@@ -158,11 +173,13 @@ def float_loop_facts(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ) 
     # the loop's own noise where it is lowest of a loud and a quiet tone (a single-bit loop's
     # in-band noise falls by several dB at small inputs); exact silence is left out, where a
     # float loop settles into a limit cycle that any rounding breaks up
+    band_edge_hz = min(float(mod.zero_band_edge_hz), 0.5 * rate_hz)
+    band_ratio = rate_hz * osr / (2.0 * band_edge_hz)
     noise = np.inf
     for level in (0.5, 1e-4):
-        x, tone_bin = _noise_tone(osr, _NOISE_RUN_SAMPLES, level * amplitude)
+        x, tone_bin = _noise_tone(band_ratio, _NOISE_RUN_SAMPLES, level * amplitude)
         y, _ = modulator.run(x)
-        noise = min(noise, in_band_noise_power(y, osr=osr, tone_bin=tone_bin))
+        noise = min(noise, in_band_noise_power(y, osr=band_ratio, tone_bin=tone_bin))
     return FloatLoopFacts(
         loop=modulator.loop,
         levels=int(mod.levels),
@@ -173,6 +190,7 @@ def float_loop_facts(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ) 
         state_peaks=peaks,
         loop_noise_power=float(noise),
         upsampler_design=chain.upsampler_design,
+        band_edge_hz=band_edge_hz,
     )
 
 
@@ -231,7 +249,7 @@ def plan_profile(
     facts = float_loop_facts(profile, rate_hz=rate_hz)
     plan = plan_word_lengths(
         facts.loop,
-        osr=facts.osr,
+        osr=facts.band_ratio,
         state_peaks=facts.state_peaks,
         loop_noise_power=facts.loop_noise_power,
         budget_db=budget_db,
@@ -321,14 +339,14 @@ def check_fixed_point(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ)
         raise _profile_error(profile, "fixed_point.state_fraction_bits", str(exc)) from None
     report = coefficient_report(
         facts.loop,
-        osr=facts.osr,
+        osr=facts.band_ratio,
         fraction_bits=fmt.coefficient_fraction_bits,
         digits=fmt.coefficient_digits,
     )
     if not report.poles_inside or _quantized_stability(facts, fmt) <= 0:
         try:
             works = smallest_coefficient_bits(
-                facts.loop, osr=facts.osr, digits=fmt.coefficient_digits
+                facts.loop, osr=facts.band_ratio, digits=fmt.coefficient_digits
             ).fraction_bits
             hint = f"at least {works} bits keep the loop as designed"
         except ParameterError:
@@ -339,7 +357,7 @@ def check_fixed_point(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ)
             f"got {fmt.coefficient_fraction_bits} (digits {fmt.coefficient_digits}): the "
             f"quantized coefficients do not give a stable loop; {hint}",
         )
-    x, _ = _noise_tone(facts.osr, _NOISE_RUN_SAMPLES, facts.stable_amplitude)
+    x, _ = _noise_tone(facts.band_ratio, _NOISE_RUN_SAMPLES, facts.stable_amplitude)
     _, st = fx.run(x)
     if st.overflow_count.any():
         j = int(np.argmax(st.overflow_count > 0))
@@ -561,8 +579,8 @@ def _readme(profile, fx, facts, vectors, summary_noise, files) -> str:
         "## Check",
         "",
         f"In-band noise of the fixed-point loop {summary_noise[0]:.1f} dBFS against "
-        f"{summary_noise[1]:.1f} dBFS for the float loop (a tone at 0.6 of the band edge at "
-        "half the maximum stable amplitude).",
+        f"{summary_noise[1]:.1f} dBFS for the float loop over 0..{facts.band_edge_hz:g} Hz (a "
+        "tone at 0.6 of that band edge at half the maximum stable amplitude).",
         "",
     ]
     return "\n".join(lines)
@@ -631,16 +649,16 @@ def write_handoff(
         raise ParameterError("vector_samples", vector_samples, "an integer >= 1024")
     fx, facts = check_fixed_point(profile, rate_hz=rate_hz)
     vectors = stimulus_vectors(fx, facts, samples=int(vector_samples))
-    x, tone_bin = _noise_tone(facts.osr, _NOISE_RUN_SAMPLES, 0.5 * facts.stable_amplitude)
+    x, tone_bin = _noise_tone(facts.band_ratio, _NOISE_RUN_SAMPLES, 0.5 * facts.stable_amplitude)
     y, _ = fx.run(x)
-    fixed_noise = in_band_noise_power(y, osr=facts.osr, tone_bin=tone_bin)
+    fixed_noise = in_band_noise_power(y, osr=facts.band_ratio, tone_bin=tone_bin)
     noise_db = (
         10 * np.log10(fixed_noise / 0.5),
         10 * np.log10(facts.loop_noise_power / 0.5),
     )
     report = coefficient_report(
         facts.loop,
-        osr=facts.osr,
+        osr=facts.band_ratio,
         fraction_bits=fx.format.coefficient_fraction_bits,
         digits=fx.format.coefficient_digits,
     )
@@ -663,6 +681,7 @@ def write_handoff(
             "rate_hz": facts.rate_hz,
             "osr": facts.osr,
             "clock_hz": facts.rate_hz * facts.osr,
+            "band_edge_hz": facts.band_edge_hz,
             "input_scale": facts.input_scale,
             "stable_amplitude": facts.stable_amplitude,
             "state_peaks": [float(p) for p in facts.state_peaks],
