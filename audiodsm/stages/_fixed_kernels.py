@@ -398,3 +398,35 @@ def fixed_loop_kernel(key, float_io=False):
         kernel = njit(cache=True, nogil=True)(function)
         _FIXED_KERNELS[(key, float_io)] = kernel
     return kernel
+
+
+@njit(cache=True, nogil=True)
+def fixed_interpolate_row(row, phases, ratio, taps, lengths, out, shift, rule, word_bits, wrap):
+    """Interpolate one channel by R = ``ratio`` in integers (the fixed-point interpolator).
+
+    ``phases`` is (R, M) int64 with M = ``taps``: ``phases[p, m]`` is the integer of tap
+    ``p + m R`` of the interpolation filter (gain R), ``lengths[p]`` of them used. ``row`` is
+    the last M - 1 input words of the previous block, then the n new ones; ``out`` (R n)
+    receives ``out[R i + p] = fit(round(sum_m phases[p, m] * row[i + M - 1 - m], shift))``:
+    the exact sum, its ``shift`` low bits dropped by the rounding rule (0 truncate, 1 round
+    half up, 2 convergent), then fitted to ``word_bits`` (``wrap`` or saturate). Returns the
+    number of outputs the overflow rule acted on.
+    """
+    hi = (1 << (word_bits - 1)) - 1
+    lo = -hi - 1
+    n = out.shape[0] // ratio
+    overflows = 0
+    for i in range(n):
+        for p in range(ratio):
+            acc = 0
+            for m in range(lengths[p]):
+                acc += phases[p, m] * row[i + taps - 1 - m]
+            val = _round_shift(acc, shift, rule)
+            if val > hi or val < lo:
+                overflows += 1
+                if wrap:
+                    val = ((val - lo) & (2 * hi + 1)) + lo
+                else:
+                    val = hi if val > hi else lo
+            out[ratio * i + p] = val
+    return overflows
