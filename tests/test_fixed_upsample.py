@@ -271,3 +271,33 @@ def test_refusals(design):
         FixedPointUpsampler(
             design, FixedInterpolatorFormat(fraction_bits=40, coefficient_fraction_bits=30)
         )
+
+
+@pytest.mark.parametrize("scope", ["last", "all"])
+def test_chain_runs_the_fixed_point_interpolator(scope):
+    # fixed_point.interpolator puts the integer interpolator into the chain's signal path
+    # (ahead of the integer loop): the modulator output is the two models', bit for bit
+    from audiodsm.profile import parse_profile
+    from audiodsm.signals import sine
+    from audiodsm.stages.chain import Chain, run_chain
+
+    prof = parse_profile(
+        '[upsampler]\nosr = 64\n[modulator]\norder = 3\nstructure = "feedback"\n'
+        "[fixed_point]\nstate_integer_bits = [1, 1, 1]\nstate_fraction_bits = [20, 20, 20]\n"
+        f'interpolator = "{scope}"\ninterpolator_fraction_bits = 18\n'
+        "interpolator_coefficient_fraction_bits = 14\n"
+    )
+    x = sine(997.0, -6.0, rate_hz=48000, duration_s=0.02)
+    res = run_chain(prof, x, rate_hz=48000, keep=("modulator",))
+    chain = Chain.from_profile(prof, 48000, 1)
+    fu = FixedPointUpsampler(chain.upsampler_design, FixedInterpolatorFormat(1, 18, 14), scope)
+    xq = chain.requantizer.process(x[:, None])[0][:, 0]
+    xu, _ = fu.process(xq * chain.input_scale)
+    assert np.array_equal(xu, np.round(xu * 2.0**18) / 2.0**18)  # 18-bit words
+    expected, _ = chain.fixed_loop.run(xu)
+    np.testing.assert_array_equal(np.asarray(res.modulator, dtype=float).reshape(-1), expected)
+    with pytest.raises(Exception, match="interpolator"):
+        parse_profile(
+            '[upsampler]\nosr = 64\n[modulator]\norder = 3\nstructure = "feedback"\n'
+            '[fixed_point]\ninterpolator = "all"\n'
+        )

@@ -170,6 +170,21 @@ class Chain:
                 final_stage=up.final_stage,
             )
             self._upsampler = Upsampler(self.upsampler_design)
+        fp = profile.fixed_point
+        if fp.active and fp.interpolator != "float":
+            # [fixed_point] interpolator: the integer interpolator (or its last stage) in the
+            # signal path; the design, its response and delay stay the float chain's
+            with _settings_of(profile, "fixed_point"):
+                from audiodsm.stages.fixed_upsample import (
+                    FixedPointUpsampler,
+                    interpolator_format_from_settings,
+                )
+
+                self._upsampler = FixedPointUpsampler(
+                    self.upsampler_design,
+                    interpolator_format_from_settings(fp),
+                    fp.interpolator,
+                )
 
         mod = profile.modulator
         with _settings_of(profile, "modulator"):

@@ -30,6 +30,7 @@ __all__ = [
     "FixedInterpolatorFormat",
     "FixedPointUpsampler",
     "FixedUpsamplerState",
+    "interpolator_format_from_settings",
 ]
 
 #: Which stages of the interpolation chain run in fixed point: none, the last one, all.
@@ -333,3 +334,25 @@ class FixedPointUpsampler:
             ndim,
         )
         return _to_frames(result, ndim), new_state
+
+
+def interpolator_format_from_settings(settings) -> FixedInterpolatorFormat:
+    """The interpolator format a profile's ``[fixed_point]`` section describes.
+
+    Parameters
+    ----------
+    settings : FixedPointSettings
+        Its ``interpolator_*`` keys.
+
+    Returns
+    -------
+    FixedInterpolatorFormat
+    """
+    return FixedInterpolatorFormat(
+        integer_bits=settings.interpolator_integer_bits,
+        fraction_bits=settings.interpolator_fraction_bits,
+        coefficient_fraction_bits=settings.interpolator_coefficient_fraction_bits,
+        coefficient_digits=settings.interpolator_coefficient_digits,
+        rounding=settings.interpolator_rounding,
+        overflow=settings.interpolator_overflow,
+    )
