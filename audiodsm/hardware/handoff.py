@@ -101,6 +101,9 @@ class FloatLoopFacts:
         80 dB lower.
     upsampler_design : object
         The chain's upsampler design (for the test vectors).
+    signal_upsampler : object
+        The upsampler of the chain's signal path: the float one, or the fixed-point one the
+        profile's ``fixed_point.interpolator`` asks for (the test vectors go through it).
     band_edge_hz : float
         Upper edge of the audio band every in-band noise figure of the plan is taken over
         (from DC): the profile's ``modulator.zero_band_edge_hz`` (20 kHz unless set; the band
@@ -117,6 +120,7 @@ class FloatLoopFacts:
     state_peaks: np.ndarray
     loop_noise_power: float
     upsampler_design: object
+    signal_upsampler: object
     band_edge_hz: float
 
     @property
@@ -190,6 +194,7 @@ def float_loop_facts(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ) 
         state_peaks=peaks,
         loop_noise_power=float(noise),
         upsampler_design=chain.upsampler_design,
+        signal_upsampler=chain.signal_upsampler,
         band_edge_hz=band_edge_hz,
     )
 
@@ -406,19 +411,18 @@ def _stimuli(rate_hz: int, audio_samples: int):
 def stimulus_vectors(fx: FixedPointModulator, facts: FloatLoopFacts, *, samples: int):
     """Input words and output level indices of the fixed-point loop on the battery's stimuli.
 
-    Each stimulus is scaled by the chain's input scale, upsampled by the chain's upsampler,
-    fitted to the input word and run through the loop from rest.
+    Each stimulus is scaled by the chain's input scale, upsampled by the chain's upsampler
+    (the fixed-point one when the profile asks for it), fitted to the input word and run
+    through the loop from rest.
 
     Returns
     -------
     list of (name, input_words, output_indices)
     """
-    from audiodsm.stages.upsample import Upsampler
-
     audio = -(-samples // facts.osr)
     out = []
     for name, x in _stimuli(facts.rate_hz, audio):
-        xu, _ = Upsampler(facts.upsampler_design).process(x * facts.input_scale)
+        xu, _ = facts.signal_upsampler.process(x * facts.input_scale)
         words = fx.input_words(np.asarray(xu, dtype=float)[:samples])
         q, _ = fx.run_words(words)
         out.append((name, words, q))

@@ -689,6 +689,15 @@ class Chain:
         )
         return block, replace(state, channels=new_channels, stats=stats)
 
+    @property
+    def signal_upsampler(self):
+        """The upsampler of the signal path (float, or the fixed-point one).
+
+        An ``Upsampler``, or the ``FixedPointUpsampler`` the profile's
+        ``fixed_point.interpolator`` asks for.
+        """
+        return self._upsampler
+
     # -- aligned streaming ----------------------------------------------------------------------
 
     @property

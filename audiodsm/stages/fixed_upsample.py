@@ -226,6 +226,49 @@ class FixedPointUpsampler:
         """Interpolation ratio of each fixed stage, in order."""
         return [r for _, _, r in self._tables]
 
+    def trace_words(self, x) -> list:
+        """The words entering each fixed stage and leaving the last one, from rest.
+
+        Parameters
+        ----------
+        x : array_like, shape (n,)
+            One channel at the input rate.
+
+        Returns
+        -------
+        list of ndarray of int64
+            Input words of fixed stage 1, 2, ..., then the output words (what ``process``
+            returns, divided by the step); the test vectors of a generated stage.
+        """
+        from audiodsm.stages.fixed_loop import quantize_words
+
+        frames, ndim = _as_frames(x)
+        if ndim != 1:
+            raise ParameterError("x.shape", np.shape(x), "(frames,)")
+        state = self.initial_state(1)
+        if self._float is not None:
+            frames, _ = self._float_prefix(np.ascontiguousarray(frames), state.float_histories)
+        fmt = self.format
+        words = quantize_words(frames[:, 0], fmt.word)
+        trace = [words]
+        for s, (table, lengths, ratio) in enumerate(self._tables):
+            row = np.concatenate([state.word_histories[s][0], words])
+            words = np.empty(len(trace[-1]) * ratio, dtype=np.int64)
+            _fixed_kernels.fixed_interpolate_row(
+                row,
+                table,
+                ratio,
+                table.shape[1],
+                lengths,
+                words,
+                fmt.coefficient_fraction_bits,
+                _ROUNDING_CODES[fmt.rounding],
+                fmt.integer_bits + fmt.fraction_bits + 1,
+                fmt.overflow == "wrap",
+            )
+            trace.append(words)
+        return trace
+
     def initial_state(self, channels: int = 1, *, ndim: int = 2) -> FixedUpsamplerState:
         """Zero histories for a stream of ``channels`` channels."""
         if self._float is not None:
