@@ -266,3 +266,33 @@ def test_planner_band_follows_the_profile(planned):
     _, _, facts, _ = planned
     assert facts.band_edge_hz == 24000.0
     assert facts.band_ratio == facts.osr
+
+
+def test_handoff_of_a_dithered_loop_carries_its_dither_words(planned, tmp_path):
+    # with modulator.dither_lsb the integer loop adds the float loop's dither sequence at the
+    # quantizer; the folder then holds the dither words of each vector, the README names the
+    # port, and the generated RTL fed with them gives the expected output words bit for bit
+    from dataclasses import replace
+
+    from audiodsm.hardware.rtl import simulate_words
+
+    profile, plan, facts, _ = planned
+    prof = profile_with_plan(profile, plan)
+    prof = replace(prof, modulator=replace(prof.modulator, dither_lsb=0.25, seed=9))
+    target = tmp_path / "dithered"
+    write_handoff(prof, target, vector_samples=1024)
+    fx, _ = check_fixed_point(prof)  # the loop the handoff built (scaled with the dither on)
+    assert fx.dither_lsb == 0.25 and fx.seed == 9
+    in_bits = fx.format.input.word_bits
+    words = _read_hex(target / "vectors/tone_997hz_m60dbfs_in.hex", in_bits)
+    dither = _read_hex(target / "vectors/tone_997hz_m60dbfs_dither.hex", fx.dither_word_bits)
+    q = np.array(
+        [int(v, 16) for v in (target / "vectors/tone_997hz_m60dbfs_out.hex").read_text().split()]
+    )
+    np.testing.assert_array_equal(
+        dither, fx.dither_words(1024, fx.initial_state().dither_counter)[0]
+    )
+    assert np.any(dither != 0)
+    np.testing.assert_array_equal(fx.run_words(words)[0], q)
+    np.testing.assert_array_equal(simulate_words(fx, words, dither), q)
+    assert "`dither_in`" in (target / "README.md").read_text()

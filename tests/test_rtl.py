@@ -36,18 +36,26 @@ def _mixed(order):
     )
 
 
-@pytest.mark.parametrize("levels", [2, 9])
-def test_simulated_rtl_matches_the_model_bit_for_bit(levels):
+@pytest.mark.parametrize(("levels", "dither_lsb"), [(2, 0.0), (9, 0.0), (2, 0.4)])
+def test_simulated_rtl_matches_the_model_bit_for_bit(levels, dither_lsb):
     # >= 20,000 clocks of Amaranth's simulator on the generated design against the compiled
-    # integer loop; the narrow words make every rounding rule and both overflow rules act
-    fx = FixedPointModulator(_loop(4), _mixed(4), levels)
+    # integer loop; the narrow words make every rounding rule and both overflow rules act.
+    # With dither the design takes the dither words on a port of its own (dither_in).
+    fx = FixedPointModulator(_loop(4), _mixed(4), levels, dither_lsb=dither_lsb, seed=2)
     n = 20000
     t = np.arange(n)
     x = 0.7 * np.sin(2 * np.pi * 0.0031 * t) + 0.2 * np.sin(2 * np.pi * 0.011 * t)
     words = fx.input_words(x)
     expected, state = fx.run_words(words)
     assert state.overflow_count.sum() > 0  # the overflow logic is exercised
-    np.testing.assert_array_equal(simulate_words(fx, words), expected)
+    dither, _ = fx.dither_words(n, fx.initial_state().dither_counter)
+    np.testing.assert_array_equal(simulate_words(fx, words, dither), expected)
+    if dither_lsb:
+        assert np.any(
+            FixedPointModulator(_loop(4), _mixed(4), levels).run_words(words)[0] != expected
+        )
+        errors, tops = _diagnostics(verilog_text(fx))
+        assert errors == [] and tops == [MODULE_NAME]
 
 
 def _diagnostics(text):

@@ -339,7 +339,13 @@ def check_fixed_point(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ)
                 f"maximum stable amplitude); got {node.integer_bits}",
             )
     try:
-        fx = FixedPointModulator(facts.loop, fmt, facts.levels)
+        fx = FixedPointModulator(
+            facts.loop,
+            fmt,
+            facts.levels,
+            dither_lsb=profile.modulator.dither_lsb,
+            seed=profile.modulator.seed,
+        )
     except ParameterError as exc:
         raise _profile_error(profile, "fixed_point.state_fraction_bits", str(exc)) from None
     report = coefficient_report(
@@ -568,6 +574,11 @@ def _readme(profile, fx, facts, vectors, summary_noise, files) -> str:
             f"| `vectors/{name}_out.hex` | expected level index q ({_output_bits(fx)} bits), "
             "one per line |"
         )
+        if fx.dither_lsb > 0:
+            lines.append(
+                f"| `vectors/{name}_dither.hex` | dither words ({fx.dither_word_bits} bits, "
+                f"binary point {fmt.states[-1].fraction_bits}), one per line, for `dither_in` |"
+            )
     lines += [
         "",
         f"Each vector file has {len(vectors[0][1])} words. Load with "
@@ -579,6 +590,16 @@ def _readme(profile, fx, facts, vectors, summary_noise, files) -> str:
         "",
         f"- `sample_in` ({fmt.input.word_bits}-bit signed input word), `level_out` "
         f"({_output_bits(fx)}-bit level index), `clk`, `rst` (synchronous, active high).",
+        *(
+            [
+                f"- `dither_in` ({fx.dither_word_bits}-bit signed dither word, binary point "
+                f"{fmt.states[-1].fraction_bits}): added to the last state at the quantizer "
+                "only. The words are the model's TPDF dither (SplitMix64 on a counter seeded "
+                f"from seed {fx.seed}); each vector starts the sequence afresh.",
+            ]
+            if fx.dither_lsb > 0
+            else []
+        ),
         "",
         "## Check",
         "",
@@ -707,6 +728,11 @@ def write_handoff(
                 tmp, f"vectors/{name}_in.hex", hex_lines(words, fx.format.input.word_bits), files
             )
             _write_text(tmp, f"vectors/{name}_out.hex", hex_lines(q, _output_bits(fx)), files)
+            if fx.dither_lsb > 0:
+                dither, _ = fx.dither_words(len(words), fx.initial_state().dither_counter)
+                _write_text(
+                    tmp, f"vectors/{name}_dither.hex", hex_lines(dither, fx.dither_word_bits), files
+                )
         _write_text(tmp, f"rtl/{MODULE_NAME}.v", verilog_text(fx), files)
         _write_text(tmp, "README.md", _readme(profile, fx, facts, vectors, noise_db, files), files)
         if target.exists():

@@ -107,6 +107,9 @@ class FeedbackLoopCircuit(_elaboratable_base()):
         The quantizer's level index of this clock (read from the states before the update).
     states : list of Signal
         The state registers (reset to 0).
+    dither_in : Signal, signed, or None
+        With dither: the dither word of this clock (the last state's fractional bits), added to
+        the last state at the quantizer only.
     """
 
     def __init__(self, fx):
@@ -119,6 +122,9 @@ class FeedbackLoopCircuit(_elaboratable_base()):
         self.states = [
             Signal(signed(s.word_bits), name=f"state_{i + 1}") for i, s in enumerate(fmt.states)
         ]
+        self.dither_in = (
+            Signal(signed(fx.dither_word_bits), name="dither_in") if fx.dither_lsb > 0 else None
+        )
 
     def elaborate(self, platform):  # noqa: D102 - Amaranth's interface
         from amaranth.hdl import Module, Mux, Signal, signed
@@ -131,6 +137,11 @@ class FeedbackLoopCircuit(_elaboratable_base()):
         n = fmt.order
         mod = Module()
         y = self.states[-1]
+        if self.dither_in is not None:
+            width = max(len(y), len(self.dither_in)) + 1
+            y_dithered = Signal(signed(width), name="quantizer_in")
+            mod.d.comb += y_dithered.eq(y + self.dither_in)
+            y = y_dithered
         f_last = fmt.states[-1].fraction_bits
         if m == 0:
             q = ~y[-1]
@@ -165,7 +176,8 @@ class FeedbackLoopCircuit(_elaboratable_base()):
     @property
     def ports(self) -> list:
         """The module's ports besides ``clk`` and ``rst``."""
-        return [self.sample_in, self.level_out]
+        extra = [self.dither_in] if self.dither_in is not None else []
+        return [self.sample_in, *extra, self.level_out]
 
 
 def verilog_text(fx) -> str:
@@ -176,7 +188,7 @@ def verilog_text(fx) -> str:
     return verilog.convert(circuit, name=MODULE_NAME, ports=circuit.ports, emit_src=False)
 
 
-def simulate_words(fx, words) -> np.ndarray:
+def simulate_words(fx, words, dither=None) -> np.ndarray:
     """Run the generated design in Amaranth's simulator, one input word per clock.
 
     Parameters
@@ -185,6 +197,8 @@ def simulate_words(fx, words) -> np.ndarray:
         The loop.
     words : array_like of int
         Input words.
+    dither : array_like of int, optional
+        With a dithered loop: the dither word of each clock (``fx.dither_words``).
 
     Returns
     -------
@@ -196,10 +210,14 @@ def simulate_words(fx, words) -> np.ndarray:
     circuit = FeedbackLoopCircuit(fx)
     words = [int(w) for w in np.asarray(words, dtype=np.int64)]
     out = np.empty(len(words), dtype=np.int64)
+    if circuit.dither_in is not None:
+        dither = [int(d) for d in np.asarray(dither, dtype=np.int64)]
 
     async def bench(ctx):
         for t, w in enumerate(words):
             ctx.set(circuit.sample_in, w)
+            if circuit.dither_in is not None:
+                ctx.set(circuit.dither_in, dither[t])
             out[t] = ctx.get(circuit.level_out)
             await ctx.tick()
 

@@ -28,6 +28,8 @@ import math
 import numpy as np
 from numba import njit
 
+from audiodsm.stages._kernels import _GOLDEN, _unit_from_counter
+
 # rounding codes: 0 truncate, 1 round half up, 2 convergent; overflow codes: 0 saturate, 1 wrap
 
 
@@ -49,7 +51,7 @@ def _round_shift(acc, r, rule):
 
 
 @njit(cache=True, nogil=True)
-def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quantizer):
+def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quantizer, dither):
     """Run the fixed-point feedback loop over the input words ``u``.
 
     Parameters
@@ -73,6 +75,9 @@ def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quant
     quantizer : int64 (3,)
         ``m`` (levels = 2**m + 1, or 0 for two levels), fractional bits of the last state,
         fractional bits of the quantizer output word ``V``.
+    dither : int64 (n,) or (0,)
+        Dither words added to the last state at the quantizer (its fractional bits), or
+        none.
     """
     order = state.shape[0]
     last = order - 1
@@ -80,8 +85,11 @@ def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quant
     f_last = quantizer[1]
     top = (1 << m) if m > 0 else 1
     x = state.copy()
+    dithered = dither.shape[0] > 0
     for t in range(u.shape[0]):
         y = x[last]
+        if dithered:
+            y += dither[t]
         if m == 0:
             q = 1 if y >= 0 else 0
             v = 2 * q - 1
@@ -218,32 +226,38 @@ def fixed_loop_kernel_source(key, float_io=False):
     Parameters
     ----------
     key : tuple
-        ``(order, m, f_last, coef, shifts, rules, input_node, step)``: the number of states,
+        ``(order, m, f_last, coef, shifts, rules, input_node, step, dithered)``: the number
+        of states,
         the quantizer's ``m`` (0: two levels), the last state's fractional bits, the ``coef``
         (5 x order), ``shifts`` (5 x order) and ``rules`` (3 x order) tables of
         ``fixed_feedback_loop`` as nested tuples of ints, the input word
         ``(fraction_bits, rounding code, word_bits, wrap)`` and the quantizer step in
-        full-scale units (the last two for the float variant).
+        full-scale units (those two for the float variant), and whether a dither word per
+        sample (``dither``, int64, in the last state's fractional bits) is added to the last
+        state at the quantizer (else ``dither`` is ignored).
     float_io : bool
-        False: ``f(u, out, state, peaks, counts)`` on input words ``u`` (int64), writing level
-        indices into ``out`` (int64); it returns -1, or the start of the first block holding a
-        word outside the input word (it stops there; state and output are then partial).
-        True: ``f(x, y, state, peaks, counts)`` on full-scale floats ``x``, writing the output
-        levels ``q * step - 1`` into ``y`` (float64); it returns -1.
+        False: ``f(u, out, dither, state, peaks, counts)`` on input words ``u`` (int64),
+        writing level indices into ``out`` (int64); it returns -1, or the start of the first
+        block holding a word outside the input word (it stops there; state and output are
+        then partial). True: ``f(x, y, dither, state, peaks, counts)`` on full-scale floats
+        ``x``, writing the output levels ``q * step - 1`` into ``y`` (float64); it returns -1.
     """
-    order, m, f_last, coef, shifts, rules, input_node, step = key
+    order, m, f_last, coef, shifts, rules, input_node, step, dithered = key
     n = order
     lines = []
     add = lines.append
     xs = ", ".join(f"x{i}" for i in range(n))
     ns = ", ".join(f"n{i}" for i in range(n))
     add(f"def {fixed_loop_kernel_name(key, float_io)}({'x, y' if float_io else 'u, out'}, ")
-    add("        state, peaks, counts):")
+    add("        dither, state, peaks, counts):")
     for i in range(n):
         add(f"    x{i} = state[{i}]")
         add(f"    p{i} = peaks[{i}]")
         add(f"    o{i} = counts[{i}]")
     add(f"    total = {'x' if float_io else 'u'}.shape[0]")
+
+    # the dither word of the sample joins the last state at the quantizer only
+    quantizer_input = f"(x{n - 1} + db[j])" if dithered else f"x{n - 1}"
 
     def sample(ind, checked):
         out = []
@@ -253,7 +267,7 @@ def fixed_loop_kernel_source(key, float_io=False):
         else:
             u = "ub[j]"
         if m == 0:
-            out.append(f"{ind}pos = x{n - 1} >= 0")
+            out.append(f"{ind}pos = {quantizer_input} >= 0")
             if float_io:
                 out.append(f"{ind}yb[j] = 1.0 if pos else -1.0")
             else:
@@ -261,7 +275,7 @@ def fixed_loop_kernel_source(key, float_io=False):
         else:
             offset = (1 << (m + f_last)) + (1 << f_last)
             out += [
-                f"{ind}q = ((x{n - 1} << {m}) + {offset}) >> {f_last + 1}",
+                f"{ind}q = (({quantizer_input} << {m}) + {offset}) >> {f_last + 1}",
                 f"{ind}if q < 0:",
                 f"{ind}    q = 0",
                 f"{ind}elif q > {1 << m}:",
@@ -331,6 +345,8 @@ def fixed_loop_kernel_source(key, float_io=False):
     add("    while start < total:")
     add(f"        stop = min(start + {FIXED_BLOCK}, total)")
     add(f"        {src}b = {src}[start:stop]")
+    if dithered:
+        add("        db = dither[start:stop]")
     add(f"        {dst}b = {dst}[start:stop]")
     add("        size = stop - start")
     if not float_io:
@@ -430,3 +446,23 @@ def fixed_interpolate_row(row, phases, ratio, taps, lengths, out, shift, rule, w
                     val = hi if val > hi else lo
             out[ratio * i + p] = val
     return overflows
+
+
+@njit(cache=True, nogil=True)
+def dither_words(counter, scale, out):
+    """The float loop's TPDF dither sequence as words of the last state; returns the counter.
+
+    Per sample the counter advances twice by the golden-ratio increment and each value goes
+    through the SplitMix64 output function, exactly as in the float loop's kernels
+    (:func:`audiodsm.stages._kernels._unit_from_counter`); the dither ``scale * (r1 - r2)``
+    (``scale`` already multiplied by ``2**F`` of the last state, a power of two, so the
+    product is the float loop's dither times ``2**F`` exactly) is rounded down to a word.
+    """
+    c = counter
+    for t in range(out.shape[0]):
+        c += _GOLDEN
+        r1 = _unit_from_counter(c)
+        c += _GOLDEN
+        r2 = _unit_from_counter(c)
+        out[t] = int(math.floor(scale * (r1 - r2)))
+    return c

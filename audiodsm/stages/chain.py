@@ -225,7 +225,11 @@ class Chain:
                 from audiodsm.stages.fixed_loop import FixedPointModulator, format_from_settings
 
                 self.fixed_loop = FixedPointModulator(
-                    self.modulator.loop, format_from_settings(profile.fixed_point), mod.levels
+                    self.modulator.loop,
+                    format_from_settings(profile.fixed_point),
+                    mod.levels,
+                    dither_lsb=mod.dither_lsb,
+                    seed=mod.seed,
                 )
                 signal_loop = self.fixed_loop.quantized_loop
         with _settings_of(profile, "modulator"):
