@@ -296,3 +296,33 @@ def test_handoff_of_a_dithered_loop_carries_its_dither_words(planned, tmp_path):
     np.testing.assert_array_equal(fx.run_words(words)[0], q)
     np.testing.assert_array_equal(simulate_words(fx, words, dither), q)
     assert "`dither_in`" in (target / "README.md").read_text()
+
+
+def test_handoff_with_the_fixed_point_interpolator_carries_its_last_stage(planned, tmp_path):
+    # fixed_point.interpolator = "last": the folder adds the last stage's RTL and its vectors;
+    # simulated on its input vector the RTL gives its output vector, and that output, fitted
+    # to the loop's input word, is the loop's input vector
+    from dataclasses import replace
+
+    from audiodsm.hardware.rtl import simulate_interpolator_words
+
+    profile, plan, facts, _ = planned
+    prof = profile_with_plan(profile, plan)
+    fp = replace(prof.fixed_point, interpolator="last", interpolator_fraction_bits=18)
+    prof = replace(prof, fixed_point=fp)
+    target = tmp_path / "interp"
+    write_handoff(prof, target, vector_samples=4096)
+    assert (target / "rtl/interpolator_last_stage.v").is_file()
+    fx, facts2 = check_fixed_point(prof)
+    fu = facts2.signal_upsampler
+    bits = 1 + 18 + 1
+    w_in = _read_hex(target / "vectors/tone_997hz_m1dbfs_interp_in.hex", bits)
+    w_out = _read_hex(target / "vectors/tone_997hz_m1dbfs_interp_out.hex", bits)
+    assert len(w_out) == 4096 and len(w_in) == 4096 // fu.fixed_stage_ratios[-1]
+    np.testing.assert_array_equal(simulate_interpolator_words(fu, w_in), w_out)
+    loop_in = _read_hex(target / "vectors/tone_997hz_m1dbfs_in.hex", fx.format.input.word_bits)
+    from audiodsm.stages.fixed_loop import quantize_words
+
+    np.testing.assert_array_equal(loop_in, quantize_words(w_out / 2.0**18, fx.format.input))
+    assert np.abs(w_out).max() > 2**14  # the tone is through the filters by the end
+    assert "interpolator_last_stage" in (target / "README.md").read_text()

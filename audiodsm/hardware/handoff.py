@@ -435,6 +435,57 @@ def stimulus_vectors(fx: FixedPointModulator, facts: FloatLoopFacts, *, samples:
     return out
 
 
+def _interpolator_files(facts: FloatLoopFacts, samples: int) -> list:
+    """(relative path, text) of the fixed-point interpolator's last stage: RTL and vectors.
+
+    Empty unless the profile runs the interpolator in fixed point. The vectors are that
+    stage's input words (one per R clocks) and output words (one per clock) on the battery's
+    stimuli, from rest; ``samples`` output words each.
+    """
+    from audiodsm.hardware.rtl import INTERPOLATOR_MODULE_NAME, interpolator_verilog_text
+    from audiodsm.stages.fixed_upsample import FixedPointUpsampler
+
+    fu = facts.signal_upsampler
+    if not isinstance(fu, FixedPointUpsampler):
+        return []
+    fmt = fu.format
+    bits = fmt.integer_bits + fmt.fraction_bits + 1
+    ratio = fu.fixed_stage_ratios[-1]
+    out = [(f"rtl/{INTERPOLATOR_MODULE_NAME}.v", interpolator_verilog_text(fu))]
+    audio = -(-samples // facts.osr)
+    for name, x in _stimuli(facts.rate_hz, audio):
+        words_in, words_out = fu.trace_words(x * facts.input_scale)[-2:]
+        out.append((f"vectors/{name}_interp_in.hex", hex_lines(words_in[: samples // ratio], bits)))
+        out.append((f"vectors/{name}_interp_out.hex", hex_lines(words_out[:samples], bits)))
+    return out
+
+
+def _interpolator_readme(fu) -> str:
+    from audiodsm.hardware.rtl import INTERPOLATOR_MODULE_NAME
+
+    fmt = fu.format
+    bits = fmt.integer_bits + fmt.fraction_bits + 1
+    ratio = fu.fixed_stage_ratios[-1]
+    return "\n".join(
+        [
+            "",
+            "## The interpolator's last stage",
+            "",
+            f"`rtl/{INTERPOLATOR_MODULE_NAME}.v`: the last stage of the fixed-point "
+            f"interpolator (ratio {ratio}, taps with {fmt.coefficient_fraction_bits} fractional "
+            f"bits as shift-adds, rounding {fmt.rounding}, overflow {fmt.overflow}). Ports: "
+            f"`sample_in` ({bits}-bit signed word, binary point {fmt.fraction_bits}) with `load` "
+            f"high for one clock every {ratio} clocks, `sample_out` (same format), one word per "
+            "clock: phase 0 in the clock cycle after the edge that takes the load, phases "
+            f"1..{ratio - 1} in the cycles after that.",
+            f"`vectors/<stimulus>_interp_in.hex` and `_interp_out.hex`: its input words (one per "
+            f"{ratio} clocks) and output words (one per clock) on the same stimuli, from reset. "
+            "Its output is the loop's input before the loop's input word is fitted.",
+            "",
+        ]
+    )
+
+
 def hex_lines(words, bits: int) -> str:
     """Two's-complement words as hexadecimal text, one per line (``$readmemh`` format).
 
@@ -734,7 +785,13 @@ def write_handoff(
                     tmp, f"vectors/{name}_dither.hex", hex_lines(dither, fx.dither_word_bits), files
                 )
         _write_text(tmp, f"rtl/{MODULE_NAME}.v", verilog_text(fx), files)
-        _write_text(tmp, "README.md", _readme(profile, fx, facts, vectors, noise_db, files), files)
+        interpolator = _interpolator_files(facts, int(vector_samples))
+        for rel, text in interpolator:
+            _write_text(tmp, rel, text, files)
+        readme = _readme(profile, fx, facts, vectors, noise_db, files)
+        if interpolator:
+            readme += _interpolator_readme(facts.signal_upsampler)
+        _write_text(tmp, "README.md", readme, files)
         if target.exists():
             old = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".old", dir=parent))
             os.replace(target, old / "previous")
