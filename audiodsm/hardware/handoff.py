@@ -290,8 +290,19 @@ def settings_from_plan(plan) -> FixedPointSettings:
 
 
 def profile_with_plan(profile: ChainProfile, plan) -> ChainProfile:
-    """``profile`` with its ``[fixed_point]`` section replaced by the plan's."""
-    return dataclasses.replace(profile, fixed_point=settings_from_plan(plan))
+    """``profile`` with the loop keys of its ``[fixed_point]`` section replaced by the plan's.
+
+    The ``interpolator*`` keys (the plan does not size the interpolator) are kept as they are.
+    """
+    planned = settings_from_plan(plan)
+    loop_keys = {
+        f.name: getattr(planned, f.name)
+        for f in dataclasses.fields(planned)
+        if not f.name.startswith("interpolator")
+    }
+    return dataclasses.replace(
+        profile, fixed_point=dataclasses.replace(profile.fixed_point, **loop_keys)
+    )
 
 
 # ---------------------------------------------------------------------------------------------
