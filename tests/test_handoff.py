@@ -310,6 +310,7 @@ def test_handoff_with_the_fixed_point_interpolator_carries_its_last_stage(planne
     prof = profile_with_plan(profile, plan)
     fp = replace(prof.fixed_point, interpolator="last", interpolator_fraction_bits=18)
     prof = replace(prof, fixed_point=fp)
+    assert profile_with_plan(prof, plan) == prof  # a re-plan keeps the interpolator keys
     target = tmp_path / "interp"
     write_handoff(prof, target, vector_samples=4096)
     assert (target / "rtl/interpolator_last_stage.v").is_file()
