@@ -75,6 +75,7 @@ from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
     _run_seed,
+    _test_class_d_stage,
     _test_dc,
     _test_dynamic_range,
     _test_frequency_sweep,
@@ -116,6 +117,7 @@ TEST_NAMES = (
     "intermodulation",
     "element_mismatch",
     "jitter_sweep",
+    "class_d_stage",
 )
 
 #: Every metric name, the test that produces it, and a short plain description with unit.
@@ -138,13 +140,13 @@ METRIC_UNITS = {
         "dynamic_range",
         "dBFS",
         "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
-        "step (PDM and NRZ; scales as 20 log10 of the jitter)",
+        "step (PDM, NRZ; PWM: of its edges; scales as 20 log10 of the jitter)",
     ),
     "output_step_rms_fs": (
         "dynamic_range",
         "FS",
-        "rms step between successive output samples (full-scale units); the jitter noise "
-        "goes with its square, so two streams' jitter noise differs by 20 log10 of its ratio",
+        "rms step between successive output samples (full-scale units; PWM: of a frame's "
+        "edges); the jitter noise goes with its square",
     ),
     "jitter_dynamic_range_db_at_1ps": (
         "jitter_sweep",
@@ -262,6 +264,37 @@ METRIC_UNITS = {
     ),
     "imd_smpte_db": ("intermodulation", "dB", "SMPTE IMD (60 Hz + 7 kHz, 4:1)"),
     "imd_difference_db": ("intermodulation", "dB", "difference-frequency IMD (19 + 20 kHz)"),
+    "supply_ripple_sideband_db": (
+        "class_d_stage",
+        "dB",
+        "supply rejection: the stronger sideband the supply ripple puts beside a -1 dBFS "
+        "997 Hz tone, re the tone (class-D with a supply ripple)",
+    ),
+    "output_peak_volts": (
+        "class_d_stage",
+        "V",
+        "peak load voltage at -1 dBFS, 997 Hz (class-D with an LC filter)",
+    ),
+    "load_current_peak_amperes": (
+        "class_d_stage",
+        "A",
+        "peak load current at -1 dBFS, 997 Hz",
+    ),
+    "inductor_current_peak_amperes": (
+        "class_d_stage",
+        "A",
+        "peak filter-inductor current (load current plus carrier ripple) at -1 dBFS, 997 Hz",
+    ),
+    "switch_conduction_watts": (
+        "class_d_stage",
+        "W",
+        "conduction loss in the switches' on-resistance (I^2 R, averaged) at -1 dBFS, 997 Hz",
+    ),
+    "load_power_watts": (
+        "class_d_stage",
+        "W",
+        "mean power into the load at -1 dBFS, 997 Hz",
+    ),
     "overload_count": (
         "",
         "",
@@ -635,6 +668,8 @@ def run_battery(
     if "jitter_sweep" in tests:
         for sigma in sorted({float(v) for v in plan.jitter_sigmas_s}):
             runs.append(("DR vs jitter", _test_jitter, (sigma,)))
+    if "class_d_stage" in tests:
+        runs.append(("class-D stage", _test_class_d_stage, ()))
     total = len(runs) + ("stability" in tests)  # the overload probes follow the stability run
 
     def with_seed(index):
