@@ -160,18 +160,22 @@ def test_single_bit_jitter_penalty_is_the_ratio_of_mean_squared_steps(jitter_run
     assert got == pytest.approx(want, abs=1.0), (got, want)
 
 
-def test_jitter_sweep_on_pwm_refuses_dead_time_only():
-    # PWM edges are in the jitter model without dead time (its readings are valid numbers); the
-    # dead-time loop does not model jitter, and the readings say so instead of a number
+def test_jitter_sweep_on_pwm_where_the_model_holds():
+    # PWM edges are in the jitter model with ideal switches and no dead time (valid numbers);
+    # the switched filter with on-resistance and the dead-time loop do not model jitter, and
+    # the readings say so instead of a number
     amp = ROOT / "profiles" / "pocket_amp"
-    bridge = run_battery(
-        load_profile(amp / "pwm9_bridge_16x.toml"), tests=("jitter_sweep",), plan=QUICK, jobs=1
-    )
-    assert bridge.invalid == {} and bridge.metrics["jitter_dynamic_range_db_at_1ps"] > 60.0
-    half = load_profile(amp / "pwm9_halfbridge_deadtime_16x.toml")
-    res = run_battery(half, tests=("jitter_sweep",), plan=QUICK, jobs=1)
-    assert res.metrics["jitter_dynamic_range_db_at_1ps"] is None
-    assert "dead time" in res.invalid["jitter_dynamic_range_db_at_1ps"]
+    bridge = load_profile(amp / "pwm9_bridge_16x.toml")
+    ideal = _with(bridge, high_side_on_ohm=0.0, low_side_on_ohm=0.0)
+    res = run_battery(ideal, tests=("jitter_sweep",), plan=QUICK, jobs=1)
+    assert res.invalid == {} and res.metrics["jitter_dynamic_range_db_at_1ps"] > 60.0
+    for profile, words in (
+        (bridge, "on-resistance"),
+        (load_profile(amp / "pwm9_halfbridge_deadtime_16x.toml"), "dead"),
+    ):
+        res = run_battery(profile, tests=("jitter_sweep",), plan=QUICK, jobs=1)
+        assert res.metrics["jitter_dynamic_range_db_at_1ps"] is None
+        assert words in res.invalid["jitter_dynamic_range_db_at_1ps"], res.invalid
 
 
 # -- DC offset -----------------------------------------------------------------------------

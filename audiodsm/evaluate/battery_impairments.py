@@ -122,12 +122,13 @@ def _test_jitter(ctx, profile, sigma_s):
     jittered = _with_impairments(profile, jitter_rms_s=float(sigma_s))
     x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
     try:
-        # what the jitter model does not hold (PWM with dead time) is refused as a profile
-        # would be at load, and jitter beyond half a frame by the chain
+        # what the jitter model does not hold (PWM with dead time or on-resistance) is refused
+        # as a profile would be at load, and jitter beyond half a frame by the chain
         _check_impairments(jittered, "")
         res = _chain_run(jittered, x, rate=rate)
     except ProfileError as exc:
-        return {"jitter_sweep": [{**point, "reason": f"jitter not modelled here: {exc}"}]}
+        why = f"jitter not modelled here: {exc.key}: {exc.message}" if exc.key else str(exc)
+        return {"jitter_sweep": [{**point, "reason": why}]}
     y = res.listening[:, 0]
     settle = int(round(plan.settle_s * rate))
     faults = _run_faults(res.stats, 0, y[settle:])
