@@ -29,10 +29,11 @@ At the six audio rates (44.1 to 192 kHz) the fitted sections are shipped as exac
 (``_weighting_sections.py``, written by :func:`_shipped_sections_source`): the least-squares fit
 is not bit-reproducible from one process to the next (its last bits, about 1e-10 dB in a
 reading, move with memory layout), and shipping its result makes every process, a cluster's
-workers included, weight with the same bits. Other rates are fitted once per process and cached. Its deviation from the analytic curve
-up to 20 kHz is at most about 0.012 dB for A and 0.002 dB for CCIR at any rate tried from
-44.1 kHz to 6.144 MHz (see ``docs/weighting.md``). That is far inside the IEC 61672-1 class-1
-acceptance limits, which the tests check at 44.1, 48, 96, 192 and 768 kHz. The fit is iterative,
+workers included, weight with the same bits. Other rates are fitted once per process and
+cached. The deviation from the analytic curve up to 20 kHz is at most about 0.012 dB for A and
+0.002 dB for CCIR at any rate tried from 44.1 kHz to 6.144 MHz (see ``docs/weighting.md``).
+That is far inside the IEC 61672-1 class-1 acceptance limits, which the tests check at the six
+audio rates and 768 kHz. The fit is iterative,
 so changes at rounding level (another numpy build, say) can move it to a nearby optimum. The
 result still stays within the tested 0.1 dB.
 """
