@@ -275,6 +275,40 @@ def test_jobs_and_reruns_give_the_same_numbers(full_quick):
         assert again.metrics[k] == res.metrics[k]
 
 
+def test_modulator_samples_count_every_run(full_quick, transparent_result):
+    # one run, counted by hand from the plan: (settle + tone + tail) s at 48 kHz, times the
+    # OSR (16), one channel
+    plan = BatteryPlan.quick()
+    frames = round((plan.settle_s + plan.tone_s + 0.05) * RATE)
+    assert transparent_result.modulator_samples == frames * 16
+    # the whole short battery of a 64x loop: every chain run's frames x 64 x channels plus the
+    # state trace, summed the same way from the plan (7 sweep levels, 2 x 4 DC offsets, the
+    # frequency sweep's tones at two levels; the overload probes: the overload curve's points
+    # beyond the 7 sweep levels, none when the curve is absent)
+    from audiodsm.evaluate.battery_runs import _response_frequencies
+
+    res, _ = full_quick
+    n = lambda seconds: round((plan.settle_s + seconds + 0.05) * RATE)  # noqa: E731
+    tones = 2 * len(_response_frequencies())
+    probes = len(res.curves["overload"]["level_dbfs"]) - 7 if "overload" in res.curves else 0
+    expected = (
+        64
+        * (
+            n(plan.tone_s)
+            + 7 * n(plan.sweep_s)
+            + n(plan.silence_s)
+            + 2 * plan.dc_offsets * n(plan.dc_s)
+            + n(plan.response_s)
+            + tones * n(plan.frequency_sweep_s)
+            + n(plan.image_s)
+            + 2 * n(plan.imd_s)
+        )
+        + plan.histogram_samples
+    )
+    expected += 64 * probes * n(plan.sweep_s)
+    assert res.modulator_samples == expected
+
+
 def test_seed_changes_dithered_runs_only():
     prof = _transparent(16)
     plan = BatteryPlan.quick()

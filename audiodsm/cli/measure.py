@@ -6,7 +6,7 @@ each profile's battery notes. With ``--json``, stdout carries only one JSON obje
 profile, one per line::
 
     {"profile": str, "file": str, "digest": str, "rate_hz": int, "seconds": float,
-     "metrics": {metric name: number | bool | null, ...},
+     "modulator_samples": int, "metrics": {metric name: number | bool | null, ...},
      "validity": {metric name: {"valid": bool, "reason": str}, ...}, "notes": [str, ...]}
 
 An invalid reading is ``null`` in ``metrics`` and ``"valid": false`` with its reason in
@@ -133,6 +133,7 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, plots_folder, no_pr
                 "digest": res.digest,
                 "rate_hz": res.rate_hz,
                 "seconds": round(res.seconds, 3),
+                "modulator_samples": int(res.modulator_samples),
                 "metrics": res.json_metrics(),
                 "validity": res.validity(),
                 "notes": list(res.notes),
@@ -143,7 +144,11 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, plots_folder, no_pr
             rows.append(res.json_metrics())
             invalid.append(dict(res.invalid))
             notes.append(list(res.notes))
-            click.echo(f"{prof.name}: measured in {res.seconds:.1f} s ({path})", err=True)
+            click.echo(
+                f"{prof.name}: measured in {res.seconds:.1f} s, "
+                f"{res.modulator_samples / 1e6:.1f} M modulator samples simulated ({path})",
+                err=True,
+            )
     if not as_json:
         click.echo(metrics_table(names, rows, invalid, notes))
     if failed:

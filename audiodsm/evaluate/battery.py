@@ -68,6 +68,7 @@ from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
     _run_seed,
+    _take_modulator_samples,
     _test_dc,
     _test_dynamic_range,
     _test_frequency_sweep,
@@ -392,6 +393,11 @@ class BatteryResult:
         Metric name -> why its reading is invalid (the loop overloaded, the tone was lost, the
         output clipped, the value is impossible, ...). Those metrics read None in
         ``metrics``; every metric not named here is valid.
+    modulator_samples : int
+        Modulator samples the battery simulated, every channel counted: each chain run's
+        input frames (settling and tail included) times the OSR, plus the state trace. The
+        stability search is design work read from the loop cache (docs/loops.md) and is not
+        counted. 0 in results written before this count existed.
     """
 
     profile_name: str
@@ -404,6 +410,7 @@ class BatteryResult:
     plan: BatteryPlan = field(repr=False)
     run_seconds: dict = field(default_factory=dict, repr=False)
     invalid: dict = field(default_factory=dict)
+    modulator_samples: int = 0
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
@@ -563,11 +570,13 @@ def run_battery(
     results = []
     run_seconds = {}
     done = 0
+    simulated = 0
 
     def timed(fn, *args):
         t0 = time.perf_counter()
+        _take_modulator_samples()  # this thread's count starts at zero for the run
         out = fn(*args)
-        return out, time.perf_counter() - t0
+        return out, time.perf_counter() - t0, _take_modulator_samples()
 
     workers = max(1, min(int(jobs), total))
     # One BLAS thread per worker: the runs already fill the cores, and a multi-threaded BLAS
@@ -584,8 +593,9 @@ def run_battery(
                 finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
                 for fut in finished:
                     label = pending.pop(fut)
-                    part, spent = fut.result()
+                    part, spent, samples = fut.result()
                     run_seconds[label] = run_seconds.get(label, 0.0) + spent
+                    simulated += samples
                     results.append(part)
                     done += 1
                     if progress is not None:
@@ -609,4 +619,5 @@ def run_battery(
         plan=plan,
         run_seconds=run_seconds,
         invalid=invalid,
+        modulator_samples=int(simulated),
     )
