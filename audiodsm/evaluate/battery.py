@@ -244,6 +244,10 @@ class BatteryPlan:
         Tone levels of the THD+N-against-frequency sweep; -1 and -20 dBFS give its metrics.
     frequency_sweep_s : float
         Each tone of that sweep (short: the 1/3-octave centres make 31 tones per level).
+    frequency_sweep_step : int
+        Every how many of the 1/3-octave centres the sweep takes a tone (1: every centre;
+        2: every second, a 2/3-octave grid). The top frequency (20 kHz) and 997 Hz are
+        always in.
     image_tone_hz : float
         In-band tone of the image test.
     image_s : float
@@ -281,6 +285,7 @@ class BatteryPlan:
     response_level_dbfs: float = -6.0
     frequency_sweep_levels_dbfs: tuple = (-1.0, -20.0)
     frequency_sweep_s: float = 0.1
+    frequency_sweep_step: int = 1
     image_tone_hz: float = 17000.0
     image_s: float = 0.5
     composite_level_dbfs: float = -6.0
@@ -304,6 +309,7 @@ class BatteryPlan:
             dc_s=0.4,
             response_s=0.4,
             frequency_sweep_s=0.1,
+            frequency_sweep_step=2,  # a 2/3-octave grid: the sweep was half the short plan
             image_s=0.3,
             imd_s=0.4,
             stability_samples=1 << 20,  # long runs even in a preview: see probe_stability
@@ -335,6 +341,9 @@ class BatteryPlan:
             raise ParameterError(
                 "plan.sweep_levels_dbfs", self.sweep_levels_dbfs, "levels from -160 to 0 dBFS"
             )
+        step = self.frequency_sweep_step
+        if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 1 <= step <= 8:
+            raise ParameterError("plan.frequency_sweep_step", step, "an integer from 1 to 8")
         if not self.frequency_sweep_levels_dbfs or any(
             not (-160.0 <= float(v) <= 0.0) for v in self.frequency_sweep_levels_dbfs
         ):
@@ -454,6 +463,12 @@ def _dc_offsets(plan):
     return [float(s * m) for s in (1.0, -1.0) for m in mags]
 
 
+def _sweep_frequencies(step):
+    """Every ``step``-th frequency of the response grid, 20 kHz and 997 Hz always included."""
+    grid = _response_frequencies()
+    return sorted({*grid[::step], grid[-1], 997.0})
+
+
 def _probe_levels(msa, steps_db):
     """Tone levels (dBFS) above the stable amplitude, up to 0 dBFS, for the overload probes."""
     msa_db = _db(msa)
@@ -553,7 +568,7 @@ def run_battery(
         tones = [
             (float(lv), f)
             for lv in sorted({float(v) for v in plan.frequency_sweep_levels_dbfs}, reverse=True)
-            for f in _response_frequencies()
+            for f in _sweep_frequencies(plan.frequency_sweep_step)
         ]
         for part in _chunks(tones, 8):
             runs.append(("THD+N vs frequency", _test_frequency_sweep, (part,)))
