@@ -120,6 +120,27 @@ def test_two_workers_give_the_serial_grades(tmp_path, serial):
     same_results(serial, again)
 
 
+def test_local_workers_are_forked_from_a_warm_process_server():
+    # the workers start from a process that ran the warm-up (imports and compiled loops)
+    # without an error, and the cluster reports the seconds it took
+    from fault_batteries import preloaded_warm_up
+
+    from audiodsm.evaluate.cluster import run_tasks
+
+    got = {}
+    info = run_tasks(
+        preloaded_warm_up,
+        [(), ()],
+        workers=2,
+        on_result=lambda i, status, value: got.update({i: (status, value)}),
+    )
+    assert sorted(got) == [0, 1]
+    for status, (seconds, imported) in got.values():
+        assert status == "ok" and seconds is not None and seconds > 0 and imported
+        assert info.preload_s == pytest.approx(seconds)
+    assert info.workers == 2 and info.local
+
+
 def test_a_worker_lost_mid_batch_is_retried_with_the_same_grades(tmp_path, calls, serial):
     folder = write_profiles(tmp_path / "p")
     out = grade_batch(
