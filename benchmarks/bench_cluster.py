@@ -46,8 +46,10 @@ def _batch(profiles, workers):
     calls = [(battery, p, i, 1, 0, {"plan": plan}) for i, p in enumerate(profiles)]
 
     def on_result(i, status, value):
-        if status != "ok" or "failure" in value:
-            failures.append(i)
+        if status != "ok":
+            failures.append(f"{status}: {value}")
+        elif "failure" in value:
+            failures.append(value["failure"])
 
     load = os.getloadavg()[0]
     t0 = time.perf_counter()
@@ -67,6 +69,7 @@ def _batch(profiles, workers):
         "batch_s": round(end - marks["sent"], 2),
         "wall_s": round(end - t0, 2),
         "failed": len(failures),
+        "first_failure": failures[0] if failures else None,
         "load_average_1min_at_start": round(load, 2),
     }
 
