@@ -75,6 +75,7 @@ from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
     _run_seed,
+    _take_modulator_samples,
     _test_class_d_stage,
     _test_dc,
     _test_dynamic_range,
@@ -342,6 +343,10 @@ class BatteryPlan:
         Tone levels of the THD+N-against-frequency sweep; -1 and -20 dBFS give its metrics.
     frequency_sweep_s : float
         Each tone of that sweep (short: the 1/3-octave centres make 31 tones per level).
+    frequency_sweep_step : int
+        Every how many of the 1/3-octave centres the sweep takes a tone (1: every centre;
+        2: every second, a 2/3-octave grid). The top frequency (20 kHz) and 997 Hz are
+        always in.
     image_tone_hz : float
         In-band tone of the image test.
     image_s : float
@@ -382,6 +387,7 @@ class BatteryPlan:
     response_level_dbfs: float = -6.0
     frequency_sweep_levels_dbfs: tuple = (-1.0, -20.0)
     frequency_sweep_s: float = 0.1
+    frequency_sweep_step: int = 1
     image_tone_hz: float = 17000.0
     image_s: float = 0.5
     composite_level_dbfs: float = -6.0
@@ -406,6 +412,7 @@ class BatteryPlan:
             dc_s=0.4,
             response_s=0.4,
             frequency_sweep_s=0.1,
+            frequency_sweep_step=2,  # a 2/3-octave grid: the sweep was half the short plan
             image_s=0.3,
             imd_s=0.4,
             stability_samples=1 << 20,  # long runs even in a preview: see probe_stability
@@ -437,6 +444,9 @@ class BatteryPlan:
             raise ParameterError(
                 "plan.sweep_levels_dbfs", self.sweep_levels_dbfs, "levels from -160 to 0 dBFS"
             )
+        step = self.frequency_sweep_step
+        if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 1 <= step <= 8:
+            raise ParameterError("plan.frequency_sweep_step", step, "an integer from 1 to 8")
         if not self.frequency_sweep_levels_dbfs or any(
             not (-160.0 <= float(v) <= 0.0) for v in self.frequency_sweep_levels_dbfs
         ):
@@ -501,6 +511,11 @@ class BatteryResult:
         Metric name -> why its reading is invalid (the loop overloaded, the tone was lost, the
         output clipped, the value is impossible, ...). Those metrics read None in
         ``metrics``; every metric not named here is valid.
+    modulator_samples : int
+        Modulator samples the battery simulated, every channel counted: each chain run's
+        input frames (settling and tail included) times the OSR, plus the state trace. The
+        stability search is design work read from the loop cache (docs/loops.md) and is not
+        counted. 0 in results written before this count existed.
     """
 
     profile_name: str
@@ -513,6 +528,7 @@ class BatteryResult:
     plan: BatteryPlan = field(repr=False)
     run_seconds: dict = field(default_factory=dict, repr=False)
     invalid: dict = field(default_factory=dict)
+    modulator_samples: int = 0
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
@@ -554,6 +570,12 @@ def _dc_offsets(plan):
         return []
     mags = np.geomspace(plan.dc_range[0], plan.dc_range[1], plan.dc_offsets)
     return [float(s * m) for s in (1.0, -1.0) for m in mags]
+
+
+def _sweep_frequencies(step):
+    """Every ``step``-th frequency of the response grid, 20 kHz and 997 Hz always included."""
+    grid = _response_frequencies()
+    return sorted({*grid[::step], grid[-1], 997.0})
 
 
 def _probe_levels(msa, steps_db):
@@ -655,7 +677,7 @@ def run_battery(
         tones = [
             (float(lv), f)
             for lv in sorted({float(v) for v in plan.frequency_sweep_levels_dbfs}, reverse=True)
-            for f in _response_frequencies()
+            for f in _sweep_frequencies(plan.frequency_sweep_step)
         ]
         for part in _chunks(tones, 8):
             runs.append(("THD+N vs frequency", _test_frequency_sweep, (part,)))
@@ -679,11 +701,13 @@ def run_battery(
     results = []
     run_seconds = {}
     done = 0
+    simulated = 0
 
     def timed(fn, *args):
         t0 = time.perf_counter()
+        _take_modulator_samples()  # this thread's count starts at zero for the run
         out = fn(*args)
-        return out, time.perf_counter() - t0
+        return out, time.perf_counter() - t0, _take_modulator_samples()
 
     workers = max(1, min(int(jobs), total))
     # One BLAS thread per worker: the runs already fill the cores, and a multi-threaded BLAS
@@ -700,8 +724,9 @@ def run_battery(
                 finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
                 for fut in finished:
                     label = pending.pop(fut)
-                    part, spent = fut.result()
+                    part, spent, samples = fut.result()
                     run_seconds[label] = run_seconds.get(label, 0.0) + spent
+                    simulated += samples
                     results.append(part)
                     done += 1
                     if progress is not None:
@@ -725,4 +750,5 @@ def run_battery(
         plan=plan,
         run_seconds=run_seconds,
         invalid=invalid,
+        modulator_samples=int(simulated),
     )

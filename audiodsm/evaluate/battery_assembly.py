@@ -416,7 +416,13 @@ def _assemble_frequency_sweep(points, metrics, curves, notes, invalid, plan):
         if bad:
             invalid[metric] = f"{len(bad)} of {len(freqs)} tones invalid (first: {bad[0][1]})"
     notes.append(
-        f"THD+N vs frequency: {len(freqs)} tones (1/3-octave centres, 20 Hz..20 kHz) at "
+        f"THD+N vs frequency: {len(freqs)} tones ("
+        + (
+            "1/3-octave centres"
+            if plan.frequency_sweep_step == 1
+            else f"one in {plan.frequency_sweep_step} of the 1/3-octave centres"
+        )
+        + ", 20 Hz..20 kHz) at "
         + ", ".join(f"{v:g}" for v in levels)
         + f" dBFS, {plan.frequency_sweep_s:g} s each after {plan.settle_s:g} s settling, "
         "fundamental removed by a 3-parameter fit, 20 Hz..20 kHz"

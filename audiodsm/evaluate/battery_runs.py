@@ -11,6 +11,7 @@ measures.
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import replace
 
 import numpy as np
@@ -58,6 +59,27 @@ def _run_seed(profile_seed: int, seed: int, index: int) -> int:
     return int(ss.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1))
 
 
+#: Modulator samples simulated by the run on this thread (see _take_modulator_samples).
+_SIMULATED = threading.local()
+
+
+def _count_modulator_samples(n: int) -> None:
+    """Add ``n`` modulator samples (all channels) to this thread's count."""
+    _SIMULATED.samples = getattr(_SIMULATED, "samples", 0) + int(n)
+
+
+def _take_modulator_samples() -> int:
+    """Read and reset the count of modulator samples simulated on this thread.
+
+    Each battery run executes on one thread, so the battery reads the count of every run
+    around its call: chain runs count their input frames (settling and tail included) times
+    the OSR times the channels, and the state trace its samples.
+    """
+    n = getattr(_SIMULATED, "samples", 0)
+    _SIMULATED.samples = 0
+    return n
+
+
 def _chain_run(profile, x, *, rate, keep=("listening",)):
     """Run ``x`` ((n,) or (n, channels)) through the chain with one thread per call.
 
@@ -77,6 +99,9 @@ def _chain_run(profile, x, *, rate, keep=("listening",)):
         taper = 0.5 * (1.0 + np.cos(np.pi * np.arange(1, fade + 1) / fade))
         x[len(x) - fade :] *= taper[:, None] if x.ndim == 2 else taper
     res = run_chain(profile, x, rate_hz=rate, keep=keep, listening_rate_hz=rate, threads=1)
+    channels = x.shape[1] if x.ndim == 2 else 1
+    osr = int(round(res.modulator_rate_hz / rate))
+    _count_modulator_samples(x.shape[0] * osr * channels)
     if res.listening is not None:
         tail = int(round(_TAIL_S * rate))
         res = replace(res, listening=res.listening[: len(res.listening) - tail])
@@ -598,6 +623,7 @@ def _test_stability(ctx, profile):
         t = np.arange(n)
         x = limit.stable_amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
         _, states = chain.modulator.trace_states(x)
+        _count_modulator_samples(n)
         states = np.asarray(states, dtype=float).reshape(n, -1)
         edges, counts = [], []
         for k in range(states.shape[1]):
