@@ -38,7 +38,6 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from scipy import optimize, signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.measure.bands import MAX_RATE_HZ, MIN_RATE_HZ, check_rate, run_sos
@@ -315,6 +314,8 @@ def _initial_numerator(n_zeros):
 
 def _fit_high_part(kind, rate, fixed, sections, n_zeros):
     """Fit the high-frequency sections; return (sections, worst in-band error in dB)."""
+    from scipy import optimize, signal
+
     num_orders, x0 = _initial_numerator(n_zeros)
     i_gain = len(x0)
     x0.append(0.0)
@@ -406,6 +407,23 @@ def _fit_high_part(kind, rate, fixed, sections, n_zeros):
 
 @functools.lru_cache(maxsize=64)
 def _design(kind, rate):
+    from audiodsm import disk_cache
+
+    # remembered on disk: a later run reads the sections back without importing scipy.signal
+    # and without the fit
+    sos = disk_cache.remembered(
+        "weighting-sos",
+        (str(kind), float(rate)),
+        lambda: _design_sections(kind, rate),
+        sources=("measure/weighting.py",),
+    )
+    sos.setflags(write=False)
+    return sos
+
+
+def _design_sections(kind, rate):
+    from scipy import signal
+
     n_dc, poles = _analog_network(kind)
     is_low = np.abs(poles) < 2.0 * np.pi * _LOW_POLE_LIMIT_HZ
     low, high = poles[is_low], poles[~is_low]
@@ -434,7 +452,6 @@ def _design(kind, rate):
     f_ref = 1000.0 if kind == "a" else 2000.0
     _, h_ref = signal.sosfreqz(sos, worN=[f_ref], fs=rate)
     sos[0, :3] *= 10.0 ** (_target_db(kind, np.float64(f_ref)) / 20.0) / np.abs(h_ref[0])
-    sos.setflags(write=False)
     return sos
 
 
