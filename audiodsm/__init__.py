@@ -8,15 +8,18 @@ Noise-transfer design (``audiodsm.design.ntf``)
     NoiseTransfer.spread_zero_fractions)
 Loop realization (``audiodsm.design.realize``)
     LoopRealization (LoopRealization.for_ntf), LinearLoop, STRUCTURES
+The quantizer's effective gain (``audiodsm.design.quantizer_gain``)
+    QuantizerGain, effective_ntf, single_bit_describing_gain, least_squares_gain
 Modulation (``audiodsm.stages.modulator``)
-    Modulator (Modulator.probe_stability, Modulator.with_scaled_states), ModulatorState,
+    Modulator (Modulator.probe_stability, Modulator.with_scaled_states,
+    Modulator.trace_quantizer_input), ModulatorState,
     StabilityProbe
 Rate conversion (``audiodsm.stages.upsample``, ``audiodsm.stages.downsample``)
     design_upsampler, UpsamplerDesign, Upsampler, UpsamplerState,
     design_downsampler, DownsamplerDesign, Downsampler, DownsamplerState
 Output stages (``audiodsm.stages.output_stage``)
     PulseWaveform, pdm_waveform, nrz_waveform, pwm_waveform, PwmStats, PwmState,
-    level_codes
+    level_codes, return_to_zero_waveform
 Stream files (``audiodsm.stages.stream_export``)
     PackedBitsWriter, write_packed_bits, read_packed_bits, CodeTextWriter, write_code_text,
     read_code_text
@@ -124,6 +127,10 @@ _PUBLIC = {
     "LoopRealization": "audiodsm.design.realize",
     "LinearLoop": "audiodsm.design.realize",
     "STRUCTURES": "audiodsm.design.realize",
+    "QuantizerGain": "audiodsm.design.quantizer_gain",
+    "effective_ntf": "audiodsm.design.quantizer_gain",
+    "single_bit_describing_gain": "audiodsm.design.quantizer_gain",
+    "least_squares_gain": "audiodsm.design.quantizer_gain",
     "Modulator": "audiodsm.stages.modulator",
     "ModulatorState": "audiodsm.stages.modulator",
     "StabilityProbe": "audiodsm.stages.modulator",
@@ -134,6 +141,7 @@ _PUBLIC = {
     "PwmStats": "audiodsm.stages.output_stage",
     "PwmState": "audiodsm.stages.output_stage",
     "level_codes": "audiodsm.stages.output_stage",
+    "return_to_zero_waveform": "audiodsm.stages.output_stage",
     "PackedBitsWriter": "audiodsm.stages.stream_export",
     "write_packed_bits": "audiodsm.stages.stream_export",
     "read_packed_bits": "audiodsm.stages.stream_export",

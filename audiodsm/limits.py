@@ -20,6 +20,7 @@ __all__ = [
     "ORDER_RANGE",
     "OSR_CHOICES",
     "OUT_OF_BAND_GAIN_RANGE",
+    "PARTS_RANGE",
     "TARGET_DYNAMIC_RANGE_DB",
     "ZERO_LAYOUTS",
 ]
@@ -66,3 +67,8 @@ ELEMENT_SELECTIONS = (
 
 #: Relative standard deviation of one unit element's weight (0.1 = 10 %).
 ELEMENT_MISMATCH_RANGE = (0.0, 0.1)
+
+#: Parts (Monte Carlo draws of the random impairments) one profile may run: each part is a
+#: whole battery, so the top end keeps a batch's memory (every part's readings are held for
+#: the spread) and time bounded.
+PARTS_RANGE = (1, 1000)

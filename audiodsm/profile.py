@@ -32,6 +32,7 @@ from audiodsm.limits import (
     ORDER_RANGE,
     OSR_CHOICES,
     OUT_OF_BAND_GAIN_RANGE,
+    PARTS_RANGE,
     ZERO_LAYOUTS,
 )
 from audiodsm.profile_checks import _check_fixed_point, _check_impairments, _check_whole
@@ -671,8 +672,11 @@ class ImpairmentSettings:
     """How the built converter departs from the ideal one (``[impairments]``).
 
     See docs/impairments.md. Every key at its default is the ideal converter. The element
-    keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the jitter keys to PDM
-    and NRZ outputs, the analog noise to every output.
+    keys apply to a multi-level NRZ output (``output.kind = "nrz"``), the edge keys (rise and
+    fall times, return to zero) to PDM and NRZ outputs, the jitter keys to PDM, NRZ and PWM
+    outputs, the analog noise to every output; the supply ripple to PWM, the switches'
+    on-resistance to PWM with an LC filter, the loudspeaker (all five ``speaker_*`` keys
+    together) to an LC filter, in place of ``reconstruction.load_ohm``.
     """
 
     element_mismatch: float = _key(
@@ -698,20 +702,30 @@ class ImpairmentSettings:
         doc="The part: seeds the element weights, the random selection, the random jitter "
         "and the analog noise.",
     )
+    parts: int = _key(
+        1,
+        "int",
+        f"an integer from {PARTS_RANGE[0]} to {PARTS_RANGE[1]}",
+        _int_range(*PARTS_RANGE),
+        doc="How many parts `measure` and `grade` run when a random impairment is on "
+        "(element mismatch, random jitter, analog noise); part 0 is part_seed itself, the "
+        "others derived seeds (docs/impairments.md). A profile with no random draw runs once.",
+    )
     jitter_rms_s: float = _key(
         0.0,
         "float",
         "a number from 0 to 1e-6 (seconds)",
         _float_range(0.0, 1e-6),
         doc="Standard deviation of the random (white Gaussian) displacement of every output "
-        "edge, in seconds (PDM, NRZ).",
+        "edge, in seconds (PDM, NRZ, PWM).",
     )
     jitter_sine_peak_s: float = _key(
         0.0,
         "float",
         "a number from 0 to 1e-6 (seconds)",
         _float_range(0.0, 1e-6),
-        doc="Peak displacement of the output edges by sinusoidal jitter, in seconds (PDM, NRZ).",
+        doc="Peak displacement of the output edges by sinusoidal jitter, in seconds (PDM, NRZ, "
+        "PWM).",
     )
     jitter_sine_hz: float = _key(
         0.0,
@@ -719,6 +733,29 @@ class ImpairmentSettings:
         "a number from 0 to 1e8 (Hz)",
         _float_range(0.0, 1e8),
         doc="Frequency of the sinusoidal jitter, in Hz.",
+    )
+    rise_time_s: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e-6 (seconds)",
+        _float_range(0.0, 1e-6),
+        doc="Duration of every rising output edge (a linear ramp of equal area), in seconds "
+        "(PDM, NRZ); below half an output period (half of its half with return to zero).",
+    )
+    fall_time_s: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 1e-6 (seconds)",
+        _float_range(0.0, 1e-6),
+        doc="Duration of every falling output edge, in seconds (PDM, NRZ); unequal rise and "
+        "fall times make a data-dependent error.",
+    )
+    return_to_zero: bool = _key(
+        False,
+        "bool",
+        "true or false",
+        doc="Return-to-zero coding: each level for the first half of its output period, 0 "
+        "for the second (PDM, NRZ; halves the gain, calibrated out).",
     )
     noise_density_nv: float = _key(
         0.0,
@@ -750,12 +787,85 @@ class ImpairmentSettings:
         _float_range(0.0, 1e5),
         doc="Frequency of the supply ripple, in Hz.",
     )
+    high_side_on_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 10 (ohm)",
+        _float_range(0.0, 10.0),
+        doc="On-resistance of each leg's high-side switch, in ohm, in series with the LC "
+        "filter while the leg is high (PWM with an LC filter).",
+    )
+    low_side_on_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 10 (ohm)",
+        _float_range(0.0, 10.0),
+        doc="On-resistance of each leg's low-side switch, in ohm, in series with the LC "
+        "filter while the leg is low (PWM with an LC filter).",
+    )
+    speaker_coil_ohm: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 100 (ohm)",
+        _float_range(0.0, 100.0),
+        doc="Loudspeaker load instead of reconstruction.load_ohm: voice-coil resistance Re, "
+        "in ohm (0 = resistive load; LC filter).",
+    )
+    speaker_coil_inductance_h: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 0.1 (henry)",
+        _float_range(0.0, 0.1),
+        doc="Loudspeaker voice-coil inductance Le, in henry.",
+    )
+    speaker_resonance_hz: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 20000 (Hz)",
+        _float_range(0.0, 20000.0),
+        doc="Loudspeaker free-air resonance fs, in Hz.",
+    )
+    speaker_mechanical_q: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 100",
+        _float_range(0.0, 100.0),
+        doc="Loudspeaker mechanical quality factor Qms.",
+    )
+    speaker_electrical_q: float = _key(
+        0.0,
+        "float",
+        "a number from 0 to 100",
+        _float_range(0.0, 100.0),
+        doc="Loudspeaker electrical quality factor Qes.",
+    )
+
+    @property
+    def loudspeaker(self) -> bool:
+        """True when the profile gives a loudspeaker load."""
+        return any(getattr(self, k) > 0.0 for k in SPEAKER_KEYS)
+
+    @property
+    def on_resistance(self) -> bool:
+        """True when a switch has on-resistance."""
+        return self.high_side_on_ohm > 0.0 or self.low_side_on_ohm > 0.0
 
     @property
     def active(self) -> bool:
-        """True when any key differs from the ideal converter."""
-        return self != ImpairmentSettings()
+        """True when any key differs from the ideal converter (``parts`` alone does not)."""
+        from dataclasses import replace
 
+        return replace(self, parts=1) != ImpairmentSettings()
+
+
+#: The [impairments] keys of a loudspeaker load, given all together or none.
+SPEAKER_KEYS = (
+    "speaker_coil_ohm",
+    "speaker_coil_inductance_h",
+    "speaker_resonance_hz",
+    "speaker_mechanical_q",
+    "speaker_electrical_q",
+)
 
 _SECTIONS = {
     "input": InputSettings,

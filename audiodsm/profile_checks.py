@@ -245,12 +245,28 @@ def _check_impairments(profile: ChainProfile, path: str) -> None:
             f"{_MAX_ELEMENT_LEVELS} (one element per step)",
         )
     jitter = imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0
-    if jitter and kind == "pwm":
+    if jitter and kind == "pwm" and profile.output.dead_time_ticks > 0:
         key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
         raise ProfileError(
             path,
             f"impairments.{key}",
-            "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has 'pwm'",
+            "got jitter with output.dead_time_ticks > 0; expected no dead time (the "
+            "dead-time loop does not model jitter yet)",
+        )
+    for key in ("rise_time_s", "fall_time_s", "return_to_zero"):
+        if getattr(imp, key) and kind == "pwm":
+            raise ProfileError(
+                path,
+                f"impairments.{key}",
+                "applies only to a bitstream (output.kind = 'pdm' or 'nrz'); this profile has "
+                "'pwm'",
+            )
+    if imp.return_to_zero and profile.reconstruction.fir_taps:
+        raise ProfileError(
+            path,
+            "impairments.return_to_zero",
+            "got true with reconstruction.fir_taps; expected no semi-digital FIR (it takes "
+            "one level a frame)",
         )
     if (imp.jitter_sine_peak_s > 0.0) != (imp.jitter_sine_hz > 0.0):
         key = "jitter_sine_hz" if imp.jitter_sine_peak_s > 0.0 else "jitter_sine_peak_s"
@@ -265,13 +281,6 @@ def _check_impairments(profile: ChainProfile, path: str) -> None:
             "impairments.supply_ripple",
             f"applies only to a class-D stage (output.kind = 'pwm'); this profile has {kind!r}",
         )
-    if imp.supply_ripple > 0.0 and profile.output.dead_time_ticks > 0:
-        raise ProfileError(
-            path,
-            "impairments.supply_ripple",
-            "got a ripple with output.dead_time_ticks > 0; expected no dead time (the "
-            "dead-time loop does not model the supply yet)",
-        )
     if (imp.supply_ripple > 0.0) != (imp.supply_ripple_hz > 0.0):
         key = "supply_ripple_hz" if imp.supply_ripple > 0.0 else "supply_ripple"
         raise ProfileError(
@@ -279,9 +288,57 @@ def _check_impairments(profile: ChainProfile, path: str) -> None:
             f"impairments.{key}",
             "got 0; expected supply_ripple and supply_ripple_hz to be given together",
         )
+    _check_power_stage(profile, path)
     if imp.noise_corner_hz > 0.0 and imp.noise_density_nv == 0.0:
         raise ProfileError(
             path,
             "impairments.noise_corner_hz",
             f"got {imp.noise_corner_hz!r} with no noise; expected impairments.noise_density_nv",
         )
+
+
+def _check_power_stage(profile: ChainProfile, path: str) -> None:
+    """The switches' on-resistance and the loudspeaker load: where they apply, all parts given."""
+    from audiodsm.profile import SPEAKER_KEYS
+
+    imp = profile.impairments
+    kind, rec = profile.output.kind, profile.reconstruction.kind
+    if imp.on_resistance and (kind != "pwm" or rec != "lc"):
+        key = "high_side_on_ohm" if imp.high_side_on_ohm > 0.0 else "low_side_on_ohm"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "applies only to a class-D stage with an LC filter (output.kind = 'pwm', "
+            f"reconstruction.kind = 'lc'); this profile has {kind!r} and {rec!r}",
+        )
+    jitter = imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0
+    if imp.on_resistance and jitter:
+        key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
+        raise ProfileError(
+            path,
+            f"impairments.{key}",
+            "got jitter with the switches' on-resistance; expected one of the two (the "
+            "switched filter reads whole ticks and does not model jittered edges yet)",
+        )
+    if not imp.loudspeaker:
+        return
+    if rec != "lc":
+        raise ProfileError(
+            path,
+            "impairments.speaker_coil_ohm",
+            f"applies only to reconstruction.kind = 'lc' (the load of the LC filter); this "
+            f"profile has {rec!r}",
+        )
+    import dataclasses
+
+    expects = {f.name: f.metadata["expect"] for f in dataclasses.fields(imp)}
+    for key in SPEAKER_KEYS:
+        value = getattr(imp, key)
+        if not value > 0.0:
+            accepted = expects[key].replace("from 0 to", "above 0 and at most")
+            raise ProfileError(
+                path,
+                f"impairments.{key}",
+                f"got {value!r}; expected {accepted} (a loudspeaker load has no part of zero "
+                "size: give all five speaker_* keys)",
+            )

@@ -124,7 +124,9 @@ def profile_digest(profile: ChainProfile) -> str:
     The name and description are left out: two profiles that differ only in their labels
     describe the same chain and hash equal. Every other key is included at its effective value
     (defaults written out), so a profile file and the same chain written more compactly hash
-    equal too. Floats enter by their exact ``repr``.
+    equal too. Floats enter by their exact ``repr``. ``impairments.parts`` (how many parts
+    to run) is left out too: it changes no one battery, so every part keeps its cache entry
+    when the count changes.
 
     Parameters
     ----------
@@ -135,8 +137,14 @@ def profile_digest(profile: ChainProfile) -> str:
     str
         64 lowercase hex digits (SHA-256).
     """
+    if profile.impairments.parts != 1:  # how many parts to run changes no one part's result
+        profile = dataclasses.replace(
+            profile, impairments=dataclasses.replace(profile.impairments, parts=1)
+        )
     data = profile_to_dict(profile, full=True)
     del data["name"], data["description"]
+    if "impairments" in data:
+        data["impairments"].pop("parts", None)  # digests of profiles written before the key
     data["digest_version"] = _DIGEST_VERSION
     text = json.dumps(data, sort_keys=True, separators=(",", ":"), default=repr)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()

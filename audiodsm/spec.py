@@ -18,6 +18,7 @@ The layout (all keys other than those listed are refused)::
     at_level_dbfs = -10.0        # ... the tone level of the reading
     at_most = -100.0
     note = "mid-level distortion"
+    percentile = 95              # optional: 95 % of the parts must meet it (default: all)
 
 The file is parsed into a frozen :class:`SpecSheet`. A bad file raises
 :class:`~audiodsm.errors.ProfileError` naming the file, the key (``target[2].metric`` for the
@@ -83,6 +84,12 @@ METRIC_CATALOGUE = {
     "switching_rate_hz": ("Hz", "output level changes per second at idle"),
     "dc_offset_dbfs": ("dBFS", "DC at the output during silence"),
     "jitter_noise_dbfs_at_1ps": ("dBFS", "in-band noise 1 ps rms of clock jitter adds"),
+    "supply_ripple_sideband_db": ("dB", "supply ripple sideband beside a tone (supply rejection)"),
+    "output_peak_volts": ("V", "peak load voltage at -1 dBFS"),
+    "load_current_peak_amperes": ("A", "peak load current at -1 dBFS"),
+    "inductor_current_peak_amperes": ("A", "peak filter-inductor current at -1 dBFS"),
+    "switch_conduction_watts": ("W", "conduction loss in the switches at -1 dBFS"),
+    "load_power_watts": ("W", "power into the load at -1 dBFS"),
     # read from the THD+N-versus-level sweep at the level the target names
     "thd_n_db": ("dB", "THD+N at the stated tone level"),
     "thd_n_db_a": ("dB", "THD+N at the stated tone level, A-weighted"),
@@ -92,7 +99,7 @@ METRIC_CATALOGUE = {
 CONDITIONAL_METRICS = {"thd_n_db": "at_level_dbfs", "thd_n_db_a": "at_level_dbfs"}
 
 _TOP_KEYS = ("name", "description", "target")
-_TARGET_KEYS = ("metric", "at_least", "at_most", "at_level_dbfs", "note")
+_TARGET_KEYS = ("metric", "at_least", "at_most", "at_level_dbfs", "percentile", "note")
 
 
 @dataclass(frozen=True)
@@ -111,6 +118,9 @@ class Target:
         Tone level of the reading for the metrics in :data:`CONDITIONAL_METRICS`, else None.
     note : str
         Free text shown in reports.
+    percentile : float or None
+        For a profile run as several parts: the share of parts (percent, above 0 and at most
+        100) that must meet the limit. None means every part (docs/grade.md, "Parts").
     """
 
     metric: str
@@ -118,6 +128,7 @@ class Target:
     limit: float
     at_level_dbfs: float | None = None
     note: str = ""
+    percentile: float | None = None
 
     @property
     def unit(self) -> str:
@@ -136,7 +147,8 @@ class Target:
         """Plain text of the requirement, e.g. ``">= 118 dB"``."""
         sign = ">=" if self.bound == "at_least" else "<="
         unit = f" {self.unit}" if self.unit else ""
-        return f"{sign} {self.limit:,.10g}{unit}"
+        share = "" if self.percentile is None else f" in {self.percentile:g} % of parts"
+        return f"{sign} {self.limit:,.10g}{unit}{share}"
 
     def margin(self, value: float) -> float:
         """How far ``value`` is better than the limit (positive) or worse (negative)."""
@@ -221,7 +233,19 @@ def _parse_target(path, index, table) -> Target:
     note = table.get("note", "")
     if not isinstance(note, str):
         _bad(path, f"{where}.note", note, "a string")
-    return Target(metric=metric, bound=bound, limit=limit, at_level_dbfs=level, note=note)
+    percentile = None
+    if "percentile" in table:
+        percentile = _number(path, f"{where}.percentile", table["percentile"])
+        if not 0.0 < percentile <= 100.0:
+            _bad(path, f"{where}.percentile", percentile, "a share of parts above 0, at most 100")
+    return Target(
+        metric=metric,
+        bound=bound,
+        limit=limit,
+        at_level_dbfs=level,
+        note=note,
+        percentile=percentile,
+    )
 
 
 def parse_spec(text: str, *, path: str = "<spec>") -> SpecSheet:
@@ -264,7 +288,7 @@ def parse_spec(text: str, *, path: str = "<spec>") -> SpecSheet:
     parsed = tuple(_parse_target(path, i + 1, t) for i, t in enumerate(targets))
     seen = set()
     for i, t in enumerate(parsed):
-        key = (t.metric, t.bound, t.at_level_dbfs)
+        key = (t.metric, t.bound, t.at_level_dbfs, t.percentile)
         if key in seen:
             raise ProfileError(path, f"target[{i + 1}]", f"repeats an earlier {t.bound} {t.label}")
         seen.add(key)
@@ -307,6 +331,10 @@ def spec_digest(spec: SpecSheet) -> str:
     str
         64 lowercase hex digits.
     """
-    rows = sorted((t.metric, t.bound, repr(t.limit), repr(t.at_level_dbfs)) for t in spec.targets)
+    rows = sorted(
+        (t.metric, t.bound, repr(t.limit), repr(t.at_level_dbfs))
+        + (() if t.percentile is None else (repr(t.percentile),))
+        for t in spec.targets
+    )
     text = json.dumps(rows, separators=(",", ":"))
     return hashlib.sha256(text.encode("utf-8")).hexdigest()

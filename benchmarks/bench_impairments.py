@@ -7,9 +7,19 @@ Cases
     loop, OSR 64) on one channel of a synthesized 48 kHz tone, ``SECONDS`` long, run through
     :class:`~audiodsm.stages.chain.Chain` as is (ideal) and with each impairment set: 0.1 %
     element mismatch with each element-selection method, white plus sinusoidal edge jitter,
-    analog noise, and the second-order mismatch shaper with jitter together. Reports the wall
-    time of each and its ratio to the ideal chain. Target (issue 13): mismatch shaping and
+    analog noise, the second-order mismatch shaper with jitter together, unequal edges, and
+    unequal edges with return-to-zero coding. Reports the wall and the CPU time of each and
+    their ratios to the ideal chain (and the machine's load average, which the wall times
+    follow). Target (issue 13): mismatch shaping and
     jitter together at most 1.5 x the ideal chain (``shaping_and_jitter_ratio``).
+
+``class_d_cost``
+    The demo class-D bridge (``profiles/pocket_amp/pwm9_bridge_16x.toml``, three-level PWM,
+    OSR 16) with its [impairments] section removed (ideal), then with each class-D
+    impairment alone: the supply ripple, the switches' unequal on-resistance (one filter per
+    switch state), the loudspeaker load (a five-state filter), and all three together; and
+    the half bridge with dead time, ideal and with on-resistance and its loudspeaker. Wall
+    time of each and its ratio to its ideal chain (no target: the cost is reported).
 
 ``AUDIODSM_BENCH_IMPAIRMENT_SECONDS`` shortens (or lengthens) the input.
 """
@@ -26,17 +36,26 @@ import numpy as np
 SECONDS = float(os.environ.get("AUDIODSM_BENCH_IMPAIRMENT_SECONDS", "10"))
 TARGET_RATIO = 1.5
 _PROFILE = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "nrz17_64x.toml"
+_POCKET = Path(__file__).resolve().parents[1] / "profiles" / "pocket_amp"
+_SPEAKER = {
+    "speaker_coil_ohm": 7.2,
+    "speaker_coil_inductance_h": 1.2e-4,
+    "speaker_resonance_hz": 180.0,
+    "speaker_mechanical_q": 2.8,
+    "speaker_electrical_q": 0.9,
+}
 _JITTER = {"jitter_rms_s": 5e-12, "jitter_sine_peak_s": 2e-12, "jitter_sine_hz": 1000.0}
 
 
-def _time_chain(profile, x, rate) -> float:
+def _time_chain(profile, x, rate) -> tuple[float, float]:
+    """Wall and CPU seconds of one run (CPU time is steadier on a shared machine)."""
     from audiodsm.stages.chain import Chain
 
     chain = Chain.from_profile(profile, rate, 1, threads=1)
     chain.process(x[: rate // 10])  # compile and warm the caches
-    start = time.perf_counter()
+    start, cpu = time.perf_counter(), time.process_time()
     chain.process(x)
-    return time.perf_counter() - start
+    return time.perf_counter() - start, time.process_time() - cpu
 
 
 def run():
@@ -60,14 +79,50 @@ def run():
     cases["dwa_and_jitter"] = with_keys(
         element_mismatch=0.001, element_selection="data-weighted", **_JITTER
     )
-    seconds = {name: _time_chain(p, x, rate) for name, p in cases.items()}
+    cases["unequal_edges"] = with_keys(rise_time_s=4e-9, fall_time_s=3e-9)
+    cases["return_to_zero_edges"] = with_keys(
+        rise_time_s=4e-9, fall_time_s=3e-9, return_to_zero=True
+    )
+    times = {name: _time_chain(p, x, rate) for name, p in cases.items()}
     record = {
         "case": "impairments_cost",
         "audio_seconds": SECONDS,
         "profile": base.name,
         "target_ratio": TARGET_RATIO,
+        "load_average_1min": round(os.getloadavg()[0], 2),
     }
-    for name, s in seconds.items():
-        record[f"{name}_s"] = round(s, 3)
-        record[f"{name}_ratio"] = round(s / seconds["ideal"], 3)
+    for name, (wall, cpu) in times.items():
+        record[f"{name}_s"] = round(wall, 3)
+        record[f"{name}_ratio"] = round(wall / times["ideal"][0], 3)
+        record[f"{name}_cpu_s"] = round(cpu, 3)
+        record[f"{name}_cpu_ratio"] = round(cpu / times["ideal"][1], 3)
     yield record
+    yield _class_d_record(rate, x)
+
+
+def _class_d_record(rate, x):
+    from audiodsm.profile import ImpairmentSettings, load_profile
+
+    def with_keys(base, **keys):
+        return dataclasses.replace(base, impairments=ImpairmentSettings(**keys))
+
+    bridge = load_profile(_POCKET / "pwm9_bridge_16x.toml")
+    half = load_profile(_POCKET / "pwm9_halfbridge_deadtime_16x.toml")
+    switches = {"high_side_on_ohm": 0.12, "low_side_on_ohm": 0.08}
+    ripple = {"supply_ripple": 0.02, "supply_ripple_hz": 217.0}
+    cases = {
+        "bridge_ideal": with_keys(bridge),
+        "bridge_supply_ripple": with_keys(bridge, **ripple),
+        "bridge_on_resistance": with_keys(bridge, **switches),
+        "bridge_loudspeaker": with_keys(bridge, **_SPEAKER),
+        "bridge_all": with_keys(bridge, **ripple, **switches, **_SPEAKER),
+        "dead_time_ideal": with_keys(half),
+        "dead_time_on_resistance_loudspeaker": with_keys(half, **switches, **_SPEAKER),
+    }
+    seconds = {name: _time_chain(p, x, rate) for name, p in cases.items()}
+    record = {"case": "class_d_cost", "audio_seconds": SECONDS}
+    for name, s in seconds.items():
+        ideal = seconds["dead_time_ideal" if name.startswith("dead") else "bridge_ideal"]
+        record[f"{name}_s"] = round(s, 3)
+        record[f"{name}_ratio"] = round(s / ideal, 3)
+    return record

@@ -58,3 +58,30 @@ def worker_killing_battery(profile, *, jobs=None, progress=None, seed=0, **optio
         marker.touch()
         os._exit(9)
     return short_real_battery(profile, jobs=jobs, progress=progress, seed=seed, **options)
+
+
+def part_battery(profile, *, jobs=None, progress=None, seed=0, **options):
+    """Readings drawn from the part: the first unit element's error in standard deviations.
+
+    ``dynamic_range_db_a`` = 100 + 5 z and ``idle_tone_max_dbfs`` = -140 + z, with ``z`` the
+    first element's error over the mismatch (one standard normal draw per part, through the
+    element stage's own draw). Each call leaves a file in $AUDIODSM_TEST_CALLS naming the part
+    seed.
+    """
+    from audiodsm.stages.elements import draw_element_errors
+
+    imp = profile.impairments
+    folder = os.environ.get("AUDIODSM_TEST_CALLS")
+    if folder:
+        Path(folder, f"ran.{imp.part_seed}.{os.getpid()}.{time.monotonic_ns()}").touch()
+    errors = draw_element_errors(
+        profile.modulator.levels - 1, mismatch=max(imp.element_mismatch, 1e-3), seed=imp.part_seed
+    )
+    z = float(errors[0]) / max(imp.element_mismatch, 1e-3)
+    levels = np.array([0.0, -20.0])
+    return SimpleNamespace(
+        metrics={"dynamic_range_db_a": 100.0 + 5.0 * z, "idle_tone_max_dbfs": -140.0 + z},
+        curves={"thd_n_vs_level": {"level_dbfs": levels, "thd_n_db": -100.0 + z + 0.0 * levels}},
+        notes=("stand-in",),
+        seconds=0.01,
+    )

@@ -38,3 +38,45 @@ def test_blocks_equal_one_call():
     a, st = gen.process(3333)
     b, _ = gen.process(6667, st)
     np.testing.assert_array_equal(np.concatenate([a, b]), whole)
+    parts, st = [], None  # splits on and off the held processes' update frames
+    for size in (1, 1023, 1, 1024, 2, 7949):
+        part, st = gen.process(size, st)
+        parts.append(part)
+    np.testing.assert_array_equal(np.concatenate(parts), whole)
+
+
+def test_held_slow_processes_keep_the_spectrum_of_the_per_frame_sum():
+    # A slow relaxation process is updated every M frames (an AR(1) with pole a^M) and held:
+    # its density is that of the AR(1) at rate fs / M, 2 b^2 / (r |1 - p e^{-j 2 pi f / r}|^2),
+    # times the hold's |sum of M phasors|^2 / M^2 = (sin(pi f M / fs) / (M sin(pi f / fs)))^2
+    # (zero-order hold; e.g. Oppenheim & Schafer, Discrete-Time Signal Processing, upsampling
+    # and interpolation). Summed over the processes, against the same processes run every
+    # frame (M = 1) and against D^2 f_c / f, 20 Hz..20 kHz.
+    gen = AnalogNoise(RATE, density_v=1e-8, corner_hz=2000.0)
+    assert gen._holds.max() > 1  # the slow processes are held
+    f = np.logspace(np.log10(20.0), np.log10(20000.0), 200)
+
+    def density(poles, gains, holds):
+        total = np.zeros_like(f)
+        for a, b, m in zip(poles, gains, holds, strict=True):
+            r = RATE / m
+            ar = 2 * b * b / (r * np.abs(1 - a * np.exp(-2j * np.pi * f / r)) ** 2)
+            total += ar * (np.sin(np.pi * f * m / RATE) / (m * np.sin(np.pi * f / RATE))) ** 2
+        return total
+
+    held = density(gen._poles, gen._gains, gen._holds)
+    per_frame_pole = gen._poles ** (1.0 / gen._holds)
+    per_frame_gain = gen._gains * np.sqrt((1 - per_frame_pole**2) / (1 - gen._poles**2))
+    every_frame = density(per_frame_pole, per_frame_gain, np.ones_like(gen._holds))
+    assert np.max(np.abs(10 * np.log10(held / every_frame))) < 0.05
+    # the relaxation sum's own approximation of 1/f (Keshner 1982): a few tenths of a dB
+    assert np.max(np.abs(10 * np.log10(held / ((1e-8) ** 2 * 2000.0 / f)))) < 0.3
+
+
+def test_no_corner_draws_only_the_white_part():
+    gen = AnalogNoise(RATE, density_v=10e-9, seed=4)
+    assert gen._holds.size == 0
+    noise, st = gen.process(1000)
+    ref = np.random.Generator(np.random.PCG64(np.random.SeedSequence([4, 0xA0])))
+    np.testing.assert_array_equal(noise, gen.frame_std * ref.standard_normal(1000))
+    assert st.frames == 1000

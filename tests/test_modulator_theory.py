@@ -10,6 +10,7 @@ import pytest
 from scipy.signal import windows
 
 from audiodsm.design.ntf import NoiseTransfer
+from audiodsm.design.quantizer_gain import effective_ntf, single_bit_describing_gain
 from audiodsm.stages.modulator import Modulator
 
 N_SAMPLES = 1 << 20
@@ -140,33 +141,15 @@ def test_output_spectrum_is_ntf_shaped_white_noise(order):
 def _describing_function_noise_fraction(ntf: NoiseTransfer, osr: int) -> tuple[float, float]:
     """In-band noise power of a single-bit loop by the describing-function linear model.
 
-    A. Ardalan and J. J. Paulos, "An analysis of nonlinear behavior in delta-sigma
-    modulators", IEEE Trans. Circuits Syst. 34(6), 1987 (from memory): the sign quantizer with
-    a Gaussian input of rms s has the least-squares gain k = sqrt(2/pi) / s and leaves an
-    error of power 1 - 2/pi (its output has unit power). With y = k v + e, the loop's noise
-    transfer becomes NTF_k = NTF / (k + (1 - k) NTF), and the quantizer input carries
-    (NTF_k - 1) e / k, so k s = sqrt(2/pi) closes as
-    ||NTF_k - 1||^2 (1 - 2/pi) = 2/pi   (small input: the signal's share of v neglected).
-    Solved for k with scipy.optimize.brentq; ||.||^2 from the impulse response
-    (scipy.signal.lfilter). Returns (k, in-band noise power) with the in-band fraction of
-    NTF_k from in_band_noise_fraction of the monic NTF / k.
+    The effective gain k and the error power 1 - 2/pi of the sign quantizer (A. Ardalan and
+    J. J. Paulos, IEEE Trans. Circuits Syst. 34(6), 1987) come from the library
+    (design.quantizer_gain.single_bit_describing_gain); the error leaves through the effective
+    NTF_k = NTF / (k + (1 - k) NTF), which already holds the 1/k of the band (NTF_k ~ NTF/k
+    where |NTF| is small). Returns (k, in-band noise power).
     """
-    from scipy import optimize
-    from scipy import signal as sig
-
-    b, a = ntf.polynomials()
-    impulse = np.zeros(1 << 15)
-    impulse[0] = 1.0
-
-    def excess(k):
-        h = sig.lfilter(b, k * a + (1 - k) * b, impulse)
-        h[0] -= 1.0
-        return float(np.sum(h**2)) * (1 - 2 / np.pi) - 2 / np.pi
-
-    k = optimize.brentq(excess, 1.0, 2.5)
-    # NTF_k = (1/k) B / (A + (1 - k)/k B): a monic NTF with the poles of k A + (1 - k) B
-    monic = NoiseTransfer.from_roots(zeros=ntf.zeros, poles=np.roots(k * a + (1 - k) * b))
-    return k, (1 - 2 / np.pi) * monic.in_band_noise_fraction(osr) / k**2
+    found = single_bit_describing_gain(ntf)
+    shaped = effective_ntf(ntf, found.gain)
+    return found.gain, found.error_power * shaped.in_band_noise_fraction(osr)
 
 
 def test_single_bit_fifth_order_sqnr_curve():
@@ -191,15 +174,20 @@ def test_single_bit_fifth_order_sqnr_curve():
         return 10 * np.log10(tone / (spec[: band_bins + 1].sum() - tone))
 
     # Linear region: the describing-function model (Ardalan & Paulos 1987) predicts
-    # SQNR = (A^2/2) / in-band noise. It neglects the signal's share of the quantizer input,
-    # which lowers the effective gain as the level rises (simulated: 0.4 dB under the model at
-    # -40 dBFS, 1.5 dB under at -20), so 2 dB from -40 to -20 dBFS.
+    # SQNR = (A^2/2) / in-band noise, with the sign quantizer's error 1 - 2/pi white and shaped
+    # by the effective NTF. The sign quantizer's error is not white, though: its in-band share
+    # is lower than its mean (measured on this loop, with the gain fitted by least squares to
+    # the run, 3 to 4 dB lower), so the simulated SQNR lies ABOVE the model: here 3.8, 4.0 and
+    # 2.7 dB at -40, -30 and -20 dBFS (the gap shrinks as the signal's share of the quantizer
+    # input lowers the gain). Checked as 1.5 to 5.5 dB above. (An earlier form of this check
+    # divided the in-band noise of NTF_k by k^2 once more, counting the 1/k of NTF_k twice; that
+    # error happened to cancel the non-white error's gap.)
     k, in_band = _describing_function_noise_fraction(ntf, osr)
     assert 1.3 < k < 2.0  # a gain above 1: the quantizer input is small in a single-bit loop
     linear = {lv: sqnr_db(lv) for lv in (-40.0, -30.0, -20.0, -10.0)}
     for lv in (-40.0, -30.0, -20.0):
         model = 10 * np.log10(10 ** (lv / 10) / 2 / in_band)
-        assert linear[lv] == pytest.approx(model, abs=2.0), lv
+        assert 1.5 <= linear[lv] - model <= 5.5, (lv, linear[lv] - model)
     # slope 1 dB/dB (S&T, from memory), a little under as the effective gain falls: 0.1.
     slope = np.polyfit(list(linear), list(linear.values()), 1)[0]
     assert slope == pytest.approx(1.0, abs=0.1)

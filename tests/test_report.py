@@ -22,6 +22,7 @@ from audiodsm.evaluate.report import (
     REPORT_FILES,
     batch_to_csv,
     batch_to_dict,
+    curve_to_csv,
     report_curves,
     write_report,
 )
@@ -450,3 +451,97 @@ def test_overlays_keep_each_profile_in_its_colour_and_offer_the_data(tmp_path, b
         "thd_n_vs_level", [("fifth", full_curves(5), 0), ("third", full_curves(3), 1)]
     )
     assert [ln.get_color() for ln in fig.axes[0].get_lines()] == swatches[:2]
+
+
+def test_csv_numbers_are_rounded_by_their_kind():
+    # levels and gains to 0.01 dB, frequencies to 1 mHz, whole numbers as integers, others to
+    # six significant digits (Python's format mini-language is the reference)
+    curves = {
+        "x": {
+            "frequency_hz": np.array([5.859375, 1536000.0, 93.75]),
+            "level_dbfs": np.array([-94.29659354163948, -0.0012, np.nan]),
+            "count": np.array([2.0, 1234567.0, 0.000123456789]),
+        }
+    }
+    rows = list(csv.reader(io.StringIO(curve_to_csv(curves, "x"))))
+    assert rows[0] == ["frequency_hz", "level_dbfs", "count"]
+    assert rows[1:] == [
+        ["5.859", "-94.30", "2"],
+        ["1536000", "0", "1234567"],
+        ["93.75", "", format(0.000123456789, ".6g")],
+    ]
+
+
+def test_wide_spectrum_csv_is_thinned_above_the_audio_band_keeping_the_power():
+    # Above 24 kHz the bins are averaged in power over 1/96-octave bands: the power of the
+    # rows times their bin counts adds up to the power of all bins (the sum is the same sum,
+    # regrouped), and every bin up to 24 kHz stays as it was.
+    from audiodsm.evaluate.report import _thinned_wide_spectrum
+
+    f = np.arange(16385) * 93.75  # a 3.072 MHz modulator's spectrum in 93.75 Hz bins
+    rng = np.random.default_rng(2)
+    level = -120.0 + 40.0 * np.log10(1.0 + f / 2e4) + rng.normal(0.0, 3.0, f.size)
+    c = {"frequency_hz": f, "level_dbfs": level, "resolution_hz": np.array([93.75])}
+    thin = _thinned_wide_spectrum(c)
+    n = thin["bins_averaged"]
+    assert n.sum() == f.size and thin["frequency_hz"].size < 1000
+    low = f <= 24000.0
+    assert np.array_equal(thin["level_dbfs"][: low.sum()], level[low])
+    assert np.all(n[: low.sum()] == 1)
+    total = np.sum(10.0 ** (thin["level_dbfs"] / 10.0) * n)
+    assert total == pytest.approx(np.sum(10.0 ** (level / 10.0)), rel=1e-12)
+    # bands are at most 1/96 octave wide (one bin where a band is narrower than a bin)
+    hi = thin["frequency_hz"][low.sum() :]
+    assert np.all(np.diff(np.log2(hi)) <= 2.0 / 96.0 + 1e-12)
+    assert thin["resolution_hz"][0] == 93.75
+
+
+def test_two_profile_page_with_full_size_spectra_stays_lean(tmp_path):
+    # A two-profile page with spectra of the battery's real length (whole band at 3.072 MHz in
+    # 93.75 Hz bins, audio band in 5.86 Hz bins) was about 7 MB, mostly CSV data; the target
+    # is under 2 MB with every plot's data still beside it.
+    def big_curves(order):
+        curves = full_curves(order)
+        f = np.arange(16385) * 93.75
+        curves["spectrum"] = {
+            "frequency_hz": f,
+            "level_dbfs": -150.0 + 20.0 * np.log10(1.0 + f / 2e4) + np.sin(f),
+            "density_dbfs_per_hz": -170.0 + 20.0 * np.log10(1.0 + f / 2e4) + np.cos(f),
+            "predicted_density_dbfs_per_hz": -171.0 + 20.0 * np.log10(1.0 + f / 2e4),
+            "ntf_gain_db": -100.0 + 20.0 * np.log10(1.0 + f / 2e4),
+            "out_of_band_hz": np.array([20000.0, 500000.0]),
+        }
+        fa = np.arange(4097) * 5.859375
+        curves["audio_spectrum"] = {
+            "frequency_hz": fa,
+            "level_dbfs": -160.0 + np.sin(fa / 7.0),
+            "density_dbfs_per_hz": -170.0 + np.sin(fa / 7.0),
+            "predicted_density_dbfs_per_hz": np.where(fa <= 20000.0, -171.0, np.nan),
+            "resolution_hz": np.array([5.86]),
+        }
+        return curves
+
+    def battery(profile, **options):
+        return SimpleNamespace(
+            metrics={"dynamic_range_db_a": 110.0}, curves=big_curves(5), notes=("a note",)
+        )
+
+    pdir = tmp_path / "profiles"
+    pdir.mkdir()
+    for name in ("third", "fifth"):
+        (pdir / f"{name}.toml").write_text(f'name = "{name}"\n[modulator]\norder = 5\n')
+    batch = grade_batch(
+        collect_profiles([pdir]), parse_spec(SPEC, path="sheet.toml"), battery=battery, jobs=1
+    )
+    page = write_report(batch, tmp_path / "r")["html"].read_text()
+    links = re.findall(
+        r'download="([^"]+)" href="data:text/csv;charset=utf-8;base64,([^"]+)"', page
+    )
+    files = {name: base64.b64decode(b64).decode("utf-8") for name, b64 in links}
+    wide = list(csv.DictReader(io.StringIO(files["fifth-spectrum.csv"])))
+    assert 256 < len(wide) < 1000 and max(int(r["bins_averaged"]) for r in wide) > 50
+    audio = list(csv.DictReader(io.StringIO(files["fifth-audio_spectrum.csv"])))
+    assert len(audio) == 4097  # the audio band keeps its fine bins
+    overlay = list(csv.DictReader(io.StringIO(files["every-profile-noise_density.csv"])))
+    assert len(overlay) == 2 * (4097 // 8)  # as drawn: power means of 8 bins
+    assert len(page.encode("utf-8")) < 2_000_000, len(page)

@@ -22,3 +22,17 @@ scheduler_option = click.option(
     help="Run the batteries on this Dask scheduler's workers instead of a local cluster "
     "(default: $AUDIODSM_SCHEDULER).",
 )
+
+#: ``--parts N``: how many parts (draws of the random impairments) of each profile with random
+#: impairments to run, for ``measure``, ``grade`` and ``explore``; overrides the profile's
+#: ``impairments.parts``. Checked by :func:`audiodsm.evaluate.parts.check_parts` before any
+#: work (one line, exit 2).
+parts_option = click.option(
+    "--parts",
+    type=int,
+    default=None,
+    metavar="N",
+    help="Run N parts of each profile that has random impairments (element mismatch, random "
+    "jitter, analog noise), each with its own seed; default: the profile's impairments.parts. "
+    "A profile without random impairments runs once.",
+)

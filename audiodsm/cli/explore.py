@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from audiodsm.cli._options import scheduler_option, short_plan_option
+from audiodsm.cli._options import parts_option, scheduler_option, short_plan_option
 from audiodsm.errors import EXIT_OK, exit_code_for_signal
 
 __all__ = ["explore"]
@@ -34,8 +34,9 @@ __all__ = ["explore"]
 )
 @short_plan_option
 @scheduler_option
+@parts_option
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
-def explore(space_path, spec_path, out_dir, jobs, cache_dir, short, scheduler, no_progress):
+def explore(space_path, spec_path, out_dir, jobs, cache_dir, short, scheduler, parts, no_progress):
     """Explore the design SPACE (a TOML space file) against the SPEC sheet.
 
     Every combination of the space's settings is predicted with the linear model (dither
@@ -45,6 +46,8 @@ def explore(space_path, spec_path, out_dir, jobs, cache_dir, short, scheduler, n
     as TOML under OUT/front/, with OUT/front.png and OUT/exploration.html. Exit status: 0
     when done, 2 on a bad space file (unknown keys, empty ranges, more candidates than its
     candidate_limit) or an unusable --scheduler, 130 when interrupted (run again to resume).
+    A survivor with random impairments runs N parts (--parts N, or the space's fixed key
+    impairments.parts) and is graded over them, as grade does.
     """
     from audiodsm.cli.grade import _Bar
     from audiodsm.evaluate.battery import BatteryPlan
@@ -55,8 +58,11 @@ def explore(space_path, spec_path, out_dir, jobs, cache_dir, short, scheduler, n
         write_exploration,
     )
     from audiodsm.evaluate.grade import default_cache_dir
+    from audiodsm.evaluate.parts import check_parts
     from audiodsm.spec import load_spec
 
+    if parts is not None:
+        check_parts(parts, name="--parts")
     space = load_space(space_path)
     spec = load_spec(spec_path)
     count = len(enumerate_candidates(space))  # refuses an oversized space before any work
@@ -70,6 +76,7 @@ def explore(space_path, spec_path, out_dir, jobs, cache_dir, short, scheduler, n
             plan=BatteryPlan.quick() if short else None,
             jobs=jobs,
             scheduler=scheduler,
+            parts=parts,
             progress=bar,
             say=lambda text: click.echo(f"audiodsm: {text}", err=True),
         )

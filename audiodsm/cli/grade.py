@@ -8,7 +8,7 @@ from pathlib import Path
 
 import click
 
-from audiodsm.cli._options import scheduler_option, short_plan_option
+from audiodsm.cli._options import parts_option, scheduler_option, short_plan_option
 from audiodsm.errors import (
     EXIT_FAILED,
     EXIT_OK,
@@ -71,6 +71,7 @@ class _Bar:
 @click.option("--seed", type=int, default=0, show_default=True, help="Battery seed.")
 @short_plan_option
 @scheduler_option
+@parts_option
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
 def grade(
     paths,
@@ -84,6 +85,7 @@ def grade(
     seed,
     short,
     scheduler,
+    parts,
     no_progress,
 ):
     """Grade candidate PROFILE files (or folders of them) against a spec sheet.
@@ -98,16 +100,22 @@ def grade(
     that cannot take the batch, 3 when the report cannot be written (the grades are still
     printed), 130 when interrupted by Ctrl-C
     (143 for SIGTERM, 129 for SIGHUP; finished results stay cached; run the same command again
-    to resume). A cache that cannot be written only gives a warning.
+    to resume). A cache that cannot be written only gives a warning. With --parts N (or
+    impairments.parts) a profile with random impairments runs N parts, each its own cached
+    battery, and each target is graded over the parts (a target's percentile key says what
+    share of them must meet it; default all).
     """
     from audiodsm.evaluate.battery import BatteryPlan
     from audiodsm.evaluate.grade import collect_profiles, default_cache_dir, grade_batch
+    from audiodsm.evaluate.parts import check_parts
     from audiodsm.evaluate.report import batch_to_dict
-    from audiodsm.evaluate.tables import detail_table, summary_table
+    from audiodsm.evaluate.tables import detail_table, spread_tables, summary_table
     from audiodsm.spec import load_spec
 
     if jobs is not None and not 1 <= jobs <= 256:
         raise ParameterError("--jobs", jobs, "an integer from 1 to 256")
+    if parts is not None:
+        check_parts(parts, name="--parts")
     spec = load_spec(spec_path)
     profiles = collect_profiles(paths)
     if no_cache:
@@ -131,6 +139,7 @@ def grade(
             battery_options={"plan": BatteryPlan.quick()} if short else None,
             progress=bar,
             scheduler=scheduler,
+            parts=parts,
             say=None if as_json else lambda text: click.echo(f"audiodsm: {text}", err=True),
         )
     finally:
@@ -157,6 +166,8 @@ def grade(
             click.echo(line)
         click.echo("")
         for line in detail_table(batch):
+            click.echo(line)
+        for line in spread_tables(batch):
             click.echo(line)
         for g in batch.grades:
             if g.failure:

@@ -10,7 +10,12 @@ profile, one per line::
      "validity": {metric name: {"valid": bool, "reason": str}, ...}, "notes": [str, ...]}
 
 An invalid reading is ``null`` in ``metrics`` and ``"valid": false`` with its reason in
-``validity``.
+``validity``. A profile run as several parts (``--parts N`` or ``impairments.parts``, only
+where it has random impairments) reports part 0 (the profile as written) in those keys and adds
+``"parts": {"count": N, "seeds": [int, ...], "percentiles": [5, 95], "spread": {metric:
+{"parts", "readings", "min", "p5", "median", "p95", "max"}}, "per_part": [{"part": k, "seed":
+int, "metrics": {...}, "validity": {...}}, ...]}``; the terminal adds a spread table per such
+profile.
 
 The progress bar goes to stderr, so it never mixes with the JSON.
 """
@@ -22,7 +27,7 @@ import sys
 
 import click
 
-from audiodsm.cli._options import scheduler_option, short_plan_option
+from audiodsm.cli._options import parts_option, scheduler_option, short_plan_option
 from audiodsm.errors import EXIT_FAILED
 
 __all__ = ["measure"]
@@ -73,6 +78,7 @@ class _Bar:
 )
 @short_plan_option
 @scheduler_option
+@parts_option
 @click.option(
     "--save-plots",
     "plots_folder",
@@ -82,7 +88,7 @@ class _Bar:
     "into this folder, named <profile>-<plot>.png/.svg.",
 )
 @click.option("--no-progress", is_flag=True, help="Do not show the progress bar.")
-def measure(profiles, as_json, jobs, seed, short, scheduler, plots_folder, no_progress):
+def measure(profiles, as_json, jobs, seed, short, scheduler, parts, plots_folder, no_progress):
     """Run the test battery on each PROFILE (a file, or a folder of .toml files).
 
     Each profile's chain is driven with AES17-practice stimuli (997 Hz tones, silence, small
@@ -93,34 +99,72 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, plots_folder, no_pr
 
     Several profiles run as tasks on a local Dask cluster of worker processes (or on
     --scheduler's workers); a profile whose battery fails is reported with the cause, the
-    others are still measured, and the exit status is then 1.
+    others are still measured, and the exit status is then 1. With --parts N (or the
+    profile's impairments.parts) a profile with random impairments runs N parts, each with
+    its own seed (one battery, one task each), and each metric's spread over the parts is
+    shown.
     """
-    from audiodsm.evaluate.battery import BatteryPlan, run_battery
-    from audiodsm.evaluate.grade import collect_profiles, measure_on_cluster
-    from audiodsm.evaluate.tables import metrics_table
+    from audiodsm.evaluate.battery import BatteryPlan
+    from audiodsm.evaluate.grade import collect_profiles
+    from audiodsm.evaluate.measure_batch import measure_on_cluster, measure_part
+    from audiodsm.evaluate.parts import (
+        SPREAD_PERCENTILES,
+        PartReading,
+        check_parts,
+        metric_spread,
+        part_seed_of,
+        parts_to_run,
+        spread_rows,
+    )
+    from audiodsm.evaluate.tables import aligned_lines, metrics_table
 
+    if parts is not None:
+        check_parts(parts, name="--parts")
     loaded = collect_profiles(profiles)  # every file checked before any runs
     plan = BatteryPlan.quick() if short else BatteryPlan()
-    names, rows, invalid, notes = [], [], [], []
+    units = [(i, k) for i, (_, p) in enumerate(loaded) for k in range(parts_to_run(p, parts))]
+    names, rows, invalid, notes, spreads = [], [], [], [], []
     failed = False
-    if len(loaded) > 1 and (scheduler or (jobs or 2) > 1):
+    if len(units) > 1 and (scheduler or (jobs or 2) > 1):
         say = None if as_json else (lambda text: click.echo(f"audiodsm: {text}", err=True))
         results = measure_on_cluster(
-            loaded, plan=plan, jobs=jobs, seed=seed, scheduler=scheduler, say=say
+            [loaded[i] for i, _ in units],
+            plan=plan,
+            jobs=jobs,
+            seed=seed,
+            scheduler=scheduler,
+            say=say,
+            parts=[k for _, k in units],
         )
     else:
-        results = [None] * len(loaded)
-    for (path, prof), res in zip(loaded, results, strict=True):
-        if res is None:
-            bar = _Bar(prof.name, enabled=not no_progress)
+        results = [None] * len(units)
+    for u, (i, k) in enumerate(units):
+        if results[u] is None:
+            prof = loaded[i][1]
+            label = prof.name if k == 0 else f"{prof.name} part {k}"
+            bar = _Bar(label, enabled=not no_progress)
             try:
-                res = run_battery(prof, jobs=jobs, progress=bar, seed=seed, plan=plan)
+                results[u] = measure_part(prof, jobs, seed, plan, k, progress=bar)
             finally:
                 bar.close()
-        if isinstance(res, str):
-            click.echo(f"audiodsm: {prof.name} ({path}): {res}", err=True)
+    by_profile: dict[int, list] = {}
+    for u, (i, k) in enumerate(units):
+        by_profile.setdefault(i, []).append((k, results[u]))
+    for i, (path, prof) in enumerate(loaded):
+        mine = by_profile[i]
+        broken = [(k, r) for k, r in mine if isinstance(r, str)]
+        if broken:
+            k, text = broken[0]
+            where = "" if len(mine) == 1 else f" part {k}"
+            click.echo(f"audiodsm: {prof.name}{where} ({path}): {text}", err=True)
             failed = True
             continue
+        res = mine[0][1]
+        readings = [
+            PartReading(k, part_seed_of(prof.impairments.part_seed, k), r.metrics, dict(r.invalid))
+            for k, r in mine
+        ]
+        spread = metric_spread(readings) if len(mine) > 1 else {}
         if plots_folder is not None:
             from audiodsm.evaluate.report import write_profile_plots
 
@@ -137,14 +181,39 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, plots_folder, no_pr
                 "validity": res.validity(),
                 "notes": list(res.notes),
             }
+            if spread:
+                record["parts"] = {
+                    "count": len(mine),
+                    "seeds": [p.seed for p in readings],
+                    "percentiles": list(SPREAD_PERCENTILES),
+                    "spread": spread,
+                    "per_part": [
+                        {
+                            "part": k,
+                            "seed": p.seed,
+                            "metrics": r.json_metrics(),
+                            "validity": r.validity(),
+                        }
+                        for (k, r), p in zip(mine, readings, strict=True)
+                    ],
+                }
             click.echo(json.dumps(record))
         else:
             names.append(prof.name)
             rows.append(res.json_metrics())
             invalid.append(dict(res.invalid))
             notes.append(list(res.notes))
-            click.echo(f"{prof.name}: measured in {res.seconds:.1f} s ({path})", err=True)
+            if spread:
+                spreads.append((prof.name, len(mine), spread))
+            seconds = sum(r.seconds for _, r in mine)
+            what = "" if len(mine) == 1 else f" ({len(mine)} parts)"
+            click.echo(f"{prof.name}: measured{what} in {seconds:.1f} s ({path})", err=True)
     if not as_json:
         click.echo(metrics_table(names, rows, invalid, notes))
+        for name, count, spread in spreads:
+            click.echo("")
+            click.echo(f"{name}: spread over {count} parts (the column above is part 0)")
+            table = spread_rows(spread)
+            click.echo("\n".join(aligned_lines(table, right=range(2, len(table[0])), rule=True)))
     if failed:
         sys.exit(EXIT_FAILED)

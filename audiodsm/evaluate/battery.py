@@ -68,6 +68,7 @@ from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
     _run_seed,
+    _test_class_d_stage,
     _test_dc,
     _test_dynamic_range,
     _test_frequency_sweep,
@@ -107,6 +108,7 @@ TEST_NAMES = (
     "thd_n_vs_frequency",
     "images",
     "intermodulation",
+    "class_d_stage",
 )
 
 #: Every metric name, the test that produces it, and a short plain description with unit.
@@ -129,7 +131,7 @@ METRIC_UNITS = {
         "dynamic_range",
         "dBFS",
         "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
-        "step (PDM and NRZ; scales as 20 log10 of the jitter)",
+        "step (PDM, NRZ; PWM: of its edges; scales as 20 log10 of the jitter)",
     ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
@@ -196,6 +198,37 @@ METRIC_UNITS = {
     ),
     "imd_smpte_db": ("intermodulation", "dB", "SMPTE IMD (60 Hz + 7 kHz, 4:1)"),
     "imd_difference_db": ("intermodulation", "dB", "difference-frequency IMD (19 + 20 kHz)"),
+    "supply_ripple_sideband_db": (
+        "class_d_stage",
+        "dB",
+        "supply rejection: the stronger sideband the supply ripple puts beside a -1 dBFS "
+        "997 Hz tone, re the tone (class-D with a supply ripple)",
+    ),
+    "output_peak_volts": (
+        "class_d_stage",
+        "V",
+        "peak load voltage at -1 dBFS, 997 Hz (class-D with an LC filter)",
+    ),
+    "load_current_peak_amperes": (
+        "class_d_stage",
+        "A",
+        "peak load current at -1 dBFS, 997 Hz",
+    ),
+    "inductor_current_peak_amperes": (
+        "class_d_stage",
+        "A",
+        "peak filter-inductor current (load current plus carrier ripple) at -1 dBFS, 997 Hz",
+    ),
+    "switch_conduction_watts": (
+        "class_d_stage",
+        "W",
+        "conduction loss in the switches' on-resistance (I^2 R, averaged) at -1 dBFS, 997 Hz",
+    ),
+    "load_power_watts": (
+        "class_d_stage",
+        "W",
+        "mean power into the load at -1 dBFS, 997 Hz",
+    ),
     "overload_count": (
         "",
         "",
@@ -554,6 +587,8 @@ def run_battery(
         runs.append(("images", _test_images, ()))
     if "intermodulation" in tests:
         runs.append(("intermodulation", _test_imd, ()))
+    if "class_d_stage" in tests:
+        runs.append(("class-D stage", _test_class_d_stage, ()))
     total = len(runs) + ("stability" in tests)  # the overload probes follow the stability run
 
     def with_seed(index):

@@ -47,6 +47,12 @@ _SCALARS = (
     "image_rejection_noise_limited",
     "imd_smpte_db",
     "imd_difference_db",
+    "supply_ripple_sideband_db",
+    "output_peak_volts",
+    "load_current_peak_amperes",
+    "inductor_current_peak_amperes",
+    "switch_conduction_watts",
+    "load_power_watts",
 )
 
 
@@ -150,7 +156,7 @@ def _assemble(results, tests, plan, profile):
             curves["spectrum"]["ntf_gain_db"] = 20.0 * np.log10(
                 np.maximum(np.abs(ntf.response(f / fm)), 1e-300)
             )
-        density = stab.get("noise_density")
+        density, gain = stab.get("noise_density") or (None, None)
         for name in ("spectrum", "audio_spectrum"):
             if density is not None and name in curves:
                 with np.errstate(divide="ignore"):
@@ -159,6 +165,10 @@ def _assemble(results, tests, plan, profile):
                     if name == "audio_spectrum":  # the listening decimator's edge: no model
                         pred = np.where(f <= _BAND[1], pred, np.nan)
                     curves[name]["predicted_density_dbfs_per_hz"] = pred
+                    # the quantizer gain the prediction assumes (1: a multi-level quantizer's
+                    # own; else a single-bit quantizer's effective gain, fitted to a run)
+                    k = 1.0 if gain is None else gain.gain
+                    curves[name]["predicted_quantizer_gain"] = np.array([k])
 
     onset = None
     if sweep or overload:

@@ -15,6 +15,7 @@ from dataclasses import replace
 
 import numpy as np
 
+from audiodsm.errors import ParameterError
 from audiodsm.measure.spectrum import NUMERIC_FLOOR_DBFS
 
 _TEST_HZ = 997.0
@@ -143,30 +144,80 @@ def _linear_noise_floor(chain):
     return out
 
 
+_GAIN_RUN_SAMPLES = 1 << 17  # modulator samples of the effective-gain fit (after settling)
+_GAIN_SETTLE_SAMPLES = 1 << 12
+_GAIN_LEVEL_DBFS = -60.0  # the level of the tone the density is measured under
+
+
+def _effective_quantizer_gain(chain):
+    """The single-bit quantizer's effective gain in the chain's loop (None for multi-level).
+
+    A sign quantizer has no gain of its own, so the loop sets one; it is fitted by least
+    squares (``design.quantizer_gain.least_squares_gain``) to the quantizer's input and output
+    over a run of the chain's own modulator on the tone the density is measured under (997 Hz
+    at -60 dBFS, times the chain's input scale), the first samples left out while the loop
+    settles. A multi-level quantizer that does not clip has gain 1 by its step.
+    """
+    from audiodsm.design.quantizer_gain import least_squares_gain
+
+    mod = chain.modulator
+    if mod.levels != 2:
+        return None
+    fm = float(chain.modulator_rate_hz)
+    scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
+    n = _GAIN_SETTLE_SAMPLES + _GAIN_RUN_SAMPLES
+    tone = (
+        10.0 ** (_GAIN_LEVEL_DBFS / 20.0)
+        * scale
+        * np.sin(2.0 * np.pi * _TEST_HZ / fm * np.arange(n))
+    )
+    y, v = mod.trace_quantizer_input(tone)
+    return least_squares_gain(v[_GAIN_SETTLE_SAMPLES:], y[_GAIN_SETTLE_SAMPLES:])
+
+
 def _predicted_noise_density(chain):
     """The output noise density the loop's linear model predicts, as a function of Hz.
 
-    Returns ``density(freq_hz)``: power per Hz (full-scale units squared per Hz, one-sided,
-    referred to the chain input like every reading). The quantizer error is white with power
-    ``step**2 / 12``, the TPDF dither (peak ``dither_lsb`` steps, the sum of two uniform
-    variables) adds ``(dither_lsb * step)**2 / 6``; both enter at the quantizer and leave
-    through ``|NTF|**2``, spread over 0 .. fm/2. The semi-digital FIR and the analog filter
-    shape it relative to their gain at 997 Hz (the calibration divides that out), and the
-    chain's input scale refers it to the input. Output-stage effects (PWM) are not modelled.
+    Returns ``(density, gain)``: ``density(freq_hz)`` is power per Hz (full-scale units
+    squared per Hz, one-sided, referred to the chain input like every reading); ``gain`` the
+    single-bit quantizer's effective gain (``QuantizerGain``) or None for a multi-level one.
+
+    Multi-level: the quantizer error is white with power ``step**2 / 12``, the TPDF dither
+    (peak ``dither_lsb`` steps, the sum of two uniform variables) adds
+    ``(dither_lsb * step)**2 / 6``; both enter at the quantizer and leave through
+    ``|NTF|**2``, spread over 0 .. fm/2. Single-bit: the quantizer is the effective gain ``k``
+    plus a white error of the power the fit leaves (dither included), which leaves through
+    the effective NTF ``NTF / (k + (1 - k) NTF)`` (``design.quantizer_gain.effective_ntf``).
+    The semi-digital FIR and the analog filter shape it relative to their gain at 997 Hz (the
+    calibration divides that out), and the chain's input scale refers it to the input.
+    Output-stage effects (PWM) are not modelled.
 
     References
     ----------
     .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005,
-       ch. 2 (linear model: white error of power step^2/12 shaped by |NTF|^2).
+       ch. 2 (linear model: white error of power step^2/12 shaped by |NTF|^2) and ch. 4
+       (effective gain of a single-bit quantizer).
     .. [2] S. P. Lipshitz, R. A. Wannamaker and J. Vanderkooy, "Quantization and Dither: A
        Theoretical Survey", J. Audio Eng. Soc. 40(5), 1992 (TPDF dither power).
     """
+    from audiodsm.design.quantizer_gain import effective_ntf
+
     mod = chain.modulator
     fm = float(chain.modulator_rate_hz)
     step = float(mod.step)
-    power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
+    ntf = chain.ntf
+    try:
+        gain = _effective_quantizer_gain(chain)
+        if gain is not None:
+            ntf = effective_ntf(ntf, gain.gain)
+    except ParameterError:  # a loop that overloads on the tone: no gain to model; unit gain
+        gain = None
+    if gain is None:
+        power = step**2 / 12.0 + (float(mod.dither_lsb) * step) ** 2 / 6.0
+    else:
+        power = gain.error_power
     scale = float(getattr(chain, "input_scale", 1.0) or 1.0)
-    ntf, fir, analog = chain.ntf, getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
+    fir, analog = getattr(chain, "fir", None), getattr(chain, "analog_filter", None)
 
     def shaping(f):
         g = np.ones_like(f)
@@ -183,7 +234,7 @@ def _predicted_noise_density(chain):
         ntf_power = np.abs(ntf.response(f / fm)) ** 2
         return power * ntf_power / (fm / 2.0) * shaping(f) / ref / scale**2
 
-    return density
+    return density, gain
 
 
 def _meter(x, rate, frequency_hz, weightings, settle_s):
@@ -361,23 +412,33 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
     Snelgrove 1999; checked against the jitter stage in tests/test_jitter.py): ``(sigma
     f_m)^2 E[(y[n] - y[n-1])^2]`` spread evenly over the Nyquist band, ``2 B / f_m`` of it in
     the band ``B``; referred to the listening full scale through the chain's calibration.
-    PWM is left out: its edges sit inside the frames (not modelled yet).
+    PWM: every edge of the PWM waveform (without dead time) adds its own independent error,
+    so ``E[(y[n] - y[n-1])^2]`` becomes the mean over frames of the sum of a frame's squared
+    edge steps (derivation in tests/test_edges.py, checked against the jitter stage there);
+    with return to zero, two edges a frame of the held level each: ``2 E[y^2]``.
 
     Returns
     -------
     (float or None, str)
         The level, and why it is missing (empty when it is not).
     """
-    if profile.output.kind == "pwm":
-        return None, "PWM edges are not in the jitter model"
     from audiodsm.stages.chain import Chain
 
     chain = Chain.from_profile(profile, rate, 1, threads=1)
     fm = res.modulator_rate_hz
     m = res.modulator[:, 0]
     m = m[min(int(round(settle_s * fm)), m.size // 2) :]
-    steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
-    power = (1e-12 * fm) ** 2 * float(np.mean(steps * steps)) * 2.0 * _BAND[1] / fm
+    if profile.output.kind == "pwm":  # every edge inside the frames, in volts
+        wf, _, _ = chain._waveform(m, None)
+        steps = np.diff(wf.levels[wf.ticks > 0]) / chain.gain  # listening full-scale units
+        mean_square = float(np.sum(steps * steps)) / max(m.size, 1)
+    elif profile.impairments.return_to_zero:  # two edges a frame, each the held level
+        held = m * (2.0 * chain.stage_gain / chain.gain)  # RZ halves the mean, not the level
+        mean_square = 2.0 * float(np.mean(held * held))
+    else:
+        steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
+        mean_square = float(np.mean(steps * steps))
+    power = (1e-12 * fm) ** 2 * mean_square * 2.0 * _BAND[1] / fm
     return (10.0 * math.log10(power / 0.5) if power > 0 else -math.inf), ""
 
 
@@ -501,7 +562,7 @@ def _test_stability(ctx, profile):
         "ntf": chain.ntf,
         "modulator_rate_hz": float(chain.modulator_rate_hz),
         "noise_floor": _linear_noise_floor(chain),
-        "noise_density": _predicted_noise_density(chain),
+        "noise_density": _predicted_noise_density(chain),  # (density, effective gain)
         "notes": [
             f"stability: slow ramps then fixed-level runs of {plan.stability_samples} modulator "
             f"samples at {freqs} Hz, each run with its own dither seed, the lowest limit kept; "
@@ -712,3 +773,145 @@ def _test_imd(ctx, profile):
             + smpte.convention
         ],
     }
+
+
+#: The class-D stage's readings (test ``class_d_stage``): metric names in their order.
+_CLASS_D_METRICS = (
+    "supply_ripple_sideband_db",
+    "output_peak_volts",
+    "load_current_peak_amperes",
+    "inductor_current_peak_amperes",
+    "switch_conduction_watts",
+    "load_power_watts",
+)
+#: Level of the class-D stage's test tone (997 Hz), dBFS.
+_CLASS_D_LEVEL_DBFS = -1.0
+#: Tone periods the volts, amperes and watts are read over, and the filter's run-in before.
+_CLASS_D_PERIODS = 20
+_CLASS_D_RUN_IN_S = 0.02
+
+
+def _sideband_levels(y, rate, tone_hz, ripple_hz):
+    """Levels (dB re the tone) of the supply ripple's sidebands at ``|f - f_r|`` and ``f + f_r``.
+
+    One least-squares fit of a constant and a sine and cosine at the tone and at each in-band
+    sideband (known frequencies: the linear form of the IEEE 1057 sine fit).
+    """
+    freqs = [tone_hz] + [
+        f for f in (abs(tone_hz - ripple_hz), tone_hz + ripple_hz) if _BAND[0] <= f <= _BAND[1]
+    ]
+    if len(freqs) == 1:
+        return []
+    t = np.arange(y.size) / rate
+    cols = [np.ones_like(t)]
+    for f in freqs:
+        cols += [np.sin(2 * np.pi * f * t), np.cos(2 * np.pi * f * t)]
+    coef, *_ = np.linalg.lstsq(np.column_stack(cols), y, rcond=None)
+    amps = np.hypot(coef[1::2], coef[2::2])
+    return [20.0 * math.log10(max(a, 1e-300) / amps[0]) for a in amps[1:]]
+
+
+def _test_class_d_stage(ctx, profile):
+    """Supply rejection and the stage's volts, amperes and watts at -1 dBFS, 997 Hz.
+
+    The supply ripple's sidebands are read on the listening output (the whole chain, dead
+    time included); the volts, amperes and watts from the modulator output run once more
+    through the PWM stage without dead time and the LC filter with its load and switches
+    (:func:`audiodsm.stages.power_stage.class_d_readings`).
+    """
+    plan, rate = ctx.plan, ctx.rate
+    out = dict.fromkeys(_CLASS_D_METRICS)
+    invalid = {}
+    if profile.output.kind != "pwm":
+        why = "applies to a class-D (PWM) stage"
+        return {**out, "invalid": dict.fromkeys(_CLASS_D_METRICS, why)}
+    imp = profile.impairments
+    read_s = _CLASS_D_PERIODS / _TEST_HZ
+    seconds = plan.settle_s + max(plan.sweep_s, read_s) + _TAIL_S
+    x = _tone(_CLASS_D_LEVEL_DBFS, rate, seconds)
+    res = _chain_run(profile, x, rate=rate, keep=("listening", "modulator"))
+    notes = []
+    settle = int(round(plan.settle_s * rate))
+    if imp.supply_ripple > 0.0:
+        levels = _sideband_levels(res.listening[settle:, 0], rate, _TEST_HZ, imp.supply_ripple_hz)
+        if levels:
+            out["supply_ripple_sideband_db"] = max(levels)
+            notes.append(
+                f"supply rejection: {_CLASS_D_LEVEL_DBFS:g} dBFS {_TEST_HZ:g} Hz with the "
+                f"profile's supply ripple ({imp.supply_ripple:g} at {imp.supply_ripple_hz:g} "
+                "Hz); the stronger in-band sideband at f +- f_ripple re the tone, by a "
+                "least-squares fit at the three frequencies"
+            )
+        else:
+            invalid["supply_ripple_sideband_db"] = "no ripple sideband falls in the audio band"
+    else:
+        invalid["supply_ripple_sideband_db"] = "the profile has no supply ripple"
+    power_names = _CLASS_D_METRICS[1:]
+    if profile.reconstruction.kind != "lc":
+        why = "needs an LC filter (reconstruction.kind = 'lc'): the load is not modelled"
+        invalid.update(dict.fromkeys(power_names, why))
+    else:
+        r = _class_d_power(profile, res, plan.settle_s, read_s)
+        out.update(
+            output_peak_volts=r.output_peak_volts,
+            load_current_peak_amperes=r.load_current_peak_amperes,
+            inductor_current_peak_amperes=r.inductor_current_peak_amperes,
+            switch_conduction_watts=r.switch_conduction_watts,
+            load_power_watts=r.load_power_watts,
+        )
+        extra = ""
+        if profile.output.dead_time_ticks > 0:
+            extra = "; read on the stage without dead time"
+        notes.append(
+            f"class-D volts, amperes, watts: {_CLASS_D_LEVEL_DBFS:g} dBFS {_TEST_HZ:g} Hz, "
+            f"{r.seconds * 1e3:.1f} ms ({_CLASS_D_PERIODS} periods) after "
+            f"{plan.settle_s:g} s; peaks at every switching instant, conduction loss "
+            f"(I^2 R in the switches) and load power as exact averages{extra}"
+        )
+    return {**out, "invalid": invalid, "notes": notes}
+
+
+def _class_d_power(profile, res, settle_s, read_s):
+    """The chain run's modulator output through the power stage: :class:`ClassDReadings`."""
+    from audiodsm.stages import output_stage as out_mod
+    from audiodsm.stages.chain_build import _power_stage_filter
+    from audiodsm.stages.power_stage import class_d_readings, segment_switch_states
+    from audiodsm.stages.supply import apply_supply_ripple
+
+    out, imp = profile.output, profile.impairments
+    fm = res.modulator_rate_hz
+    first = max(0, int(round((settle_s - _CLASS_D_RUN_IN_S) * fm)))
+    run_in = int(round(settle_s * fm)) - first
+    y = np.ascontiguousarray(res.modulator[first : first + run_in + int(round(read_s * fm)), 0])
+    settings = (
+        fm,
+        profile.modulator.levels,
+        out.counter_steps or None,
+        out.pwm_mode,
+        out.pwm_carrier,
+        out.pwm_bridge,
+        out.tick_subdivision,
+        0,
+        out.min_pulse_ticks,
+        out.short_pulse_action,
+        out.full_scale_volts,
+    )
+    wf, _, _ = out_mod.pwm_waveform(
+        y,
+        frame_rate_hz=fm,
+        levels=profile.modulator.levels,
+        counter_steps=out.counter_steps or None,
+        mode=out.pwm_mode,
+        carrier=out.pwm_carrier,
+        bridge=out.pwm_bridge,
+        tick_subdivision=out.tick_subdivision,
+        min_pulse_ticks=out.min_pulse_ticks,
+        min_pulse_action=out.short_pulse_action,
+        supply_volts=out.full_scale_volts,
+    )
+    if imp.supply_ripple > 0.0:
+        wf = apply_supply_ripple(
+            wf, ripple=imp.supply_ripple, ripple_hz=imp.supply_ripple_hz, first_frame=first
+        )
+    configs = segment_switch_states(wf, out_mod._pwm_plan(y, *settings))
+    return class_d_readings(_power_stage_filter(profile), wf, configs, skip_frames=run_in)

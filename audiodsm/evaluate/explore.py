@@ -410,6 +410,18 @@ def explore_space(space: DesignSpace, spec, *, cache_dir=None, plan=None, **batc
     return Exploration(space, spec, tuple(graded), front, batch)
 
 
+def _parts_note(shown) -> str:
+    """`` Candidates with random impairments ran 20 parts each ...`` (empty when none did)."""
+    counts = sorted({len(c.grade.parts) for c in shown if c.grade.parts})
+    if not counts:
+        return ""
+    text = " or ".join(str(n) for n in counts)
+    return (
+        f" Candidates with random impairments ran {text} parts each; their margins are "
+        "graded over the parts (docs/grade.md, Parts)."
+    )
+
+
 def write_exploration(result: Exploration, folder) -> dict:
     """Write the front's profiles (TOML), the plot (PNG) and the report (HTML) into ``folder``.
 
@@ -454,7 +466,7 @@ def write_exploration(result: Exploration, folder) -> dict:
         f"<h1>{html.escape(result.space.name)}</h1>"
         f"<p>{len(result.candidates)} candidates; {pruned} dropped by the linear model or not "
         f"reached; {len(shown)} graded against {html.escape(result.spec.name)}; "
-        f"{len(result.front)} on the front.</p>"
+        f"{len(result.front)} on the front.{_parts_note(shown)}</p>"
         "<p>Cost = modulator clock (MHz) &times; quantizer levels &times; loop order (+ PWM "
         "edge rate in MHz). Margin = the worst normalized spec margin (dB).</p>"
         "<img src='front.png' alt='cost against worst margin'>"

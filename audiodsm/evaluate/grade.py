@@ -8,7 +8,9 @@ runs the test battery on many profiles (in parallel processes), grades each, ran
 their worst normalized margin (:func:`rank_grades`) and keeps every finished battery in a
 cache keyed by what was computed: (profile content digest, tool version, battery options).
 The spec sheet is applied afterwards, so a repeated or interrupted batch resumes without
-recomputing, and a changed limit re-grades from the cache.
+recomputing, and a changed limit re-grades from the cache. A profile with random impairments
+can run as several parts (:mod:`audiodsm.evaluate.parts`): each part is its own battery and
+cache entry, and the targets are graded over the parts.
 
 The battery is a parameter: any callable ``battery(profile, *, jobs, progress, seed,
 **options)`` returning an object with ``.metrics`` (dict) and ``.curves`` (dict of dicts of
@@ -32,6 +34,7 @@ import numpy as np
 
 from audiodsm.errors import ParameterError, ProfileError, StorageError
 from audiodsm.evaluate._plain import plain_scalar
+from audiodsm.evaluate.measure_batch import measure_on_cluster
 from audiodsm.io_files import create_temp_file, remove_stale_temp_files
 from audiodsm.profile import load_profile
 from audiodsm.profile_text import profile_digest
@@ -77,6 +80,11 @@ class TargetGrade:
     reason : str
         Why there is no reading (empty when there is one); ``"invalid: ..."`` when the
         battery called the reading invalid.
+    parts_met, parts_needed, parts_total : int or None
+        For a profile run as several parts: how many parts met the target, how many had
+        to (:func:`~audiodsm.evaluate.parts.parts_needed`) and how many ran; the value is
+        then the order statistic :func:`~audiodsm.evaluate.parts.grade_parts` grades.
+        None for one part.
     """
 
     target: Target
@@ -84,6 +92,9 @@ class TargetGrade:
     margin: float | None
     passed: bool
     reason: str = ""
+    parts_met: int | None = None
+    parts_needed: int | None = None
+    parts_total: int | None = None
 
     @property
     def valid(self) -> bool:
@@ -124,6 +135,10 @@ class ProfileGrade:
         Battery wall-clock time (of the original run when cached).
     invalid : dict
         Metric name -> why the battery called its reading invalid.
+    parts : tuple of PartReading
+        Every part's readings when the profile ran as several parts (empty for one part);
+        ``metrics``, ``curves``, ``notes`` and ``invalid`` are then part 0's (the profile as
+        written), ``seconds`` the sum and ``cached`` true when every part came from the cache.
     """
 
     name: str
@@ -137,6 +152,17 @@ class ProfileGrade:
     cached: bool = False
     seconds: float = 0.0
     invalid: dict = field(default_factory=dict, repr=False)
+    parts: tuple = field(default=(), repr=False)
+
+    @property
+    def spread(self) -> dict:
+        """Each metric's distribution over the parts; empty for one part.
+
+        See :func:`audiodsm.evaluate.parts.metric_spread`.
+        """
+        from audiodsm.evaluate.parts import metric_spread
+
+        return metric_spread(self.parts) if self.parts else {}
 
     @property
     def passed(self) -> bool:
@@ -686,6 +712,7 @@ def grade_batch(
     progress: Callable[[float, str], None] | None = None,
     scheduler: str | None = None,
     say: Callable[[str], None] | None = None,
+    parts: int | None = None,
 ) -> GradeBatch:
     """Run the battery on every profile, grade each against the spec sheet, rank them.
 
@@ -723,6 +750,11 @@ def grade_batch(
         (one thread each) instead of a local cluster, whatever ``jobs`` says.
     say : callable, optional, keyword-only
         Receives one-line notices of a cluster run (where it runs, the dashboard address).
+    parts : int or None, keyword-only
+        Parts per profile with random impairments (:mod:`audiodsm.evaluate.parts`); None
+        takes each profile's ``impairments.parts``. A profile without random draws runs
+        once. Each part is one battery (one task on a cluster) cached under its own digest;
+        the targets are graded over the parts (:func:`~audiodsm.evaluate.parts.grade_parts`).
 
     Returns
     -------
@@ -736,7 +768,7 @@ def grade_batch(
     Raises
     ------
     ParameterError
-        A bad ``jobs`` or ``seed``.
+        A bad ``jobs``, ``seed`` or ``parts``.
     ClusterError
         Before any battery runs: the scheduler cannot be reached, has no workers, or its
         workers run another version of audiodsm.
@@ -749,6 +781,15 @@ def grade_batch(
         raise ParameterError("jobs", jobs, "an integer from 1 to 256")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ParameterError("seed", seed, "a non-negative integer")
+    from audiodsm.evaluate.parts import (
+        check_parts,
+        grade_profile_parts,
+        part_profile,
+        parts_to_run,
+    )
+
+    if parts is not None:
+        check_parts(parts)
     options = dict(battery_options or {})
     if battery is None:
         battery = _default_battery()
@@ -759,47 +800,54 @@ def grade_batch(
     entries = list(profiles)
     names = _unique_names(entries)
     digests = [profile_digest(prof) for _, prof in entries]
-    keys = [GradeCache.key(d, __version__, option_text) for d in digests]
+    counts = [parts_to_run(prof, parts) for _, prof in entries]
+    # one unit of work per (profile, part): its own battery, its own cache entry
+    units = [(i, k) for i, count in enumerate(counts) for k in range(count)]
+    keys = [
+        GradeCache.key(profile_digest(part_profile(entries[i][1], k)), __version__, option_text)
+        for i, k in units
+    ]
+    labels = [names[i] if counts[i] == 1 else f"{names[i]} part {k}" for i, k in units]
     outcomes: dict[int, dict] = {}
     cached: set[int] = set()
     notices: list[str] = []
     if cache is not None and not recompute:
-        for i, key in enumerate(keys):
+        for u, key in enumerate(keys):
             entry, problem = cache.load_checked(key)
             if entry is not None:
-                outcomes[i] = entry
-                cached.add(i)
+                outcomes[u] = entry
+                cached.add(u)
             elif problem:
                 notices.append(
-                    f"cache entry {cache.path(key)} for {names[i]} {problem}; recomputing it"
+                    f"cache entry {cache.path(key)} for {labels[u]} {problem}; recomputing it"
                 )
                 cache.discard(key)
     unsaved: list[int] = []
     store_failure: list[str] = []
     if cache is not None and not cache.writable:
         store_failure.append(f"{cache.directory}: the cache folder is not writable")
-    todo = [i for i in range(len(entries)) if i not in outcomes]
-    fractions = {i: 0.0 for i in todo}
+    todo = [u for u in range(len(units)) if u not in outcomes]
+    fractions = {u: 0.0 for u in todo}
 
-    def tick(i, done, total, label):
+    def tick(u, done, total, label):
         if progress is None:
             return
-        fractions[i] = max(fractions[i], done / total if total else 1.0)
-        progress(sum(fractions.values()) / max(1, len(todo)), f"{names[i]}: {label}")
+        fractions[u] = max(fractions[u], done / total if total else 1.0)
+        progress(sum(fractions.values()) / max(1, len(todo)), f"{labels[u]}: {label}")
 
-    def finish(i, outcome):
-        outcomes[i] = outcome
+    def finish(u, outcome):
+        outcomes[u] = outcome
         if cache is not None and "failure" not in outcome:
             if store_failure:
-                unsaved.append(i)
+                unsaved.append(u)
             else:
                 try:
-                    cache.store(keys[i], outcome)
+                    cache.store(keys[u], outcome)
                 except OSError as exc:  # keep the result; say so at the end
                     store_failure.append(str(exc))
-                    unsaved.append(i)
+                    unsaved.append(u)
         if not on_cluster:  # a cluster batch reports tasks done of total itself
-            tick(i, 1, 1, "done" if "failure" not in outcome else "failed")
+            tick(u, 1, 1, "done" if "failure" not in outcome else "failed")
 
     interrupted = False
     stop_signal = 0
@@ -808,21 +856,22 @@ def grade_batch(
     try:
         if on_cluster:
             _run_on_cluster(
-                battery, entries, todo, workers, jobs, seed, options, scheduler, progress,
-                say, finish, names,
+                battery, entries, units, todo, workers, jobs, seed, options, scheduler,
+                progress, say, finish,
             )  # fmt: skip
         else:
-            for i in todo:
-                outcome = _run_one(
+            for u in todo:
+                i, k = units[u]
+                outcome = _run_part(
                     battery,
                     entries[i][1],
-                    i,
+                    k,
                     jobs,
                     seed,
                     options,
-                    report=lambda d, t, lab, i=i: tick(i, d, t, lab),
+                    report=lambda d, t, lab, u=u: tick(u, d, t, lab),
                 )
-                finish(i, outcome)
+                finish(u, outcome)
     except KeyboardInterrupt as exc:
         interrupted = True
         stop_signal = getattr(exc, "signal_number", int(signal.SIGINT))
@@ -833,36 +882,26 @@ def grade_batch(
         )
 
     grades = []
-    for i, (path, _prof) in enumerate(entries):
-        if i not in outcomes:
+    finished = set()
+    units_of: dict[int, list] = {}
+    for u, (i, _k) in enumerate(units):
+        units_of.setdefault(i, []).append(u)
+    for i, (path, prof) in enumerate(entries):
+        mine = units_of[i]
+        if any(u not in outcomes for u in mine):
             continue
-        out = outcomes[i]
-        if "failure" in out:
-            grades.append(
-                ProfileGrade(
-                    name=names[i],
-                    source=str(path),
-                    digest=digests[i],
-                    lines=_failed_lines(spec, out["failure"]),
-                    failure=out["failure"],
-                )
-            )
-            continue
+        finished.add(i)
         grades.append(
-            ProfileGrade(
-                name=names[i],
-                source=str(path),
-                digest=digests[i],
-                lines=grade_metrics(out["metrics"], out["curves"], spec, out.get("invalid")),
-                metrics=out["metrics"],
-                curves=out["curves"],
-                notes=tuple(out["notes"]),
-                cached=i in cached,
-                seconds=out["seconds"],
-                invalid=dict(out.get("invalid", {})),
-            )
+            grade_profile_parts(
+                names[i],
+                str(path),
+                digests[i],
+                prof,
+                spec,
+                [(units[u][1], outcomes[u], u in cached) for u in mine],
+            )  # fmt: skip
         )
-    unfinished = tuple(str(entries[i][0]) for i in range(len(entries)) if i not in outcomes)
+    unfinished = tuple(str(entries[i][0]) for i in range(len(entries)) if i not in finished)
     return GradeBatch(
         spec=spec,
         grades=rank_grades(grades),
@@ -874,22 +913,37 @@ def grade_batch(
     )
 
 
+def _run_part(battery, profile, part, jobs, seed, options, report=None):
+    """Run the battery on part ``part`` of a profile; never raises an ordinary exception.
+
+    The part's profile comes from :func:`audiodsm.evaluate.parts.part_profile`. This is the
+    task of a serial batch and of a cluster worker alike, so both give the same readings.
+    """
+    from audiodsm.evaluate.parts import part_profile
+
+    return _run_one(battery, part_profile(profile, part), part, jobs, seed, options, report)
+
+
 def _run_on_cluster(
-    battery, entries, todo, workers, jobs, seed, options, scheduler, progress, say, finish, names
+    battery, entries, units, todo, workers, jobs, seed, options, scheduler, progress, say, finish
 ):
-    """Run the batteries of ``todo`` as cluster tasks; ``finish`` gets each outcome here."""
+    """Run the batteries of ``todo`` as cluster tasks; ``finish`` gets each outcome here.
+
+    A task carries (battery, profile, part index, threads, seed, options): descriptions,
+    never signals; the worker derives the part's profile itself.
+    """
     from audiodsm.evaluate.cluster import run_tasks
 
     threads = 1 if scheduler else max(1, jobs // workers)
-    calls = [(battery, entries[i][1], i, threads, seed, options) for i in todo]
+    calls = [(battery, entries[units[u][0]][1], units[u][1], threads, seed, options) for u in todo]
 
     def on_result(k, status, value):
-        i = todo[k]
+        u = todo[k]
         if status == "failed":  # the task itself failed (e.g. the battery not importable)
             value = {"failure": f"battery failed on a worker: {value}"}
         elif status == "lost":
             value = {"failure": value}
-        finish(i, value)
+        finish(u, value)
 
     def report(done, total, per_minute, alive):
         if progress is not None:
@@ -897,7 +951,7 @@ def _run_on_cluster(
                      f"{alive} workers")  # fmt: skip
 
     run_tasks(
-        _run_one,
+        _run_part,
         calls,
         workers=workers,
         scheduler=scheduler,
@@ -905,74 +959,3 @@ def _run_on_cluster(
         progress=report,
         say=say,
     )
-
-
-def _measure_task(profile, threads, seed, plan):
-    from audiodsm.evaluate.battery import run_battery
-
-    return run_battery(profile, jobs=threads, progress=None, seed=seed, plan=plan)
-
-
-def measure_on_cluster(
-    profiles: Sequence,
-    *,
-    plan=None,
-    jobs: int | None = None,
-    seed: int = 0,
-    scheduler: str | None = None,
-    progress: Callable[[float, str], None] | None = None,
-    say: Callable[[str], None] | None = None,
-) -> list:
-    """Run the battery on several profiles as cluster tasks (``audiodsm measure``).
-
-    Parameters
-    ----------
-    profiles : sequence of (path, ChainProfile)
-    plan : BatteryPlan, optional, keyword-only
-    jobs : int, optional, keyword-only
-        Cores of the local cluster (default: all); ``min(jobs, profiles)`` worker processes,
-        each battery with ``jobs // workers`` threads. Ignored with ``scheduler``.
-    seed : int, keyword-only
-    scheduler : str or None, keyword-only
-        An existing Dask scheduler (``tcp://host:port``); None starts a local cluster.
-    progress, say : callable, optional, keyword-only
-        As for :func:`grade_batch`.
-
-    Returns
-    -------
-    list
-        Per profile, in the order given: its ``BatteryResult``, or a one-line text saying why
-        the battery failed (the other profiles are still measured).
-
-    Raises
-    ------
-    ClusterError
-        The scheduler cannot take the batch (before any battery runs).
-    """
-    from audiodsm.evaluate.cluster import run_tasks
-
-    entries = list(profiles)
-    jobs = jobs or os.cpu_count() or 1
-    workers = max(1, min(jobs, len(entries)))
-    threads = 1 if scheduler else max(1, jobs // workers)
-    out: list = [None] * len(entries)
-
-    def on_result(i, status, value):
-        out[i] = value if status == "ok" else f"battery failed: {value}"
-
-    def report(done, total, per_minute, alive):
-        if progress is not None:
-            progress(done / total, f"{done}/{total} batteries, {per_minute:.1f}/min, "
-                     f"{alive} workers")  # fmt: skip
-
-    calls = [(prof, threads, seed, plan) for _, prof in entries]
-    run_tasks(
-        _measure_task,
-        calls,
-        workers=workers,
-        scheduler=scheduler,
-        on_result=on_result,
-        progress=report,
-        say=say,
-    )
-    return out

@@ -33,6 +33,7 @@ __all__ = [
     "plot_margins",
     "plot_spectrogram",
     "plot_cost_against_margin",
+    "plot_part_spread",
 ]
 
 # Okabe & Ito's colour-blind-safe set ("Color Universal Design", 2008): blue, vermillion,
@@ -160,6 +161,14 @@ def _db_power(v):
         return 10.0 * np.log10(v)
 
 
+def _prediction_label(c):
+    """The legend of a predicted density: what it assumes of the quantizer."""
+    k = float(np.asarray(c.get("predicted_quantizer_gain", [1.0]), dtype=float)[0])
+    if k == 1.0:
+        return "predicted from the NTF (quantizer gain 1, white error + dither)"
+    return f"predicted from the NTF with effective quantizer gain {k:.2f} (fitted to a run)"
+
+
 def plot_noise_density(curves, *, ax=None, title="Output noise density, whole output band",
                        graded=()):  # fmt: skip
     """The output noise as a density, with the density the designed NTF predicts.
@@ -168,7 +177,8 @@ def plot_noise_density(curves, *, ax=None, title="Output noise density, whole ou
     ----------
     curves : dict
         ``curves["spectrum"]`` with ``frequency_hz`` and ``density_dbfs_per_hz``; optional
-        ``predicted_density_dbfs_per_hz`` (same axis), ``out_of_band_hz`` (the band of the
+        ``predicted_density_dbfs_per_hz`` (same axis) with ``predicted_quantizer_gain`` (the
+        quantizer gain it assumes, named in the legend), ``out_of_band_hz`` (the band of the
         out-of-band noise reading) and ``weighting_db`` (A-weighting, right-hand axis).
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
@@ -189,7 +199,7 @@ def plot_noise_density(curves, *, ax=None, title="Output noise density, whole ou
     if "predicted_density_dbfs_per_hz" in c:
         p = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
         ax.semilogx(f[keep], p[keep], color=_VERMILLION, lw=1.3, ls="--",
-                    label="predicted: (quantizer + dither) x |NTF|^2")  # fmt: skip
+                    label=_prediction_label(c))  # fmt: skip
     _style(ax, title, "frequency (Hz)", "noise density (dBFS/\u221aHz)")
     ax.axvline(20000.0, color=_GREY, lw=0.8, ls=":")
     finite = d[keep][np.isfinite(d[keep])]
@@ -226,7 +236,7 @@ def plot_audio_band_density(curves, *, ax=None, title="Output noise density, aud
     ----------
     curves : dict
         ``curves["audio_spectrum"]`` with ``frequency_hz`` and ``density_dbfs_per_hz``;
-        optional ``predicted_density_dbfs_per_hz``.
+        optional ``predicted_density_dbfs_per_hz`` and ``predicted_quantizer_gain``.
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, keyword-only
     graded : sequence of TargetGrade, keyword-only
@@ -245,7 +255,7 @@ def plot_audio_band_density(curves, *, ax=None, title="Output noise density, aud
     ax.plot(f, d, color=_BLUE, lw=0.6, label="simulated output (-60 dBFS tone in)")
     if "predicted_density_dbfs_per_hz" in c:
         pred = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
-        ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label="predicted by the linear model")
+        ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label=_prediction_label(c))
     res = float(np.asarray(c.get("resolution_hz", [np.nan]))[0])
     _style(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""), "frequency (kHz)",
            "noise density (dBFS/\u221aHz)")  # fmt: skip
@@ -717,6 +727,94 @@ def plot_spectrogram(
     bar = fig.colorbar(mesh, ax=ax, pad=0.01)
     bar.set_label("dBFS per bin", fontsize=8)
     bar.ax.tick_params(labelsize=7)
+    return fig
+
+
+def plot_part_spread(parts, *, graded=(), title="Spread over parts", max_metrics=12):
+    """Each metric's readings over the parts of one profile: a strip plot per metric.
+
+    One panel per metric (each in its own unit): every part's reading as a point (circle
+    when it meets the metric's spec target, cross when not; jittered up and down so equal
+    readings stay visible), a box from the 5th to the 95th percentile with the median as a
+    thick line, and the target's limit as a dashed line. Metrics a target names come first,
+    then those that differ between parts; at most ``max_metrics`` panels.
+
+    Parameters
+    ----------
+    parts : sequence of PartReading
+        A profile's parts (:attr:`ProfileGrade.parts`).
+    graded : sequence of TargetGrade, keyword-only
+        The profile's graded targets (their limits are drawn).
+    title : str, keyword-only
+    max_metrics : int, keyword-only
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    Raises
+    ------
+    ParameterError
+        No metric has a reading in two or more parts.
+    """
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Rectangle
+
+    from audiodsm.evaluate.battery import METRIC_UNITS
+    from audiodsm.evaluate.parts import is_number, metric_spread
+
+    spread = metric_spread(parts)
+    limits = {}
+    for line in graded:
+        t = line.target
+        if t.at_level_dbfs is None and t.metric in spread:
+            limits.setdefault(t.metric, t)
+    varied = [k for k, r in spread.items() if r["readings"] >= 2 and r["max"] > r["min"]]
+    names = [k for k in limits if spread[k]["readings"] >= 2]
+    names += [k for k in varied if k not in names]
+    names = names[:max_metrics]
+    if not names:
+        raise ParameterError("parts", len(parts), "readings that differ between two or more parts")
+    fig = Figure(figsize=(7.6, 0.85 * len(names) + 0.9), dpi=100, layout="constrained")
+    axes = fig.subplots(len(names), 1, squeeze=False)
+    offsets = np.linspace(-0.25, 0.25, len(parts)) if len(parts) > 1 else np.zeros(1)
+    for ax, name in zip(axes[:, 0], names, strict=True):
+        row, target = spread[name], limits.get(name)
+        values = np.array(
+            [
+                np.nan
+                if name in p.invalid or not is_number(p.metrics.get(name))
+                else float(p.metrics[name])
+                for p in parts
+            ]
+        )
+        ok = np.isfinite(values)
+        meets = np.ones(values.size, dtype=bool)
+        if target is not None:
+            meets = np.array(
+                [bool(v) and target.margin(x) >= 0.0 for x, v in zip(values, ok, strict=True)]
+            )
+        for mask, marker, colour in ((ok & meets, "o", _BLUE), (ok & ~meets, "x", _VERMILLION)):
+            if mask.any():
+                ax.plot(values[mask], offsets[mask], marker, color=colour, ms=4, alpha=0.8)
+        ax.add_patch(
+            Rectangle((row["p5"], -0.38), row["p95"] - row["p5"], 0.76, fill=False, ec=_INK, lw=0.8)
+        )
+        ax.plot([row["median"]] * 2, [-0.38, 0.38], color=_INK, lw=2.2)
+        if target is not None:
+            ax.axvline(target.limit, color=_INK, ls="--", lw=1.0)
+        ax.set_ylim(-0.5, 0.5)
+        ax.set_yticks([])
+        unit = target.unit if target is not None else METRIC_UNITS.get(name, ("", "", ""))[1]
+        label = f"{name} ({unit})" if unit else name
+        ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=7)
+        ax.tick_params(axis="x", labelsize=7)
+        ax.grid(True, axis="x", alpha=0.3)
+    axes[0, 0].set_title(
+        f"{title}: {len(parts)} parts (box: 5th to 95th percentile, thick line: median, "
+        "dashed: limit, x: misses it)",
+        fontsize=8,
+    )
     return fig
 
 

@@ -9,7 +9,9 @@
     per profile: its readings against the spec sheet, every battery metric, the battery's
     notes and the plots of :data:`audiodsm.evaluate.plotting.PLOTS` with the spec limits
     drawn (docs/report.md). The plots are embedded as base64 PNG and each one's data as a
-    base64 CSV download, so the page is a single file that opens anywhere.
+    base64 CSV download, so the page is a single file that opens anywhere; the downloads are
+    kept lean (numbers rounded by kind, the whole-band spectrum averaged over 1/96-octave
+    bands above 24 kHz, the overlaid densities as drawn).
 ``grades.json``
     :func:`batch_to_dict` of the batch.
 ``grades.csv``
@@ -53,6 +55,7 @@ __all__ = [
     "report_curves",
     "curve_to_csv",
     "overlay_to_csv",
+    "parts_to_csv",
     "figure_to_png",
     "write_profile_plots",
     "render_html",
@@ -78,6 +81,9 @@ CSV_COLUMNS = (
     "passed",
     "valid",
     "reason",
+    "parts_met",
+    "parts_needed",
+    "parts_total",
 )
 
 
@@ -96,8 +102,13 @@ def batch_to_dict(batch) -> dict:
         ``worst_margin`` (plain minimum, in mixed units), ``ranking_margin_db`` (the worst
         normalized margin the ranking uses), ``failure``, ``cached``, ``seconds``,
         ``targets`` (one dict per target: metric, at_level_dbfs, bound, limit, unit, value,
-        margin, passed, valid, reason, note), ``metrics`` (an invalid reading is null),
-        ``validity`` (metric -> ``{"valid": bool, "reason": str}``) and ``notes``.
+        margin, passed, valid, reason, note, and for a profile run as several parts
+        parts_met, parts_needed, parts_total, else null), ``metrics`` (an invalid reading is
+        null), ``validity`` (metric -> ``{"valid": bool, "reason": str}``), ``notes`` and
+        ``parts`` (null for one part; else ``{"count", "seeds", "percentiles", "spread":
+        {metric: {"parts", "readings", "min", "p5", "median", "p95", "max"}}, "per_part":
+        [{"part", "seed", "cached", "seconds", "metrics", "validity"}]}``; ``metrics`` and
+        ``validity`` of the profile are then part 0's).
     """
     from audiodsm import __version__
     from audiodsm.evaluate.battery import validity_table
@@ -121,6 +132,10 @@ def batch_to_dict(batch) -> dict:
                     "valid": bool(line.valid),
                     "reason": line.reason,
                     "note": t.note,
+                    "percentile": t.percentile,
+                    "parts_met": line.parts_met,
+                    "parts_needed": line.parts_needed,
+                    "parts_total": line.parts_total,
                 }
             )
         profiles.append(
@@ -140,6 +155,7 @@ def batch_to_dict(batch) -> dict:
                 "metrics": {k: plain_scalar(v) for k, v in g.metrics.items()},
                 "validity": validity_table(g.metrics, g.invalid),
                 "notes": list(g.notes),
+                "parts": _parts_dict(g),
             }
         )
     return {
@@ -156,6 +172,7 @@ def batch_to_dict(batch) -> dict:
                     "limit": t.limit,
                     "unit": t.unit,
                     "note": t.note,
+                    "percentile": t.percentile,
                 }
                 for t in spec.targets
             ],
@@ -165,6 +182,54 @@ def batch_to_dict(batch) -> dict:
         "interrupted": batch.interrupted,
         "unfinished": list(batch.unfinished),
     }
+
+
+def _parts_dict(g):
+    """A profile's parts as JSON-ready data (None for one part)."""
+    from audiodsm.evaluate.battery import validity_table
+    from audiodsm.evaluate.parts import SPREAD_PERCENTILES
+
+    if not g.parts:
+        return None
+    spread = {name: {k: plain_scalar(v) for k, v in row.items()} for name, row in g.spread.items()}
+    return {
+        "count": len(g.parts),
+        "seeds": [p.seed for p in g.parts],
+        "percentiles": list(SPREAD_PERCENTILES),
+        "spread": spread,
+        "per_part": [
+            {
+                "part": p.index,
+                "seed": p.seed,
+                "cached": p.cached,
+                "seconds": plain_scalar(p.seconds),
+                "metrics": {k: plain_scalar(v) for k, v in p.metrics.items()},
+                "validity": validity_table(p.metrics, p.invalid),
+            }
+            for p in g.parts
+        ],
+    }
+
+
+def parts_to_csv(grade) -> str:
+    """Every part's readings of one profile, one row per part and metric.
+
+    Columns ``part, part_seed, metric, value, valid, reason`` (numbers in full precision,
+    empty when there is none): the data of the report's spread plot.
+    """
+    from audiodsm.evaluate.parts import is_number
+
+    rows = []
+    for p in grade.parts:
+        for name, value in p.metrics.items():
+            bad = name in p.invalid
+            number = None
+            if not bad and is_number(value):
+                number = plain_scalar(value)
+            text = "" if number is None else repr(float(number))
+            why = str(p.invalid.get(name, ""))
+            rows.append((str(p.index), str(p.seed), name, text, "no" if bad else "yes", why))
+    return _csv_text(("part", "part_seed", "metric", "value", "valid", "reason"), rows)
 
 
 def batch_to_csv(batch) -> str:
@@ -189,6 +254,10 @@ def batch_to_csv(batch) -> str:
                     "pass" if t["passed"] else "fail",
                     "yes" if t["valid"] else "no",
                     t["reason"],
+                    *(
+                        "" if t[k] is None else t[k]
+                        for k in ("parts_met", "parts_needed", "parts_total")
+                    ),
                 ]
             )
     return buf.getvalue()
@@ -213,8 +282,27 @@ def report_curves(curves: dict) -> dict:
     return out
 
 
-def _column(v):
-    return "" if isinstance(v, float) and not math.isfinite(v) else repr(v)
+def _column(v, name=""):
+    """One number of a CSV column, rounded for its kind (the column's name says it).
+
+    Levels, ratios and gains (a name with ``db``) to 0.01 dB, below the repeatability of any
+    reading; frequencies (``_hz``) to 1 mHz; whole numbers as integers; anything else to six
+    significant digits. NaN and infinities are empty fields.
+    """
+    if isinstance(v, bool | str):
+        return str(v)
+    v = float(v)
+    if not math.isfinite(v):
+        return ""
+    if "db" in name:
+        text = f"{v:.2f}"
+    elif name.endswith("_hz"):
+        text = f"{v:.3f}".rstrip("0").rstrip(".")
+    elif v.is_integer() and abs(v) < 1e15:
+        text = str(int(v))
+    else:
+        text = f"{v:.6g}"
+    return "0" if text in ("-0", "-0.00", "-0.0") else text
 
 
 def _csv_text(header, rows) -> str:
@@ -222,8 +310,78 @@ def _csv_text(header, rows) -> str:
     w = csv.writer(buf, lineterminator="\r\n")
     w.writerow(header)
     for row in rows:
-        w.writerow(["" if v is None else v if isinstance(v, str) else _column(v) for v in row])
+        w.writerow(["" if v is None else _column(v, k) for k, v in zip(header, row, strict=True)])
     return buf.getvalue()
+
+
+#: The whole-band spectrum's CSV in the report: every bin up to this frequency ...
+_CSV_FULL_BELOW_HZ = 24000.0
+#: ... and above it the bins averaged over bands of 1/96 octave (on the plot's log axis a
+#: band is under one pixel wide).
+_CSV_BANDS_PER_OCTAVE = 96
+#: The overlaid audio-band densities are drawn averaged over runs of this many bins.
+_OVERLAY_BINS = 8
+
+
+def _averaged_curve(c: dict, groups) -> dict:
+    """A spectrum curve with its bins averaged over ``groups`` (a group id per bin, runs).
+
+    Columns in dB (a name with ``db``) are averaged in power, the others arithmetically, over
+    the finite values of each group; ``bins_averaged`` counts the bins of each row. Arrays
+    of another length than the spectrum's (``resolution_hz``, ...) are kept as they are.
+    """
+    f = np.asarray(c["frequency_hz"], dtype=float)
+    groups = np.asarray(groups)
+    index = np.cumsum(np.r_[True, groups[1:] != groups[:-1]]) - 1  # bin -> row
+    counts = np.bincount(index)
+    out = {}
+    for key, value in c.items():
+        a = np.asarray(value)
+        if a.ndim != 1 or a.size != f.size or a.dtype.kind not in "fiu":
+            out[key] = value
+            continue
+        x = a.astype(float)
+        if "db" in key:
+            with np.errstate(over="ignore"):
+                x = 10.0 ** (x / 10.0)
+        ok = np.isfinite(x)
+        total = np.bincount(index, np.where(ok, x, 0.0), minlength=counts.size)
+        used = np.bincount(index, ok.astype(float), minlength=counts.size)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            mean = np.where(used > 0, total / np.maximum(used, 1.0), np.nan)
+            row = 10.0 * np.log10(mean) if "db" in key else mean
+        alone = counts[index] == 1  # a bin that is its own row keeps its value exactly
+        row[index[alone]] = a[alone]
+        out[key] = row
+    out["bins_averaged"] = counts.astype(float)
+    return out
+
+
+def _thinned_wide_spectrum(c: dict) -> dict:
+    """The whole-band spectrum for its CSV: fine below 24 kHz, 1/96-octave bands above."""
+    f = np.asarray(c["frequency_hz"], dtype=float)
+    above = f > _CSV_FULL_BELOW_HZ
+    with np.errstate(divide="ignore"):
+        band = np.floor(_CSV_BANDS_PER_OCTAVE * np.log2(np.maximum(f, 1e-300) / _CSV_FULL_BELOW_HZ))
+    groups = np.where(above, f.size + band, np.arange(f.size))
+    return _averaged_curve(c, groups.astype(np.int64))
+
+
+def _overlay_density_curves(profiles):
+    """The audio-band densities as the overlay draws them: power means of 8-bin runs."""
+    out = []
+    for name, curves in profiles:
+        c = curves.get("audio_spectrum") if isinstance(curves, dict) else None
+        if isinstance(c, dict):
+            n = np.asarray(c["frequency_hz"]).size // _OVERLAY_BINS * _OVERLAY_BINS
+            cut = {k: (np.asarray(v)[:n] if np.ndim(v) == 1 and np.size(v) > n else v)
+                   for k, v in c.items()}  # fmt: skip
+            curves = {
+                **curves,
+                "audio_spectrum": _averaged_curve(cut, np.arange(n) // _OVERLAY_BINS),
+            }
+        out.append((name, curves))
+    return out
 
 
 def _curve_table(curves: dict, name: str):
@@ -272,7 +430,9 @@ def curve_to_csv(curves: dict, name: str) -> str:
     """One battery curve as CSV text (RFC 4180, CRLF lines), the data behind its plot.
 
     Every 1-D array of the curve's length becomes a column named as the array; NaN and
-    infinities become empty fields. ``thd_n_vs_frequency`` gets one THD+N column (and one
+    infinities become empty fields. Numbers are rounded by their kind: a column whose name
+    holds ``db`` to 0.01 dB, one ending in ``_hz`` to 1 mHz, whole numbers as integers, the
+    rest to six significant digits. ``thd_n_vs_frequency`` gets one THD+N column (and one
     reason column) per tone level; ``state_histograms`` one row per state and bin.
 
     Parameters
@@ -414,6 +574,10 @@ def render_html(batch, *, title=None) -> str:
         if g.curves:
             curves = report_curves(g.curves)
             with_curves.append((g.name, curves, rank - 1))
+            # the CSV beside each plot: the whole-band spectrum thinned above the audio band
+            data = dict(curves)
+            if isinstance(curves.get("spectrum"), dict):
+                data["spectrum"] = _thinned_wide_spectrum(curves["spectrum"])
             plots = []
             for name, fn, caption in plotting.PLOTS:
                 try:
@@ -426,11 +590,27 @@ def render_html(batch, *, title=None) -> str:
                         "caption": caption,
                         "png": _png_base64(fig),
                         "id": f"profile-{rank}-{name}",
-                        "csv": _b64(curve_to_csv(curves, name)),
+                        "csv": _b64(curve_to_csv(data, name)),
                         "csv_name": f"{_file_stem(g.name)}-{name}.csv",
                     }
                 )
-        sections.append({"rank": rank, "grade": g, "plots": plots, "colour": style["color"]})
+        spread = None
+        if g.parts:
+            spread = {
+                "table": g.spread,
+                "png": None,
+                "id": f"profile-{rank}-parts",
+                "caption": f"spread over {len(g.parts)} parts",
+                "csv": _b64(parts_to_csv(g)),
+                "csv_name": f"{_file_stem(g.name)}-parts.csv",
+            }
+            try:
+                spread["png"] = _png_base64(plotting.plot_part_spread(g.parts, graded=g.lines))
+            except AudiodsmError:  # no metric differs between parts: the table says it all
+                pass
+        sections.append(
+            {"rank": rank, "grade": g, "plots": plots, "colour": style["color"], "spread": spread}
+        )
     overlays = []
     if len(with_curves) > 1:
         for kind, caption in plotting.OVERLAYS:
@@ -438,12 +618,15 @@ def render_html(batch, *, title=None) -> str:
             if not any(curve in c for _, c, _ in with_curves):
                 continue
             fig = plotting.plot_overlay(kind, with_curves)
+            drawn = [(n, c) for n, c, _ in with_curves]
+            if kind == "noise_density":
+                drawn = _overlay_density_curves(drawn)
             overlays.append(
                 {
                     "caption": caption,
                     "png": _png_base64(fig),
                     "id": f"overlay-{kind}",
-                    "csv": _b64(overlay_to_csv(curve, [(n, c) for n, c, _ in with_curves])),
+                    "csv": _b64(overlay_to_csv(curve, drawn)),
                     "csv_name": f"every-profile-{kind}.csv",
                 }
             )

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["aligned_lines", "metrics_table", "summary_table", "detail_table"]
+__all__ = ["aligned_lines", "metrics_table", "summary_table", "detail_table", "spread_tables"]
 
 
 def aligned_lines(rows, *, right=(), rule=False) -> list:
@@ -180,9 +180,45 @@ def detail_table(batch) -> list:
                     else "invalid",
                     _fmt(line.margin),
                     t.unit,
-                    "pass"
-                    if line.passed
-                    else ("FAIL" if not line.reason else "FAIL: " + line.reason),
+                    ("pass" if line.passed else "FAIL")
+                    + _parts_text(line)
+                    + ("" if line.passed or not line.reason else ": " + line.reason),
                 )
             )
     return aligned_lines(rows, right=(0, 4, 5))
+
+
+def _parts_text(line) -> str:
+    """`` (19/20 parts met, 19 needed)`` for a target graded over parts, else empty."""
+    if line.parts_total is None:
+        return ""
+    return f" ({line.parts_met}/{line.parts_total} parts met, {line.parts_needed} needed)"
+
+
+def spread_tables(batch) -> list:
+    """For every profile graded over several parts: each metric's spread over its parts.
+
+    One block per such profile: a title line, then one row per metric with the number of
+    parts with a reading, the minimum, the 5th percentile, the median, the 95th percentile
+    and the maximum (:func:`audiodsm.evaluate.parts.metric_spread`).
+
+    Returns
+    -------
+    list of str
+        Empty when no profile ran more than one part.
+    """
+    from audiodsm.evaluate.parts import spread_rows
+
+    lines = []
+    for rank, g in enumerate(batch.grades, 1):
+        if not g.parts:
+            continue
+        seeds = ", ".join(str(p.seed) for p in g.parts[:3])
+        more = ", ..." if len(g.parts) > 3 else ""
+        lines.append("")
+        lines.append(
+            f"{rank}. {g.name}: spread over {len(g.parts)} parts (part seeds {seeds}{more})"
+        )
+        rows = spread_rows(g.spread)
+        lines.extend(aligned_lines(rows, right=range(2, len(rows[0])), rule=True))
+    return lines

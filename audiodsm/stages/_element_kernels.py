@@ -1,6 +1,6 @@
-"""Compiled inner loops of the unit-element and edge-jitter stages, and nothing else.
+"""Compiled inner loops of the unit-element, edge and analog-noise stages, and nothing else.
 
-The stages are stages/elements.py and stages/jitter.py.
+The stages are stages/elements.py, stages/jitter.py and stages/analog_noise.py.
 Same rules as the other kernel modules: ``@njit(cache=True, nogil=True)``, no fastmath,
 contiguous arrays in, caller-allocated outputs and state arrays updated in place, no
 validation (the wrappers validate, convert, allocate and call). Each kernel has a slow
@@ -157,6 +157,30 @@ def select_vector_shaped(codes, half, errors, past, out):
 
 
 @njit(cache=True, nogil=True)
+def relaxation_noise(draws, start, frame_std, poles, gains, holds, relax, out):
+    """White frame means plus a sum of held first-order relaxation processes (the 1/f part).
+
+    ``draws`` is consumed in order, frame by frame: the white draw, then one draw for every
+    process ``i`` whose update falls on the frame (global frame ``start + t`` a multiple of
+    ``holds[i]``): ``x_i <- gains[i] draw + poles[i] x_i``, held until its next update.
+    ``out[t] = frame_std white + sum_i x_i`` (added in process order); ``relax``: the
+    ``x_i``, updated.
+    """
+    p = poles.size
+    e = 0
+    for t in range(out.size):
+        frame = start + t
+        acc = frame_std * draws[e]
+        e += 1
+        for i in range(p):
+            if frame % holds[i] == 0:
+                relax[i] = gains[i] * draws[e] + poles[i] * relax[i]
+                e += 1
+            acc += relax[i]
+        out[t] = acc
+
+
+@njit(cache=True, nogil=True)
 def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out):
     """Exact frame means of a one-segment-per-frame waveform whose edges are displaced.
 
@@ -191,3 +215,203 @@ def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out
         prev = level
     held[0] = prev
     held[1] = pending
+
+
+#: The sine of the sinusoidal jitter is computed exactly at every global edge index that is a
+#: multiple of this, and by rotation between.
+SINE_ANCHOR = 1024
+
+
+@njit(cache=True, nogil=True)
+def add_sine_shifts(shifts, start, peak, ratio):
+    """Add ``peak sin(2 pi ((start + n) ratio mod 1))`` to ``shifts[n]`` (in place).
+
+    The sine is computed exactly at every global index ``start + n`` that is a multiple of
+    :data:`SINE_ANCHOR` and by rotating the phasor by ``2 pi ratio`` per index between: a
+    few rounding steps from the exact value (a relative error near 1e-13 at most), the same
+    numbers whatever the block boundaries, and a fraction of the cost of a sine per edge.
+    """
+    step = 2.0 * np.pi * ratio
+    c_step = np.cos(step)
+    s_step = np.sin(step)
+    base = start - start % SINE_ANCHOR
+    phase = 2.0 * np.pi * ((base * ratio) % 1.0)
+    s = np.sin(phase)
+    c = np.cos(phase)
+    for _ in range(start - base):
+        s, c = s * c_step + c * s_step, c * c_step - s * s_step
+    for n in range(shifts.size):
+        index = start + n
+        if index % SINE_ANCHOR == 0:
+            phase = 2.0 * np.pi * ((index * ratio) % 1.0)
+            s = np.sin(phase)
+            c = np.cos(phase)
+        shifts[n] += peak * s
+        s, c = s * c_step + c * s_step, c * c_step - s * s_step
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _area_before(shift, ramp):
+    """Area of a unit edge's ramp before its nominal instant (slot units).
+
+    The edge starts at ``shift`` and rises linearly to 1 over ``ramp`` (a step when 0); the
+    area of that ramp on ``(-inf, 0]`` is ``0`` (the ramp starts after 0), ``-shift - ramp/2``
+    (it ends before 0) or ``shift^2 / (2 ramp)`` (it straddles 0).
+    """
+    if shift >= 0.0:
+        return 0.0
+    if ramp == 0.0 or shift + ramp <= 0.0:
+        return -shift - 0.5 * ramp
+    return shift * shift / (2.0 * ramp)
+
+
+@njit(cache=True, nogil=True)
+def edge_slot_means(levels, shifts, start, sine_peak, sine_ratio, rise, fall, top, rz, held, out):
+    """Exact slot means of a PDM / NRZ / RZ output whose edges ramp and are displaced.
+
+    A frame is ``S`` slots of equal length (``S = 1``: NRZ, the frame's level; ``S = 2``:
+    return-to-zero, the level then 0). Every slot starts with an edge, displaced by
+    ``shifts[e] + sine_peak sin(2 pi ((start + e) sine_ratio mod 1))`` slots (``e`` the
+    block's edge index, ``start`` the first edge's global index), clipped to ``[-1/2, 1/2]``.
+    An edge is an up part (ramp of ``rise`` slots) and a down part (``fall`` slots): NRZ, the
+    net step (up when positive); RZ, the unit elements' parts, the ``k`` elements at ``+a``
+    and the ``N - k`` at ``-a`` switching apart (``top = N a``: up ``(L + top) / 2`` and down
+    ``(L - top) / 2`` into a level ``L``, the negatives back to 0). A part of step ``s``
+    changes the slot before the edge by ``s P`` and the slot after it by ``s (-shift -
+    ramp / 2 - P)``, ``P`` = :func:`_area_before` (exact integrals of the linear ramp, whose
+    span lies inside those two slots when ``rise, fall < 1/2``). ``out[i]`` (shape (n, S)) is
+    frame ``i - 1``; ``held`` = (last level, the held frame's ``S`` slot means), updated.
+    """
+    n = levels.shape[0]
+    n_slots = out.shape[1]
+    prev = held[0]
+    last = np.empty(n_slots)
+    cur = np.empty(n_slots)
+    for s in range(n_slots):
+        last[s] = held[1 + s]
+    for i in range(n):
+        level = levels[i]
+        for s in range(n_slots):
+            e = i * n_slots + s
+            shift = shifts[e]
+            if sine_peak != 0.0:
+                cycles = ((start + e) * sine_ratio) % 1.0
+                shift += sine_peak * np.sin(2.0 * np.pi * cycles)
+            shift = min(max(shift, -0.5), 0.5)
+            if not rz:
+                step = level - prev
+                up = step if step > 0.0 else 0.0
+                down = step if step < 0.0 else 0.0
+                value = level
+                prev = level
+            elif s == 0:
+                up = 0.5 * (level + top)
+                down = 0.5 * (level - top)
+                value = level
+            else:
+                up = 0.5 * (top - level)
+                down = -0.5 * (level + top)
+                value = 0.0
+            b_up = _area_before(shift, rise)
+            b_down = _area_before(shift, fall)
+            before = up * b_up + down * b_down
+            after = up * (-shift - 0.5 * rise - b_up) + down * (-shift - 0.5 * fall - b_down)
+            if s == 0:
+                last[n_slots - 1] += before
+                for q in range(n_slots):
+                    out[i, q] = last[q]
+            else:
+                cur[s - 1] += before
+            cur[s] = value + after
+        for q in range(n_slots):
+            last[q] = cur[q]
+    held[0] = prev
+    for s in range(n_slots):
+        held[1 + s] = last[s]
+
+
+@njit(cache=True, nogil=True)
+def jittered_segments(
+    levels,
+    ticks,
+    shifts,
+    start,
+    ticks_per_frame,
+    sine_peak,
+    sine_ratio,
+    held_levels,
+    held_ticks,
+    held,
+    out_levels,
+    out_ticks,
+):
+    """Exact tick means of a PWM waveform whose every edge is displaced (in ticks).
+
+    An edge is a level change between two consecutive segments of nonzero length (edges of
+    both legs at one tick share the clock edge, so they move together). It sits on a tick
+    ``t`` of frame ``i`` and moves by ``shifts[e]`` (consumed in order) plus ``sine_peak
+    sin(2 pi (((start + i) sine_ratio + t sine_ratio / ticks_per_frame) mod 1))`` ticks,
+    clipped to ``[-1/2, 1/2]``; ``start`` is the block's first global frame. The area moved,
+    ``-step * shift`` (tick units), lies inside the tick after the edge (late) or the tick
+    before it (early). Every input segment ``j`` of ``k`` ticks becomes three output pieces
+    ``3 j .. 3 j + 2``: its first tick, the ``k - 2`` ticks between, its last tick (``k = 1``:
+    the first piece alone), and the moved area goes into the piece of that one tick, so the
+    mean of every tick is exact and the moved area sits within a tick of its edge (a wider
+    spread would misplace the nearly cancelling areas of a pulse's two edges). An early edge
+    at a frame's start changes the previous frame, so the output runs one frame behind:
+    ``out_*[i]`` (shape (n, 3 S)) is frame ``i - 1``. ``held_levels``, ``held_ticks``: (3 S,)
+    the held frame's pieces, updated; ``held`` = (last level, piece index of the held frame's
+    last nonzero tick), updated.
+    """
+    n = levels.shape[0]
+    n_seg = levels.shape[1]
+    n_out = 3 * n_seg
+    prev = held[0]
+    last_p = int(held[1])
+    in_cur = False
+    cur = np.empty(n_out)
+    cur_ticks = np.empty(n_out, np.int64)
+    e = 0
+    step_ratio = sine_ratio / ticks_per_frame
+    for i in range(n):
+        t = 0
+        for j in range(n_seg):
+            k = ticks[i, j]
+            level = levels[i, j]
+            cur[3 * j] = level
+            cur[3 * j + 1] = level
+            cur[3 * j + 2] = level
+            cur_ticks[3 * j] = 1 if k > 0 else 0
+            cur_ticks[3 * j + 1] = k - 2 if k > 2 else 0
+            cur_ticks[3 * j + 2] = 1 if k > 1 else 0
+        for j in range(n_seg):
+            k = ticks[i, j]
+            if k == 0:
+                continue
+            level = levels[i, j]
+            if level != prev:
+                shift = shifts[e]
+                e += 1
+                if sine_peak != 0.0:
+                    cycles = ((start + i) * sine_ratio + t * step_ratio) % 1.0
+                    shift += sine_peak * np.sin(2.0 * np.pi * cycles)
+                shift = min(max(shift, -0.5), 0.5)
+                moved = -(level - prev) * shift
+                if shift > 0.0:
+                    cur[3 * j] += moved
+                elif in_cur:
+                    cur[last_p] += moved
+                else:
+                    held_levels[last_p] += moved
+                prev = level
+            last_p = 3 * j + 2 if k > 1 else 3 * j
+            in_cur = True
+            t += k
+        for q in range(n_out):
+            out_levels[i, q] = held_levels[q]
+            out_ticks[i, q] = held_ticks[q]
+            held_levels[q] = cur[q]
+            held_ticks[q] = cur_ticks[q]
+        in_cur = False
+    held[0] = prev
+    held[1] = last_p

@@ -180,6 +180,9 @@ def pwm_dead_time_means(
     y,
     power,
     counts,
+    ripple=0.0,
+    ripple_ratio=0.0,
+    first_frame=0,
 ):
     """PWM with load-current-dependent dead time, run through the filter frame by frame.
 
@@ -194,6 +197,10 @@ def pwm_dead_time_means(
     command. The frame is cut at every command change and dead-interval end; each segment's
     level is ``volts (2 A - 1)`` (half bridge) or ``volts (A - B)``, and it updates the frame
     mean, the frame's mean square and the state as in :func:`frame_power_segments`.
+    The tables carry a leading switch-configuration axis (``phis``: (C, F + 1, m, m), ...):
+    with ``C == 1`` every segment uses the one filter; otherwise the segment's configuration
+    (the conducting switches, whose on-resistance is part of the filter) is ``A`` for a half
+    bridge and ``2 A + B`` for a full bridge, ``A``, ``B`` the legs' actual levels.
 
     ``command``, ``dead_left``, ``dead_level``, ``leg_level``: (n_legs,) int64 state, updated
     (command level at the end of the last frame, dead ticks still to run at the frame start,
@@ -201,6 +208,10 @@ def pwm_dead_time_means(
     ``x``: (m,) updated; ``y``, ``power``: (n,) frame means and mean squares written;
     ``counts``: (3,) int64 incremented
     with [pulses lost to dead time, transitions of leg A, transitions of leg B].
+    ``ripple`` > 0: the supply is ``V (1 + ripple sin(2 pi f_r t))`` with ``ripple_ratio =
+    f_r / frame rate`` (ripple cycles per frame) and ``first_frame`` the index of the first
+    frame since the start; each segment's level is its exact mean over the segment, as in
+    :func:`audiodsm.stages.supply.apply_supply_ripple`.
     """
     n = codes_a.shape[0]
     m = x.shape[0]
@@ -298,19 +309,28 @@ def pwm_dead_time_means(
                 u = volts * (2.0 * u_high_a - 1.0)
             else:
                 u = volts * (float(u_high_a) - float(u_high_b))
-            acc += wu[kk] * u
+            if ripple > 0.0:
+                base = ((first_frame + i) * 1.0 * ripple_ratio) % 1.0
+                p0 = 2.0 * np.pi * (base + (t / frame) * ripple_ratio)
+                p1 = 2.0 * np.pi * (base + (t_next / frame) * ripple_ratio)
+                width = 2.0 * np.pi * (kk / frame) * ripple_ratio
+                u = u * (1.0 + ripple * ((np.cos(p0) - np.cos(p1)) / width))
+            cf = 0
+            if phis.shape[0] > 1:
+                cf = u_high_a if half_bridge else 2 * u_high_a + u_high_b
+            acc += wu[cf, kk] * u
             for q in range(m):
-                acc += wx[kk, q] * x[q]
+                acc += wx[cf, kk, q] * x[q]
             for r in range(m + 1):
                 zr = x[r] if r < m else u
-                row = qs[kk, r, m] * u
+                row = qs[cf, kk, r, m] * u
                 for q in range(m):
-                    row += qs[kk, r, q] * x[q]
+                    row += qs[cf, kk, r, q] * x[q]
                 sq += zr * row
             for r in range(m):
-                v = gammas[kk, r] * u
+                v = gammas[cf, kk, r] * u
                 for q in range(m):
-                    v += phis[kk, r, q] * x[q]
+                    v += phis[cf, kk, r, q] * x[q]
                 tmp[r] = v
             for r in range(m):
                 x[r] = tmp[r]
@@ -505,3 +525,80 @@ def frame_means_modal_real_pair(
     xr[0] = x0
     xp[0, 0] = re
     xp[0, 1] = im
+
+
+# ---------------------------------------------------------------------------------------------
+# Filters whose matrices follow the conducting switches (stages/power_stage.py)
+# ---------------------------------------------------------------------------------------------
+
+
+@njit(cache=True, nogil=True)
+def frame_power_switched(levels, ticks, configs, phis, gammas, wx, wu, qs, x, y, power):
+    """:func:`frame_power_segments` with one set of tables per switch configuration.
+
+    A segment of ``k`` ticks in configuration ``c = configs[i, j]`` uses ``phis[c, k]``,
+    ``gammas[c, k]``, ``wx[c, k]``, ``wu[c, k]`` and ``qs[c, k]`` (the filter with that
+    configuration's source resistance). ``configs``: (n, s) int64; tables (C, F + 1, ...);
+    ``x``: (m,) updated; ``y``, ``power``: (n,) written.
+    """
+    n = levels.shape[0]
+    s = levels.shape[1]
+    m = x.shape[0]
+    tmp = np.empty(m)
+    for i in range(n):
+        acc = 0.0
+        sq = 0.0
+        for j in range(s):
+            k = ticks[i, j]
+            if k == 0:
+                continue
+            c = configs[i, j]
+            u = levels[i, j]
+            acc += wu[c, k] * u
+            for q in range(m):
+                acc += wx[c, k, q] * x[q]
+            for r in range(m + 1):
+                zr = x[r] if r < m else u
+                row = qs[c, k, r, m] * u
+                for q in range(m):
+                    row += qs[c, k, r, q] * x[q]
+                sq += zr * row
+            for r in range(m):
+                v = gammas[c, k, r] * u
+                for q in range(m):
+                    v += phis[c, k, r, q] * x[q]
+                tmp[r] = v
+            for r in range(m):
+                x[r] = tmp[r]
+        y[i] = acc
+        power[i] = sq
+
+
+@njit(cache=True, nogil=True)
+def segment_starts_switched(levels, ticks, configs, phis, gammas, x, starts):
+    """The filter state at the start of every segment (switched tables as above).
+
+    ``starts``: (n, s, m) written with the state before each segment (zero-length segments
+    included: the state there equals the next one's); ``x``: (m,) updated to the state after
+    the last segment.
+    """
+    n = levels.shape[0]
+    s = levels.shape[1]
+    m = x.shape[0]
+    tmp = np.empty(m)
+    for i in range(n):
+        for j in range(s):
+            for r in range(m):
+                starts[i, j, r] = x[r]
+            k = ticks[i, j]
+            if k == 0:
+                continue
+            c = configs[i, j]
+            u = levels[i, j]
+            for r in range(m):
+                v = gammas[c, k, r] * u
+                for q in range(m):
+                    v += phis[c, k, r, q] * x[q]
+                tmp[r] = v
+            for r in range(m):
+                x[r] = tmp[r]

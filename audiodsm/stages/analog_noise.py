@@ -23,19 +23,23 @@ from dataclasses import dataclass
 import numpy as np
 
 from audiodsm.errors import ParameterError
+from audiodsm.stages import _element_kernels as _k
 
 __all__ = ["AnalogNoise", "NoiseState"]
 
 #: Spacing of the relaxation corners of the 1/f part (two per decade).
 _CORNER_RATIO = math.sqrt(10.0)
+#: Most frames a slow relaxation process is held between its updates.
+_MAX_HOLD = 1024
 
 
 @dataclass(frozen=True)
 class NoiseState:
-    """Between blocks: the relaxation processes' values and the generator's state."""
+    """Between blocks: the relaxation processes' values, the generator's state, frames done."""
 
     relax: tuple
     generator: dict
+    frames: int = 0
 
 
 class AnalogNoise:
@@ -70,10 +74,16 @@ class AnalogNoise:
         corners = np.array(corners)
         weight = 2.0 * math.log(_CORNER_RATIO) / math.pi * self.density_v**2 * self.corner_hz
         level = weight / corners if corners.size else corners  # S0 of each Lorentzian
-        self._poles = np.exp(-2.0 * np.pi * corners / self.frame_rate_hz)
         # a first-order process of one-sided density S0 / (1 + (f/fk)^2) has variance
         # S0 pi fk / 2; an AR(1) with pole a and input gain b has b^2 / (1 - a^2)
         variance = level * np.pi * corners / 2.0
+        # a slow process is updated every `hold` frames (its AR(1) over that step) and held
+        # between: its corner stays below 1/64 of its update rate, so the hold changes its
+        # spectrum by less than 0.05 dB up to 10 corners, where faster processes take over
+        # (tests/test_analog_noise.py checks the sum analytically). It saves most draws.
+        hold = np.floor(np.log2(self.frame_rate_hz / (64.0 * corners))) if corners.size else []
+        self._holds = np.clip(2 ** np.maximum(hold, 0), 1, _MAX_HOLD).astype(np.int64)
+        self._poles = np.exp(-2.0 * np.pi * corners * self._holds / self.frame_rate_hz)
         self._gains = np.sqrt(variance * (1.0 - self._poles**2))
 
     def initial_state(self) -> NoiseState:
@@ -90,11 +100,17 @@ class AnalogNoise:
         gen.bit_generator.state = st.generator
         # one row of draws per frame (white part, then each process): any split into blocks
         # draws the same numbers in the same order
-        draws = gen.standard_normal((count, 1 + self._poles.size))
-        noise = self.frame_std * draws[:, 0]
-        relax = list(st.relax)
-        for i, (a, b) in enumerate(zip(self._poles, self._gains, strict=True)):
-            part, _ = lfilter([b], [1.0, -a], draws[:, i + 1], zi=[a * relax[i]])
-            noise += part
-            relax[i] = float(part[-1]) if count else relax[i]
-        return noise, NoiseState(relax=tuple(relax), generator=gen.bit_generator.state)
+        # the draws in frame order (white, then the processes updated on that frame): any
+        # split into blocks draws the same numbers in the same order
+        first, end = st.frames, st.frames + count
+        updates = int(np.sum(-(-end // self._holds) - (-(-first // self._holds))))
+        draws = gen.standard_normal(count + updates)
+        noise = np.empty(count)
+        relax = np.array(st.relax, dtype=np.float64)
+        _k.relaxation_noise(
+            draws, first, self.frame_std, self._poles, self._gains, self._holds, relax, noise
+        )
+        state = NoiseState(
+            relax=tuple(float(v) for v in relax), generator=gen.bit_generator.state, frames=end
+        )
+        return noise, state

@@ -54,6 +54,7 @@ from audiodsm.stages.chain_build import (
     _scaled_loop,
     _settings_of,
     _stf_filter,
+    _switched_filter_fn,
     _zero_band_edge,
     auto_input_scale,
 )
@@ -236,8 +237,9 @@ class Chain:
                 plain = profile
             self._waveform = _output_waveform_fn(plain, float(self.modulator_rate_hz))
             # the calibration reads the ideal stage: the impairments' errors stay in the output
+            ideal = ImpairmentSettings(return_to_zero=plain.impairments.return_to_zero)
             self._ideal_stage = _output_waveform_fn(
-                replace(plain, impairments=ImpairmentSettings()), float(self.modulator_rate_hz)
+                replace(plain, impairments=ideal), float(self.modulator_rate_hz)
             )
         with _settings_of(profile, "listening"):
             listen = profile.listening
@@ -268,6 +270,10 @@ class Chain:
         self._supply_ripple = None
         if imp.supply_ripple > 0.0:
             self._supply_ripple = {"ripple": imp.supply_ripple, "ripple_hz": imp.supply_ripple_hz}
+        self._switched = None  # on-resistance that follows the switch state (no dead time)
+        if self._pwm_dead_time is None:
+            with _settings_of(profile, "impairments"):
+                self._switched = _switched_filter_fn(profile, float(self.modulator_rate_hz))
         if self._jitter is not None:  # an early edge changes the frame before it
             self.latency_s += 1.0 / self.modulator_rate_hz
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
@@ -462,6 +468,8 @@ class Chain:
         prev = st.last_level
         if self.profile.output.kind == "pwm":
             switches = None  # the PWM stage counts its own edges
+        elif self.profile.impairments.return_to_zero:  # out of 0 and back in every frame
+            switches = 2 * int(np.count_nonzero(y))
         elif y.size:
             first = prev is not None and y[0] != prev
             switches = int(np.count_nonzero(y[1:] != y[:-1])) + int(first)
@@ -470,16 +478,20 @@ class Chain:
             switches = 0
         t3 = clock()
         supply_s = st.supply_frames
-        if self._supply_ripple is not None:  # open loop: levels times the rippling supply
+        if self._supply_ripple is not None and wf is not None:  # open loop: levels x supply
             from audiodsm.stages.supply import apply_supply_ripple
 
             wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)
             supply_s = (supply_s or 0) + y.size
         jit_s = st.jitter
         if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
-            means, jit_s = self._jitter.process(wf.levels[:, 0], jit_s)
-            wf = PulseWaveform._trusted(means.reshape(-1, 1), wf.ticks, 1, wf.frame_rate_hz)
-        if wf is not None:
+            wf, jit_s = self._jitter.process_waveform(wf, jit_s)
+        if wf is not None and self._switched is not None:  # source resistance per segment
+            analog, squares, filt_s = self._switched(wf, y, st.analog)
+            fir_s = st.fir
+            if ripple is not None:
+                ripple.append(float(np.sum(np.maximum(squares - analog * analog, 0.0))))
+        elif wf is not None:
             analog, fir_s, filt_s = self._reconstruct(wf, st.fir, st.analog, ripple)
         noise_s = st.noise
         if self._noise is not None:  # output-referred: added after the filter

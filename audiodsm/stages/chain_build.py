@@ -134,7 +134,25 @@ def _scaled_loop(ntf, mod_kwargs, osr, mode, bound):
 
 
 def _output_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
-    """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``."""
+    """A function ``(y, state) -> (PulseWaveform, (dropped, stretched), state)``.
+
+    With ``impairments.return_to_zero`` every frame of the PDM / NRZ stage returns to 0 for
+    its second half.
+    """
+    stage = _stage_waveform_fn(profile, frame_rate_hz)
+    if not profile.impairments.return_to_zero:
+        return stage
+    from audiodsm.stages.output_stage import return_to_zero_waveform
+
+    def return_to_zero(y, state):
+        wf, counts, state = stage(y, state)
+        return return_to_zero_waveform(wf), counts, state
+
+    return return_to_zero
+
+
+def _stage_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
+    """The output stage's function, one segment a frame for PDM and NRZ."""
     from audiodsm.stages import output_stage as out_mod
 
     out = profile.output
@@ -206,19 +224,30 @@ def _unit_element_fn(profile: ChainProfile, frame_rate_hz: float, lsb_volts: flo
 
 
 def _edge_jitter_and_noise(profile: ChainProfile, frame_rate_hz: float):
-    """The [impairments] section's edge jitter (PDM, NRZ) and analog noise stages, or None."""
+    """The [impairments] section's edge stage (jitter, unequal edges) and analog noise, or None."""
     from audiodsm.stages.analog_noise import AnalogNoise
     from audiodsm.stages.jitter import EdgeJitter
 
-    imp = profile.impairments
+    imp, out = profile.impairments, profile.output
     jitter = noise = None
-    if imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0:
+    edges = imp.rise_time_s > 0.0 or imp.fall_time_s > 0.0
+    if imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0 or edges:
+        if out.kind == "pwm":
+            steps = out.counter_steps or profile.modulator.levels - 1
+            ticks = steps * out.tick_subdivision * (2 if out.pwm_carrier == "double-edge" else 1)
+        else:
+            ticks = 1
         jitter = EdgeJitter(
             frame_rate_hz,
             rms_s=imp.jitter_rms_s,
             sine_peak_s=imp.jitter_sine_peak_s,
             sine_hz=imp.jitter_sine_hz,
             seed=imp.part_seed,
+            rise_s=imp.rise_time_s,
+            fall_s=imp.fall_time_s,
+            return_to_zero=imp.return_to_zero,
+            top_level=out.full_scale_volts,
+            ticks_per_frame=ticks,
         )
     if imp.noise_density_nv > 0.0:
         noise = AnalogNoise(
@@ -243,6 +272,9 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
 
     out = profile.output
 
+    imp = profile.impairments
+    switched = _power_stage_filter(profile) if imp.on_resistance else None
+
     def pwm_dead_time(y, state):
         means, squares, stats, state = filter_pwm_with_dead_time(
             filt,
@@ -259,6 +291,9 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
             min_pulse_action=out.short_pulse_action,
             supply_volts=out.full_scale_volts,
             state=state,
+            switched=switched,
+            supply_ripple=imp.supply_ripple,
+            supply_ripple_hz=imp.supply_ripple_hz,
         )
         return means, squares, (stats.dropped_pulses, stats.stretched_pulses), state
 
@@ -274,6 +309,9 @@ def _analog_filter(profile: ChainProfile):
             rec.family, order=rec.filter_order, cutoff_hz=rec.cutoff_hz, ripple_db=rec.ripple_db
         )
     if rec.kind == "lc":
+        imp = profile.impairments
+        if imp.loudspeaker or imp.on_resistance:  # the mean switch resistance, the real load
+            return _power_stage_filter(profile).average
         return rec_mod.lc_filter(
             rec.inductance_h,
             rec.capacitance_f,
@@ -282,6 +320,77 @@ def _analog_filter(profile: ChainProfile):
             bridged=rec.bridged,
         )
     return None
+
+
+def _power_stage_filter(profile: ChainProfile):
+    """The LC filter, its load and the switches' on-resistance (a SwitchedLcFilter).
+
+    For a profile with ``reconstruction.kind = "lc"``: the load is the loudspeaker of the
+    [impairments] section or ``reconstruction.load_ohm``; the switches have the section's
+    on-resistance (0 when not given).
+    """
+    from audiodsm.stages.filter_design import LoudspeakerLoad
+    from audiodsm.stages.power_stage import switched_lc_filter
+
+    rec, imp = profile.reconstruction, profile.impairments
+    load = rec.load_ohm
+    if imp.loudspeaker:
+        load = LoudspeakerLoad(
+            imp.speaker_coil_ohm,
+            imp.speaker_coil_inductance_h,
+            imp.speaker_resonance_hz,
+            imp.speaker_mechanical_q,
+            imp.speaker_electrical_q,
+        )
+    return switched_lc_filter(
+        rec.inductance_h,
+        rec.capacitance_f,
+        load,
+        series_ohm=rec.series_ohm,
+        bridged=rec.bridged,
+        high_side_ohm=imp.high_side_on_ohm,
+        low_side_ohm=imp.low_side_on_ohm,
+        half_bridge=profile.output.kind == "pwm" and profile.output.pwm_bridge == "half",
+    )
+
+
+def _switched_filter_fn(profile: ChainProfile, frame_rate_hz: float):
+    """The PWM waveform through the filter of the switches conducting in each segment, or None.
+
+    None when every switch state gives the same loop resistance (equal high- and low-side
+    on-resistance in a half bridge, or a two-level full bridge, whose legs always differ):
+    the filter with the mean resistance is then exact. Otherwise a function ``(wf, y,
+    state) -> (means, mean_squares, state)`` for waveforms made without dead time.
+    """
+    from audiodsm.stages import output_stage as out_mod
+    from audiodsm.stages.power_stage import filter_switched_waveform, segment_switch_states
+
+    if profile.output.kind != "pwm" or not profile.impairments.on_resistance:
+        return None
+    switched = _power_stage_filter(profile)
+    if len(set(switched.loop_ohm)) == 1:
+        return None
+    out = profile.output
+
+    def run(wf, y, state):
+        plan = out_mod._pwm_plan(
+            y,
+            frame_rate_hz,
+            profile.modulator.levels,
+            out.counter_steps or None,
+            out.pwm_mode,
+            out.pwm_carrier,
+            out.pwm_bridge,
+            out.tick_subdivision,
+            0,
+            out.min_pulse_ticks,
+            out.short_pulse_action,
+            out.full_scale_volts,
+        )
+        configs = segment_switch_states(wf, plan)
+        return filter_switched_waveform(switched, wf, configs, state)
+
+    return run
 
 
 def _mean_level(wf) -> np.ndarray:

@@ -22,6 +22,8 @@ __all__ = [
     "AnalogFilter",
     "analog_prototype",
     "lc_filter",
+    "LoudspeakerLoad",
+    "lc_filter_with_load",
     "SemiDigitalFir",
     "semi_digital_fir",
     "PROTOTYPE_KINDS",
@@ -299,6 +301,182 @@ def lc_filter(
     return AnalogFilter(
         np.array(a), np.array(b), np.array([0.0, 1.0]), 0.0, description=text, current_index=0
     )
+
+
+# ---------------------------------------------------------------------------------------------
+# A loudspeaker as the load of the LC filter
+# ---------------------------------------------------------------------------------------------
+
+
+def _positive(name, value) -> float:
+    v = float(value) if isinstance(value, int | float | np.number) else math.nan
+    if isinstance(value, bool) or not (math.isfinite(v) and v > 0.0):
+        raise ParameterError(name, value, "a finite number > 0")
+    return v
+
+
+@dataclass(frozen=True)
+class LoudspeakerLoad:
+    """A moving-coil loudspeaker as an electrical load (its usual Thiele-Small equivalent).
+
+    The voice coil's resistance ``Re`` and inductance ``Le`` in series with a parallel
+    ``Res``, ``Lces``, ``Cmes`` circuit: the cone's mass, suspension compliance and mechanical
+    losses seen from the coil's terminals. The parallel parts follow from the resonance
+    ``fs`` and the mechanical and electrical quality factors (``ws = 2 pi fs``):
+
+        Cmes = Qes / (ws Re),   Lces = 1 / (ws^2 Cmes),   Res = Re Qms / Qes
+
+    so at ``fs`` the parallel circuit is the pure resistance ``Res`` and the load impedance is
+    ``Re + Res + j ws Le``.
+
+    Parameters
+    ----------
+    coil_ohm : float
+        Voice-coil resistance ``Re`` (ohm).
+    coil_inductance_h : float
+        Voice-coil inductance ``Le`` (H).
+    resonance_hz : float
+        Free-air resonance ``fs`` (Hz).
+    mechanical_q, electrical_q : float
+        ``Qms`` and ``Qes``.
+
+    References
+    ----------
+    .. [1] R. H. Small, "Direct-Radiator Loudspeaker System Analysis", J. Audio Eng. Soc.
+       20(5), 1972 (the electrical equivalent circuit and the relations of Res, Lces, Cmes to
+       fs, Qms, Qes; from memory).
+    .. [2] L. L. Beranek, "Acoustics", McGraw-Hill 1954, ch. 7 (the mobility analogy).
+    """
+
+    coil_ohm: float
+    coil_inductance_h: float
+    resonance_hz: float
+    mechanical_q: float
+    electrical_q: float
+
+    def __post_init__(self):
+        for name in (
+            "coil_ohm",
+            "coil_inductance_h",
+            "resonance_hz",
+            "mechanical_q",
+            "electrical_q",
+        ):
+            object.__setattr__(self, name, _positive(name, getattr(self, name)))
+
+    @property
+    def parallel_capacitance_f(self) -> float:
+        """``Cmes = Qes / (2 pi fs Re)`` (F): the moving mass."""
+        return self.electrical_q / (2.0 * math.pi * self.resonance_hz * self.coil_ohm)
+
+    @property
+    def parallel_inductance_h(self) -> float:
+        """``Lces = 1 / ((2 pi fs)^2 Cmes)`` (H): the suspension's compliance."""
+        ws = 2.0 * math.pi * self.resonance_hz
+        return 1.0 / (ws * ws * self.parallel_capacitance_f)
+
+    @property
+    def parallel_ohm(self) -> float:
+        """``Res = Re Qms / Qes`` (ohm): the mechanical losses."""
+        return self.coil_ohm * self.mechanical_q / self.electrical_q
+
+    def impedance(self, freq_hz) -> np.ndarray:
+        """Complex impedance at ``freq_hz``.
+
+        ``Re + j w Le + 1 / (1 / Res + 1 / (j w Lces) + j w Cmes)`` (``Re`` alone at 0 Hz).
+        """
+        f = np.asarray(freq_hz, dtype=np.float64)
+        jw = 2j * np.pi * f
+        with np.errstate(divide="ignore", invalid="ignore"):
+            admittance = (
+                1.0 / self.parallel_ohm
+                + 1.0 / (jw * self.parallel_inductance_h)
+                + jw * self.parallel_capacitance_f
+            )
+            motion = np.where(f == 0.0, 0.0, 1.0 / admittance)
+        return self.coil_ohm + jw * self.coil_inductance_h + motion
+
+
+def lc_filter_with_load(
+    inductance_h: float,
+    capacitance_f: float,
+    load,
+    *,
+    series_ohm: float = 0.0,
+    bridged: bool = False,
+) -> tuple[AnalogFilter, np.ndarray]:
+    """The LC low-pass of :func:`lc_filter` into a resistor or a loudspeaker, and its load current.
+
+    With a resistor (``load`` a number) the filter is :func:`lc_filter`'s. With a
+    :class:`LoudspeakerLoad` three states follow the filter's two (inductor current ``i``,
+    load voltage ``y``): the coil current ``ie``, the voltage ``vm`` across the parallel
+    circuit and the current ``ic`` in ``Lces``:
+
+        Le die/dt = y - Re ie - vm
+        Cmes dvm/dt = ie - vm / Res - ic
+        Lces dic/dt = vm
+
+    and the capacitor node loses ``ie`` instead of ``y / R`` (single-ended ``C dy/dt = i -
+    ie``; bridged, each half's capacitor sees the load between the halves, ``C dy/dt = 2 i - 2
+    ie``, as in :func:`lc_filter`).
+
+    Parameters
+    ----------
+    inductance_h, capacitance_f : float
+        As in :func:`lc_filter`.
+    load : float or LoudspeakerLoad
+        A resistance (ohm) or a loudspeaker.
+    series_ohm : float
+        Series resistance in each inductor's path (the inductor's own, plus the conducting
+        switches' share when the caller adds it).
+    bridged : bool
+        As in :func:`lc_filter`.
+
+    Returns
+    -------
+    filt : AnalogFilter
+        Input the bridge's output voltage, output the load voltage; ``current_index`` 0.
+    load_current_row : ndarray, shape (m,)
+        The load current (A) is ``load_current_row @ x`` for the filter's own state ``x``.
+
+    References
+    ----------
+    .. [1] R. H. Small, J. Audio Eng. Soc. 20(5), 1972 (the loudspeaker's electrical
+       equivalent; from memory).
+    """
+    if not isinstance(load, LoudspeakerLoad):
+        filt = lc_filter(inductance_h, capacitance_f, load, series_ohm=series_ohm, bridged=bridged)
+        return filt, np.array([0.0, 1.0 / float(load)])
+    ind = _positive("inductance_h", inductance_h)
+    cap = _positive("capacitance_f", capacitance_f)
+    rs = float(series_ohm) if isinstance(series_ohm, int | float | np.number) else math.nan
+    if not (math.isfinite(rs) and rs >= 0):
+        raise ParameterError("series_ohm", series_ohm, "a finite number >= 0")
+    sp = load
+    le, re_ = sp.coil_inductance_h, sp.coil_ohm
+    cm, lc_, res = sp.parallel_capacitance_f, sp.parallel_inductance_h, sp.parallel_ohm
+    a = np.zeros((5, 5))
+    b = np.zeros(5)
+    if bridged:
+        a[0, 0], a[0, 1], b[0] = -rs / ind, -0.5 / ind, 0.5 / ind
+        a[1, 0], a[1, 2] = 2.0 / cap, -2.0 / cap
+        text = f"bridged LC, L={ind:g} H, C={cap:g} F"
+    else:
+        a[0, 0], a[0, 1], b[0] = -rs / ind, -1.0 / ind, 1.0 / ind
+        a[1, 0], a[1, 2] = 1.0 / cap, -1.0 / cap
+        text = f"LC, L={ind:g} H, C={cap:g} F"
+    a[2, 1], a[2, 2], a[2, 3] = 1.0 / le, -re_ / le, -1.0 / le
+    a[3, 2], a[3, 3], a[3, 4] = 1.0 / cm, -1.0 / (res * cm), -1.0 / cm
+    a[4, 3] = 1.0 / lc_
+    text += (
+        f", loudspeaker Re={re_:g} ohm, Le={le:g} H, fs={sp.resonance_hz:g} Hz, "
+        f"Qms={sp.mechanical_q:g}, Qes={sp.electrical_q:g}"
+    )
+    if rs:
+        text += f", Rs={rs:g} ohm"
+    c = np.array([0.0, 1.0, 0.0, 0.0, 0.0])
+    filt = AnalogFilter(a, b, c, 0.0, description=text, current_index=0)
+    return filt, np.array([0.0, 0.0, 1.0, 0.0, 0.0])
 
 
 # ---------------------------------------------------------------------------------------------

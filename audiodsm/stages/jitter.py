@@ -1,4 +1,4 @@
-"""Clock jitter on every edge of a PDM or NRZ output, integrated exactly over each frame.
+"""Edge errors of an output, integrated exactly: clock jitter, unequal edges, return to zero.
 
 Every output edge happens at its nominal time ``n T`` displaced by ``delta_n = sigma g_n + J
 sin(2 pi f_j n T)`` (``g_n`` independent standard normal draws: white random jitter; the sine:
@@ -14,6 +14,28 @@ An early edge changes the frame before it, so the stage's output runs one frame 
 input (the chain adds the frame to its latency). Displacements are limited to half a frame;
 the chain refuses jitter whose 10-sigma value plus the sine's peak reaches that.
 
+Unequal edges (inter-symbol interference): a rising edge ramps linearly over ``rise_s``, a
+falling one over ``fall_s``; a ramp of length ``r`` and step ``s`` holds back the area ``s
+r / 2`` (only its area matters to the filter, so any edge shape enters through the linear
+ramp of equal area). Equal ramps delay the whole waveform by ``r / 2``: linear, no
+distortion. Unequal ones add ``(fall_s - rise_s) / 2`` times the step's size at every edge,
+which depends on how often the data switch: for a single-bit stream (levels +-1, steps of
+2) over a stretch that starts and ends at one level, the summed error of the frame means is
+``-(rise_s - fall_s) / T`` times the number of rising edges, a nonlinear function of the
+signal [3]_ [4]_. Return-to-zero coding puts every frame's level in its first half and 0 in
+its second, so every frame has the same edges (each of ``N`` unit elements of size ``a``
+goes out of 0 and back): the edge error is the constant ``N a (fall_s - rise_s) / (2 T)``
+in every frame mean, an offset, and the distortion vanishes at the cost of a gain of 1/2
+(calibrated out) and twice the edges.
+
+PWM (:meth:`EdgeJitter.process_waveform` on a waveform of several ticks a frame): every
+level change between two segments is an edge on the tick clock, displaced by the same law
+in ticks; the area it moves stays inside the tick after it (late) or before it (early),
+whose level is set to its exact mean. That tick is split off its segment: a pulse's two
+edges move nearly equal and opposite areas, and spreading them over segments of unequal
+length would misplace them by a good part of a frame, an error of the same order as the
+jitter's own effect. Displacements are limited to half a tick.
+
 References
 ----------
 .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", IEEE/Wiley
@@ -22,6 +44,13 @@ References
    evenly, so ``1 / OSR`` of it lands in band.
 .. [2] J. A. Cherry and W. M. Snelgrove, "Continuous-Time Delta-Sigma Modulators for
    High-Speed A/D Conversion", Kluwer 1999 (from memory).
+.. [3] R. Schreier and G. C. Temes, 2005 (as [1]), the section on inter-symbol interference
+   of continuous-time DACs and return-to-zero feedback (from memory).
+.. [4] R. W. Adams, P. F. Ferguson, A. Ganesan, S. Vincelette, A. Volpe and R. Libert,
+   "Theory and Practical Implementation of a Fifth-Order Sigma-Delta A/D Converter", J.
+   Audio Eng. Soc. 39(7/8), 1991, and the AES preprint of the same year on inter-symbol
+   interference in 1-bit DACs (from memory): the error of unequal edges is proportional to
+   the number of transitions, and return-to-zero coding makes it signal independent.
 """
 
 from __future__ import annotations
@@ -47,7 +76,7 @@ class JitterState:
 
 
 class EdgeJitter:
-    """Random and sinusoidal jitter on the edges of a one-level-per-frame output.
+    """Random and sinusoidal jitter, unequal edges and return-to-zero coding on an output.
 
     Parameters
     ----------
@@ -60,58 +89,116 @@ class EdgeJitter:
     seed : int, keyword-only
         Seeds the random displacements.
     rest_level : float, keyword-only
-        The output before the first frame (the held-back frame at start).
+        The output before the first frame (the held-back frame at start; PDM / NRZ).
+    rise_s, fall_s : float, keyword-only
+        Durations of the linear ramp of a rising and of a falling edge, seconds (PDM, NRZ,
+        RZ); each below half a slot (a frame, or half a frame with return to zero).
+    return_to_zero : bool, keyword-only
+        Every frame's level in its first half, 0 in its second.
+    top_level : float, keyword-only
+        ``N a``: the level of the top code, all unit elements at ``+a`` (RZ's edge parts).
+    ticks_per_frame : int, keyword-only
+        1 for PDM and NRZ; a PWM waveform's ticks a frame for :meth:`process_waveform` on
+        PWM (the displacements then must stay below half a tick, and no ramps).
     """
 
     def __init__(
-        self, frame_rate_hz, *, rms_s=0.0, sine_peak_s=0.0, sine_hz=0.0, seed=0, rest_level=0.0
+        self,
+        frame_rate_hz,
+        *,
+        rms_s=0.0,
+        sine_peak_s=0.0,
+        sine_hz=0.0,
+        seed=0,
+        rest_level=0.0,
+        rise_s=0.0,
+        fall_s=0.0,
+        return_to_zero=False,
+        top_level=1.0,
+        ticks_per_frame=1,
     ):
         self.frame_rate_hz = float(frame_rate_hz)
         if not (math.isfinite(self.frame_rate_hz) and self.frame_rate_hz > 0):
             raise ParameterError("frame_rate_hz", frame_rate_hz, "a rate above 0 Hz")
-        period = 1.0 / self.frame_rate_hz
-        for name, value in (("rms_s", rms_s), ("sine_peak_s", sine_peak_s), ("sine_hz", sine_hz)):
+        checked = (
+            ("rms_s", rms_s),
+            ("sine_peak_s", sine_peak_s),
+            ("sine_hz", sine_hz),
+            ("rise_s", rise_s),
+            ("fall_s", fall_s),
+        )
+        for name, value in checked:
             if not (math.isfinite(value) and value >= 0.0):
                 raise ParameterError(name, value, "a number of at least 0")
-        if 10.0 * rms_s + sine_peak_s >= 0.5 * period:
+        self.ticks_per_frame = int(ticks_per_frame)
+        self.return_to_zero = bool(return_to_zero)
+        if self.ticks_per_frame < 1:
+            raise ParameterError("ticks_per_frame", ticks_per_frame, "an integer of at least 1")
+        pwm = self.ticks_per_frame > 1
+        if pwm and (rise_s > 0.0 or fall_s > 0.0 or self.return_to_zero):
+            raise ParameterError(
+                "rise_s/fall_s/return_to_zero", "set on a PWM waveform", "PDM or NRZ only"
+            )
+        self.slots = 2 if self.return_to_zero else 1
+        self._slot_rate = self.frame_rate_hz * (self.ticks_per_frame if pwm else self.slots)
+        slot = 1.0 / self._slot_rate
+        where = "a PWM tick" if pwm else "the output period"
+        if not pwm and self.slots == 2:
+            where = "the output period's return-to-zero half"
+        if 10.0 * rms_s + sine_peak_s >= 0.5 * slot:
             raise ParameterError(
                 "jitter",
                 f"10 x {rms_s!r} s rms + {sine_peak_s!r} s peak",
-                f"below half the output period, {0.5 * period:.4g} s",
+                f"below half {where}, {0.5 * slot:.4g} s",
             )
+        for name, value in (("rise_s", rise_s), ("fall_s", fall_s)):
+            if value >= 0.5 * slot:
+                raise ParameterError(name, value, f"below half {where}, {0.5 * slot:.4g} s")
         self.rms_s, self.sine_peak_s, self.sine_hz = (
             float(rms_s),
             float(sine_peak_s),
             float(sine_hz),
         )
+        self.rise_s, self.fall_s = float(rise_s), float(fall_s)
         self.seed = int(seed)
         self.rest_level = float(rest_level)
+        self.top_level = float(top_level)
+
+    @property
+    def _plain(self) -> bool:
+        """Jitter alone on NRZ / PDM: the original kernel (one slot a frame, no ramps)."""
+        return self.slots == 1 and self.rise_s == 0.0 and self.fall_s == 0.0
 
     def initial_state(self) -> JitterState:
         """Before the first edge: the rest level held, the generator freshly seeded."""
         gen = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, 0x717])))
-        held = (self.rest_level, self.rest_level)
+        if self.ticks_per_frame > 1:  # PWM: a rest frame, one segment of the whole frame
+            held = (0.0, 0)
+        elif self.slots == 2:
+            held = (0.0, 0.0, 0.0)
+        else:
+            held = (self.rest_level, self.rest_level)
         return JitterState(frames=0, held=held, generator=gen.bit_generator.state)
 
     def shifts(self, start: int, count: int, generator) -> np.ndarray:
-        """Displacements of edges ``start .. start+count-1`` in frames (clipped to ±1/2).
+        """Displacements of edges ``start .. start+count-1`` in slots (clipped to ±1/2).
 
-        What :meth:`process` applies (it adds the sine inside its compiled loop).
+        What :meth:`process` applies to PDM / NRZ (it adds the sine in its compiled loop).
         """
         shift = self._random_shifts(count, generator)
         if self.sine_peak_s > 0.0:
             n = np.arange(start, start + count, dtype=np.float64)
-            cycles = np.mod(n * (self.sine_hz / self.frame_rate_hz), 1.0)
-            shift += (self.sine_peak_s * self.frame_rate_hz) * np.sin(2.0 * np.pi * cycles)
+            cycles = np.mod(n * (self.sine_hz / self._slot_rate), 1.0)
+            shift += (self.sine_peak_s * self._slot_rate) * np.sin(2.0 * np.pi * cycles)
         return np.clip(shift, -0.5, 0.5)
 
     def _random_shifts(self, count, generator):
         if self.rms_s > 0.0:
-            return (self.rms_s * self.frame_rate_hz) * generator.standard_normal(count)
+            return (self.rms_s * self._slot_rate) * generator.standard_normal(count)
         return np.zeros(count)
 
     def process(self, levels, state=None):
-        """Frame means of the jittered output, one frame behind.
+        """Frame means (or RZ half-frame means) of the impaired output, one frame behind.
 
         Parameters
         ----------
@@ -121,27 +208,129 @@ class EdgeJitter:
 
         Returns
         -------
-        means : ndarray, shape (n,)
+        means : ndarray, shape (n,), or (n, 2) with return to zero
             ``means[i]`` is the exact mean of frame ``i - 1`` (the first: of the frame held
-            back from the previous block, or the rest level).
+            back from the previous block, or the rest level); with return to zero the means
+            of its two halves.
         state : JitterState
         """
+        if self.ticks_per_frame > 1:
+            raise ParameterError(
+                "levels", "one level a frame", "a PWM waveform (use process_waveform)"
+            )
         st = state if state is not None else self.initial_state()
         levels = np.ascontiguousarray(levels, dtype=np.float64)
         gen = np.random.Generator(np.random.PCG64())
         gen.bit_generator.state = st.generator
-        shift = self._random_shifts(levels.size, gen)
+        shift = self._random_shifts(levels.size * self.slots, gen)
         held = np.array(st.held, dtype=np.float64)
-        out = np.empty(levels.size)
-        peak = self.sine_peak_s * self.frame_rate_hz
-        ratio = self.sine_hz / self.frame_rate_hz
-        _k.jittered_frame_means(levels, shift, st.frames, peak, ratio, held, out)
+        peak = self.sine_peak_s * self._slot_rate
+        ratio = self.sine_hz / self._slot_rate
+        if peak != 0.0:  # the sine by anchored rotation, added to the random part
+            _k.add_sine_shifts(shift, st.frames * self.slots, peak, ratio)
+        if self._plain:
+            out = np.empty(levels.size)
+            _k.jittered_frame_means(levels, shift, st.frames, 0.0, ratio, held, out)
+        else:
+            out = np.empty((levels.size, self.slots))
+            _k.edge_slot_means(
+                levels,
+                shift,
+                st.frames * self.slots,
+                0.0,
+                ratio,
+                self.rise_s * self._slot_rate,
+                self.fall_s * self._slot_rate,
+                self.top_level,
+                self.slots == 2,
+                held,
+                out,
+            )
+            if self.slots == 1:
+                out = out[:, 0]
         new = JitterState(
             frames=st.frames + levels.size,
-            held=(float(held[0]), float(held[1])),
+            held=tuple(float(v) for v in held),
             generator=gen.bit_generator.state,
         )
         return out, new
+
+    def process_waveform(self, waveform, state=None):
+        """The impaired output as a waveform, one frame behind (what the chain runs).
+
+        Parameters
+        ----------
+        waveform : PulseWaveform
+            PDM or NRZ (one segment a frame, or the two of return to zero: its levels are
+            read from the first) or, with ``ticks_per_frame > 1``, PWM.
+        state : JitterState, optional
+
+        Returns
+        -------
+        waveform : PulseWaveform
+            Same frame count; one segment a frame (NRZ, PDM), two (RZ), or, for PWM, three
+            pieces per input segment (its first tick, the ticks between, its last tick)
+            with the exact mean of every tick.
+        state : JitterState
+        """
+        from audiodsm.stages.output_stage import PulseWaveform
+
+        rate = waveform.frame_rate_hz
+        if self.ticks_per_frame == 1:
+            means, st = self.process(waveform.levels[:, 0], state)
+            means = means.reshape(waveform.n_frames, self.slots)
+            ticks = np.ones((waveform.n_frames, self.slots), dtype=np.int64)
+            return PulseWaveform._trusted(means, ticks, self.slots, rate), st
+        if waveform.ticks_per_frame != self.ticks_per_frame:
+            raise ParameterError(
+                "waveform.ticks_per_frame", waveform.ticks_per_frame, str(self.ticks_per_frame)
+            )
+        st = state if state is not None else self.initial_state()
+        levels = np.ascontiguousarray(waveform.levels, dtype=np.float64)
+        ticks = np.ascontiguousarray(waveform.ticks, dtype=np.int64)
+        n, n_seg = levels.shape
+        prev, last_j = st.held[0], st.held[1]
+        if len(st.held) > 2:
+            held_levels = np.array(st.held[2], dtype=np.float64)
+            held_ticks = np.array(st.held[3], dtype=np.int64)
+        else:  # the rest frame: the whole frame at 0, as first tick, middle, last tick
+            held_levels = np.zeros(3 * n_seg)
+            held_ticks = np.zeros(3 * n_seg, dtype=np.int64)
+            held_ticks[:3] = (1, self.ticks_per_frame - 2, 1)
+            last_j = 2
+        on = levels[ticks > 0]  # row-major: the segments in time order
+        edges = int(np.count_nonzero(np.diff(on, prepend=prev) != 0.0)) if on.size else 0
+        gen = np.random.Generator(np.random.PCG64())
+        gen.bit_generator.state = st.generator
+        shift = self._random_shifts(edges, gen)
+        held = np.array([prev, last_j], dtype=np.float64)
+        out_levels = np.empty((n, 3 * n_seg))
+        out_ticks = np.empty((n, 3 * n_seg), dtype=np.int64)
+        _k.jittered_segments(
+            levels,
+            ticks,
+            shift,
+            st.frames,
+            self.ticks_per_frame,
+            self.sine_peak_s * self._slot_rate,
+            self.sine_hz / self.frame_rate_hz,
+            held_levels,
+            held_ticks,
+            held,
+            out_levels,
+            out_ticks,
+        )
+        new = JitterState(
+            frames=st.frames + n,
+            held=(
+                float(held[0]),
+                int(held[1]),
+                tuple(float(v) for v in held_levels),
+                tuple(int(v) for v in held_ticks),
+            ),
+            generator=gen.bit_generator.state,
+        )
+        return PulseWaveform._trusted(out_levels, out_ticks, self.ticks_per_frame, rate), new
 
 
 def jitter_in_band_power(y, *, rms_s: float, frame_rate_hz: float, osr: float) -> float:

@@ -470,6 +470,30 @@ class Modulator:
         states = traces[0] if np.ndim(x) == 1 else np.stack(traces, axis=1)
         return y, states
 
+    def trace_quantizer_input(self, x, state: ModulatorState | None = None):
+        """Run like :meth:`run` and also return the quantizer's input on every sample.
+
+        The input is the linearized loop's (:meth:`LoopRealization.linearized`): the
+        quantizer-input weights on the states before the sample plus the direct input path,
+        without dither, in the units in which the loop realizes its NTF at unit quantizer gain
+        (a scaled quantizer-facing state is scaled back). An undithered quantizer's output is
+        the quantized input, so a sign quantizer's output has the sign of it.
+
+        Returns
+        -------
+        y : ndarray
+            As from :meth:`run`.
+        quantizer_input : ndarray, same shape as ``y``
+        """
+        if state is None:
+            state = self.initial_state(1 if np.ndim(x) == 1 else np.shape(x)[1])
+        y, states = self.trace_states(x, state)
+        start = state.integrators[0] if np.ndim(x) == 1 else state.integrators
+        before = np.concatenate([np.asarray(start)[None], states[:-1]], axis=0)
+        lin = self.loop.linearized()
+        u = np.asarray(x, dtype=float)
+        return y, before @ lin.quantizer_tap + lin.input_direct * u
+
     def probe_stability(
         self,
         *,

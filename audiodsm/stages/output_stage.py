@@ -32,6 +32,7 @@ __all__ = [
     "PulseWaveform",
     "pdm_waveform",
     "nrz_waveform",
+    "return_to_zero_waveform",
     "pwm_waveform",
     "PwmStats",
     "PwmState",
@@ -289,6 +290,38 @@ def nrz_waveform(
     lsb = 2.0 / (n - 1) if lsb_volts is None else _check_volts(lsb_volts, "lsb_volts")
     out = (codes - (n - 1) / 2.0) * lsb
     return PulseWaveform._trusted(out.reshape(-1, 1), _ONE_TICK[: arr.size], 1, rate)
+
+
+def return_to_zero_waveform(waveform: PulseWaveform) -> PulseWaveform:
+    """Return-to-zero coding of a PDM or NRZ waveform: each level for half a frame, then 0.
+
+    Every frame gets the same edges whatever the data (out of 0 and back), so unequal rising
+    and falling edges make a constant error instead of a signal-dependent one (see
+    :mod:`audiodsm.stages.jitter`); the frame mean, and so the gain, is halved.
+
+    Parameters
+    ----------
+    waveform : PulseWaveform
+        One segment a frame (``ticks_per_frame = 1``).
+
+    Returns
+    -------
+    PulseWaveform
+        Two segments a frame, ``[level, 0]``, one tick each (``ticks_per_frame = 2``).
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", IEEE/Wiley
+       2005, the section on inter-symbol interference and return-to-zero DACs (from memory).
+    """
+    if not isinstance(waveform, PulseWaveform) or waveform.ticks_per_frame != 1:
+        tpf = getattr(waveform, "ticks_per_frame", None)
+        raise ParameterError("waveform.ticks_per_frame", tpf, "1 (a PDM or NRZ waveform)")
+    n = waveform.n_frames
+    levels = np.zeros((n, 2))
+    levels[:, 0] = waveform.levels[:, 0]
+    ticks = np.ones((n, 2), dtype=np.int64)
+    return PulseWaveform._trusted(levels, ticks, 2, waveform.frame_rate_hz)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -493,6 +493,9 @@ def filter_pwm_with_dead_time(
     min_pulse_action: str = "drop",
     supply_volts: float = 1.0,
     state: DeadTimeState | None = None,
+    switched=None,
+    supply_ripple: float = 0.0,
+    supply_ripple_hz: float = 0.0,
 ) -> tuple[np.ndarray, np.ndarray, PwmStats, DeadTimeState]:
     """PWM with dead time that follows the load current, through the filter: frame means.
 
@@ -519,6 +522,17 @@ def filter_pwm_with_dead_time(
         As in :func:`~audiodsm.stages.output_stage.pwm_waveform`.
     state : DeadTimeState or None
         From the previous block; None starts at rest with every leg low.
+    switched : SwitchedLcFilter or None
+        The switches' on-resistance as part of the filter
+        (:class:`~audiodsm.stages.power_stage.SwitchedLcFilter`): each segment runs through
+        the filter of the switches that conduct in it (during a dead interval: the switch on
+        the rail the diode connects). ``filt`` is then its ``average`` filter. None: ``filt``
+        alone.
+    supply_ripple, supply_ripple_hz : float
+        A sinusoidal ripple on the supply, ``V (1 + m sin(2 pi f_r t))`` (``m`` below 1), as
+        in :func:`~audiodsm.stages.supply.apply_supply_ripple`: every segment's level is its
+        exact mean over the segment; the ripple's time origin is the first frame ever
+        processed (the frames counted in ``state``). 0: a steady supply.
 
     Returns
     -------
@@ -572,7 +586,7 @@ def filter_pwm_with_dead_time(
             plan.frame,
             f"at most {DEAD_TIME_MAX_FRAME_TICKS} when the dead time follows the load current",
         )
-    model = _model(filt)
+    model = _model(filt) if switched is None else switched.model
     m = model.a.shape[0]
     n_legs = plan.n_legs
     if state is None:
@@ -590,12 +604,25 @@ def filter_pwm_with_dead_time(
         totals = state.totals
     command, dead_left, dead_level, leg_level = (np.array(v, dtype=np.int64) for v in per_leg)
     dt = 1.0 / (plan.rate * plan.frame)
-    phis, gammas, wx, wu = _tables(model, dt, plan.frame)
-    qs = _power_tables(model, dt, plan.frame)
-    current_w = np.ascontiguousarray(model.to_physical[filt.current_index])
+    if switched is None:
+        phis, gammas, wx, wu = (t[None] for t in _tables(model, dt, plan.frame))
+        qs = _power_tables(model, dt, plan.frame)[None]
+        current_w = np.ascontiguousarray(model.to_physical[filt.current_index])
+    else:  # one set of tables per switch configuration, in the filter's own coordinates
+        phis, gammas, wx, wu, qs = switched.tables(dt, plan.frame)
+        current_w = np.zeros(m)
+        current_w[filt.current_index] = 1.0
     means = np.empty(plan.n)
     power = np.empty(plan.n)
     counts = np.zeros(3, dtype=np.int64)
+    ripple = float(supply_ripple)
+    if not (math.isfinite(ripple) and 0.0 <= ripple < 1.0):
+        raise ParameterError(
+            "supply_ripple", supply_ripple, "a relative amplitude from 0 to below 1"
+        )
+    ripple_hz = float(supply_ripple_hz)
+    if ripple > 0.0 and not (math.isfinite(ripple_hz) and ripple_hz > 0.0):
+        raise ParameterError("supply_ripple_hz", supply_ripple_hz, "a frequency above 0 Hz")
     _waveform_kernels.pwm_dead_time_means(
         plan.codes_a,
         plan.codes_b,
@@ -621,6 +648,9 @@ def filter_pwm_with_dead_time(
         means,
         power,
         counts,
+        ripple,
+        ripple_hz / plan.rate if ripple > 0.0 else 0.0,
+        int(totals.frames),
     )
     stats, totals = _out._pwm_counts(
         totals, plan.n, plan.rate, plan.dropped, plan.stretched, counts, n_legs
