@@ -93,8 +93,6 @@ class AnalogNoise:
 
     def process(self, count: int, state=None):
         """The next ``count`` frame means of the noise (volts) and the new state."""
-        from scipy.signal import lfilter  # imported by a chain that adds analog noise only
-
         st = state if state is not None else self.initial_state()
         gen = np.random.Generator(np.random.PCG64())
         gen.bit_generator.state = st.generator
