@@ -660,6 +660,57 @@ class FixedPointSettings:
         doc="At most this many non-zero canonic signed digits per coefficient (shift-add "
         "multipliers); 0 = plain rounding.",
     )
+    interpolator: str = _key(
+        "float",
+        "str",
+        _fmt_choices("float", "last", "all"),
+        _choice("float", "last", "all"),
+        doc="Which stages of the interpolation filter run in fixed point: none, the last one "
+        "(the one feeding the loop) or all of them.",
+    )
+    interpolator_integer_bits: int = _key(
+        1,
+        "int",
+        "an integer from 0 to 8",
+        _int_range(0, 8),
+        doc="Bits left of the binary point of the interpolator's words, sign not counted.",
+    )
+    interpolator_fraction_bits: int = _key(
+        23,
+        "int",
+        "an integer from 1 to 44",
+        _int_range(1, 44),
+        doc="Bits right of the binary point of the interpolator's words.",
+    )
+    interpolator_coefficient_fraction_bits: int = _key(
+        20,
+        "int",
+        "an integer from 2 to 40",
+        _int_range(2, 40),
+        doc="Fractional bits of every interpolator tap.",
+    )
+    interpolator_coefficient_digits: int = _key(
+        0,
+        "int",
+        "an integer from 0 (no limit) to 16",
+        _int_range(0, 16),
+        doc="At most this many non-zero canonic signed digits per interpolator tap; 0 = plain "
+        "rounding.",
+    )
+    interpolator_rounding: str = _key(
+        "convergent",
+        "str",
+        _fmt_choices(*_ROUNDING),
+        _choice(*_ROUNDING),
+        doc="How each interpolator output (and its float input) drops its surplus bits.",
+    )
+    interpolator_overflow: str = _key(
+        "saturate",
+        "str",
+        _fmt_choices(*_OVERFLOW),
+        _choice(*_OVERFLOW),
+        doc="What an interpolator word does with a value outside its range.",
+    )
 
     @property
     def active(self) -> bool:

@@ -205,13 +205,6 @@ def _check_fixed_point(profile: ChainProfile, table: dict, path: str) -> None:
             f"got {mod.structure!r} with a [fixed_point] section; expected 'feedback' (the "
             "fixed-point loop is the feedback structure)",
         )
-    if mod.dither_lsb != 0.0:
-        raise ProfileError(
-            path,
-            "modulator.dither_lsb",
-            f"got {mod.dither_lsb!r} with a [fixed_point] section; expected 0 (the "
-            "fixed-point loop has no dither)",
-        )
     m = (mod.levels - 1).bit_length() - 1
     if mod.levels != 2 and (mod.levels - 1 != 1 << m or m > 16):
         raise ProfileError(

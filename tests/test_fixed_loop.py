@@ -48,7 +48,34 @@ def _fit(word: int, node: NodeFormat) -> int:
     return (word - lo) % span + lo
 
 
-def twin_run(fx: FixedPointModulator, words, state=None):
+_MASK64 = 2**64 - 1
+
+
+def _splitmix_output(z: int) -> int:
+    # SplitMix64's output function (Steele, Lea & Flood, OOPSLA 2014), in Python integers
+    z = ((z ^ (z >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
+    z = ((z ^ (z >> 27)) * 0x94D049BB133111EB) & _MASK64
+    return z ^ (z >> 31)
+
+
+def twin_dither(fx: FixedPointModulator, n: int, counter: int):
+    """The float loop's TPDF dither as last-state words, from its definition: per sample two
+    SplitMix64 draws of the counter advanced by the golden-ratio increment, r = top 53 bits /
+    2**53, d = dither_lsb * step / g * (r1 - r2), word = floor(d * 2**F)."""
+    g = float(fx.loop.output_weight[-1]) if fx.levels == 2 else 1.0
+    scale = fx.dither_lsb * (2.0 / (fx.levels - 1)) / g
+    f_last = fx.format.states[-1].fraction_bits
+    out = []
+    for _ in range(n):
+        counter = (counter + 0x9E3779B97F4A7C15) & _MASK64
+        r1 = float(_splitmix_output(counter) >> 11) / 2.0**53
+        counter = (counter + 0x9E3779B97F4A7C15) & _MASK64
+        r2 = float(_splitmix_output(counter) >> 11) / 2.0**53
+        out.append(math.floor(scale * (r1 - r2) * 2.0**f_last))
+    return out
+
+
+def twin_run(fx: FixedPointModulator, words, state=None, dither=None):
     """The fixed-point loop in Python integers and Fractions (values, not shifts)."""
     fmt = fx.format
     n = fmt.order
@@ -59,8 +86,10 @@ def twin_run(fx: FixedPointModulator, words, state=None):
     x = [Fraction(0)] * n if state is None else list(state)
     levels = fx.levels
     out = []
-    for u in words:
+    for t, u in enumerate(words):
         y = x[-1]
+        if dither is not None:
+            y += dither[t] * step[-1]
         if levels == 2:
             q = 1 if y >= 0 else 0
         else:
@@ -120,13 +149,64 @@ def test_kernel_equals_exact_twin(levels):
     assert [int(v / s) for v, s in zip(x_twin, steps, strict=True)] == list(st.words)
 
 
+@pytest.mark.parametrize("levels", [2, 9])
+def test_dithered_kernel_equals_exact_twin(levels):
+    # the float loop's dither sequence, as words of the last state, joins it at the quantizer
+    loop = _loop(4)
+    fmt = _mixed_format(4)
+    fx = FixedPointModulator(loop, fmt, levels, dither_lsb=0.5, seed=7)
+    x = 0.3 * np.sin(2 * np.pi * 0.004 * np.arange(3000))
+    words = fx.input_words(x)
+    q, st = fx.run_words(words)
+    start = fx.initial_state().dither_counter
+    dither = twin_dither(fx, len(words), start)
+    assert dither == list(fx.dither_words(len(words), start)[0])
+    q_twin, x_twin = twin_run(fx, words, dither=dither)
+    np.testing.assert_array_equal(q, q_twin)
+    steps = [Fraction(1, 2**s.fraction_bits) for s in fmt.states]
+    assert [int(v / s) for v, s in zip(x_twin, steps, strict=True)] == list(st.words)
+    undithered, _ = FixedPointModulator(loop, fmt, levels).run_words(words)
+    assert np.any(undithered != q)  # the dither acted
+    # streamed: the counter goes on from block to block
+    q1, s1 = fx.run_words(words[:1111])
+    q2, s2 = fx.run_words(words[1111:], s1)
+    np.testing.assert_array_equal(np.r_[q1, q2], q)
+    assert s2.dither_counter == st.dither_counter
+    y, _ = fx.run(x)
+    np.testing.assert_array_equal(y, fx.levels_from_indices(q))
+
+
+def test_dither_is_triangular_with_the_float_loops_seeding():
+    # TPDF of peak dither_lsb steps: the words over 2**F are triangular on +-peak
+    # (scipy.stats.triang, Kolmogorov-Smirnov); the first channel's seed of the float loop
+    from scipy import stats
+
+    from audiodsm.stages.modulator import Modulator
+
+    loop = _loop(3)
+    fmt = FixedPointFormat.uniform(3, fraction_bits=30)
+    fx = FixedPointModulator(loop, fmt, 2, dither_lsb=1.0, seed=3)
+    st = fx.initial_state()
+    assert st.dither_counter == int(
+        Modulator(loop, dither_lsb=1.0, seed=3).initial_state(1).rng_counter[0]
+    )
+    words, _ = fx.dither_words(20000, st.dither_counter)
+    peak = 1.0 * 2.0 / float(loop.output_weight[-1])  # dither_lsb x step / g, state units
+    values = words / 2.0**30
+    assert np.max(np.abs(values)) <= peak
+    p = stats.kstest(values, stats.triang(c=0.5, loc=-peak, scale=2 * peak).cdf).pvalue
+    assert p > 0.01
+
+
 @pytest.mark.parametrize("levels", [2, 17])
 def test_specialised_kernel_equals_the_generic_loop(levels):
     # run_words uses the loop written out for its format; the generic array-indexed loop
     # (the one the exact twin above reads like) must give the same words and state
     from audiodsm.stages import _fixed_kernels
 
-    fx = FixedPointModulator(_loop(5), _mixed_format(5), levels)
+    # (the 17-level case with dither)
+    dither_lsb = 0.7 if levels == 17 else 0.0
+    fx = FixedPointModulator(_loop(5), _mixed_format(5), levels, dither_lsb=dither_lsb)
     x = 0.8 * np.sin(2 * np.pi * 0.0037 * np.arange(5000))
     words = fx.input_words(x)
     q, st = fx.run_words(words)
@@ -135,7 +215,18 @@ def test_specialised_kernel_equals_the_generic_loop(levels):
     peaks = np.zeros(5, dtype=np.int64)
     counts = np.zeros(5, dtype=np.int64)
     _fixed_kernels.fixed_feedback_loop(
-        words, out, fx._coef, fx._shifts, fx._rules, state, peaks, counts, fx._quantizer
+        words,
+        out,
+        fx._coef,
+        fx._shifts,
+        fx._rules,
+        state,
+        peaks,
+        counts,
+        fx._quantizer,
+        fx.dither_words(len(words), fx.initial_state().dither_counter)[0]
+        if dither_lsb
+        else np.zeros(0, dtype=np.int64),
     )
     np.testing.assert_array_equal(out, q)
     np.testing.assert_array_equal(state, st.words)
@@ -201,8 +292,50 @@ def test_input_words_equal_a_numpy_twin(rule, overflow):
     np.testing.assert_array_equal(quantize_words(x, node), w.astype(np.int64))
 
 
+@pytest.mark.parametrize("rule", ["truncate", "round-half-up", "convergent"])
+@pytest.mark.parametrize("overflow", ["saturate", "wrap"])
+@pytest.mark.parametrize("levels", [2, 9])
+def test_run_on_floats_equals_run_words_on_its_input_words(rule, overflow, levels):
+    # run() fits the input to its word inside the compiled loop; that must be input_words'
+    # fit exactly (ties and out-of-range samples included), across block and call edges, and
+    # with the overflow rules acting (the blocks run again with the rules on)
+    fmt = _mixed_format(4)
+    fmt = FixedPointFormat(
+        input=NodeFormat("input", 0, 7, rule, overflow),
+        states=fmt.states,
+        coefficient_fraction_bits=fmt.coefficient_fraction_bits,
+        coefficient_digits=fmt.coefficient_digits,
+    )
+    fx = FixedPointModulator(_loop(4), fmt, levels)
+    rng = np.random.default_rng(11)
+    x = np.r_[rng.uniform(-1.2, 1.2, 3000), (np.arange(-140, 140) + 0.5) / 128.0]
+    x = np.tile(x, 2)
+    y, st = fx.run(x)
+    q, st_words = fx.run_words(quantize_words(x, fmt.input))
+    np.testing.assert_array_equal(y, fx.levels_from_indices(q))
+    for field in ("words", "peak_words", "overflow_count"):
+        np.testing.assert_array_equal(getattr(st, field), getattr(st_words, field))
+    assert st.overflow_count.sum() > 0
+    buffer = np.full(len(x), np.nan)
+    y1, s1 = fx.run(x[:1500], out=buffer[:1500])
+    y2, s2 = fx.run(x[1500:], s1, out=buffer[1500:])
+    assert y1.base is buffer and y2.base is buffer  # the caller's buffer, written in place
+    np.testing.assert_array_equal(buffer, y)
+    np.testing.assert_array_equal(s2.words, st.words)
+
+
 def test_refusals():
     loop = _loop(3)
+    fx = FixedPointModulator(loop, FixedPointFormat.uniform(3))
+    top = (1 << (fx.format.input.word_bits - 1)) - 1
+    words = np.zeros(5000, dtype=np.int64)
+    words[4500] = top + 1  # past the first block of the compiled loop
+    with pytest.raises(ParameterError, match="outside the input word"):
+        fx.run_words(words)
+    words[4500] = -top - 1
+    fx.run_words(words)  # the most negative word is in range
+    with pytest.raises(ParameterError, match="out"):
+        fx.run(np.zeros(10), out=np.zeros(9))
     with pytest.raises(ParameterError, match="structure"):
         FixedPointModulator(_loop(3, "feedforward"), FixedPointFormat.uniform(3))
     with pytest.raises(ParameterError, match="fmt.states"):
@@ -281,6 +414,33 @@ def test_ample_words_give_the_float_loops_in_band_noise(chain_loop):
         assert st.overflow_count.sum() == 0
         p_fixed += in_band_noise_power(y_fixed, osr=OSR, tone_bin=tone_bin)
         p_float += in_band_noise_power(chain_loop.run(x)[0], osr=OSR, tone_bin=tone_bin)
+    assert abs(10 * np.log10(p_fixed / p_float)) < 0.2
+
+
+def test_ample_words_with_dither_give_the_dithered_float_loop(chain_loop):
+    # the same dither (seed and sequence) in both: the loops take the same decisions until the
+    # chaos parts them (here after about 100 samples, as without dither; with another seed
+    # they part within a few), and their in-band noise agrees within 0.2 dB (two tones, as
+    # above)
+    from audiodsm.stages.modulator import Modulator
+
+    dither_lsb = 0.1
+    fx = FixedPointModulator(
+        chain_loop.loop, _ample(chain_loop.order), 2, dither_lsb=dither_lsb, seed=5
+    )
+    flt = Modulator(chain_loop.loop, levels=2, dither_lsb=dither_lsb, seed=5)
+    other = Modulator(chain_loop.loop, levels=2, dither_lsb=dither_lsb, seed=6)
+    p_fixed = p_float = 0.0
+    for fraction in (0.6, 0.7):
+        tone_bin = int(N / OSR / 2 * fraction) | 1
+        x = 0.25 * np.sin(2 * np.pi * tone_bin / N * np.arange(N))  # well inside the stable range
+        y_fixed, st = fx.run(x)
+        y_float, st_float = flt.run(x)
+        assert st.overload_count == 0 and st_float.overload_count == 0
+        np.testing.assert_array_equal(y_fixed[:50], y_float[:50])
+        assert np.any(other.run(x[:50])[0] != y_float[:50])  # another seed: not so
+        p_fixed += in_band_noise_power(y_fixed, osr=OSR, tone_bin=tone_bin)
+        p_float += in_band_noise_power(y_float, osr=OSR, tone_bin=tone_bin)
     assert abs(10 * np.log10(p_fixed / p_float)) < 0.2
 
 

@@ -24,8 +24,8 @@ from audiodsm.stages.fixed_loop import (
     in_band_noise_power,
 )
 
-# zero_band_edge_hz = 24000: the zeros spread over 0..24 kHz at 48 kHz, the band the planner
-# measures the loop's noise in (0..0.5/osr; the default places them for 0..20 kHz)
+# zero_band_edge_hz = 24000: the zeros spread over 0..24 kHz at 48 kHz, and the planner
+# measures the loop's noise over that band (0..0.5/osr; the default is 0..20 kHz)
 BASE = (
     'name = "t3"\n[upsampler]\nosr = 64\n[modulator]\norder = 3\nstructure = "feedback"\n'
     "zero_band_edge_hz = 24000.0\n"
@@ -62,12 +62,12 @@ def test_plan_keeps_its_noise_budget_in_simulation(planned):
     flt = Modulator(facts.loop, levels=facts.levels)
     fixed_sum = float_sum = 0.0
     for fraction in (0.55, 0.6, 0.7, 0.8):  # of the band edge: harmonics fall out of band
-        tone_bin = int(n / facts.osr / 2 * fraction) | 1
+        tone_bin = int(n / facts.band_ratio / 2 * fraction) | 1
         x = 0.5 * facts.stable_amplitude * np.sin(2 * np.pi * tone_bin / n * np.arange(n))
         y_fixed, st = fx.run(x)
         assert st.overflow_count.sum() == 0
-        fixed_sum += in_band_noise_power(y_fixed, osr=facts.osr, tone_bin=tone_bin)
-        float_sum += in_band_noise_power(flt.run(x)[0], osr=facts.osr, tone_bin=tone_bin)
+        fixed_sum += in_band_noise_power(y_fixed, osr=facts.band_ratio, tone_bin=tone_bin)
+        float_sum += in_band_noise_power(flt.run(x)[0], osr=facts.band_ratio, tone_bin=tone_bin)
     assert abs(10 * np.log10(fixed_sum / float_sum)) < 0.3
     # range: every state holds its float peak with the margin
     for node, peak in zip(plan.format.states, facts.state_peaks, strict=True):
@@ -251,5 +251,79 @@ def test_shipped_fixed_point_section_is_the_planners_own():
 
     path = Path(__file__).resolve().parents[1] / "profiles" / "dac_chip" / "pdm5_fixed_64x.toml"
     shipped = load_profile(path)
-    plan, _, _ = plan_profile(shipped, rounding="convergent")
+    plan, facts, _ = plan_profile(shipped, rounding="convergent")
     assert profile_with_plan(shipped, plan) == shipped
+    # its noise budget is kept in the audio band the battery measures, up to AES17's 20 kHz
+    # (measure/bands.py), not up to half the 48 kHz rate: 3.072 MHz / (2 x 20 kHz) = 76.8
+    from audiodsm.measure.bands import AES17_UPPER_HZ
+
+    assert facts.band_edge_hz == AES17_UPPER_HZ == shipped.modulator.zero_band_edge_hz
+    assert facts.band_ratio == pytest.approx(76.8, rel=1e-12)
+
+
+def test_planner_band_follows_the_profile(planned):
+    # BASE spreads its zeros over 0..24 kHz at 48 kHz: the band is then 0..0.5/osr exactly
+    _, _, facts, _ = planned
+    assert facts.band_edge_hz == 24000.0
+    assert facts.band_ratio == facts.osr
+
+
+def test_handoff_of_a_dithered_loop_carries_its_dither_words(planned, tmp_path):
+    # with modulator.dither_lsb the integer loop adds the float loop's dither sequence at the
+    # quantizer; the folder then holds the dither words of each vector, the README names the
+    # port, and the generated RTL fed with them gives the expected output words bit for bit
+    from dataclasses import replace
+
+    from audiodsm.hardware.rtl import simulate_words
+
+    profile, plan, facts, _ = planned
+    prof = profile_with_plan(profile, plan)
+    prof = replace(prof, modulator=replace(prof.modulator, dither_lsb=0.25, seed=9))
+    target = tmp_path / "dithered"
+    write_handoff(prof, target, vector_samples=1024)
+    fx, _ = check_fixed_point(prof)  # the loop the handoff built (scaled with the dither on)
+    assert fx.dither_lsb == 0.25 and fx.seed == 9
+    in_bits = fx.format.input.word_bits
+    words = _read_hex(target / "vectors/tone_997hz_m60dbfs_in.hex", in_bits)
+    dither = _read_hex(target / "vectors/tone_997hz_m60dbfs_dither.hex", fx.dither_word_bits)
+    q = np.array(
+        [int(v, 16) for v in (target / "vectors/tone_997hz_m60dbfs_out.hex").read_text().split()]
+    )
+    np.testing.assert_array_equal(
+        dither, fx.dither_words(1024, fx.initial_state().dither_counter)[0]
+    )
+    assert np.any(dither != 0)
+    np.testing.assert_array_equal(fx.run_words(words)[0], q)
+    np.testing.assert_array_equal(simulate_words(fx, words, dither), q)
+    assert "`dither_in`" in (target / "README.md").read_text()
+
+
+def test_handoff_with_the_fixed_point_interpolator_carries_its_last_stage(planned, tmp_path):
+    # fixed_point.interpolator = "last": the folder adds the last stage's RTL and its vectors;
+    # simulated on its input vector the RTL gives its output vector, and that output, fitted
+    # to the loop's input word, is the loop's input vector
+    from dataclasses import replace
+
+    from audiodsm.hardware.rtl import simulate_interpolator_words
+
+    profile, plan, facts, _ = planned
+    prof = profile_with_plan(profile, plan)
+    fp = replace(prof.fixed_point, interpolator="last", interpolator_fraction_bits=18)
+    prof = replace(prof, fixed_point=fp)
+    assert profile_with_plan(prof, plan) == prof  # a re-plan keeps the interpolator keys
+    target = tmp_path / "interp"
+    write_handoff(prof, target, vector_samples=4096)
+    assert (target / "rtl/interpolator_last_stage.v").is_file()
+    fx, facts2 = check_fixed_point(prof)
+    fu = facts2.signal_upsampler
+    bits = 1 + 18 + 1
+    w_in = _read_hex(target / "vectors/tone_997hz_m1dbfs_interp_in.hex", bits)
+    w_out = _read_hex(target / "vectors/tone_997hz_m1dbfs_interp_out.hex", bits)
+    assert len(w_out) == 4096 and len(w_in) == 4096 // fu.fixed_stage_ratios[-1]
+    np.testing.assert_array_equal(simulate_interpolator_words(fu, w_in), w_out)
+    loop_in = _read_hex(target / "vectors/tone_997hz_m1dbfs_in.hex", fx.format.input.word_bits)
+    from audiodsm.stages.fixed_loop import quantize_words
+
+    np.testing.assert_array_equal(loop_in, quantize_words(w_out / 2.0**18, fx.format.input))
+    assert np.abs(w_out).max() > 2**14  # the tone is through the filters by the end
+    assert "interpolator_last_stage" in (target / "README.md").read_text()

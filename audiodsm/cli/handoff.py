@@ -99,10 +99,14 @@ def plan(
             profile=prof.name,
             stable_amplitude=facts.stable_amplitude,
             quantized_stable_amplitude=stable,
+            band_edge_hz=facts.band_edge_hz,
         )
         click.echo(json.dumps(data))
     else:
-        click.echo(f"{prof.name}: order {facts.loop.order}, {facts.levels} levels, OSR {facts.osr}")
+        click.echo(
+            f"{prof.name}: order {facts.loop.order}, {facts.levels} levels, OSR {facts.osr}; "
+            f"in-band noise over 0..{facts.band_edge_hz:g} Hz"
+        )
         click.echo(result.table())
         click.echo(
             f"stable amplitude {facts.stable_amplitude:.3f} (float), {stable:.3f} with the "

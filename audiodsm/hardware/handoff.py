@@ -101,6 +101,14 @@ class FloatLoopFacts:
         80 dB lower.
     upsampler_design : object
         The chain's upsampler design (for the test vectors).
+    signal_upsampler : object
+        The upsampler of the chain's signal path: the float one, or the fixed-point one the
+        profile's ``fixed_point.interpolator`` asks for (the test vectors go through it).
+    band_edge_hz : float
+        Upper edge of the audio band every in-band noise figure of the plan is taken over
+        (from DC): the profile's ``modulator.zero_band_edge_hz`` (20 kHz unless set; the band
+        the NTF zeros are spread over and the battery's 20 kHz upper limit), capped at half the
+        audio rate.
     """
 
     loop: object
@@ -112,9 +120,20 @@ class FloatLoopFacts:
     state_peaks: np.ndarray
     loop_noise_power: float
     upsampler_design: object
+    signal_upsampler: object
+    band_edge_hz: float
+
+    @property
+    def band_ratio(self) -> float:
+        """Modulator rate over twice the band edge: the band is 0..0.5/band_ratio per sample.
+
+        It stands where the in-band functions take ``osr``; it equals the OSR when the band
+        reaches half the audio rate.
+        """
+        return self.rate_hz * self.osr / (2.0 * self.band_edge_hz)
 
 
-def _noise_tone(osr: int, samples: int, amplitude: float):
+def _noise_tone(osr: float, samples: int, amplitude: float):
     """A coherent tone at 0.6 of the band edge (harmonics out of band) and its bin."""
     tone_bin = int(samples / osr / 2 * 0.6) | 1
     t = np.arange(samples)
@@ -158,11 +177,13 @@ def float_loop_facts(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ) 
     # the loop's own noise where it is lowest of a loud and a quiet tone (a single-bit loop's
     # in-band noise falls by several dB at small inputs); exact silence is left out, where a
     # float loop settles into a limit cycle that any rounding breaks up
+    band_edge_hz = min(float(mod.zero_band_edge_hz), 0.5 * rate_hz)
+    band_ratio = rate_hz * osr / (2.0 * band_edge_hz)
     noise = np.inf
     for level in (0.5, 1e-4):
-        x, tone_bin = _noise_tone(osr, _NOISE_RUN_SAMPLES, level * amplitude)
+        x, tone_bin = _noise_tone(band_ratio, _NOISE_RUN_SAMPLES, level * amplitude)
         y, _ = modulator.run(x)
-        noise = min(noise, in_band_noise_power(y, osr=osr, tone_bin=tone_bin))
+        noise = min(noise, in_band_noise_power(y, osr=band_ratio, tone_bin=tone_bin))
     return FloatLoopFacts(
         loop=modulator.loop,
         levels=int(mod.levels),
@@ -173,6 +194,8 @@ def float_loop_facts(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ) 
         state_peaks=peaks,
         loop_noise_power=float(noise),
         upsampler_design=chain.upsampler_design,
+        signal_upsampler=chain.signal_upsampler,
+        band_edge_hz=band_edge_hz,
     )
 
 
@@ -231,7 +254,7 @@ def plan_profile(
     facts = float_loop_facts(profile, rate_hz=rate_hz)
     plan = plan_word_lengths(
         facts.loop,
-        osr=facts.osr,
+        osr=facts.band_ratio,
         state_peaks=facts.state_peaks,
         loop_noise_power=facts.loop_noise_power,
         budget_db=budget_db,
@@ -267,8 +290,19 @@ def settings_from_plan(plan) -> FixedPointSettings:
 
 
 def profile_with_plan(profile: ChainProfile, plan) -> ChainProfile:
-    """``profile`` with its ``[fixed_point]`` section replaced by the plan's."""
-    return dataclasses.replace(profile, fixed_point=settings_from_plan(plan))
+    """``profile`` with the loop keys of its ``[fixed_point]`` section replaced by the plan's.
+
+    The ``interpolator*`` keys (the plan does not size the interpolator) are kept as they are.
+    """
+    planned = settings_from_plan(plan)
+    loop_keys = {
+        f.name: getattr(planned, f.name)
+        for f in dataclasses.fields(planned)
+        if not f.name.startswith("interpolator")
+    }
+    return dataclasses.replace(
+        profile, fixed_point=dataclasses.replace(profile.fixed_point, **loop_keys)
+    )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -316,19 +350,25 @@ def check_fixed_point(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ)
                 f"maximum stable amplitude); got {node.integer_bits}",
             )
     try:
-        fx = FixedPointModulator(facts.loop, fmt, facts.levels)
+        fx = FixedPointModulator(
+            facts.loop,
+            fmt,
+            facts.levels,
+            dither_lsb=profile.modulator.dither_lsb,
+            seed=profile.modulator.seed,
+        )
     except ParameterError as exc:
         raise _profile_error(profile, "fixed_point.state_fraction_bits", str(exc)) from None
     report = coefficient_report(
         facts.loop,
-        osr=facts.osr,
+        osr=facts.band_ratio,
         fraction_bits=fmt.coefficient_fraction_bits,
         digits=fmt.coefficient_digits,
     )
     if not report.poles_inside or _quantized_stability(facts, fmt) <= 0:
         try:
             works = smallest_coefficient_bits(
-                facts.loop, osr=facts.osr, digits=fmt.coefficient_digits
+                facts.loop, osr=facts.band_ratio, digits=fmt.coefficient_digits
             ).fraction_bits
             hint = f"at least {works} bits keep the loop as designed"
         except ParameterError:
@@ -339,7 +379,7 @@ def check_fixed_point(profile: ChainProfile, *, rate_hz: int = _DEFAULT_RATE_HZ)
             f"got {fmt.coefficient_fraction_bits} (digits {fmt.coefficient_digits}): the "
             f"quantized coefficients do not give a stable loop; {hint}",
         )
-    x, _ = _noise_tone(facts.osr, _NOISE_RUN_SAMPLES, facts.stable_amplitude)
+    x, _ = _noise_tone(facts.band_ratio, _NOISE_RUN_SAMPLES, facts.stable_amplitude)
     _, st = fx.run(x)
     if st.overflow_count.any():
         j = int(np.argmax(st.overflow_count > 0))
@@ -388,23 +428,73 @@ def _stimuli(rate_hz: int, audio_samples: int):
 def stimulus_vectors(fx: FixedPointModulator, facts: FloatLoopFacts, *, samples: int):
     """Input words and output level indices of the fixed-point loop on the battery's stimuli.
 
-    Each stimulus is scaled by the chain's input scale, upsampled by the chain's upsampler,
-    fitted to the input word and run through the loop from rest.
+    Each stimulus is scaled by the chain's input scale, upsampled by the chain's upsampler
+    (the fixed-point one when the profile asks for it), fitted to the input word and run
+    through the loop from rest.
 
     Returns
     -------
     list of (name, input_words, output_indices)
     """
-    from audiodsm.stages.upsample import Upsampler
-
     audio = -(-samples // facts.osr)
     out = []
     for name, x in _stimuli(facts.rate_hz, audio):
-        xu, _ = Upsampler(facts.upsampler_design).process(x * facts.input_scale)
+        xu, _ = facts.signal_upsampler.process(x * facts.input_scale)
         words = fx.input_words(np.asarray(xu, dtype=float)[:samples])
         q, _ = fx.run_words(words)
         out.append((name, words, q))
     return out
+
+
+def _interpolator_files(facts: FloatLoopFacts, samples: int) -> list:
+    """(relative path, text) of the fixed-point interpolator's last stage: RTL and vectors.
+
+    Empty unless the profile runs the interpolator in fixed point. The vectors are that
+    stage's input words (one per R clocks) and output words (one per clock) on the battery's
+    stimuli, from rest; ``samples`` output words each.
+    """
+    from audiodsm.hardware.rtl import INTERPOLATOR_MODULE_NAME, interpolator_verilog_text
+    from audiodsm.stages.fixed_upsample import FixedPointUpsampler
+
+    fu = facts.signal_upsampler
+    if not isinstance(fu, FixedPointUpsampler):
+        return []
+    fmt = fu.format
+    bits = fmt.integer_bits + fmt.fraction_bits + 1
+    ratio = fu.fixed_stage_ratios[-1]
+    out = [(f"rtl/{INTERPOLATOR_MODULE_NAME}.v", interpolator_verilog_text(fu))]
+    audio = -(-samples // facts.osr)
+    for name, x in _stimuli(facts.rate_hz, audio):
+        words_in, words_out = fu.trace_words(x * facts.input_scale)[-2:]
+        out.append((f"vectors/{name}_interp_in.hex", hex_lines(words_in[: samples // ratio], bits)))
+        out.append((f"vectors/{name}_interp_out.hex", hex_lines(words_out[:samples], bits)))
+    return out
+
+
+def _interpolator_readme(fu) -> str:
+    from audiodsm.hardware.rtl import INTERPOLATOR_MODULE_NAME
+
+    fmt = fu.format
+    bits = fmt.integer_bits + fmt.fraction_bits + 1
+    ratio = fu.fixed_stage_ratios[-1]
+    return "\n".join(
+        [
+            "",
+            "## The interpolator's last stage",
+            "",
+            f"`rtl/{INTERPOLATOR_MODULE_NAME}.v`: the last stage of the fixed-point "
+            f"interpolator (ratio {ratio}, taps with {fmt.coefficient_fraction_bits} fractional "
+            f"bits as shift-adds, rounding {fmt.rounding}, overflow {fmt.overflow}). Ports: "
+            f"`sample_in` ({bits}-bit signed word, binary point {fmt.fraction_bits}) with `load` "
+            f"high for one clock every {ratio} clocks, `sample_out` (same format), one word per "
+            "clock: phase 0 in the clock cycle after the edge that takes the load, phases "
+            f"1..{ratio - 1} in the cycles after that.",
+            f"`vectors/<stimulus>_interp_in.hex` and `_interp_out.hex`: its input words (one per "
+            f"{ratio} clocks) and output words (one per clock) on the same stimuli, from reset. "
+            "Its output is the loop's input before the loop's input word is fitted.",
+            "",
+        ]
+    )
 
 
 def hex_lines(words, bits: int) -> str:
@@ -546,6 +636,11 @@ def _readme(profile, fx, facts, vectors, summary_noise, files) -> str:
             f"| `vectors/{name}_out.hex` | expected level index q ({_output_bits(fx)} bits), "
             "one per line |"
         )
+        if fx.dither_lsb > 0:
+            lines.append(
+                f"| `vectors/{name}_dither.hex` | dither words ({fx.dither_word_bits} bits, "
+                f"binary point {fmt.states[-1].fraction_bits}), one per line, for `dither_in` |"
+            )
     lines += [
         "",
         f"Each vector file has {len(vectors[0][1])} words. Load with "
@@ -557,12 +652,22 @@ def _readme(profile, fx, facts, vectors, summary_noise, files) -> str:
         "",
         f"- `sample_in` ({fmt.input.word_bits}-bit signed input word), `level_out` "
         f"({_output_bits(fx)}-bit level index), `clk`, `rst` (synchronous, active high).",
+        *(
+            [
+                f"- `dither_in` ({fx.dither_word_bits}-bit signed dither word, binary point "
+                f"{fmt.states[-1].fraction_bits}): added to the last state at the quantizer "
+                "only. The words are the model's TPDF dither (SplitMix64 on a counter seeded "
+                f"from seed {fx.seed}); each vector starts the sequence afresh.",
+            ]
+            if fx.dither_lsb > 0
+            else []
+        ),
         "",
         "## Check",
         "",
         f"In-band noise of the fixed-point loop {summary_noise[0]:.1f} dBFS against "
-        f"{summary_noise[1]:.1f} dBFS for the float loop (a tone at 0.6 of the band edge at "
-        "half the maximum stable amplitude).",
+        f"{summary_noise[1]:.1f} dBFS for the float loop over 0..{facts.band_edge_hz:g} Hz (a "
+        "tone at 0.6 of that band edge at half the maximum stable amplitude).",
         "",
     ]
     return "\n".join(lines)
@@ -631,16 +736,16 @@ def write_handoff(
         raise ParameterError("vector_samples", vector_samples, "an integer >= 1024")
     fx, facts = check_fixed_point(profile, rate_hz=rate_hz)
     vectors = stimulus_vectors(fx, facts, samples=int(vector_samples))
-    x, tone_bin = _noise_tone(facts.osr, _NOISE_RUN_SAMPLES, 0.5 * facts.stable_amplitude)
+    x, tone_bin = _noise_tone(facts.band_ratio, _NOISE_RUN_SAMPLES, 0.5 * facts.stable_amplitude)
     y, _ = fx.run(x)
-    fixed_noise = in_band_noise_power(y, osr=facts.osr, tone_bin=tone_bin)
+    fixed_noise = in_band_noise_power(y, osr=facts.band_ratio, tone_bin=tone_bin)
     noise_db = (
         10 * np.log10(fixed_noise / 0.5),
         10 * np.log10(facts.loop_noise_power / 0.5),
     )
     report = coefficient_report(
         facts.loop,
-        osr=facts.osr,
+        osr=facts.band_ratio,
         fraction_bits=fx.format.coefficient_fraction_bits,
         digits=fx.format.coefficient_digits,
     )
@@ -663,6 +768,7 @@ def write_handoff(
             "rate_hz": facts.rate_hz,
             "osr": facts.osr,
             "clock_hz": facts.rate_hz * facts.osr,
+            "band_edge_hz": facts.band_edge_hz,
             "input_scale": facts.input_scale,
             "stable_amplitude": facts.stable_amplitude,
             "state_peaks": [float(p) for p in facts.state_peaks],
@@ -684,8 +790,19 @@ def write_handoff(
                 tmp, f"vectors/{name}_in.hex", hex_lines(words, fx.format.input.word_bits), files
             )
             _write_text(tmp, f"vectors/{name}_out.hex", hex_lines(q, _output_bits(fx)), files)
+            if fx.dither_lsb > 0:
+                dither, _ = fx.dither_words(len(words), fx.initial_state().dither_counter)
+                _write_text(
+                    tmp, f"vectors/{name}_dither.hex", hex_lines(dither, fx.dither_word_bits), files
+                )
         _write_text(tmp, f"rtl/{MODULE_NAME}.v", verilog_text(fx), files)
-        _write_text(tmp, "README.md", _readme(profile, fx, facts, vectors, noise_db, files), files)
+        interpolator = _interpolator_files(facts, int(vector_samples))
+        for rel, text in interpolator:
+            _write_text(tmp, rel, text, files)
+        readme = _readme(profile, fx, facts, vectors, noise_db, files)
+        if interpolator:
+            readme += _interpolator_readme(facts.signal_upsampler)
+        _write_text(tmp, "README.md", readme, files)
         if target.exists():
             old = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".old", dir=parent))
             os.replace(target, old / "previous")

@@ -25,7 +25,10 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 from numba import njit
+
+from audiodsm.stages._kernels import _GOLDEN, _unit_from_counter
 
 # rounding codes: 0 truncate, 1 round half up, 2 convergent; overflow codes: 0 saturate, 1 wrap
 
@@ -48,7 +51,7 @@ def _round_shift(acc, r, rule):
 
 
 @njit(cache=True, nogil=True)
-def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quantizer):
+def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quantizer, dither):
     """Run the fixed-point feedback loop over the input words ``u``.
 
     Parameters
@@ -72,6 +75,9 @@ def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quant
     quantizer : int64 (3,)
         ``m`` (levels = 2**m + 1, or 0 for two levels), fractional bits of the last state,
         fractional bits of the quantizer output word ``V``.
+    dither : int64 (n,) or (0,)
+        Dither words added to the last state at the quantizer (its fractional bits), or
+        none.
     """
     order = state.shape[0]
     last = order - 1
@@ -79,8 +85,11 @@ def fixed_feedback_loop(u, out, coef, shifts, rules, state, peaks, counts, quant
     f_last = quantizer[1]
     top = (1 << m) if m > 0 else 1
     x = state.copy()
+    dithered = dither.shape[0] > 0
     for t in range(u.shape[0]):
         y = x[last]
+        if dithered:
+            y += dither[t]
         if m == 0:
             q = 1 if y >= 0 else 0
             v = 2 * q - 1
@@ -135,10 +144,7 @@ def float_to_words(x, out, scale, rule, word_bits, wrap):
         elif rule == 1:
             r = math.floor(s + 0.5)
         else:
-            r = math.floor(s)
-            rest = s - r
-            if rest > 0.5 or (rest == 0.5 and r % 2.0 != 0.0):
-                r += 1.0
+            r = np.rint(s)  # to nearest, ties to even: IEEE 754 roundToIntegralTiesToEven
         if not wrap:
             if r > fhi:
                 r = fhi
@@ -151,121 +157,254 @@ def float_to_words(x, out, scale, rule, word_bits, wrap):
 
 
 # The specialised loops: the same arithmetic as fixed_feedback_loop, written out for one loop
-# format. Every state lives in a local variable, and the format (shifts, rounding and overflow
-# rules, word bounds, quantizer) is written into the source as constants, so the compiler drops
-# the shifts by zero, the rules a node does not use and the resonator terms a loop does not
-# have (an array-indexed loop with run-time rules runs several times slower). One kernel per
-# format is written from the template below on first use and compiled with numba's on-disk
-# cache (keyed to this file; the name carries a digest of the format). The generic loop above
-# is what the tests check them against.
+# (its coefficients, shifts, rounding and overflow rules, word bounds and quantizer). Every
+# state lives in a local variable and every coefficient is a constant in the source, so the
+# compiler turns the products by powers of two into shifts, drops the zero terms, and for a
+# two-level quantizer replaces the feedback product by a choice between two constants (with
+# the rounding offset folded in). The overflow rules leave the per-sample work: a block of
+# FIXED_BLOCK samples first runs without them, keeping each state's largest and smallest word;
+# when those fit their words the rules would not have acted on any sample and the block stands,
+# else it is run again from its saved start with the rules on every sample (the output is the
+# same either way, bit for bit). One kernel per loop is written from the template below on
+# first use and compiled with numba's on-disk cache (keyed to this file; the name carries a
+# digest of the loop). A second variant takes the float input and writes the float output,
+# fitting each input sample to its word inside the loop (``float_to_words``'s arithmetic) and
+# writing ``q * step - 1``, so ``FixedPointModulator.run`` needs no word arrays. The generic
+# loop above is what the tests check both against.
+
+#: samples per block of a specialised loop: a block run again with the overflow rules costs
+#: little, and the per-block checks do not show
+FIXED_BLOCK = 1024
 
 
-def fixed_loop_kernel_name(key):
-    """Name of the specialised kernel for a format key (see fixed_loop_kernel)."""
+def fixed_loop_kernel_name(key, float_io=False):
+    """Name of the specialised kernel for a loop key (see fixed_loop_kernel)."""
     import hashlib
 
-    digest = hashlib.sha256(repr(key).encode()).hexdigest()[:16]
-    return f"fixed_feedback_order{key[0]}_{digest}"
+    digest = hashlib.sha256(repr((key, bool(float_io))).encode()).hexdigest()[:16]
+    return f"fixed_feedback_order{key[0]}_{'float_' if float_io else ''}{digest}"
 
 
-def _shifted(expr, shift):
-    return f"({expr})" if shift == 0 else f"(({expr}) << {shift})"
+def _term(coefficient, shift, operand):
+    """Source of ``(coefficient * operand) << shift`` with the constant folded, or None."""
+    c = int(coefficient) << int(shift)
+    if c == 0:
+        return None
+    if c == 1:
+        return operand
+    return f"{c} * {operand}"
 
 
-def fixed_loop_kernel_source(key):
+def _input_fit_lines(ind, input_node):
+    """Source fitting ``x[t]`` (a float) to the input word ``w`` (float_to_words' steps)."""
+    fraction_bits, rule, word_bits, wrap = input_node
+    hi = (1 << (word_bits - 1)) - 1
+    lo = -hi - 1
+    out = [f"{ind}s = xb[j] * {float(2.0**fraction_bits)!r}"]
+    if rule == 0:
+        out.append(f"{ind}r = math.floor(s)")
+    elif rule == 1:
+        out.append(f"{ind}r = math.floor(s + 0.5)")
+    else:
+        out.append(f"{ind}r = np.rint(s)")  # ties to even (the default IEEE 754 mode)
+    if wrap:
+        out += [f"{ind}w = int(r)", f"{ind}w = ((w - ({lo})) & {2 * hi + 1}) + ({lo})"]
+    else:
+        out += [
+            f"{ind}if r > {float(hi)!r}:",
+            f"{ind}    r = {float(hi)!r}",
+            f"{ind}elif r < {float(lo)!r}:",
+            f"{ind}    r = {float(lo)!r}",
+            f"{ind}w = int(r)",
+        ]
+    return out
+
+
+def fixed_loop_kernel_source(key, float_io=False):
     """Python source of one specialised integer loop.
 
     Parameters
     ----------
     key : tuple
-        ``(order, resonators, m, f_last, shifts, rules)``: the number of states, per state
-        whether it has a resonator term, the quantizer's ``m`` (0: two levels), the last
-        state's fractional bits, and the ``shifts`` (5 x order) and ``rules`` (3 x order)
-        tables of ``fixed_feedback_loop`` as nested tuples.
+        ``(order, m, f_last, coef, shifts, rules, input_node, step, dithered)``: the number
+        of states,
+        the quantizer's ``m`` (0: two levels), the last state's fractional bits, the ``coef``
+        (5 x order), ``shifts`` (5 x order) and ``rules`` (3 x order) tables of
+        ``fixed_feedback_loop`` as nested tuples of ints, the input word
+        ``(fraction_bits, rounding code, word_bits, wrap)`` and the quantizer step in
+        full-scale units (those two for the float variant), and whether a dither word per
+        sample (``dither``, int64, in the last state's fractional bits) is added to the last
+        state at the quantizer (else ``dither`` is ignored).
+    float_io : bool
+        False: ``f(u, out, dither, state, peaks, counts)`` on input words ``u`` (int64),
+        writing level indices into ``out`` (int64); it returns -1, or the start of the first
+        block holding a word outside the input word (it stops there; state and output are
+        then partial). True: ``f(x, y, dither, state, peaks, counts)`` on full-scale floats
+        ``x``, writing the output levels ``q * step - 1`` into ``y`` (float64); it returns -1.
     """
-    order, resonators, m, f_last, shifts, rules = key
+    order, m, f_last, coef, shifts, rules, input_node, step, dithered = key
     n = order
     lines = []
     add = lines.append
-    add(f"def {fixed_loop_kernel_name(key)}(")
-    add("    u, out, coef, shifts, rules, state, peaks, counts, quantizer,")
-    add("):")
+    xs = ", ".join(f"x{i}" for i in range(n))
+    ns = ", ".join(f"n{i}" for i in range(n))
+    add(f"def {fixed_loop_kernel_name(key, float_io)}({'x, y' if float_io else 'u, out'}, ")
+    add("        dither, state, peaks, counts):")
     for i in range(n):
-        add(f"    d{i} = coef[0, {i}]")
-        add(f"    k{i} = coef[1, {i}]" if i > 0 else "    k0 = coef[4, 0]")
-        add(f"    a{i} = coef[3, {i}]")
-        if resonators[i]:
-            add(f"    g{i} = coef[2, {i}]")
         add(f"    x{i} = state[{i}]")
         add(f"    p{i} = peaks[{i}]")
         add(f"    o{i} = counts[{i}]")
-    add("    for t in range(u.shape[0]):")
-    ind = "        "
-    if m == 0:
-        add(f"{ind}q = 1 + (x{n - 1} >> 63)")  # 1 when the state is >= 0, else 0
-        add(f"{ind}v = 2 * q - 1")
-    else:
-        add(f"{ind}q = ((x{n - 1} << {m}) + {(1 << (m + f_last)) + (1 << f_last)}) >> {f_last + 1}")
-        add(f"{ind}if q < 0:")
-        add(f"{ind}    q = 0")
-        add(f"{ind}elif q > {1 << m}:")
-        add(f"{ind}    q = {1 << m}")
-        add(f"{ind}v = q - {1 << (m - 1)}")
-    add(f"{ind}out[t] = q")
-    for i in range(n - 1, -1, -1):
-        prev = f"x{i - 1}" if i > 0 else "u[t]"
-        acc = (
-            _shifted(f"d{i} * x{i}", shifts[0][i])
-            + " + "
-            + _shifted(f"k{i} * {prev}", shifts[1][i])
-            + " - "
-            + _shifted(f"a{i} * v", shifts[2][i])
-        )
-        if resonators[i]:
-            acc += " - " + _shifted(f"g{i} * n{i + 1}", shifts[3][i])
-        add(f"{ind}acc = {acc}")
-        r, rule = shifts[4][i], rules[0][i]
-        if r == 0:
-            add(f"{ind}val = acc")
-        elif rule == 0:
-            add(f"{ind}val = acc >> {r}")
-        elif rule == 1:
-            add(f"{ind}val = (acc + {1 << (r - 1)}) >> {r}")
+    add(f"    total = {'x' if float_io else 'u'}.shape[0]")
+
+    # the dither word of the sample joins the last state at the quantizer only
+    quantizer_input = f"(x{n - 1} + db[j])" if dithered else f"x{n - 1}"
+
+    def sample(ind, checked):
+        out = []
+        if float_io:
+            out += _input_fit_lines(ind, input_node)
+            u = "w"
         else:
-            # ties to even without a branch: adding half a step less one, plus the kept
-            # part's lowest bit, carries into the kept part exactly when the rule rounds up
-            add(f"{ind}val = (acc + {(1 << (r - 1)) - 1} + ((acc >> {r}) & 1)) >> {r}")
+            u = "ub[j]"
+        if m == 0:
+            out.append(f"{ind}pos = {quantizer_input} >= 0")
+            if float_io:
+                out.append(f"{ind}yb[j] = 1.0 if pos else -1.0")
+            else:
+                out.append(f"{ind}outb[j] = 1 if pos else 0")
+        else:
+            offset = (1 << (m + f_last)) + (1 << f_last)
+            out += [
+                f"{ind}q = (({quantizer_input} << {m}) + {offset}) >> {f_last + 1}",
+                f"{ind}if q < 0:",
+                f"{ind}    q = 0",
+                f"{ind}elif q > {1 << m}:",
+                f"{ind}    q = {1 << m}",
+                f"{ind}v = q - {1 << (m - 1)}",
+            ]
+            out.append(
+                f"{ind}yb[j] = float(q) * {float(step)!r} - 1.0"
+                if float_io
+                else f"{ind}outb[j] = q"
+            )
+        for i in range(n - 1, -1, -1):
+            prev = f"x{i - 1}" if i > 0 else u
+            terms = [
+                _term(coef[0][i], shifts[0][i], f"x{i}"),
+                _term(coef[1][i] if i > 0 else coef[4][0], shifts[1][i], prev),
+            ]
+            if i < n - 1:
+                g = _term(coef[2][i], shifts[3][i], f"n{i + 1}")
+                terms.append(None if g is None else f"-({g})")
+            expr = " + ".join(t for t in terms if t is not None) or "0"
+            r, rule = shifts[4][i], rules[0][i]
+            a = int(coef[3][i]) << int(shifts[2][i])
+            # the constant added before the right shift (0 for truncation and no shift)
+            bias = 0 if r == 0 or rule == 0 else (1 << (r - 1)) - (1 if rule == 2 else 0)
+            if m == 0:
+                # v = +1 when pos, else -1: the feedback term is a choice of two constants
+                if rule == 2 and r > 0:
+                    out.append(f"{ind}acc = {expr} + ({-a} if pos else {a})")
+                    add_bias = f" + {bias}"
+                else:
+                    out.append(f"{ind}acc = {expr} + ({bias - a} if pos else {bias + a})")
+                    add_bias = ""
+            else:
+                fb = _term(a, 0, "v")
+                out.append(f"{ind}acc = {expr}" + ("" if fb is None else f" - {fb}"))
+                add_bias = f" + {bias}" if bias else ""
+            if r == 0:
+                out.append(f"{ind}val = acc")
+            elif rule == 2:
+                # ties to even without a branch: half a step less one, plus the kept part's
+                # lowest bit, carries into the kept part exactly when the rule rounds up
+                out.append(f"{ind}val = (acc{add_bias} + ((acc >> {r}) & 1)) >> {r}")
+            else:
+                out.append(f"{ind}val = (acc{add_bias}) >> {r}")
+            hi = (1 << (rules[2][i] - 1)) - 1
+            lo = -hi - 1
+            if checked:
+                out += [
+                    f"{ind}if val > {hi} or val < {lo}:",
+                    f"{ind}    o{i} += 1",
+                ]
+                if rules[1][i] == 1:
+                    out.append(f"{ind}    val = ((val - ({lo})) & {2 * hi + 1}) + ({lo})")
+                else:
+                    out.append(f"{ind}    val = {hi} if val > {hi} else {lo}")
+                out.append(f"{ind}p{i} = max(p{i}, abs(val))")
+            else:
+                out.append(f"{ind}sc[{i * FIXED_BLOCK} + j] = val")
+            out.append(f"{ind}n{i} = val")
+        out.append(f"{ind}{xs} = {ns}")
+        return out
+
+    src, dst = ("x", "y") if float_io else ("u", "out")
+    add(f"    sc = np.empty({n * FIXED_BLOCK}, dtype=np.int64)")
+    add("    start = 0")
+    add("    while start < total:")
+    add(f"        stop = min(start + {FIXED_BLOCK}, total)")
+    add(f"        {src}b = {src}[start:stop]")
+    if dithered:
+        add("        db = dither[start:stop]")
+    add(f"        {dst}b = {dst}[start:stop]")
+    add("        size = stop - start")
+    if not float_io:
+        # the input words must fit the input word: checked here, a block at a time, so the
+        # wrapper needs no pass of its own over them (the caller discards everything else)
+        ihi = (1 << (input_node[2] - 1)) - 1
+        add("        h = 0")
+        add("        lo = 0")
+        add("        for j in range(size):")
+        add("            h = max(h, ub[j])")
+        add("            lo = min(lo, ub[j])")
+        add(f"        if h > {ihi} or lo < {-ihi - 1}:")
+        add("            return start")
+    add(f"        {', '.join(f's{i}' for i in range(n))} = {xs}")
+    add(
+        f"        {', '.join(f'pk{i}' for i in range(n))} = " + ", ".join(f"p{i}" for i in range(n))
+    )
+    add("        for j in range(size):")
+    lines.extend(sample("            ", False))
+    add("        fits = True")
+    for i in range(n):
         hi = (1 << (rules[2][i] - 1)) - 1
-        lo = -hi - 1
-        add(f"{ind}if val > {hi} or val < {lo}:")
-        add(f"{ind}    o{i} += 1")
-        if rules[1][i] == 1:
-            add(f"{ind}    val = ((val - ({lo})) & {2 * hi + 1}) + ({lo})")
-        else:
-            add(f"{ind}    val = {hi} if val > {hi} else {lo}")
-        add(f"{ind}n{i} = val")
-        add(f"{ind}p{i} = max(p{i}, abs(val))")
-    add(ind + ", ".join(f"x{i}" for i in range(n)) + " = " + ", ".join(f"n{i}" for i in range(n)))
+        add("        h = 0")
+        add("        lo = 0")
+        add("        for j in range(size):")
+        add(f"            h = max(h, sc[{i * FIXED_BLOCK} + j])")
+        add(f"            lo = min(lo, sc[{i * FIXED_BLOCK} + j])")
+        add(f"        fits = fits and h <= {hi} and lo >= {-hi - 1}")
+        add(f"        p{i} = max(p{i}, h, -lo)")
+    add("        if not fits:")
+    add(f"            {xs} = {', '.join(f's{i}' for i in range(n))}")
+    add(
+        f"            {', '.join(f'p{i}' for i in range(n))} = "
+        + ", ".join(f"pk{i}" for i in range(n))
+    )
+    add("            for j in range(size):")
+    lines.extend(sample("                ", True))
+    add("        start = stop")
     for i in range(n):
         add(f"    state[{i}] = x{i}")
         add(f"    peaks[{i}] = p{i}")
         add(f"    counts[{i}] = o{i}")
+    add("    return -1")
     return "\n".join(lines) + "\n"
 
 
 _FIXED_KERNELS = {}
 
 
-def fixed_loop_kernel(key):
-    """Compiled specialised integer loop for a format key (built on first use).
+def fixed_loop_kernel(key, float_io=False):
+    """Compiled specialised integer loop for a loop key (built on first use).
 
-    Arguments of the returned function are those of ``fixed_feedback_loop`` (``shifts``,
-    ``rules`` and ``quantizer`` are accepted and ignored: the key has written them in).
+    See :func:`fixed_loop_kernel_source` for the key and the two argument lists.
     """
-    kernel = _FIXED_KERNELS.get(key)
+    kernel = _FIXED_KERNELS.get((key, float_io))
     if kernel is None:
-        source = fixed_loop_kernel_source(key)
-        name = fixed_loop_kernel_name(key)
+        source = fixed_loop_kernel_source(key, float_io)
+        name = fixed_loop_kernel_name(key, float_io)
         namespace = {}
         # compiled under this file's name so numba's cache can find (and invalidate) it
         exec(compile(source, __file__, "exec"), globals(), namespace)
@@ -273,5 +412,57 @@ def fixed_loop_kernel(key):
         function.__module__ = __name__
         function.__qualname__ = name
         kernel = njit(cache=True, nogil=True)(function)
-        _FIXED_KERNELS[key] = kernel
+        _FIXED_KERNELS[(key, float_io)] = kernel
     return kernel
+
+
+@njit(cache=True, nogil=True)
+def fixed_interpolate_row(row, phases, ratio, taps, lengths, out, shift, rule, word_bits, wrap):
+    """Interpolate one channel by R = ``ratio`` in integers (the fixed-point interpolator).
+
+    ``phases`` is (R, M) int64 with M = ``taps``: ``phases[p, m]`` is the integer of tap
+    ``p + m R`` of the interpolation filter (gain R), ``lengths[p]`` of them used. ``row`` is
+    the last M - 1 input words of the previous block, then the n new ones; ``out`` (R n)
+    receives ``out[R i + p] = fit(round(sum_m phases[p, m] * row[i + M - 1 - m], shift))``:
+    the exact sum, its ``shift`` low bits dropped by the rounding rule (0 truncate, 1 round
+    half up, 2 convergent), then fitted to ``word_bits`` (``wrap`` or saturate). Returns the
+    number of outputs the overflow rule acted on.
+    """
+    hi = (1 << (word_bits - 1)) - 1
+    lo = -hi - 1
+    n = out.shape[0] // ratio
+    overflows = 0
+    for i in range(n):
+        for p in range(ratio):
+            acc = 0
+            for m in range(lengths[p]):
+                acc += phases[p, m] * row[i + taps - 1 - m]
+            val = _round_shift(acc, shift, rule)
+            if val > hi or val < lo:
+                overflows += 1
+                if wrap:
+                    val = ((val - lo) & (2 * hi + 1)) + lo
+                else:
+                    val = hi if val > hi else lo
+            out[ratio * i + p] = val
+    return overflows
+
+
+@njit(cache=True, nogil=True)
+def dither_words(counter, scale, out):
+    """The float loop's TPDF dither sequence as words of the last state; returns the counter.
+
+    Per sample the counter advances twice by the golden-ratio increment and each value goes
+    through the SplitMix64 output function, exactly as in the float loop's kernels
+    (:func:`audiodsm.stages._kernels._unit_from_counter`); the dither ``scale * (r1 - r2)``
+    (``scale`` already multiplied by ``2**F`` of the last state, a power of two, so the
+    product is the float loop's dither times ``2**F`` exactly) is rounded down to a word.
+    """
+    c = counter
+    for t in range(out.shape[0]):
+        c += _GOLDEN
+        r1 = _unit_from_counter(c)
+        c += _GOLDEN
+        r2 = _unit_from_counter(c)
+        out[t] = int(math.floor(scale * (r1 - r2)))
+    return c

@@ -172,6 +172,21 @@ class Chain:
                 final_stage=up.final_stage,
             )
             self._upsampler = Upsampler(self.upsampler_design)
+        fp = profile.fixed_point
+        if fp.active and fp.interpolator != "float":
+            # [fixed_point] interpolator: the integer interpolator (or its last stage) in the
+            # signal path; the design, its response and delay stay the float chain's
+            with _settings_of(profile, "fixed_point"):
+                from audiodsm.stages.fixed_upsample import (
+                    FixedPointUpsampler,
+                    interpolator_format_from_settings,
+                )
+
+                self._upsampler = FixedPointUpsampler(
+                    self.upsampler_design,
+                    interpolator_format_from_settings(fp),
+                    fp.interpolator,
+                )
 
         mod = profile.modulator
         with _settings_of(profile, "modulator"):
@@ -212,7 +227,11 @@ class Chain:
                 from audiodsm.stages.fixed_loop import FixedPointModulator, format_from_settings
 
                 self.fixed_loop = FixedPointModulator(
-                    self.modulator.loop, format_from_settings(profile.fixed_point), mod.levels
+                    self.modulator.loop,
+                    format_from_settings(profile.fixed_point),
+                    mod.levels,
+                    dither_lsb=mod.dither_lsb,
+                    seed=mod.seed,
                 )
                 signal_loop = self.fixed_loop.quantized_loop
         with _settings_of(profile, "modulator"):
@@ -690,6 +709,15 @@ class Chain:
             error=_stack(outs, "error"),
         )
         return block, replace(state, channels=new_channels, stats=stats)
+
+    @property
+    def signal_upsampler(self):
+        """The upsampler of the signal path (float, or the fixed-point one).
+
+        An ``Upsampler``, or the ``FixedPointUpsampler`` the profile's
+        ``fixed_point.interpolator`` asks for.
+        """
+        return self._upsampler
 
     # -- aligned streaming ----------------------------------------------------------------------
 

@@ -32,7 +32,7 @@ __all__ = [
 
 _ROUNDING_CODES = {"truncate": 0, "round-half-up": 1, "convergent": 2}
 _OVERFLOW_CODES = {"saturate": 0, "wrap": 1}
-_CHUNK = 1 << 15  # samples per kernel call in run(): the words stay in cache
+_NO_DITHER = np.zeros(0, dtype=np.int64)
 _MAX_BITS = 63  # int64 holds every intermediate value when all terms fit in this many bits
 
 
@@ -86,6 +86,8 @@ class FixedLoopState:
         Samples processed so far.
     state_peak : ndarray, shape (order,)
         ``peak_words`` as values (word times the state's step), as a float loop reports them.
+    dither_counter : int
+        The dither generator's counter (a uint64 value; the float loop's ``rng_counter``).
     """
 
     words: np.ndarray
@@ -93,6 +95,7 @@ class FixedLoopState:
     overflow_count: np.ndarray
     samples: int = 0
     state_peak: np.ndarray | None = None
+    dither_counter: int = 0
 
     @property
     def overload_count(self) -> int:
@@ -115,12 +118,19 @@ class FixedPointModulator:
     levels : int
         Quantizer levels: 2, or ``2**m + 1`` for ``m`` from 1 to 16 (the levels then fall on a
         binary grid, step ``2**(1 - m)``).
+    dither_lsb : float
+        TPDF dither at the quantizer, peak amplitude in quantizer steps, as the float
+        :class:`~audiodsm.stages.modulator.Modulator`'s (0: none).
+    seed : int
+        Seed of the dither generator (the float loop's first channel's stream).
 
     Notes
     -----
-    Single channel; ``run`` takes ``(frames,)``. No dither and no overload guard: the
-    hardware's overflow rules are the guard. ``state.overflow_count`` tells how often they
-    acted.
+    Single channel; ``run`` takes ``(frames,)``. No overload guard: the hardware's overflow
+    rules are the guard. ``state.overflow_count`` tells how often they acted. The dither is
+    the float loop's sequence (same seed, same counter-based generator), each value rounded
+    down to a word of the last state and added to it at the quantizer only
+    (:meth:`dither_words`).
 
     References
     ----------
@@ -128,7 +138,15 @@ class FixedPointModulator:
        (the model each rounding node's added noise follows).
     """
 
-    def __init__(self, loop, fmt: FixedPointFormat, levels: int = 2):
+    def __init__(
+        self,
+        loop,
+        fmt: FixedPointFormat,
+        levels: int = 2,
+        *,
+        dither_lsb: float = 0.0,
+        seed: int = 0,
+    ):
         if getattr(loop, "structure", None) != "feedback":
             raise ParameterError(
                 "structure", getattr(loop, "structure", None), "'feedback' (fixed point)"
@@ -148,9 +166,21 @@ class FixedPointModulator:
             raise ParameterError(
                 "levels", levels, "2 for a loop whose quantizer-facing state is scaled"
             )
+        if not (np.isfinite(dither_lsb) and dither_lsb >= 0):
+            raise ParameterError("dither_lsb", dither_lsb, "a finite number >= 0")
+        if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
+            raise ParameterError("seed", seed, "an integer >= 0")
         self.loop = loop
         self.format = fmt
         self.levels = int(levels)
+        self.dither_lsb = float(dither_lsb)
+        self.seed = int(seed)
+        # the float loop's dither scale (Modulator._kernel_scalars: the quantizer reads the
+        # last state divided by its output weight), times 2**F of the last state
+        gain = float(loop.output_weight[-1]) if levels == 2 else 1.0
+        self._dither_scale = (
+            self.dither_lsb * (2.0 / (self.levels - 1)) / gain * 2.0 ** fmt.states[-1].fraction_bits
+        )
         self.m = m
         fc = fmt.coefficient_fraction_bits
         self.coefficients = coefficient_integers(
@@ -165,16 +195,24 @@ class FixedPointModulator:
         self._quantizer = np.array(
             [m, fmt.states[-1].fraction_bits, self.output_fraction_bits], dtype=np.int64
         )
-        resonators = tuple(bool(self._coef[2, i] != 0) for i in range(self.order - 1)) + (False,)
+        node = fmt.input
         self._kernel_key = (
             self.order,
-            resonators,
             m,
             int(fmt.states[-1].fraction_bits),
+            tuple(tuple(int(v) for v in row) for row in self._coef),
             tuple(tuple(int(v) for v in row) for row in self._shifts),
             tuple(tuple(int(v) for v in row) for row in self._rules),
+            (
+                int(node.fraction_bits),
+                _ROUNDING_CODES[node.rounding],
+                int(node.word_bits),
+                node.overflow == "wrap",
+            ),
+            float(2.0 / (self.levels - 1)),
+            self.dither_lsb > 0.0,
         )
-        self._kernel = None  # compiled on first run
+        self._kernels = {}  # compiled on first run: False on words, True on floats
 
     def _plan_shifts(self):
         """Alignment shifts per node, and a check that every intermediate fits in int64."""
@@ -242,11 +280,37 @@ class FixedPointModulator:
         return 2.0 / (self.levels - 1)
 
     def initial_state(self) -> FixedLoopState:
-        """All state words zero."""
+        """All state words zero; the dither counter seeded as the float loop's channel 1."""
+        from audiodsm.stages.modulator import _splitmix
+
         zeros = np.zeros(self.order, dtype=np.int64)
         return FixedLoopState(
-            _readonly(zeros), _readonly(zeros), _readonly(zeros), 0, _readonly(np.zeros(self.order))
+            _readonly(zeros),
+            _readonly(zeros),
+            _readonly(zeros),
+            0,
+            _readonly(np.zeros(self.order)),
+            _splitmix(self.seed * 0x100000001 + 1),
         )
+
+    @property
+    def dither_word_bits(self) -> int:
+        """Bits of a signed word that holds every dither word (0 without dither)."""
+        if self.dither_lsb == 0.0:
+            return 0
+        return (int(np.floor(self._dither_scale)) + 1).bit_length() + 1
+
+    def dither_words(self, frames: int, counter: int):
+        """The dither words of ``frames`` samples from ``counter``; returns (words, counter).
+
+        Each is ``floor(d * 2**F)`` with ``d`` the float loop's dither value of that sample
+        (last-state units) and ``F`` the last state's fractional bits; all zero without dither.
+        """
+        out = np.zeros(frames, dtype=np.int64)
+        if self.dither_lsb == 0.0:
+            return out, int(counter)
+        c = _fixed_kernels.dither_words(np.uint64(counter), self._dither_scale, out)
+        return out, int(c)
 
     def input_words(self, x) -> np.ndarray:
         """Full-scale float input -> input words (the input node's rules)."""
@@ -281,13 +345,17 @@ class FixedPointModulator:
         u = np.ascontiguousarray(words, dtype=np.int64)
         if u.ndim != 1:
             raise ParameterError("words.shape", u.shape, "(frames,)")
-        node = self.format.input
-        hi = (1 << (node.word_bits - 1)) - 1
-        if len(u) and (u.max() > hi or u.min() < -hi - 1):
-            raise ParameterError("words", "a word outside the input word", f"-{hi + 1}..{hi}")
-        return self._run_checked_words(u, state)
+        out = np.empty(len(u), dtype=np.int64)
+        return out, self._run_kernel(False, u, out, state)
 
-    def _run_checked_words(self, u, state):
+    def _kernel(self, float_io):
+        kernel = self._kernels.get(float_io)
+        if kernel is None:
+            kernel = _fixed_kernels.fixed_loop_kernel(self._kernel_key, float_io)
+            self._kernels[float_io] = kernel
+        return kernel
+
+    def _run_kernel(self, float_io, u, out, state):
         if state is None:
             state = self.initial_state()
         elif not isinstance(state, FixedLoopState) or state.words.shape != (self.order,):
@@ -295,40 +363,56 @@ class FixedPointModulator:
         st = np.array(state.words, dtype=np.int64)
         peaks = np.array(state.peak_words, dtype=np.int64)
         counts = np.array(state.overflow_count, dtype=np.int64)
-        out = np.empty(len(u), dtype=np.int64)
-        if self._kernel is None:
-            self._kernel = _fixed_kernels.fixed_loop_kernel(self._kernel_key)
-        self._kernel(
-            u, out, self._coef, self._shifts, self._rules, st, peaks, counts, self._quantizer
-        )
+        if self.dither_lsb > 0.0:
+            dither, counter = self.dither_words(len(u), state.dither_counter)
+        else:
+            dither, counter = _NO_DITHER, state.dither_counter
+        if self._kernel(float_io)(u, out, dither, st, peaks, counts) >= 0:
+            hi = (1 << (self.format.input.word_bits - 1)) - 1
+            raise ParameterError("words", "a word outside the input word", f"-{hi + 1}..{hi}")
         steps = np.array([node.step for node in self.format.states])
-        new = FixedLoopState(
+        return FixedLoopState(
             _readonly(st),
             _readonly(peaks),
             _readonly(counts),
             state.samples + len(u),
             _readonly(peaks * steps),
+            counter,
         )
-        return out, new
 
-    def run(self, x, state: FixedLoopState | None = None):
+    def run(self, x, state: FixedLoopState | None = None, *, out=None):
         """Modulate full-scale float input; return output levels in full-scale units.
 
-        The input is first fitted to the input word (:meth:`input_words`). Long inputs run in
-        cache-sized chunks (the chunking is invisible in the result: the loop streams).
+        The input is fitted to the input word (:meth:`input_words`'s rules) inside the
+        compiled loop; the result equals ``levels_from_indices(run_words(input_words(x)))``
+        bit for bit.
+
+        Parameters
+        ----------
+        x : array_like, shape (frames,)
+            Full-scale input.
+        state : FixedLoopState or None
+            From the previous call, or None to start from zero.
+        out : ndarray of float64, shape (frames,), optional
+            Written with the output and returned (no allocation).
         """
-        x = np.asarray(x, dtype=np.float64)
+        x = np.ascontiguousarray(x, dtype=np.float64)
         if x.ndim != 1:
             raise ParameterError("x.shape", x.shape, "(frames,)")
-        y = np.empty(len(x))
-        new = self.initial_state() if state is None else state
-        for start in range(0, max(len(x), 1), _CHUNK):
-            part = x[start : start + _CHUNK]
-            q, new = self._run_checked_words(self.input_words(part), new)  # fit by making
-            y[start : start + len(part)] = q
-        y *= self.step
-        y -= 1.0
-        return y, new
+        if not np.isfinite(x).all():
+            raise ParameterError("x", "non-finite samples", "finite samples")
+        if out is None:
+            out = np.empty(len(x))
+        elif (
+            not isinstance(out, np.ndarray)
+            or out.dtype != np.float64
+            or out.shape != x.shape
+            or not out.flags.c_contiguous
+            or not out.flags.writeable
+        ):
+            raise ParameterError("out", type(out).__name__, f"a writable float64 array {x.shape}")
+        new = self._run_kernel(True, x, out, state)
+        return out, new
 
     def process(self, x, state: FixedLoopState | None = None):
         """Same as :meth:`run` (the stage interface)."""
