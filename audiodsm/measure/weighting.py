@@ -43,7 +43,6 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from scipy import optimize, signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.measure.bands import MAX_RATE_HZ, MIN_RATE_HZ, check_rate, run_sos
@@ -320,6 +319,8 @@ def _initial_numerator(n_zeros):
 
 def _fit_high_part(kind, rate, fixed, sections, n_zeros):
     """Fit the high-frequency sections; return (sections, worst in-band error in dB)."""
+    from scipy import optimize, signal
+
     num_orders, x0 = _initial_numerator(n_zeros)
     i_gain = len(x0)
     x0.append(0.0)
@@ -416,14 +417,26 @@ def _design(kind, rate):
 
     rows = SHIPPED_SECTIONS.get((kind, float(rate)))
     if rows is None:
-        return _fitted_design(kind, rate)
-    sos = np.array(rows, dtype=np.float64)
+        from audiodsm import disk_cache
+
+        # another rate: fitted once, remembered on disk (a later run reads the sections back
+        # without importing scipy.signal and without the fit)
+        sos = disk_cache.remembered(
+            "weighting-sos",
+            (str(kind), float(rate)),
+            lambda: _fitted_design(kind, rate),
+            sources=("measure/weighting.py",),
+        )
+    else:
+        sos = np.array(rows, dtype=np.float64)
     sos.setflags(write=False)
     return sos
 
 
 def _fitted_design(kind, rate):
     """Design a weighting filter by the fit described in the module notes (not cached)."""
+    from scipy import signal
+
     n_dc, poles = _analog_network(kind)
     is_low = np.abs(poles) < 2.0 * np.pi * _LOW_POLE_LIMIT_HZ
     low, high = poles[is_low], poles[~is_low]
@@ -452,7 +465,6 @@ def _fitted_design(kind, rate):
     f_ref = 1000.0 if kind == "a" else 2000.0
     _, h_ref = signal.sosfreqz(sos, worN=[f_ref], fs=rate)
     sos[0, :3] *= 10.0 ** (_target_db(kind, np.float64(f_ref)) / 20.0) / np.abs(h_ref[0])
-    sos.setflags(write=False)
     return sos
 
 
