@@ -436,6 +436,13 @@ def test_rz_chain_with_edges_streams():
 # ---------------------------------------------------------------------------------------------
 
 
+def _with_impairment_lines(profile_text, lines):
+    """The profile text with ``lines`` in its [impairments] section (added when missing)."""
+    if "\n[impairments]\n" in profile_text:
+        return profile_text.replace("\n[impairments]\n", f"\n[impairments]\n{lines}\n", 1)
+    return profile_text + f"\n[impairments]\n{lines}\n"
+
+
 @pytest.mark.parametrize(
     ("profile", "text", "key", "words"),
     [
@@ -452,7 +459,7 @@ def test_edge_keys_refused_at_load(tmp_path, profile, text, key, words):
     from audiodsm.cli import main
 
     path = tmp_path / "bad.toml"
-    path.write_text(profile.read_text() + f"\n[impairments]\n{text}\n")
+    path.write_text(_with_impairment_lines(profile.read_text(), text))
     with pytest.raises(ProfileError) as info:
         load_profile(path)
     message = str(info.value)
@@ -465,7 +472,7 @@ def test_edge_keys_refused_at_load(tmp_path, profile, text, key, words):
 def test_pwm_jitter_refused_with_dead_time_and_beyond_half_a_tick():
     text = (ROOT / "profiles" / "pocket_amp" / "pwm9_halfbridge_deadtime_16x.toml").read_text()
     with pytest.raises(ProfileError, match="impairments.jitter_rms_s"):
-        parse_profile(text + "\n[impairments]\njitter_rms_s = 1e-10\n")
+        parse_profile(_with_impairment_lines(text, "jitter_rms_s = 1e-10"))
     profile = _with(load_profile(PWM9), jitter_rms_s=5e-9)  # 10 sigma > half the 81 ns tick
     with pytest.raises(ProfileError, match="half a PWM tick"):
         Chain.from_profile(profile, 48000, 1)
