@@ -508,3 +508,9 @@ def test_dead_time_loop_picks_the_same_switches_as_the_plain_stage(mode, bridge)
     want, want_sq, _ = filter_switched_waveform(sw, wave, segment_switch_states(wave, plan))
     assert np.allclose(got, want, rtol=0, atol=1e-9)
     assert np.allclose(got_sq, want_sq, rtol=0, atol=1e-8)
+
+
+def test_on_resistance_refuses_pwm_edge_jitter():
+    text = BRIDGE.read_text() + "jitter_rms_s = 1e-11\n"
+    with pytest.raises(ProfileError, match="impairments.jitter_rms_s.*on-resistance"):
+        parse_profile(text)
