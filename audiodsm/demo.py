@@ -22,6 +22,12 @@ candidate with spread NTF zeros against the same loop with every zero at DC
 (``profiles/variants/``), on short excerpts of two demo clips. A set whose key exists is kept
 as it is (keys are never replaced).
 
+After each product's grades it prints what the impairments cost (:func:`tradeoff_lines`):
+the -1 dBFS THD+N of every candidate with mismatched unit elements, as built and with ideal
+elements, with the spec's verdict (the demo DAC's thermometer part fails, its shaped part
+passes), and every candidate's dynamic range with 1, 10 and 100 ps of clock jitter (the
+single-bit streams against the 17-level ones).
+
 To keep the whole demo within about three minutes on two cores, it runs the battery's short
 plan (fewer levels and DC offsets, shorter captures) and says so in its output; ``audiodsm
 grade`` runs the full battery.
@@ -36,7 +42,7 @@ import sys
 import time
 from pathlib import Path
 
-__all__ = ["PRODUCTS", "LISTENING_PAIR", "run_demo", "main"]
+__all__ = ["PRODUCTS", "LISTENING_PAIR", "run_demo", "tradeoff_lines", "main"]
 
 #: product folder name -> (plain title, spec sheet file name)
 PRODUCTS = {
@@ -103,6 +109,68 @@ def _listening_set(root: Path, out: Path, clips, protect, say):
     for line in set_table(summary):
         say("  " + line)
     return Path(summary["page"])
+
+
+def _fmt(value, digits=1):
+    return "-" if value is None else f"{value:.{digits}f}"
+
+
+def tradeoff_lines(batch) -> list:
+    """Plain lines on what a product's impairments cost its candidates.
+
+    Two views a designer weighs, from the graded batteries: the unit elements' mismatch (the
+    -1 dBFS THD+N as built and with ideal elements, and the spec's verdict on it) for every
+    candidate with mismatched elements, and the clock jitter (the dynamic range with 1, 10 and
+    100 ps rms of white jitter on the output edges, and the rms output step the jitter noise
+    goes with) for every candidate the jitter model covers. Empty when no candidate has
+    either reading.
+    """
+    grades = sorted(batch.grades, key=lambda g: g.name)
+    target = next((t for t in batch.spec.targets if t.metric == "thd_n_db_at_minus1_dbfs"), None)
+    lines = []
+    mismatched = [g for g in grades if g.metrics.get("mismatch_thd_n_cost_db") is not None]
+    if mismatched:
+        want = f" (target {target.requirement})" if target is not None else ""
+        lines.append(f"unit-element mismatch: THD+N at -1 dBFS as built{want}")
+        width = max(len(g.name) for g in mismatched)
+        for g in mismatched:
+            m = g.metrics
+            got = m.get("thd_n_db_at_minus1_dbfs")
+            verdict = ""
+            if target is not None:
+                line = next((x for x in g.lines if x.target == target), None)
+                verdict = "  PASS" if line is not None and line.passed else "  FAIL"
+            lines.append(
+                f"  {g.name:<{width}}  {_fmt(got):>7} dB{verdict}  (ideal elements "
+                f"{_fmt(m.get('mismatch_free_thd_n_db_at_minus1_dbfs'))} dB: the mismatch "
+                f"costs {_fmt(m.get('mismatch_thd_n_cost_db'))} dB of THD+N and "
+                f"{_fmt(m.get('mismatch_dynamic_range_cost_db'))} dB of dynamic range)"
+            )
+    jittered = [g for g in grades if g.metrics.get("jitter_dynamic_range_db_at_1ps") is not None]
+    if jittered:
+        if lines:
+            lines.append("")
+        lines.append(
+            "clock jitter: dynamic range (dB, unweighted, -60 dBFS) with white jitter on the "
+            "output edges"
+        )
+        width = max(len(g.name) for g in jittered)
+        lines.append(f"  {'profile':<{width}}  as built     1 ps    10 ps   100 ps   rms step (FS)")
+        for g in jittered:
+            m = g.metrics
+            cells = [m.get("dynamic_range_db")] + [
+                m.get(f"jitter_dynamic_range_db_at_{s}ps") for s in (1, 10, 100)
+            ]
+            lines.append(
+                f"  {g.name:<{width}}  "
+                + "  ".join(f"{_fmt(v):>7}" for v in cells)
+                + f"   {_fmt(m.get('output_step_rms_fs'), 3):>7}"
+            )
+        lines.append(
+            "  (the jitter noise goes with the square of the rms step: a single-bit stream "
+            "steps by the whole range, a 17-level one by a few levels)"
+        )
+    return lines
 
 
 def _quick_plan():
@@ -187,6 +255,11 @@ def run_demo(
         for g in batch.grades:
             if g.failure:
                 say(f"  {g.name}: {g.failure}")
+        costs = tradeoff_lines(batch)
+        if costs:
+            say(f"\n-- {title}: what the impairments cost --")
+            for line in costs:
+                say("  " + line if line else "")
         reports[product] = write_report(
             batch, out / "report" / product, protect=inputs, title=f"{title}: grades"
         )

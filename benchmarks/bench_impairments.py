@@ -118,11 +118,14 @@ def _class_d_record(rate, x):
         "bridge_all": with_keys(bridge, **ripple, **switches, **_SPEAKER),
         "dead_time_ideal": with_keys(half),
         "dead_time_on_resistance_loudspeaker": with_keys(half, **switches, **_SPEAKER),
+        "bridge_jitter": with_keys(bridge, **_JITTER),
     }
-    seconds = {name: _time_chain(p, x, rate) for name, p in cases.items()}
+    times = {name: _time_chain(p, x, rate) for name, p in cases.items()}
     record = {"case": "class_d_cost", "audio_seconds": SECONDS}
-    for name, s in seconds.items():
-        ideal = seconds["dead_time_ideal" if name.startswith("dead") else "bridge_ideal"]
-        record[f"{name}_s"] = round(s, 3)
-        record[f"{name}_ratio"] = round(s / ideal, 3)
+    for name, (wall, cpu) in times.items():
+        ideal = times["dead_time_ideal" if name.startswith("dead") else "bridge_ideal"]
+        record[f"{name}_s"] = round(wall, 3)
+        record[f"{name}_ratio"] = round(wall / ideal[0], 3)
+        record[f"{name}_cpu_s"] = round(cpu, 3)
+        record[f"{name}_cpu_ratio"] = round(cpu / ideal[1], 3)
     return record

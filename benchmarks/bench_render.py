@@ -12,6 +12,9 @@ Cases
     :mod:`benchmarks._c_reference`). Target (issue 12): <= 2.0 with both cores busy.
     ``cpu_ratio_to_c`` is the CPU time spread over the two cores, over the C loop's CPU time:
     the steadier figure on a busy machine.
+``render_speed_shipped_pdm5``
+    The same, through the shipped profile ``profiles/dac_chip/pdm5_64x.toml`` (its loop is
+    feedforward, spread zeros), the profile issue 12's target names.
 ``render_memory``
     A 10-minute stereo 96 kHz 24-bit input at OSR 64, rendered in a child process that reports
     its peak resident memory (``ru_maxrss``). Target: < 400 MB.
@@ -74,11 +77,26 @@ def _cpu_seconds() -> float:
     return usage.ru_utime + usage.ru_stime
 
 
-def _speed_case():
-    from audiodsm.evaluate.render import render_file
-    from audiodsm.profile import ChainProfile
+#: The shipped 5th-order PDM profile (a feedforward loop with spread zeros), relative to the
+#: project root.
+SHIPPED_PDM5 = "profiles/dac_chip/pdm5_64x.toml"
 
-    profile = ChainProfile(name="pdm5-osr64")
+
+def _speed_case(profile_path=None):
+    from audiodsm.evaluate.render import render_file
+    from audiodsm.profile import ChainProfile, load_profile
+
+    if profile_path is None:
+        profile = ChainProfile(name="pdm5-osr64")
+        case, text = (
+            "render_speed",
+            "5th-order single-bit PDM, OSR 64, 3rd-order Butterworth 60 kHz",
+        )
+    else:
+        profile = load_profile(Path(__file__).resolve().parents[1] / profile_path)
+        mod = profile.modulator
+        case = "render_speed_shipped_pdm5"
+        text = f"{profile_path}: 5th-order single-bit PDM, {mod.structure}, {mod.zero_layout} zeros"
     rate = 48000
     c_loop_speeds(C_SAMPLES)  # the C reference runs before the render, not during it
     with tempfile.TemporaryDirectory() as tmp:
@@ -101,8 +119,8 @@ def _speed_case():
     if c_cpu is not None:
         versus_c["cpu_ratio_to_c"] = round(cpu / cores / c_cpu, 3)
     return {
-        "case": "render_speed",
-        "profile": "5th-order single-bit PDM, OSR 64, 3rd-order Butterworth 60 kHz",
+        "case": case,
+        "profile": text,
         "audio_seconds": SPEED_SECONDS,
         "rate_hz": rate,
         "channels": 2,
@@ -173,4 +191,5 @@ def _memory_case():
 
 def run():
     yield _speed_case()
+    yield _speed_case(SHIPPED_PDM5)
     yield _memory_case()

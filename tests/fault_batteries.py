@@ -60,6 +60,19 @@ def worker_killing_battery(profile, *, jobs=None, progress=None, seed=0, **optio
     return short_real_battery(profile, jobs=jobs, progress=progress, seed=seed, **options)
 
 
+def preloaded_warm_up():
+    """What a worker inherited from the local cluster's process server.
+
+    ``(seconds of the server's warm-up or None, whether the battery's modules were already
+    imported in this worker before the task ran)``.
+    """
+    import sys
+
+    module = sys.modules.get("audiodsm.evaluate._worker_preload")
+    seconds = None if module is None else module.SECONDS
+    return seconds, "audiodsm.evaluate.battery_runs" in sys.modules
+
+
 def part_battery(profile, *, jobs=None, progress=None, seed=0, **options):
     """Readings drawn from the part: the first unit element's error in standard deviations.
 

@@ -139,3 +139,25 @@ def test_band_mask_ideal_edges_and_none():
         band_mask([-1.0])
     with pytest.raises(ParameterError, match="freq_hz"):
         band_mask([30000.0], rate_hz=48000.0)
+
+
+def test_run_sos_gives_scipy_sosfilt_bit_for_bit(rng):
+    # the reference is scipy.signal.sosfilt itself: run_sos runs the same recursion in a
+    # compiled loop (audiodsm/measure/_sos_kernel.py) so that a render need not import
+    # scipy.signal; every sample and every section delay must be the same number
+    from audiodsm.measure.bands import SosState, run_sos
+    from audiodsm.measure.weighting import weighting_filter
+
+    sos = np.vstack([band_limit_filter(96000.0), weighting_filter("a", 96000.0)])
+    for shape in [(5000,), (5000, 2), (5000, 3)]:
+        x = rng.standard_normal(shape)
+        zi = 0.1 * rng.standard_normal((sos.shape[0], 2) + shape[1:])
+        want, want_zf = signal.sosfilt(sos, x, axis=0, zi=zi)
+        state = SosState(tag=("t",), zi=zi)
+        got, got_state = run_sos(x, sos, state=state, tag=("t",))
+        np.testing.assert_array_equal(got, want)
+        np.testing.assert_array_equal(got_state.zi, want_zf)
+        # block by block equals one shot
+        first, mid = run_sos(x[:1234], sos, state=state, tag=("t",))
+        second, _ = run_sos(x[1234:], sos, state=mid, tag=("t",))
+        np.testing.assert_array_equal(np.concatenate([first, second]), want)

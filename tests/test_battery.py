@@ -280,6 +280,40 @@ def test_jobs_and_reruns_give_the_same_numbers(full_quick):
         assert again.metrics[k] == res.metrics[k]
 
 
+def test_modulator_samples_count_every_run(full_quick, transparent_result):
+    # one run, counted by hand from the plan: (settle + tone + tail) s at 48 kHz, times the
+    # OSR (16), one channel
+    plan = BatteryPlan.quick()
+    frames = round((plan.settle_s + plan.tone_s + 0.05) * RATE)
+    assert transparent_result.modulator_samples == frames * 16
+    # the whole short battery of a 64x loop: every chain run's frames x 64 x channels plus the
+    # state trace, summed the same way from the plan (7 sweep levels, 2 x 4 DC offsets, the
+    # frequency sweep's tones at two levels; the overload probes: the overload curve's points
+    # beyond the 7 sweep levels, none when the curve is absent)
+    from audiodsm.evaluate.battery import _sweep_frequencies
+
+    res, _ = full_quick
+    n = lambda seconds: round((plan.settle_s + seconds + 0.05) * RATE)  # noqa: E731
+    tones = 2 * len(_sweep_frequencies(plan.frequency_sweep_step))
+    probes = len(res.curves["overload"]["level_dbfs"]) - 7 if "overload" in res.curves else 0
+    expected = (
+        64
+        * (
+            n(plan.tone_s)
+            + 7 * n(plan.sweep_s)
+            + n(plan.silence_s)
+            + 2 * plan.dc_offsets * n(plan.dc_s)
+            + n(plan.response_s)
+            + tones * n(plan.frequency_sweep_s)
+            + n(plan.image_s)
+            + 2 * n(plan.imd_s)
+        )
+        + plan.histogram_samples
+    )
+    expected += 64 * probes * n(plan.sweep_s)
+    assert res.modulator_samples == expected
+
+
 def test_seed_changes_dithered_runs_only():
     prof = _transparent(16)
     plan = BatteryPlan.quick()
@@ -320,6 +354,8 @@ def test_bad_arguments_are_refused():
         run_battery(prof, plan=replace(BatteryPlan(), dc_s=0.1))
     with pytest.raises(ParameterError, match="profile"):
         run_battery({"name": "x"})
+    with pytest.raises(ParameterError, match="plan.frequency_sweep_step"):
+        run_battery(prof, plan=replace(BatteryPlan(), frequency_sweep_step=0))
     assert set(TEST_NAMES) >= {m[0] for m in METRIC_UNITS.values() if m[0]}
     assert battery_rate_hz(prof) == 48000
 
@@ -529,6 +565,18 @@ def test_impossible_thd_n_is_called_so():
     assert _sweep_reason(over, -12.0, floor) == "loop overloaded from -12 dBFS"
 
 
+def test_short_plan_sweeps_frequency_on_a_two_thirds_octave_grid(full_quick):
+    # the short plan takes one in two of the 1/3-octave centres (IEC 61260-1 base-10:
+    # 10^(k/10) kHz): successive tones 2/3 octave apart (a ratio of 10^0.2), from 20 Hz to
+    # 20 kHz, with 997 Hz (the reference tone) and 20 kHz always kept
+    res, _ = full_quick
+    f = res.curves["thd_n_vs_frequency"]["frequency_hz"]
+    assert f[0] == pytest.approx(20.0, rel=0.01) and f[-1] == 20000.0 and 997.0 in f
+    steps = np.diff(np.log10([v for v in f if v not in (997.0, 20000.0)]))
+    assert np.allclose(steps, 0.2, atol=1e-6)
+    assert any("one in 2 of the 1/3-octave centres" in n for n in res.notes)
+
+
 def test_thd_n_against_frequency_of_a_transparent_chain_is_flat():
     # A 24-bit TPDF-dithered quantizer without noise shaping adds white noise that does not
     # depend on the signal (Lipshitz, Wannamaker & Vanderkooy 1992, TPDF dither makes the
@@ -536,7 +584,7 @@ def test_thd_n_against_frequency_of_a_transparent_chain_is_flat():
     # to within the scatter of the noise reading (1.5 s of 20 kHz-wide noise: about 0.02 dB
     # rms). Before the ratio was taken to the fitted tone, the band's 20 Hz edge read 3 dB
     # high at 20 Hz.
-    plan = replace(BatteryPlan.quick(), frequency_sweep_s=1.5)
+    plan = replace(BatteryPlan.quick(), frequency_sweep_s=1.5, frequency_sweep_step=1)
     res = run_battery(_transparent(24), tests=("thd_n_vs_frequency",), plan=plan, jobs=2)
     curve = res.curves["thd_n_vs_frequency"]
     f = curve["frequency_hz"]

@@ -11,7 +11,7 @@ from scipy.signal import welch
 
 from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.errors import ParameterError, ProfileError
-from audiodsm.profile import load_profile, parse_profile
+from audiodsm.profile import ImpairmentSettings, load_profile, parse_profile
 from audiodsm.stages.chain import Chain
 from audiodsm.stages.jitter import EdgeJitter
 from audiodsm.stages.modulator import Modulator
@@ -28,6 +28,20 @@ def _with(profile, **keys):
     return dataclasses.replace(
         profile, impairments=dataclasses.replace(profile.impairments, **keys)
     )
+
+
+def _ideal_pwm():
+    """The demo bridge amplifier with an ideal power stage (its shipped on-resistance and
+    supply ripple left out: the jitter alone is under test)."""
+    return dataclasses.replace(load_profile(PWM9), impairments=ImpairmentSettings())
+
+
+def _text_with(path, keys):
+    """A profile file's text with ``keys`` added to its [impairments] section."""
+    text = path.read_text()
+    if "\n[impairments]\n" in text:
+        return text.replace("\n[impairments]\n", f"\n[impairments]\n{keys}\n", 1)
+    return text + f"\n[impairments]\n{keys}\n"
 
 
 def _stream(levels, n, *, amplitude=0.5, cycles=211, osr=64):
@@ -393,7 +407,7 @@ def test_pwm_sinusoidal_jitter_sidebands_follow_phase_modulation(mode, carrier):
     # areas, and where they sit inside the frame matters as much as their sum; spread over
     # whole segments, the two-level trailing stage read 16 dB low. The stage keeps each
     # moved area within the tick next to its edge.)
-    base = load_profile(PWM9)
+    base = _ideal_pwm()
     profile = dataclasses.replace(
         base, output=dataclasses.replace(base.output, pwm_mode=mode, pwm_carrier=carrier)
     )
@@ -411,7 +425,7 @@ def test_pwm_sinusoidal_jitter_sidebands_follow_phase_modulation(mode, carrier):
 
 
 def test_pwm_chain_with_jitter_streams():
-    profile = _with(load_profile(PWM9), jitter_rms_s=2e-9, part_seed=4)
+    profile = _with(_ideal_pwm(), jitter_rms_s=2e-9, part_seed=4)
     chain = Chain.from_profile(profile, 48000, 1)
     x = 0.5 * np.sin(2 * np.pi * 997 * np.arange(3000) / 48000)
     whole = chain.process(x, keep=("listening", "error"))[0]
@@ -436,13 +450,6 @@ def test_rz_chain_with_edges_streams():
 # ---------------------------------------------------------------------------------------------
 
 
-def _with_impairment_lines(profile_text, lines):
-    """The profile text with ``lines`` in its [impairments] section (added when missing)."""
-    if "\n[impairments]\n" in profile_text:
-        return profile_text.replace("\n[impairments]\n", f"\n[impairments]\n{lines}\n", 1)
-    return profile_text + f"\n[impairments]\n{lines}\n"
-
-
 @pytest.mark.parametrize(
     ("profile", "text", "key", "words"),
     [
@@ -459,7 +466,7 @@ def test_edge_keys_refused_at_load(tmp_path, profile, text, key, words):
     from audiodsm.cli import main
 
     path = tmp_path / "bad.toml"
-    path.write_text(_with_impairment_lines(profile.read_text(), text))
+    path.write_text(_text_with(profile, text))
     with pytest.raises(ProfileError) as info:
         load_profile(path)
     message = str(info.value)
@@ -470,10 +477,10 @@ def test_edge_keys_refused_at_load(tmp_path, profile, text, key, words):
 
 
 def test_pwm_jitter_refused_with_dead_time_and_beyond_half_a_tick():
-    text = (ROOT / "profiles" / "pocket_amp" / "pwm9_halfbridge_deadtime_16x.toml").read_text()
+    path = ROOT / "profiles" / "pocket_amp" / "pwm9_halfbridge_deadtime_16x.toml"
     with pytest.raises(ProfileError, match="impairments.jitter_rms_s"):
-        parse_profile(_with_impairment_lines(text, "jitter_rms_s = 1e-10"))
-    profile = _with(load_profile(PWM9), jitter_rms_s=5e-9)  # 10 sigma > half the 81 ns tick
+        parse_profile(_text_with(path, "jitter_rms_s = 1e-10"))
+    profile = _with(_ideal_pwm(), jitter_rms_s=5e-9)  # 10 sigma > half the 81 ns tick
     with pytest.raises(ProfileError, match="half a PWM tick"):
         Chain.from_profile(profile, 48000, 1)
 
@@ -485,7 +492,7 @@ def test_battery_jitter_reading_of_pwm_predicts_the_jittered_chain():
     # small rise toward 20 kHz shapes the white jitter noise a little).
     from audiodsm.evaluate.battery import BatteryPlan, run_battery
 
-    profile = load_profile(PWM9)
+    profile = _ideal_pwm()
     res = run_battery(profile, tests=("dynamic_range",), plan=BatteryPlan.quick())
     reading = res.metrics["jitter_noise_dbfs_at_1ps"]
     assert reading is not None and np.isfinite(reading)
@@ -503,7 +510,7 @@ def test_battery_jitter_reading_of_pwm_predicts_the_jittered_chain():
 
 
 def test_return_to_zero_refused_with_a_semi_digital_fir():
-    text = PDM2.read_text() + "\n[impairments]\nreturn_to_zero = true\n"
+    text = _text_with(PDM2, "return_to_zero = true")
     if "[reconstruction]" in text:
         text = text.replace("[reconstruction]", "[reconstruction]\nfir_taps = [0.5, 0.5]", 1)
     else:

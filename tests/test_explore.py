@@ -41,6 +41,23 @@ def test_the_demo_space_has_at_least_40_candidates():
     assert len({p.name for _, p in candidates}) == len(candidates)
 
 
+def test_element_selection_is_an_axis_and_applies_only_to_multi_level_nrz(tmp_path):
+    body = (
+        'base = "base.toml"\n[vary]\nlevels = [2, 9]\noutput_kind = ["pdm", "nrz"]\n'
+        'element_selection = ["thermometer", "data-weighted"]\n'
+    )
+    (tmp_path / "base.toml").write_text('name = "b"\n[impairments]\npart_seed = 3\n')
+    candidates = enumerate_candidates(load_space(write_space(tmp_path, body)))
+    picked = {(p.modulator.levels, p.output.kind, p.impairments.element_selection)
+              for _, p in candidates}  # fmt: skip
+    # element selection needs a multi-level NRZ output: the schema refuses it elsewhere, and
+    # PDM is single-bit only, so PDM keeps the (ideal) thermometer only
+    assert (9, "nrz", "data-weighted") in picked and (9, "nrz", "thermometer") in picked
+    assert not any(kind == "pdm" and sel != "thermometer" for _, kind, sel in picked)
+    names = {p.name for _, p in candidates}
+    assert "9lev-nrz-data-weighted" in names and len(names) == len(candidates)
+
+
 @pytest.mark.parametrize(
     ("body", "message"),
     [

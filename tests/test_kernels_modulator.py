@@ -393,3 +393,30 @@ def test_feed_in_kernels_equal_python_twin(order, kind, rng):
             assert got[2] == expected[2]
             np.testing.assert_array_equal(got[3], expected[3])
             assert got[4] == expected[4]
+
+
+@pytest.mark.parametrize("dither", [0.0, 0.5])
+def test_feedforward_sum_of_zeros_keeps_the_sign_of_the_plain_sum(dither, rng):
+    # The feedforward kernels sum the weighted states from the first product, not from 0.0
+    # (one addition less on the critical path). The two sums differ only where both are zero:
+    # from 0.0 the sum is +0.0, from the first product -0.0 when every product is -0.0, which a
+    # single-bit quantizer would read as -1 (IEEE 754 signed zeros). A loop at rest whose
+    # weights are all negative makes exactly that sum at its first sample (a short silent input:
+    # that loop is not stable, and states past the guard's bound would send the block to the
+    # guarded loop anyway); the kernel must still give the twin's numbers.
+    loop = make_loop(5, "feedforward", "designed", rng)
+    negative = dataclasses.replace(loop, output_weight=-np.abs(loop.output_weight))
+    program = np.concatenate([np.zeros(5), 0.4 * np.sin(np.arange(3000) * 0.01)])
+    dscale = dither * 2.0
+    for this, u in ((loop, program), (negative, np.zeros(16))):  # the guard never acts on the 16
+        expected = twin(
+            u, coefficients(this), np.zeros(5), 12345, np.zeros(5), 0, 1, 2, dscale, 1e9, 1e12, True
+        )
+        got = run_kernel(_kernel_key(this), this, u, 2, dscale, 1e9, 1e12, True, np.zeros(5))
+        assert got[4] == expected[4]
+        np.testing.assert_array_equal(got[0], expected[0])
+        if dither == 0.0:
+            assert got[0][0] == 1.0  # copysign(1, +0.0): the plain sum's reading of zero
+        # states bit for bit, signed zeros included
+        np.testing.assert_array_equal(got[1].view(np.int64), np.asarray(expected[1]).view(np.int64))
+        np.testing.assert_array_equal(got[3], expected[3])

@@ -94,3 +94,60 @@ def test_compiled_loops_missing_answers_from_the_cache_files():
         np.empty((0, 1)),
     )
     assert loop_cache.compiled_loops_missing() is False
+
+
+def test_designs_are_read_back_from_disk_unchanged(cache_home, monkeypatch):
+    # every design a render needs is remembered on disk (audiodsm/disk_cache.py); a process
+    # whose in-memory caches are empty reads them back, the same numbers, arrays read-only
+    from audiodsm.measure import bands, weighting
+    from audiodsm.stages import downsample, filter_design, upsample
+
+    def clear():
+        for fn in (
+            upsample._design_upsampler_cached,
+            downsample._design_downsampler_cached,
+            bands._design,
+            weighting._design,
+        ):
+            fn.cache_clear()
+
+    def build():
+        return (
+            upsample.design_upsampler(48000, 64),
+            downsample.design_downsampler(3072000, 48000),
+            filter_design.analog_prototype("butterworth", order=3, cutoff_hz=60000.0),
+            bands.band_limit_filter(48000.0),
+            weighting.weighting_filter("a", 48000.0),
+        )
+
+    clear()
+    first = build()
+
+    def no_design(*args, **kwargs):
+        raise AssertionError("a design ran again")
+
+    for module, name in [
+        (upsample, "_design_upsampler_fresh"),
+        (downsample, "_design_downsampler_fresh"),
+        (filter_design, "_unit_prototype"),
+        (bands, "_design_sections"),
+        (weighting, "_fitted_design"),
+    ]:
+        monkeypatch.setattr(module, name, no_design)
+    clear()
+    again = build()
+    up, down, analog = again[:3]
+    assert up is not first[0]
+    for name in ("compensator_taps", "final_taps", "final_image_levels_db"):
+        np.testing.assert_array_equal(getattr(up, name), getattr(first[0], name))
+        assert not getattr(up, name).flags.writeable
+    for mine, theirs in zip(up.halfband_taps, first[0].halfband_taps, strict=True):
+        np.testing.assert_array_equal(mine, theirs)
+        assert not mine.flags.writeable
+    np.testing.assert_array_equal(down.rational_taps, first[1].rational_taps)
+    assert not down.rational_taps.flags.writeable
+    assert down.delay_seconds == first[1].delay_seconds
+    for name in ("a", "b", "c", "d"):
+        np.testing.assert_array_equal(getattr(analog, name), getattr(first[2], name))
+    np.testing.assert_array_equal(again[3], first[3])
+    np.testing.assert_array_equal(again[4], first[4])

@@ -48,6 +48,7 @@ def test_json_lines_carry_every_metric(measured):
         if not v["valid"]:
             assert record["metrics"][k] is None
     assert record["rate_hz"] == 48000
+    assert record["modulator_samples"] > 0
     # the command reports what the library measures for the same profile and plan
     lib = run_battery(
         load_profile(folder / "tiny.toml"), plan=BatteryPlan.quick(), tests=("dynamic_range",)

@@ -47,3 +47,15 @@ def test_linear_programme_reaches_the_parks_mcclellan_optimum():
         ref = signal.remez(two_k, [0, 2 * pass_frac], [1.0], fs=1.0)
         best = _halfband_error(ref, pass_frac)
         assert ours == pytest.approx(best, rel=0.03), two_k
+
+
+def test_fir_response_gives_scipy_freqz_bit_for_bit(rng):
+    # the reference is scipy.signal.freqz with an array of frequencies: fir_response evaluates
+    # the same polynomial the same way with numpy alone (the chain's calibration uses it)
+    from audiodsm.stages.rate_common import fir_response
+
+    for taps in (_halfband_full(_halfband(PASS_EDGE / 2, 1e-5)), rng.standard_normal(37), [1.0]):
+        for rate in (48000.0, 3072000.0):
+            freq = np.concatenate([[0.0, 997.0, 20000.0], rng.uniform(0.0, rate / 2, 50)])
+            want = signal.freqz(taps, worN=freq, fs=rate)[1]
+            np.testing.assert_array_equal(fir_response(taps, freq, rate), want)

@@ -115,3 +115,25 @@ def test_bad_inputs_raise_parameter_errors():
         fit_sine(x, rate_hz=RATE, frequency_hz=30000.0)
     with pytest.raises(ParameterError, match="x="):
         fit_sine(x[:5], rate_hz=RATE)
+
+
+def test_remembered_fit_columns_are_the_fresh_ones():
+    # Short column pairs are remembered per process (the battery fits the same tone on many
+    # captures of one length): the same bits as computed afresh, read-only, and the textbook
+    # cos/sin of 2 pi f n / rate (to 1e-12: the phase is reduced to whole cycles first)
+    from audiodsm.measure.noise import _harmonic_columns, _harmonic_pair
+    from audiodsm.measure.sine_fit import _columns, _phase_columns
+
+    c, s = _phase_columns(0, 19200, 997.0, 48000.0)
+    again = _phase_columns(0, 19200, 997.0, 48000.0)
+    assert again[0] is c and again[1] is s
+    assert not c.flags.writeable and not s.flags.writeable
+    fresh = _columns(0, 19200, 997.0, 48000.0)
+    np.testing.assert_array_equal(c, fresh[0])
+    np.testing.assert_array_equal(s, fresh[1])
+    n = np.arange(19200)
+    np.testing.assert_allclose(c, np.cos(2 * np.pi * 997.0 * n / 48000.0), atol=1e-12)
+    h = _harmonic_columns(2991.0, 48000.0, 19200)
+    assert _harmonic_columns(2991.0, 48000.0, 19200)[0] is h[0] and not h[0].flags.writeable
+    for a, b in zip(h, _harmonic_pair(2991.0, 48000.0, 19200), strict=True):
+        np.testing.assert_array_equal(a, b)

@@ -64,7 +64,8 @@ BS468_TABLE = [
     (31500.0, -42.7, 2.8, INF),
 ]
 
-RATES = [44100.0, 48000.0, 96000.0, 192000.0]
+#: every audio rate, whose filters are shipped as constants (measure/_weighting_sections.py)
+RATES = [44100.0, 48000.0, 88200.0, 96000.0, 176400.0, 192000.0]
 
 
 def _response_db(sos, freqs, rate):
@@ -187,6 +188,30 @@ def test_digital_filter_at_modulator_rate_spot_check():
     f = np.array([31.5, 1000.0, 6300.0, 20000.0])
     for kind in ("a", "ccir"):
         dev = _response_db(weighting_filter(kind, rate), f, rate) - weighting_db(f, kind)
+        assert np.max(np.abs(dev)) < 0.1
+
+
+@pytest.mark.parametrize("kind", ["a", "ccir"])
+@pytest.mark.parametrize("rate", RATES)
+def test_shipped_filters_are_the_fit_run_again(kind, rate):
+    # The filters at the audio rates are shipped constants, so every process weights with the
+    # same bits. The fit they came from, run again here, must give the same response within
+    # 1e-6 dB (between processes it moves by about 1e-10 dB); the shipped filters meet the
+    # IEC 61672-1 and BS.468-4 tables in the tests above (same rates).
+    from audiodsm.measure._weighting_sections import SHIPPED_SECTIONS
+    from audiodsm.measure.weighting import _fitted_design
+
+    shipped = weighting_filter(kind, rate)
+    np.testing.assert_array_equal(shipped, np.array(SHIPPED_SECTIONS[(kind, rate)]))
+    f = np.geomspace(10.0, 20000.0, 800)
+    fresh = _fitted_design(kind, rate)
+    diff = _response_db(shipped, f, rate) - _response_db(fresh, f, rate)
+    assert np.max(np.abs(diff)) < 1e-6
+    # and a rate off the table is still designed by the fit, within the design target
+    if rate == RATES[0]:
+        other = 50000.0
+        assert (kind, other) not in SHIPPED_SECTIONS
+        dev = _response_db(weighting_filter(kind, other), f, other) - weighting_db(f, kind)
         assert np.max(np.abs(dev)) < 0.1
 
 

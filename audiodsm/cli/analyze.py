@@ -17,8 +17,6 @@ import sys
 import click
 
 from audiodsm.errors import AudiodsmError, AudioFileError
-from audiodsm.evaluate.analyze import analyze_file, format_table, parse_span
-from audiodsm.io import audio_info
 
 __all__ = ["analyze"]
 
@@ -56,6 +54,10 @@ def analyze(files, as_json, span_text, no_progress):
     32/64-bit float; 1 to 8 channels at 44.1 kHz or more. Exit code 0 when every file was
     measured, 2 when any file was bad (the others are still measured).
     """
+    # the measurement stack is imported when the command runs, not for ``audiodsm --help``
+    from audiodsm.evaluate.analyze import analyze_file, format_table, parse_span
+    from audiodsm.io import audio_info
+
     span_s = None if span_text is None else parse_span(span_text)
     bad = printed = 0
     for path in files:

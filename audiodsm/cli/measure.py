@@ -6,7 +6,7 @@ each profile's battery notes. With ``--json``, stdout carries only one JSON obje
 profile, one per line::
 
     {"profile": str, "file": str, "digest": str, "rate_hz": int, "seconds": float,
-     "metrics": {metric name: number | bool | null, ...},
+     "modulator_samples": int, "metrics": {metric name: number | bool | null, ...},
      "validity": {metric name: {"valid": bool, "reason": str}, ...}, "notes": [str, ...]}
 
 An invalid reading is ``null`` in ``metrics`` and ``"valid": false`` with its reason in
@@ -177,6 +177,7 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, parts, plots_folder
                 "digest": res.digest,
                 "rate_hz": res.rate_hz,
                 "seconds": round(res.seconds, 3),
+                "modulator_samples": int(getattr(res, "modulator_samples", 0)),
                 "metrics": res.json_metrics(),
                 "validity": res.validity(),
                 "notes": list(res.notes),
@@ -206,8 +207,13 @@ def measure(profiles, as_json, jobs, seed, short, scheduler, parts, plots_folder
             if spread:
                 spreads.append((prof.name, len(mine), spread))
             seconds = sum(r.seconds for _, r in mine)
+            samples = sum(getattr(r, "modulator_samples", 0) for _, r in mine)
             what = "" if len(mine) == 1 else f" ({len(mine)} parts)"
-            click.echo(f"{prof.name}: measured{what} in {seconds:.1f} s ({path})", err=True)
+            click.echo(
+                f"{prof.name}: measured{what} in {seconds:.1f} s, "
+                f"{samples / 1e6:.1f} M modulator samples simulated ({path})",
+                err=True,
+            )
     if not as_json:
         click.echo(metrics_table(names, rows, invalid, notes))
         for name, count, spread in spreads:

@@ -25,7 +25,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.polynomial import legendre
-from scipy import optimize
 
 from audiodsm.errors import ParameterError
 from audiodsm.limits import DESIGN_OSR_RANGE, ORDER_RANGE, ZERO_LAYOUTS
@@ -154,6 +153,8 @@ class NoiseTransfer:
         best_i = int(np.argmax(mag))
         best_gain, best_freq = float(mag[best_i]), float(grid[best_i])
         candidates = interior[np.argsort(mag[interior])[::-1][:4]]
+        from scipy import optimize  # imported where a refined peak is asked for
+
         for i in candidates:
             res = optimize.minimize_scalar(
                 lambda f: -self._magnitude(f),
@@ -592,6 +593,8 @@ class NoiseTransfer:
                 if v == 0:
                     log_t = x
                 else:
+                    from scipy import optimize  # imported where a design needs it
+
                     log_t = optimize.brentq(excess, x, prev_x, xtol=1e-14, rtol=1e-15, maxiter=200)
                 poles = _canonical(_butterworth_highpass_poles(order, math.exp(log_t)))
                 return cls(

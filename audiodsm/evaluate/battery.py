@@ -41,6 +41,12 @@ The tests
     reconstructed output at the modulator rate (AES17 practice for DAC images).
 ``intermodulation``
     SMPTE (60 Hz + 7 kHz, 4:1) and difference-frequency (19 + 20 kHz, 1:1) twin tones.
+``element_mismatch``
+    For NRZ outputs with mismatched unit elements: the -1 dBFS THD+N and -60 dBFS dynamic
+    range as built and with ideal elements, same dither (what the mismatch costs).
+``jitter_sweep``
+    The -60 dBFS dynamic range with 1, 10 and 100 ps rms of white jitter on the output edges
+    (PDM and NRZ). Both are in :mod:`audiodsm.evaluate.battery_impairments`.
 
 Every test's durations are set by a :class:`BatteryPlan`. The default plan keeps the battery of
 a 5th-order single-bit 64x profile within about 20 s on two cores; its resolution is stated in
@@ -64,10 +70,12 @@ import numpy as np
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.evaluate.battery_assembly import _assemble
+from audiodsm.evaluate.battery_impairments import _test_jitter, _test_mismatch
 from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
     _run_seed,
+    _take_modulator_samples,
     _test_class_d_stage,
     _test_dc,
     _test_dynamic_range,
@@ -108,6 +116,8 @@ TEST_NAMES = (
     "thd_n_vs_frequency",
     "images",
     "intermodulation",
+    "element_mismatch",
+    "jitter_sweep",
     "class_d_stage",
 )
 
@@ -132,6 +142,58 @@ METRIC_UNITS = {
         "dBFS",
         "in-band noise 1 ps rms of white clock jitter adds, from the output's mean squared "
         "step (PDM, NRZ; PWM: of its edges; scales as 20 log10 of the jitter)",
+    ),
+    "output_step_rms_fs": (
+        "dynamic_range",
+        "FS",
+        "rms step between successive output samples (full-scale units; PWM: of a frame's "
+        "edges); the jitter noise goes with its square",
+    ),
+    "jitter_dynamic_range_db_at_1ps": (
+        "jitter_sweep",
+        "dB",
+        "dynamic range (unweighted, -60 dBFS) with 1 ps rms white jitter on the output edges",
+    ),
+    "jitter_dynamic_range_db_at_10ps": (
+        "jitter_sweep",
+        "dB",
+        "dynamic range (unweighted, -60 dBFS) with 10 ps rms white jitter on the output edges",
+    ),
+    "jitter_dynamic_range_db_at_100ps": (
+        "jitter_sweep",
+        "dB",
+        "dynamic range (unweighted, -60 dBFS) with 100 ps rms white jitter on the output edges",
+    ),
+    "analog_noise_dbfs": (
+        "dynamic_range",
+        "dBFS",
+        "in-band noise of the analog noise floor alone (density^2 x 20 Hz..20 kHz), unweighted "
+        "(none without a noise density)",
+    ),
+    "analog_noise_dbfs_a": (
+        "dynamic_range",
+        "dBFS",
+        "in-band noise of the analog noise floor alone, A-weighted",
+    ),
+    "mismatch_free_thd_n_db_at_minus1_dbfs": (
+        "element_mismatch",
+        "dB",
+        "THD+N at -1 dBFS with ideal unit elements (NRZ with element mismatch only)",
+    ),
+    "mismatch_free_dynamic_range_db_a": (
+        "element_mismatch",
+        "dB",
+        "A-weighted dynamic range with ideal unit elements (NRZ with element mismatch only)",
+    ),
+    "mismatch_thd_n_cost_db": (
+        "element_mismatch",
+        "dB",
+        "how much the unit elements' mismatch raises the -1 dBFS THD+N (same dither)",
+    ),
+    "mismatch_dynamic_range_cost_db": (
+        "element_mismatch",
+        "dB",
+        "how much the unit elements' mismatch lowers the A-weighted dynamic range (same dither)",
     ),
     "thd_n_db_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS"),
     "thd_n_db_a_at_minus1_dbfs": ("level_sweep", "dB", "THD+N at -1 dBFS, A-weighted"),
@@ -161,6 +223,11 @@ METRIC_UNITS = {
         "idle",
         "dBFS",
         "DC at the output during silence (a DC of full-scale value reads +3.01 dBFS)",
+    ),
+    "dc_offset_fs": (
+        "idle",
+        "FS",
+        "DC at the output during silence, signed, as a fraction of full scale",
     ),
     "idle_tone_max_dbfs": (
         "idle",
@@ -276,6 +343,10 @@ class BatteryPlan:
         Tone levels of the THD+N-against-frequency sweep; -1 and -20 dBFS give its metrics.
     frequency_sweep_s : float
         Each tone of that sweep (short: the 1/3-octave centres make 31 tones per level).
+    frequency_sweep_step : int
+        Every how many of the 1/3-octave centres the sweep takes a tone (1: every centre;
+        2: every second, a 2/3-octave grid). The top frequency (20 kHz) and 997 Hz are
+        always in.
     image_tone_hz : float
         In-band tone of the image test.
     image_s : float
@@ -298,6 +369,9 @@ class BatteryPlan:
     false_alarm : float
         Probability that noise alone triggers a line anywhere in the battery (shared out over
         all the captures searched for idle tones).
+    jitter_sigmas_s : tuple of float
+        White edge jitter (rms, seconds) of the dynamic-range-against-jitter runs; 1, 10 and
+        100 ps give the ``jitter_dynamic_range_db_at_*`` metrics.
     """
 
     settle_s: float = 0.1
@@ -313,6 +387,7 @@ class BatteryPlan:
     response_level_dbfs: float = -6.0
     frequency_sweep_levels_dbfs: tuple = (-1.0, -20.0)
     frequency_sweep_s: float = 0.1
+    frequency_sweep_step: int = 1
     image_tone_hz: float = 17000.0
     image_s: float = 0.5
     composite_level_dbfs: float = -6.0
@@ -323,6 +398,7 @@ class BatteryPlan:
     histogram_samples: int = 1 << 17
     histogram_bins: int = 64
     false_alarm: float = 0.01
+    jitter_sigmas_s: tuple = (1e-12, 1e-11, 1e-10)
 
     @classmethod
     def quick(cls) -> BatteryPlan:
@@ -336,6 +412,7 @@ class BatteryPlan:
             dc_s=0.4,
             response_s=0.4,
             frequency_sweep_s=0.1,
+            frequency_sweep_step=2,  # a 2/3-octave grid: the sweep was half the short plan
             image_s=0.3,
             imd_s=0.4,
             stability_samples=1 << 20,  # long runs even in a preview: see probe_stability
@@ -367,6 +444,9 @@ class BatteryPlan:
             raise ParameterError(
                 "plan.sweep_levels_dbfs", self.sweep_levels_dbfs, "levels from -160 to 0 dBFS"
             )
+        step = self.frequency_sweep_step
+        if isinstance(step, bool) or not isinstance(step, (int, np.integer)) or not 1 <= step <= 8:
+            raise ParameterError("plan.frequency_sweep_step", step, "an integer from 1 to 8")
         if not self.frequency_sweep_levels_dbfs or any(
             not (-160.0 <= float(v) <= 0.0) for v in self.frequency_sweep_levels_dbfs
         ):
@@ -389,6 +469,12 @@ class BatteryPlan:
         if not (float(self.image_tone_hz).is_integer() and 20.0 <= self.image_tone_hz <= 20000.0):
             raise ParameterError(
                 "plan.image_tone_hz", self.image_tone_hz, "a whole number of Hz, 20 to 20000"
+            )
+        if not self.jitter_sigmas_s or any(
+            isinstance(v, bool) or not (0.0 < float(v) <= 1e-8) for v in self.jitter_sigmas_s
+        ):
+            raise ParameterError(
+                "plan.jitter_sigmas_s", self.jitter_sigmas_s, "jitter from 0 to 10 ns (seconds)"
             )
         if not (self.histogram_bins >= 4 and self.histogram_samples >= 1024):
             raise ParameterError(
@@ -425,6 +511,11 @@ class BatteryResult:
         Metric name -> why its reading is invalid (the loop overloaded, the tone was lost, the
         output clipped, the value is impossible, ...). Those metrics read None in
         ``metrics``; every metric not named here is valid.
+    modulator_samples : int
+        Modulator samples the battery simulated, every channel counted: each chain run's
+        input frames (settling and tail included) times the OSR, plus the state trace. The
+        stability search is design work read from the loop cache (docs/loops.md) and is not
+        counted. 0 in results written before this count existed.
     """
 
     profile_name: str
@@ -437,6 +528,7 @@ class BatteryResult:
     plan: BatteryPlan = field(repr=False)
     run_seconds: dict = field(default_factory=dict, repr=False)
     invalid: dict = field(default_factory=dict)
+    modulator_samples: int = 0
 
     def json_metrics(self) -> dict:
         """The metrics with non-finite floats as None (JSON has no inf or NaN)."""
@@ -478,6 +570,12 @@ def _dc_offsets(plan):
         return []
     mags = np.geomspace(plan.dc_range[0], plan.dc_range[1], plan.dc_offsets)
     return [float(s * m) for s in (1.0, -1.0) for m in mags]
+
+
+def _sweep_frequencies(step):
+    """Every ``step``-th frequency of the response grid, 20 kHz and 997 Hz always included."""
+    grid = _response_frequencies()
+    return sorted({*grid[::step], grid[-1], 997.0})
 
 
 def _probe_levels(msa, steps_db):
@@ -579,7 +677,7 @@ def run_battery(
         tones = [
             (float(lv), f)
             for lv in sorted({float(v) for v in plan.frequency_sweep_levels_dbfs}, reverse=True)
-            for f in _response_frequencies()
+            for f in _sweep_frequencies(plan.frequency_sweep_step)
         ]
         for part in _chunks(tones, 8):
             runs.append(("THD+N vs frequency", _test_frequency_sweep, (part,)))
@@ -587,6 +685,11 @@ def run_battery(
         runs.append(("images", _test_images, ()))
     if "intermodulation" in tests:
         runs.append(("intermodulation", _test_imd, ()))
+    if "element_mismatch" in tests:
+        runs.append(("element mismatch", _test_mismatch, ()))
+    if "jitter_sweep" in tests:
+        for sigma in sorted({float(v) for v in plan.jitter_sigmas_s}):
+            runs.append(("DR vs jitter", _test_jitter, (sigma,)))
     if "class_d_stage" in tests:
         runs.append(("class-D stage", _test_class_d_stage, ()))
     total = len(runs) + ("stability" in tests)  # the overload probes follow the stability run
@@ -598,11 +701,13 @@ def run_battery(
     results = []
     run_seconds = {}
     done = 0
+    simulated = 0
 
     def timed(fn, *args):
         t0 = time.perf_counter()
+        _take_modulator_samples()  # this thread's count starts at zero for the run
         out = fn(*args)
-        return out, time.perf_counter() - t0
+        return out, time.perf_counter() - t0, _take_modulator_samples()
 
     workers = max(1, min(int(jobs), total))
     # One BLAS thread per worker: the runs already fill the cores, and a multi-threaded BLAS
@@ -619,8 +724,9 @@ def run_battery(
                 finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
                 for fut in finished:
                     label = pending.pop(fut)
-                    part, spent = fut.result()
+                    part, spent, samples = fut.result()
                     run_seconds[label] = run_seconds.get(label, 0.0) + spent
+                    simulated += samples
                     results.append(part)
                     done += 1
                     if progress is not None:
@@ -644,4 +750,5 @@ def run_battery(
         plan=plan,
         run_seconds=run_seconds,
         invalid=invalid,
+        modulator_samples=int(simulated),
     )

@@ -37,6 +37,10 @@ _SCALARS = (
     "out_of_band_noise_dbfs",
     "carrier_ripple_dbfs",
     "jitter_noise_dbfs_at_1ps",
+    "output_step_rms_fs",
+    "analog_noise_dbfs",
+    "analog_noise_dbfs_a",
+    "dc_offset_fs",
     "idle_noise_dbfs",
     "idle_noise_dbfs_a",
     "idle_noise_dbfs_ccir",
@@ -366,6 +370,9 @@ def _assemble(results, tests, plan, profile):
             f"numeric floor); reported as {NUMERIC_FLOOR_DBFS:g} dBFS"
         )
     _impossible(metrics, invalid, floor)
+    from audiodsm.evaluate.battery_impairments import assemble_impairments
+
+    assemble_impairments(results, metrics, curves, notes, invalid)
     if stab is not None and not msa_amp > 0.0:
         why = "the loop has no stable amplitude: it overloads at every amplitude probed"
         for k in metrics:
@@ -409,7 +416,13 @@ def _assemble_frequency_sweep(points, metrics, curves, notes, invalid, plan):
         if bad:
             invalid[metric] = f"{len(bad)} of {len(freqs)} tones invalid (first: {bad[0][1]})"
     notes.append(
-        f"THD+N vs frequency: {len(freqs)} tones (1/3-octave centres, 20 Hz..20 kHz) at "
+        f"THD+N vs frequency: {len(freqs)} tones ("
+        + (
+            "1/3-octave centres"
+            if plan.frequency_sweep_step == 1
+            else f"one in {plan.frequency_sweep_step} of the 1/3-octave centres"
+        )
+        + ", 20 Hz..20 kHz) at "
         + ", ".join(f"{v:g}" for v in levels)
         + f" dBFS, {plan.frequency_sweep_s:g} s each after {plan.settle_s:g} s settling, "
         "fundamental removed by a 3-parameter fit, 20 Hz..20 kHz"

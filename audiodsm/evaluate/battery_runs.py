@@ -11,6 +11,7 @@ measures.
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import replace
 
 import numpy as np
@@ -58,6 +59,27 @@ def _run_seed(profile_seed: int, seed: int, index: int) -> int:
     return int(ss.generate_state(1, dtype=np.uint64)[0] >> np.uint64(1))
 
 
+#: Modulator samples simulated by the run on this thread (see _take_modulator_samples).
+_SIMULATED = threading.local()
+
+
+def _count_modulator_samples(n: int) -> None:
+    """Add ``n`` modulator samples (all channels) to this thread's count."""
+    _SIMULATED.samples = getattr(_SIMULATED, "samples", 0) + int(n)
+
+
+def _take_modulator_samples() -> int:
+    """Read and reset the count of modulator samples simulated on this thread.
+
+    Each battery run executes on one thread, so the battery reads the count of every run
+    around its call: chain runs count their input frames (settling and tail included) times
+    the OSR times the channels, and the state trace its samples.
+    """
+    n = getattr(_SIMULATED, "samples", 0)
+    _SIMULATED.samples = 0
+    return n
+
+
 def _chain_run(profile, x, *, rate, keep=("listening",)):
     """Run ``x`` ((n,) or (n, channels)) through the chain with one thread per call.
 
@@ -77,6 +99,9 @@ def _chain_run(profile, x, *, rate, keep=("listening",)):
         taper = 0.5 * (1.0 + np.cos(np.pi * np.arange(1, fade + 1) / fade))
         x[len(x) - fade :] *= taper[:, None] if x.ndim == 2 else taper
     res = run_chain(profile, x, rate_hz=rate, keep=keep, listening_rate_hz=rate, threads=1)
+    channels = x.shape[1] if x.ndim == 2 else 1
+    osr = int(round(res.modulator_rate_hz / rate))
+    _count_modulator_samples(x.shape[0] * osr * channels)
     if res.listening is not None:
         tail = int(round(_TAIL_S * rate))
         res = replace(res, listening=res.listening[: len(res.listening) - tail])
@@ -380,10 +405,19 @@ def _test_dynamic_range(ctx, profile):
         "carrier ripple: the output's power inside each frame beyond the frame mean, over the "
         "whole run"
     )
-    jitter, why = _jitter_sensitivity(profile, res, rate, plan.settle_s)
+    jitter, step_rms, why = _jitter_sensitivity(profile, res, rate, plan.settle_s)
     out["jitter_noise_dbfs_at_1ps"] = jitter
+    out["output_step_rms_fs"] = step_rms
     if why:
-        out["invalid"] = {**out["invalid"], "jitter_noise_dbfs_at_1ps": why}
+        out["invalid"] = {
+            **out["invalid"],
+            "jitter_noise_dbfs_at_1ps": why,
+            "output_step_rms_fs": why,
+        }
+    from audiodsm.evaluate.battery_impairments import ANALOG_NOISE_METRICS, analog_noise_floor
+
+    floor = analog_noise_floor(profile, res.gain)
+    out.update({k: None for k in ANALOG_NOISE_METRICS} if floor is None else floor)
     out["curve_spectrum"] = {
         "frequency_hz": spec.freq_hz,
         "level_dbfs": spec.bins_dbfs(),
@@ -419,8 +453,10 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
 
     Returns
     -------
-    (float or None, str)
-        The level, and why it is missing (empty when it is not).
+    (float or None, float or None, str)
+        The level, the rms step between successive output samples (listening full-scale
+        units; the jitter noise goes with its square), and why they are missing (empty when
+        they are not).
     """
     from audiodsm.stages.chain import Chain
 
@@ -439,7 +475,8 @@ def _jitter_sensitivity(profile, res, rate, settle_s):
         steps = np.diff(m) * (chain.stage_gain / chain.gain)  # listening full-scale units
         mean_square = float(np.mean(steps * steps))
     power = (1e-12 * fm) ** 2 * mean_square * 2.0 * _BAND[1] / fm
-    return (10.0 * math.log10(power / 0.5) if power > 0 else -math.inf), ""
+    level = 10.0 * math.log10(power / 0.5) if power > 0 else -math.inf
+    return level, math.sqrt(mean_square), ""
 
 
 def _test_level_sweep(ctx, profile, levels):
@@ -496,9 +533,12 @@ def _test_idle(ctx, profile):
     dc = float(np.mean(y[settle:]))
     faults = "; ".join(_run_faults(res.stats, 0, y[settle:]))
     out = {
-        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz")} if faults else {},
+        "invalid": {k: faults for k in (*_FLOORED_METRICS, "switching_rate_hz", "dc_offset_fs")}
+        if faults
+        else {},
         "silence_faults": faults,
         "dc_offset_dbfs": 20.0 * math.log10(abs(dc) * math.sqrt(2.0)) if dc else -math.inf,
+        "dc_offset_fs": dc,
         "idle_noise_dbfs": r.noise_dbfs["unweighted"],
         "idle_noise_dbfs_a": r.noise_dbfs["a"],
         "idle_noise_dbfs_ccir": r.noise_dbfs["ccir"],
@@ -583,6 +623,7 @@ def _test_stability(ctx, profile):
         t = np.arange(n)
         x = limit.stable_amplitude * np.sin(2 * np.pi * _TEST_HZ / chain.modulator_rate_hz * t)
         _, states = chain.modulator.trace_states(x)
+        _count_modulator_samples(n)
         states = np.asarray(states, dtype=float).reshape(n, -1)
         edges, counts = [], []
         for k in range(states.shape[1]):

@@ -10,9 +10,13 @@ This is the only module that imports Dask (``dask.distributed``). Batch work (``
   task is sent, every worker reports ``audiodsm.__version__`` and a digest of the package's
   source files (:func:`code_digest`); a worker that differs from this process, an unreachable
   scheduler or a scheduler without workers raises :class:`~audiodsm.errors.ClusterError`.
-* Each worker loads the compiled loops once, when it joins (:class:`LoopWarmUp`, a worker
-  plugin): it imports the battery and runs a short loop, so the on-disk numba cache is read
-  before the first task instead of inside it.
+* The compiled loops are loaded before the first task. The local cluster's workers are
+  forked from one process server (multiprocessing's ``forkserver``, where the platform has
+  it) that imports the battery and runs its loops once (:func:`warm_up_loops`, preloaded by
+  ``audiodsm.evaluate._worker_preload``): every worker, and every worker restarted after a
+  crash, starts with the loops in memory. A worker of a named scheduler (started by Dask's
+  own commands) warms up when it joins (:class:`LoopWarmUp`, a worker plugin running the
+  same warm-up).
 * Workers of the local cluster inherit this process's environment unchanged (Dask would set
   the BLAS and OpenMP thread counts to 1, which changes numpy's results in the last bits), so
   a batch on the local cluster equals a serial one bit for bit. Remote workers give the same
@@ -35,6 +39,9 @@ from __future__ import annotations
 
 import hashlib
 import logging
+import multiprocessing
+import os
+import sys
 import time
 import warnings
 from collections.abc import Callable, Sequence
@@ -64,6 +71,8 @@ ALLOWED_FAILURES = 2
 _CONNECT_TIMEOUT_S = 10.0
 #: Seconds a local cluster may take to start its workers (cold imports on a busy machine).
 _LOCAL_START_TIMEOUT_S = 120.0
+#: The module the local cluster's process server imports before it forks the workers.
+_PRELOAD_MODULE = "audiodsm.evaluate._worker_preload"
 
 
 @dataclass(frozen=True)
@@ -81,9 +90,14 @@ class ClusterInfo:
     dashboard : str
         The Dask dashboard's address, "" when there is none.
     start_s : float
-        Seconds from asking for the cluster to having workers.
+        Seconds from asking for the cluster to having workers (on a local cluster, the
+        process server's warm-up included).
     warm_up_s : float
-        The slowest worker's warm-up (imports and first compiled loop), seconds.
+        The slowest worker's own warm-up before its first task (what it still had to import
+        or load), seconds.
+    preload_s : float
+        The warm-up done once in the local cluster's process server before the workers were
+        forked from it (imports and compiled loops), seconds; 0 when there is none.
     """
 
     address: str
@@ -92,6 +106,7 @@ class ClusterInfo:
     dashboard: str
     start_s: float
     warm_up_s: float
+    preload_s: float = 0.0
 
 
 def code_digest() -> str:
@@ -117,12 +132,50 @@ def worker_identity() -> tuple:
     return (__version__, code_digest())
 
 
+#: Chains run by :func:`warm_up_loops`: the default profile (a 5th-order single-bit PDM
+#: loop at 64x) and a multi-level NRZ one, which between them load every kernel family the
+#: battery calls (rate converters, modulator, output stage, reconstruction filter).
+_WARM_UP_PROFILES = (
+    {"name": "warm-up pdm"},
+    {"name": "warm-up nrz", "modulator": {"levels": 17}, "output": {"kind": "nrz"}},
+)
+
+
+def warm_up_loops() -> float | None:
+    """Import the battery and run the compiled loops it calls once; return the seconds.
+
+    Runs each chain of ``_WARM_UP_PROFILES`` on 20 ms of a tone (loading its kernels from
+    numba's on-disk cache, or compiling them on a fresh checkout, and its loop design from the
+    loop cache) and the battery's measurement modules. Never raises: a failure returns None
+    and the worker loads what it needs at its first task instead.
+    """
+    start = time.perf_counter()
+    try:
+        import numpy as np
+
+        import audiodsm.evaluate.battery  # noqa: F401  (the battery and the chain's stages)
+        from audiodsm.evaluate import battery_runs
+        from audiodsm.profile import profile_from_dict
+        from audiodsm.stages.chain import run_chain
+
+        rate = 48000
+        x = 0.1 * np.sin(2 * np.pi * 997.0 / rate * np.arange(rate // 50))
+        for settings in _WARM_UP_PROFILES:
+            res = run_chain(profile_from_dict(settings), x, rate_hz=rate, threads=1)
+            battery_runs._meter(res.listening[:, 0], rate, 997.0, ("unweighted", "a"), 0.005)
+        battery_runs._take_modulator_samples()
+    except Exception:  # the warm-up is an optimisation: the tasks load what is missing
+        return None
+    return time.perf_counter() - start
+
+
 class LoopWarmUp(WorkerPlugin):
     """Worker plugin: load the battery and the compiled loops once, when a worker starts.
 
-    ``setup`` imports the battery module and runs a 2nd-order loop on 256 samples, which
-    reads the generated loop and the kernels from numba's on-disk cache (or compiles them
-    once). The seconds it took are kept on the worker as ``audiodsm_warm_up_s``.
+    ``setup`` runs :func:`warm_up_loops` unless the worker was forked from the local
+    cluster's process server, which has run it already (the worker inherits its modules and
+    loops: its own warm-up is then only this check). The seconds are kept on the worker as
+    ``audiodsm_warm_up_s``, and the process server's as ``audiodsm_preload_s``.
     """
 
     name = "audiodsm-loop-warm-up"
@@ -130,20 +183,37 @@ class LoopWarmUp(WorkerPlugin):
 
     def setup(self, worker):
         """Warm the worker up (see the class description)."""
-        import numpy as np
-
         start = time.perf_counter()
-        import audiodsm.evaluate.battery  # noqa: F401  (the battery and the chain's stages)
-        from audiodsm.design.ntf import NoiseTransfer
-        from audiodsm.stages.modulator import Modulator
-
-        ntf = NoiseTransfer.designed(2, osr=64)
-        Modulator(ntf, levels=2).run(np.zeros(256))
+        preloaded = sys.modules.get(_PRELOAD_MODULE)
+        seconds = getattr(preloaded, "SECONDS", None)
+        if seconds is None:
+            warm_up_loops()
+        worker.audiodsm_preload_s = float(seconds or 0.0)
         worker.audiodsm_warm_up_s = time.perf_counter() - start
 
 
 def _warm_up_seconds(dask_worker=None):
-    return float(getattr(dask_worker, "audiodsm_warm_up_s", 0.0))
+    return (
+        float(getattr(dask_worker, "audiodsm_warm_up_s", 0.0)),
+        float(getattr(dask_worker, "audiodsm_preload_s", 0.0)),
+    )
+
+
+def _worker_start_method() -> str:
+    """``forkserver`` where the platform has it (workers share one warm-up), else ``spawn``."""
+    return "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
+
+
+def _preload_process_server():
+    """Have the process server import the warm-up module before it forks a worker.
+
+    Only takes effect when the server is not running yet (the first local cluster of this
+    process); later clusters fork from the same, already warm server.
+    """
+    from distributed.utils import get_mp_context
+
+    context = get_mp_context()  # distributed sets its own preload list on its first call
+    context.set_forkserver_preload(["distributed", _PRELOAD_MODULE])
 
 
 def guarded_call(function: Callable, *args, **kwargs) -> tuple:
@@ -187,11 +257,15 @@ def _open(scheduler: str | None, workers: int):
     # Dask starts workers with OMP/MKL/OPENBLAS_NUM_THREADS=1; numpy's results then differ
     # from this process's in the last bits, so the workers inherit this process's environment
     # as it is, and a batch on the local cluster equals a serial one bit for bit.
+    method = _worker_start_method()
     settings = {
         "distributed.scheduler.allowed-failures": ALLOWED_FAILURES,
         "distributed.nanny.pre-spawn-environ": {},
+        "distributed.worker.multiprocessing-method": method,
     }
     with dask.config.set(settings), warnings.catch_warnings():
+        if method == "forkserver":
+            _preload_process_server()
         # "Port 8787 is already in use": Dask then picks a free port, which we print
         warnings.filterwarnings("ignore", message="Port .* is already in use")
         cluster = LocalCluster(
@@ -202,6 +276,9 @@ def _open(scheduler: str | None, workers: int):
             dashboard_address="127.0.0.1:8787" if _has_dashboard_library() else None,
             silence_logs=logging.CRITICAL,
             timeout=_LOCAL_START_TIMEOUT_S,
+            # a forked worker has the process server's environment, from when that started;
+            # each worker sets this process's environment of now again before its first task
+            env=dict(os.environ),
         )
     try:
         client = Client(cluster, set_as_default=False)
@@ -297,7 +374,8 @@ def run_tasks(
             workers=count,
             dashboard=_dashboard(client),
             start_s=start_s,
-            warm_up_s=max(warm.values(), default=0.0),
+            warm_up_s=max((w for w, _ in warm.values()), default=0.0),
+            preload_s=max((p for _, p in warm.values()), default=0.0),
         )
         if say is not None:
             where = "a local cluster" if info.local else f"scheduler {info.address}"

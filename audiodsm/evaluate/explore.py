@@ -15,6 +15,7 @@ A *space file* (TOML) names a base profile and lists or ranges of settings::
     structure = ["feedback", "feedforward"]
     output_kind = ["pdm", "nrz"]
     filter_order = [2, 3]
+    element_selection = ["thermometer", "data-weighted"]   # multi-level NRZ only
 
     [fixed]
     "reconstruction.cutoff_hz" = 60000.0    # any profile key, "section.key"
@@ -76,6 +77,7 @@ VARY_KEYS = {
     "structure": ("modulator", "structure"),
     "output_kind": ("output", "kind"),
     "filter_order": ("reconstruction", "filter_order"),
+    "element_selection": ("impairments", "element_selection"),
 }
 _TOP_KEYS = {"name", "base", "candidate_limit", "prune_slack_db", "vary", "fixed"}
 #: Largest candidate limit a space file may state.
@@ -197,7 +199,12 @@ def load_space(path) -> DesignSpace:
 
 
 def _label(settings: dict) -> str:
-    short = {"out_of_band_gain": "g", "output_kind": "", "filter_order": "f"}
+    short = {
+        "out_of_band_gain": "g",
+        "output_kind": "",
+        "filter_order": "f",
+        "element_selection": "",
+    }
     parts = []
     for key, value in settings.items():
         if key == "order":

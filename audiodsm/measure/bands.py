@@ -29,7 +29,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 from audiodsm.errors import ParameterError
 
@@ -178,7 +177,15 @@ def run_sos(x, sos, *, state=None, tag=()):
         y = arr.copy()
         zf = zi
     else:
-        y, zf = signal.sosfilt(np.array(sos, dtype=np.float64), arr, axis=0, zi=zi)
+        # scipy.signal.sosfilt(sos, arr, axis=0, zi=zi), bit for bit, by the compiled loop of
+        # the same recursion (no scipy.signal import at run time)
+        from audiodsm.measure._sos_kernel import sos_cascade
+
+        rows = np.array(arr.reshape(arr.shape[0], -1).T, dtype=np.float64, order="C")
+        delays = np.ascontiguousarray(np.moveaxis(zi.reshape(n_sections, 2, -1), 2, 0))
+        sos_cascade(np.array(sos, dtype=np.float64, order="C"), rows, delays)  # one signature
+        y = rows.T.reshape(arr.shape)
+        zf = np.ascontiguousarray(np.moveaxis(delays, 0, 2)).reshape(zi_shape)
     zf.setflags(write=False)
     return y, SosState(tag=tuple(tag), zi=zf)
 
@@ -240,6 +247,22 @@ def _check_edges(rate, upper_hz, lower_hz, stop_db):
 
 @functools.lru_cache(maxsize=64)
 def _design(rate, upper_hz, lower_hz, stop_db):
+    from audiodsm import disk_cache
+
+    # remembered on disk: a later run reads the sections back without importing scipy.signal
+    sos = disk_cache.remembered(
+        "band-limit-sos",
+        (float(rate), upper_hz, lower_hz, float(stop_db)),
+        lambda: _design_sections(rate, upper_hz, lower_hz, stop_db),
+        sources=("measure/bands.py",),
+    )
+    sos.setflags(write=False)
+    return sos
+
+
+def _design_sections(rate, upper_hz, lower_hz, stop_db):
+    from scipy import signal
+
     parts = []
     if upper_hz is not None:
         edge = stop_edge_hz(upper_hz, rate)
@@ -251,9 +274,7 @@ def _design(rate, upper_hz, lower_hz, stop_db):
         )
     if not parts:
         parts.append(np.array([[1.0, 0.0, 0.0, 1.0, 0.0, 0.0]]))
-    sos = np.vstack(parts)
-    sos.setflags(write=False)
-    return sos
+    return np.vstack(parts)
 
 
 def band_limit_filter(
@@ -393,6 +414,8 @@ def band_mask(
         flat = f.ravel()
         if np.any(flat > 0.5 * rate * (1.0 + 1e-9)):
             raise ParameterError("freq_hz", float(flat.max()), f"frequencies up to {0.5 * rate:g}")
+        from scipy import signal
+
         _, h = signal.sosfreqz(sos, worN=flat, fs=rate)
         return (np.abs(h) ** 2).reshape(f.shape)
     if upper_hz is not None and not float(upper_hz) > 0:

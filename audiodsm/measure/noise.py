@@ -6,6 +6,7 @@ with the sample rate passed as ``rate_hz=``, and returns a small frozen result.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -17,6 +18,7 @@ from audiodsm.measure.residual import (
     start_residual_meter,
     update_residual_meter,
 )
+from audiodsm.measure.sine_fit import _REMEMBERED_COLUMNS_MAX
 from audiodsm.measure.spectrum import _as_signal, _check_rate, averaged_spectrum, power_to_dbfs
 from audiodsm.measure.tone import thd_plus_noise
 
@@ -244,6 +246,28 @@ class ClearBandNoise:
     guard_hz: float
 
 
+def _harmonic_columns(freq_hz, rate_hz, count):
+    """The cosine and sine of ``2 pi f / rate * t``, t = 0 .. count-1 (short pairs remembered)."""
+    if count > _REMEMBERED_COLUMNS_MAX:
+        return _harmonic_pair(freq_hz, rate_hz, count)
+    return _remembered_harmonic_pair(freq_hz, rate_hz, count)
+
+
+def _harmonic_pair(freq_hz, rate_hz, count):
+    w = 2.0 * np.pi * freq_hz / rate_hz * np.arange(count)
+    return np.cos(w), np.sin(w)
+
+
+@functools.lru_cache(maxsize=48)
+def _remembered_harmonic_pair(freq_hz, rate_hz, count):
+    # every level of the battery's sweep removes the same harmonics from captures of the
+    # same length: the same bits each time (read-only)
+    pair = _harmonic_pair(freq_hz, rate_hz, count)
+    for a in pair:
+        a.setflags(write=False)
+    return pair
+
+
 def noise_clear_of_harmonics(
     x,
     *,
@@ -314,11 +338,10 @@ def noise_clear_of_harmonics(
     harmonics = f0 * np.arange(1, int((rate / 2) // f0) + 1)
     harmonics = harmonics[harmonics < rate / 2 * (1 - 1e-9)]
     amps, dc = _fit_lines(seg, harmonics, rate)
-    t = np.arange(len(seg))
     model = np.full(len(seg), dc)
     for f, c in zip(harmonics, amps, strict=True):
-        w = 2.0 * np.pi * f / rate * t
-        model += c.real * np.cos(w) - c.imag * np.sin(w)
+        cos_w, sin_w = _harmonic_columns(float(f), float(rate), len(seg))
+        model += c.real * cos_w - c.imag * sin_w
     residual = seg - model
     spec = averaged_spectrum(residual, rate_hz=rate)
     guard = (spec.main_lobe_bins + 2) * spec.resolution_hz if guard_hz is None else float(guard_hz)

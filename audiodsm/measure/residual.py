@@ -211,8 +211,9 @@ def _basis(freq, rate, frames):
     if freq is None:
         return None
     c, s = _phase_columns(0, frames, freq, rate)
-    c.setflags(write=False)
-    s.setflags(write=False)
+    if c.flags.writeable:  # a long pair is fresh; a short one comes read-only from a cache
+        c.setflags(write=False)
+        s.setflags(write=False)
     return (c, s)
 
 

@@ -7,6 +7,7 @@ at fixed frequencies for harmonics, intermodulation products and multitones.
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from dataclasses import dataclass, field
@@ -45,12 +46,35 @@ def _check_frequency(freq, rate, name="frequency_hz"):
     return float(freq)
 
 
+#: Longest column pair :func:`_phase_columns` remembers (2 MB a pair), and how many pairs.
+_REMEMBERED_COLUMNS_MAX = 1 << 17
+_REMEMBERED_PAIRS = 48
+
+
 def _phase_columns(start_index, count, freq_hz, rate_hz):
     """Cosine and sine of 2*pi*f*n/rate for n = start_index .. start_index+count-1.
 
     The phase is reduced to whole cycles in float64 before the trigonometry, so indices in
     the tens of millions keep the phase accurate to about 1e-9 rad.
+
+    Pairs up to ``_REMEMBERED_COLUMNS_MAX`` long are remembered (read-only arrays): the
+    battery fits the same tone and harmonics on captures of the same length again and again
+    (every level of a sweep), and the columns are the same bits each time.
     """
+    if count <= _REMEMBERED_COLUMNS_MAX:
+        return _remembered_columns(int(start_index), int(count), float(freq_hz), float(rate_hz))
+    return _columns(start_index, count, freq_hz, rate_hz)
+
+
+@functools.lru_cache(maxsize=_REMEMBERED_PAIRS)
+def _remembered_columns(start_index, count, freq_hz, rate_hz):
+    c, s = _columns(start_index, count, freq_hz, rate_hz)
+    c.setflags(write=False)
+    s.setflags(write=False)
+    return c, s
+
+
+def _columns(start_index, count, freq_hz, rate_hz):
     n = np.arange(start_index, start_index + count, dtype=np.float64)
     cycles = np.mod(n * (freq_hz / rate_hz), 1.0)
     ph = _TWO_PI * cycles

@@ -17,7 +17,6 @@ import math
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import signal as _sig
 
 from audiodsm.errors import ParameterError
 
@@ -127,6 +126,8 @@ def _cached_window(window, frames):
 
 def _make_window(window, frames):
     try:
+        from scipy import signal as _sig  # imported where a window is made
+
         w = _sig.get_window(window, frames, fftbins=True)
     except (ValueError, TypeError) as exc:
         raise ParameterError(

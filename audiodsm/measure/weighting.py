@@ -25,10 +25,15 @@ analog network is split in two:
   unstable filter. A fit that drifts into a near pole-zero cancellation (a pole with a corner
   below 500 Hz, which would ring for seconds) is refused.
 
-The design is made once per (weighting, rate) and cached. Its deviation from the analytic curve
-up to 20 kHz is at most about 0.012 dB for A and 0.002 dB for CCIR at any rate tried from
-44.1 kHz to 6.144 MHz (see ``docs/weighting.md``). That is far inside the IEC 61672-1 class-1
-acceptance limits, which the tests check at 44.1, 48, 96, 192 and 768 kHz. The fit is iterative,
+At the six audio rates (44.1 to 192 kHz) the fitted sections are shipped as exact constants
+(``_weighting_sections.py``, written by :func:`_shipped_sections_source`): the least-squares fit
+is not bit-reproducible from one process to the next (its last bits, about 1e-10 dB in a
+reading, move with memory layout), and shipping its result makes every process, a cluster's
+workers included, weight with the same bits. Other rates are fitted once per process and
+cached. The deviation from the analytic curve up to 20 kHz is at most about 0.012 dB for A and
+0.002 dB for CCIR at any rate tried from 44.1 kHz to 6.144 MHz (see ``docs/weighting.md``).
+That is far inside the IEC 61672-1 class-1 acceptance limits, which the tests check at the six
+audio rates and 768 kHz. The fit is iterative,
 so changes at rounding level (another numpy build, say) can move it to a nearby optimum. The
 result still stays within the tested 0.1 dB.
 """
@@ -38,7 +43,6 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from scipy import optimize, signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.measure.bands import MAX_RATE_HZ, MIN_RATE_HZ, check_rate, run_sos
@@ -315,6 +319,8 @@ def _initial_numerator(n_zeros):
 
 def _fit_high_part(kind, rate, fixed, sections, n_zeros):
     """Fit the high-frequency sections; return (sections, worst in-band error in dB)."""
+    from scipy import optimize, signal
+
     num_orders, x0 = _initial_numerator(n_zeros)
     i_gain = len(x0)
     x0.append(0.0)
@@ -406,6 +412,31 @@ def _fit_high_part(kind, rate, fixed, sections, n_zeros):
 
 @functools.lru_cache(maxsize=64)
 def _design(kind, rate):
+    """The filter of a (kind, rate): the shipped sections at the audio rates, else the fit."""
+    from audiodsm.measure._weighting_sections import SHIPPED_SECTIONS
+
+    rows = SHIPPED_SECTIONS.get((kind, float(rate)))
+    if rows is None:
+        from audiodsm import disk_cache
+
+        # another rate: fitted once, remembered on disk (a later run reads the sections back
+        # without importing scipy.signal and without the fit)
+        sos = disk_cache.remembered(
+            "weighting-sos",
+            (str(kind), float(rate)),
+            lambda: _fitted_design(kind, rate),
+            sources=("measure/weighting.py",),
+        )
+    else:
+        sos = np.array(rows, dtype=np.float64)
+    sos.setflags(write=False)
+    return sos
+
+
+def _fitted_design(kind, rate):
+    """Design a weighting filter by the fit described in the module notes (not cached)."""
+    from scipy import signal
+
     n_dc, poles = _analog_network(kind)
     is_low = np.abs(poles) < 2.0 * np.pi * _LOW_POLE_LIMIT_HZ
     low, high = poles[is_low], poles[~is_low]
@@ -434,8 +465,42 @@ def _design(kind, rate):
     f_ref = 1000.0 if kind == "a" else 2000.0
     _, h_ref = signal.sosfreqz(sos, worN=[f_ref], fs=rate)
     sos[0, :3] *= 10.0 ** (_target_db(kind, np.float64(f_ref)) / 20.0) / np.abs(h_ref[0])
-    sos.setflags(write=False)
     return sos
+
+
+def _shipped_sections_source():
+    """Source text of ``_weighting_sections.py``: the fit run once at every audio rate.
+
+    Run ``python -c "from audiodsm.measure.weighting import _shipped_sections_source as s;
+    print(s(), end='')" > audiodsm/measure/_weighting_sections.py`` to write the table again
+    (for example after a change of the fit). Each float is written by ``repr``, which reads
+    back to the same double.
+    """
+    from audiodsm.limits import AUDIO_RATES_HZ
+
+    lines = [
+        '"""The A and CCIR weighting filters at the audio rates, fitted once and shipped.',
+        "",
+        "Written by ``audiodsm.measure.weighting._shipped_sections_source`` (do not edit by",
+        "hand). The least-squares fit behind these sections is not bit-reproducible from one",
+        "process to the next (its last bits move with memory layout), so the filters the battery",
+        "uses are read from here: every process weights with the same bits. Rates not listed",
+        "here are fitted when first asked for. tests/test_weighting.py re-runs the fit and checks",
+        "these against it and against the IEC 61672-1 / BS.468-4 tolerances.",
+        '"""',
+        "",
+        "# (kind, rate in Hz) -> second-order sections (b0, b1, b2, a0, a1, a2) per row",
+        "SHIPPED_SECTIONS = {",
+    ]
+    for kind in ("a", "ccir"):
+        for rate in AUDIO_RATES_HZ:
+            sos = _fitted_design(kind, float(rate))
+            lines.append(f"    ({kind!r}, {float(rate)!r}): (")
+            for row in sos:
+                lines.append("        (" + ", ".join(repr(float(v)) for v in row) + "),")
+            lines.append("    ),")
+    lines.append("}")
+    return "\n".join(lines) + "\n"
 
 
 def weighting_filter(kind, rate_hz):
@@ -466,8 +531,9 @@ def weighting_filter(kind, rate_hz):
     ``min(0.47 * rate_hz, 40 kHz)`` (see the module notes). The response is then normalised
     exactly at the curve's reference frequency (1 kHz for A, 2 kHz for CCIR). Up to 20 kHz the
     deviation from the analytic curve stays within about 0.012 dB (A) and 0.002 dB (CCIR),
-    inside the IEC 61672-1 class-1 limits. The first call for a (kind, rate) pair takes about
-    0.1 to 2.5 s; later calls come from a cache.
+    inside the IEC 61672-1 class-1 limits. At the audio rates (44.1 to 192 kHz) the sections
+    are shipped constants, the same bits in every process; at other rates the first call for a
+    (kind, rate) pair fits them (about 0.1 to 2.5 s) and later calls come from a cache.
 
     References
     ----------

@@ -307,13 +307,15 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     add("    bad = -1")
     add("    total = u.shape[0]")
 
-    def quantizer_input():
+    skip_zero = code == 1 and not feed_in  # see fast_loop
+
+    def quantizer_input(from_zero=True):
         if code == 0:
             return f"x{n - 1}"
         if code == 1:
-            y = "u[t]" if feed_in else "0.0"
+            y = "u[t]" if feed_in else ("0.0" if from_zero else "")
             for i in range(n):
-                y = f"({y} + c{i} * x{i})"
+                y = f"({y} + c{i} * x{i})" if y else f"c{i} * x{i}"
             return y
         return f"u[t] + x{n - 1}"
 
@@ -366,10 +368,23 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
         ]
 
     def fast_loop(ind, single_bit, dithered, flipped):
-        """One block without the guard: block peaks ``m*`` (and ``my``, the quantizer input)."""
-        out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {quantizer_input()}"]
+        """One block without the guard: block peaks ``m*`` (and ``my``, the quantizer input).
+
+        Feedforward without input feed-in: the weighted sum of the states starts from the
+        first product instead of from 0.0, one addition less on the loop's critical path (the
+        states, their sum, the quantizer, the first state's update). The two sums are the same
+        number except where both are zero: the sum from 0.0 is then +0.0, this one may be
+        -0.0, and a single-bit quantizer would read the other sign. So the block also keeps
+        its smallest ``|y|`` (``mz``), and a block in which a sum came out exactly zero (rare:
+        a loop at rest, say) is run again with the guard, in the plain form. Either way the
+        output is the same, bit for bit.
+        """
+        y = quantizer_input(from_zero=not skip_zero)
+        out = [f"{ind}for t in range(start, stop):", f"{ind}    y = {y}"]
         out += dither(ind + "    ") if dithered else [f"{ind}    w = y"]
         out += update(ind + "    ", single_bit, flipped)
+        if skip_zero:
+            out.append(f"{ind}    mz = min(mz, abs(y))")
         out += [f"{ind}    m{i} = max(m{i}, abs(x{i}))" for i in range(n)]
         if code != 0:
             out.append(f"{ind}    my = max(my, abs(y))")
@@ -435,6 +450,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
     add(f"        {', '.join(f'm{i}' for i in range(n))} = " + ", ".join("0.0" for _ in range(n)))
     if code != 0:
         add("        my = 0.0")
+    if skip_zero:
+        add("        mz = np.inf")
     add("        mw = 0.0")
     for j, (cond, single_bit, dithered, flipped) in enumerate(cases):
         if j == len(cases) - 1 and j > 0:
@@ -448,6 +465,8 @@ def loop_kernel_source(structure, order, lossless, unit_chain, pairs, variant=No
         y_ok = f"(abs(o{n - 1}) <= input_bound) & (m{n - 1} <= input_bound)"
     else:
         y_ok = "(my <= input_bound)"
+    if skip_zero:
+        y_ok += " & (mz > 0.0)"
     conds = " & ".join(
         [y_ok, "(mw <= clip_level)"]
         + [f"(m{i} <= state_bound)" for i in range(n)]

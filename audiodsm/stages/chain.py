@@ -29,6 +29,7 @@ listening output has exactly the duration of the input and lines up with it.
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import time
@@ -235,7 +236,6 @@ class Chain:
                 signal_loop = self.fixed_loop.quantized_loop
         with _settings_of(profile, "modulator"):
             self._loop_space = signal_loop.linearized()
-            self._stf = _stf_filter(self._loop_space)
 
         with _settings_of(profile, "reconstruction"):
             taps = profile.reconstruction.fir_taps
@@ -393,6 +393,11 @@ class Chain:
             + analog_delay_s
             + self.downsampler_design.delay_seconds
         )
+
+    @functools.cached_property
+    def _stf(self):
+        """The loop's signal transfer for the error-only path (scipy.signal: made on first use)."""
+        return _stf_filter(self._loop_space)
 
     # -- state ----------------------------------------------------------------------------------
 

@@ -438,11 +438,11 @@ def no_overload_input_bound(ntf, levels: int, dither_lsb: float = 0.0) -> float:
        IEEE/Wiley 2005, ch. 4 (stability of multi-bit modulators: no overload when
        max|u| <= M + 2 - ||h||_1, with the quantizer step 2; from memory).
     """
-    from scipy.signal import lfilter
-
     m = levels - 1
     if m < 2:
         return -math.inf
+    from scipy.signal import lfilter
+
     b, a = ntf.polynomials()
     impulse = np.zeros(1 << 14)
     impulse[0] = 1.0

@@ -42,7 +42,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special
 
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _counting_kernels
@@ -122,6 +121,8 @@ def counting_response(freq_hz, *, rate_hz, length, stages=1) -> np.ndarray:
     k = _check_int("stages", stages, 1, MAX_COUNTING_STAGES)
     f = np.asarray(freq_hz, dtype=float)
     w = 2.0 * np.pi * f / float(rate_hz)
+    from scipy import special
+
     # scipy's Dirichlet kernel: diric(w, N) = sin(N w / 2) / (N sin(w / 2))
     one = special.diric(w, n) * np.exp(-0.5j * w * (n - 1))
     return one**k

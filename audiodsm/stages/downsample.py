@@ -20,12 +20,12 @@ from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
-from scipy import signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _rate_kernels
 from audiodsm.stages.rate_common import (
     _DESIGN_MARGIN_DB,
+    DESIGN_SOURCES,
     _as_frames,
     _check_range,
     _check_state_channels,
@@ -35,6 +35,8 @@ from audiodsm.stages.rate_common import (
     _phase_table,
     _to_frames,
     _with_history,
+    fir_response,
+    refrozen,
 )
 
 __all__ = [
@@ -139,10 +141,10 @@ class DownsamplerDesign:
         freq = np.atleast_1d(np.asarray(freq_hz, dtype=float))
         total = np.ones(freq.shape, dtype=complex)
         for j, h in enumerate(self.halfband_taps):
-            total *= signal.freqz(h, worN=freq, fs=self.rate_in_hz / 2**j)[1]
+            total *= fir_response(h, freq, self.rate_in_hz / 2**j)
         if self.rational_taps.size:
             fu = self.rational_up * self.rational_rate_hz
-            total *= signal.freqz(self.rational_taps / self.rational_up, worN=freq, fs=fu)[1]
+            total *= fir_response(self.rational_taps / self.rational_up, freq, fu)
         return total
 
 
@@ -259,6 +261,34 @@ def design_downsampler(
 
 @functools.lru_cache(maxsize=64)
 def _design_downsampler_cached(rin, rout, pb, ripple, atten, n_hb, mid, up, down):
+    # remembered in this process and on disk (audiodsm/disk_cache.py): a later run reads the
+    # design back without importing scipy.signal
+    from audiodsm import disk_cache
+
+    return refrozen(
+        disk_cache.remembered(
+            "downsampler-design",
+            (
+                rin,
+                rout,
+                pb,
+                ripple,
+                atten,
+                n_hb,
+                mid,
+                up,
+                down,
+            ),
+            lambda: _design_downsampler_fresh(rin, rout, pb, ripple, atten, n_hb, mid, up, down),
+            sources=DESIGN_SOURCES,
+            valid=lambda d: isinstance(d, DownsamplerDesign),
+        )
+    )
+
+
+def _design_downsampler_fresh(rin, rout, pb, ripple, atten, n_hb, mid, up, down):
+    from scipy import signal
+
     ripple_lin = 10.0 ** (ripple / 20.0) - 1.0
     n_stages = n_hb + (1 if down > 1 or up > 1 else 0)
     max_error = min(

@@ -14,8 +14,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg
-import scipy.signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.stages.output_stage import PulseWaveform
@@ -183,21 +181,40 @@ def analog_prototype(
     fc = float(cutoff_hz) if isinstance(cutoff_hz, int | float | np.number) else float("nan")
     if not (math.isfinite(fc) and fc > 0):
         raise ParameterError("cutoff_hz", cutoff_hz, "a finite number > 0")
+    rip = None
     if kind == "butterworth":
-        z, p, k = scipy.signal.butter(order, 1.0, analog=True, output="zpk")
         text = f"{_ordinal(order)}-order Butterworth, {fc:g} Hz"
     elif kind == "bessel":
-        z, p, k = scipy.signal.bessel(order, 1.0, analog=True, output="zpk", norm="mag")
         text = f"{_ordinal(order)}-order Bessel, {fc:g} Hz (-3 dB)"
     else:
         rip = float(ripple_db) if isinstance(ripple_db, int | float | np.number) else math.nan
         if not (math.isfinite(rip) and 0.01 <= rip <= 3.0):
             raise ParameterError("ripple_db", ripple_db, "a number from 0.01 to 3")
-        z, p, k = scipy.signal.cheby1(order, rip, 1.0, analog=True, output="zpk")
         text = f"{_ordinal(order)}-order Chebyshev I, {rip:g} dB ripple, {fc:g} Hz"
-    a, b, c, d = scipy.signal.zpk2ss(z, p, k)
+    from audiodsm import disk_cache
+
+    # remembered on disk: a later run reads the matrices back without importing scipy.signal
+    a, b, c, d = disk_cache.remembered(
+        "analog-prototype",
+        (kind, int(order), rip),
+        lambda: _unit_prototype(kind, int(order), rip),
+        sources=("stages/filter_design.py",),
+    )
     w = 2 * math.pi * fc
     return AnalogFilter(a * w, b * w, c, d, description=text)
+
+
+def _unit_prototype(kind, order, ripple_db):
+    """State-space matrices ``(a, b, c, d)`` of the prototype at 1 rad/s (scipy.signal)."""
+    import scipy.signal
+
+    if kind == "butterworth":
+        z, p, k = scipy.signal.butter(order, 1.0, analog=True, output="zpk")
+    elif kind == "bessel":
+        z, p, k = scipy.signal.bessel(order, 1.0, analog=True, output="zpk", norm="mag")
+    else:
+        z, p, k = scipy.signal.cheby1(order, ripple_db, 1.0, analog=True, output="zpk")
+    return scipy.signal.zpk2ss(z, p, k)
 
 
 def lc_filter(

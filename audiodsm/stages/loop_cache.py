@@ -6,13 +6,9 @@ more loop on a fresh checkout). The results depend only on the modulator section
 profile, the oversampling ratio and the code that computes them, so they are kept on disk
 and every later run, in any process, reads them back instead.
 
-The folder is ``$XDG_CACHE_HOME/audiodsm/loops`` (``~/.cache/audiodsm/loops`` when the variable
-is unset); ``AUDIODSM_LOOP_CACHE`` names another folder, or turns the cache off with ``off``.
-An entry is named by the SHA-256 of its key and of a stamp of the code that computes it (the
-bytes of the design and modulator modules, and the numpy and scipy versions): editing that
-code, or upgrading either library, makes every older entry unreachable. Entries are pickles
-of the library's own frozen dataclasses, written to a temporary name and renamed, so a reader
-never sees half an entry; an entry that cannot be read is ignored and computed again.
+The entries live in the project's disk cache (:mod:`audiodsm.disk_cache`: folder, names,
+atomic writes), stamped with the code of the design and modulator modules: editing that code,
+or upgrading numpy or scipy, makes every older entry unreachable.
 
 :func:`compiled_loops_missing` tells a command whether numba's own cache of the compiled loops
 is still empty (a fresh checkout), so that it can say why its first run takes long.
@@ -20,51 +16,15 @@ is still empty (a fresh checkout), so that it can say why its first run takes lo
 
 from __future__ import annotations
 
-import functools
-import hashlib
 import os
-import pickle
-import tempfile
-from pathlib import Path
+
+from audiodsm import disk_cache
+from audiodsm.disk_cache import cache_folder
 
 __all__ = ["cache_folder", "compiled_loops_missing", "load", "store"]
 
 # the modules whose code decides what is cached (relative to the package folder)
 _SOURCES = ("design/ntf.py", "design/realize.py", "stages/modulator.py", "stages/_kernels.py")
-
-
-def cache_folder() -> Path | None:
-    """The folder of the loop cache, or None when ``AUDIODSM_LOOP_CACHE=off``.
-
-    ``AUDIODSM_LOOP_CACHE`` set to anything else names the folder itself.
-    """
-    given = os.environ.get("AUDIODSM_LOOP_CACHE", "")
-    if given.lower() == "off":
-        return None
-    if given:
-        return Path(given)
-    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
-    return Path(base) / "audiodsm" / "loops"
-
-
-@functools.cache
-def _code_stamp() -> str:
-    import numpy
-    import scipy
-
-    package = Path(__file__).resolve().parents[1]
-    digest = hashlib.sha256(f"numpy {numpy.__version__} scipy {scipy.__version__}".encode())
-    for name in _SOURCES:
-        digest.update((package / name).read_bytes())
-    return digest.hexdigest()
-
-
-def _path(kind: str, key) -> Path | None:
-    folder = cache_folder()
-    if folder is None:
-        return None
-    text = f"{kind}\n{key!r}\n{_code_stamp()}"
-    return folder / f"{kind}-{hashlib.sha256(text.encode()).hexdigest()[:32]}.pickle"
 
 
 def load(kind: str, key):
@@ -73,33 +33,12 @@ def load(kind: str, key):
     ``key`` must have a ``repr`` that is the same in every process (tuples of numbers,
     strings and bytes).
     """
-    path = _path(kind, key)
-    if path is None:
-        return None
-    try:
-        with open(path, "rb") as f:
-            return pickle.load(f)
-    except (OSError, pickle.UnpicklingError, EOFError, AttributeError, ImportError, TypeError):
-        return None
+    return disk_cache.load(kind, key, _SOURCES)
 
 
 def store(kind: str, key, value) -> None:
     """Store ``value`` under ``(kind, key)``; a folder that cannot be written is skipped."""
-    path = _path(kind, key)
-    if path is None:
-        return
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".pickle")
-        try:
-            with os.fdopen(fd, "wb") as f:
-                pickle.dump(value, f, protocol=pickle.HIGHEST_PROTOCOL)
-            os.replace(tmp, path)
-        except BaseException:
-            os.unlink(tmp)
-            raise
-    except OSError:
-        pass
+    disk_cache.store(kind, key, value, _SOURCES)
 
 
 def compiled_loops_missing() -> bool:

@@ -16,8 +16,6 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
-import scipy.fft
-from scipy.signal import windows
 
 from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.design.realize import STRUCTURES, LoopRealization
@@ -742,6 +740,8 @@ class StabilityProbe:
 @functools.lru_cache(maxsize=4)
 def _analysis_window(n: int) -> np.ndarray:
     """The 4-term Blackman-Harris window of ``n`` samples (periodic), made once per length."""
+    from scipy.signal import windows  # the stability probe's only use: imported when it runs
+
     w = windows.blackmanharris(n, sym=False)
     w.setflags(write=False)
     return w
@@ -753,6 +753,8 @@ def _in_band_sqnr_db(y: np.ndarray, bin_index: int, osr: float) -> float:
     The spectrum is taken with a 4-term Blackman-Harris window; the tone occupies bins
     ``bin_index +- 4``; DC bins 0..3 are excluded from the noise.
     """
+    import scipy.fft
+
     n = len(y)
     spec = np.abs(scipy.fft.rfft(y * _analysis_window(n))) ** 2
     edge = int(np.floor(n * 0.5 / osr))

@@ -12,9 +12,16 @@ import functools
 import math
 
 import numpy as np
-from scipy import optimize, signal
 
 from audiodsm.errors import ParameterError
+
+# scipy.signal and scipy.optimize are imported inside the design functions only: a chain whose
+# designs are read back from the disk cache (audiodsm/disk_cache.py) never imports them (about
+# a second of CPU for scipy.signal alone).
+
+#: The modules whose code computes the rate converters' designs (stamp of their disk-cache
+#: entries, relative to the package folder).
+DESIGN_SOURCES = ("stages/rate_common.py", "stages/upsample.py", "stages/downsample.py")
 
 # Each half-band or anti-alias stage is designed this much beyond the asked attenuation, so
 # that the product of stages (and the compensator's small gain) still meets it.
@@ -39,6 +46,8 @@ def _type2_amplitude(g: np.ndarray, theta: np.ndarray) -> np.ndarray:
 def _halfband_from_kaiser(two_k: int, beta: float) -> np.ndarray:
     """Dense-phase taps ``g`` (length 2K) of a Kaiser-window half-band."""
     n_taps = 2 * two_k - 1
+    from scipy import signal
+
     n = np.arange(n_taps) - (two_k - 1)
     h = 0.5 * np.sinc(n / 2.0) * signal.windows.kaiser(n_taps, beta)
     return 2.0 * h[0::2]
@@ -51,6 +60,8 @@ def _halfband_minimax(two_k: int, pass_frac: float) -> np.ndarray | None:
     to ``|A(theta_i) - 1| <= d``, where A is the Type II amplitude of ``g``. (Rescaling the
     result to unity at DC would double its error; the DC gain stays 1 within ``d``.)
     """
+    from scipy import optimize
+
     k = two_k // 2
     theta = np.linspace(0.0, 2.0 * pass_frac, 16 * k + 100)
     offsets = k - 0.5 - np.arange(k)
@@ -126,6 +137,8 @@ def _halfband(pass_frac: float, max_error: float) -> np.ndarray:
     .. [4] J. F. Kaiser, "Nonrecursive digital filter design using the I0-sinh window
        function," Proc. IEEE ISCAS, 1974.
     """
+    from scipy import signal
+
     atten = -20.0 * math.log10(max_error)
     beta = float(signal.kaiser_beta(atten))
     kaiser = None
@@ -219,6 +232,42 @@ def _with_history(held: np.ndarray, frames: np.ndarray) -> np.ndarray:
 def _to_frames(frames: np.ndarray, ndim: int) -> np.ndarray:
     """A fresh (n, channels) C-contiguous array back in the caller's layout (no copy)."""
     return frames.reshape(-1) if ndim == 1 else frames
+
+
+def fir_response(taps, freq_hz, rate_hz) -> np.ndarray:
+    """Complex response of the FIR ``taps`` at ``freq_hz`` for the sample rate ``rate_hz``.
+
+    The numbers of ``scipy.signal.freqz(taps, worN=freq_hz, fs=rate_hz)[1]``, bit for bit
+    (the same operations in the same order: Horner's rule in ``exp(-j w)``, divided by the
+    denominator 1), with numpy alone, so that a chain built from cached designs does not import
+    ``scipy.signal`` for its calibration.
+
+    References
+    ----------
+    SciPy 1.17 ``scipy.signal.freqz`` for an array ``worN`` (``npp_polyval`` of the numerator
+    and of the denominator at ``exp(-1j w)``); a test compares the two.
+    """
+    b = np.atleast_1d(np.asarray(taps, dtype=np.float64))
+    w = np.atleast_1d(np.asarray(freq_hz, dtype=np.float64))
+    w = 2 * np.pi * w / float(rate_hz)
+    zm1 = np.exp(-1j * w)
+    num = np.broadcast_to(np.asarray(b[-1], dtype=np.complex128), zm1.shape)
+    for i in range(2, b.shape[0] + 1):
+        num = b[-i] + num * zm1
+    den = np.broadcast_to(np.asarray(1.0, dtype=np.complex128), zm1.shape)
+    return num / den
+
+
+def refrozen(design):
+    """``design`` (a frozen dataclass read back from the disk cache) with read-only arrays.
+
+    A pickled array comes back writable; the designs hand theirs out read-only.
+    """
+    for value in vars(design).values():
+        for arr in value if isinstance(value, tuple) else (value,):
+            if isinstance(arr, np.ndarray):
+                arr.setflags(write=False)
+    return design
 
 
 def _frozen(a: np.ndarray) -> np.ndarray:

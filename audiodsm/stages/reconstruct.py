@@ -22,8 +22,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.linalg
-import scipy.signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _waveform_kernels
@@ -109,7 +107,12 @@ def _build_model(filt: AnalogFilter, key: bytes) -> _Model:
         sig, om = w[i].real, w[i].imag
         blocks.append(np.array([[sig, -om], [om, sig]]))
     t = np.column_stack(cols)
-    am = scipy.linalg.block_diag(*blocks)
+    am = np.zeros((m, m))  # the blocks on the diagonal (what scipy.linalg.block_diag builds)
+    at = 0
+    for block in blocks:
+        size = block.shape[0]
+        am[at : at + size, at : at + size] = block
+        at += size
     bm = np.linalg.solve(t, b)
     cm = c @ t
     return _Model(am, bm, cm, d, True, len(reals), key, t)
@@ -140,6 +143,8 @@ def _expm_tables(model: _Model, dt: float, lengths: np.ndarray, frame_ticks: int
     aug[:m, 2 * m] = model.b
     aug[m : 2 * m, :m] = np.eye(m)
     h = lengths.astype(np.float64) * dt
+    import scipy.linalg
+
     big = scipy.linalg.expm(aug[None, :, :] * h[:, None, None])
     phis = np.ascontiguousarray(big[:, :m, :m])
     gammas = np.ascontiguousarray(big[:, :m, 2 * m])
@@ -157,13 +162,30 @@ def _expm_tables(model: _Model, dt: float, lengths: np.ndarray, frame_ticks: int
     return phis, gammas, wx, wu
 
 
+def _remembered(kind, key, compute):
+    """``compute()``, or its value from an earlier run (on disk: audiodsm/disk_cache.py).
+
+    The tables cost one matrix exponential per segment length, and ``scipy.linalg``'s import;
+    a later run reads them back.
+    """
+    from audiodsm import disk_cache
+
+    return disk_cache.remembered(
+        kind, key, compute, sources=("stages/reconstruct.py", "stages/filter_design.py")
+    )
+
+
 def _tables(model: _Model, dt: float, frame_ticks: int):
     """``Phi(k)``, ``Gamma(k)``, ``wx(k)``, ``wu(k)`` for every k = 0..frame_ticks, cached."""
     tkey = (model.key, dt, frame_ticks)
     hit = _TABLES.get(tkey)
     if hit is not None:
         return hit
-    tables = _expm_tables(model, dt, np.arange(frame_ticks + 1), frame_ticks)
+    tables = _remembered(
+        "filter-tables",
+        tkey,
+        lambda: _expm_tables(model, dt, np.arange(frame_ticks + 1), frame_ticks),
+    )
     if len(_TABLES) > 64:
         _TABLES.clear()
     _TABLES[tkey] = tables
@@ -183,7 +205,11 @@ def _power_tables(model: _Model, dt: float, frame_ticks: int) -> np.ndarray:
     hit = _POWER_TABLES.get(tkey)
     if hit is not None:
         return hit
-    q = _power_matrices(model, dt, np.arange(frame_ticks + 1), frame_ticks)
+    q = _remembered(
+        "filter-power-tables",
+        tkey,
+        lambda: _power_matrices(model, dt, np.arange(frame_ticks + 1), frame_ticks),
+    )
     if len(_POWER_TABLES) > 64:
         _POWER_TABLES.clear()
     _POWER_TABLES[tkey] = q
@@ -202,6 +228,8 @@ def _power_matrices(model: _Model, dt: float, lengths: np.ndarray, frame_ticks: 
     big[: m + 1, m + 1 :] = h.T @ h
     big[m + 1 :, m + 1 :] = f
     h_s = lengths.astype(np.float64) * dt
+    import scipy.linalg
+
     e = scipy.linalg.expm(big[None, :, :] * h_s[:, None, None])
     e12 = e[:, : m + 1, m + 1 :]
     e22 = e[:, m + 1 :, m + 1 :]

@@ -19,12 +19,12 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 from audiodsm.errors import ParameterError
 from audiodsm.stages import _rate_kernels
 from audiodsm.stages.rate_common import (
     _DESIGN_MARGIN_DB,
+    DESIGN_SOURCES,
     _as_frames,
     _check_range,
     _check_state_channels,
@@ -33,6 +33,8 @@ from audiodsm.stages.rate_common import (
     _halfband_full,
     _phase_table,
     _to_frames,
+    fir_response,
+    refrozen,
 )
 
 __all__ = [
@@ -200,11 +202,9 @@ class UpsamplerDesign:
         freq = np.atleast_1d(np.asarray(freq_hz, dtype=float))
         total = np.ones(freq.shape, dtype=complex)
         for j, h in enumerate(self.halfband_taps, start=1):
-            total *= signal.freqz(h, worN=freq, fs=2**j * self.rate_hz)[1]
-        total *= signal.freqz(self.compensator_taps, worN=freq, fs=2 * self.rate_hz)[1]
-        total *= signal.freqz(
-            self.final_taps / self.final_ratio, worN=freq, fs=self.output_rate_hz
-        )[1]
+            total *= fir_response(h, freq, 2**j * self.rate_hz)
+        total *= fir_response(self.compensator_taps, freq, 2 * self.rate_hz)
+        total *= fir_response(self.final_taps / self.final_ratio, freq, self.output_rate_hz)
         return total
 
 
@@ -346,6 +346,34 @@ def design_upsampler(
 
 @functools.lru_cache(maxsize=64)
 def _design_upsampler_cached(rate, osr, pe, ripple, se, atten, final_stage, sinc_order, n_hb):
+    # remembered in this process and on disk (audiodsm/disk_cache.py): a later run reads the
+    # design back without importing scipy.signal
+    from audiodsm import disk_cache
+
+    return refrozen(
+        disk_cache.remembered(
+            "upsampler-design",
+            (
+                rate,
+                osr,
+                pe,
+                ripple,
+                se,
+                atten,
+                final_stage,
+                sinc_order,
+                n_hb,
+            ),
+            lambda: _design_upsampler_fresh(
+                rate, osr, pe, ripple, se, atten, final_stage, sinc_order, n_hb
+            ),
+            sources=DESIGN_SOURCES,
+            valid=lambda d: isinstance(d, UpsamplerDesign),
+        )
+    )
+
+
+def _design_upsampler_fresh(rate, osr, pe, ripple, se, atten, final_stage, sinc_order, n_hb):
     n_total = osr.bit_length() - 1
     if final_stage == "hold":
         orders = (1,)
