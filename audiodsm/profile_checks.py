@@ -313,14 +313,6 @@ def _check_power_stage(profile: ChainProfile, path: str) -> None:
             "got jitter with the switches' on-resistance; expected one of the two (the "
             "switched filter reads whole ticks and does not model jittered edges yet)",
         )
-    if imp.on_resistance and (imp.jitter_rms_s > 0.0 or imp.jitter_sine_peak_s > 0.0):
-        key = "jitter_rms_s" if imp.jitter_rms_s > 0.0 else "jitter_sine_peak_s"
-        raise ProfileError(
-            path,
-            f"impairments.{key}",
-            "got PWM edge jitter with switch on-resistance; expected no jitter (the switches' "
-            "states are not followed through displaced edges yet)",
-        )
     if not imp.loudspeaker:
         return
     if rec != "lc":
