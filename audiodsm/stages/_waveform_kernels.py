@@ -17,6 +17,38 @@ from numba import njit
 # ---------------------------------------------------------------------------------------------
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _leg_pulse(k, sub, centre, frame, inv, double_edge):
+    """Where one leg is high in a frame of code ``k``: ticks ``[s0, e0)`` and ``[s1, e1)``.
+
+    Trailing edge: high from 0 for ``k`` steps (inverted: from ``k`` steps to the end); double
+    edge: centred on the frame (inverted: the complement, split around the centre). An
+    interval ``[frame, frame)`` is empty.
+    """
+    s0 = frame
+    e0 = frame
+    s1 = frame
+    e1 = frame
+    if not double_edge:
+        if inv:
+            s0 = k * sub
+        else:
+            s0 = 0
+            e0 = k * sub
+    else:
+        h = k * sub
+        if not inv:
+            s0 = centre - h
+            e0 = centre + h
+        elif h > 0:
+            s0 = 0
+            e0 = centre - h
+            s1 = centre + h
+        else:
+            s0 = 0
+    return s0, e0, s1, e1
+
+
 @njit(cache=True, nogil=True)
 def pwm_segments(
     codes_a,
@@ -60,28 +92,7 @@ def pwm_segments(
     for i in range(n):
         for leg in range(n_legs):
             k = codes_a[i] if leg == 0 else codes_b[i]
-            inv = leg == 1 and invert_b
-            s0 = frame
-            e0 = frame
-            s1 = frame
-            e1 = frame
-            if not double_edge:
-                if inv:
-                    s0 = k * sub
-                else:
-                    s0 = 0
-                    e0 = k * sub
-            else:
-                h = k * sub
-                if not inv:
-                    s0 = centre - h
-                    e0 = centre + h
-                elif h > 0:
-                    s0 = 0
-                    e0 = centre - h
-                    s1 = centre + h
-                else:
-                    s0 = 0
+            s0, e0, s1, e1 = _leg_pulse(k, sub, centre, frame, leg == 1 and invert_b, double_edge)
             st[leg, 0] = s0
             en[leg, 0] = e0
             st[leg, 1] = s1
@@ -226,28 +237,7 @@ def pwm_dead_time_means(
     for i in range(n):
         for leg in range(n_legs):
             k = codes_a[i] if leg == 0 else codes_b[i]
-            inv = leg == 1 and invert_b
-            s0 = frame
-            e0 = frame
-            s1 = frame
-            e1 = frame
-            if not double_edge:
-                if inv:
-                    s0 = k * sub
-                else:
-                    s0 = 0
-                    e0 = k * sub
-            else:
-                h = k * sub
-                if not inv:
-                    s0 = centre - h
-                    e0 = centre + h
-                elif h > 0:
-                    s0 = 0
-                    e0 = centre - h
-                    s1 = centre + h
-                else:
-                    s0 = 0
+            s0, e0, s1, e1 = _leg_pulse(k, sub, centre, frame, leg == 1 and invert_b, double_edge)
             st[leg, 0] = s0
             en[leg, 0] = e0
             st[leg, 1] = s1
