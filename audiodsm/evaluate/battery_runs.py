@@ -915,44 +915,20 @@ def _test_class_d_stage(ctx, profile):
 def _class_d_power(profile, res, settle_s, read_s):
     """The chain run's modulator output through the power stage: :class:`ClassDReadings`."""
     from audiodsm.stages import output_stage as out_mod
-    from audiodsm.stages.chain_build import _power_stage_filter
+    from audiodsm.stages.chain_build import _power_stage_filter, pwm_keywords
     from audiodsm.stages.power_stage import class_d_readings, segment_switch_states
     from audiodsm.stages.supply import apply_supply_ripple
 
-    out, imp = profile.output, profile.impairments
+    imp = profile.impairments
     fm = res.modulator_rate_hz
     first = max(0, int(round((settle_s - _CLASS_D_RUN_IN_S) * fm)))
     run_in = int(round(settle_s * fm)) - first
     y = np.ascontiguousarray(res.modulator[first : first + run_in + int(round(read_s * fm)), 0])
-    settings = (
-        fm,
-        profile.modulator.levels,
-        out.counter_steps or None,
-        out.pwm_mode,
-        out.pwm_carrier,
-        out.pwm_bridge,
-        out.tick_subdivision,
-        0,
-        out.min_pulse_ticks,
-        out.short_pulse_action,
-        out.full_scale_volts,
-    )
-    wf, _, _ = out_mod.pwm_waveform(
-        y,
-        frame_rate_hz=fm,
-        levels=profile.modulator.levels,
-        counter_steps=out.counter_steps or None,
-        mode=out.pwm_mode,
-        carrier=out.pwm_carrier,
-        bridge=out.pwm_bridge,
-        tick_subdivision=out.tick_subdivision,
-        min_pulse_ticks=out.min_pulse_ticks,
-        min_pulse_action=out.short_pulse_action,
-        supply_volts=out.full_scale_volts,
-    )
+    settings = pwm_keywords(profile)
+    wf, _, _ = out_mod.pwm_waveform(y, frame_rate_hz=fm, **settings)
     if imp.supply_ripple > 0.0:
         wf = apply_supply_ripple(
             wf, ripple=imp.supply_ripple, ripple_hz=imp.supply_ripple_hz, first_frame=first
         )
-    configs = segment_switch_states(wf, out_mod._pwm_plan(y, *settings))
+    configs = segment_switch_states(wf, out_mod._pwm_plan(y, fm, **settings))
     return class_d_readings(_power_stage_filter(profile), wf, configs, skip_frames=run_in)

@@ -354,6 +354,27 @@ def _power_stage_filter(profile: ChainProfile):
     )
 
 
+def pwm_keywords(profile: ChainProfile, *, dead_time_ticks: int = 0) -> dict:
+    """The profile's PWM settings as keywords of :func:`~audiodsm.stages.output_stage.pwm_waveform`.
+
+    Everything but the samples, the frame rate and the state; the dead time is 0 unless given
+    (the switched filter and the class-D readings run the stage without it).
+    """
+    out = profile.output
+    return {
+        "levels": profile.modulator.levels,
+        "counter_steps": out.counter_steps or None,
+        "mode": out.pwm_mode,
+        "carrier": out.pwm_carrier,
+        "bridge": out.pwm_bridge,
+        "tick_subdivision": out.tick_subdivision,
+        "dead_time_ticks": dead_time_ticks,
+        "min_pulse_ticks": out.min_pulse_ticks,
+        "min_pulse_action": out.short_pulse_action,
+        "supply_volts": out.full_scale_volts,
+    }
+
+
 def _switched_filter_fn(profile: ChainProfile, frame_rate_hz: float):
     """The PWM waveform through the filter of the switches conducting in each segment, or None.
 
@@ -370,23 +391,9 @@ def _switched_filter_fn(profile: ChainProfile, frame_rate_hz: float):
     switched = _power_stage_filter(profile)
     if len(set(switched.loop_ohm)) == 1:
         return None
-    out = profile.output
 
     def run(wf, y, state):
-        plan = out_mod._pwm_plan(
-            y,
-            frame_rate_hz,
-            profile.modulator.levels,
-            out.counter_steps or None,
-            out.pwm_mode,
-            out.pwm_carrier,
-            out.pwm_bridge,
-            out.tick_subdivision,
-            0,
-            out.min_pulse_ticks,
-            out.short_pulse_action,
-            out.full_scale_volts,
-        )
+        plan = out_mod._pwm_plan(y, frame_rate_hz, **pwm_keywords(profile))
         configs = segment_switch_states(wf, plan)
         return filter_switched_waveform(switched, wf, configs, state)
 
