@@ -111,6 +111,13 @@ def select_rotating(codes, half, prefix, pointers, bidirectional, out):
         out[n] = (k - half) + (acc - 0.5 * prefix[n_el])
 
 
+#: The vector shaper ranks its targets by counting, branch-free, in this many lanes when the
+#: part has more than 8 and at most this many elements (the 17-level DAC's 16); other counts
+#: sort (an insertion sort, cheaper for a few elements and, for many, adaptive). Both give
+#: the same selection and the same sums, bit for bit (tests/test_elements.py).
+RANKED_LANES = 16
+
+
 @njit(cache=True, nogil=True)
 def select_vector_shaped(codes, half, errors, past, out):
     """Second-order vector mismatch shaping (Schreier & Zhang 1995; Schreier & Temes 2005).
@@ -119,8 +126,75 @@ def select_vector_shaped(codes, half, errors, past, out):
     ``t = k / N - 2 eps[n-1] + eps[n-2]``, ``v`` selects the ``k`` largest ``t_i`` (ties to
     the lower index), ``eps = v - t``. So ``v = k / N + (1 - z^-1)^2 eps``: each element's use
     is second-order shaped, and so is the mismatch error ``sum(v_i e_i)``; ``sum(t) = k``
-    at every sample, so the states do not drift as a whole.
+    at every sample, so the states do not drift as a whole. The selected elements' errors
+    are summed in the order of their targets, largest first.
     ``past`` rows are ``eps[n-1]`` and ``eps[n-2]`` (state).
+    """
+    if 8 < errors.size <= RANKED_LANES:
+        _vector_shaped_ranked(codes, half, errors, past, out)
+    else:
+        _vector_shaped_sorted(codes, half, errors, past, out)
+
+
+@njit(cache=True, nogil=True)
+def _vector_shaped_ranked(codes, half, errors, past, out):
+    """:func:`select_vector_shaped` by counting ranks, for at most :data:`RANKED_LANES` elements.
+
+    Element ``i``'s rank is the number of elements ahead of it, ``#{j: t_j > t_i or (t_j ==
+    t_i and j < i)}``: a fixed count of comparisons without branches, which the compiler
+    unrolls and vectorizes (the insertion sort's moves are branches the processor
+    mispredicts, the order of 16 targets changing often). Element ``i`` is selected when its
+    rank is below ``k``; the selected errors, put in rank order, are summed as the sort sums
+    them. The lanes past the part's elements hold the target ``-inf``: ranked last, never
+    selected.
+    """
+    n_el = errors.size
+    total = 0.0
+    for i in range(n_el):
+        total += errors[i]
+    now = np.zeros(RANKED_LANES)  # eps[n-1]
+    before = np.zeros(RANKED_LANES)  # eps[n-2]
+    error = np.zeros(RANKED_LANES)
+    for i in range(n_el):
+        now[i] = past[0, i]
+        before[i] = past[1, i]
+        error[i] = errors[i]
+    target = np.empty(RANKED_LANES)
+    rank = np.empty(RANKED_LANES, np.int64)
+    in_order = np.empty(RANKED_LANES)
+    for n in range(codes.size):
+        k = codes[n]
+        share = k / n_el
+        for i in range(RANKED_LANES):
+            t = share - 2.0 * now[i] + before[i]
+            target[i] = t if i < n_el else -np.inf
+        for i in range(RANKED_LANES):
+            t = target[i]
+            ahead = 0
+            for j in range(RANKED_LANES):
+                ahead += (target[j] > t) | ((target[j] == t) & (j < i))
+            rank[i] = ahead
+        for i in range(RANKED_LANES):
+            in_order[rank[i]] = error[i]
+        acc = 0.0
+        for j in range(k):
+            acc += in_order[j]
+        for i in range(RANKED_LANES):
+            eps = -target[i]
+            before[i] = now[i]
+            now[i] = eps + 1.0 if rank[i] < k else eps
+        out[n] = (k - half) + (acc - 0.5 * total)
+    for i in range(n_el):
+        past[0, i] = now[i]
+        past[1, i] = before[i]
+
+
+@njit(cache=True, nogil=True)
+def _vector_shaped_sorted(codes, half, errors, past, out):
+    """:func:`select_vector_shaped` by an insertion sort of the targets (any element count).
+
+    The sort starts from the last sample's order (state of the call only): the targets move
+    little from one sample to the next when there are many elements.
     """
     n_el = errors.size
     total = 0.0
@@ -162,18 +236,23 @@ def relaxation_noise(draws, start, frame_std, poles, gains, holds, relax, out):
 
     ``draws`` is consumed in order, frame by frame: the white draw, then one draw for every
     process ``i`` whose update falls on the frame (global frame ``start + t`` a multiple of
-    ``holds[i]``): ``x_i <- gains[i] draw + poles[i] x_i``, held until its next update.
-    ``out[t] = frame_std white + sum_i x_i`` (added in process order); ``relax``: the
-    ``x_i``, updated.
+    ``holds[i]``, a power of two): ``x_i <- gains[i] draw + poles[i] x_i``, held until its
+    next update. ``out[t] = frame_std white + sum_i x_i`` (added in process order);
+    ``relax``: the ``x_i``, updated.
     """
     p = poles.size
+    # holds are powers of two and frames are not negative: "a multiple of the hold" is a
+    # test of the low bits (an integer division per process and frame cost most of the time)
+    masks = np.empty(p, np.int64)
+    for i in range(p):
+        masks[i] = holds[i] - 1
     e = 0
     for t in range(out.size):
         frame = start + t
         acc = frame_std * draws[e]
         e += 1
         for i in range(p):
-            if frame % holds[i] == 0:
+            if frame & masks[i] == 0:
                 relax[i] = gains[i] * draws[e] + poles[i] * relax[i]
                 e += 1
             acc += relax[i]
