@@ -65,6 +65,10 @@ from audiodsm.stages import _element_kernels as _k
 
 __all__ = ["EdgeJitter", "JitterState", "jitter_in_band_power"]
 
+# the ticks of one- and two-slot frames, broadcast read-only over the frames (no copy)
+_ONE_TICKS = np.ones(2, dtype=np.int64)
+_ONE_TICKS.setflags(write=False)
+
 
 @dataclass(frozen=True)
 class JitterState:
@@ -288,7 +292,7 @@ class EdgeJitter:
         if self.ticks_per_frame == 1:
             means, st = self.process(waveform.levels[:, 0], state)
             means = means.reshape(waveform.n_frames, self.slots)
-            ticks = np.ones((waveform.n_frames, self.slots), dtype=np.int64)
+            ticks = np.broadcast_to(_ONE_TICKS[: self.slots], (waveform.n_frames, self.slots))
             return PulseWaveform._trusted(means, ticks, self.slots, rate), st
         if waveform.ticks_per_frame != self.ticks_per_frame:
             raise ParameterError(
