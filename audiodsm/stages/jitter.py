@@ -193,8 +193,8 @@ class EdgeJitter:
 
         The random part is drawn from ``state``'s generator (the initial state's when None),
         as the next block would draw it; the sine is computed exactly at every edge. What
-        :meth:`process` applies to PDM / NRZ (which rotates the sine's phasor between exact
-        values, a relative difference near 1e-13).
+        :meth:`process` applies to PDM / NRZ (whose sine comes from exact anchors by the
+        angle sum, within 3e-15 of its peak).
         """
         st = state if state is not None else self.initial_state()
         shift = self._random_shifts(count, np.array([st.generator], dtype=np.uint64))
