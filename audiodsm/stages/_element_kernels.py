@@ -283,8 +283,8 @@ def _vector_shaped_ranked(codes, half, errors, past, out):
 def _vector_shaped_sorted(codes, half, errors, past, out):
     """:func:`select_vector_shaped` by an insertion sort of the targets (any element count).
 
-    The sort starts from the last sample's order (state of the call only): the targets move
-    little from one sample to the next when there are many elements.
+    The sort starts from the last sample's order (kept within the call only: ties break by
+    index, so the order a sort starts from does not change its result).
     """
     n_el = errors.size
     total = 0.0
