@@ -28,6 +28,7 @@ __all__ = [
     "plot_idle_tone_map",
     "plot_state_histograms",
     "plot_frequency_response",
+    "plot_dynamic_range_vs_jitter",
     "plot_overlay",
     "overlay_curve",
     "plot_margins",
@@ -121,24 +122,41 @@ def _graded(graded, *metrics):
     return [g for g in graded or () if g.target.metric in metrics]
 
 
-def _verdict(g, level_dbfs=None) -> str:
-    """A target's limit and verdict in words, e.g. ``"limit <= -90 dB: pass"``."""
+def _verdict(g, level_dbfs=None, *, where=None, word=True) -> str:
+    """A target's limit and verdict in words, e.g. ``"limit <= -90 dB: pass"``.
+
+    ``where`` (e.g. ``"at 10 ps"``) replaces the level the target is graded at; without
+    ``word`` the verdict is left out (a limit several profiles share).
+    """
     t = g.target
     sign = ">=" if t.bound == "at_least" else "<="
     unit = f" {t.unit}" if t.unit else ""
     if level_dbfs is None:
         level_dbfs = t.at_level_dbfs
-    where = f" at {level_dbfs:g} dBFS" if level_dbfs is not None else ""
+    if where is None:
+        where = f"at {level_dbfs:g} dBFS" if level_dbfs is not None else ""
+    text = f"limit{' ' + where if where else ''} {sign} {t.limit:g}{unit}"
+    if not word:
+        return text
     if g.passed:
-        word = "pass"
+        verdict = "pass"
     else:
-        word = "FAIL" if g.value is not None else "FAIL (no valid reading)"
-    return f"limit{where} {sign} {t.limit:g}{unit}: {word}"
+        verdict = "FAIL" if g.value is not None else "FAIL (no valid reading)"
+    return f"{text}: {verdict}"
 
 
-def _limit_line(ax, g, *, y=None, x=None, xspan=None, **kw):
-    """A dashed limit line (horizontal at ``y`` or vertical at ``x``), labelled with its verdict."""
+def _limit_line(ax, g, *, y=None, x=None, xspan=None, shared=None, **kw):
+    """A dashed limit line (horizontal at ``y`` or vertical at ``x``), labelled with its verdict.
+
+    ``shared`` (a set, on a plot of several profiles) holds the lines drawn so far: a limit
+    the profiles share is drawn once.
+    """
     style = {"color": _INK, "lw": 1.0, "ls": (0, (5, 3)), "label": _verdict(g), **kw}
+    if shared is not None:
+        key = (style["label"], y, x, None if xspan is None else tuple(xspan))
+        if key in shared:
+            return
+        shared.add(key)
     if y is not None:
         if xspan is None:
             ax.axhline(y, **style)
@@ -148,12 +166,12 @@ def _limit_line(ax, g, *, y=None, x=None, xspan=None, **kw):
         ax.axvline(x, **style)
 
 
-def _verdict_marker(ax, g, x, y):
-    """The reading against its limit: a circle when it passes, a cross when it fails."""
+def _verdict_marker(ax, g, x, y, colour=_INK):
+    """The reading against its limit: an open circle when it passes, a filled cross when not."""
     if y is None or not np.isfinite(y):
         return
-    ax.plot([x], [y], _PASS_MARKER if g.passed else _FAIL_MARKER, color=_INK, ms=7,
-            mfc="none" if g.passed else _INK, zorder=5)  # fmt: skip
+    ax.plot([x], [y], _PASS_MARKER if g.passed else _FAIL_MARKER, color=colour, ms=7,
+            mfc="none" if g.passed else colour, zorder=5)  # fmt: skip
 
 
 def _db_power(v):
@@ -166,7 +184,121 @@ def _prediction_label(c):
     k = float(np.asarray(c.get("predicted_quantizer_gain", [1.0]), dtype=float)[0])
     if k == 1.0:
         return "predicted from the NTF (quantizer gain 1, white error + dither)"
-    return f"predicted from the NTF with effective quantizer gain {k:.2f} (fitted to a run)"
+    # a single-bit loop: the sign quantizer's error is not white, and no gain can say so; the
+    # model is an upper bound, the simulated density lies 1 to 4.5 dB under it (docs/report.md)
+    return (
+        f"predicted from the NTF with effective quantizer gain {k:.2f} (fitted to a run);\n"
+        "single-bit: an upper bound, the sign quantizer's error is not white (up to 4.5 dB high)"
+    )
+
+
+# -- What the plot of one profile and the plot of every profile share for a quantity: the axes,
+# and the spec limits with the readings marked against them. A limit helper draws the limit
+# lines of the graded targets it knows and returns where each reading goes, ``(grade, x, y)``;
+# with ``shared`` (a set, on the plot of every profile) a limit is drawn once and labelled
+# without a verdict, which the markers in each profile's colour then give.
+
+#: The dynamic-range metrics drawn on the audio-band density.
+_DR_METRICS = ("dynamic_range_db", "dynamic_range_db_a", "dynamic_range_db_ccir")
+#: The in-band width a flat density is spread over to give a dynamic range (20 Hz to 20 kHz).
+_IN_BAND_WIDTH_DB = 10.0 * np.log10(20000.0 - 20.0)
+
+
+def _level_axes(ax, title):
+    _style(ax, title, "tone level (dBFS)", "THD+N (dB)")
+
+
+def _frequency_axes(ax, title):
+    ax.set_xscale("log")
+    _style(ax, title, "tone frequency (Hz)", "THD+N (dB)")
+
+
+def _audio_band_axes(ax, title, top_khz=24.0):
+    ax.set_xlim(0.0, top_khz)
+    ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
+    _style(ax, title, "frequency (kHz)", "noise density (dBFS/\u221aHz)")
+
+
+def _jitter_axes(ax, title, sigma_ps):
+    ax.set_xscale("log")
+    ticks = sorted({float(v) for v in sigma_ps if np.isfinite(v) and v > 0})
+    if ticks:
+        ax.set_xlim(ticks[0] / 2.0, ticks[-1] * 2.0)
+        ax.set_xticks(ticks, [f"{v:g}" for v in ticks])
+        ax.minorticks_off()
+    _style(ax, title, "clock jitter, white, rms (ps)", "dynamic range (dB)")
+
+
+def _level_limits(ax, graded, curve=None, *, shared=None):
+    """THD+N targets at a level: a short bar at the level, the reading at the level."""
+    marks = []
+    for g in _graded(graded, *_THD_N_LEVEL_METRICS):
+        column, fixed = _THD_N_LEVEL_METRICS[g.target.metric]
+        lv = fixed if fixed is not None else g.target.at_level_dbfs
+        if lv is None:
+            continue
+        weighted = column == "thd_n_db_a"
+        label = ("A-wtd " if weighted else "") + _verdict(g, lv, word=shared is None)
+        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0), shared=shared,
+                    ls="--" if weighted else (0, (5, 3)), label=label)  # fmt: skip
+        marks.append((g, lv, g.value, label))
+    return marks
+
+
+def _frequency_limits(ax, graded, curve, *, shared=None):
+    """Worst THD+N over frequency: a line across the band, the reading at the worst tone."""
+    f = np.asarray(curve["frequency_hz"], dtype=float)
+    grid = np.atleast_2d(np.asarray(curve["thd_n_db"], dtype=float))
+    levels = [float(v) for v in np.atleast_1d(curve["level_dbfs"])]
+    marks = []
+    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
+        for g in _graded(graded, f"thd_n_db_worst_over_frequency_at_{name}_dbfs"):
+            ls = (0, (5, 3)) if lv == -1.0 else (0, (1, 2))
+            label = f"{lv:g} dBFS " + _verdict(g, word=shared is None)
+            _limit_line(ax, g, y=g.target.limit, ls=ls, shared=shared, label=label)
+            if lv in levels and np.isfinite(grid[levels.index(lv)]).any():
+                row = grid[levels.index(lv)]
+                j = int(np.nanargmax(row))
+                marks.append((g, f[j], row[j] if g.value is not None else None, label))
+            else:
+                marks.append((g, np.nan, None, label))
+    return marks
+
+
+def _density_limits(ax, graded, curve=None, *, shared=None):
+    """Dynamic range on the audio-band density: the flat density of the limit's power."""
+    marks = []
+    for g in _graded(graded, *_DR_METRICS):
+        label = _verdict(g, word=shared is None)
+        _limit_line(ax, g, y=-g.target.limit - _IN_BAND_WIDTH_DB, xspan=(0.02, 20.0),
+                    shared=shared, label=label)  # fmt: skip
+        y = None if g.value is None else -g.value - _IN_BAND_WIDTH_DB
+        marks.append((g, 10.0, y, label))
+    return marks
+
+
+def _jitter_limits(ax, graded, curve=None, *, shared=None):
+    """Dynamic range at a jitter: a short bar at that jitter, the reading on it."""
+    from audiodsm.evaluate.battery_impairments import JITTER_METRICS
+
+    marks = []
+    for sigma_s, metric in JITTER_METRICS.items():
+        x = sigma_s * 1e12
+        for g in _graded(graded, metric):
+            label = _verdict(g, where=f"at {x:g} ps", word=shared is None)
+            _limit_line(ax, g, y=g.target.limit, xspan=(x / 1.6, x * 1.6), shared=shared,
+                        label=label)  # fmt: skip
+            marks.append((g, x, g.value, label))
+    return marks
+
+
+def _mark_readings(ax, marks, colour=_INK):
+    """Each reading against its limit (see :func:`_verdict_marker`); True if any was drawn."""
+    drawn = False
+    for g, x, y, _label in marks:
+        _verdict_marker(ax, g, x, y, colour)
+        drawn = drawn or (y is not None and bool(np.isfinite(y)))
+    return drawn
 
 
 def plot_noise_density(curves, *, ax=None, title="Output noise density, whole output band",
@@ -257,18 +389,12 @@ def plot_audio_band_density(curves, *, ax=None, title="Output noise density, aud
         pred = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
         ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label=_prediction_label(c))
     res = float(np.asarray(c.get("resolution_hz", [np.nan]))[0])
-    _style(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""), "frequency (kHz)",
-           "noise density (dBFS/\u221aHz)")  # fmt: skip
-    ax.set_xlim(0.0, min(24.0, float(f[-1])) if f.size else 24.0)
+    _audio_band_axes(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""),
+                     min(24.0, float(f[-1])) if f.size else 24.0)  # fmt: skip
     finite = d[np.isfinite(d) & (f <= 20.0)]
     if finite.size:
         ax.set_ylim(np.percentile(finite, 1) - 10.0, np.max(finite) + 5.0)
-    for g in _graded(graded, "dynamic_range_db", "dynamic_range_db_a", "dynamic_range_db_ccir"):
-        width = 10.0 * np.log10(20000.0 - 20.0)
-        _limit_line(ax, g, y=-g.target.limit - width, xspan=(0.02, 20.0))
-        if g.value is not None:
-            _verdict_marker(ax, g, 10.0, -g.value - width)
-    ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
+    _mark_readings(ax, _density_limits(ax, graded))
     ax.legend(fontsize=7, loc="upper left", frameon=False)
     return fig
 
@@ -357,17 +483,8 @@ def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level", graded=
     if isinstance(over, dict) and "level_dbfs" in over and "thd_n_db" in over:
         ax.plot(over["level_dbfs"], over["thd_n_db"], "x", color=_VERMILLION, ms=5,
                 label="overload")  # fmt: skip
-    for g in _graded(graded, *_THD_N_LEVEL_METRICS):
-        _, fixed = _THD_N_LEVEL_METRICS[g.target.metric]
-        lv = fixed if fixed is not None else g.target.at_level_dbfs
-        if lv is None:
-            continue
-        weighted = _THD_N_LEVEL_METRICS[g.target.metric][0] == "thd_n_db_a"
-        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0),
-                    ls="--" if weighted else (0, (5, 3)),
-                    label=("A-wtd " if weighted else "") + _verdict(g, lv))  # fmt: skip
-        _verdict_marker(ax, g, lv, g.value)
-    _style(ax, title, "tone level (dBFS)", "THD+N (dB)")
+    _mark_readings(ax, _level_limits(ax, graded))
+    _level_axes(ax, title)
     ax.legend(fontsize=7, frameon=False)
     return fig
 
@@ -396,18 +513,11 @@ def plot_thd_n_vs_frequency(curves, *, ax=None, title="THD+N against frequency",
     grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
     levels = [float(v) for v in np.atleast_1d(c["level_dbfs"])]
     for k, lv in enumerate(levels):
-        ax.semilogx(f, grid[k], marker=_MARKERS[k % len(_MARKERS)], ms=3, lw=1,
-                    ls=_LINESTYLES[k % len(_LINESTYLES)], color=_SERIES[k % len(_SERIES)],
-                    label=f"{lv:g} dBFS tones")  # fmt: skip
-    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
-        for g in _graded(graded, f"thd_n_db_worst_over_frequency_at_{name}_dbfs"):
-            ls = (0, (5, 3)) if lv == -1.0 else (0, (1, 2))
-            _limit_line(ax, g, y=g.target.limit, ls=ls, label=f"{lv:g} dBFS " + _verdict(g))
-            if lv in levels and np.isfinite(grid[levels.index(lv)]).any():
-                row = grid[levels.index(lv)]
-                j = int(np.nanargmax(row))
-                _verdict_marker(ax, g, f[j], row[j] if g.value is not None else None)
-    _style(ax, title, "tone frequency (Hz)", "THD+N (dB)")
+        ax.plot(f, grid[k], marker=_MARKERS[k % len(_MARKERS)], ms=3, lw=1,
+                ls=_LINESTYLES[k % len(_LINESTYLES)], color=_SERIES[k % len(_SERIES)],
+                label=f"{lv:g} dBFS tones")  # fmt: skip
+    _mark_readings(ax, _frequency_limits(ax, graded, c))
+    _frequency_axes(ax, title)
     ax.legend(fontsize=7, frameon=False)
     return fig
 
@@ -570,14 +680,70 @@ def plot_frequency_response(curves, *, ax=None, title="Frequency response", grad
     return fig
 
 
-#: What each overlay plot draws: name -> (curve, title, x label, y label, x scale).
+def _short(text, n=70):
+    text = " ".join(str(text).split())
+    return text if len(text) <= n else text[: n - 1] + "\u2026"
+
+
+def plot_dynamic_range_vs_jitter(curves, *, ax=None, title="Dynamic range against clock jitter",
+                                 graded=()):  # fmt: skip
+    """The -60 dBFS dynamic range with white clock jitter on the output edges, and its prediction.
+
+    Parameters
+    ----------
+    curves : dict
+        ``curves["dynamic_range_vs_jitter"]`` with ``sigma_s`` (rms jitter, seconds),
+        ``dynamic_range_db`` (NaN where invalid) and ``predicted_dynamic_range_db``; optional
+        ``dynamic_range_db_a`` and ``invalid_reason`` (a point without a reading is named in
+        the legend with its reason).
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        ``jitter_dynamic_range_db_at_1ps`` / ``_10ps`` / ``_100ps`` limits are drawn as a
+        short bar at their jitter, the reading marked by a circle (pass) or a cross (fail).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005
+       (clock jitter of continuous-time DACs: white jitter adds noise in proportion to the
+       mean squared output step); the battery computes the prediction (docs/impairments.md).
+    """
+    c = _curve(curves, "dynamic_range_vs_jitter",
+               ("sigma_s", "dynamic_range_db", "predicted_dynamic_range_db"))  # fmt: skip
+    fig, ax = _axes(ax)
+    ps = np.asarray(c["sigma_s"], dtype=float) * 1e12
+    dr = np.asarray(c["dynamic_range_db"], dtype=float)
+    ax.plot(ps, dr, "o-", color=_BLUE, ms=4, lw=1, label="simulated, unweighted")
+    if "dynamic_range_db_a" in c:
+        ax.plot(ps, np.asarray(c["dynamic_range_db_a"], dtype=float), "s--", color=_ORANGE,
+                ms=4, lw=1, label="simulated, A-weighted")  # fmt: skip
+    pred = np.asarray(c["predicted_dynamic_range_db"], dtype=float)
+    if np.isfinite(pred).any():
+        ax.plot(ps, pred, color=_VERMILLION, lw=1.3, ls=(0, (1, 2)), marker="+", ms=7,
+                label="predicted: jitter-free noise + textbook jitter noise")  # fmt: skip
+    else:
+        ax.plot([], [], " ", label="no prediction (no valid jitter-free reading)")
+    reasons = np.asarray(c.get("invalid_reason", np.full(ps.shape, "")), dtype=str)
+    for x, y, why in zip(ps, dr, reasons, strict=True):
+        if not np.isfinite(y):
+            ax.plot([], [], " ", label=f"{x:g} ps: no reading ({_short(why or 'invalid')})")
+    _mark_readings(ax, _jitter_limits(ax, graded))
+    _jitter_axes(ax, title, ps)
+    ax.legend(fontsize=7, frameon=False, loc="lower left")
+    return fig
+
+
+#: What each overlay plot draws: kind -> (curve, title).
 _OVERLAY_KINDS = {
-    "thd_n_vs_level": ("thd_n_vs_level", "THD+N against level, every profile", "tone level (dBFS)",
-                       "THD+N (dB)", "linear"),
-    "thd_n_vs_frequency": ("thd_n_vs_frequency", "THD+N against frequency, every profile",
-                           "tone frequency (Hz)", "THD+N (dB)", "log"),
-    "noise_density": ("audio_spectrum", "Output noise density in the audio band, every profile",
-                      "frequency (kHz)", "noise density (dBFS/\u221aHz)", "linear"),
+    "thd_n_vs_level": ("thd_n_vs_level", "THD+N against level, every profile"),
+    "thd_n_vs_frequency": ("thd_n_vs_frequency", "THD+N against frequency, every profile"),
+    "noise_density": ("audio_spectrum", "Output noise density in the audio band, every profile"),
+    "dynamic_range_vs_jitter": ("dynamic_range_vs_jitter",
+                                "Dynamic range against clock jitter, every profile"),
 }  # fmt: skip
 
 
@@ -595,20 +761,26 @@ def _smooth_db(d, bins):
     return _db_power(p[:n].reshape(-1, bins).mean(axis=1))
 
 
-def plot_overlay(kind, profiles, *, ax=None, title=None):
+def plot_overlay(kind, profiles, *, ax=None, title=None, graded=None):
     """One quantity for several profiles on one axis, one colour and style per profile.
 
     Parameters
     ----------
     kind : str
         ``"thd_n_vs_level"``, ``"thd_n_vs_frequency"`` (-1 dBFS solid markers, -20 dBFS
-        hollow) or ``"noise_density"`` (the audio-band density, averaged over 8 bins).
+        hollow), ``"noise_density"`` (the audio-band density, averaged over 8 bins) or
+        ``"dynamic_range_vs_jitter"`` (the unweighted dynamic range against rms jitter).
     profiles : sequence of (str, dict, int)
         ``(name, curves, style index)``; the style index picks :func:`series_style`, so a
         profile keeps its colour across the report. Profiles without the curve are listed in
         the legend as "no data".
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, optional, keyword-only
+    graded : sequence of sequences of TargetGrade, optional, keyword-only
+        Each profile's graded targets, in the order of ``profiles``. The limits of the
+        quantity's targets are drawn once (the profiles share the spec sheet) and each
+        profile's reading is marked in its colour: an open circle when it meets the limit, a
+        filled cross when not.
 
     Returns
     -------
@@ -616,9 +788,15 @@ def plot_overlay(kind, profiles, *, ax=None, title=None):
     """
     if kind not in _OVERLAY_KINDS:
         raise ParameterError("kind", kind, "one of " + ", ".join(_OVERLAY_KINDS))
-    curve, default_title, xlabel, ylabel, xscale = _OVERLAY_KINDS[kind]
+    curve, default_title = _OVERLAY_KINDS[kind]
+    profiles = list(profiles)
+    graded = [()] * len(profiles) if graded is None else list(graded)
+    if len(graded) != len(profiles):
+        raise ParameterError("graded", len(graded), f"one entry per profile ({len(profiles)})")
     fig, ax = _axes(ax, size=(7.6, 3.8))
-    for name, curves, index in profiles:
+    shared, marked, missing = set(), False, []
+    sigma_ps = []
+    for (name, curves, index), lines in zip(profiles, graded, strict=True):
         st = series_style(index)
         c = curves.get(curve) if isinstance(curves, dict) else None
         if not isinstance(c, dict):
@@ -626,23 +804,49 @@ def plot_overlay(kind, profiles, *, ax=None, title=None):
             continue
         if kind == "thd_n_vs_level":
             ax.plot(c["level_dbfs"], c["thd_n_db"], ms=4, lw=1.1, label=name, **st)
+            marks = _level_limits(ax, lines, shared=shared)
         elif kind == "thd_n_vs_frequency":
             grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
             for k, lv in enumerate(np.atleast_1d(c["level_dbfs"])):
                 ax.plot(c["frequency_hz"], grid[k], ms=4, lw=1.1,
                         mfc=st["color"] if k == 0 else "none",
                         label=f"{name}, {float(lv):g} dBFS", **st)  # fmt: skip
-        else:
+            marks = _frequency_limits(ax, lines, c, shared=shared)
+        elif kind == "noise_density":
             f = np.asarray(c["frequency_hz"], dtype=float)
             d = _smooth_db(c["density_dbfs_per_hz"], 8)
             fk = f[: len(d) * 8].reshape(-1, 8).mean(axis=1) / 1e3
             ax.plot(fk, d, lw=0.9, color=st["color"], ls=st["ls"], label=name)
-    ax.set_xscale(xscale)
-    if kind == "noise_density":
-        ax.set_xlim(0.0, 24.0)
-        ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
-    _style(ax, title or default_title, xlabel, ylabel)
-    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+            marks = _density_limits(ax, lines, shared=shared)
+        else:
+            ps = np.asarray(c["sigma_s"], dtype=float) * 1e12
+            sigma_ps += list(ps)
+            ax.plot(ps, c["dynamic_range_db"], ms=4, lw=1.1, label=name, **st)
+            marks = _jitter_limits(ax, lines, shared=shared)
+        marked = _mark_readings(ax, marks, st["color"]) or marked
+        for _g, _x, y, label in marks:
+            if y is None or not np.isfinite(y):  # failed without a reading: said in words
+                missing.append((st["color"], f"{name}: no valid reading ({label})"))
+    for colour, text in missing:
+        ax.plot([], [], _FAIL_MARKER, color=colour, label=text)
+    if marked or missing:
+        ax.plot([], [], _PASS_MARKER, color=_INK, mfc="none", label="reading meets the limit")
+        ax.plot([], [], _FAIL_MARKER, color=_INK, label="reading misses the limit")
+    title = title or default_title
+    if kind == "thd_n_vs_level":
+        _level_axes(ax, title)
+    elif kind == "thd_n_vs_frequency":
+        _frequency_axes(ax, title)
+    elif kind == "noise_density":
+        _audio_band_axes(ax, title)
+    else:
+        _jitter_axes(ax, title, sigma_ps)
+    # the profiles first, then the limits they share, then what the markers mean
+    limits = {key[0] for key in shared}
+    handles, labels = ax.get_legend_handles_labels()
+    order = sorted(range(len(labels)), key=lambda i: labels[i] in limits)
+    ax.legend([handles[i] for i in order], [labels[i] for i in order], fontsize=7,
+              frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))  # fmt: skip
     return fig
 
 
@@ -827,6 +1031,11 @@ PLOTS = (
     ("idle_tone_map", plot_idle_tone_map, "idle-tone map"),
     ("state_histograms", plot_state_histograms, "integrator state histograms"),
     ("frequency_response", plot_frequency_response, "frequency response"),
+    (
+        "dynamic_range_vs_jitter",
+        plot_dynamic_range_vs_jitter,
+        "dynamic range against clock jitter, with the textbook prediction",
+    ),
 )
 
 #: The report's plots of every profile together: (kind for plot_overlay, caption).
@@ -834,6 +1043,7 @@ OVERLAYS = (
     ("thd_n_vs_level", "THD+N against level, every profile"),
     ("thd_n_vs_frequency", "THD+N against frequency, every profile"),
     ("noise_density", "audio-band noise density, every profile"),
+    ("dynamic_range_vs_jitter", "dynamic range against clock jitter, every profile"),
 )
 
 
