@@ -561,12 +561,12 @@ def render_html(batch, *, title=None) -> str:
     str
     """
     from audiodsm import __version__
-    from audiodsm.evaluate import plotting
+    from audiodsm.evaluate import grade_plots, plotting
 
     spec = batch.spec
     title = title or f"Grades against {spec.name}"
     stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
-    margins_png = _png_base64(plotting.plot_margins(batch)) if batch.grades else None
+    margins_png = _png_base64(grade_plots.plot_margins(batch)) if batch.grades else None
     sections = []
     with_curves, with_lines = [], []
     for rank, g in enumerate(batch.grades, 1):
@@ -607,7 +607,7 @@ def render_html(batch, *, title=None) -> str:
                 "csv_name": f"{_file_stem(g.name)}-parts.csv",
             }
             try:
-                spread["png"] = _png_base64(plotting.plot_part_spread(g.parts, graded=g.lines))
+                spread["png"] = _png_base64(grade_plots.plot_part_spread(g.parts, graded=g.lines))
             except AudiodsmError:  # no metric differs between parts: the table says it all
                 pass
         sections.append(
