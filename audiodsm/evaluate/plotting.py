@@ -200,8 +200,8 @@ def _prediction_label(c):
     # a single-bit loop: the sign quantizer's error is not white, and no gain can say so; the
     # model is an upper bound, the simulated density lies 1 to 4.5 dB under it (docs/report.md)
     return (
-        f"predicted from the NTF with effective quantizer gain {k:.2f} (fitted to a run);\n"
-        "single-bit: an upper bound, the sign quantizer's error is not white (up to 4.5 dB high)"
+        f"predicted from the NTF, effective quantizer gain {k:.2f} (fitted to a run);\n"
+        "single-bit: an upper bound, up to 4.5 dB high (the error is not white)"
     )
 
 
@@ -730,13 +730,15 @@ def plot_dynamic_range_vs_jitter(curves, *, ax=None, title="Dynamic range agains
     fig, ax = _axes(ax)
     ps = np.asarray(c["sigma_s"], dtype=float) * 1e12
     dr = np.asarray(c["dynamic_range_db"], dtype=float)
+    # small dots under the prediction's larger crosses, drawn on top: both stay visible where
+    # they agree (open circles and filled crosses are the verdict markers)
     ax.plot(ps, dr, "o-", color=_BLUE, ms=4, lw=1, label="simulated, unweighted")
     if "dynamic_range_db_a" in c:
         ax.plot(ps, np.asarray(c["dynamic_range_db_a"], dtype=float), "s--", color=_ORANGE,
                 ms=4, lw=1, label="simulated, A-weighted")  # fmt: skip
     pred = np.asarray(c["predicted_dynamic_range_db"], dtype=float)
     if np.isfinite(pred).any():
-        ax.plot(ps, pred, color=_VERMILLION, lw=1.3, ls=(0, (1, 2)), marker="+", ms=7,
+        ax.plot(ps, pred, color=_VERMILLION, lw=1.6, ls=(0, (1, 2)), marker="+", ms=9, zorder=3,
                 label="predicted: jitter-free noise + textbook jitter noise")  # fmt: skip
     else:
         ax.plot([], [], " ", label="no prediction (no valid jitter-free reading)")
