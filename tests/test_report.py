@@ -645,7 +645,10 @@ def test_jitter_overlay_data_sits_beside_it_on_the_page(tmp_path, batch):
         r'download="([^"]+)" href="data:text/csv;charset=utf-8;base64,([^"]+)"', page
     )
     files = {name: base64.b64decode(b64).decode("utf-8") for name, b64 in links}
-    rows = list(csv.DictReader(io.StringIO(files["every-profile-dynamic_range_vs_jitter.csv"])))
+    table = files["every-profile-dynamic_range_vs_jitter.csv"]
+    rows = list(csv.DictReader(io.StringIO(table)))
+    # what the plot draws: the unweighted readings (and why a point is missing)
+    assert table.splitlines()[0] == "profile,sigma_s,dynamic_range_db,invalid_reason"
     for name, order in (("third", 3), ("fifth", 5)):
         mine = [r for r in rows if r["profile"] == name]
         want = full_curves(order)["dynamic_range_vs_jitter"]

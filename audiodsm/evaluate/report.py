@@ -385,6 +385,23 @@ def _overlay_density_curves(profiles):
     return out
 
 
+#: The columns of the jitter curve the plot of every profile draws (the reason says why a
+#: point is missing); the A-weighted readings and the prediction are on each profile's plot.
+_OVERLAY_JITTER_COLUMNS = ("sigma_s", "dynamic_range_db", "invalid_reason")
+
+
+def _overlay_jitter_curves(profiles):
+    """The jitter curves as the plot of every profile draws them: unweighted readings only."""
+    out = []
+    for name, curves in profiles:
+        c = curves.get("dynamic_range_vs_jitter") if isinstance(curves, dict) else None
+        if isinstance(c, dict):
+            kept = {k: c[k] for k in _OVERLAY_JITTER_COLUMNS if k in c}
+            curves = {**curves, "dynamic_range_vs_jitter": kept}
+        out.append((name, curves))
+    return out
+
+
 def _curve_table(curves: dict, name: str):
     """(header, rows) of one curve as a table; numbers as Python floats, NaN as None."""
     c = curves[name]
@@ -623,6 +640,8 @@ def render_html(batch, *, title=None) -> str:
             drawn = [(n, c) for n, c, _ in with_curves]
             if kind == "noise_density":
                 drawn = _overlay_density_curves(drawn)
+            elif kind == "dynamic_range_vs_jitter":
+                drawn = _overlay_jitter_curves(drawn)
             overlays.append(
                 {
                     "caption": caption,
