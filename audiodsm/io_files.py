@@ -390,6 +390,10 @@ class OutputSet:
     taken back out again (a file they replaced is restored from a hard link kept for the
     purpose, where the file system allows one), so the set is still all or nothing.
 
+    Files join the set as text (:meth:`add_text`), bytes (:meth:`add_bytes`), through a
+    writer given a binary file (:meth:`add_from_writer`, a figure's ``savefig`` say), or as
+    a finished temporary file (:meth:`stage`, the audio writers).
+
     Use it as a context manager: leaving the block normally commits, leaving it through an
     exception discards::
 

@@ -1,13 +1,16 @@
-"""Plots of battery curves and grades (the only module that imports matplotlib).
+"""Plots of battery curves (the only module that imports matplotlib).
 
 Every function draws data it is given and computes nothing: it takes the battery's ``curves``
-dict (or a graded batch), draws on ``ax`` when one is passed (else on a new figure) and returns
-the figure. matplotlib is imported inside the functions, so importing this module is cheap and
-nothing loads it unless a plot is asked for. Figures are built with
-:class:`matplotlib.figure.Figure` directly (no pyplot state), so they are safe to make in
-worker threads.
+dict (of one profile, or of several for :func:`plot_overlay`), draws on ``ax`` when one is
+passed (else on a new figure) and returns the figure. matplotlib is imported inside the
+functions, so importing this module is cheap and nothing loads it unless a plot is asked for.
+Figures are built with :class:`matplotlib.figure.Figure` directly (no pyplot state), so they
+are safe to make in worker threads.
 
-A missing curve raises :class:`~audiodsm.errors.ParameterError` naming it.
+A missing curve raises :class:`~audiodsm.errors.ParameterError` naming it. The plots of
+grades (margins, the spread over parts, cost against margin) are in
+:mod:`audiodsm.evaluate.grade_plots`, drawn through this module's helpers, and found here by
+name too.
 """
 
 from __future__ import annotations
@@ -207,9 +210,10 @@ def _prediction_label(c):
 
 # -- What the plot of one profile and the plot of every profile share for a quantity: the axes,
 # and the spec limits with the readings marked against them. A limit helper draws the limit
-# lines of the graded targets it knows and returns where each reading goes, ``(grade, x, y)``;
-# with ``shared`` (a set, on the plot of every profile) a limit is drawn once and labelled
-# without a verdict, which the markers in each profile's colour then give.
+# lines of the graded targets it knows and returns where each reading goes, ``(grade, x, y,
+# limit label)`` (``y`` None without a reading). With ``shared`` (a set, on the plot of every
+# profile) a limit is drawn once and labelled without a verdict, which the markers in each
+# profile's colour then give.
 
 #: The dynamic-range metrics drawn on the audio-band density.
 _DR_METRICS = ("dynamic_range_db", "dynamic_range_db_a", "dynamic_range_db_ccir")
