@@ -132,13 +132,39 @@ def select_thermometer(codes, half, table, out):
         out[n] = (k - half) + table[k]
 
 
+_LOW32 = np.uint64(0xFFFFFFFF)
+_TWO32 = np.uint64(1 << 32)
+
+
+@njit(cache=True, nogil=True)
+def uniform_below(rng, bound):
+    """A uniform integer in ``[0, bound)``, ``0 < bound < 2**32``, from the state ``rng``.
+
+    Lemire's multiply-and-shift method with its exact rejection step (D. Lemire, "Fast random
+    integer generation in an interval", ACM TOMACS 29(1), 2019, the 32-bit algorithm): the
+    high 32 bits ``x`` of a splitmix64 output times ``bound`` is a 64-bit product ``m``;
+    ``m >> 32`` is the draw unless the low half of ``m`` falls below ``(2**32 - bound) mod
+    bound``, then ``x`` is drawn again. No modulo bias at all, and no division but in the
+    rare case where the low half is below ``bound`` (probability ``bound / 2**32``).
+    """
+    s = np.uint64(bound)
+    m = (_next_random(rng) >> np.uint64(32)) * s
+    low = m & _LOW32
+    if low < s:
+        reject = (_TWO32 - s) % s
+        while low < reject:
+            m = (_next_random(rng) >> np.uint64(32)) * s
+            low = m & _LOW32
+    return np.int64(m >> np.uint64(32))
+
+
 @njit(cache=True, nogil=True)
 def select_random(codes, half, errors, rng, order, out):
     """Random selection: each sample, ``k`` elements drawn without replacement.
 
-    A partial Fisher-Yates shuffle of the persistent index array ``order`` (state), with
-    splitmix64 (state ``rng``, one uint64) as the source; the modulo bias of ``r % m`` for
-    ``m <= 65536`` is below 4e-15 and ignored.
+    A partial Fisher-Yates shuffle of the persistent index array ``order`` (state), the swap
+    partner of place ``j`` drawn uniformly from ``j .. N - 1`` by :func:`uniform_below`
+    (splitmix64, state ``rng``, one uint64; exact, without modulo bias).
     """
     n_el = errors.size
     total = 0.0
@@ -148,7 +174,7 @@ def select_random(codes, half, errors, rng, order, out):
         k = codes[n]
         acc = 0.0
         for j in range(k):
-            r = j + np.int64(_next_random(rng) % np.uint64(n_el - j))
+            r = j + uniform_below(rng, n_el - j)
             t = order[j]
             order[j] = order[r]
             order[r] = t
