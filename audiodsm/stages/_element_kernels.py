@@ -535,8 +535,8 @@ def add_tick_sine_shifts(levels, ticks, prev, start, ticks_per_frame, peak, rati
     sine and cosine come from exact anchors every :data:`SINE_ANCHOR` frames by the angle sum
     (as in :func:`add_sine_shifts`), the tick's part from a table of ``ticks_per_frame``
     angles by one more angle sum: no sine per edge, the same numbers for any block split,
-    within a few 1e-16 of the peak of the sine of the phase taken per edge
-    (tests/test_edges.py).
+    within a few 1e-15 of the peak of the sine of the exact phase near the start; further
+    on, the anchor's phase product rounds (tests/test_edges.py, docs/impairments.md).
     """
     n = levels.shape[0]
     n_seg = levels.shape[1]
