@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 from fault_batteries import short_real_battery, worker_killing_battery
-from subprocess_helpers import interruptible
+from subprocess_helpers import start_batch_and_wait
 
 from audiodsm.cli import main
 from audiodsm.errors import ClusterError
@@ -258,23 +258,8 @@ def test_sigint_on_the_client_keeps_the_cache_and_stops_its_cluster(tmp_path, ca
     script.write_text(
         _CTRL_C_SCRIPT.format(tests=str(TESTS), root=str(ROOT), pdir=str(pdir), cache=str(cache))
     )
-    proc = subprocess.Popen(
-        [sys.executable, str(script)],
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        preexec_fn=interruptible,
-        text=True,
-        start_new_session=True,
-    )
+    proc, started = start_batch_and_wait(script, cache, calls)
     try:
-        deadline = time.monotonic() + 120
-        while time.monotonic() < deadline:
-            started = [p for p in calls.iterdir() if p.name.startswith("started.")]
-            if len(list(cache.glob("*.npz"))) == 1 and started:
-                break
-            time.sleep(0.1)
-        else:
-            pytest.fail("the batch never got going")
         worker_pids = {int(p.name.rsplit(".", 1)[1]) for p in started}
         proc.send_signal(signal.SIGINT)  # the client only, not its process group
         out, err = proc.communicate(timeout=60)

@@ -3,8 +3,6 @@ import json
 import math
 import os
 import signal
-import subprocess
-import sys
 import time
 from pathlib import Path
 from types import SimpleNamespace
@@ -12,7 +10,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from subprocess_helpers import interruptible
+from subprocess_helpers import start_batch_and_wait
 
 from audiodsm.cli import main
 from audiodsm.errors import ParameterError, ProfileError
@@ -428,23 +426,8 @@ def test_ctrl_c_on_a_parallel_batch_keeps_finished_results(tmp_path, calls):
             cache=str(cache),
         )
     )
-    proc = subprocess.Popen(
-        [sys.executable, str(script)],
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        preexec_fn=interruptible,
-        text=True,
-        start_new_session=True,
-    )
+    proc, _ = start_batch_and_wait(script, cache, calls)
     try:
-        deadline = time.monotonic() + 120
-        while time.monotonic() < deadline:
-            started = [p for p in calls.iterdir() if p.name.startswith("started.")]
-            if len(list(cache.glob("*.npz"))) == 1 and started:
-                break
-            time.sleep(0.1)
-        else:
-            pytest.fail("the batch never got going")
         os.killpg(proc.pid, signal.SIGINT)
         out, err = proc.communicate(timeout=60)
     finally:

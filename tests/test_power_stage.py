@@ -160,7 +160,7 @@ def test_half_bridge_on_resistance_follows_the_duty_cycle():
         y = np.full(6000, 2.0 * code / steps - 1.0)
         kw = dict(frame_rate_hz=768e3, levels=steps + 1, bridge="half", supply_volts=volts)
         wave, _, _ = pwm_waveform(y, carrier="trailing", **kw)
-        plan = out_mod._pwm_plan(
+        plan = out_mod.pwm_switching_plan(
             y, 768e3, steps + 1, None, "two-level", "trailing", "half", 1, 0, 0, "drop", volts
         )
         configs = segment_switch_states(wave, plan)
@@ -181,7 +181,7 @@ def test_equal_on_resistance_is_a_series_resistance():
     wave, _, _ = pwm_waveform(
         y, frame_rate_hz=768e3, levels=9, bridge="half", carrier="double-edge", supply_volts=5.0
     )
-    plan = out_mod._pwm_plan(
+    plan = out_mod.pwm_switching_plan(
         y, 768e3, 9, None, "two-level", "double-edge", "half", 1, 0, 0, "drop", 5.0
     )
     sw = switched_lc_filter(L_H, C_F, 8.0, high_side_ohm=0.2, low_side_ohm=0.2, half_bridge=True)
@@ -233,7 +233,7 @@ def test_switched_kernel_against_its_slow_twin_and_streams(mode):
         supply_volts=5.0,
     )
     wave, _, _ = pwm_waveform(y, **kw)
-    plan = out_mod._pwm_plan(
+    plan = out_mod.pwm_switching_plan(
         y, 768e3, 9, None, kw["mode"], "double-edge", kw["bridge"], 2, 0, 0, "drop", 5.0
     )
     configs = segment_switch_states(wave, plan)
@@ -290,7 +290,7 @@ def test_readings_at_constant_duty_match_the_averaged_circuit():
     wave, _, _ = pwm_waveform(
         y, frame_rate_hz=rate, levels=steps + 1, bridge="half", supply_volts=volts
     )
-    plan = out_mod._pwm_plan(
+    plan = out_mod.pwm_switching_plan(
         y, rate, steps + 1, None, "two-level", "double-edge", "half", 1, 0, 0, "drop", volts
     )
     sw = switched_lc_filter(L_H, C_F, r, high_side_ohm=r_hs, low_side_ohm=r_ls, half_bridge=True)
@@ -315,7 +315,7 @@ def test_load_power_equals_the_mean_square_output_over_r():
     y = np.clip(0.6 * np.sin(np.arange(6000) * 0.01) + rng.normal(0, 0.1, 6000), -1, 1)
     y = np.round(y * 4) / 4
     wave, _, _ = pwm_waveform(y, frame_rate_hz=768e3, levels=9, supply_volts=5.0)
-    plan = out_mod._pwm_plan(
+    plan = out_mod.pwm_switching_plan(
         y, 768e3, 9, None, "two-level", "double-edge", "full", 1, 0, 0, "drop", 5.0
     )
     sw = switched_lc_filter(L_H, C_F, 8.0, bridged=True, high_side_ohm=0.1, low_side_ohm=0.1)
@@ -504,7 +504,9 @@ def test_dead_time_loop_picks_the_same_switches_as_the_plain_stage(mode, bridge)
     )
     got, got_sq, _, _ = filter_pwm_with_dead_time(sw.average, y, switched=sw, **kw)
     wave, _, _ = pwm_waveform(y, **kw)
-    plan = out_mod._pwm_plan(y, 768e3, 9, None, mode, "double-edge", bridge, 2, 0, 0, "drop", 5.0)
+    plan = out_mod.pwm_switching_plan(
+        y, 768e3, 9, None, mode, "double-edge", bridge, 2, 0, 0, "drop", 5.0
+    )
     want, want_sq, _ = filter_switched_waveform(sw, wave, segment_switch_states(wave, plan))
     assert np.allclose(got, want, rtol=0, atol=1e-9)
     assert np.allclose(got_sq, want_sq, rtol=0, atol=1e-8)

@@ -930,5 +930,5 @@ def _class_d_power(profile, res, settle_s, read_s):
         wf = apply_supply_ripple(
             wf, ripple=imp.supply_ripple, ripple_hz=imp.supply_ripple_hz, first_frame=first
         )
-    configs = segment_switch_states(wf, out_mod._pwm_plan(y, fm, **settings))
+    configs = segment_switch_states(wf, out_mod.pwm_switching_plan(y, fm, **settings))
     return class_d_readings(_power_stage_filter(profile), wf, configs, skip_frames=run_in)

@@ -180,21 +180,11 @@ def _stage_waveform_fn(profile: ChainProfile, frame_rate_hz: float):
 
         return nrz
 
+    settings = pwm_keywords(profile, dead_time_ticks=out.dead_time_ticks)
+
     def pwm(y, state):
         wf, stats, state = out_mod.pwm_waveform(
-            y,
-            frame_rate_hz=frame_rate_hz,
-            levels=levels,
-            counter_steps=out.counter_steps or None,
-            mode=out.pwm_mode,
-            carrier=out.pwm_carrier,
-            bridge=out.pwm_bridge,
-            tick_subdivision=out.tick_subdivision,
-            dead_time_ticks=out.dead_time_ticks,
-            min_pulse_ticks=out.min_pulse_ticks,
-            min_pulse_action=out.short_pulse_action,
-            supply_volts=volts,
-            state=state,
+            y, frame_rate_hz=frame_rate_hz, state=state, **settings
         )
         return wf, (stats.dropped_pulses, stats.stretched_pulses), state
 
@@ -275,25 +265,18 @@ def _pwm_dead_time_fn(profile: ChainProfile, frame_rate_hz: float, filt):
     imp = profile.impairments
     switched = _power_stage_filter(profile) if imp.on_resistance else None
 
+    settings = pwm_keywords(profile, dead_time_ticks=out.dead_time_ticks)
+
     def pwm_dead_time(y, state):
         means, squares, stats, state = filter_pwm_with_dead_time(
             filt,
             y,
             frame_rate_hz=frame_rate_hz,
-            levels=profile.modulator.levels,
-            counter_steps=out.counter_steps or None,
-            mode=out.pwm_mode,
-            carrier=out.pwm_carrier,
-            bridge=out.pwm_bridge,
-            tick_subdivision=out.tick_subdivision,
-            dead_time_ticks=out.dead_time_ticks,
-            min_pulse_ticks=out.min_pulse_ticks,
-            min_pulse_action=out.short_pulse_action,
-            supply_volts=out.full_scale_volts,
             state=state,
             switched=switched,
             supply_ripple=imp.supply_ripple,
             supply_ripple_hz=imp.supply_ripple_hz,
+            **settings,
         )
         return means, squares, (stats.dropped_pulses, stats.stretched_pulses), state
 
@@ -393,7 +376,7 @@ def _switched_filter_fn(profile: ChainProfile, frame_rate_hz: float):
         return None
 
     def run(wf, y, state):
-        plan = out_mod._pwm_plan(y, frame_rate_hz, **pwm_keywords(profile))
+        plan = out_mod.pwm_switching_plan(y, frame_rate_hz, **pwm_keywords(profile))
         configs = segment_switch_states(wf, plan)
         return filter_switched_waveform(switched, wf, configs, state)
 

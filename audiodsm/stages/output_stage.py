@@ -464,7 +464,7 @@ class _PwmPlan:
     stretched: int
 
 
-def _pwm_plan(
+def pwm_switching_plan(
     y,
     frame_rate_hz,
     levels,
@@ -478,7 +478,13 @@ def _pwm_plan(
     min_pulse_action,
     supply_volts,
 ) -> _PwmPlan:
-    """Check the PWM settings (as documented in :func:`pwm_waveform`) and make the codes."""
+    """Check the PWM settings (as documented in :func:`pwm_waveform`) and make the leg codes.
+
+    The plan (each leg's on-time code per frame, the frame's ticks, the dead time, which legs
+    are inverted) is what :func:`pwm_waveform` draws and what the power stage needs to know
+    which switches conduct in each segment
+    (:func:`audiodsm.stages.power_stage.segment_switch_states`).
+    """
     arr = _as_channel(y)
     rate = _check_rate(frame_rate_hz)
     mode = _check_choice(mode, "mode", _MODES)
@@ -612,7 +618,7 @@ def pwm_waveform(
     .. [2] Z. Song and D. V. Sarwate, "The frequency spectrum of pulse width modulated signals",
        IEEE Trans. Signal Processing, 2003.
     """
-    plan = _pwm_plan(
+    plan = pwm_switching_plan(
         y,
         frame_rate_hz,
         levels,

@@ -581,7 +581,7 @@ def filter_pwm_with_dead_time(
         raise ParameterError(
             "filt", filt.description, "a filter with an inductor current state (an LC filter)"
         )
-    plan = _out._pwm_plan(
+    plan = _out.pwm_switching_plan(
         y,
         frame_rate_hz,
         levels,
