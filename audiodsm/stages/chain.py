@@ -589,7 +589,7 @@ class Chain:
         One segment per frame, through the output stage's static map (gain and offset), on
         the same tick grid as the real waveform.
         """
-        from audiodsm.stages.output_stage import PulseWaveform
+        from audiodsm.stages.output_stage import _ONE_TICK, PulseWaveform
 
         if self._stf is None:
             ideal = xu
@@ -602,13 +602,13 @@ class Chain:
             ideal, stf_state = lfilter(num, den, xu, zi=stf_state)
         levels = (self.offset + self.stage_gain * ideal)[:, None]
         tpf = wf.ticks_per_frame if wf is not None else 1  # one segment a frame either way
-        ticks = np.full((xu.size, 1), tpf, dtype=np.int64)
-        waveform = PulseWaveform(
-            levels=levels,
-            ticks=ticks,
-            ticks_per_frame=tpf,
-            frame_rate_hz=float(self.modulator_rate_hz),
-        )
+        if tpf == 1:
+            ticks = _ONE_TICK[: xu.size]
+        else:
+            ticks = np.full((xu.size, 1), tpf, dtype=np.int64)
+        # valid by construction: one segment of the whole frame, finite levels of a finite
+        # input through a stable filter
+        waveform = PulseWaveform._trusted(levels, ticks, tpf, float(self.modulator_rate_hz))
         return waveform, stf_state
 
     # -- blocks ---------------------------------------------------------------------------------
