@@ -737,3 +737,41 @@ def test_a_later_render_removes_temporary_files_a_killed_one_left(setup):
     assert res.exit_code == 0, res.output
     assert not stale.exists()
     assert live.exists()  # its writer still runs
+
+
+def test_blocks_computed_ahead_keep_their_order_errors_and_stop():
+    # the render's helper thread: the caller sees the same items in the same order, an error
+    # of the producer is raised in the caller's thread, and a caller that stops early leaves
+    # no thread running (the producer is closed and joined)
+    import threading
+
+    from audiodsm.evaluate.render import _computed_ahead
+
+    assert list(_computed_ahead(iter(range(50)), depth=2)) == list(range(50))
+
+    def failing():
+        yield 1
+        raise ValueError("broken block")
+
+    got = []
+    with pytest.raises(ValueError, match="broken block"):
+        for item in _computed_ahead(failing()):
+            got.append(item)
+    assert got == [1]
+
+    closed = threading.Event()
+
+    def endless():
+        try:
+            n = 0
+            while True:
+                yield n
+                n += 1
+        finally:
+            closed.set()
+
+    ahead = _computed_ahead(endless(), depth=2)
+    assert [next(ahead) for _ in range(3)] == [0, 1, 2]
+    ahead.close()
+    assert closed.is_set()
+    assert not any(t.name == "audiodsm-render-ahead" for t in threading.enumerate())
