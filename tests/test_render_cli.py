@@ -775,3 +775,25 @@ def test_blocks_computed_ahead_keep_their_order_errors_and_stop():
     ahead.close()
     assert closed.is_set()
     assert not any(t.name == "audiodsm-render-ahead" for t in threading.enumerate())
+
+
+def test_a_render_stopped_by_an_error_leaves_no_helper_running(tmp_path):
+    # an error in the calling thread (here the progress callback) ends the render with that
+    # error, the helper that computes blocks ahead is stopped and joined, and no output is left
+    import threading
+
+    from audiodsm.evaluate.render import render_file
+    from audiodsm.profile import parse_profile
+
+    wav = tmp_path / "in.wav"
+    sf.write(wav, 0.1 * np.ones((3 * RATE, 2)), RATE, subtype="PCM_24")
+    out = tmp_path / "out"
+    out.mkdir()
+
+    def progress(frames):
+        raise RuntimeError("stopped by the caller")
+
+    with pytest.raises(RuntimeError, match="stopped by the caller"):
+        render_file(wav, parse_profile(PROFILE), out, progress=progress)
+    assert not any(t.name == "audiodsm-render-ahead" for t in threading.enumerate())
+    assert list(out.iterdir()) == []

@@ -30,7 +30,7 @@ import queue
 import re
 import threading
 import time
-from contextlib import ExitStack, nullcontext
+from contextlib import ExitStack, closing, nullcontext
 from pathlib import Path
 
 import numpy as np
@@ -321,7 +321,10 @@ def render_file(
         # this one writes the last block's outputs: same blocks, same order, same numbers
         produced = ((b, st, done[0]) for b, st in chain.stream(tapped_blocks(), keep=run_keep))
         reported = 0
-        for block, block_state, read in _computed_ahead(produced):
+        # closed on the way out (an error or Ctrl-C below): the helper stops and is joined
+        # before the writers and the output set clean up
+        ahead = stack.enter_context(closing(_computed_ahead(produced)))
+        for block, block_state, read in ahead:
             if progress is not None and read > reported:
                 progress(read - reported)
                 reported = read
