@@ -76,11 +76,12 @@ Spec sheets (``audiodsm.spec``)
 Grading (``audiodsm.evaluate.grade``)
     grade_batch, grade_metrics, rank_grades, collect_profiles, GradeBatch, ProfileGrade,
     TargetGrade, GradeCache
-Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``)
+Reports and plots (``audiodsm.evaluate.report``, ``audiodsm.evaluate.plotting``,
+``audiodsm.evaluate.grade_plots``)
     write_report, render_html, batch_to_dict, batch_to_csv, curve_to_csv, write_profile_plots,
     plot_spectrum, plot_noise_density, plot_audio_band_density, plot_thd_n_vs_level,
     plot_thd_n_vs_frequency, plot_idle_tone_map, plot_state_histograms, plot_frequency_response,
-    plot_overlay, series_style, plot_margins, plot_spectrogram
+    plot_dynamic_range_vs_jitter, plot_overlay, series_style, plot_margins, plot_spectrogram
 Audio-file jobs (``audiodsm.evaluate.render``, ``audiodsm.evaluate.analyze``,
 ``audiodsm.measure.silence``)
     render_file, render_files, output_names, analyze_file, FileAnalysis, SilenceNoiseMeter
@@ -100,7 +101,7 @@ from __future__ import annotations
 
 import importlib
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
 
 # public name -> module that defines it
 _PUBLIC = {
@@ -271,7 +272,8 @@ _PUBLIC = {
     "plot_idle_tone_map": "audiodsm.evaluate.plotting",
     "plot_state_histograms": "audiodsm.evaluate.plotting",
     "plot_frequency_response": "audiodsm.evaluate.plotting",
-    "plot_margins": "audiodsm.evaluate.plotting",
+    "plot_dynamic_range_vs_jitter": "audiodsm.evaluate.plotting",
+    "plot_margins": "audiodsm.evaluate.grade_plots",
     "plot_spectrogram": "audiodsm.evaluate.plotting",
     "integrated_loudness_lufs": "audiodsm.measure.loudness",
     "gain_to_loudness_db": "audiodsm.measure.loudness",

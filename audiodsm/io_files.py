@@ -316,6 +316,28 @@ def _check_name_fits(path) -> None:
         raise StorageError(p, os.strerror(errno.ENAMETOOLONG))
 
 
+def _write_temp_beside(path: Path, write) -> Path:
+    """Write a hidden temporary twin of ``path`` through ``write(binary file)``; return it.
+
+    The file is flushed and synced before it is closed. On any failure it is removed again:
+    an ``OSError`` becomes a :class:`StorageError` naming ``path``, anything else (Ctrl-C, an
+    error of ``write``) is raised as it is.
+    """
+    fd, tmp = create_temp_file(path)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            write(fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise StorageError(path, exc) from None
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return tmp
+
+
 def replace_text_atomically(path, text: str) -> Path:
     """Put a text file in place through a temporary file in the same folder and a rename.
 
@@ -345,12 +367,9 @@ def replace_text_atomically(path, text: str) -> Path:
     """
     p = Path(path)
     _check_name_fits(p)
-    fd, tmp = create_temp_file(p)
+    data = text.encode("utf-8")
+    tmp = _write_temp_beside(p, lambda fh: fh.write(data))
     try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
         os.replace(tmp, p)
     except OSError as exc:
         tmp.unlink(missing_ok=True)
@@ -370,6 +389,10 @@ class OutputSet:
     files. If a rename inside the commit fails, the files the commit already put in place are
     taken back out again (a file they replaced is restored from a hard link kept for the
     purpose, where the file system allows one), so the set is still all or nothing.
+
+    Files join the set as text (:meth:`add_text`), bytes (:meth:`add_bytes`), through a
+    writer given a binary file (:meth:`add_from_writer`, a figure's ``savefig`` say), or as
+    a finished temporary file (:meth:`stage`, the audio writers).
 
     Use it as a context manager: leaving the block normally commits, leaving it through an
     exception discards::
@@ -397,24 +420,35 @@ class OutputSet:
         StorageError
             The temporary file cannot be written.
         """
+        return self.add_bytes(path, text.encode("utf-8"), overwrite=overwrite)
+
+    def add_bytes(self, path, data: bytes, *, overwrite: bool = False) -> Path:
+        """Write a file of the given bytes for the set; return its name.
+
+        Raises as :meth:`add_text`.
+        """
+        return self.add_from_writer(path, lambda fh: fh.write(data), overwrite=overwrite)
+
+    def add_from_writer(self, path, write, *, overwrite: bool = False) -> Path:
+        """Write a file for the set through ``write(fh)``; return its name.
+
+        ``write`` is called once with a binary file open for writing (a figure's ``savefig``,
+        say); the file is synced and staged when it returns. An error inside ``write``
+        removes the temporary file and is raised as it is.
+
+        Raises
+        ------
+        OutputError
+            The file (or a dangling symlink) exists and ``overwrite`` is False.
+        StorageError
+            The temporary file cannot be written.
+        """
         p = Path(path)
         _check_name_fits(p)
         refuse_dangling_symlink(p, replace=overwrite)
         if p.exists() and not overwrite:
             raise OutputError(f"{p}: already exists (pass overwrite=True to replace it)")
-        fd, tmp = create_temp_file(p)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-                fh.write(text)
-                fh.flush()
-                os.fsync(fh.fileno())
-        except OSError as exc:
-            tmp.unlink(missing_ok=True)
-            raise StorageError(p, exc) from None
-        except BaseException:
-            tmp.unlink(missing_ok=True)
-            raise
-        self.stage(tmp, p, overwrite=overwrite)
+        self.stage(_write_temp_beside(p, write), p, overwrite=overwrite)
         return p
 
     def _backup(self, final: Path) -> Path | None:

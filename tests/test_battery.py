@@ -3,6 +3,8 @@
 Each battery run here uses a short plan or a subset of the tests, to keep the file fast.
 """
 
+import csv
+import io
 import math
 import re
 from dataclasses import replace
@@ -636,6 +638,45 @@ def test_predicted_noise_density_matches_the_simulated_one():
     a = res.curves["audio_spectrum"]
     assert a["resolution_hz"][0] <= 12.0 and a["frequency_hz"][-1] == pytest.approx(RATE / 2)
     assert np.isnan(a["predicted_density_dbfs_per_hz"][a["frequency_hz"] > 20000.0]).all()
+
+
+def test_a_zero_at_dc_leaves_the_0_hz_bin_empty_not_a_numeric_floor():
+    # NTF zeros all at DC: |NTF| is exactly 0 at 0 Hz, so the linear model predicts no noise
+    # there and the density has no value in dB. The curves carry NaN (an empty CSV cell),
+    # never the 10 log10(1e-300 / 0.5) = -2996.99 of a numeric floor (issue 17).
+    from audiodsm.evaluate.report import curve_to_csv
+
+    order = 3
+    prof = profile_from_dict(
+        {
+            "name": "nrz17-zeros-at-dc",
+            "modulator": {"order": order, "levels": 17, "zero_layout": "dc", "dither_lsb": 1.0},
+            "output": {"kind": "nrz"},
+            "reconstruction": {"kind": "none"},
+        }
+    )
+    res = run_battery(prof, tests=("dynamic_range", "stability"), plan=BatteryPlan.quick())
+    for name in ("spectrum", "audio_spectrum"):
+        c = res.curves[name]
+        f, pred = c["frequency_hz"], c["predicted_density_dbfs_per_hz"]
+        assert f[0] == 0.0 and np.isnan(pred[0]), name
+        assert np.isfinite(pred[1:][f[1:] <= 20000.0]).all(), name
+        # every dB number of the curve's CSV is a level, none a floor
+        rows = list(csv.DictReader(io.StringIO(curve_to_csv(res.curves, name))))
+        assert rows[0]["predicted_density_dbfs_per_hz"] == "", name
+        levels = [float(v) for r in rows for k, v in r.items() if "db" in k and v not in ("", None)]
+        assert min(levels) > -400.0, (name, min(levels))
+    c = res.curves["spectrum"]
+    assert np.isnan(c["ntf_gain_db"][0])
+    # Off DC the predicted density follows the zeros: (1 - z^-1)^N has |2 sin(pi f / fm)|^N,
+    # 20 N dB per decade at low frequencies (Schreier & Temes 2005, ch. 4, NTF zeros at DC);
+    # between the first bin and the tenth the denominator and the filters change by far less
+    # than 0.05 dB.
+    fm = 64 * RATE
+    f1, f10 = c["frequency_hz"][1], c["frequency_hz"][10]
+    rise = c["predicted_density_dbfs_per_hz"][10] - c["predicted_density_dbfs_per_hz"][1]
+    want = 20.0 * order * math.log10(math.sin(math.pi * f10 / fm) / math.sin(math.pi * f1 / fm))
+    assert rise == pytest.approx(want, abs=0.05)
 
 
 def _band_ratios_db(curve, edges):

@@ -105,9 +105,7 @@ def _twin_slots(levels, shifts, rise, fall, *, rz, top, rest):
 
 
 def _drawn_shifts(stage, count):
-    gen = np.random.Generator(np.random.PCG64())
-    gen.bit_generator.state = stage.initial_state().generator
-    return stage.shifts(0, count, gen)
+    return stage.shifts(0, count)
 
 
 def test_unequal_edges_of_a_short_sequence_equal_the_hand_computation():
@@ -334,9 +332,9 @@ def test_pwm_jitter_matches_edge_by_edge_integration(carrier):
     out, _ = stage.process_waveform(wf)
     on = wf.levels[wf.ticks > 0]
     count = int(np.count_nonzero(np.diff(on, prepend=0.0)))
-    gen = np.random.Generator(np.random.PCG64())
-    gen.bit_generator.state = stage.initial_state().generator
-    shifts = 0.03 * gen.standard_normal(count) * (tick * RATE * wf.ticks_per_frame)
+    # the random part alone (the twin adds the sine at each edge's tick)
+    plain = EdgeJitter(RATE, rms_s=0.03 * tick, seed=6, ticks_per_frame=wf.ticks_per_frame)
+    shifts = plain.shifts(0, count)
     twin = _twin_pwm(wf, out.ticks, shifts, 0.1 * tick * RATE * wf.ticks_per_frame, 50e3 / RATE)
     # the pieces tile the input segments, one frame behind
     np.testing.assert_array_equal(out.ticks[1:].reshape(59, -1, 3).sum(axis=2), wf.ticks[:-1])
@@ -535,20 +533,24 @@ def test_return_to_zero_white_jitter_noise_counts_two_edges_a_frame(levels):
     assert abs(10 * np.log10(got / want)) <= 0.5, (got, want)
 
 
-def test_sine_jitter_by_rotation_stays_at_the_exact_sine():
-    # the sinusoidal jitter's sine is rotated from anchors (stages/_element_kernels.py); the
-    # reference is numpy's sine of the same phase, 2 pi ((start + n) ratio mod 1)
+def test_sine_jitter_from_anchors_stays_at_the_exact_sine():
+    # the sinusoidal jitter's sine comes from exact anchors by the angle sum
+    # (stages/_element_kernels.py); the reference is numpy's sine of the same phase,
+    # 2 pi ((start + n) ratio mod 1)
     from audiodsm.stages import _element_kernels as kernels
 
     # (at large indices the reference's own phase n * ratio rounds to about 1e-16 n ratio
-    # cycles, so the bound is for the first few million edges, a second at 3 MHz)
+    # cycles, so the bound is for the first few million edges, a second at 3 MHz; near the
+    # start both round the phase 2 pi x to about 4e-16 rad, and the kernel stays within
+    # 3e-15 of the peak, docs/impairments.md)
     ratio, peak = 1234.5 / 3.072e6, 0.3
     for start in (0, 1, 1023, 1024, 3_000_017):
         got = np.zeros(5000)
         kernels.add_sine_shifts(got, start, peak, ratio)
         n = np.arange(start, start + 5000, dtype=np.float64)
         want = peak * np.sin(2 * np.pi * np.mod(n * ratio, 1.0))
-        np.testing.assert_allclose(got, want, rtol=0, atol=1e-11 * peak)
+        bound = 1e-11 if start > 5000 else 3e-15
+        np.testing.assert_allclose(got, want, rtol=0, atol=bound * peak)
     # any split gives the same numbers
     whole = np.zeros(3000)
     kernels.add_sine_shifts(whole, 777, peak, ratio)

@@ -901,3 +901,29 @@ def test_an_output_set_left_by_an_exception_is_discarded(tmp_path):
             outputs.add_text(tmp_path / "a.txt", "x")
             raise KeyboardInterrupt
     assert os.listdir(tmp_path) == []
+
+
+def test_an_output_set_takes_bytes_and_writer_output_whole(tmp_path):
+    from audiodsm.io_files import OutputSet
+
+    picture, table = tmp_path / "a.png", tmp_path / "a.csv"
+    with OutputSet() as outputs:
+        outputs.add_bytes(picture, b"\x89PNG\r\n\x1a\n")
+        outputs.add_from_writer(table, lambda fh: fh.write(b"x,y\r\n"))
+        assert not picture.exists() and not table.exists()  # held back until the commit
+    assert picture.read_bytes() == b"\x89PNG\r\n\x1a\n" and table.read_bytes() == b"x,y\r\n"
+    # a writer that fails half-way leaves no temporary file and no final name; the file
+    # staged before it is discarded with it
+    with pytest.raises(RuntimeError, match="drawing failed"):
+        with OutputSet() as outputs:
+            outputs.add_bytes(tmp_path / "b.png", b"ok")
+
+            def broken(fh):
+                fh.write(b"half")
+                raise RuntimeError("drawing failed")
+
+            outputs.add_from_writer(tmp_path / "b.csv", broken)
+    assert sorted(os.listdir(tmp_path)) == ["a.csv", "a.png"]
+    with pytest.raises(OutputError, match="already exists"):
+        OutputSet().add_bytes(picture, b"new")
+    assert picture.read_bytes() == b"\x89PNG\r\n\x1a\n"

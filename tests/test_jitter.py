@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import stats
 from scipy.signal import welch
 
 from audiodsm.design.ntf import NoiseTransfer
 from audiodsm.errors import ParameterError
+from audiodsm.stages._element_kernels import _ZIGGURAT_R, normal_draws
 from audiodsm.stages.jitter import EdgeJitter, jitter_in_band_power
 from audiodsm.stages.modulator import Modulator
 
@@ -47,10 +49,7 @@ def test_kernel_matches_segment_integration():
     rng = np.random.default_rng(5)
     levels = rng.integers(-4, 5, 200) / 4.0
     jit = EdgeJitter(RATE, rms_s=15e-9, seed=9, rest_level=0.25)
-    st = jit.initial_state()
-    gen = np.random.Generator(np.random.PCG64())
-    gen.bit_generator.state = st.generator
-    shifts = jit.shifts(0, 200, gen)
+    shifts = jit.shifts(0, 200)
     out, _ = jit.process(levels)
     # the twin works on absolute edge times (n + shift): rounding near 1e-14 of a frame
     np.testing.assert_allclose(out, _twin(levels, shifts, 0.25), rtol=0, atol=1e-12)
@@ -118,3 +117,38 @@ def test_single_bit_stream_is_more_jitter_sensitive_by_its_mean_squared_step():
 def test_jitter_beyond_half_a_period_refused():
     with pytest.raises(ParameterError, match="half the output period"):
         EdgeJitter(RATE, rms_s=20e-9)
+
+
+# -- the normal draws of the white jitter and the analog noise ----------------------------------
+
+
+def test_normal_draws_follow_the_standard_normal_distribution():
+    # The ziggurat (Marsaglia & Tsang 2000) against scipy's normal distribution: the
+    # Kolmogorov-Smirnov distance of a million draws (a wrong layer table or a lost wedge
+    # moves it by far more than the 0.0016 allowed at p = 0.01, Kolmogorov's distribution),
+    # the variance and kurtosis within 5 standard errors, and the tail beyond the base
+    # strip's edge r, drawn by its own method, with the probability 2 Q(r) within 5 binomial
+    # standard deviations.
+    n = 1_000_000
+    z = np.empty(n)
+    normal_draws(np.array([2024], dtype=np.uint64), 1.0, z)
+    assert stats.kstest(z, "norm").pvalue > 0.01
+    assert abs(np.var(z) - 1.0) < 5 * np.sqrt(2.0 / n)
+    assert abs(stats.kurtosis(z)) < 5 * np.sqrt(24.0 / n)
+    p_tail = 2 * stats.norm.sf(_ZIGGURAT_R)
+    tail = np.count_nonzero(np.abs(z) > _ZIGGURAT_R)
+    assert abs(tail - n * p_tail) < 5 * np.sqrt(n * p_tail)
+    beyond = np.abs(z[np.abs(z) > 4.0])  # the tail's own shape: P(|z| > 4.5 given > 4)
+    want = stats.norm.sf(4.5) / stats.norm.sf(4.0)
+    assert abs(np.mean(beyond > 4.5) - want) < 5 * np.sqrt(want / beyond.size)
+
+
+def test_normal_draws_split_into_calls_are_the_same_numbers():
+    whole, parts = np.empty(5000), []
+    normal_draws(np.array([7], dtype=np.uint64), 3.0, whole)
+    rng = np.array([7], dtype=np.uint64)
+    for size in (1, 2499, 2500):
+        part = np.empty(size)
+        normal_draws(rng, 3.0, part)
+        parts.append(part)
+    assert np.array_equal(np.concatenate(parts), whole)

@@ -96,7 +96,24 @@ def full_curves(order):
     curves["idle_tone_map"]["line_hz"] = np.array(
         [np.nan, 1234.0, np.nan, 50.0, np.nan, 7000.0, np.nan, 15000.0]
     )
+    sigma = np.array([1e-12, 1e-11, 1e-10])
+    predicted = jitter_prediction(120.0 - order, -150.0, sigma)
+    curves["dynamic_range_vs_jitter"] = {
+        "sigma_s": sigma,
+        "dynamic_range_db": predicted + 0.3,
+        "dynamic_range_db_a": predicted + 2.3,
+        "predicted_dynamic_range_db": predicted,
+        "invalid_reason": np.array(["", "", ""]),
+    }
     return curves
+
+
+def jitter_prediction(dr0_db, jitter_1ps_dbfs, sigma_s):
+    """The dynamic range with white jitter: the jitter-free noise (-dr0 dBFS) plus jitter noise
+    that grows as 20 log10(sigma / 1 ps) (Schreier & Temes 2005, clock jitter of
+    continuous-time DACs: noise power proportional to sigma^2), powers added."""
+    jitter = jitter_1ps_dbfs + 20.0 * np.log10(np.asarray(sigma_s) / 1e-12)
+    return -10.0 * np.log10(10.0 ** (-dr0_db / 10.0) + 10.0 ** (jitter / 10.0))
 
 
 def report_battery(profile, *, jobs=None, progress=None, seed=0, **options):
@@ -243,7 +260,8 @@ def test_plots_draw_on_a_given_axes():
     for ax, (_name, fn, _cap) in zip(axes, plotting.PLOTS, strict=True):
         assert fn(full_curves(3), ax=ax) is fig
     # the data drawn is the data given (plots compute nothing)
-    line = axes[-1].get_lines()[0]
+    names = [name for name, _, _ in plotting.PLOTS]
+    line = axes[names.index("frequency_response")].get_lines()[0]
     np.testing.assert_array_equal(line.get_xdata(), [20.0, 997.0, 20000.0])
     np.testing.assert_array_equal(line.get_ydata(), [-0.01, 0.0, -0.05])
 
@@ -394,9 +412,10 @@ def test_limits_are_drawn_with_the_verdict_in_words_and_shape():
         (plotting.plot_audio_band_density, "dynamic_range_db", 110.0, 112.0),
         (plotting.plot_frequency_response, "passband_ripple_db", 0.1, 0.05),
         (plotting.plot_state_histograms, "state_peak_max", 1.5, 1.0),
+        (plotting.plot_dynamic_range_vs_jitter, "jitter_dynamic_range_db_at_10ps", 112.0, 117.0),
     ]  # fmt: skip
     for fn, metric, limit, value in cases:
-        bound = "at_least" if metric.startswith("dynamic_range") else "at_most"
+        bound = "at_least" if "dynamic_range" in metric else "at_most"
         g = _graded_line(metric, limit, value, bound=bound)
         fig = fn(curves, graded=[g])
         texts = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
@@ -545,3 +564,110 @@ def test_two_profile_page_with_full_size_spectra_stays_lean(tmp_path):
     overlay = list(csv.DictReader(io.StringIO(files["every-profile-noise_density.csv"])))
     assert len(overlay) == 2 * (4097 // 8)  # as drawn: power means of 8 bins
     assert len(page.encode("utf-8")) < 2_000_000, len(page)
+
+
+def _no_reading(metric, limit, *, bound="at_least"):
+    from dataclasses import replace
+
+    return replace(_graded_line(metric, limit, limit, bound=bound), value=None, margin=None,
+                   passed=False)  # fmt: skip
+
+
+def _at_10ps(limit, curves):
+    """A ``jitter_dynamic_range_db_at_10ps`` target graded on the curve's 10 ps reading."""
+    value = float(curves["dynamic_range_vs_jitter"]["dynamic_range_db"][1])
+    return _graded_line("jitter_dynamic_range_db_at_10ps", limit, value, bound="at_least")
+
+
+def test_jitter_plot_shows_the_readings_beside_the_textbook_prediction_and_the_limits():
+    curves = full_curves(3)
+    c = curves["dynamic_range_vs_jitter"]
+    c["dynamic_range_db"][2] = np.nan
+    c["invalid_reason"] = np.array(["", "", "the -60 dBFS tone was lost"])
+    passing = _at_10ps(112.0, curves)
+    failing = _no_reading("jitter_dynamic_range_db_at_100ps", 100.0)
+    fig = plotting.plot_dynamic_range_vs_jitter(curves, graded=[passing, failing])
+    ax = fig.axes[0]
+    lines = {ln.get_label(): ln for ln in ax.get_lines()}
+    # drawn in ps as given (the plot computes nothing)
+    sim = lines["simulated, unweighted"]
+    np.testing.assert_allclose(sim.get_xdata(), [1.0, 10.0, 100.0])
+    np.testing.assert_array_equal(sim.get_ydata(), c["dynamic_range_db"])
+    # the prediction drawn is the textbook one: jitter noise 20 log10(sigma / 1 ps) above its
+    # 1 ps value, added in power to the jitter-free noise (Schreier & Temes 2005)
+    pred = next(ln for k, ln in lines.items() if k.startswith("predicted"))
+    np.testing.assert_allclose(
+        pred.get_ydata(), jitter_prediction(117.0, -150.0, [1e-12, 1e-11, 1e-10]), atol=1e-9
+    )
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert "limit at 10 ps >= 112 dB: pass" in labels
+    assert "limit at 100 ps >= 100 dB: FAIL (no valid reading)" in labels
+    assert "100 ps: no reading (the -60 dBFS tone was lost)" in labels
+    marks = {
+        (ln.get_xdata()[0], ln.get_marker()) for ln in ax.get_lines() if len(ln.get_xdata()) == 1
+    }
+    assert marks == {(10.0, "o")}  # the pass as a circle; the fail has no point to mark
+    assert [t.get_text() for t in ax.get_xticklabels()] == ["1", "10", "100"]
+
+
+def test_jitter_overlay_draws_the_shared_limit_once_and_each_verdict_in_its_colour(tmp_path):
+    third, fifth = full_curves(3), full_curves(5)
+    lim = 116.0  # third (117.0 at 10 ps) meets it, fifth (115.0) misses it
+    graded = [
+        [_at_10ps(lim, third)],
+        [_at_10ps(lim, fifth), _no_reading("jitter_dynamic_range_db_at_100ps", 100.0)],
+    ]
+    fig = plotting.plot_overlay(
+        "dynamic_range_vs_jitter", [("third", third, 0), ("fifth", fifth, 1)], graded=graded
+    )
+    ax = fig.axes[0]
+    colours = [plotting.series_style(i)["color"] for i in range(2)]
+    drawn = [ln for ln in ax.get_lines() if ln.get_label() in ("third", "fifth")]
+    assert [ln.get_color() for ln in drawn] == colours
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert labels.count("limit at 10 ps >= 116 dB") == 1  # shared: once, without a verdict
+    assert "fifth: no valid reading (limit at 100 ps >= 100 dB)" in labels
+    assert labels.index("fifth") < labels.index("limit at 10 ps >= 116 dB")
+    marks = {
+        (ln.get_marker(), ln.get_color())
+        for ln in ax.get_lines()
+        if len(ln.get_xdata()) == 1 and ln.get_xdata()[0] == 10.0
+    }
+    assert marks == {("o", colours[0]), ("X", colours[1])}  # shape says the verdict
+    with pytest.raises(ParameterError, match="graded"):
+        plotting.plot_overlay("dynamic_range_vs_jitter", [("third", third, 0)], graded=[])
+
+
+def test_jitter_overlay_data_sits_beside_it_on_the_page(tmp_path, batch):
+    page = write_report(batch, tmp_path / "r")["html"].read_text()
+    assert 'href="#overlay-dynamic_range_vs_jitter"' in page
+    links = re.findall(
+        r'download="([^"]+)" href="data:text/csv;charset=utf-8;base64,([^"]+)"', page
+    )
+    files = {name: base64.b64decode(b64).decode("utf-8") for name, b64 in links}
+    table = files["every-profile-dynamic_range_vs_jitter.csv"]
+    rows = list(csv.DictReader(io.StringIO(table)))
+    # what the plot draws: the unweighted readings (and why a point is missing)
+    assert table.splitlines()[0] == "profile,sigma_s,dynamic_range_db,invalid_reason"
+    for name, order in (("third", 3), ("fifth", 5)):
+        mine = [r for r in rows if r["profile"] == name]
+        want = full_curves(order)["dynamic_range_vs_jitter"]
+        np.testing.assert_allclose([float(r["sigma_s"]) for r in mine], want["sigma_s"])
+        np.testing.assert_allclose(
+            [float(r["dynamic_range_db"]) for r in mine], want["dynamic_range_db"], atol=0.005
+        )
+    # and each profile's own plot has its data too
+    assert "fifth-dynamic_range_vs_jitter.csv" in files
+
+
+def test_single_bit_prediction_states_its_limit_in_the_legend():
+    # the sign quantizer's error is not white (docs/report.md): the legend must say the
+    # prediction is an upper bound for a single-bit loop, and not say so for a multi-level one
+    curves = full_curves(3)
+    for gain, bound in ((1.0, False), (1.87, True)):
+        for name in ("spectrum", "audio_spectrum"):
+            curves[name]["predicted_quantizer_gain"] = np.array([gain])
+        for fn in (plotting.plot_noise_density, plotting.plot_audio_band_density):
+            texts = [t.get_text() for t in fn(curves).axes[0].get_legend().get_texts()]
+            said = any("upper bound" in t and "not white" in t for t in texts)
+            assert said is bound, (gain, texts)

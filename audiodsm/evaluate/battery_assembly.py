@@ -157,15 +157,22 @@ def _assemble(results, tests, plan, profile):
         if "spectrum" in curves:
             fm = stab["modulator_rate_hz"]
             f = curves["spectrum"]["frequency_hz"]
-            curves["spectrum"]["ntf_gain_db"] = 20.0 * np.log10(
-                np.maximum(np.abs(ntf.response(f / fm)), 1e-300)
-            )
+            # an exact zero of the NTF (at DC, say) has no level in dB: NaN there (an empty
+            # CSV cell, a gap in a plot), not the -6000 dB of a numeric floor
+            mag = np.abs(ntf.response(f / fm))
+            with np.errstate(divide="ignore"):
+                curves["spectrum"]["ntf_gain_db"] = np.where(
+                    mag > 0.0, 20.0 * np.log10(mag), np.nan
+                )
         density, gain = stab.get("noise_density") or (None, None)
         for name in ("spectrum", "audio_spectrum"):
             if density is not None and name in curves:
                 with np.errstate(divide="ignore"):
                     f = curves[name]["frequency_hz"]
-                    pred = 10.0 * np.log10(np.maximum(density(f), 1e-300) / 0.5)
+                    # where the NTF has an exact zero (a zero at DC puts one on the 0 Hz bin)
+                    # the model predicts no noise at all: no density in dB, NaN (docs/report.md)
+                    d = density(f)
+                    pred = np.where(d > 0.0, 10.0 * np.log10(d / 0.5), np.nan)
                     if name == "audio_spectrum":  # the listening decimator's edge: no model
                         pred = np.where(f <= _BAND[1], pred, np.nan)
                     curves[name]["predicted_density_dbfs_per_hz"] = pred

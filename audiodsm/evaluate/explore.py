@@ -437,7 +437,7 @@ def write_exploration(result: Exploration, folder) -> dict:
     dict
         ``{"profiles": [paths], "plot": path, "report": path}``.
     """
-    from audiodsm.evaluate.plotting import plot_cost_against_margin
+    from audiodsm.evaluate.grade_plots import plot_cost_against_margin
     from audiodsm.io_files import fit_file_name, replace_text_atomically
     from audiodsm.profile_text import profile_to_toml
 

@@ -1,13 +1,16 @@
-"""Plots of battery curves and grades (the only module that imports matplotlib).
+"""Plots of battery curves (the only module that imports matplotlib).
 
 Every function draws data it is given and computes nothing: it takes the battery's ``curves``
-dict (or a graded batch), draws on ``ax`` when one is passed (else on a new figure) and returns
-the figure. matplotlib is imported inside the functions, so importing this module is cheap and
-nothing loads it unless a plot is asked for. Figures are built with
-:class:`matplotlib.figure.Figure` directly (no pyplot state), so they are safe to make in
-worker threads.
+dict (of one profile, or of several for :func:`plot_overlay`), draws on ``ax`` when one is
+passed (else on a new figure) and returns the figure. matplotlib is imported inside the
+functions, so importing this module is cheap and nothing loads it unless a plot is asked for.
+Figures are built with :class:`matplotlib.figure.Figure` directly (no pyplot state), so they
+are safe to make in worker threads.
 
-A missing curve raises :class:`~audiodsm.errors.ParameterError` naming it.
+A missing curve raises :class:`~audiodsm.errors.ParameterError` naming it. The plots of
+grades (margins, the spread over parts, cost against margin) are in
+:mod:`audiodsm.evaluate.grade_plots`, drawn through this module's helpers, and found here by
+name too.
 """
 
 from __future__ import annotations
@@ -15,6 +18,10 @@ from __future__ import annotations
 import numpy as np
 
 from audiodsm.errors import ParameterError
+
+#: Plots of grades rather than of one battery's curves, kept in
+#: :mod:`audiodsm.evaluate.grade_plots` and still reachable here by name.
+_GRADE_PLOTS = ("plot_margins", "plot_cost_against_margin", "plot_part_spread")
 
 __all__ = [
     "PLOTS",
@@ -28,12 +35,10 @@ __all__ = [
     "plot_idle_tone_map",
     "plot_state_histograms",
     "plot_frequency_response",
+    "plot_dynamic_range_vs_jitter",
     "plot_overlay",
     "overlay_curve",
-    "plot_margins",
     "plot_spectrogram",
-    "plot_cost_against_margin",
-    "plot_part_spread",
 ]
 
 # Okabe & Ito's colour-blind-safe set ("Color Universal Design", 2008): blue, vermillion,
@@ -86,12 +91,24 @@ def series_style(index: int) -> dict:
     }
 
 
+def _new_figure(size):
+    """A new figure (no pyplot state), 100 dpi, laid out to fit its axes."""
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=size, dpi=100, layout="constrained")
+
+
+def _box(ax, xy, width, height, **kw):
+    """An unfilled rectangle with its lower left corner at ``xy``."""
+    from matplotlib.patches import Rectangle
+
+    ax.add_patch(Rectangle(xy, width, height, fill=False, **kw))
+
+
 def _axes(ax, size=(6.4, 3.4)):
     if ax is not None:
         return ax.figure, ax
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=size, dpi=100, layout="constrained")
+    fig = _new_figure(size)
     return fig, fig.add_subplot()
 
 
@@ -121,24 +138,41 @@ def _graded(graded, *metrics):
     return [g for g in graded or () if g.target.metric in metrics]
 
 
-def _verdict(g, level_dbfs=None) -> str:
-    """A target's limit and verdict in words, e.g. ``"limit <= -90 dB: pass"``."""
+def _verdict(g, level_dbfs=None, *, where=None, word=True) -> str:
+    """A target's limit and verdict in words, e.g. ``"limit <= -90 dB: pass"``.
+
+    ``where`` (e.g. ``"at 10 ps"``) replaces the level the target is graded at; without
+    ``word`` the verdict is left out (a limit several profiles share).
+    """
     t = g.target
     sign = ">=" if t.bound == "at_least" else "<="
     unit = f" {t.unit}" if t.unit else ""
     if level_dbfs is None:
         level_dbfs = t.at_level_dbfs
-    where = f" at {level_dbfs:g} dBFS" if level_dbfs is not None else ""
+    if where is None:
+        where = f"at {level_dbfs:g} dBFS" if level_dbfs is not None else ""
+    text = f"limit{' ' + where if where else ''} {sign} {t.limit:g}{unit}"
+    if not word:
+        return text
     if g.passed:
-        word = "pass"
+        verdict = "pass"
     else:
-        word = "FAIL" if g.value is not None else "FAIL (no valid reading)"
-    return f"limit{where} {sign} {t.limit:g}{unit}: {word}"
+        verdict = "FAIL" if g.value is not None else "FAIL (no valid reading)"
+    return f"{text}: {verdict}"
 
 
-def _limit_line(ax, g, *, y=None, x=None, xspan=None, **kw):
-    """A dashed limit line (horizontal at ``y`` or vertical at ``x``), labelled with its verdict."""
+def _limit_line(ax, g, *, y=None, x=None, xspan=None, shared=None, **kw):
+    """A dashed limit line (horizontal at ``y`` or vertical at ``x``), labelled with its verdict.
+
+    ``shared`` (a set, on a plot of several profiles) holds the lines drawn so far: a limit
+    the profiles share is drawn once.
+    """
     style = {"color": _INK, "lw": 1.0, "ls": (0, (5, 3)), "label": _verdict(g), **kw}
+    if shared is not None:
+        key = (style["label"], y, x, None if xspan is None else tuple(xspan))
+        if key in shared:
+            return
+        shared.add(key)
     if y is not None:
         if xspan is None:
             ax.axhline(y, **style)
@@ -148,12 +182,12 @@ def _limit_line(ax, g, *, y=None, x=None, xspan=None, **kw):
         ax.axvline(x, **style)
 
 
-def _verdict_marker(ax, g, x, y):
-    """The reading against its limit: a circle when it passes, a cross when it fails."""
+def _verdict_marker(ax, g, x, y, colour=_INK):
+    """The reading against its limit: an open circle when it passes, a filled cross when not."""
     if y is None or not np.isfinite(y):
         return
-    ax.plot([x], [y], _PASS_MARKER if g.passed else _FAIL_MARKER, color=_INK, ms=7,
-            mfc="none" if g.passed else _INK, zorder=5)  # fmt: skip
+    ax.plot([x], [y], _PASS_MARKER if g.passed else _FAIL_MARKER, color=colour, ms=7,
+            mfc="none" if g.passed else colour, zorder=5)  # fmt: skip
 
 
 def _db_power(v):
@@ -166,7 +200,122 @@ def _prediction_label(c):
     k = float(np.asarray(c.get("predicted_quantizer_gain", [1.0]), dtype=float)[0])
     if k == 1.0:
         return "predicted from the NTF (quantizer gain 1, white error + dither)"
-    return f"predicted from the NTF with effective quantizer gain {k:.2f} (fitted to a run)"
+    # a single-bit loop: the sign quantizer's error is not white, and no gain can say so; the
+    # model is an upper bound, the simulated density lies 1 to 4.5 dB under it (docs/report.md)
+    return (
+        f"predicted from the NTF, effective quantizer gain {k:.2f} (fitted to a run);\n"
+        "single-bit: an upper bound, up to 4.5 dB high (the error is not white)"
+    )
+
+
+# -- What the plot of one profile and the plot of every profile share for a quantity: the axes,
+# and the spec limits with the readings marked against them. A limit helper draws the limit
+# lines of the graded targets it knows and returns where each reading goes, ``(grade, x, y,
+# limit label)`` (``y`` None without a reading). With ``shared`` (a set, on the plot of every
+# profile) a limit is drawn once and labelled without a verdict, which the markers in each
+# profile's colour then give.
+
+#: The dynamic-range metrics drawn on the audio-band density.
+_DR_METRICS = ("dynamic_range_db", "dynamic_range_db_a", "dynamic_range_db_ccir")
+#: The in-band width a flat density is spread over to give a dynamic range (20 Hz to 20 kHz).
+_IN_BAND_WIDTH_DB = 10.0 * np.log10(20000.0 - 20.0)
+
+
+def _level_axes(ax, title):
+    _style(ax, title, "tone level (dBFS)", "THD+N (dB)")
+
+
+def _frequency_axes(ax, title):
+    ax.set_xscale("log")
+    _style(ax, title, "tone frequency (Hz)", "THD+N (dB)")
+
+
+def _audio_band_axes(ax, title, top_khz=24.0):
+    ax.set_xlim(0.0, top_khz)
+    ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
+    _style(ax, title, "frequency (kHz)", "noise density (dBFS/\u221aHz)")
+
+
+def _jitter_axes(ax, title, sigma_ps):
+    ax.set_xscale("log")
+    ticks = sorted({float(v) for v in sigma_ps if np.isfinite(v) and v > 0})
+    if ticks:
+        ax.set_xlim(ticks[0] / 2.0, ticks[-1] * 2.0)
+        ax.set_xticks(ticks, [f"{v:g}" for v in ticks])
+        ax.minorticks_off()
+    _style(ax, title, "clock jitter, white, rms (ps)", "dynamic range (dB)")
+
+
+def _level_limits(ax, graded, curve=None, *, shared=None):
+    """THD+N targets at a level: a short bar at the level, the reading at the level."""
+    marks = []
+    for g in _graded(graded, *_THD_N_LEVEL_METRICS):
+        column, fixed = _THD_N_LEVEL_METRICS[g.target.metric]
+        lv = fixed if fixed is not None else g.target.at_level_dbfs
+        if lv is None:
+            continue
+        weighted = column == "thd_n_db_a"
+        label = ("A-wtd " if weighted else "") + _verdict(g, lv, word=shared is None)
+        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0), shared=shared,
+                    ls="--" if weighted else (0, (5, 3)), label=label)  # fmt: skip
+        marks.append((g, lv, g.value, label))
+    return marks
+
+
+def _frequency_limits(ax, graded, curve, *, shared=None):
+    """Worst THD+N over frequency: a line across the band, the reading at the worst tone."""
+    f = np.asarray(curve["frequency_hz"], dtype=float)
+    grid = np.atleast_2d(np.asarray(curve["thd_n_db"], dtype=float))
+    levels = [float(v) for v in np.atleast_1d(curve["level_dbfs"])]
+    marks = []
+    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
+        for g in _graded(graded, f"thd_n_db_worst_over_frequency_at_{name}_dbfs"):
+            ls = (0, (5, 3)) if lv == -1.0 else (0, (1, 2))
+            label = f"{lv:g} dBFS " + _verdict(g, word=shared is None)
+            _limit_line(ax, g, y=g.target.limit, ls=ls, shared=shared, label=label)
+            if lv in levels and np.isfinite(grid[levels.index(lv)]).any():
+                row = grid[levels.index(lv)]
+                j = int(np.nanargmax(row))
+                marks.append((g, f[j], row[j] if g.value is not None else None, label))
+            else:
+                marks.append((g, np.nan, None, label))
+    return marks
+
+
+def _density_limits(ax, graded, curve=None, *, shared=None):
+    """Dynamic range on the audio-band density: the flat density of the limit's power."""
+    marks = []
+    for g in _graded(graded, *_DR_METRICS):
+        label = _verdict(g, word=shared is None)
+        _limit_line(ax, g, y=-g.target.limit - _IN_BAND_WIDTH_DB, xspan=(0.02, 20.0),
+                    shared=shared, label=label)  # fmt: skip
+        y = None if g.value is None else -g.value - _IN_BAND_WIDTH_DB
+        marks.append((g, 10.0, y, label))
+    return marks
+
+
+def _jitter_limits(ax, graded, curve=None, *, shared=None):
+    """Dynamic range at a jitter: a short bar at that jitter, the reading on it."""
+    from audiodsm.evaluate.battery_impairments import JITTER_METRICS
+
+    marks = []
+    for sigma_s, metric in JITTER_METRICS.items():
+        x = sigma_s * 1e12
+        for g in _graded(graded, metric):
+            label = _verdict(g, where=f"at {x:g} ps", word=shared is None)
+            _limit_line(ax, g, y=g.target.limit, xspan=(x / 1.6, x * 1.6), shared=shared,
+                        label=label)  # fmt: skip
+            marks.append((g, x, g.value, label))
+    return marks
+
+
+def _mark_readings(ax, marks, colour=_INK):
+    """Each reading against its limit (see :func:`_verdict_marker`); True if any was drawn."""
+    drawn = False
+    for g, x, y, _label in marks:
+        _verdict_marker(ax, g, x, y, colour)
+        drawn = drawn or (y is not None and bool(np.isfinite(y)))
+    return drawn
 
 
 def plot_noise_density(curves, *, ax=None, title="Output noise density, whole output band",
@@ -257,18 +406,12 @@ def plot_audio_band_density(curves, *, ax=None, title="Output noise density, aud
         pred = np.asarray(c["predicted_density_dbfs_per_hz"], dtype=float)
         ax.plot(f, pred, color=_VERMILLION, lw=1.3, ls="--", label=_prediction_label(c))
     res = float(np.asarray(c.get("resolution_hz", [np.nan]))[0])
-    _style(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""), "frequency (kHz)",
-           "noise density (dBFS/\u221aHz)")  # fmt: skip
-    ax.set_xlim(0.0, min(24.0, float(f[-1])) if f.size else 24.0)
+    _audio_band_axes(ax, title + (f" ({res:.1f} Hz bins)" if np.isfinite(res) else ""),
+                     min(24.0, float(f[-1])) if f.size else 24.0)  # fmt: skip
     finite = d[np.isfinite(d) & (f <= 20.0)]
     if finite.size:
         ax.set_ylim(np.percentile(finite, 1) - 10.0, np.max(finite) + 5.0)
-    for g in _graded(graded, "dynamic_range_db", "dynamic_range_db_a", "dynamic_range_db_ccir"):
-        width = 10.0 * np.log10(20000.0 - 20.0)
-        _limit_line(ax, g, y=-g.target.limit - width, xspan=(0.02, 20.0))
-        if g.value is not None:
-            _verdict_marker(ax, g, 10.0, -g.value - width)
-    ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
+    _mark_readings(ax, _density_limits(ax, graded))
     ax.legend(fontsize=7, loc="upper left", frameon=False)
     return fig
 
@@ -357,17 +500,8 @@ def plot_thd_n_vs_level(curves, *, ax=None, title="THD+N against level", graded=
     if isinstance(over, dict) and "level_dbfs" in over and "thd_n_db" in over:
         ax.plot(over["level_dbfs"], over["thd_n_db"], "x", color=_VERMILLION, ms=5,
                 label="overload")  # fmt: skip
-    for g in _graded(graded, *_THD_N_LEVEL_METRICS):
-        _, fixed = _THD_N_LEVEL_METRICS[g.target.metric]
-        lv = fixed if fixed is not None else g.target.at_level_dbfs
-        if lv is None:
-            continue
-        weighted = _THD_N_LEVEL_METRICS[g.target.metric][0] == "thd_n_db_a"
-        _limit_line(ax, g, y=g.target.limit, xspan=(lv - 4.0, lv + 4.0),
-                    ls="--" if weighted else (0, (5, 3)),
-                    label=("A-wtd " if weighted else "") + _verdict(g, lv))  # fmt: skip
-        _verdict_marker(ax, g, lv, g.value)
-    _style(ax, title, "tone level (dBFS)", "THD+N (dB)")
+    _mark_readings(ax, _level_limits(ax, graded))
+    _level_axes(ax, title)
     ax.legend(fontsize=7, frameon=False)
     return fig
 
@@ -396,18 +530,11 @@ def plot_thd_n_vs_frequency(curves, *, ax=None, title="THD+N against frequency",
     grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
     levels = [float(v) for v in np.atleast_1d(c["level_dbfs"])]
     for k, lv in enumerate(levels):
-        ax.semilogx(f, grid[k], marker=_MARKERS[k % len(_MARKERS)], ms=3, lw=1,
-                    ls=_LINESTYLES[k % len(_LINESTYLES)], color=_SERIES[k % len(_SERIES)],
-                    label=f"{lv:g} dBFS tones")  # fmt: skip
-    for lv, name in ((-1.0, "minus1"), (-20.0, "minus20")):
-        for g in _graded(graded, f"thd_n_db_worst_over_frequency_at_{name}_dbfs"):
-            ls = (0, (5, 3)) if lv == -1.0 else (0, (1, 2))
-            _limit_line(ax, g, y=g.target.limit, ls=ls, label=f"{lv:g} dBFS " + _verdict(g))
-            if lv in levels and np.isfinite(grid[levels.index(lv)]).any():
-                row = grid[levels.index(lv)]
-                j = int(np.nanargmax(row))
-                _verdict_marker(ax, g, f[j], row[j] if g.value is not None else None)
-    _style(ax, title, "tone frequency (Hz)", "THD+N (dB)")
+        ax.plot(f, grid[k], marker=_MARKERS[k % len(_MARKERS)], ms=3, lw=1,
+                ls=_LINESTYLES[k % len(_LINESTYLES)], color=_SERIES[k % len(_SERIES)],
+                label=f"{lv:g} dBFS tones")  # fmt: skip
+    _mark_readings(ax, _frequency_limits(ax, graded, c))
+    _frequency_axes(ax, title)
     ax.legend(fontsize=7, frameon=False)
     return fig
 
@@ -570,14 +697,72 @@ def plot_frequency_response(curves, *, ax=None, title="Frequency response", grad
     return fig
 
 
-#: What each overlay plot draws: name -> (curve, title, x label, y label, x scale).
+def _short(text, n=70):
+    text = " ".join(str(text).split())
+    return text if len(text) <= n else text[: n - 1] + "\u2026"
+
+
+def plot_dynamic_range_vs_jitter(curves, *, ax=None, title="Dynamic range against clock jitter",
+                                 graded=()):  # fmt: skip
+    """The -60 dBFS dynamic range with white clock jitter on the output edges, and its prediction.
+
+    Parameters
+    ----------
+    curves : dict
+        ``curves["dynamic_range_vs_jitter"]`` with ``sigma_s`` (rms jitter, seconds),
+        ``dynamic_range_db`` (NaN where invalid) and ``predicted_dynamic_range_db``; optional
+        ``dynamic_range_db_a`` and ``invalid_reason`` (a point without a reading is named in
+        the legend with its reason).
+    ax : matplotlib.axes.Axes, optional, keyword-only
+    title : str, keyword-only
+    graded : sequence of TargetGrade, keyword-only
+        ``jitter_dynamic_range_db_at_1ps`` / ``_10ps`` / ``_100ps`` limits are drawn as a
+        short bar at their jitter, the reading marked by a circle (pass) or a cross (fail).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+
+    References
+    ----------
+    .. [1] R. Schreier and G. C. Temes, "Understanding Delta-Sigma Data Converters", 2005
+       (clock jitter of continuous-time DACs: white jitter adds noise in proportion to the
+       mean squared output step); the battery computes the prediction (docs/impairments.md).
+    """
+    c = _curve(curves, "dynamic_range_vs_jitter",
+               ("sigma_s", "dynamic_range_db", "predicted_dynamic_range_db"))  # fmt: skip
+    fig, ax = _axes(ax)
+    ps = np.asarray(c["sigma_s"], dtype=float) * 1e12
+    dr = np.asarray(c["dynamic_range_db"], dtype=float)
+    # small dots under the prediction's larger crosses, drawn on top: both stay visible where
+    # they agree (open circles and filled crosses are the verdict markers)
+    ax.plot(ps, dr, "o-", color=_BLUE, ms=4, lw=1, label="simulated, unweighted")
+    if "dynamic_range_db_a" in c:
+        ax.plot(ps, np.asarray(c["dynamic_range_db_a"], dtype=float), "s--", color=_ORANGE,
+                ms=4, lw=1, label="simulated, A-weighted")  # fmt: skip
+    pred = np.asarray(c["predicted_dynamic_range_db"], dtype=float)
+    if np.isfinite(pred).any():
+        ax.plot(ps, pred, color=_VERMILLION, lw=1.6, ls=(0, (1, 2)), marker="+", ms=9, zorder=3,
+                label="predicted: jitter-free noise + textbook jitter noise")  # fmt: skip
+    else:
+        ax.plot([], [], " ", label="no prediction (no valid jitter-free reading)")
+    reasons = np.asarray(c.get("invalid_reason", np.full(ps.shape, "")), dtype=str)
+    for x, y, why in zip(ps, dr, reasons, strict=True):
+        if not np.isfinite(y):
+            ax.plot([], [], " ", label=f"{x:g} ps: no reading ({_short(why or 'invalid')})")
+    _mark_readings(ax, _jitter_limits(ax, graded))
+    _jitter_axes(ax, title, ps)
+    ax.legend(fontsize=7, frameon=False, loc="lower left")
+    return fig
+
+
+#: What each overlay plot draws: kind -> (curve, title).
 _OVERLAY_KINDS = {
-    "thd_n_vs_level": ("thd_n_vs_level", "THD+N against level, every profile", "tone level (dBFS)",
-                       "THD+N (dB)", "linear"),
-    "thd_n_vs_frequency": ("thd_n_vs_frequency", "THD+N against frequency, every profile",
-                           "tone frequency (Hz)", "THD+N (dB)", "log"),
-    "noise_density": ("audio_spectrum", "Output noise density in the audio band, every profile",
-                      "frequency (kHz)", "noise density (dBFS/\u221aHz)", "linear"),
+    "thd_n_vs_level": ("thd_n_vs_level", "THD+N against level, every profile"),
+    "thd_n_vs_frequency": ("thd_n_vs_frequency", "THD+N against frequency, every profile"),
+    "noise_density": ("audio_spectrum", "Output noise density in the audio band, every profile"),
+    "dynamic_range_vs_jitter": ("dynamic_range_vs_jitter",
+                                "Dynamic range against clock jitter, every profile"),
 }  # fmt: skip
 
 
@@ -595,20 +780,26 @@ def _smooth_db(d, bins):
     return _db_power(p[:n].reshape(-1, bins).mean(axis=1))
 
 
-def plot_overlay(kind, profiles, *, ax=None, title=None):
+def plot_overlay(kind, profiles, *, ax=None, title=None, graded=None):
     """One quantity for several profiles on one axis, one colour and style per profile.
 
     Parameters
     ----------
     kind : str
         ``"thd_n_vs_level"``, ``"thd_n_vs_frequency"`` (-1 dBFS solid markers, -20 dBFS
-        hollow) or ``"noise_density"`` (the audio-band density, averaged over 8 bins).
+        hollow), ``"noise_density"`` (the audio-band density, averaged over 8 bins) or
+        ``"dynamic_range_vs_jitter"`` (the unweighted dynamic range against rms jitter).
     profiles : sequence of (str, dict, int)
         ``(name, curves, style index)``; the style index picks :func:`series_style`, so a
         profile keeps its colour across the report. Profiles without the curve are listed in
         the legend as "no data".
     ax : matplotlib.axes.Axes, optional, keyword-only
     title : str, optional, keyword-only
+    graded : sequence of sequences of TargetGrade, optional, keyword-only
+        Each profile's graded targets, in the order of ``profiles``. The limits of the
+        quantity's targets are drawn once (the profiles share the spec sheet) and each
+        profile's reading is marked in its colour: an open circle when it meets the limit, a
+        filled cross when not.
 
     Returns
     -------
@@ -616,9 +807,15 @@ def plot_overlay(kind, profiles, *, ax=None, title=None):
     """
     if kind not in _OVERLAY_KINDS:
         raise ParameterError("kind", kind, "one of " + ", ".join(_OVERLAY_KINDS))
-    curve, default_title, xlabel, ylabel, xscale = _OVERLAY_KINDS[kind]
+    curve, default_title = _OVERLAY_KINDS[kind]
+    profiles = list(profiles)
+    graded = [()] * len(profiles) if graded is None else list(graded)
+    if len(graded) != len(profiles):
+        raise ParameterError("graded", len(graded), f"one entry per profile ({len(profiles)})")
     fig, ax = _axes(ax, size=(7.6, 3.8))
-    for name, curves, index in profiles:
+    shared, marked, missing = set(), False, []
+    sigma_ps = []
+    for (name, curves, index), lines in zip(profiles, graded, strict=True):
         st = series_style(index)
         c = curves.get(curve) if isinstance(curves, dict) else None
         if not isinstance(c, dict):
@@ -626,64 +823,49 @@ def plot_overlay(kind, profiles, *, ax=None, title=None):
             continue
         if kind == "thd_n_vs_level":
             ax.plot(c["level_dbfs"], c["thd_n_db"], ms=4, lw=1.1, label=name, **st)
+            marks = _level_limits(ax, lines, shared=shared)
         elif kind == "thd_n_vs_frequency":
             grid = np.atleast_2d(np.asarray(c["thd_n_db"], dtype=float))
             for k, lv in enumerate(np.atleast_1d(c["level_dbfs"])):
                 ax.plot(c["frequency_hz"], grid[k], ms=4, lw=1.1,
                         mfc=st["color"] if k == 0 else "none",
                         label=f"{name}, {float(lv):g} dBFS", **st)  # fmt: skip
-        else:
+            marks = _frequency_limits(ax, lines, c, shared=shared)
+        elif kind == "noise_density":
             f = np.asarray(c["frequency_hz"], dtype=float)
             d = _smooth_db(c["density_dbfs_per_hz"], 8)
             fk = f[: len(d) * 8].reshape(-1, 8).mean(axis=1) / 1e3
             ax.plot(fk, d, lw=0.9, color=st["color"], ls=st["ls"], label=name)
-    ax.set_xscale(xscale)
-    if kind == "noise_density":
-        ax.set_xlim(0.0, 24.0)
-        ax.axvline(20.0, color=_GREY, lw=0.8, ls=":")
-    _style(ax, title or default_title, xlabel, ylabel)
-    ax.legend(fontsize=7, frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    return fig
-
-
-def plot_margins(batch, *, ax=None, title="Margin per target"):
-    """Each profile's margin on each target of the spec sheet (positive = better than limit).
-
-    Parameters
-    ----------
-    batch : GradeBatch
-        A graded batch (:func:`audiodsm.evaluate.grade.grade_batch`).
-    ax : matplotlib.axes.Axes, optional, keyword-only
-    title : str, keyword-only
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-        Targets without a reading are marked with a cross at the left edge.
-    """
-    grades = list(batch.grades)
-    targets = list(batch.spec.targets)
-    fig, ax = _axes(ax, size=(7.6, 0.3 * len(targets) * max(1, len(grades)) ** 0.5 + 1.3))
-    n = max(1, len(grades))
-    height = 0.8 / n
-    y = np.arange(len(targets), dtype=float)
-    finite = [ln.margin for g in grades for ln in g.lines if ln.margin is not None]
-    low = min(finite + [0.0])
-    for k, g in enumerate(grades):
-        pos = y - 0.4 + height * (k + 0.5)
-        m = np.array([np.nan if ln.margin is None else ln.margin for ln in g.lines])
-        ax.barh(pos, np.nan_to_num(m), height=height, color=_SERIES[k % len(_SERIES)], label=g.name)
-        missing = np.isnan(m)
-        if missing.any():
-            ax.plot(np.full(missing.sum(), low), pos[missing], "x", color=_RED, ms=6)
-    ax.axvline(0.0, color=_INK, lw=0.9)
-    # margins come in different units and sizes (0.1 dB to 1e5 Hz): a scale linear within
-    # +-1 and logarithmic beyond keeps every bar readable
-    ax.set_xscale("symlog", linthresh=1.0)
-    ax.set_yticks(y, [t.label + f" ({t.unit})" for t in targets], fontsize=8)
-    ax.invert_yaxis()
-    _style(ax, title, "margin in the target's unit (linear within ±1, logarithmic beyond)", "")
-    ax.legend(fontsize=7, frameon=False, loc="best")
+            marks = _density_limits(ax, lines, shared=shared)
+        else:
+            ps = np.asarray(c["sigma_s"], dtype=float) * 1e12
+            sigma_ps += list(ps)
+            ax.plot(ps, c["dynamic_range_db"], ms=4, lw=1.1, label=name, **st)
+            marks = _jitter_limits(ax, lines, shared=shared)
+        marked = _mark_readings(ax, marks, st["color"]) or marked
+        for _g, _x, y, label in marks:
+            if y is None or not np.isfinite(y):  # failed without a reading: said in words
+                missing.append((st["color"], f"{name}: no valid reading ({label})"))
+    for colour, text in missing:
+        ax.plot([], [], _FAIL_MARKER, color=colour, label=text)
+    if marked or missing:
+        ax.plot([], [], _PASS_MARKER, color=_INK, mfc="none", label="reading meets the limit")
+        ax.plot([], [], _FAIL_MARKER, color=_INK, label="reading misses the limit")
+    title = title or default_title
+    if kind == "thd_n_vs_level":
+        _level_axes(ax, title)
+    elif kind == "thd_n_vs_frequency":
+        _frequency_axes(ax, title)
+    elif kind == "noise_density":
+        _audio_band_axes(ax, title)
+    else:
+        _jitter_axes(ax, title, sigma_ps)
+    # the profiles first, then the limits they share, then what the markers mean
+    limits = {key[0] for key in shared}
+    handles, labels = ax.get_legend_handles_labels()
+    order = sorted(range(len(labels)), key=lambda i: labels[i] in limits)
+    ax.legend([handles[i] for i in order], [labels[i] for i in order], fontsize=7,
+              frameon=False, loc="upper left", bbox_to_anchor=(1.01, 1.0))  # fmt: skip
     return fig
 
 
@@ -730,94 +912,6 @@ def plot_spectrogram(
     return fig
 
 
-def plot_part_spread(parts, *, graded=(), title="Spread over parts", max_metrics=12):
-    """Each metric's readings over the parts of one profile: a strip plot per metric.
-
-    One panel per metric (each in its own unit): every part's reading as a point (circle
-    when it meets the metric's spec target, cross when not; jittered up and down so equal
-    readings stay visible), a box from the 5th to the 95th percentile with the median as a
-    thick line, and the target's limit as a dashed line. Metrics a target names come first,
-    then those that differ between parts; at most ``max_metrics`` panels.
-
-    Parameters
-    ----------
-    parts : sequence of PartReading
-        A profile's parts (:attr:`ProfileGrade.parts`).
-    graded : sequence of TargetGrade, keyword-only
-        The profile's graded targets (their limits are drawn).
-    title : str, keyword-only
-    max_metrics : int, keyword-only
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-
-    Raises
-    ------
-    ParameterError
-        No metric has a reading in two or more parts.
-    """
-    from matplotlib.figure import Figure
-    from matplotlib.patches import Rectangle
-
-    from audiodsm.evaluate.battery import METRIC_UNITS
-    from audiodsm.evaluate.parts import is_number, metric_spread
-
-    spread = metric_spread(parts)
-    limits = {}
-    for line in graded:
-        t = line.target
-        if t.at_level_dbfs is None and t.metric in spread:
-            limits.setdefault(t.metric, t)
-    varied = [k for k, r in spread.items() if r["readings"] >= 2 and r["max"] > r["min"]]
-    names = [k for k in limits if spread[k]["readings"] >= 2]
-    names += [k for k in varied if k not in names]
-    names = names[:max_metrics]
-    if not names:
-        raise ParameterError("parts", len(parts), "readings that differ between two or more parts")
-    fig = Figure(figsize=(7.6, 0.85 * len(names) + 0.9), dpi=100, layout="constrained")
-    axes = fig.subplots(len(names), 1, squeeze=False)
-    offsets = np.linspace(-0.25, 0.25, len(parts)) if len(parts) > 1 else np.zeros(1)
-    for ax, name in zip(axes[:, 0], names, strict=True):
-        row, target = spread[name], limits.get(name)
-        values = np.array(
-            [
-                np.nan
-                if name in p.invalid or not is_number(p.metrics.get(name))
-                else float(p.metrics[name])
-                for p in parts
-            ]
-        )
-        ok = np.isfinite(values)
-        meets = np.ones(values.size, dtype=bool)
-        if target is not None:
-            meets = np.array(
-                [bool(v) and target.margin(x) >= 0.0 for x, v in zip(values, ok, strict=True)]
-            )
-        for mask, marker, colour in ((ok & meets, "o", _BLUE), (ok & ~meets, "x", _VERMILLION)):
-            if mask.any():
-                ax.plot(values[mask], offsets[mask], marker, color=colour, ms=4, alpha=0.8)
-        ax.add_patch(
-            Rectangle((row["p5"], -0.38), row["p95"] - row["p5"], 0.76, fill=False, ec=_INK, lw=0.8)
-        )
-        ax.plot([row["median"]] * 2, [-0.38, 0.38], color=_INK, lw=2.2)
-        if target is not None:
-            ax.axvline(target.limit, color=_INK, ls="--", lw=1.0)
-        ax.set_ylim(-0.5, 0.5)
-        ax.set_yticks([])
-        unit = target.unit if target is not None else METRIC_UNITS.get(name, ("", "", ""))[1]
-        label = f"{name} ({unit})" if unit else name
-        ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=7)
-        ax.tick_params(axis="x", labelsize=7)
-        ax.grid(True, axis="x", alpha=0.3)
-    axes[0, 0].set_title(
-        f"{title}: {len(parts)} parts (box: 5th to 95th percentile, thick line: median, "
-        "dashed: limit, x: misses it)",
-        fontsize=8,
-    )
-    return fig
-
-
 #: The per-profile plots of a report, in order: (curve name, function, caption).
 PLOTS = (
     ("spectrum", plot_noise_density, "output noise density with the linear model's prediction"),
@@ -827,6 +921,11 @@ PLOTS = (
     ("idle_tone_map", plot_idle_tone_map, "idle-tone map"),
     ("state_histograms", plot_state_histograms, "integrator state histograms"),
     ("frequency_response", plot_frequency_response, "frequency response"),
+    (
+        "dynamic_range_vs_jitter",
+        plot_dynamic_range_vs_jitter,
+        "dynamic range against clock jitter, with the textbook prediction",
+    ),
 )
 
 #: The report's plots of every profile together: (kind for plot_overlay, caption).
@@ -834,40 +933,15 @@ OVERLAYS = (
     ("thd_n_vs_level", "THD+N against level, every profile"),
     ("thd_n_vs_frequency", "THD+N against frequency, every profile"),
     ("noise_density", "audio-band noise density, every profile"),
+    ("dynamic_range_vs_jitter", "dynamic range against clock jitter, every profile"),
 )
 
 
-def plot_cost_against_margin(points, front, *, ax=None, title="Cost against worst margin"):
-    """Every graded candidate of an exploration: cost against worst margin, front highlighted.
+def __getattr__(name):
+    # the plots of grades live in grade_plots (this module stays under 1000 lines); they are
+    # still found here, loaded on first use
+    if name in _GRADE_PLOTS:
+        from audiodsm.evaluate import grade_plots
 
-    Parameters
-    ----------
-    points : sequence of (float, float, str)
-        ``(cost, worst margin in dB, profile name)``; a margin of ``-inf`` (no reading) is
-        drawn as a cross at the bottom edge.
-    front : collection of str
-        Names of the profiles on the front: drawn larger, joined by a line and labelled.
-    ax : matplotlib.axes.Axes, optional, keyword-only
-    title : str, keyword-only
-
-    Returns
-    -------
-    matplotlib.figure.Figure
-    """
-    fig, ax = _axes(ax, size=(7.6, 4.6))
-    finite = [m for _, m, _ in points if np.isfinite(m)]
-    floor = (min(finite) if finite else 0.0) - 3.0
-    for cost, margin, name in points:
-        if not np.isfinite(margin):
-            ax.plot(cost, floor, "x", color=_RED, ms=5)
-        elif name not in front:
-            ax.plot(cost, margin, "o", color=_GREY, ms=4, alpha=0.7)
-    chosen = sorted((c, m, n) for c, m, n in points if n in front and np.isfinite(m))
-    if chosen:
-        ax.plot([c for c, _, _ in chosen], [m for _, m, _ in chosen], "-o", color=_BLUE, ms=6)
-        for c, m, n in chosen:
-            ax.annotate(n, (c, m), textcoords="offset points", xytext=(4, 4), fontsize=7)
-    ax.axhline(0.0, color=_INK, lw=0.8)
-    ax.set_xscale("log")
-    _style(ax, title, "cost: clock MHz x levels x order (+ PWM edges, MHz)", "worst margin (dB)")
-    return fig
+        return getattr(grade_plots, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -5,7 +5,9 @@
 ``grades.html``
     An overview (profiles ranked by worst margin, each in its plot colour, a target-by-profile
     matrix of readings and margins, a chart of the margins), the plots of every profile
-    together (THD+N against level and frequency, audio-band noise density), then one section
+    together (THD+N against level and frequency, audio-band noise density, dynamic range
+    against clock jitter; the spec limits drawn once, each profile's reading marked against
+    them), then one section
     per profile: its readings against the spec sheet, every battery metric, the battery's
     notes and the plots of :data:`audiodsm.evaluate.plotting.PLOTS` with the spec limits
     drawn (docs/report.md). The plots are embedded as base64 PNG and each one's data as a
@@ -41,7 +43,6 @@ from audiodsm.errors import AudiodsmError, OutputError, ParameterError, StorageE
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.io_files import (
     OutputSet,
-    create_temp_file,
     create_temp_folder,
     remove_stale_temp_files,
     same_file,
@@ -384,6 +385,23 @@ def _overlay_density_curves(profiles):
     return out
 
 
+#: The columns of the jitter curve the plot of every profile draws (the reason says why a
+#: point is missing); the A-weighted readings and the prediction are on each profile's plot.
+_OVERLAY_JITTER_COLUMNS = ("sigma_s", "dynamic_range_db", "invalid_reason")
+
+
+def _overlay_jitter_curves(profiles):
+    """The jitter curves as the plot of every profile draws them: unweighted readings only."""
+    out = []
+    for name, curves in profiles:
+        c = curves.get("dynamic_range_vs_jitter") if isinstance(curves, dict) else None
+        if isinstance(c, dict):
+            kept = {k: c[k] for k in _OVERLAY_JITTER_COLUMNS if k in c}
+            curves = {**curves, "dynamic_range_vs_jitter": kept}
+        out.append((name, curves))
+    return out
+
+
 def _curve_table(curves: dict, name: str):
     """(header, rows) of one curve as a table; numbers as Python floats, NaN as None."""
     c = curves[name]
@@ -560,20 +578,21 @@ def render_html(batch, *, title=None) -> str:
     str
     """
     from audiodsm import __version__
-    from audiodsm.evaluate import plotting
+    from audiodsm.evaluate import grade_plots, plotting
 
     spec = batch.spec
     title = title or f"Grades against {spec.name}"
     stamp = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
-    margins_png = _png_base64(plotting.plot_margins(batch)) if batch.grades else None
+    margins_png = _png_base64(grade_plots.plot_margins(batch)) if batch.grades else None
     sections = []
-    with_curves = []
+    with_curves, with_lines = [], []
     for rank, g in enumerate(batch.grades, 1):
         plots = None
         style = plotting.series_style(rank - 1)
         if g.curves:
             curves = report_curves(g.curves)
             with_curves.append((g.name, curves, rank - 1))
+            with_lines.append(g.lines)
             # the CSV beside each plot: the whole-band spectrum thinned above the audio band
             data = dict(curves)
             if isinstance(curves.get("spectrum"), dict):
@@ -605,7 +624,7 @@ def render_html(batch, *, title=None) -> str:
                 "csv_name": f"{_file_stem(g.name)}-parts.csv",
             }
             try:
-                spread["png"] = _png_base64(plotting.plot_part_spread(g.parts, graded=g.lines))
+                spread["png"] = _png_base64(grade_plots.plot_part_spread(g.parts, graded=g.lines))
             except AudiodsmError:  # no metric differs between parts: the table says it all
                 pass
         sections.append(
@@ -617,10 +636,12 @@ def render_html(batch, *, title=None) -> str:
             curve = plotting.overlay_curve(kind)
             if not any(curve in c for _, c, _ in with_curves):
                 continue
-            fig = plotting.plot_overlay(kind, with_curves)
+            fig = plotting.plot_overlay(kind, with_curves, graded=with_lines)
             drawn = [(n, c) for n, c, _ in with_curves]
             if kind == "noise_density":
                 drawn = _overlay_density_curves(drawn)
+            elif kind == "dynamic_range_vs_jitter":
+                drawn = _overlay_jitter_curves(drawn)
             overlays.append(
                 {
                     "caption": caption,
@@ -720,30 +741,14 @@ def _write_new_report_folder(d: Path, texts: dict) -> None:
 
 
 def _replace_report_files(d: Path, texts: dict) -> None:
-    """Write every report file to a temporary name first, then rename them all."""
-    temps = {}
-    target = d
-    try:
+    """Write every report file to a temporary name first, then rename them all.
+
+    One :class:`~audiodsm.io_files.OutputSet`: a rename that fails puts back the files the
+    others replaced, so the folder holds the old report or the new one, never a mix.
+    """
+    with OutputSet() as outputs:
         for kind, text in texts.items():
-            target = d / REPORT_FILES[kind]
-            fd, tmp = create_temp_file(target)
-            temps[kind] = tmp
-            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-                fh.write(text)
-                fh.flush()
-                os.fsync(fh.fileno())
-        for kind in list(temps):
-            target = d / REPORT_FILES[kind]
-            os.replace(temps[kind], target)
-            del temps[kind]
-    except OSError as exc:
-        for tmp in temps.values():
-            tmp.unlink(missing_ok=True)
-        raise StorageError(target, exc) from None
-    except BaseException:
-        for tmp in temps.values():
-            tmp.unlink(missing_ok=True)
-        raise
+            outputs.add_text(d / REPORT_FILES[kind], text, overwrite=True)
 
 
 def write_report(batch, directory, *, protect=(), title=None) -> dict:
@@ -843,19 +848,10 @@ def write_profile_plots(curves: dict, folder, *, stem: str) -> list:
             except AudiodsmError:
                 continue
             for fmt in PLOT_FORMATS:
-                target = d / f"{base}-{name}.{fmt}"
-                fd, tmp = create_temp_file(target)
-                try:
-                    with os.fdopen(fd, "wb") as fh:
-                        fig.savefig(fh, format=fmt, dpi=100)
-                        fh.flush()
-                        os.fsync(fh.fileno())
-                except OSError as exc:
-                    tmp.unlink(missing_ok=True)
-                    raise StorageError(target, exc) from None
-                except BaseException:
-                    tmp.unlink(missing_ok=True)
-                    raise
-                outputs.stage(tmp, target, overwrite=True)
+                outputs.add_from_writer(
+                    d / f"{base}-{name}.{fmt}",
+                    functools.partial(fig.savefig, format=fmt, dpi=100),
+                    overwrite=True,
+                )
         written = outputs.commit()
     return [Path(p) for p in written]

@@ -36,6 +36,91 @@ def _next_random(rng):
     return z ^ (z >> np.uint64(31))
 
 
+# Marsaglia & Tsang's ziggurat for the standard normal, 128 layers: the base strip's edge
+# ``r`` and the area ``v`` of every layer (G. Marsaglia and W. W. Tsang, "The ziggurat method
+# for generating random variables", J. Statistical Software 5(8), 2000; constants from that
+# paper, from memory, checked by the tests against scipy's normal distribution).
+_ZIGGURAT_R = 3.442619855899
+_ZIGGURAT_V = 9.91256303526217e-3
+#: The signed 53-bit integer a draw starts from is scaled by this.
+_ZIGGURAT_SCALE = 2.0**52
+
+
+def _ziggurat_tables():
+    """The ziggurat's layer tables, as in the setup code of Marsaglia & Tsang (2000).
+
+    ``k``: a draw of the layer is accepted without more work when its integer is below it;
+    ``w``: integer -> abscissa; ``f``: the density at the layer's outer edge.
+    """
+    k, w, f = np.zeros(128), np.zeros(128), np.zeros(128)
+    d = t = _ZIGGURAT_R
+    q = _ZIGGURAT_V / np.exp(-0.5 * d * d)
+    k[0] = d / q * _ZIGGURAT_SCALE
+    w[0] = q / _ZIGGURAT_SCALE
+    w[127] = d / _ZIGGURAT_SCALE
+    f[0] = 1.0
+    f[127] = np.exp(-0.5 * d * d)
+    for i in range(126, 0, -1):
+        d = np.sqrt(-2.0 * np.log(_ZIGGURAT_V / d + np.exp(-0.5 * d * d)))
+        k[i + 1] = d / t * _ZIGGURAT_SCALE
+        t = d
+        f[i] = np.exp(-0.5 * d * d)
+        w[i] = d / _ZIGGURAT_SCALE
+    return k, w, f
+
+
+_ZIG_K, _ZIG_W, _ZIG_F = _ziggurat_tables()
+
+
+@njit(cache=True, nogil=True)
+def _open_uniform(rng):
+    """A uniform draw in (0, 1) (53 bits, never 0 or 1)."""
+    return (np.float64(_next_random(rng) >> np.uint64(11)) + 0.5) * (1.0 / 9007199254740992.0)
+
+
+@njit(cache=True, nogil=True)
+def _normal_beyond_fast_path(rng, u):
+    """The ziggurat's rare cases for the draw ``u``: the wedges and the tail beyond ``r``."""
+    while True:
+        layer = np.int64(u & np.uint64(127))
+        j = np.int64(u) >> np.int64(11)
+        x = j * _ZIG_W[layer]
+        if abs(j) < _ZIG_K[layer]:
+            return x
+        if layer == 0:  # the tail beyond r (Marsaglia's exponential method)
+            while True:
+                a = -np.log(_open_uniform(rng)) / _ZIGGURAT_R
+                b = -np.log(_open_uniform(rng))
+                if b + b >= a * a:
+                    break
+            return _ZIGGURAT_R + a if j > 0 else -_ZIGGURAT_R - a
+        f_lo = _ZIG_F[layer]
+        if f_lo + _open_uniform(rng) * (_ZIG_F[layer - 1] - f_lo) < np.exp(-0.5 * x * x):
+            return x
+        u = _next_random(rng)
+
+
+@njit(cache=True, nogil=True)
+def normal_draws(rng, scale, out):
+    """``out[n] = scale * z_n``, ``z_n`` independent standard normal draws (state ``rng``).
+
+    The ziggurat method (Marsaglia & Tsang 2000) on splitmix64: one 64-bit draw gives the
+    layer (its low 7 bits) and a signed 53-bit abscissa (its high bits, independent of the
+    layer's, which avoids the correlation of the original 32-bit version; Leong et al.,
+    J. Statistical Software 12(7), 2005, from memory); about 99 % of draws end there. The
+    same state gives the same numbers however the draws are split into calls.
+    """
+    for n in range(out.size):
+        u = _next_random(rng)
+        layer = np.int64(u & np.uint64(127))
+        j = np.int64(u) >> np.int64(11)
+        if abs(j) < _ZIG_K[layer]:
+            z = j * _ZIG_W[layer]
+        else:
+            z = _normal_beyond_fast_path(rng, u)
+        out[n] = scale * z
+
+
 @njit(cache=True, nogil=True)
 def select_thermometer(codes, half, table, out):
     """Thermometer selection: code ``k`` turns on elements ``0 .. k-1``, always the same ones.
@@ -73,11 +158,16 @@ def select_random(codes, half, errors, rng, order, out):
 
 @njit(cache=True, nogil=True)
 def _cyclic_sum(prefix, start, count, n_el):
-    """Sum of ``errors[start], ..., errors[start + count - 1]`` taken modulo ``n_el``."""
+    """Sum of ``errors[start], ..., errors[start + count - 1]`` taken modulo ``n_el``.
+
+    Both sums are formed and one is picked (a select, not a branch: whether the run wraps
+    changes from sample to sample and would be mispredicted).
+    """
     stop = start + count
-    if stop <= n_el:
-        return prefix[stop] - prefix[start]
-    return (prefix[n_el] - prefix[start]) + prefix[stop - n_el]
+    wraps = stop > n_el
+    straight = prefix[min(stop, n_el)] - prefix[start]
+    wrapped = straight + prefix[stop - n_el if wraps else 0]
+    return wrapped if wraps else straight
 
 
 @njit(cache=True, nogil=True)
@@ -111,6 +201,13 @@ def select_rotating(codes, half, prefix, pointers, bidirectional, out):
         out[n] = (k - half) + (acc - 0.5 * prefix[n_el])
 
 
+#: The vector shaper ranks its targets by counting, branch-free, in this many lanes when the
+#: part has more than 8 and at most this many elements (the 17-level DAC's 16); other counts
+#: sort (an insertion sort, cheaper for a few elements and, for many, adaptive). Both give
+#: the same selection and the same sums, bit for bit (tests/test_elements.py).
+RANKED_LANES = 16
+
+
 @njit(cache=True, nogil=True)
 def select_vector_shaped(codes, half, errors, past, out):
     """Second-order vector mismatch shaping (Schreier & Zhang 1995; Schreier & Temes 2005).
@@ -119,8 +216,75 @@ def select_vector_shaped(codes, half, errors, past, out):
     ``t = k / N - 2 eps[n-1] + eps[n-2]``, ``v`` selects the ``k`` largest ``t_i`` (ties to
     the lower index), ``eps = v - t``. So ``v = k / N + (1 - z^-1)^2 eps``: each element's use
     is second-order shaped, and so is the mismatch error ``sum(v_i e_i)``; ``sum(t) = k``
-    at every sample, so the states do not drift as a whole.
+    at every sample, so the states do not drift as a whole. The selected elements' errors
+    are summed in the order of their targets, largest first.
     ``past`` rows are ``eps[n-1]`` and ``eps[n-2]`` (state).
+    """
+    if 8 < errors.size <= RANKED_LANES:
+        _vector_shaped_ranked(codes, half, errors, past, out)
+    else:
+        _vector_shaped_sorted(codes, half, errors, past, out)
+
+
+@njit(cache=True, nogil=True)
+def _vector_shaped_ranked(codes, half, errors, past, out):
+    """:func:`select_vector_shaped` by counting ranks, for at most :data:`RANKED_LANES` elements.
+
+    Element ``i``'s rank is the number of elements ahead of it, ``#{j: t_j > t_i or (t_j ==
+    t_i and j < i)}``: a fixed count of comparisons without branches, which the compiler
+    unrolls and vectorizes (the insertion sort's moves are branches the processor
+    mispredicts, the order of 16 targets changing often). Element ``i`` is selected when its
+    rank is below ``k``; the selected errors, put in rank order, are summed as the sort sums
+    them. The lanes past the part's elements hold the target ``-inf``: ranked last, never
+    selected.
+    """
+    n_el = errors.size
+    total = 0.0
+    for i in range(n_el):
+        total += errors[i]
+    now = np.zeros(RANKED_LANES)  # eps[n-1]
+    before = np.zeros(RANKED_LANES)  # eps[n-2]
+    error = np.zeros(RANKED_LANES)
+    for i in range(n_el):
+        now[i] = past[0, i]
+        before[i] = past[1, i]
+        error[i] = errors[i]
+    target = np.empty(RANKED_LANES)
+    rank = np.empty(RANKED_LANES, np.int64)
+    in_order = np.empty(RANKED_LANES)
+    for n in range(codes.size):
+        k = codes[n]
+        share = k / n_el
+        for i in range(RANKED_LANES):
+            t = share - 2.0 * now[i] + before[i]
+            target[i] = t if i < n_el else -np.inf
+        for i in range(RANKED_LANES):
+            t = target[i]
+            ahead = 0
+            for j in range(RANKED_LANES):
+                ahead += (target[j] > t) | ((target[j] == t) & (j < i))
+            rank[i] = ahead
+        for i in range(RANKED_LANES):
+            in_order[rank[i]] = error[i]
+        acc = 0.0
+        for j in range(k):
+            acc += in_order[j]
+        for i in range(RANKED_LANES):
+            eps = -target[i]
+            before[i] = now[i]
+            now[i] = eps + 1.0 if rank[i] < k else eps
+        out[n] = (k - half) + (acc - 0.5 * total)
+    for i in range(n_el):
+        past[0, i] = now[i]
+        past[1, i] = before[i]
+
+
+@njit(cache=True, nogil=True)
+def _vector_shaped_sorted(codes, half, errors, past, out):
+    """:func:`select_vector_shaped` by an insertion sort of the targets (any element count).
+
+    The sort starts from the last sample's order (kept within the call only: ties break by
+    index, so the order a sort starts from does not change its result).
     """
     n_el = errors.size
     total = 0.0
@@ -162,18 +326,23 @@ def relaxation_noise(draws, start, frame_std, poles, gains, holds, relax, out):
 
     ``draws`` is consumed in order, frame by frame: the white draw, then one draw for every
     process ``i`` whose update falls on the frame (global frame ``start + t`` a multiple of
-    ``holds[i]``): ``x_i <- gains[i] draw + poles[i] x_i``, held until its next update.
-    ``out[t] = frame_std white + sum_i x_i`` (added in process order); ``relax``: the
-    ``x_i``, updated.
+    ``holds[i]``, a power of two): ``x_i <- gains[i] draw + poles[i] x_i``, held until its
+    next update. ``out[t] = frame_std white + sum_i x_i`` (added in process order);
+    ``relax``: the ``x_i``, updated.
     """
     p = poles.size
+    # holds are powers of two and frames are not negative: "a multiple of the hold" is a
+    # test of the low bits (an integer division per process and frame cost most of the time)
+    masks = np.empty(p, np.int64)
+    for i in range(p):
+        masks[i] = holds[i] - 1
     e = 0
     for t in range(out.size):
         frame = start + t
         acc = frame_std * draws[e]
         e += 1
         for i in range(p):
-            if frame % holds[i] == 0:
+            if frame & masks[i] == 0:
                 relax[i] = gains[i] * draws[e] + poles[i] * relax[i]
                 e += 1
             acc += relax[i]
@@ -218,7 +387,7 @@ def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out
 
 
 #: The sine of the sinusoidal jitter is computed exactly at every global edge index that is a
-#: multiple of this, and by rotation between.
+#: multiple of this, and from that anchor by the angle-sum formula between.
 SINE_ANCHOR = 1024
 
 
@@ -226,28 +395,36 @@ SINE_ANCHOR = 1024
 def add_sine_shifts(shifts, start, peak, ratio):
     """Add ``peak sin(2 pi ((start + n) ratio mod 1))`` to ``shifts[n]`` (in place).
 
-    The sine is computed exactly at every global index ``start + n`` that is a multiple of
-    :data:`SINE_ANCHOR` and by rotating the phasor by ``2 pi ratio`` per index between: a
-    few rounding steps from the exact value (a relative error near 1e-13 at most), the same
-    numbers whatever the block boundaries, and a fraction of the cost of a sine per edge.
+    The sine is computed exactly at every global index ``a`` that is a multiple of
+    :data:`SINE_ANCHOR`, and at ``a + m`` between by the angle sum ``sin(x_a) cos(y_m) +
+    cos(x_a) sin(y_m)``, ``y_m = 2 pi (m ratio mod 1)`` from a table of the offsets: a few
+    roundings from the exact value (about 1e-16 of the peak), the same numbers whatever the
+    block boundaries, no sine per edge, and no chain from one edge to the next (a rotated
+    phasor would be one), so the loop vectorizes.
     """
-    step = 2.0 * np.pi * ratio
-    c_step = np.cos(step)
-    s_step = np.sin(step)
-    base = start - start % SINE_ANCHOR
-    phase = 2.0 * np.pi * ((base * ratio) % 1.0)
-    s = np.sin(phase)
-    c = np.cos(phase)
-    for _ in range(start - base):
-        s, c = s * c_step + c * s_step, c * c_step - s * s_step
-    for n in range(shifts.size):
-        index = start + n
-        if index % SINE_ANCHOR == 0:
-            phase = 2.0 * np.pi * ((index * ratio) % 1.0)
-            s = np.sin(phase)
-            c = np.cos(phase)
-        shifts[n] += peak * s
-        s, c = s * c_step + c * s_step, c * c_step - s * s_step
+    n = shifts.size
+    if n == 0:
+        return
+    first = start % SINE_ANCHOR
+    table = min(SINE_ANCHOR, first + n)  # offsets 0 .. table-1 are used
+    cos_m = np.empty(table)
+    sin_m = np.empty(table)
+    for m in range(table):
+        y = 2.0 * np.pi * ((m * ratio) % 1.0)
+        cos_m[m] = np.cos(y)
+        sin_m[m] = np.sin(y)
+    i = 0
+    while i < n:
+        index = start + i
+        m0 = index % SINE_ANCHOR
+        phase = 2.0 * np.pi * (((index - m0) * ratio) % 1.0)
+        s = peak * np.sin(phase)
+        c = peak * np.cos(phase)
+        stop = min(n, i + SINE_ANCHOR - m0)
+        for j in range(i, stop):
+            m = m0 + j - i
+            shifts[j] += s * cos_m[m] + c * sin_m[m]
+        i = stop
 
 
 @njit(cache=True, nogil=True, inline="always")

@@ -38,7 +38,7 @@ class NoiseState:
     """Between blocks: the relaxation processes' values, the generator's state, frames done."""
 
     relax: tuple
-    generator: dict
+    generator: int  # splitmix64 state of the normal draws (_element_kernels.normal_draws)
     frames: int = 0
 
 
@@ -88,27 +88,23 @@ class AnalogNoise:
 
     def initial_state(self) -> NoiseState:
         """The processes at rest, the generator freshly seeded."""
-        gen = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, 0xA0])))
-        return NoiseState(relax=(0.0,) * self._poles.size, generator=gen.bit_generator.state)
+        seeded = np.random.SeedSequence([self.seed, 0xA0]).generate_state(1, dtype=np.uint64)
+        return NoiseState(relax=(0.0,) * self._poles.size, generator=int(seeded[0]))
 
     def process(self, count: int, state=None):
         """The next ``count`` frame means of the noise (volts) and the new state."""
         st = state if state is not None else self.initial_state()
-        gen = np.random.Generator(np.random.PCG64())
-        gen.bit_generator.state = st.generator
-        # one row of draws per frame (white part, then each process): any split into blocks
-        # draws the same numbers in the same order
+        rng = np.array([st.generator], dtype=np.uint64)
         # the draws in frame order (white, then the processes updated on that frame): any
         # split into blocks draws the same numbers in the same order
         first, end = st.frames, st.frames + count
         updates = int(np.sum(-(-end // self._holds) - (-(-first // self._holds))))
-        draws = gen.standard_normal(count + updates)
+        draws = np.empty(count + updates)
+        _k.normal_draws(rng, 1.0, draws)
         noise = np.empty(count)
         relax = np.array(st.relax, dtype=np.float64)
         _k.relaxation_noise(
             draws, first, self.frame_std, self._poles, self._gains, self._holds, relax, noise
         )
-        state = NoiseState(
-            relax=tuple(float(v) for v in relax), generator=gen.bit_generator.state, frames=end
-        )
+        state = NoiseState(relax=tuple(float(v) for v in relax), generator=int(rng[0]), frames=end)
         return noise, state

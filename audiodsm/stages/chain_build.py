@@ -207,7 +207,7 @@ def _unit_element_fn(profile: ChainProfile, frame_rate_hz: float, lsb_volts: flo
     def nrz_elements(y, state):
         codes = out_mod.level_codes(y, levels=levels)
         centred, state = elements.process(codes, state)
-        ones = np.ones((y.size, 1), dtype=np.int64)
+        ones = out_mod._ONE_TICK[: y.size]  # the shared read-only column of ones
         wf = out_mod.PulseWaveform._trusted(
             (centred * lsb_volts).reshape(-1, 1), ones, 1, frame_rate_hz
         )

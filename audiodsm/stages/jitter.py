@@ -66,14 +66,22 @@ from audiodsm.stages import _element_kernels as _k
 
 __all__ = ["EdgeJitter", "JitterState", "jitter_in_band_power"]
 
+# the ticks of one- and two-slot frames, broadcast read-only over the frames (no copy)
+_ONE_TICKS = np.ones(2, dtype=np.int64)
+_ONE_TICKS.setflags(write=False)
+
 
 @dataclass(frozen=True)
 class JitterState:
-    """Between blocks: frames done, the frame held back, the random generator's state."""
+    """Between blocks: frames done, the frame held back, the random generator's state.
+
+    ``generator`` is the splitmix64 state (a 64-bit unsigned integer) of the white jitter's
+    normal draws (:func:`~audiodsm.stages._element_kernels.normal_draws`).
+    """
 
     frames: int
     held: tuple
-    generator: dict
+    generator: int
 
 
 class EdgeJitter:
@@ -182,31 +190,37 @@ class EdgeJitter:
 
     def initial_state(self) -> JitterState:
         """Before the first edge: the rest level held, the generator freshly seeded."""
-        gen = np.random.Generator(np.random.PCG64(np.random.SeedSequence([self.seed, 0x717])))
+        seeded = np.random.SeedSequence([self.seed, 0x717]).generate_state(1, dtype=np.uint64)
         if self.ticks_per_frame > 1:  # PWM: a rest frame, one segment of the whole frame
             held = (0.0, 0)
         elif self.slots == 2:
             held = (0.0, 0.0, 0.0)
         else:
             held = (self.rest_level, self.rest_level)
-        return JitterState(frames=0, held=held, generator=gen.bit_generator.state)
+        return JitterState(frames=0, held=held, generator=int(seeded[0]))
 
-    def shifts(self, start: int, count: int, generator) -> np.ndarray:
+    def shifts(self, start: int, count: int, state=None) -> np.ndarray:
         """Displacements of edges ``start .. start+count-1`` in slots (clipped to ±1/2).
 
-        What :meth:`process` applies to PDM / NRZ (it adds the sine in its compiled loop).
+        The random part is drawn from ``state``'s generator (the initial state's when None),
+        as the next block would draw it; the sine is computed exactly at every edge. What
+        :meth:`process` applies to PDM / NRZ (whose sine comes from exact anchors by the
+        angle sum, within 3e-15 of its peak).
         """
-        shift = self._random_shifts(count, generator)
+        st = state if state is not None else self.initial_state()
+        shift = self._random_shifts(count, np.array([st.generator], dtype=np.uint64))
         if self.sine_peak_s > 0.0:
             n = np.arange(start, start + count, dtype=np.float64)
             cycles = np.mod(n * (self.sine_hz / self._slot_rate), 1.0)
             shift += (self.sine_peak_s * self._slot_rate) * np.sin(2.0 * np.pi * cycles)
         return np.clip(shift, -0.5, 0.5)
 
-    def _random_shifts(self, count, generator):
+    def _random_shifts(self, count, rng):
+        """``count`` white displacements in slots, drawn from (and advancing) ``rng``."""
+        shift = np.zeros(count)
         if self.rms_s > 0.0:
-            return (self.rms_s * self._slot_rate) * generator.standard_normal(count)
-        return np.zeros(count)
+            _k.normal_draws(rng, self.rms_s * self._slot_rate, shift)
+        return shift
 
     def process(self, levels, state=None):
         """Frame means (or RZ half-frame means) of the impaired output, one frame behind.
@@ -231,9 +245,8 @@ class EdgeJitter:
             )
         st = state if state is not None else self.initial_state()
         levels = np.ascontiguousarray(levels, dtype=np.float64)
-        gen = np.random.Generator(np.random.PCG64())
-        gen.bit_generator.state = st.generator
-        shift = self._random_shifts(levels.size * self.slots, gen)
+        rng = np.array([st.generator], dtype=np.uint64)
+        shift = self._random_shifts(levels.size * self.slots, rng)
         held = np.array(st.held, dtype=np.float64)
         peak = self.sine_peak_s * self._slot_rate
         ratio = self.sine_hz / self._slot_rate
@@ -262,7 +275,7 @@ class EdgeJitter:
         new = JitterState(
             frames=st.frames + levels.size,
             held=tuple(float(v) for v in held),
-            generator=gen.bit_generator.state,
+            generator=int(rng[0]),
         )
         return out, new
 
@@ -290,7 +303,7 @@ class EdgeJitter:
         if self.ticks_per_frame == 1:
             means, st = self.process(waveform.levels[:, 0], state)
             means = means.reshape(waveform.n_frames, self.slots)
-            ticks = np.ones((waveform.n_frames, self.slots), dtype=np.int64)
+            ticks = np.broadcast_to(_ONE_TICKS[: self.slots], (waveform.n_frames, self.slots))
             return PulseWaveform._trusted(means, ticks, self.slots, rate), st
         if waveform.ticks_per_frame != self.ticks_per_frame:
             raise ParameterError(
@@ -311,9 +324,8 @@ class EdgeJitter:
             last_j = 2
         on = levels[ticks > 0]  # row-major: the segments in time order
         edges = int(np.count_nonzero(np.diff(on, prepend=prev) != 0.0)) if on.size else 0
-        gen = np.random.Generator(np.random.PCG64())
-        gen.bit_generator.state = st.generator
-        shift = self._random_shifts(edges, gen)
+        rng = np.array([st.generator], dtype=np.uint64)
+        shift = self._random_shifts(edges, rng)
         held = np.array([prev, last_j], dtype=np.float64)
         out_levels = np.empty((n, 3 * n_seg))
         out_ticks = np.empty((n, 3 * n_seg), dtype=np.int64)
@@ -339,7 +351,7 @@ class EdgeJitter:
                 tuple(float(v) for v in held_levels),
                 tuple(int(v) for v in held_ticks),
             ),
-            generator=gen.bit_generator.state,
+            generator=int(rng[0]),
         )
         return PulseWaveform._trusted(out_levels, out_ticks, self.ticks_per_frame, rate), new
 
