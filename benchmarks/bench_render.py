@@ -15,6 +15,12 @@ Cases
 ``render_speed_shipped_pdm5``
     The same, through the shipped profile ``profiles/dac_chip/pdm5_64x.toml`` (its loop is
     feedforward, spread zeros), the profile issue 12's target names.
+``render_speed_96k_5level_error``
+    Issue 12's second render target: 10 s of stereo 96 kHz through a 4th-order 5-level loop
+    at OSR 128 (NRZ output, the default reconstruction filter), with the error-only file
+    written (``error_gain_db = 0``). Its ratio is to the C 17-level loop
+    (``feedback5_17level``, the C reference's multi-level loop) for the same modulator
+    samples. Target: wall <= 2.5.
 ``render_memory``
     A 10-minute stereo 96 kHz 24-bit input at OSR 64, rendered in a child process that reports
     its peak resident memory (``ru_maxrss``). Target: < 400 MB.
@@ -42,6 +48,9 @@ C_SAMPLES = C_RATE_HZ * 10  # the C reference's run, shared with the modulator b
 TARGET_RATIO_TO_C = 2.0
 SPEED_SECONDS = float(os.environ.get("AUDIODSM_BENCH_RENDER_SECONDS", "60"))
 MEMORY_SECONDS = float(os.environ.get("AUDIODSM_BENCH_MEMORY_SECONDS", "600"))
+#: issue 12: 10 s of stereo 96 kHz, 4th order 5 levels at OSR 128, with the error file
+MULTI_LEVEL_SECONDS = float(os.environ.get("AUDIODSM_BENCH_RENDER_96K_SECONDS", "10"))
+TARGET_MULTI_LEVEL_RATIO_TO_C = 2.5
 
 
 def _program(n_frames: int, rate: int, start: int = 0) -> np.ndarray:
@@ -82,11 +91,30 @@ def _cpu_seconds() -> float:
 SHIPPED_PDM5 = "profiles/dac_chip/pdm5_64x.toml"
 
 
-def _speed_case(profile_path=None):
+def _speed_case(profile_path=None, *, multi_level=False):
     from audiodsm.evaluate.render import render_file
-    from audiodsm.profile import ChainProfile, load_profile
+    from audiodsm.profile import (
+        ChainProfile,
+        ModulatorSettings,
+        OutputStageSettings,
+        UpsamplerSettings,
+        load_profile,
+    )
 
-    if profile_path is None:
+    rate, seconds, loop, error_gain_db = 48000, SPEED_SECONDS, "feedback5_1bit", None
+    target = TARGET_RATIO_TO_C
+    if multi_level:
+        profile = ChainProfile(
+            name="nrz5-osr128",
+            upsampler=UpsamplerSettings(osr=128),
+            modulator=ModulatorSettings(order=4, levels=5),
+            output=OutputStageSettings(kind="nrz"),
+        )
+        case = "render_speed_96k_5level_error"
+        text = "4th-order 5-level NRZ, OSR 128, 96 kHz, with the error-only file"
+        rate, seconds, loop, error_gain_db = 96000, MULTI_LEVEL_SECONDS, "feedback5_17level", 0.0
+        target = TARGET_MULTI_LEVEL_RATIO_TO_C
+    elif profile_path is None:
         profile = ChainProfile(name="pdm5-osr64")
         case, text = (
             "render_speed",
@@ -97,45 +125,44 @@ def _speed_case(profile_path=None):
         mod = profile.modulator
         case = "render_speed_shipped_pdm5"
         text = f"{profile_path}: 5th-order single-bit PDM, {mod.structure}, {mod.zero_layout} zeros"
-    rate = 48000
     c_loop_speeds(C_SAMPLES)  # the C reference runs before the render, not during it
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         warm = tmp / "warm.wav"
         _write_input(warm, 0.2, rate)
         (tmp / "out").mkdir()
-        render_file(warm, profile, tmp / "out")  # compile the kernels first
+        render_file(warm, profile, tmp / "out", error_gain_db=error_gain_db)  # compile first
         src = tmp / "program.wav"
-        _write_input(src, SPEED_SECONDS, rate)
+        _write_input(src, seconds, rate)
         started = time.perf_counter()
         cpu_before = _cpu_seconds()
-        summary = render_file(src, profile, tmp / "out")
+        summary = render_file(src, profile, tmp / "out", error_gain_db=error_gain_db)
         elapsed = time.perf_counter() - started
         cpu = _cpu_seconds() - cpu_before
     cores = min(2, os.cpu_count() or 1)
-    modulator_samples = int(SPEED_SECONDS * rate) * profile.upsampler.osr * 2
-    versus_c = time_ratio("feedback5_1bit", modulator_samples, elapsed, samples=C_SAMPLES)
-    c_cpu = cpu_loop_seconds("feedback5_1bit", modulator_samples, samples=C_SAMPLES)
+    modulator_samples = int(seconds * rate) * profile.upsampler.osr * 2
+    versus_c = time_ratio(loop, modulator_samples, elapsed, samples=C_SAMPLES)
+    c_cpu = cpu_loop_seconds(loop, modulator_samples, samples=C_SAMPLES)
     if c_cpu is not None:
         versus_c["cpu_ratio_to_c"] = round(cpu / cores / c_cpu, 3)
     return {
         "case": case,
         "profile": text,
-        "audio_seconds": SPEED_SECONDS,
+        "audio_seconds": seconds,
         "rate_hz": rate,
         "channels": 2,
         "elapsed_s": round(elapsed, 3),
-        "realtime_factor": round(SPEED_SECONDS / elapsed, 2),
+        "realtime_factor": round(seconds / elapsed, 2),
         "target_realtime_factor": 10.0,
         "modulator_samples": modulator_samples,
         **versus_c,
-        "target": TARGET_RATIO_TO_C,
+        "target": target,
         "stage_seconds_summed_over_channels": summary["stage_seconds"],
         "cpu_s": round(cpu, 3),
         # on a shared machine the wall time includes waiting for a core; audio seconds per
         # CPU second, spread over the cores the two channels can use, estimates what a quiet
         # machine would give (assuming the two channel threads overlap perfectly)
-        "realtime_factor_from_cpu_time": round(SPEED_SECONDS / (cpu / cores), 2),
+        "realtime_factor_from_cpu_time": round(seconds / (cpu / cores), 2),
         "load_average_1min": round(os.getloadavg()[0], 2),
         "cpu_count": os.cpu_count(),
     }
@@ -192,4 +219,5 @@ def _memory_case():
 def run():
     yield _speed_case()
     yield _speed_case(SHIPPED_PDM5)
+    yield _speed_case(multi_level=True)
     yield _memory_case()

@@ -309,7 +309,7 @@ def test_modulator_samples_count_every_run(full_quick, transparent_result):
             + tones * n(plan.frequency_sweep_s)
             + n(plan.image_s)
             + 2 * n(plan.imd_s)
-            + len(plan.jitter_sigmas_s) * n(plan.tone_s)  # the jitter sweep, one run a sigma
+            + n(plan.tone_s)  # the jitter sweep: one run serves every sigma (PDM)
         )
         + plan.histogram_samples
     )

@@ -178,6 +178,57 @@ def test_jitter_sweep_on_pwm_where_the_model_holds():
         assert words in res.invalid["jitter_dynamic_range_db_at_1ps"], res.invalid
 
 
+@pytest.mark.parametrize("name", ["pdm5_64x", "nrz17_64x"])
+def test_one_run_serves_every_jitter_of_the_sweep(name):
+    # The edge error of a displaced edge is -step * shift (stages/jitter.py), linear in the
+    # shift, and the shifts of a jitter sigma are sigma times the same normal draws; every
+    # stage after the edges is linear. So the output with jitter sigma is the run at the
+    # largest sigma plus (sigma / largest - 1) times the part the random jitter makes, to
+    # rounding (the reference here: separate runs, one per sigma, with the same seed). The
+    # dithered 17-level NRZ loop checks that the shared run keeps the dither too.
+    from audiodsm.evaluate.battery import _Context
+    from audiodsm.evaluate.battery_impairments import _test_jitter, jitter_scales_linearly
+    from audiodsm.stages.chain import run_chain
+
+    profile = _ideal(name)
+    assert jitter_scales_linearly(profile)
+    sigmas = (1e-12, 1e-11, 1e-10)
+    x = 10 ** (-60 / 20) * np.sin(2 * np.pi * 997.0 * np.arange(RATE // 5) / RATE)
+    top = run_chain(
+        _with(profile, jitter_rms_s=sigmas[-1]),
+        x,
+        rate_hz=RATE,
+        keep=("listening", "jitter_error"),
+        threads=1,
+    )
+    for sigma in sigmas:
+        alone = run_chain(_with(profile, jitter_rms_s=sigma), x, rate_hz=RATE, threads=1)
+        shared = top.listening + (sigma / sigmas[-1] - 1.0) * top.jitter_error
+        # rounding of float64 sums of numbers up to full scale: far below any reading
+        np.testing.assert_allclose(shared, alone.listening, rtol=0, atol=1e-14)
+    # the jitter's part is no rounding pattern: 100 ps moves a single-bit PDM output by
+    # tens of dB more than the rounding bound above
+    assert np.sqrt(np.mean(top.jitter_error**2)) > 1e-9
+    # the battery's readings: the sweep in one run against one run per sigma
+    ctx = _Context(QUICK, RATE, 0.01)
+    together = _test_jitter(ctx, profile, sigmas)
+    assert len(together["stats"]) == 1
+    for point in together["jitter_sweep"]:
+        alone = _test_jitter(ctx, profile, point["sigma_s"])["jitter_sweep"][0]
+        assert point["reason"] == alone["reason"] == ""
+        assert point["dr_db"] == pytest.approx(alone["dr_db"], abs=1e-9)
+        assert point["dr_db_a"] == pytest.approx(alone["dr_db_a"], abs=1e-9)
+
+
+def test_jitter_error_is_refused_where_it_is_not_defined():
+    # no random jitter, nothing to keep: one-line error instead of zeros
+    from audiodsm.errors import ParameterError
+
+    chain = Chain.from_profile(_ideal("pdm5_64x"), RATE, 1)
+    with pytest.raises(ParameterError, match="jitter_error"):
+        chain.process(np.zeros(64), keep=("listening", "jitter_error"))
+
+
 # -- DC offset -----------------------------------------------------------------------------
 
 

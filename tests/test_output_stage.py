@@ -62,6 +62,19 @@ def test_nrz_levels_are_code_times_lsb(rng):
         nrz_waveform(np.array([0.1]), levels=9, frame_rate_hz=RATE)
 
 
+@pytest.mark.parametrize("levels", [2, 3, 5, 9, 17, 65537])
+def test_nrz_without_the_grid_check_gives_the_same_levels(levels, rng):
+    # the chain's call (validate=False, a quantizer's own output) rounds to the same codes
+    # and so gives the checked call's levels bit for bit, with and without an LSB in volts
+    y = _grid(levels, 200, rng)
+    for lsb in (None, 0.25, 1e-3):
+        checked = nrz_waveform(y, levels=levels, frame_rate_hz=RATE, lsb_volts=lsb)
+        fast = nrz_waveform(y, levels=levels, frame_rate_hz=RATE, lsb_volts=lsb, validate=False)
+        assert np.array_equal(fast.levels, checked.levels)
+        assert np.array_equal(fast.ticks, checked.ticks)
+        assert not fast.levels.flags.writeable
+
+
 def test_waveform_is_read_only_but_leaves_the_callers_arrays_alone():
     levels = np.zeros((3, 2))
     ticks = np.ones((3, 2), dtype=np.int64)

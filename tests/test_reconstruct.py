@@ -239,7 +239,7 @@ def test_modal_kernel_equals_dense_twin(order, rng):
     ref_y, ref_x = _slow_segments(levels, ticks, phis, gammas, wx, wu, np.zeros(order))
     x = np.zeros(order)
     y = np.empty(500)
-    rec._run_modal(u, model, phis, gammas, wx, wu, x, y)
+    rec._run_modal(u, rec._modal_coefficients(model, phis, gammas, wx, wu), x, y)
     np.testing.assert_array_equal(y, ref_y)
     np.testing.assert_array_equal(x, ref_x)
 

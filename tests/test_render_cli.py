@@ -737,3 +737,63 @@ def test_a_later_render_removes_temporary_files_a_killed_one_left(setup):
     assert res.exit_code == 0, res.output
     assert not stale.exists()
     assert live.exists()  # its writer still runs
+
+
+def test_blocks_computed_ahead_keep_their_order_errors_and_stop():
+    # the render's helper thread: the caller sees the same items in the same order, an error
+    # of the producer is raised in the caller's thread, and a caller that stops early leaves
+    # no thread running (the producer is closed and joined)
+    import threading
+
+    from audiodsm.evaluate.render import _computed_ahead
+
+    assert list(_computed_ahead(iter(range(50)), depth=2)) == list(range(50))
+
+    def failing():
+        yield 1
+        raise ValueError("broken block")
+
+    got = []
+    with pytest.raises(ValueError, match="broken block"):
+        for item in _computed_ahead(failing()):
+            got.append(item)
+    assert got == [1]
+
+    closed = threading.Event()
+
+    def endless():
+        try:
+            n = 0
+            while True:
+                yield n
+                n += 1
+        finally:
+            closed.set()
+
+    ahead = _computed_ahead(endless(), depth=2)
+    assert [next(ahead) for _ in range(3)] == [0, 1, 2]
+    ahead.close()
+    assert closed.is_set()
+    assert not any(t.name == "audiodsm-render-ahead" for t in threading.enumerate())
+
+
+def test_a_render_stopped_by_an_error_leaves_no_helper_running(tmp_path):
+    # an error in the calling thread (here the progress callback) ends the render with that
+    # error, the helper that computes blocks ahead is stopped and joined, and no output is left
+    import threading
+
+    from audiodsm.evaluate.render import render_file
+    from audiodsm.profile import parse_profile
+
+    wav = tmp_path / "in.wav"
+    sf.write(wav, 0.1 * np.ones((3 * RATE, 2)), RATE, subtype="PCM_24")
+    out = tmp_path / "out"
+    out.mkdir()
+
+    def progress(frames):
+        raise RuntimeError("stopped by the caller")
+
+    with pytest.raises(RuntimeError, match="stopped by the caller"):
+        render_file(wav, parse_profile(PROFILE), out, progress=progress)
+    assert not any(t.name == "audiodsm-render-ahead" for t in threading.enumerate())
+    assert list(out.iterdir()) == []

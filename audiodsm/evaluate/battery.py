@@ -70,7 +70,11 @@ import numpy as np
 from audiodsm.errors import ParameterError
 from audiodsm.evaluate._plain import plain_scalar
 from audiodsm.evaluate.battery_assembly import _assemble
-from audiodsm.evaluate.battery_impairments import _test_jitter, _test_mismatch
+from audiodsm.evaluate.battery_impairments import (
+    _test_jitter,
+    _test_mismatch,
+    jitter_scales_linearly,
+)
 from audiodsm.evaluate.battery_runs import (
     _db,
     _response_frequencies,
@@ -658,8 +662,12 @@ def run_battery(
     searched = ("idle" in tests) + len(dc) + (low_tone_captures if "level_sweep" in tests else 0)
     ctx = _Context(plan, rate, plan.false_alarm / max(1, searched))
 
-    # the runs: (label, function, args); "stability" feeds the overload probes
+    # the runs: (label, function, args); "stability" feeds the overload probes. Each run's
+    # dither seed comes from its index; a run that does the work of several (the jitter
+    # sweep in one run) takes the first of their indices and leaves the others unused, so
+    # the other runs keep their seeds
     runs = []
+    unused_indices = {}
     if "stability" in tests:
         runs.append(("stability", _test_stability, ()))
     if "dynamic_range" in tests:
@@ -688,11 +696,20 @@ def run_battery(
     if "element_mismatch" in tests:
         runs.append(("element mismatch", _test_mismatch, ()))
     if "jitter_sweep" in tests:
-        for sigma in sorted({float(v) for v in plan.jitter_sigmas_s}):
-            runs.append(("DR vs jitter", _test_jitter, (sigma,)))
+        sigmas = sorted({float(v) for v in plan.jitter_sigmas_s})
+        if jitter_scales_linearly(profile):  # one chain run serves every jitter
+            unused_indices[len(runs)] = len(sigmas) - 1
+            runs.append(("DR vs jitter", _test_jitter, (tuple(sigmas),)))
+        else:
+            for sigma in sigmas:
+                runs.append(("DR vs jitter", _test_jitter, (sigma,)))
     if "class_d_stage" in tests:
         runs.append(("class-D stage", _test_class_d_stage, ()))
     total = len(runs) + ("stability" in tests)  # the overload probes follow the stability run
+    seed_indices, index = [], 0
+    for i in range(len(runs)):
+        seed_indices.append(index)
+        index += 1 + unused_indices.get(i, 0)
 
     def with_seed(index):
         s = _run_seed(profile.modulator.seed, seed, index)
@@ -719,7 +736,7 @@ def run_battery(
         with threadpool_limits(limits=1, user_api="blas"):
             pending = {}
             for i, (label, fn, args) in enumerate(runs):
-                pending[pool.submit(timed, fn, ctx, with_seed(i), *args)] = label
+                pending[pool.submit(timed, fn, ctx, with_seed(seed_indices[i]), *args)] = label
             while pending:
                 finished, _ = _cf.wait(pending, return_when=_cf.FIRST_COMPLETED)
                 for fut in finished:
@@ -733,7 +750,7 @@ def run_battery(
                         progress(done, total, label)
                     if label == "stability":
                         probe = _probe_levels(part["msa"], plan.overload_steps_db)
-                        fut2 = pool.submit(timed, _test_overload, ctx, with_seed(len(runs)), probe)
+                        fut2 = pool.submit(timed, _test_overload, ctx, with_seed(index), probe)
                         pending[fut2] = "overload"
     finally:
         # on an error or Ctrl-C, runs not yet started are dropped; running ones finish

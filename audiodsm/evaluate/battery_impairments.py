@@ -112,33 +112,91 @@ def _dynamic_range(y, rate, settle_s, weightings=("unweighted", "a")):
     return {w: -r.noise_dbfs[w] for w in weightings}, ""
 
 
-def _test_jitter(ctx, profile, sigma_s):
-    """The -60 dBFS dynamic range with white edge jitter ``sigma_s`` (seconds rms)."""
+def jitter_scales_linearly(profile) -> bool:
+    """True when one chain run can serve every jitter of the sweep (see :func:`_test_jitter`).
+
+    The edge error is linear in the random displacements when every frame is one segment
+    (PDM, NRZ without return to zero) and nothing else moves the edges (no sinusoidal
+    jitter, no edge ramps): each edge's error is ``-step * shift``, in the frame after the
+    edge or before it by the sign of the shift alone (stages/jitter.py).
+    """
+    imp = profile.impairments
+    return (
+        profile.output.kind in ("pdm", "nrz")
+        and not imp.return_to_zero
+        and imp.jitter_sine_peak_s == 0.0
+        and imp.rise_time_s == 0.0
+        and imp.fall_time_s == 0.0
+    )
+
+
+def _test_jitter(ctx, profile, sigmas_s):
+    """The -60 dBFS dynamic range with white edge jitter of each of ``sigmas_s`` (seconds rms).
+
+    ``sigmas_s`` is one jitter or a sequence of them. Where the edge error is linear in the
+    displacements (:func:`jitter_scales_linearly`), one chain run at the largest jitter
+    serves all of them: the displacements are ``sigma`` times the same normal draws, so the
+    listening output with jitter ``sigma`` is the run's output plus ``(sigma / largest - 1)``
+    times the part the random jitter makes (``keep="jitter_error"``), the same numbers as a
+    run of its own to rounding (tests/test_battery_impairments.py). Otherwise one run a
+    jitter.
+    """
     from audiodsm.errors import ProfileError
     from audiodsm.profile_checks import _check_impairments
 
-    point = {"sigma_s": float(sigma_s), "dr_db": None, "dr_db_a": None, "reason": ""}
+    sigmas = [float(sigmas_s)] if np.ndim(sigmas_s) == 0 else [float(v) for v in sigmas_s]
     plan, rate = ctx.plan, ctx.rate
-    jittered = _with_impairments(profile, jitter_rms_s=float(sigma_s))
     x = _tone(-60.0, rate, plan.settle_s + plan.tone_s + _TAIL_S)
-    try:
-        # what the jitter model does not hold (PWM with dead time or on-resistance) is refused
-        # as a profile would be at load, and jitter beyond half a frame by the chain
-        _check_impairments(jittered, "")
-        res = _chain_run(jittered, x, rate=rate)
-    except ProfileError as exc:
-        why = f"jitter not modelled here: {exc.key}: {exc.message}" if exc.key else str(exc)
-        return {"jitter_sweep": [{**point, "reason": why}]}
-    y = res.listening[:, 0]
     settle = int(round(plan.settle_s * rate))
-    faults = _run_faults(res.stats, 0, y[settle:])
-    dr, lost = _dynamic_range(y, rate, plan.settle_s)
-    if lost:
-        faults.append(lost)
-    if dr is not None:
-        point["dr_db"], point["dr_db_a"] = dr["unweighted"], dr["a"]
-    point["reason"] = "; ".join(faults)
-    return {"jitter_sweep": [point], "stats": [(res.stats, 0, 10 ** (-60 / 20))]}
+    points, usable = {}, []
+    for sigma in sigmas:
+        points[sigma] = {"sigma_s": sigma, "dr_db": None, "dr_db_a": None, "reason": ""}
+        try:
+            # what the jitter model does not hold (PWM with dead time or on-resistance) is
+            # refused as a profile would be at load, and jitter beyond half a frame by the chain
+            _check_impairments(_with_impairments(profile, jitter_rms_s=sigma), "")
+            usable.append(sigma)
+        except ProfileError as exc:
+            why = f"jitter not modelled here: {exc.key}: {exc.message}" if exc.key else str(exc)
+            points[sigma]["reason"] = why
+    outputs, stats = {}, []
+    try:
+        if len(usable) > 1 and jitter_scales_linearly(profile):
+            top = max(usable)
+            res = _chain_run(
+                _with_impairments(profile, jitter_rms_s=top),
+                x,
+                rate=rate,
+                keep=("listening", "jitter_error"),
+            )
+            part = res.jitter_error[: len(res.listening), 0]
+            for sigma in usable:
+                y = res.listening[:, 0]
+                outputs[sigma] = (y if sigma == top else y + (sigma / top - 1.0) * part, res)
+            stats.append((res.stats, 0, 10 ** (-60 / 20)))
+        else:
+            for sigma in usable:
+                res = _chain_run(_with_impairments(profile, jitter_rms_s=sigma), x, rate=rate)
+                outputs[sigma] = (res.listening[:, 0], res)
+                stats.append((res.stats, 0, 10 ** (-60 / 20)))
+    except ProfileError as exc:  # refused by the chain itself
+        why = f"jitter not modelled here: {exc.key}: {exc.message}" if exc.key else str(exc)
+        for sigma in usable:
+            points[sigma]["reason"] = why
+        outputs, stats = {}, []
+    for sigma, (y, res) in outputs.items():
+        point = points[sigma]
+        faults = _run_faults(res.stats, 0, y[settle:])
+        dr, lost = _dynamic_range(y, rate, plan.settle_s)
+        if lost:
+            faults.append(lost)
+        if dr is not None:
+            point["dr_db"], point["dr_db_a"] = dr["unweighted"], dr["a"]
+        point["reason"] = "; ".join(faults)
+    out = {"jitter_sweep": [points[s] for s in sigmas]}
+    if stats:
+        out["stats"] = stats
+    return out
 
 
 def _test_mismatch(ctx, profile):

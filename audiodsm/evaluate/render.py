@@ -26,9 +26,11 @@ import errno
 import json
 import math
 import os
+import queue
 import re
+import threading
 import time
-from contextlib import ExitStack, nullcontext
+from contextlib import ExitStack, closing, nullcontext
 from pathlib import Path
 
 import numpy as np
@@ -114,6 +116,55 @@ def output_names(input_path, profile, out_dir, *, error_gain_db=None, stream=Fal
 
 def _dbfs_peak(peak: float) -> float | None:
     return 20.0 * math.log10(peak) if peak > 0 else None
+
+
+def _computed_ahead(items, depth: int = 2):
+    """Yield the items of the iterator ``items``, computed in a helper thread ahead of use.
+
+    At most ``depth`` items wait. An exception raised by ``items`` is raised here, in the
+    caller's thread, when its turn comes; when the caller stops early (an error, Ctrl-C) the
+    helper stops after the item it is computing and is waited for, so nothing runs on after
+    the caller has returned.
+    """
+    done = object()
+    waiting = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+
+    def offer(entry) -> bool:
+        while not stop.is_set():
+            try:
+                waiting.put(entry, timeout=0.05)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce():
+        try:
+            for item in items:
+                if not offer((item, None)):
+                    return
+            offer((done, None))
+        except BaseException as exc:  # handed to the caller, raised there
+            offer((done, exc))
+        finally:
+            close = getattr(items, "close", None)
+            if close is not None:
+                close()
+
+    helper = threading.Thread(target=produce, name="audiodsm-render-ahead", daemon=True)
+    helper.start()
+    try:
+        while True:
+            item, exc = waiting.get()
+            if item is done:
+                if exc is not None:
+                    raise exc
+                return
+            yield item
+    finally:
+        stop.set()
+        helper.join()
 
 
 def render_file(
@@ -221,11 +272,9 @@ def render_file(
                         f"sample beyond full scale at frame {frame} "
                         "(the profile sets input.over_full_scale = 'refuse')",
                     )
-            silence.feed_input(block)
+            silence.feed_input(block)  # its input half only: feed_output runs in the caller
             yield block
             done[0] += block.shape[0]
-            if progress is not None:
-                progress(block.shape[0])
 
     state = None
 
@@ -268,7 +317,17 @@ def render_file(
                 )
             )
         run_keep = keep + (("modulator",) if stream_w is not None else ())
-        for block, block_state in chain.stream(tapped_blocks(), keep=run_keep):
+        # the chain (with the input's reading) runs a block ahead in a helper thread while
+        # this one writes the last block's outputs: same blocks, same order, same numbers
+        produced = ((b, st, done[0]) for b, st in chain.stream(tapped_blocks(), keep=run_keep))
+        reported = 0
+        # closed on the way out (an error or Ctrl-C below): the helper stops and is joined
+        # before the writers and the output set clean up
+        ahead = stack.enter_context(closing(_computed_ahead(produced)))
+        for block, block_state, read in ahead:
+            if progress is not None and read > reported:
+                progress(read - reported)
+                reported = read
             state = block_state
             if stream_w is not None and block.modulator is not None:
                 stream_w.append(block.modulator)

@@ -71,8 +71,12 @@ __all__ = [
 ]
 
 #: What :func:`run_chain` can keep: the listening output, the modulator output, the
-#: reconstructed (calibrated) output at the modulator rate, and the error-only signal.
-KEEP_CHOICES = ("listening", "modulator", "analog", "error")
+#: reconstructed (calibrated) output at the modulator rate, the error-only signal, and the part
+#: of the listening output the random edge jitter makes (``jitter_error``, see
+#: :meth:`Chain.process`).
+KEEP_CHOICES = ("listening", "modulator", "analog", "error", "jitter_error")
+#: The outputs at the listening rate: aligned and flushed by :meth:`Chain.stream`.
+_LISTENING_RATE = ("listening", "error", "jitter_error")
 
 #: The stages whose time :attr:`Chain.stage_seconds` adds up (summed over channels).
 STAGE_NAMES = ("upsample", "modulate", "output_stage", "reconstruct", "decimate", "error_path")
@@ -82,9 +86,12 @@ STAGE_NAMES = ("upsample", "modulate", "output_stage", "reconstruct", "decimate"
 MAX_BLOCK_MODULATOR_SAMPLES = 1 << 18
 
 #: Each worker runs its block through the stages in pieces of at most this many modulator
-#: samples: a piece (512 kB of float64) stays in the core's cache from one stage to the next.
-#: On this project's 2-core machine 2**16 ran the default chain about 25 % faster than 2**18.
-CACHE_PIECE_MODULATOR_SAMPLES = 1 << 16
+#: samples: a piece (1 MB of float64) stays in the core's cache (2 MB of L2 a core here) from
+#: one stage to the next. On this project's 2-core machine 2**16 ran the default chain about
+#: 25 % faster than 2**18; 2**17 ran 10 s of stereo through one thread 4-9 % faster than
+#: 2**16 (the shipped PDM, the default and the 17-level NRZ profile, issue 12): every piece
+#: costs about 0.1 ms of call overhead in the five stages.
+CACHE_PIECE_MODULATOR_SAMPLES = 1 << 17
 
 #: The AES17 test frequency, used for calibration.
 _CAL_FREQ_HZ = 997.0
@@ -295,6 +302,10 @@ class Chain:
                 self._switched = _switched_filter_fn(profile, float(self.modulator_rate_hz))
         if self._jitter is not None:  # an early edge changes the frame before it
             self.latency_s += 1.0 / self.modulator_rate_hz
+        # keep="jitter_error": the same edge stage with its random jitter taken out
+        self._steady_edges = None
+        if self._jitter is not None and self._jitter.rms_s > 0.0:
+            self._steady_edges = self._jitter.without_random_jitter()
         self.stage_seconds = dict.fromkeys(STAGE_NAMES, 0.0)
         n_threads = threads if threads is not None else min(self.channels, os.cpu_count() or 1)
         self._threads = max(1, int(n_threads))
@@ -454,7 +465,7 @@ class Chain:
             out, st = self._channel_piece(x[start : start + step], st, keep)
             outs.append(out)
         merged = {}
-        for name in ("listening", "modulator", "analog", "error"):
+        for name in ("listening", "modulator", "analog", "error", "jitter_error"):
             parts = [o[name] for o in outs]
             merged[name] = None if parts[0] is None else np.concatenate(parts)
         for name in ("dropped", "stretched"):
@@ -502,9 +513,15 @@ class Chain:
 
             wf = apply_supply_ripple(wf, first_frame=supply_s or 0, **self._supply_ripple)
             supply_s = (supply_s or 0) + y.size
-        jit_s = st.jitter
+        jit_s, steady_s, jitter_part = st.jitter, st.steady_edges, None
         if self._jitter is not None:  # exact frame means of the jittered edges, a frame late
+            plain_wf = wf
             wf, jit_s = self._jitter.process_waveform(wf, jit_s)
+            if "jitter_error" in keep:  # what the random displacements alone change
+                steady, steady_s = self._steady_edges.process_waveform(plain_wf, steady_s)
+                jitter_part = PulseWaveform._trusted(
+                    wf.levels - steady.levels, wf.ticks, wf.ticks_per_frame, wf.frame_rate_hz
+                )
         if wf is not None and self._switched is not None:  # source resistance per segment
             analog, squares, filt_s = self._switched(wf, y, st.analog)
             fir_s = st.fir
@@ -521,9 +538,18 @@ class Chain:
         raw, down_s = self._downsampler.process(analog, st.downsampler, check_finite=False)
         listening = (raw - self._listening_offset) / self.gain
         t5 = clock()
-        error = None
+        error = jitter_error = None
         new = _ChannelState(up_s, mod_s, out_s, fir_s, filt_s, down_s, prev)
-        new = new._replace(jitter=jit_s, noise=noise_s, supply_frames=supply_s)
+        new = new._replace(
+            jitter=jit_s, noise=noise_s, supply_frames=supply_s, steady_edges=steady_s
+        )
+        if jitter_part is not None:  # linear stages: the difference through its own copies
+            part, jfir_s, jfilt_s = self._reconstruct(jitter_part, st.jitter_fir, st.jitter_analog)
+            part_raw, jdown_s = self._downsampler.process(
+                part, st.jitter_downsampler, check_finite=False
+            )
+            jitter_error = part_raw / self.gain  # a difference: no static offset
+            new = new._replace(jitter_fir=jfir_s, jitter_analog=jfilt_s, jitter_downsampler=jdown_s)
         if "error" in keep:
             ideal_wf, stf_s = self._ideal_waveform(xu, wf, st.ideal_stf)
             if self._jitter is not None:  # the same one-frame delay as the jittered output
@@ -548,6 +574,7 @@ class Chain:
             "modulator": y if "modulator" in keep else None,
             "analog": (analog - self._static_offset) / self.gain if "analog" in keep else None,
             "error": error,
+            "jitter_error": jitter_error,
             "dropped": dropped,
             "stretched": stretched,
             "switches": switches,
@@ -562,7 +589,7 @@ class Chain:
         One segment per frame, through the output stage's static map (gain and offset), on
         the same tick grid as the real waveform.
         """
-        from audiodsm.stages.output_stage import PulseWaveform
+        from audiodsm.stages.output_stage import _ONE_TICK, PulseWaveform
 
         if self._stf is None:
             ideal = xu
@@ -575,13 +602,13 @@ class Chain:
             ideal, stf_state = lfilter(num, den, xu, zi=stf_state)
         levels = (self.offset + self.stage_gain * ideal)[:, None]
         tpf = wf.ticks_per_frame if wf is not None else 1  # one segment a frame either way
-        ticks = np.full((xu.size, 1), tpf, dtype=np.int64)
-        waveform = PulseWaveform(
-            levels=levels,
-            ticks=ticks,
-            ticks_per_frame=tpf,
-            frame_rate_hz=float(self.modulator_rate_hz),
-        )
+        if tpf == 1:
+            ticks = _ONE_TICK[: xu.size]
+        else:
+            ticks = np.full((xu.size, 1), tpf, dtype=np.int64)
+        # valid by construction: one segment of the whole frame, finite levels of a finite
+        # input through a stable filter
+        waveform = PulseWaveform._trusted(levels, ticks, tpf, float(self.modulator_rate_hz))
         return waveform, stf_state
 
     # -- blocks ---------------------------------------------------------------------------------
@@ -608,7 +635,14 @@ class Chain:
         state : ChainState, optional
             From the previous call; None starts at rest.
         keep : sequence of str, keyword-only
-            Outputs to return, from :data:`KEEP_CHOICES`.
+            Outputs to return, from :data:`KEEP_CHOICES`. ``"jitter_error"`` is the part of
+            the listening output that the random edge jitter (``impairments.jitter_rms_s``)
+            makes: the edge stage's output minus the same stage's output with the random
+            displacements taken out (its other edge impairments left in), through the same
+            linear stages (semi-digital FIR, analog filter, decimator) and divided by the gain.
+            Where the edge error is linear in the displacements (one-segment frames without
+            sinusoidal jitter or edge ramps), the output with the random jitter scaled by
+            ``k`` is ``listening + (k - 1) * jitter_error`` to rounding.
 
         Returns
         -------
@@ -618,10 +652,22 @@ class Chain:
         Raises
         ------
         ParameterError
-            Wrong shape, NaN/Inf, or (with ``input.over_full_scale = "refuse"``) a sample
-            beyond ±1.0.
+            Wrong shape, NaN/Inf, (with ``input.over_full_scale = "refuse"``) a sample
+            beyond ±1.0, or ``jitter_error`` asked of a chain without random edge jitter or
+            with a filter that follows the switches.
         """
         keep = _check_keep(keep)
+        if "jitter_error" in keep and (
+            self._steady_edges is None
+            or self._switched is not None
+            or self._pwm_dead_time is not None
+        ):
+            raise ParameterError(
+                "keep",
+                "jitter_error",
+                "a chain with random edge jitter and a linear filter (no on-resistance or "
+                "dead time)",
+            )
         x = self._check_block(x)
         if state is None:
             state = self.initial_state()
@@ -707,6 +753,7 @@ class Chain:
             modulator=_stack(outs, "modulator"),
             analog=_stack(outs, "analog"),
             error=_stack(outs, "error"),
+            jitter_error=_stack(outs, "jitter_error"),
         )
         return block, replace(state, channels=new_channels, stats=stats)
 
@@ -735,8 +782,9 @@ class Chain:
             Consecutive input blocks, each ``(n, channels)``.
         keep : sequence of str, keyword-only
             Outputs to yield (see :data:`KEEP_CHOICES`). Only the listening-rate outputs
-            (``listening``, ``error``) are aligned and flushed; ``modulator`` and ``analog``
-            come raw (latency included) and only for the input blocks, not the flush.
+            (``listening``, ``error``, ``jitter_error``) are aligned and flushed;
+            ``modulator`` and ``analog`` come raw (latency included) and only for the input
+            blocks, not the flush.
         state : ChainState, optional
             A starting state; None starts at rest.
 
@@ -766,13 +814,16 @@ class Chain:
             need_out = want - n_out + state.to_skip
             frames = math.ceil(need_out * self.rate_hz / self.listening_rate_hz) + 1
             frames = min(frames, self.block_frames)
-            flush_keep = tuple(k for k in keep if k in ("listening", "error")) or ("listening",)
+            flush_keep = tuple(k for k in keep if k in _LISTENING_RATE) or ("listening",)
             block, state = self.process(np.zeros((frames, self.channels)), state, keep=flush_keep)
             block, state = self._trim(block, state)
             take = min(block.listening.shape[0], want - n_out)
             block = ChainBlock(
                 listening=block.listening[:take],
                 error=block.error[:take] if block.error is not None else None,
+                jitter_error=(
+                    block.jitter_error[:take] if block.jitter_error is not None else None
+                ),
             )
             n_out += take
             # the flush is not input: keep the input-frame count of the real input
@@ -791,6 +842,7 @@ class Chain:
             block,
             listening=block.listening[drop:],
             error=block.error[drop:] if block.error is not None else None,
+            jitter_error=block.jitter_error[drop:] if block.jitter_error is not None else None,
         )
         return block, replace(state, to_skip=skip - drop)
 
@@ -818,6 +870,10 @@ class _ChannelState(NamedTuple):
     noise: object = None
     ideal_held: float | None = None
     supply_frames: int | None = None  # frames since the start (the supply ripple's time)
+    steady_edges: object = None  # keep="jitter_error": the edge stage without random jitter,
+    jitter_fir: object = None  # and the FIR, analog filter and downsampler of the difference
+    jitter_analog: object = None
+    jitter_downsampler: object = None
 
 
 _POOLS: dict[tuple[int, int], ThreadPoolExecutor] = {}
@@ -894,6 +950,7 @@ def _concat_blocks(parts, keep, channels) -> ChainBlock:
         modulator=cat("modulator"),
         analog=cat("analog"),
         error=cat("error"),
+        jitter_error=cat("jitter_error"),
     )
 
 
@@ -920,7 +977,8 @@ def run_chain(
         Outputs to keep, from :data:`KEEP_CHOICES`: ``"listening"`` (calibrated output at the
         listening rate), ``"modulator"`` (the modulator's levels), ``"analog"`` (calibrated
         reconstructed output at the modulator rate, for out-of-band noise), ``"error"``
-        (listening output minus the ideal, no gain).
+        (listening output minus the ideal, no gain), ``"jitter_error"`` (the part of the
+        listening output the random edge jitter makes, see :meth:`Chain.process`).
     listening_rate_hz : int, optional
         Default: the profile's listening rate (0 there means the input rate).
     align : bool, keyword-only
@@ -987,4 +1045,5 @@ def run_chain(
         aligned=bool(align),
         gain=chain.gain,
         stats=stats,
+        jitter_error=block.jitter_error,
     )

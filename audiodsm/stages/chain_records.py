@@ -97,14 +97,15 @@ class ChainState:
 class ChainBlock:
     """What one block of input produced; fields not asked for are None.
 
-    ``listening`` and ``error`` are ``(n, channels)`` at the listening rate; ``modulator``
-    and ``analog`` are ``(n * osr, channels)`` at the modulator rate.
+    ``listening``, ``error`` and ``jitter_error`` are ``(n, channels)`` at the listening
+    rate; ``modulator`` and ``analog`` are ``(n * osr, channels)`` at the modulator rate.
     """
 
     listening: np.ndarray | None = None
     modulator: np.ndarray | None = None
     analog: np.ndarray | None = None
     error: np.ndarray | None = None
+    jitter_error: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -133,6 +134,9 @@ class ChainResult:
         Static gain divided out by the calibration (volts per full-scale unit at 997 Hz).
     stats : ChainStats
         Counts: clipped inputs, overloads, state peaks, dropped/stretched pulses, switching.
+    jitter_error : ndarray or None
+        The part of ``listening`` the random edge jitter makes (``Chain.process``, keep
+        ``"jitter_error"``), ``(n, channels)`` at ``listening_rate_hz``.
     """
 
     listening: np.ndarray | None
@@ -146,6 +150,7 @@ class ChainResult:
     aligned: bool
     gain: float
     stats: ChainStats
+    jitter_error: np.ndarray | None = None
 
     @property
     def switching_rate_hz(self) -> np.ndarray:

@@ -55,6 +55,7 @@ References
 
 from __future__ import annotations
 
+import copy
 import math
 from dataclasses import dataclass
 
@@ -171,6 +172,16 @@ class EdgeJitter:
         self.seed = int(seed)
         self.rest_level = float(rest_level)
         self.top_level = float(top_level)
+
+    def without_random_jitter(self) -> EdgeJitter:
+        """The same stage with the white random displacements taken out (``rms_s = 0``).
+
+        Its output, subtracted from this stage's, is the error of the random displacements
+        alone (``Chain.process`` keeps it as ``jitter_error``).
+        """
+        twin = copy.copy(self)
+        twin.rms_s = 0.0
+        return twin
 
     @property
     def _plain(self) -> bool:

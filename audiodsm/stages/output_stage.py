@@ -261,7 +261,12 @@ def _check_volts(value, name) -> float:
 
 
 def nrz_waveform(
-    y, *, levels: int, frame_rate_hz: float, lsb_volts: float | None = None
+    y,
+    *,
+    levels: int,
+    frame_rate_hz: float,
+    lsb_volts: float | None = None,
+    validate: bool = True,
 ) -> PulseWaveform:
     """A multi-level DAC: each level held for one frame (non-return-to-zero).
 
@@ -277,16 +282,25 @@ def nrz_waveform(
         Voltage of one step between adjacent levels. The DAC's output is the centred code times
         the LSB, ``(k - (levels - 1) / 2) * lsb_volts``, i.e. ``y * (levels - 1) / 2 *
         lsb_volts``. None keeps full-scale units (an LSB of ``2 / (levels - 1)``).
+    validate : bool, optional
+        Check that every value is finite and on the grid (default). ``False`` is for a caller
+        that holds a quantizer's own output (the chain, at the modulator rate): the codes are
+        rounded the same way and give the same levels, without the checks' passes over the
+        block.
 
     Returns
     -------
     PulseWaveform
         One segment per frame, ``ticks_per_frame = 1``.
     """
-    arr = _as_channel(y)
     rate = _check_rate(frame_rate_hz)
     n = _check_levels(levels)
-    codes = level_codes(arr, levels=n)
+    if validate:
+        arr = _as_channel(y)
+        codes = level_codes(arr, levels=n)
+    else:  # level_codes' rounding; integers held exactly as floats, so the same levels
+        arr = np.asarray(y, dtype=np.float64)
+        codes = np.rint((arr + 1.0) * 0.5 * (n - 1))
     lsb = 2.0 / (n - 1) if lsb_volts is None else _check_volts(lsb_volts, "lsb_volts")
     out = (codes - (n - 1) / 2.0) * lsb
     return PulseWaveform._trusted(out.reshape(-1, 1), _ONE_TICK[: arr.size], 1, rate)

@@ -71,6 +71,8 @@ class _Model:
 _MODELS: dict[bytes, _Model] = {}
 _TABLES: dict[tuple, tuple] = {}
 _POWER_TABLES: dict[tuple, np.ndarray] = {}
+#: The modal loop's coefficient arrays per (model, tick length), made once (not per block).
+_MODAL: dict[tuple, tuple] = {}
 
 
 def _model(filt: AnalogFilter) -> _Model:
@@ -345,28 +347,41 @@ def filter_waveform(
         phis, gammas, wx, wu = _expm_tables(model, dt, lengths, tpf)
         index = np.searchsorted(lengths, waveform.ticks)
     if waveform.n_segments == 1 and tpf == 1 and model.modal:
-        _run_modal(waveform.levels[:, 0], model, phis, gammas, wx, wu, x, y)
+        coeffs = _MODAL.get((model.key, dt))
+        if coeffs is None:
+            coeffs = _modal_coefficients(model, phis, gammas, wx, wu)
+            if len(_MODAL) > 64:
+                _MODAL.clear()
+            _MODAL[(model.key, dt)] = coeffs
+        _run_modal(waveform.levels[:, 0], coeffs, x, y)
     else:
         _waveform_kernels.frame_means_segments(waveform.levels, index, phis, gammas, wx, wu, x, y)
     return y, _new_state(x, model)
 
 
-def _run_modal(u, model, phis, gammas, wx, wu, x, y):
+def _modal_coefficients(model, phis, gammas, wx, wu):
+    """The one-tick tables split into the modal loop's real modes and pairs (never written)."""
     nr = model.n_real
-    m = x.shape[0]
+    m = phis.shape[1]
     phi1, gam1, w1 = phis[1], gammas[1], wx[1]
-    real_phi = np.ascontiguousarray(np.diag(phi1)[:nr])
     idx = np.arange(nr, m, 2)
-    pair_phi = np.ascontiguousarray(np.stack([phi1[idx, idx], phi1[idx + 1, idx]], axis=1))
-    pair_gamma = np.ascontiguousarray(gam1[nr:].reshape(-1, 2))
-    pair_w = np.ascontiguousarray(w1[nr:].reshape(-1, 2))
-    real_gamma = np.ascontiguousarray(gam1[:nr])
-    real_w = np.ascontiguousarray(w1[:nr])
+    arrays = (
+        np.ascontiguousarray(np.diag(phi1)[:nr]),  # real_phi
+        np.ascontiguousarray(gam1[:nr]),  # real_gamma
+        np.ascontiguousarray(w1[:nr]),  # real_w
+        np.ascontiguousarray(np.stack([phi1[idx, idx], phi1[idx + 1, idx]], axis=1)),
+        np.ascontiguousarray(gam1[nr:].reshape(-1, 2)),  # pair_gamma
+        np.ascontiguousarray(w1[nr:].reshape(-1, 2)),  # pair_w
+    )
+    return (nr, *arrays, float(wu[1]))  # the same arrays (and flags) the loop always got
+
+
+def _run_modal(u, coeffs, x, y):
+    nr, real_phi, real_gamma, real_w, pair_phi, pair_gamma, pair_w, w_u = coeffs
     xr = np.ascontiguousarray(x[:nr])
     xp = np.ascontiguousarray(x[nr:].reshape(-1, 2))
     u = np.ascontiguousarray(u)
     n_pairs = xp.shape[0]
-    w_u = float(wu[1])
     if nr == 0 and n_pairs == 1:
         _waveform_kernels.frame_means_modal_pair(u, pair_phi, pair_gamma, pair_w, w_u, xp, y)
     elif nr == 1 and n_pairs == 1:
