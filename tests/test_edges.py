@@ -560,6 +560,63 @@ def test_sine_jitter_from_anchors_stays_at_the_exact_sine():
     np.testing.assert_array_equal(np.concatenate(parts), whole)
 
 
+def test_pwm_sine_jitter_from_anchors_stays_at_the_exact_sine():
+    # The PWM edges' sine (stages/_element_kernels.py, add_tick_sine_shifts) comes from
+    # frame anchors and a tick table by angle sums. References: the sine of the exact phase
+    # (the float ratio taken as an exact fraction, Python's fractions module; its sine then
+    # rounds once, about 1e-16), and the per-edge sine of the phase in floating point the
+    # stage used before, 2 pi (((start + i) r + t r / ticks) mod 1).
+    import math
+    from fractions import Fraction
+
+    from audiodsm.stages import _element_kernels as kernels
+
+    wf = _pwm(1200)
+    levels = np.ascontiguousarray(wf.levels)
+    ticks = np.ascontiguousarray(wf.ticks, dtype=np.int64)
+    tpf = wf.ticks_per_frame
+    places, prev = [], 0.0  # (frame, tick) of every edge, as the stage counts them
+    for i in range(wf.n_frames):
+        t = 0
+        for j in range(wf.n_segments):
+            if ticks[i, j]:
+                if levels[i, j] != prev:
+                    places.append((i, t))
+                    prev = levels[i, j]
+                t += int(ticks[i, j])
+    ratio, peak = 1000.0 / (RATE / 4), 0.3  # a 1 kHz sine on a frame rate of RATE / 4
+    exact_ratio = Fraction(ratio)
+    for start in (0, 1, 1023, 1024, 3_000_017):
+        got = np.zeros(len(places))
+        kernels.add_tick_sine_shifts(levels, ticks, 0.0, start, tpf, peak, ratio, got)
+        exact = [
+            peak
+            * math.sin(2 * math.pi * float(((start + i) * exact_ratio + t * exact_ratio / tpf) % 1))
+            for i, t in places
+        ]
+        # near the start within a few roundings (2.7e-15 seen); 3 million frames on, the
+        # anchor's own phase (a product near 4e3 cycles) rounds to about 5e-13 cycles
+        bound = 5e-15 if start < 5000 else 5e-12
+        np.testing.assert_allclose(got, exact, rtol=0, atol=bound * peak)
+        if start < 5000:
+            i, t = np.array(places).T
+            per_edge = peak * np.sin(
+                2 * np.pi * np.mod((start + i) * ratio + t * (ratio / tpf), 1.0)
+            )
+            np.testing.assert_allclose(got, per_edge, rtol=0, atol=2e-14 * peak)
+    # any split into blocks gives the same numbers (the state carried: the level before)
+    whole = np.zeros(len(places))
+    kernels.add_tick_sine_shifts(levels, ticks, 0.0, 777, tpf, peak, ratio, whole)
+    first = sum(1 for i, _ in places if i < 500)
+    parts = [np.zeros(first), np.zeros(len(places) - first)]
+    kernels.add_tick_sine_shifts(levels[:500], ticks[:500], 0.0, 777, tpf, peak, ratio, parts[0])
+    before = levels[:500][ticks[:500] > 0][-1]
+    kernels.add_tick_sine_shifts(
+        levels[500:], ticks[500:], float(before), 1277, tpf, peak, ratio, parts[1]
+    )
+    np.testing.assert_array_equal(np.concatenate(parts), whole)
+
+
 def test_return_to_zero_counts_two_switchings_a_frame():
     # a single-bit stream never rests at 0: with return to zero it switches out of 0 and
     # back in every frame, twice the frame rate

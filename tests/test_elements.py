@@ -38,6 +38,18 @@ def _splitmix(state):
     return state, z ^ (z >> 31)
 
 
+def _below(state, bound):
+    """Lemire's bounded draw as written in his paper (ACM TOMACS 29(1), 2019, 32-bit form):
+    ``m = x * bound`` with ``x`` the top 32 bits of a splitmix64 output; redraw while the low
+    half of ``m`` is below ``(2**32 - bound) % bound``; the draw is ``m >> 32``."""
+    reject = (2**32 - bound) % bound
+    while True:
+        state, z = _splitmix(state)
+        m = (z >> 32) * bound
+        if m % 2**32 >= reject:
+            return state, m >> 32
+
+
 def _twin(elements, codes):
     """Each method from its published description, one element at a time."""
     e = [float(v) for v in elements.errors]
@@ -57,8 +69,8 @@ def _twin(elements, codes):
         elif m == "random":
             chosen = []
             for j in range(k):
-                rng, r = _splitmix(rng)
-                r = j + r % (n_el - j)
+                rng, r = _below(rng, n_el - j)
+                r += j
                 order[j], order[r] = order[r], order[j]
                 chosen.append(order[j])
         elif m == "data-weighted" or (m == "bidirectional-weighted" and n % 2 == 0):
@@ -84,6 +96,46 @@ def test_kernels_match_twins(method):
     el = UnitElements(LEVELS, method, mismatch=0.01, seed=7)
     fast, _ = el.process(codes)
     np.testing.assert_allclose(fast, _twin(el, codes), rtol=0, atol=1e-13)
+
+
+def test_bounded_draws_are_uniform_over_a_small_range():
+    # chi-square goodness of fit against the uniform distribution (scipy.stats.chisquare);
+    # 7 and 13 do not divide 2**32, so a plain multiply-shift or modulo would be biased (by
+    # about 1e-9 here, far below what a test sees: the next test shows the rejection step)
+    from scipy.stats import chisquare
+
+    for bound, seed in ((7, 1), (13, 2), (16, 3)):
+        rng = np.array([seed], dtype=np.uint64)
+        draws = np.array([_k.uniform_below(rng, bound) for _ in range(70000)])
+        assert draws.min() == 0 and draws.max() == bound - 1
+        counts = np.bincount(draws, minlength=bound)
+        assert chisquare(counts).pvalue > 1e-3, (bound, counts)
+
+
+def test_bounded_draws_reject_exactly_the_biased_products():
+    # bound = 3 * 2**30: without the rejection step of Lemire's method (ACM TOMACS 29(1),
+    # 2019) the product x * bound / 2**32 = 3 x / 4 hits every multiple of 3 twice as often
+    # as the other values (x = 4m and 4m + 1 both give 3m), so draws % 3 == 0 would come
+    # half of the time instead of a third; the rejection of low halves below
+    # (2**32 - bound) % bound = 2**30 (x = 0 mod 4) removes exactly the extra ones.
+    from scipy.stats import chisquare
+
+    bound = 3 << 30
+    rng = np.array([11], dtype=np.uint64)
+    draws = np.array([_k.uniform_below(rng, bound) for _ in range(30000)])
+    assert draws.max() < bound
+    assert chisquare(np.bincount(draws % 3, minlength=3)).pvalue > 1e-3
+    # and the kernel is the paper's algorithm, draw for draw, redraws included
+    state, twin = 11, []
+    for _ in range(2000):
+        state, r = _below(state, bound)
+        twin.append(r)
+    np.testing.assert_array_equal(draws[:2000], twin)
+    # it redrew as often as the twin (about a quarter of the draws here): same state after
+    rng = np.array([11], dtype=np.uint64)
+    for _ in range(2000):
+        _k.uniform_below(rng, bound)
+    assert int(rng[0]) == state
 
 
 @pytest.mark.parametrize("levels", [3, 5, 9, 10, 13, 17])

@@ -132,13 +132,39 @@ def select_thermometer(codes, half, table, out):
         out[n] = (k - half) + table[k]
 
 
+_LOW32 = np.uint64(0xFFFFFFFF)
+_TWO32 = np.uint64(1 << 32)
+
+
+@njit(cache=True, nogil=True)
+def uniform_below(rng, bound):
+    """A uniform integer in ``[0, bound)``, ``0 < bound < 2**32``, from the state ``rng``.
+
+    Lemire's multiply-and-shift method with its exact rejection step (D. Lemire, "Fast random
+    integer generation in an interval", ACM TOMACS 29(1), 2019, the 32-bit algorithm): the
+    high 32 bits ``x`` of a splitmix64 output times ``bound`` is a 64-bit product ``m``;
+    ``m >> 32`` is the draw unless the low half of ``m`` falls below ``(2**32 - bound) mod
+    bound``, then ``x`` is drawn again. No modulo bias at all, and no division but in the
+    rare case where the low half is below ``bound`` (probability ``bound / 2**32``).
+    """
+    s = np.uint64(bound)
+    m = (_next_random(rng) >> np.uint64(32)) * s
+    low = m & _LOW32
+    if low < s:
+        reject = (_TWO32 - s) % s
+        while low < reject:
+            m = (_next_random(rng) >> np.uint64(32)) * s
+            low = m & _LOW32
+    return np.int64(m >> np.uint64(32))
+
+
 @njit(cache=True, nogil=True)
 def select_random(codes, half, errors, rng, order, out):
     """Random selection: each sample, ``k`` elements drawn without replacement.
 
-    A partial Fisher-Yates shuffle of the persistent index array ``order`` (state), with
-    splitmix64 (state ``rng``, one uint64) as the source; the modulo bias of ``r % m`` for
-    ``m <= 65536`` is below 4e-15 and ignored.
+    A partial Fisher-Yates shuffle of the persistent index array ``order`` (state), the swap
+    partner of place ``j`` drawn uniformly from ``j .. N - 1`` by :func:`uniform_below`
+    (splitmix64, state ``rng``, one uint64; exact, without modulo bias).
     """
     n_el = errors.size
     total = 0.0
@@ -148,7 +174,7 @@ def select_random(codes, half, errors, rng, order, out):
         k = codes[n]
         acc = 0.0
         for j in range(k):
-            r = j + np.int64(_next_random(rng) % np.uint64(n_el - j))
+            r = j + uniform_below(rng, n_el - j)
             t = order[j]
             order[j] = order[r]
             order[r] = t
@@ -350,29 +376,24 @@ def relaxation_noise(draws, start, frame_std, poles, gains, holds, relax, out):
 
 
 @njit(cache=True, nogil=True)
-def jittered_frame_means(levels, shifts, start, sine_peak, sine_ratio, held, out):
+def jittered_frame_means(levels, shifts, held, out):
     """Exact frame means of a one-segment-per-frame waveform whose edges are displaced.
 
     The edge at the start of frame ``n`` (from ``levels[n-1]`` to ``levels[n]``) moves by
-    ``shifts[n] + sine_peak * sin(2 pi ((start + n) sine_ratio mod 1))`` frames (positive:
-    later), clipped to ``[-1/2, 1/2]``; ``start`` is the index of the block's first edge.
-    A late edge leaves the first
-    ``shift`` of frame ``n`` at the old level; an early one puts the last ``-shift`` of frame
-    ``n - 1`` at the new level. Either way the area moved is ``-(levels[n] - levels[n-1]) *
-    shift``: it changes the mean of frame ``n`` (late) or ``n - 1`` (early). Frame ``n - 1``
-    is finished only when edge ``n`` is known, so the output runs one frame behind:
-    ``out[n]`` is the mean of frame ``n - 1``. ``held`` = (level of the frame held back, its
-    mean so far); updated in place.
+    ``shifts[n]`` frames (positive: later; the random and the sinusoidal parts added
+    beforehand, :func:`add_sine_shifts`), clipped to ``[-1/2, 1/2]``. A late edge leaves the
+    first ``shift`` of frame ``n`` at the old level; an early one puts the last ``-shift`` of
+    frame ``n - 1`` at the new level. Either way the area moved is ``-(levels[n] -
+    levels[n-1]) * shift``: it changes the mean of frame ``n`` (late) or ``n - 1`` (early).
+    Frame ``n - 1`` is finished only when edge ``n`` is known, so the output runs one frame
+    behind: ``out[n]`` is the mean of frame ``n - 1``. ``held`` = (level of the frame held
+    back, its mean so far); updated in place.
     """
     prev = held[0]
     pending = held[1]
     for n in range(levels.size):
         level = levels[n]
-        shift = shifts[n]
-        if sine_peak != 0.0:
-            cycles = ((start + n) * sine_ratio) % 1.0  # exact enough: indices below 2**53
-            shift += sine_peak * np.sin(2.0 * np.pi * cycles)
-        shift = min(max(shift, -0.5), 0.5)
+        shift = min(max(shifts[n], -0.5), 0.5)
         moved = -(level - prev) * shift
         mean = level
         if shift > 0.0:
@@ -443,13 +464,13 @@ def _area_before(shift, ramp):
 
 
 @njit(cache=True, nogil=True)
-def edge_slot_means(levels, shifts, start, sine_peak, sine_ratio, rise, fall, top, rz, held, out):
+def edge_slot_means(levels, shifts, rise, fall, top, rz, held, out):
     """Exact slot means of a PDM / NRZ / RZ output whose edges ramp and are displaced.
 
     A frame is ``S`` slots of equal length (``S = 1``: NRZ, the frame's level; ``S = 2``:
     return-to-zero, the level then 0). Every slot starts with an edge, displaced by
-    ``shifts[e] + sine_peak sin(2 pi ((start + e) sine_ratio mod 1))`` slots (``e`` the
-    block's edge index, ``start`` the first edge's global index), clipped to ``[-1/2, 1/2]``.
+    ``shifts[e]`` slots (``e`` the block's edge index; random and sinusoidal parts added
+    beforehand, :func:`add_sine_shifts`), clipped to ``[-1/2, 1/2]``.
     An edge is an up part (ramp of ``rise`` slots) and a down part (``fall`` slots): NRZ, the
     net step (up when positive); RZ, the unit elements' parts, the ``k`` elements at ``+a``
     and the ``N - k`` at ``-a`` switching apart (``top = N a``: up ``(L + top) / 2`` and down
@@ -470,11 +491,7 @@ def edge_slot_means(levels, shifts, start, sine_peak, sine_ratio, rise, fall, to
         level = levels[i]
         for s in range(n_slots):
             e = i * n_slots + s
-            shift = shifts[e]
-            if sine_peak != 0.0:
-                cycles = ((start + e) * sine_ratio) % 1.0
-                shift += sine_peak * np.sin(2.0 * np.pi * cycles)
-            shift = min(max(shift, -0.5), 0.5)
+            shift = min(max(shifts[e], -0.5), 0.5)
             if not rz:
                 step = level - prev
                 up = step if step > 0.0 else 0.0
@@ -508,27 +525,70 @@ def edge_slot_means(levels, shifts, start, sine_peak, sine_ratio, rise, fall, to
 
 
 @njit(cache=True, nogil=True)
-def jittered_segments(
-    levels,
-    ticks,
-    shifts,
-    start,
-    ticks_per_frame,
-    sine_peak,
-    sine_ratio,
-    held_levels,
-    held_ticks,
-    held,
-    out_levels,
-    out_ticks,
-):
+def add_tick_sine_shifts(levels, ticks, prev, start, ticks_per_frame, peak, ratio, shifts):
+    """Add the sinusoidal jitter of every PWM edge to ``shifts`` (in place, in edge order).
+
+    The edges are those of :func:`jittered_segments` (level changes between segments of
+    nonzero length, ``prev`` the level before the block). An edge on tick ``t`` of frame
+    ``i`` gets ``peak sin(2 pi (((start + i) ratio + t ratio / ticks_per_frame) mod 1))``
+    (``ratio``: sine cycles a frame, ``start``: the block's first global frame). The frame's
+    sine and cosine come from exact anchors every :data:`SINE_ANCHOR` frames by the angle sum
+    (as in :func:`add_sine_shifts`), the tick's part from a table of ``ticks_per_frame``
+    angles by one more angle sum: no sine per edge, the same numbers for any block split,
+    within a few 1e-15 of the peak of the sine of the exact phase near the start; further
+    on, the anchor's phase product rounds (tests/test_edges.py, docs/impairments.md).
+    """
+    n = levels.shape[0]
+    n_seg = levels.shape[1]
+    if n == 0:
+        return
+    first = start % SINE_ANCHOR
+    table = min(SINE_ANCHOR, first + n)
+    cos_m = np.empty(table)
+    sin_m = np.empty(table)
+    for m in range(table):
+        y = 2.0 * np.pi * ((m * ratio) % 1.0)
+        cos_m[m] = np.cos(y)
+        sin_m[m] = np.sin(y)
+    tick_ratio = ratio / ticks_per_frame
+    cos_t = np.empty(ticks_per_frame)
+    sin_t = np.empty(ticks_per_frame)
+    for t in range(ticks_per_frame):
+        z = 2.0 * np.pi * ((t * tick_ratio) % 1.0)
+        cos_t[t] = np.cos(z)
+        sin_t[t] = np.sin(z)
+    s_a = c_a = 0.0
+    e = 0
+    for i in range(n):
+        frame = start + i
+        m = frame % SINE_ANCHOR
+        if i == 0 or m == 0:
+            phase = 2.0 * np.pi * (((frame - m) * ratio) % 1.0)
+            s_a = peak * np.sin(phase)
+            c_a = peak * np.cos(phase)
+        s_f = s_a * cos_m[m] + c_a * sin_m[m]
+        c_f = c_a * cos_m[m] - s_a * sin_m[m]
+        t = 0
+        for j in range(n_seg):
+            k = ticks[i, j]
+            if k == 0:
+                continue
+            level = levels[i, j]
+            if level != prev:
+                shifts[e] += s_f * cos_t[t] + c_f * sin_t[t]
+                e += 1
+                prev = level
+            t += k
+
+
+@njit(cache=True, nogil=True)
+def jittered_segments(levels, ticks, shifts, held_levels, held_ticks, held, out_levels, out_ticks):
     """Exact tick means of a PWM waveform whose every edge is displaced (in ticks).
 
     An edge is a level change between two consecutive segments of nonzero length (edges of
-    both legs at one tick share the clock edge, so they move together). It sits on a tick
-    ``t`` of frame ``i`` and moves by ``shifts[e]`` (consumed in order) plus ``sine_peak
-    sin(2 pi (((start + i) sine_ratio + t sine_ratio / ticks_per_frame) mod 1))`` ticks,
-    clipped to ``[-1/2, 1/2]``; ``start`` is the block's first global frame. The area moved,
+    both legs at one tick share the clock edge, so they move together). It moves by
+    ``shifts[e]`` ticks (consumed in order; the random and the sinusoidal parts added
+    beforehand, :func:`add_tick_sine_shifts`), clipped to ``[-1/2, 1/2]``. The area moved,
     ``-step * shift`` (tick units), lies inside the tick after the edge (late) or the tick
     before it (early). Every input segment ``j`` of ``k`` ticks becomes three output pieces
     ``3 j .. 3 j + 2``: its first tick, the ``k - 2`` ticks between, its last tick (``k = 1``:
@@ -549,9 +609,7 @@ def jittered_segments(
     cur = np.empty(n_out)
     cur_ticks = np.empty(n_out, np.int64)
     e = 0
-    step_ratio = sine_ratio / ticks_per_frame
     for i in range(n):
-        t = 0
         for j in range(n_seg):
             k = ticks[i, j]
             level = levels[i, j]
@@ -567,12 +625,8 @@ def jittered_segments(
                 continue
             level = levels[i, j]
             if level != prev:
-                shift = shifts[e]
+                shift = min(max(shifts[e], -0.5), 0.5)
                 e += 1
-                if sine_peak != 0.0:
-                    cycles = ((start + i) * sine_ratio + t * step_ratio) % 1.0
-                    shift += sine_peak * np.sin(2.0 * np.pi * cycles)
-                shift = min(max(shift, -0.5), 0.5)
                 moved = -(level - prev) * shift
                 if shift > 0.0:
                     cur[3 * j] += moved
@@ -583,7 +637,6 @@ def jittered_segments(
                 prev = level
             last_p = 3 * j + 2 if k > 1 else 3 * j
             in_cur = True
-            t += k
         for q in range(n_out):
             out_levels[i, q] = held_levels[q]
             out_ticks[i, q] = held_ticks[q]

@@ -254,15 +254,12 @@ class EdgeJitter:
             _k.add_sine_shifts(shift, st.frames * self.slots, peak, ratio)
         if self._plain:
             out = np.empty(levels.size)
-            _k.jittered_frame_means(levels, shift, st.frames, 0.0, ratio, held, out)
+            _k.jittered_frame_means(levels, shift, held, out)
         else:
             out = np.empty((levels.size, self.slots))
             _k.edge_slot_means(
                 levels,
                 shift,
-                st.frames * self.slots,
-                0.0,
-                ratio,
                 self.rise_s * self._slot_rate,
                 self.fall_s * self._slot_rate,
                 self.top_level,
@@ -326,22 +323,23 @@ class EdgeJitter:
         edges = int(np.count_nonzero(np.diff(on, prepend=prev) != 0.0)) if on.size else 0
         rng = np.array([st.generator], dtype=np.uint64)
         shift = self._random_shifts(edges, rng)
+        peak = self.sine_peak_s * self._slot_rate
+        if peak != 0.0:  # the sine from anchors, added to the random part edge by edge
+            _k.add_tick_sine_shifts(
+                levels,
+                ticks,
+                float(prev),
+                st.frames,
+                self.ticks_per_frame,
+                peak,
+                self.sine_hz / self.frame_rate_hz,
+                shift,
+            )
         held = np.array([prev, last_j], dtype=np.float64)
         out_levels = np.empty((n, 3 * n_seg))
         out_ticks = np.empty((n, 3 * n_seg), dtype=np.int64)
         _k.jittered_segments(
-            levels,
-            ticks,
-            shift,
-            st.frames,
-            self.ticks_per_frame,
-            self.sine_peak_s * self._slot_rate,
-            self.sine_hz / self.frame_rate_hz,
-            held_levels,
-            held_ticks,
-            held,
-            out_levels,
-            out_ticks,
+            levels, ticks, shift, held_levels, held_ticks, held, out_levels, out_ticks
         )
         new = JitterState(
             frames=st.frames + n,
