@@ -23,6 +23,7 @@ import re
 import shutil
 import tempfile
 import time
+from contextlib import contextmanager
 from pathlib import Path
 
 from audiodsm.errors import OutputError, ParameterError, StorageError
@@ -324,18 +325,29 @@ def _write_temp_beside(path: Path, write) -> Path:
     error of ``write``) is raised as it is.
     """
     fd, tmp = create_temp_file(path)
-    try:
+    with _removed_on_failure(tmp, path):
         with os.fdopen(fd, "wb") as fh:
             write(fh)
             fh.flush()
             os.fsync(fh.fileno())
+    return tmp
+
+
+@contextmanager
+def _removed_on_failure(tmp: Path, path):
+    """Remove the temporary file ``tmp`` when the block fails; name ``path`` in the error.
+
+    An ``OSError`` becomes a :class:`StorageError` naming ``path``; anything else (Ctrl-C, a
+    writer's own error) is raised as it is.
+    """
+    try:
+        yield
     except OSError as exc:
         tmp.unlink(missing_ok=True)
         raise StorageError(path, exc) from None
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
-    return tmp
 
 
 def replace_text_atomically(path, text: str) -> Path:
@@ -369,14 +381,8 @@ def replace_text_atomically(path, text: str) -> Path:
     _check_name_fits(p)
     data = text.encode("utf-8")
     tmp = _write_temp_beside(p, lambda fh: fh.write(data))
-    try:
+    with _removed_on_failure(tmp, p):
         os.replace(tmp, p)
-    except OSError as exc:
-        tmp.unlink(missing_ok=True)
-        raise StorageError(p, exc) from None
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
     return p
 
 
