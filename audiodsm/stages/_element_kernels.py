@@ -413,6 +413,18 @@ SINE_ANCHOR = 1024
 
 
 @njit(cache=True, nogil=True)
+def _angle_table(count, ratio):
+    """Cosines and sines of ``2 pi (m ratio mod 1)`` for ``m = 0 .. count - 1``."""
+    cos_m = np.empty(count)
+    sin_m = np.empty(count)
+    for m in range(count):
+        y = 2.0 * np.pi * ((m * ratio) % 1.0)
+        cos_m[m] = np.cos(y)
+        sin_m[m] = np.sin(y)
+    return cos_m, sin_m
+
+
+@njit(cache=True, nogil=True)
 def add_sine_shifts(shifts, start, peak, ratio):
     """Add ``peak sin(2 pi ((start + n) ratio mod 1))`` to ``shifts[n]`` (in place).
 
@@ -427,13 +439,8 @@ def add_sine_shifts(shifts, start, peak, ratio):
     if n == 0:
         return
     first = start % SINE_ANCHOR
-    table = min(SINE_ANCHOR, first + n)  # offsets 0 .. table-1 are used
-    cos_m = np.empty(table)
-    sin_m = np.empty(table)
-    for m in range(table):
-        y = 2.0 * np.pi * ((m * ratio) % 1.0)
-        cos_m[m] = np.cos(y)
-        sin_m[m] = np.sin(y)
+    # offsets 0 .. table-1 are used
+    cos_m, sin_m = _angle_table(min(SINE_ANCHOR, first + n), ratio)
     i = 0
     while i < n:
         index = start + i
@@ -543,20 +550,8 @@ def add_tick_sine_shifts(levels, ticks, prev, start, ticks_per_frame, peak, rati
     if n == 0:
         return
     first = start % SINE_ANCHOR
-    table = min(SINE_ANCHOR, first + n)
-    cos_m = np.empty(table)
-    sin_m = np.empty(table)
-    for m in range(table):
-        y = 2.0 * np.pi * ((m * ratio) % 1.0)
-        cos_m[m] = np.cos(y)
-        sin_m[m] = np.sin(y)
-    tick_ratio = ratio / ticks_per_frame
-    cos_t = np.empty(ticks_per_frame)
-    sin_t = np.empty(ticks_per_frame)
-    for t in range(ticks_per_frame):
-        z = 2.0 * np.pi * ((t * tick_ratio) % 1.0)
-        cos_t[t] = np.cos(z)
-        sin_t[t] = np.sin(z)
+    cos_m, sin_m = _angle_table(min(SINE_ANCHOR, first + n), ratio)
+    cos_t, sin_t = _angle_table(ticks_per_frame, ratio / ticks_per_frame)
     s_a = c_a = 0.0
     e = 0
     for i in range(n):
