@@ -165,6 +165,41 @@ def _leg_high(st, en, leg, half_tick2):
     return hi
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _add_segment_mean(acc, x, w, w_u, u):
+    """``acc + w_u u + w . x`` added term by term (the segment's share of the frame mean)."""
+    acc += w_u * u
+    for q in range(x.shape[0]):
+        acc += w[q] * x[q]
+    return acc
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _add_segment_square(sq, x, quad, u):
+    """``sq + z' Q z`` with ``z = [x; u]``, row by row (the segment's share of the mean square)."""
+    m = x.shape[0]
+    for r in range(m + 1):
+        zr = x[r] if r < m else u
+        row = quad[r, m] * u
+        for q in range(m):
+            row += quad[r, q] * x[q]
+        sq += zr * row
+    return sq
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _advance_state(x, tmp, phi, gamma, u):
+    """``x <- Phi x + Gamma u`` in place (``tmp``: scratch of the state's size)."""
+    m = x.shape[0]
+    for r in range(m):
+        v = gamma[r] * u
+        for q in range(m):
+            v += phi[r, q] * x[q]
+        tmp[r] = v
+    for r in range(m):
+        x[r] = tmp[r]
+
+
 @njit(cache=True, nogil=True)
 def pwm_dead_time_means(
     codes_a,
@@ -308,22 +343,9 @@ def pwm_dead_time_means(
             cf = 0
             if phis.shape[0] > 1:
                 cf = u_high_a if half_bridge else 2 * u_high_a + u_high_b
-            acc += wu[cf, kk] * u
-            for q in range(m):
-                acc += wx[cf, kk, q] * x[q]
-            for r in range(m + 1):
-                zr = x[r] if r < m else u
-                row = qs[cf, kk, r, m] * u
-                for q in range(m):
-                    row += qs[cf, kk, r, q] * x[q]
-                sq += zr * row
-            for r in range(m):
-                v = gammas[cf, kk, r] * u
-                for q in range(m):
-                    v += phis[cf, kk, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
+            acc = _add_segment_mean(acc, x, wx[cf, kk], wu[cf, kk], u)
+            sq = _add_segment_square(sq, x, qs[cf, kk], u)
+            _advance_state(x, tmp, phis[cf, kk], gammas[cf, kk], u)
             t = t_next
         y[i] = acc
         power[i] = sq
@@ -362,16 +384,8 @@ def frame_means_segments(levels, ticks, phis, gammas, wx, wu, x, y):
             if k == 0:
                 continue
             u = levels[i, j]
-            acc += wu[k] * u
-            for q in range(m):
-                acc += wx[k, q] * x[q]
-            for r in range(m):
-                v = gammas[k, r] * u
-                for q in range(m):
-                    v += phis[k, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
+            acc = _add_segment_mean(acc, x, wx[k], wu[k], u)
+            _advance_state(x, tmp, phis[k], gammas[k], u)
         y[i] = acc
 
 
@@ -396,22 +410,9 @@ def frame_power_segments(levels, ticks, phis, gammas, wx, wu, qs, x, y, power):
             if k == 0:
                 continue
             u = levels[i, j]
-            acc += wu[k] * u
-            for q in range(m):
-                acc += wx[k, q] * x[q]
-            for r in range(m + 1):
-                zr = x[r] if r < m else u
-                row = qs[k, r, m] * u
-                for q in range(m):
-                    row += qs[k, r, q] * x[q]
-                sq += zr * row
-            for r in range(m):
-                v = gammas[k, r] * u
-                for q in range(m):
-                    v += phis[k, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
+            acc = _add_segment_mean(acc, x, wx[k], wu[k], u)
+            sq = _add_segment_square(sq, x, qs[k], u)
+            _advance_state(x, tmp, phis[k], gammas[k], u)
         y[i] = acc
         power[i] = sq
 
@@ -544,22 +545,9 @@ def frame_power_switched(levels, ticks, configs, phis, gammas, wx, wu, qs, x, y,
                 continue
             c = configs[i, j]
             u = levels[i, j]
-            acc += wu[c, k] * u
-            for q in range(m):
-                acc += wx[c, k, q] * x[q]
-            for r in range(m + 1):
-                zr = x[r] if r < m else u
-                row = qs[c, k, r, m] * u
-                for q in range(m):
-                    row += qs[c, k, r, q] * x[q]
-                sq += zr * row
-            for r in range(m):
-                v = gammas[c, k, r] * u
-                for q in range(m):
-                    v += phis[c, k, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
+            acc = _add_segment_mean(acc, x, wx[c, k], wu[c, k], u)
+            sq = _add_segment_square(sq, x, qs[c, k], u)
+            _advance_state(x, tmp, phis[c, k], gammas[c, k], u)
         y[i] = acc
         power[i] = sq
 
@@ -584,11 +572,4 @@ def segment_starts_switched(levels, ticks, configs, phis, gammas, x, starts):
             if k == 0:
                 continue
             c = configs[i, j]
-            u = levels[i, j]
-            for r in range(m):
-                v = gammas[c, k, r] * u
-                for q in range(m):
-                    v += phis[c, k, r, q] * x[q]
-                tmp[r] = v
-            for r in range(m):
-                x[r] = tmp[r]
+            _advance_state(x, tmp, phis[c, k], gammas[c, k], levels[i, j])
