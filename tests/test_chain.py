@@ -192,24 +192,28 @@ def test_pdm_stream_of_a_constant_settles_to_it():
     assert np.abs(listening[len(listening) // 2 : -len(listening) // 10] - value).max() < 1e-3
 
 
+def _assert_random_blocks_equal(chain, x, keep, whole, rng, longest):
+    """Run ``x`` through ``chain.process`` in random blocks of 1..longest-1 frames; every kept
+    output joined must equal ``whole``'s bit for bit. Returns the last state."""
+    state, parts, pos = None, [], 0
+    while pos < x.shape[0]:
+        n = int(rng.integers(1, longest))
+        block, state = chain.process(x[pos : pos + n], state, keep=keep)
+        parts.append(block)
+        pos += n
+    for name in keep:
+        joined = np.concatenate([getattr(p, name) for p in parts])
+        np.testing.assert_array_equal(joined, getattr(whole, name), err_msg=name)
+    return state
+
+
 def test_block_size_never_changes_a_result(rng):
     x = tone(-6.0, 0.06, channels=2) + 1e-3 * rng.standard_normal((int(0.06 * RATE), 2))
     for profile in (PDM, PWM_SINGLE):
         chain = Chain.from_profile(profile, RATE, 2)
         keep = ("listening", "modulator", "analog", "error")
         whole, whole_state = chain.process(x, keep=keep)
-        # random block sizes through process()
-        state = None
-        parts = []
-        pos = 0
-        while pos < x.shape[0]:
-            n = int(rng.integers(1, 900))
-            block, state = chain.process(x[pos : pos + n], state, keep=keep)
-            parts.append(block)
-            pos += n
-        for name in keep:
-            joined = np.concatenate([getattr(p, name) for p in parts])
-            np.testing.assert_array_equal(joined, getattr(whole, name), err_msg=name)
+        state = _assert_random_blocks_equal(chain, x, keep, whole, rng, 900)
         np.testing.assert_array_equal(state.stats.overload_count, whole_state.stats.overload_count)
         np.testing.assert_array_equal(state.stats.dropped_pulses, whole_state.stats.dropped_pulses)
         # a smaller internal block gives the same bits too
@@ -233,15 +237,7 @@ def test_block_size_never_changes_the_jitter_part(rng):
     keep = ("listening", "jitter_error")
     chain = Chain.from_profile(jittered, RATE, 2)
     whole, _ = chain.process(x, keep=keep)
-    state, parts, pos = None, [], 0
-    while pos < x.shape[0]:
-        n = int(rng.integers(1, 500))
-        block, state = chain.process(x[pos : pos + n], state, keep=keep)
-        parts.append(block)
-        pos += n
-    for name in keep:
-        joined = np.concatenate([getattr(p, name) for p in parts])
-        np.testing.assert_array_equal(joined, getattr(whole, name), err_msg=name)
+    _assert_random_blocks_equal(chain, x, keep, whole, rng, 500)
     assert np.any(whole.jitter_error != 0.0)
     a = np.concatenate([b.jitter_error for b, _ in chain.stream([x], keep=keep)])
     b = np.concatenate([b.jitter_error for b, _ in chain.stream(np.array_split(x, 5), keep=keep)])
