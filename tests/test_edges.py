@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from profile_helpers import assert_refused_at_load
 from scipy.signal import welch
 
 from audiodsm.design.ntf import NoiseTransfer
@@ -459,19 +460,9 @@ def test_rz_chain_with_edges_streams():
     ],
 )
 def test_edge_keys_refused_at_load(tmp_path, profile, text, key, words):
-    from click.testing import CliRunner
-
-    from audiodsm.cli import main
-
     path = tmp_path / "bad.toml"
     path.write_text(_text_with(profile, text))
-    with pytest.raises(ProfileError) as info:
-        load_profile(path)
-    message = str(info.value)
-    assert "\n" not in message and info.value.key == key and words in message
-    result = CliRunner().invoke(main, ["measure", str(path)])
-    assert result.exit_code == 2
-    assert key in result.output and "Traceback" not in result.output
+    assert_refused_at_load(path, key, words)
 
 
 def test_pwm_jitter_refused_with_dead_time_and_beyond_half_a_tick():
